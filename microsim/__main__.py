@@ -1,0 +1,3 @@
+from microsim.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,73 @@
+"""Histories -> per-patient time in state, occurrences, and states on a time grid.
+
+The per-patient arrays have the layout of the analytic cohort's (`CohortResult`), so the
+same valuation (`microsim.outcomes`) and the same comparison apply to both. Time in state
+is integrated exactly over each sojourn with continuous discounting in rate models, and by
+the scenario's within-cycle rule on the cycle points in cycle models.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from microsim.binding import BoundModel
+from microsim.engines.histories import Histories
+from microsim.markov import outcomes as cycle_outcomes
+
+
+def discount_rates(model: BoundModel) -> np.ndarray:
+    """Continuous rates delta = ln(1 + d) for no discount, the cost and the effect rate."""
+    return np.log1p([0.0, model.discount_costs, model.discount_effects])
+
+
+def next_times(h: Histories, end: float) -> np.ndarray:
+    """When each record's sojourn ends: the patient's next record, or the horizon."""
+    following = np.append(h.time[1:], end)
+    last = np.append(h.patient[1:] != h.patient[:-1], True)
+    return np.minimum(np.where(last, end, following), end)
+
+
+def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
+    """(B, T) state of each patient at each grid time (the last record at or before it)."""
+    until = np.append(h.time[1:], np.inf)
+    until[np.append(h.patient[1:] != h.patient[:-1], True)] = np.inf
+    lo = np.searchsorted(grid, h.time, side="left")
+    hi = np.searchsorted(grid, until, side="left")
+    n = np.maximum(hi - lo, 0)
+    rows = np.repeat(h.patient, n)
+    cols = np.repeat(lo - np.cumsum(n) + n, n) + np.arange(n.sum())
+    states = np.full((h.n_patients, len(grid)), -1, np.int16)
+    states[rows, cols] = np.repeat(h.target, n)
+    return states
+
+
+def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
+    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates."""
+    out = np.zeros((h.n_patients, len(model.risks), 3))
+    happened = h.risk >= 0
+    weights = np.exp(-np.outer(h.time[happened], discount_rates(model)))
+    np.add.at(out, (h.patient[happened], h.risk[happened]), weights)
+    return out
+
+
+def occupancy(model: BoundModel, h: Histories) -> np.ndarray:
+    """(B, S, 3) time in each state: undiscounted and discounted at the two rates."""
+    end = model.n_cycles * model.cycle
+    if model.discrete:
+        states = grid_states(h, model.times)
+        out = np.zeros((h.n_patients, model.n_states, 3))
+        rates = (0.0, model.discount_costs, model.discount_effects)
+        for w, rate in enumerate(rates):
+            weights = cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                                   correction=model.correction)
+            for s in range(model.n_states):
+                out[:, s, w] = (states == s) @ weights
+        return out
+    a, b = h.time, next_times(h, end)
+    deltas = discount_rates(model)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        integral = np.where(deltas > 0,
+                            (np.exp(-np.outer(a, deltas)) - np.exp(-np.outer(b, deltas))) / deltas,
+                            (b - a)[:, None])
+    out = np.zeros((h.n_patients, model.n_states, 3))
+    np.add.at(out, (h.patient, h.target), integral)
+    return out

@@ -1,0 +1,198 @@
+"""Binding: specs plus one set of parameter values -> the numbers engines and the cohort read.
+
+A base case, a PSA draw, a one-way sensitivity value and (later) a strategy are all just
+different bindings of the same scenario; no engine ever sees a parameter name.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Mapping
+
+import numpy as np
+
+from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
+                              PiecewiseConstantHazard, WeibullHazard)
+from microsim.scenario.spec import (REMAINDER, EffectSpec, MemorySpec, Ref, Scenario,
+                                    TableSpec)
+
+FAMILIES = {"constant": ConstantHazard, "weibull": WeibullHazard, "gompertz": GompertzHazard,
+            "loglogistic": LogLogisticHazard}
+
+
+def table_hazard(table: TableSpec) -> PiecewiseConstantHazard:
+    """A table of rates as a hazard on its own clock; below the first start the first
+    value holds (the reader warns when that happens)."""
+    starts, values = list(table.starts), list(table.values)
+    if starts[0] > 0:
+        starts, values = [0.0] + starts, values[:1] + values
+    return PiecewiseConstantHazard(tuple(starts), tuple(values))
+
+
+@dataclass(frozen=True)
+class BoundEffect:
+    """Multiply the hazard by exp(log_hr * (x - centre)) (continuous) or exp(log_hr)
+    when the attribute equals `level` (categorical; yes/no: when true)."""
+    attribute: str
+    log_hr: float
+    level: str | None
+    centre: float
+
+
+@dataclass(frozen=True)
+class BoundMemory:
+    after: str
+    multipliers: tuple[float, ...] | None
+    within: float | None
+    multiplier: float | None
+
+
+@dataclass(frozen=True)
+class BoundRisk:
+    """One way out of a state (a transition) or an event in a state (target None)."""
+    name: str
+    source: int
+    target: int | None
+    probability: float | TableSpec | None  # per cycle (discrete models)
+    remainder: bool
+    family: str | None  # hazard family (continuous models)
+    params: Mapping[str, float]
+    table: TableSpec | None  # the table of a "table" hazard
+    hazard: HazardFamily | None  # the family object engines and the cohort evaluate
+    clock: str
+    effects: tuple[BoundEffect, ...]
+    memory: tuple[BoundMemory, ...]
+    cost: float
+    disutility: float
+
+    @property
+    def is_event(self) -> bool:
+        return self.target is None
+
+    @property
+    def markov(self) -> bool:
+        """True when the risk's hazard is memoryless given state, age and time: a
+        constant rate, or a table by age or by time since start."""
+        if self.memory:
+            return False
+        if self.family == "constant":
+            return True
+        if self.table is not None:
+            return self.table.by in ("age", "time")
+        if isinstance(self.probability, TableSpec):
+            return self.probability.by in ("age", "time")
+        return self.probability is not None or self.remainder
+
+
+@dataclass(frozen=True)
+class BoundModel:
+    scenario: Scenario
+    states: tuple[str, ...]
+    absorbing: np.ndarray  # bool (S,)
+    start: np.ndarray  # (S,) initial shares
+    start_age: float | None
+    state_cost: np.ndarray  # (S,) per time unit
+    state_utility: np.ndarray  # (S,) per time unit
+    risks: tuple[BoundRisk, ...]
+    discrete: bool
+    cycle: float
+    n_cycles: int
+    lifetime: bool
+    discount_costs: float
+    discount_effects: float
+    correction: str
+    values: Mapping[str, float]
+
+    @property
+    def n_states(self) -> int:
+        return len(self.states)
+
+    @property
+    def risk_names(self) -> tuple[str, ...]:
+        return tuple(dict.fromkeys(r.name for r in self.risks))
+
+    def risks_from(self, state: int) -> tuple[BoundRisk, ...]:
+        return tuple(r for r in self.risks if r.source == state)
+
+    @property
+    def times(self) -> np.ndarray:
+        """The cycle grid 0, cycle, ..., end."""
+        return np.arange(self.n_cycles + 1) * self.cycle
+
+
+def bind(scenario: Scenario, values: Mapping[str, float] | None = None) -> BoundModel:
+    """Resolve every reference of `scenario` with the base-case parameter values,
+    overridden by `values` (a PSA draw or a sensitivity setting)."""
+    resolved = {name: p.value for name, p in scenario.parameters.items()}
+    unknown = set(values or ()) - set(resolved)
+    if unknown:
+        raise KeyError(f"values for undefined parameters: {sorted(unknown)}")
+    resolved.update(values or {})
+    index = {name: i for i, name in enumerate(scenario.state_names)}
+
+    def number(ref: Ref) -> float:
+        return float(resolved[ref]) if isinstance(ref, str) else float(ref)
+
+    def probability(ref: Ref | None):
+        if ref is None or ref == REMAINDER:
+            return None
+        if isinstance(ref, str) and ref in scenario.tables:
+            return scenario.tables[ref]
+        return number(ref)
+
+    def effect(e: EffectSpec) -> BoundEffect:
+        value = number(e.hazard_ratio)
+        log_hr = value if e.coefficient else float(np.log(value))
+        return BoundEffect(e.attribute, log_hr, e.level, e.centre)
+
+    def memory(m: MemorySpec) -> BoundMemory:
+        return BoundMemory(
+            m.after,
+            None if m.multipliers is None else tuple(number(x) for x in m.multipliers),
+            m.within,
+            None if m.multiplier is None else number(m.multiplier))
+
+    def risk(spec, name: str, source: int, target: int | None) -> BoundRisk:
+        hazard = spec.hazard
+        table = family = None
+        params: dict[str, float] = {}
+        if hazard is not None:
+            if hazard.family == "table":
+                table = scenario.tables[hazard.params["table"]]
+                family = table_hazard(table)
+            else:
+                params = {k: number(v) for k, v in hazard.params.items()}
+                family = FAMILIES[hazard.family](**params)
+        return BoundRisk(
+            name=name, source=source, target=target,
+            probability=probability(spec.probability),
+            remainder=spec.probability == REMAINDER,
+            family=None if hazard is None else hazard.family,
+            params=params, table=table, hazard=family, clock=spec.clock,
+            effects=tuple(effect(e) for e in spec.effects),
+            memory=tuple(memory(m) for m in spec.memory),
+            cost=number(spec.cost), disutility=number(spec.disutility))
+
+    risks = [risk(t, t.name, index[t.source], index[t.target]) for t in scenario.transitions]
+    for event in scenario.events:
+        risks += [risk(event, event.name, index[s], None) for s in event.states]
+
+    states = scenario.states
+    outcomes = scenario.outcomes
+    return BoundModel(
+        scenario=scenario,
+        states=scenario.state_names,
+        absorbing=np.array([s.absorbing for s in states]),
+        start=np.array([scenario.start.shares.get(s.name, 0.0) for s in states], float),
+        start_age=scenario.start.age,
+        state_cost=np.array([number(s.cost) for s in states]),
+        state_utility=np.array([number(s.utility) for s in states]),
+        risks=tuple(risks),
+        discrete=scenario.discrete,
+        cycle=scenario.time.cycle,
+        n_cycles=scenario.time.n_cycles,
+        lifetime=scenario.time.horizon is None,
+        discount_costs=outcomes.discount_costs,
+        discount_effects=outcomes.discount_effects,
+        correction=outcomes.correction,
+        values=resolved,
+    )

@@ -1,0 +1,133 @@
+"""The command line: thin wrappers that read, call the API, print, and write outputs.
+
+A `ScenarioError` (bad input) becomes one line on stderr and exit code 2, before anything
+is written; every command that writes puts its tables and a manifest in
+`<out>/<scenario name>/` atomically.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+
+from microsim import CAUTION
+from microsim.scenario import ScenarioError, read_scenario
+
+EXIT_BAD_INPUT = 2
+
+
+def out_dir(args, scenario_path: Path) -> Path:
+    return Path(args.out) / scenario_path.stem
+
+
+def show(title: str, table: pd.DataFrame, rows: int = 40) -> None:
+    print(f"\n{title}")
+    print(table.to_string(index=False, max_rows=rows, float_format=lambda x: f"{x:.6g}"))
+
+
+def write(args, path: Path, tables: dict, started: float, **extra) -> None:
+    from microsim.store import manifest, write_run
+    target = out_dir(args, path)
+    write_run(target, tables, manifest(path, started, **extra))
+    print(f"\nwrote {', '.join(sorted(tables))} (CSV and Parquet) and manifest.json to {target}/")
+
+
+def command_check(args) -> int:
+    scenario = read_scenario(args.scenario)
+    kind = "cycle model (per-cycle probabilities)" if scenario.discrete else "rate model (continuous time)"
+    horizon = "lifetime" if scenario.time.horizon is None else f"{scenario.time.horizon:g}"
+    print(f"ok: {scenario.title} — {len(scenario.states)} states, {len(scenario.transitions)} "
+          f"transitions, {len(scenario.events)} events; {kind}; horizon {horizon} "
+          f"{scenario.time.unit}")
+    for warning in scenario.warnings:
+        print(f"warning: {warning}")
+    return 0
+
+
+def command_trace(args) -> int:
+    from microsim.api import cohort_trace
+    from microsim.binding import bind
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    scenario = read_scenario(path)
+    trace = cohort_trace(bind(scenario))
+    wide = trace.pivot(index="time", columns="state", values="share")[list(scenario.state_names)]
+    show(f"Cohort trace — {scenario.title} (share of the cohort in each state)",
+         wide.reset_index(), rows=args.rows)
+    write(args, path, {"cohort_trace": trace}, started)
+    print(f"\n{CAUTION}")
+    return 0
+
+
+def command_summary(args) -> int:
+    from microsim.api import chain_summary, expected_outcomes
+    from microsim.binding import bind
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    scenario = read_scenario(path)
+    model = bind(scenario)
+    summary = chain_summary(model)
+    tables = {}
+    print(f"Summary — {scenario.title}")
+    for key in ("steady_state", "absorption"):
+        if key in summary:
+            show(key.replace("_", " ").capitalize(), summary[key])
+            tables[key] = summary[key]
+        elif f"{key}_note" in summary:
+            print(f"\n{key.replace('_', ' ').capitalize()}: {summary[key + '_note']}")
+    if summary["note"]:
+        print(f"\nNote: {summary['note']}")
+    outcomes = expected_outcomes(model)
+    show(f"Expected outcomes per patient (discount rates per time unit, {scenario.time.unit}: "
+         f"costs {model.discount_costs:g}, effects {model.discount_effects:g}; within-cycle "
+         f"correction {model.correction})", outcomes)
+    tables["expected_outcomes"] = outcomes
+    write(args, path, tables, started)
+    print(f"\n{CAUTION}")
+    return 0
+
+
+def command_run(args) -> int:
+    """The main job: for now the cohort and, with a population, simulation and validation."""
+    from microsim.workflow import run_scenario
+    return run_scenario(args)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="microsim",
+        description="Individual-level health microsimulation with a Markov backbone. " + CAUTION)
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def add(name, function, help_text):
+        sub = commands.add_parser(name, help=help_text, description=help_text)
+        sub.add_argument("scenario", help="path to a scenario TOML file")
+        sub.set_defaults(function=function)
+        return sub
+
+    add("check", command_check, "Read and check a scenario file; print warnings.")
+    for sub in (
+        add("trace", command_trace, "Print and write the analytic cohort trace."),
+        add("summary", command_summary,
+            "Steady state, absorption times and probabilities, expected outcomes."),
+        add("run", command_run, "The main job: cohort, simulation and the comparison."),
+    ):
+        sub.add_argument("--out", default="outputs", help="output folder (default: outputs)")
+    commands.choices["trace"].add_argument("--rows", type=int, default=30,
+                                           help="rows of the trace to print (default 30)")
+    run = commands.choices["run"]
+    run.add_argument("--patients", type=int, help="population size (default: the scenario's)")
+    run.add_argument("--seed", type=int, help="run seed (default: the scenario's)")
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.function(args)
+    except ScenarioError as error:
+        print(f"error: {error}", file=sys.stderr)
+        return EXIT_BAD_INPUT

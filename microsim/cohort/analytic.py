@@ -1,0 +1,143 @@
+"""The analytic counterpart of a bound model, for a cohort or for each generated patient.
+
+One entry point, `analytic`, picks the exact method the model allows and names it:
+- cycle models: products of per-cycle matrices over the expanded state space;
+- rate models whose hazards are piecewise constant in time (constant rates, life tables by
+  age or by time): matrix exponentials, exact (`microsim.markov`);
+- other Markov rate models (Weibull or Gompertz on the time-since-start or age clock,
+  proportional hazards on attained age): the forward equations integrated numerically to
+  a relative tolerance of 1e-10.
+Memory of finite size is carried by the expanded chain (`microsim.cohort.expand`); when
+some memory has no finite expansion the result says so (`exact` False, with reasons).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from microsim.binding import BoundModel
+from microsim.cohort.cycles import cycle_matrices
+from microsim.cohort.expand import Expansion, expand
+from microsim.cohort.rates import hazards_at, solve_rates, flows
+from microsim.effects import Multipliers, cohort_multipliers, multipliers
+from microsim.markov import continuous_outcomes, outcomes
+from microsim.markov.continuous import transient_piecewise
+
+WEIGHTINGS = ("undiscounted", "costs", "effects")
+
+
+@dataclass(frozen=True)
+class CohortResult:
+    """Expected results per patient row (one row for a uniform cohort).
+
+    occupancy[b, s, w]: expected time in state s; occurrences[b, r, w]: expected number of
+    occurrences of risk r; w indexes WEIGHTINGS (no discount, discounted at the cost rate,
+    at the effect rate). Cycle models apply the scenario's within-cycle correction."""
+    times: np.ndarray
+    trace: np.ndarray  # (B, T, S)
+    occupancy: np.ndarray  # (B, S, 3)
+    occurrences: np.ndarray  # (B, R, 3)
+    method: str
+    exact: bool
+    reasons: tuple[str, ...]
+
+
+def discount_rates(model: BoundModel) -> tuple[float, float, float]:
+    return 0.0, model.discount_costs, model.discount_effects
+
+
+def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
+    model = exp.model
+    batch = mult.log_static.shape[0]
+    pi = np.broadcast_to(exp.start(), (batch, exp.size)).copy()
+    expanded = [pi]
+    flows_per_cycle = []
+    for n in range(model.n_cycles):
+        P, risk_p = cycle_matrices(exp, n, mult)
+        flows_per_cycle.append(np.einsum("be,ber->br", pi, risk_p))
+        pi = np.einsum("be,bef->bf", pi, P)
+        expanded.append(pi)
+    trace = np.einsum("tbe,es->bts", np.array(expanded), exp.collapse())
+    flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
+    occupancy = np.empty((batch, model.n_states, 3))
+    occurrences = np.empty((batch, len(model.risks), 3))
+    ends = model.cycle * np.arange(1, model.n_cycles + 1)
+    for w, rate in enumerate(discount_rates(model)):
+        weights = outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                         correction=model.correction)
+        occupancy[:, :, w] = np.einsum("t,bts->bs", weights, trace)
+        occurrences[:, :, w] = np.einsum("t,tbr->br", outcomes.discount_factors(ends, rate), flow)
+    return trace, occupancy, occurrences
+
+
+def piece_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
+    """Times since start at which some table changes value, with 0 and the horizon."""
+    model = exp.model
+    end = model.n_cycles * model.cycle
+    breaks = {0.0, end}
+    for risk in model.risks:
+        if risk.table is not None:
+            shift = mult.entry_age[0] if risk.clock == "age" else 0.0
+            breaks.update(s - shift for s in risk.table.starts if 0 < s - shift < end)
+    return np.array(sorted(breaks))
+
+
+def generators(exp: Expansion, mult: Multipliers, breaks: np.ndarray) -> np.ndarray:
+    """The expanded generator on each piece, and each risk's rate matrix (K, E, E), (K, E, R)."""
+    f = flows(exp)
+    Q = np.zeros((len(breaks) - 1, exp.size, exp.size))
+    rates = np.zeros((len(breaks) - 1, exp.size, len(exp.model.risks)))
+    for k, t in enumerate(breaks[:-1]):
+        h = hazards_at(exp, t, mult)[0][f.risk] * f.factor
+        np.add.at(Q[k], (f.source, f.target), h)
+        np.add.at(rates[k], (f.source, f.risk), h)
+        Q[k] -= np.diag(Q[k].sum(axis=1))
+    return Q, rates
+
+
+def exponential_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple:
+    breaks = piece_breaks(exp, mult)
+    Q, rates = generators(exp, mult, breaks)
+    collapse = exp.collapse()
+    start = exp.start()
+    trace = transient_piecewise(start, Q, breaks, times) @ collapse
+    occupancy = np.empty((1, exp.model.n_states, 3))
+    occurrences = np.empty((1, len(exp.model.risks), 3))
+    for w, rate in enumerate(discount_rates(exp.model)):
+        per_piece = continuous_outcomes.occupancy(start, Q, breaks, rate)  # (K, E)
+        occupancy[0, :, w] = per_piece.sum(axis=0) @ collapse
+        occurrences[0, :, w] = np.einsum("ke,ker->r", per_piece, rates)
+    return trace[None], occupancy, occurrences
+
+
+def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
+    """True when every hazard is constant between table breaks (exact exponentials apply)."""
+    if np.any(mult.age_slope != 0) or mult.log_static.shape[0] != 1:
+        return False
+    return all(r.family == "constant" or (r.table is not None and r.table.by != "time_in_state")
+               for r in exp.model.risks)
+
+
+def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
+             mult: Multipliers | None = None, times: np.ndarray | None = None) -> CohortResult:
+    """Expected trace and outcome integrals per patient (or for the uniform cohort)."""
+    exp = expand(model)
+    if mult is None:
+        mult = cohort_multipliers(model) if patients is None else multipliers(model, patients)
+    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
+    if model.discrete:
+        trace, occupancy, occurrences = cycle_result(exp, mult)
+        times, method = model.times, "cycle-by-cycle matrix products" + memory
+    else:
+        times = model.times if times is None else np.asarray(times, float)
+        if piecewise_constant(exp, mult):
+            trace, occupancy, occurrences = exponential_result(exp, mult, times)
+            method = "matrix exponential of the rate matrix" + memory
+        else:
+            solution = solve_rates(exp, mult, times)
+            trace, occupancy, occurrences = (solution.trace, solution.occupancy,
+                                             solution.occurrences)
+            method = "forward equations solved numerically (rtol 1e-10)" + memory
+    return CohortResult(times, trace, occupancy, occurrences, method, exp.exact, exp.reasons)

@@ -1,0 +1,105 @@
+"""Continuous-time models: the Kolmogorov forward equations of a bound model, per patient.
+
+For a Markov model whose hazards may change with time or attained age (life tables,
+Weibull or Gompertz hazards on the time-since-start or age clock, proportional hazards on
+attained age), the state distribution solves dpi/dt = pi Q(t) (Kolmogorov forward equation;
+e.g. Ross 2014, "Introduction to Probability Models", ch. 6). We integrate it for a whole
+batch of patients at once, with the integrals the outcomes need carried along: time in
+each state and the expected number of each risk's occurrences, undiscounted and discounted
+continuously at the cost and effect rates. When Q is piecewise constant the exact matrix
+exponential path in `microsim.markov` is used instead (see `microsim.cohort.analytic`).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.integrate import solve_ivp
+
+from microsim.cohort.expand import Expansion
+from microsim.effects import Multipliers
+
+RTOL, ATOL = 1e-10, 1e-12
+
+
+@dataclass(frozen=True)
+class Flows:
+    """Every (expanded source, expanded target, risk, memory factor) move of the chain."""
+    source: np.ndarray
+    target: np.ndarray
+    risk: np.ndarray
+    factor: np.ndarray
+
+
+def flows(exp: Expansion) -> Flows:
+    model = exp.model
+    rows = []
+    for e, (i, _, counts) in enumerate(exp.expanded):
+        if model.absorbing[i]:
+            continue
+        for r, risk in enumerate(model.risks):
+            if risk.source == i:
+                j = i if risk.is_event else risk.target
+                rows.append((e, exp.index(j, 0, exp.after_move(counts, i, risk)), r,
+                             exp.memory_factor(risk, counts)))
+    source, target, risk, factor = (np.array(c) for c in zip(*rows)) if rows else [np.zeros(0)] * 4
+    return Flows(source.astype(int), target.astype(int), risk.astype(int), factor.astype(float))
+
+
+def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
+    """Each patient's hazard of each risk at time t since start: (B, R)."""
+    model = exp.model
+    out = mult.at(t).copy()
+    for r, risk in enumerate(model.risks):
+        clock = mult.entry_age + t if risk.clock == "age" else np.full(out.shape[0], t)
+        out[:, r] *= risk.hazard.hazard_array(clock)
+    return out
+
+
+@dataclass(frozen=True)
+class RateSolution:
+    times: np.ndarray  # (T,)
+    trace: np.ndarray  # (B, T, S) state shares per patient
+    occupancy: np.ndarray  # (B, S, 3) time in state: undiscounted, at cost rate, at effect rate
+    occurrences: np.ndarray  # (B, R, 3) expected occurrences, weighted the same three ways
+
+
+def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> RateSolution:
+    """Integrate the forward equations (with outcome integrals) for a batch of patients."""
+    model = exp.model
+    f = flows(exp)
+    moving = f.source != f.target
+    collapse = exp.collapse()
+    batch = mult.log_static.shape[0]
+    E, S, R = exp.size, model.n_states, len(model.risks)
+    rates = np.log1p([0.0, model.discount_costs, model.discount_effects])
+
+    def unpack(y):
+        y = y.reshape(batch, -1)
+        return y[:, :E], y[:, E:E + 3 * S], y[:, E + 3 * S:]
+
+    def derivative(t, y):
+        pi = unpack(y)[0]
+        flux = pi[:, f.source] * hazards_at(exp, t, mult)[:, f.risk] * f.factor
+        d_pi = np.zeros_like(pi)
+        np.add.at(d_pi.T, f.source[moving], -flux[:, moving].T)
+        np.add.at(d_pi.T, f.target[moving], flux[:, moving].T)
+        discount = np.exp(-rates * t)
+        d_occ = (pi @ collapse)[:, :, None] * discount
+        d_count = np.zeros((batch, R))
+        np.add.at(d_count.T, f.risk, flux.T)
+        d_count = d_count[:, :, None] * discount
+        return np.concatenate([d_pi, d_occ.reshape(batch, -1), d_count.reshape(batch, -1)],
+                              axis=1).ravel()
+
+    y0 = np.zeros((batch, E + 3 * S + 3 * R))
+    y0[:, :E] = exp.start()
+    solution = solve_ivp(derivative, (times[0], times[-1]), y0.ravel(), method="DOP853",
+                         t_eval=times, rtol=RTOL, atol=ATOL)
+    if not solution.success:
+        raise RuntimeError(f"forward equations did not solve: {solution.message}")
+    ys = solution.y.T.reshape(len(times), batch, -1)
+    trace = np.einsum("tbe,es->bts", ys[:, :, :E], collapse)
+    final = ys[-1]
+    return RateSolution(times, trace, final[:, E:E + 3 * S].reshape(batch, S, 3),
+                        final[:, E + 3 * S:].reshape(batch, R, 3))

@@ -1,0 +1,136 @@
+"""The cycle SimPy engine: fixed steps with per-cycle probabilities.
+
+Each cycle a patient takes one way out of its state, chosen by one uniform against the
+cumulative probabilities (the remainder takes what the others leave), and each event of
+the state happens or not by its own uniform; counts and time in state then move on.
+These are exactly the rules of `microsim.cohort.cycles`, so the expected simulated trace
+is the analytic one. Draws are keyed by cycle number (occurrence = cycle), so strategies
+share them cycle by cycle (common random numbers).
+"""
+from __future__ import annotations
+
+from bisect import bisect_right
+from math import exp
+
+import numpy as np
+import simpy
+
+from microsim.binding import BoundModel
+from microsim.effects import Multipliers
+from microsim.engines import plan
+from microsim.engines.histories import START, Histories, Recorder
+from microsim.scenario.spec import TableSpec
+
+MOVE = "cycle:move"
+AXES = {"time": 0, "age": 1, "time_in_state": 2}
+
+
+def base_value(probability):
+    """(constant, None) for a number; (None, (axis, starts, values)) for a table."""
+    if isinstance(probability, TableSpec):
+        return None, (AXES[probability.by], list(probability.starts), list(probability.values))
+    return probability, None
+
+
+def state_plans(model: BoundModel, names: tuple[str, ...]):
+    """For each state: (moves, remainder, events); moves and events as
+    (risk, purpose, target, constant, table, memory)."""
+    tracked = plan.tracked_names(model)
+    memory = plan.memory_terms(model, tracked)
+    plans = []
+    for i in range(model.n_states):
+        moves, events, remainder = [], [], None
+        for r, risk in enumerate(model.risks):
+            if risk.source != i or model.absorbing[i]:
+                continue
+            if risk.remainder:
+                remainder = (r, risk.target)
+                continue
+            row = (r, names.index(risk.name), risk.target, *base_value(risk.probability), memory[r])
+            (events if risk.is_event else moves).append(row)
+        plans.append((tuple(moves), remainder, tuple(events)))
+    return plans
+
+
+def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
+                    seed: int) -> Histories:
+    """Run one batch of patients through the cycle model with SimPy."""
+    names = plan.purposes(model, (MOVE,))
+    draws = plan.BatchDraws.make(seed, patient_ids, names, max(model.n_cycles, 1))
+    plans = state_plans(model, names)
+    tracked = plan.tracked_names(model)
+    bumps = plan.bumps(model, tracked)
+    slopes = mult.age_slope.tolist()
+    statics = plan.static_multipliers(mult)
+    ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
+    starts = plan.start_states(model, draws)
+    absorbing = model.absorbing.tolist()
+    cycle, n_cycles = model.cycle, model.n_cycles
+    record = Recorder()
+    env = simpy.Environment()
+    move_purpose = names.index(MOVE)
+
+    def probability(step, static, t, age, duration, counts, last):
+        r, _, _, constant, table, memory = step
+        if table is None:
+            p = constant
+        else:
+            axis, starts, values = table
+            x = (t, age, duration * cycle)[axis]
+            p = values[max(bisect_right(starts, x) - 1, 0)]
+        m = static[r]
+        if slopes[r]:
+            m *= exp(slopes[r] * t)
+        for index, multipliers, within, multiplier in memory:
+            if multipliers is not None:
+                m *= multipliers[min(counts[index], len(multipliers) - 1)]
+            elif last[index] is not None and t - last[index] < within:
+                m *= multiplier
+        return p if m == 1.0 else 1.0 - (1.0 - p) ** m
+
+    def add(b, t, source, target, r):
+        record.patient.append(b), record.time.append(t), record.source.append(source)
+        record.target.append(target), record.risk.append(r)
+
+    def occur(b, t, source, target, r, counts, last):
+        add(b, t, source, target, r)
+        for index in bumps[r]:
+            counts[index] += 1
+            last[index] = t
+
+    def patient(b: int):
+        rows, static, age0 = draws.rows[b], statics[b], ages[b]
+        state, duration = starts[b], 0
+        counts, last = plan.initial_memory(model, tracked, state)
+        add(b, 0.0, START, state, START)
+        for n in range(n_cycles):
+            if absorbing[state]:
+                return
+            t = n * cycle
+            moves, remainder, events = plans[state]
+            u = rows[move_purpose][n]
+            chosen, total = None, 0.0
+            for step in moves:
+                total += probability(step, static, t, age0 + t, duration, counts, last)
+                if u < total:
+                    chosen = (step[0], step[2])
+                    break
+            if chosen is None and remainder is not None:
+                chosen = remainder
+            happened = [step for step in events
+                        if rows[step[1]][n] < probability(step, static, t, age0 + t, duration,
+                                                          counts, last)]
+            end = t + cycle
+            for step in happened:
+                occur(b, end, state, state, step[0], counts, last)
+            if chosen is not None and chosen[1] != state:
+                occur(b, end, state, chosen[1], chosen[0], counts, last)
+                state, duration = chosen[1], 0
+            else:
+                duration += 1
+            yield env.timeout(cycle)
+
+    for b in range(len(patient_ids)):
+        env.process(patient(b))
+    env.run()
+    return record.histories(len(patient_ids))

@@ -1,0 +1,363 @@
+"""Second pass: cross-references and whole-model rules, on the specs the first pass built.
+
+Refusals raise `ScenarioError`; softer findings come back as one-line warnings that start
+with a field path. The checks run in an order where each may rely on the ones before
+(every state, parameter and table name resolves before rows are summed).
+"""
+from __future__ import annotations
+
+from typing import Iterable
+
+import numpy as np
+
+from .errors import ScenarioError
+from .fields import Reading, Reference, did_you_mean, listing, show
+from .read_parameters import support
+from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
+
+TOLERANCE = 1e-9
+AGE = "age"
+NO_AGE = 'no age is known; give start.age or a population attribute named "age"'
+Occurrence = TransitionSpec | EventSpec
+
+
+def check_scenario(s: Scenario, reading: Reading) -> list[str]:
+    """Refuse what cannot be modelled; return warnings about what looks unintended."""
+    check_states(s)
+    check_names(s)
+    for reference in reading.references:
+        check_reference(s, reference)
+    check_kind(s)
+    check_memory(s)
+    check_effects(s, reading)
+    check_age_known(s, reading)
+    if s.discrete:
+        for state in s.states:
+            check_row(s, state.name)
+    if s.time.horizon is None:
+        check_lifetime(s)
+    return warnings(s, reading)
+
+
+def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
+    """Every transition and event with its field path."""
+    return ([(f"transitions.{t.key}", t) for t in s.transitions]
+            + [(f"events.{e.name}", e) for e in s.events])
+
+
+def unknown_state(name: str, s: Scenario) -> str:
+    return (f"unknown state {name!r}{did_you_mean(name, s.state_names)}; "
+            f"states: {listing(s.state_names)}")
+
+
+def check_states(s: Scenario) -> None:
+    absorbing = {st.name for st in s.states if st.absorbing}
+    seen: set[str] = set()
+    for t in s.transitions:
+        path = f"transitions.{t.key}"
+        for end, key in ((t.source, "from"), (t.target, "to")):
+            if end not in s.state_names:
+                raise ScenarioError(f"{path}.{key}", unknown_state(end, s))
+        if t.source in absorbing:
+            raise ScenarioError(f"{path}.from", f"{t.source!r} is absorbing; an absorbing "
+                                "state has no outgoing transitions (patients stay in it)")
+        if t.key in seen:
+            raise ScenarioError(path, f"a second transition from {t.source!r} to "
+                                f"{t.target!r}; give each pair of states one transition")
+        seen.add(t.key)
+    for e in s.events:
+        for i, name in enumerate(e.states):
+            path = f"events.{e.name}.states[{i}]"
+            if name not in s.state_names:
+                raise ScenarioError(path, unknown_state(name, s))
+            if name in absorbing:
+                raise ScenarioError(path, f"{name!r} is absorbing; events can only happen in "
+                                          "non-absorbing states")
+
+
+def check_names(s: Scenario) -> None:
+    """Transition and event names are distinct and differ from state names, so that a
+    memory's `after` means one thing."""
+    taken: dict[str, str] = {}
+    for path, occurrence in occurrences(s):
+        name = occurrence.name
+        if name in s.state_names:
+            raise ScenarioError(f"{path}.name", f"{name!r} is a state name; give transitions "
+                                "and events names that no state has")
+        if name in taken:
+            raise ScenarioError(f"{path}.name", f"{name!r} is already the name of "
+                                f"{taken[name]}; transition and event names must be distinct")
+        taken[name] = path
+
+
+def check_reference(s: Scenario, ref: Reference) -> None:
+    """A name in a number slot must be defined, and its values must suit the slot."""
+    role = ref.role
+    if ref.name in s.tables:
+        if not ref.tables_allowed:
+            raise ScenarioError(ref.path, f"{ref.name!r} is a table; a table can only give "
+                                "the probability or rate of a transition or event")
+        for i, value in enumerate(s.tables[ref.name].values):
+            problem = role.problem(value)
+            if problem:
+                raise ScenarioError(f"tables.{ref.name}.values[{i}]",
+                                    f"{problem} (the table is used at {ref.path})")
+        return
+    if ref.name not in s.parameters:
+        what, known = "parameter", list(s.parameters)
+        if ref.tables_allowed:
+            what, known = "parameter or table", known + list(s.tables)
+        raise ScenarioError(ref.path, f"no {what} named {ref.name!r}"
+                            f"{did_you_mean(ref.name, known)}; defined: {listing(known)}")
+    p = s.parameters[ref.name]
+    where = f"parameters.{p.name}"
+    for key, value in (("", p.value), (".low", p.low), (".high", p.high)):
+        problem = None if value is None else role.problem(value)
+        if problem:
+            raise ScenarioError(where + key, f"{problem} (it is used as {role.noun} at "
+                                             f"{ref.path})")
+    if p.distribution is not None and p.distribution.family != "fixed":
+        lowest, highest = support(p.distribution, p.value)
+        if not role.holds_on(lowest, highest):
+            raise ScenarioError(f"{where}.distribution",
+                                f"a {p.distribution.family} distribution draws values from "
+                                f"{show(lowest)} to {show(highest)}, but {p.name!r} is used as "
+                                f"{role.noun} at {ref.path} ({role.rule}); choose a "
+                                "distribution that stays in that range")
+
+
+def check_kind(s: Scenario) -> None:
+    """All per-cycle probabilities (discrete time) or all rates/hazards (continuous)."""
+    n_discrete = sum(t.probability is not None for t in s.transitions)
+    n_continuous = len(s.transitions) - n_discrete
+    discrete = n_discrete > n_continuous or (
+        n_discrete == n_continuous and s.transitions[0].probability is not None)
+    others = ("per-cycle probabilities (a discrete-time model)" if discrete
+              else "rates or hazards (a continuous-time model)")
+    for path, occurrence in occurrences(s):
+        if (occurrence.probability is not None) != discrete:
+            uses = "a rate or hazard" if discrete else "a per-cycle probability"
+            whose = "other transitions" if isinstance(occurrence, TransitionSpec) else \
+                "transitions"
+            raise ScenarioError(path, f"uses {uses}, but the {whose} use {others}; a scenario "
+                                "uses one kind throughout")
+    for t in s.transitions:
+        if not discrete and t.source == t.target:
+            raise ScenarioError(f"transitions.{t.key}.to", f"a rate from {t.source!r} to "
+                                "itself changes nothing; use [[events]] for something that "
+                                "happens without a change of state")
+
+
+def check_memory(s: Scenario) -> None:
+    known = list(s.state_names) + [o.name for _, o in occurrences(s)]
+    for path, occurrence in occurrences(s):
+        for i, memory in enumerate(occurrence.memory):
+            if memory.after not in known:
+                raise ScenarioError(f"{path}.memory[{i}].after",
+                                    f"{memory.after!r} is not a transition, event or state "
+                                    f"name{did_you_mean(memory.after, known)}; choose one "
+                                    f"of: {listing(known)}")
+
+
+def attribute_kinds(s: Scenario, reading: Reading) -> dict[str, tuple[str, tuple[str, ...]]]:
+    """Attribute name -> (continuous | categorical | yesno | column, levels)."""
+    kinds: dict[str, tuple[str, tuple[str, ...]]] = {}
+    if s.start.age is not None:
+        kinds[AGE] = ("continuous", ())
+    population = s.population
+    if population is not None:
+        kinds.update((c, ("column", ())) for c in reading.file_columns or ())
+        for a in population.attributes:
+            kinds[a.name] = ("continuous", ()) if a.continuous else \
+                (a.distribution, tuple(a.params.get("levels", ())))
+        kinds.update((d.name, ("categorical", d.labels)) for d in population.derived)
+    return kinds
+
+
+def check_effects(s: Scenario, reading: Reading) -> None:
+    kinds = attribute_kinds(s, reading)
+    for path, occurrence in occurrences(s):
+        for i, effect in enumerate(occurrence.effects):
+            here, name = f"{path}.effects[{i}]", effect.attribute
+            if name not in kinds and s.population is None:
+                raise ScenarioError(f"{here}.attribute", f"the scenario has no [population], "
+                                    f"so no attribute {name!r}; define it under "
+                                    "[[population.attributes]]")
+            if name not in kinds:
+                raise ScenarioError(f"{here}.attribute", f"the population has no attribute "
+                                    f"{name!r}{did_you_mean(name, kinds)}; attributes: "
+                                    f"{listing(kinds)}")
+            kind, levels = kinds[name]
+            level_list = listing(repr(level) for level in levels)
+            if kind == "categorical" and effect.level is None:
+                raise ScenarioError(f"{here}.level", f"is required: {name!r} is categorical; "
+                                    f"give the level the hazard ratio applies to, one of "
+                                    f"{level_list}")
+            if kind == "categorical" and effect.level not in levels:
+                raise ScenarioError(f"{here}.level", f"{effect.level!r} is not a level of "
+                                    f"{name!r}; levels: {level_list}")
+            if kind == "yesno" and effect.level is not None:
+                raise ScenarioError(f"{here}.level", f"{name!r} is a yes/no attribute: the "
+                                    "hazard ratio applies when yes; remove level")
+            if kind in ("categorical", "yesno") and effect.centre != 0.0:
+                what = "categorical" if kind == "categorical" else "a yes/no attribute"
+                raise ScenarioError(f"{here}.centre", f"is only used with continuous "
+                                    f"attributes; {name!r} is {what}")
+            if kind == "continuous" and effect.level is not None:
+                raise ScenarioError(f"{here}.level", f"{name!r} is continuous: the hazard "
+                                    "ratio applies per unit (HR^(x - centre)); level is only "
+                                    "for categorical attributes")
+
+
+def age_known(s: Scenario, reading: Reading) -> bool:
+    population = s.population
+    return (s.start.age is not None
+            or (population is not None and any(a.name == AGE for a in population.attributes))
+            or AGE in (reading.file_columns or ()))
+
+
+def check_age_known(s: Scenario, reading: Reading) -> None:
+    if age_known(s, reading):
+        return
+    for table in s.tables.values():
+        if table.by == AGE:
+            raise ScenarioError(f"tables.{table.name}.by", f'is "age", but {NO_AGE}')
+    for path, occurrence in occurrences(s):
+        if occurrence.clock == AGE:
+            raise ScenarioError(f"{path}.clock", f'is "age", but {NO_AGE}')
+
+
+def table_at(table: TableSpec, points: np.ndarray) -> np.ndarray:
+    """The step function at `points`; the first value holds before the first start."""
+    index = np.searchsorted(np.asarray(table.starts), points, side="right") - 1
+    return np.asarray(table.values)[np.clip(index, 0, None)]
+
+
+def check_row(s: Scenario, state: str) -> None:
+    """The outgoing probabilities of a non-absorbing state sum to 1 (or to at most 1
+    beside one remainder) at base-case values, in every band of every table."""
+    row = [t for t in s.transitions if t.source == state]
+    if not row:
+        return  # no way out: the state keeps everyone (an implicit self-loop)
+    constant, remainder = 0.0, None
+    tables_by_axis: dict[str, list[TableSpec]] = {}
+    for t in row:
+        if t.probability == REMAINDER:
+            if remainder is not None:
+                raise ScenarioError(f"transitions.{t.key}.probability", f'a second "remainder" '
+                                    f"from {state!r} (the first is {remainder.key}); at most "
+                                    "one transition per state takes the remainder")
+            remainder = t
+        elif isinstance(t.probability, str) and t.probability in s.tables:
+            table = s.tables[t.probability]
+            tables_by_axis.setdefault(table.by, []).append(table)
+        elif isinstance(t.probability, str):
+            constant += s.parameters[t.probability].value
+        else:
+            constant += t.probability
+    low = high = constant
+    for tables in tables_by_axis.values():  # different axes vary independently
+        points = np.unique(np.concatenate([t.starts for t in tables]))
+        total = sum(table_at(t, points) for t in tables)
+        low, high = low + float(total.min()), high + float(total.max())
+    path = f"transitions.{state}->*"
+    if remainder is not None:
+        if high > 1.0 + TOLERANCE:
+            most = " (in the highest table band)" if high != low else ""
+            raise ScenarioError(path, f"probabilities from {state!r} other than the remainder "
+                                f"sum to {show(high)}{most}, above 1; lower them so that the "
+                                "remainder is not negative")
+    elif abs(low - 1.0) > TOLERANCE or abs(high - 1.0) > TOLERANCE:
+        total = show(low) if low == high else \
+            f"between {show(low)} and {show(high)} across the table bands"
+        raise ScenarioError(path, f"probabilities from {state!r} sum to {total}, not 1; add a "
+                            'transition with probability = "remainder" or fix the values')
+
+
+def may_be_positive(s: Scenario, value: Ref) -> bool:
+    """False only for values that are zero in every binding (literal 0, all-zero table,
+    parameter fixed at 0)."""
+    if value == REMAINDER:
+        return True
+    if isinstance(value, str) and value in s.tables:
+        return any(v > 0 for v in s.tables[value].values)
+    if isinstance(value, str):
+        p = s.parameters[value]
+        return p.value != 0 or (p.distribution is not None and p.distribution.family != "fixed")
+    return value != 0
+
+
+def can_happen(s: Scenario, t: TransitionSpec) -> bool:
+    if t.probability is not None:
+        return may_be_positive(s, t.probability)
+    if t.hazard.family in ("constant", "table"):
+        return may_be_positive(s, next(iter(t.hazard.params.values())))
+    return True
+
+
+def closure(starts: Iterable[str], edges: dict[str, set[str]]) -> set[str]:
+    seen, stack = set(starts), list(starts)
+    while stack:
+        for nxt in edges.get(stack.pop(), ()):
+            if nxt not in seen:
+                seen.add(nxt)
+                stack.append(nxt)
+    return seen
+
+
+def reachable_from_start(s: Scenario) -> tuple[set[str], list[TransitionSpec]]:
+    moves = [t for t in s.transitions if t.source != t.target and can_happen(s, t)]
+    forward: dict[str, set[str]] = {}
+    for t in moves:
+        forward.setdefault(t.source, set()).add(t.target)
+    starts = [name for name, share in s.start.shares.items() if share > 0]
+    return closure(starts, forward), moves
+
+
+def check_lifetime(s: Scenario) -> None:
+    """A lifetime horizon ends when everyone is absorbed: from every state a patient can
+    reach, some absorbing state must be reachable."""
+    if not any(st.absorbing for st in s.states):
+        raise ScenarioError("time.horizon", 'is "lifetime", but no state is absorbing '
+                            f"(absorbing = true); give a number of {s.time.unit} or mark the "
+                            "state(s) patients end in as absorbing")
+    reachable, moves = reachable_from_start(s)
+    backward: dict[str, set[str]] = {}
+    for t in moves:
+        backward.setdefault(t.target, set()).add(t.source)
+    can_end = closure([st.name for st in s.states if st.absorbing], backward)
+    for name in s.state_names:
+        if name in reachable and name not in can_end:
+            raise ScenarioError("time.horizon", f'is "lifetime", but patients in {name!r} '
+                                "(reachable from the start) can never reach an absorbing "
+                                f"state; give a number of {s.time.unit} or add a transition "
+                                "to an absorbing state")
+
+
+def youngest_age(s: Scenario) -> float | None:
+    """The lowest age anyone can have at time 0, when it is known."""
+    ages = [] if s.start.age is None else [s.start.age]
+    for a in s.population.attributes if s.population else ():
+        if a.name == AGE:
+            ages.append(a.params.get("lower", 0.0))
+    return min(ages) if ages else None
+
+
+def warnings(s: Scenario, reading: Reading) -> list[str]:
+    used = {r.name for r in reading.references}
+    found = [f"parameters.{n}: defined but not used" for n in s.parameters if n not in used]
+    found += [f"tables.{n}: defined but not used" for n in s.tables if n not in used]
+    reachable, _ = reachable_from_start(s)
+    found += [f"states.{n}: not reachable from the start (no start share, and no transition "
+              "that can happen leads to it)" for n in s.state_names if n not in reachable]
+    youngest = youngest_age(s)
+    for table in s.tables.values():
+        first = table.starts[0]
+        if table.by == AGE and youngest is not None and first > youngest:
+            found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
+                         f"above the youngest age at time 0 ({show(youngest)}); the first "
+                         "value is used below it")
+        elif table.by != AGE and first > 0:
+            found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
+                         "above 0; the first value is used before it")
+    return found

@@ -1,0 +1,192 @@
+"""Reading [population]: attribute distributions, their correlation and banded attributes,
+or a CSV/Parquet file of patients to resample (only its header is read here)."""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+
+from .fields import (ANY, CORRELATION, POSITIVE, PROBABILITY, REQUIRED, SHARE, Node,
+                     did_you_mean, listing, show)
+from .spec import AttributeSpec, DerivedSpec, PopulationSpec
+
+POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
+ATTRIBUTE_KEYS = {
+    "normal": ("mean", "sd", "lower", "upper"), "lognormal": ("meanlog", "sdlog"),
+    "uniform": ("lower", "upper"), "beta": ("alpha", "beta"), "gamma": ("shape", "scale"),
+    "categorical": ("levels", "shares"), "yesno": ("prevalence",)}
+POSITIVE_ATTRIBUTE_KEYS = {"sd", "sdlog", "alpha", "beta", "shape", "scale"}
+CORRELATION_KEYS = ("attributes", "matrix")
+DERIVED_KEYS = ("name", "from", "edges", "labels")
+FILE_SUFFIXES = (".csv", ".parquet")
+AGE = "age"
+TOLERANCE = 1e-9
+MIN_TRUNCATED_MASS = 1e-6  # less than this between lower and upper: nobody can be drawn
+
+
+def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
+    """`base` is the folder a relative `file` is read from (the scenario file's folder)."""
+    if node is None:
+        return None
+    node.only(POPULATION_KEYS)
+    size = node.whole("size", minimum=1)
+    if node.has("file"):
+        for key in ("attributes", "correlation"):
+            if node.has(key):
+                node.fail(key, "cannot be combined with file; a file population takes its "
+                               "attributes from the file's columns")
+        file, columns = read_file_header(node, base)
+        node.reading.file_columns = columns
+        weights = node.text("weights", None, nonempty=True)
+        if weights is not None and weights not in columns:
+            node.fail("weights", f"{weights!r} is not a column of {file.name}; columns: "
+                                 f"{listing(columns)}")
+        return PopulationSpec(size=size, file=file, weights=weights,
+                              derived=read_derived(node, set(columns), set(columns)))
+    if node.has("weights"):
+        node.fail("weights", "is only used with file")
+    if not node.has("attributes"):
+        node.fail(None, "needs attributes ([[population.attributes]]) or file = \"...\" "
+                        "(a CSV or Parquet file of patients)")
+    attributes = read_attributes(node.nodes("attributes", None, required=True))
+    continuous = {a.name for a in attributes if a.continuous}
+    names, matrix = read_correlation(node.node("correlation", CORRELATION_KEYS, None),
+                                     continuous)
+    return PopulationSpec(size=size, attributes=attributes, correlation_attributes=names,
+                          correlation=matrix,
+                          derived=read_derived(node, continuous, {a.name for a in attributes}))
+
+
+def read_file_header(node: Node, base: Path) -> tuple[Path, tuple[str, ...]]:
+    given = node.text("file", nonempty=True)
+    path = base / given
+    if path.suffix.lower() not in FILE_SUFFIXES:
+        node.fail("file", f"must be a .csv or .parquet file, got {given!r}")
+    try:
+        found = path.is_file()
+    except (OSError, ValueError):
+        found = False
+    if not found:
+        node.fail("file", f"no such file: {path} (a relative path is read from the folder "
+                          "of the scenario file)")
+    try:
+        if path.suffix.lower() == ".csv":
+            import pandas
+            columns = pandas.read_csv(path, nrows=0).columns
+        else:
+            import pyarrow.parquet
+            columns = pyarrow.parquet.read_schema(path).names
+    except (OSError, ValueError) as error:
+        reason = (str(error).splitlines() or [type(error).__name__])[0]
+        node.fail("file", f"cannot read the column names of {path.name}: {reason}")
+    return path, tuple(str(c) for c in columns)
+
+
+def read_attributes(nodes: list[Node]) -> tuple[AttributeSpec, ...]:
+    attributes: list[AttributeSpec] = []
+    for node in nodes:
+        name = node.name("name")
+        if any(a.name == name for a in attributes):
+            node.fail("name", f"duplicate attribute name {name!r}")
+        node.path = f"population.attributes.{name}"
+        distribution = node.text("distribution", choices=tuple(ATTRIBUTE_KEYS))
+        node.only(("name", "distribution") + ATTRIBUTE_KEYS[distribution],
+                  f" for a {distribution} attribute")
+        attribute = AttributeSpec(name, distribution, attribute_params(node, distribution))
+        if name == AGE and not attribute.continuous:
+            node.fail("distribution", f"the attribute 'age' is the age at time 0 and needs a "
+                                      f"continuous distribution, not {distribution}")
+        attributes.append(attribute)
+    return tuple(attributes)
+
+
+def attribute_params(node: Node, distribution: str) -> dict[str, float | tuple]:
+    if distribution == "categorical":
+        levels = node.texts("levels")
+        shares = node.numbers("shares", role=SHARE)
+        if len(shares) != len(levels):
+            node.fail("shares", f"has {len(shares)} shares for {len(levels)} levels; give one "
+                                "share per level")
+        if abs(sum(shares) - 1.0) > TOLERANCE:
+            node.fail("shares", f"shares sum to {show(sum(shares))}, not 1")
+        return {"levels": levels, "shares": shares}
+    if distribution == "yesno":
+        return {"prevalence": node.number("prevalence", role=PROBABILITY)}
+    optional = {"lower": -math.inf, "upper": math.inf} if distribution == "normal" else {}
+    params = {k: node.number(k, optional.get(k, REQUIRED),
+                             role=POSITIVE if k in POSITIVE_ATTRIBUTE_KEYS else ANY)
+              for k in ATTRIBUTE_KEYS[distribution]}
+    if "lower" in params and params["lower"] >= params["upper"]:
+        node.fail("upper", f"must be above lower ({show(params['lower'])}), "
+                           f"got {show(params['upper'])}")
+    if distribution == "normal":
+        mass = normal_mass(params["mean"], params["sd"], params["lower"], params["upper"])
+        if mass < MIN_TRUNCATED_MASS:
+            node.fail("lower", f"lower and upper leave almost no patients (a share of "
+                               f"{show(mass)}) of a normal with mean {show(params['mean'])} "
+                               f"and sd {show(params['sd'])}")
+    return params
+
+
+def normal_mass(mean: float, sd: float, lower: float, upper: float) -> float:
+    """P(lower < X < upper) for X ~ Normal(mean, sd), through the error function."""
+    scale = sd * math.sqrt(2.0)
+    return 0.5 * (math.erf((upper - mean) / scale) - math.erf((lower - mean) / scale))
+
+
+def read_correlation(node: Node | None, continuous: set[str]
+                     ) -> tuple[tuple[str, ...], tuple[tuple[float, ...], ...]]:
+    if node is None:
+        return (), ()
+    names = node.names("attributes")
+    for i, name in enumerate(names):
+        if name not in continuous:
+            node.fail(f"attributes[{i}]", f"{name!r} is not a continuous attribute of the "
+                                          f"population; continuous attributes: "
+                                          f"{listing(sorted(continuous))}")
+    if len(names) < 2:
+        node.fail("attributes", "needs at least two attributes to correlate")
+    matrix = node.matrix("matrix", len(names), CORRELATION)
+    for i in range(len(names)):
+        if abs(matrix[i][i] - 1.0) > TOLERANCE:
+            node.fail(f"matrix[{i}][{i}]", f"the diagonal must be 1, got {show(matrix[i][i])}")
+        for j in range(i):
+            if abs(matrix[i][j] - matrix[j][i]) > TOLERANCE:
+                node.fail(f"matrix[{i}][{j}]", f"{show(matrix[i][j])} differs from "
+                          f"matrix[{j}][{i}] = {show(matrix[j][i])}; the matrix must be "
+                          "symmetric")
+    smallest = float(np.linalg.eigvalsh(np.array(matrix)).min())
+    if smallest < -TOLERANCE:
+        node.fail("matrix", f"is not positive semi-definite: its smallest eigenvalue is "
+                            f"{show(smallest)}; no set of attributes can have these "
+                            "correlations")
+    return names, matrix
+
+
+def read_derived(node: Node, sources: set[str], taken: set[str]) -> tuple[DerivedSpec, ...]:
+    """Banded attributes from `sources` (continuous attributes or file columns)."""
+    derived: list[DerivedSpec] = []
+    for entry in node.nodes("derived", None):
+        name = entry.name("name")
+        if name in taken:
+            entry.fail("name", f"{name!r} is already an attribute name")
+        taken.add(name)
+        entry.path = f"population.derived.{name}"
+        entry.only(DERIVED_KEYS)
+        source = entry.name("from")
+        if source not in sources:
+            entry.fail("from", f"{source!r} is not a continuous attribute or column"
+                               f"{did_you_mean(source, sources)}; choose one of: "
+                               f"{listing(sorted(sources))}")
+        edges = entry.numbers("edges")
+        for i in range(1, len(edges)):
+            if edges[i] <= edges[i - 1]:
+                entry.fail("edges", f"must be strictly increasing; {show(edges[i])} follows "
+                                    f"{show(edges[i - 1])}")
+        labels = entry.texts("labels")
+        if len(labels) != len(edges):
+            entry.fail("labels", f"has {len(labels)} labels for {len(edges)} edges; label i "
+                                 "names the band from edges[i] to the next edge")
+        derived.append(DerivedSpec(name, source, edges, labels))
+    return tuple(derived)

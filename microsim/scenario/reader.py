@@ -1,0 +1,190 @@
+"""Reading a TOML scenario file into frozen specs (first pass: shapes, types and ranges).
+
+The first pass walks the document section by section with `Node`s, so every refusal
+carries its field path. Cross-references and whole-model rules (row sums, reachability,
+model kind, attributes) are the second pass, in checks.py.
+"""
+from __future__ import annotations
+
+import math
+import re
+import tomllib
+from dataclasses import replace
+from pathlib import Path
+from typing import Any
+
+from .checks import check_scenario
+from .errors import ScenarioError
+from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, UTILITY, Node, Reading, did_you_mean,
+                     listing, show)
+from .read_parameters import read_parameters, read_tables
+from .read_population import read_population
+from .read_transitions import read_events, read_transitions
+from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
+
+TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
+            "events", "parameters", "tables", "outcomes", "population", "simulation")
+TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap")
+START_KEYS = ("age", "shares")
+STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
+OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
+SIMULATION_KEYS = ("seed", "batch_size", "grid")
+CORRECTIONS = ("none", "half-cycle", "trapezoidal", "simpson")
+LIFETIME = "lifetime"
+DEFAULT_LIFETIME_CAP = 100.0
+MAX_CYCLES = 1_000_000  # beyond this a run cannot hold its traces in memory
+TOLERANCE = 1e-9
+UNIT_WORD = re.compile(r"[A-Za-z]+")
+TOML_POSITION = re.compile(r"\s*\(at (?:line (\d+), column (\d+)|end of document)\)\s*$")
+
+
+def read_scenario(path: str | Path) -> Scenario:
+    """Read and check a scenario file; refuse bad input with a `ScenarioError`."""
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except OSError as error:
+        raise ScenarioError(str(path), f"cannot read the scenario file ({error.strerror})") \
+            from None
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as error:
+        raise ScenarioError(path.name, f"is not UTF-8 text (bad byte at offset {error.start})") \
+            from None
+    return parse_scenario(text, source=path)
+
+
+def parse_scenario(text: str, source: str | Path | None = None) -> Scenario:
+    """Check scenario text; `source` names it in errors and anchors relative file paths."""
+    label = Path(source).name if source is not None else "scenario"
+    return scenario_from_data(load_toml(text, label), source)
+
+
+def load_toml(text: str, label: str) -> dict[str, Any]:
+    """tomllib, with its syntax errors turned into `<file> line N: ...`."""
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as error:
+        message = str(error)
+        position = TOML_POSITION.search(message)
+        detail = message[:position.start()] if position else message
+        detail = detail[:1].lower() + detail[1:]
+        if position and position.group(1):
+            line, column = position.group(1), position.group(2)
+            raise ScenarioError(f"{label} line {line}", f"{detail} (column {column})") from None
+        last = max(1, len(text.splitlines()))
+        raise ScenarioError(f"{label} line {last}", f"{detail} (at the end of the file)") \
+            from None
+    except RecursionError:
+        raise ScenarioError(label, "is nested too deeply to read") from None
+
+
+def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -> Scenario:
+    """Build and check a Scenario from an already-parsed TOML document."""
+    reading = Reading()
+    doc = Node(data, "", reading, TOP_KEYS)
+    base = Path(source).parent if source is not None else Path.cwd()
+    parameters = read_parameters(doc.node("parameters", None, default=None))
+    tables = read_tables(doc.node("tables", None, default=None))
+    for name in tables:
+        if name in parameters:
+            raise ScenarioError(f"tables.{name}", f"{name!r} is also a parameter name; "
+                                "parameters and tables share one set of names")
+    states = read_states(doc.nodes("states", None, required=True))
+    draft = Scenario(
+        title=doc.text("title", nonempty=True),
+        description=doc.text("description", ""),
+        provenance=doc.text("provenance", nonempty=True),
+        time=read_time(doc.node("time", TIME_KEYS)),
+        states=states,
+        start=read_start(doc.node("start", START_KEYS), [s.name for s in states]),
+        transitions=read_transitions(doc.nodes("transitions", None, required=True), tables),
+        parameters=parameters,
+        tables=tables,
+        events=read_events(doc.nodes("events", None), tables),
+        outcomes=read_outcomes(doc.node("outcomes", OUTCOMES_KEYS, default=None)),
+        population=read_population(doc.node("population", None, default=None), base),
+        simulation=read_simulation(doc.node("simulation", SIMULATION_KEYS, default=None)),
+        source=Path(source) if source is not None else None,
+    )
+    return replace(draft, warnings=tuple(check_scenario(draft, reading)))
+
+
+def read_time(node: Node) -> TimeSpec:
+    unit = node.text("unit", nonempty=True)
+    if not UNIT_WORD.fullmatch(unit):
+        node.fail("unit", f"must be a single word such as 'years' or 'days', got {unit!r}")
+    cycle = node.number("cycle", 1.0, role=POSITIVE)
+    expect = f'a number of {unit} or "{LIFETIME}"'
+    if node.raw("horizon", expect=expect) == LIFETIME:
+        horizon = None
+        cap = node.number("lifetime_cap", DEFAULT_LIFETIME_CAP, role=POSITIVE)
+        whole_cycles(node, "lifetime_cap", cap, cycle)
+    else:
+        horizon = node.number("horizon", role=POSITIVE, expect=expect)
+        if node.has("lifetime_cap"):
+            node.fail("lifetime_cap", f'is only used with horizon = "{LIFETIME}"')
+        whole_cycles(node, "horizon", horizon, cycle)
+        cap = DEFAULT_LIFETIME_CAP
+    return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap)
+
+
+def whole_cycles(node: Node, key: str, length: float, cycle: float) -> None:
+    """Refuse a length that is not a whole number (>= 1) of cycles (1e-9 relative)."""
+    n = length / cycle
+    if not math.isfinite(n) or n > MAX_CYCLES:
+        node.fail(key, f"{show(length)} is {show(n)} cycles; at most {MAX_CYCLES} cycles "
+                       "are supported (use a longer cycle)")
+    if round(n) < 1 or abs(n - round(n)) > TOLERANCE * max(1.0, n):
+        node.fail(key, f"{show(length)} is not a whole multiple of the cycle length "
+                       f"{show(cycle)}; give a whole number of cycles")
+
+
+def read_states(nodes: list[Node]) -> tuple[StateSpec, ...]:
+    states: list[StateSpec] = []
+    for node in nodes:
+        name = node.name("name")
+        if any(s.name == name for s in states):
+            node.fail("name", f"duplicate state name {name!r}; state names must be distinct")
+        node.path = f"states.{name}"
+        node.only(STATE_KEYS)
+        states.append(StateSpec(
+            name=name, label=node.text("label", name, nonempty=True),
+            absorbing=node.flag("absorbing", False),
+            cost=node.ref("cost", ANY, 0.0), utility=node.ref("utility", UTILITY, 0.0)))
+    return tuple(states)
+
+
+def read_start(node: Node, state_names: list[str]) -> StartSpec:
+    age = node.number("age", None, role=NON_NEGATIVE)
+    shares_node = node.node("shares", None)
+    given = {}
+    for name in shares_node.data:
+        if name not in state_names:
+            shares_node.fail(name, f"unknown state {name!r}{did_you_mean(name, state_names)}; "
+                                   f"states: {listing(state_names)}")
+        given[name] = shares_node.number(name, role=SHARE)
+    total = sum(given.values())
+    if abs(total - 1.0) > TOLERANCE:
+        node.fail("shares", f"shares sum to {show(total)}, not 1; states not listed start "
+                            "with share 0")
+    return StartSpec(shares={s: given.get(s, 0.0) for s in state_names}, age=age)
+
+
+def read_outcomes(node: Node | None) -> OutcomesSpec:
+    if node is None:
+        return OutcomesSpec()
+    return OutcomesSpec(
+        discount_costs=node.number("discount_costs", 0.0, role=NON_NEGATIVE),
+        discount_effects=node.number("discount_effects", 0.0, role=NON_NEGATIVE),
+        correction=node.text("correction", "half-cycle", choices=CORRECTIONS))
+
+
+def read_simulation(node: Node | None) -> SimulationSpec:
+    if node is None:
+        return SimulationSpec()
+    defaults = SimulationSpec()
+    return SimulationSpec(
+        seed=node.whole("seed", defaults.seed, minimum=0),
+        batch_size=node.whole("batch_size", defaults.batch_size, minimum=1),
+        grid=node.number("grid", None, role=POSITIVE))

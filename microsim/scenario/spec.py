@@ -1,0 +1,248 @@
+"""Frozen specs: the checked, typed picture of a scenario file.
+
+The reader builds these once and refuses bad input; nothing downstream re-parses or
+re-validates. Numbers that may come from a named parameter are kept as a `Ref` (a float
+or a parameter/table name) and resolved by binding, so a PSA draw or a strategy is a new
+binding of the same specs, not a new code path.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal, Mapping
+
+Ref = float | str
+"""A literal number, or the name of a parameter (or, for transition values, a table)."""
+
+REMAINDER = "remainder"
+"""Reserved value of a transition probability: one minus the other probabilities of the row."""
+
+Correction = Literal["none", "half-cycle", "trapezoidal", "simpson"]
+Clock = Literal["since_start", "since_entry", "age"]
+TableAxis = Literal["age", "time", "time_in_state"]
+HazardFamily = Literal["constant", "weibull", "gompertz", "loglogistic", "table"]
+
+CLOCK_OF_TABLE_AXIS: Mapping[str, Clock] = {
+    "age": "age", "time": "since_start", "time_in_state": "since_entry"}
+"""The clock a table's `by` fixes for any transition or event that reads the table."""
+
+CONTINUOUS_DISTRIBUTIONS = ("normal", "lognormal", "uniform", "beta", "gamma")
+"""Attribute distributions that give numbers (the others give levels or yes/no)."""
+
+
+@dataclass(frozen=True)
+class TimeSpec:
+    unit: str
+    cycle: float
+    horizon: float | None  # None: lifetime (until everyone is absorbed, capped)
+    lifetime_cap: float  # always set (default 100); only read when horizon is None
+
+    @property
+    def end(self) -> float:
+        """The last time point any analysis reaches, in time units."""
+        return self.horizon if self.horizon is not None else self.lifetime_cap
+
+    @property
+    def n_cycles(self) -> int:
+        return int(round(self.end / self.cycle))
+
+
+@dataclass(frozen=True)
+class StateSpec:
+    name: str
+    label: str
+    absorbing: bool = False
+    cost: Ref = 0.0  # per time unit spent in the state
+    utility: Ref = 0.0  # QALY weight per time unit spent in the state
+
+
+@dataclass(frozen=True)
+class HazardSpec:
+    """A hazard family with its parameters; `rate = x` in a file is family "constant".
+
+    Parameters by family (time in the scenario's unit):
+      constant: rate; weibull: shape, scale (H = (t/scale)^shape);
+      gompertz: rate, shape (h = rate * exp(shape * t));
+      loglogistic: shape, scale (H = log(1 + (t/scale)^shape)); table: table (a name).
+    """
+    family: HazardFamily
+    params: Mapping[str, Ref]
+
+
+@dataclass(frozen=True)
+class EffectSpec:
+    """Proportional-hazards effect of one attribute: the hazard is multiplied by
+    hazard_ratio ** (x - centre) for a continuous attribute, or by hazard_ratio when a
+    categorical attribute equals `level` (yes/no attributes: when yes)."""
+    attribute: str
+    hazard_ratio: Ref  # a coefficient c in the file is stored here as exp(c) when literal
+    level: str | None = None
+    centre: float = 0.0
+    coefficient: bool = False  # True when `hazard_ratio` holds a log-hazard coefficient
+
+
+@dataclass(frozen=True)
+class MemorySpec:
+    """A hazard multiplier that depends on the patient's history of `after`
+    (an event name, a transition name, or a state name meaning entries into it).
+
+    Either `multipliers` by the number of earlier occurrences (0, 1, ..., the last value
+    holds from then on: the cap), or `multiplier` while less than `within` time units
+    have passed since the last occurrence."""
+    after: str
+    multipliers: tuple[Ref, ...] | None = None
+    within: float | None = None
+    multiplier: Ref | None = None
+
+    @property
+    def cap(self) -> int | None:
+        return None if self.multipliers is None else len(self.multipliers) - 1
+
+
+@dataclass(frozen=True)
+class TransitionSpec:
+    source: str
+    target: str
+    name: str  # event name; "source->target" unless the file names it
+    probability: Ref | None = None  # per cycle; may be REMAINDER or a table name
+    hazard: HazardSpec | None = None  # rates and hazards (continuous time)
+    clock: Clock = "since_entry"
+    effects: tuple[EffectSpec, ...] = ()
+    memory: tuple[MemorySpec, ...] = ()
+    cost: Ref = 0.0  # one-off, when the transition happens
+    disutility: Ref = 0.0  # one-off QALY loss, when the transition happens
+
+    @property
+    def key(self) -> str:
+        return f"{self.source}->{self.target}"
+
+
+@dataclass(frozen=True)
+class EventSpec:
+    """An event that does not change the state (an acute flare): counted, costed, and
+    able to feed memory effects of transitions."""
+    name: str
+    states: tuple[str, ...]
+    probability: Ref | None = None
+    hazard: HazardSpec | None = None
+    clock: Clock = "since_entry"
+    effects: tuple[EffectSpec, ...] = ()
+    memory: tuple[MemorySpec, ...] = ()
+    cost: Ref = 0.0
+    disutility: Ref = 0.0
+
+
+@dataclass(frozen=True)
+class TableSpec:
+    """A step function: value[i] holds from starts[i] (inclusive) to starts[i+1].
+
+    Before starts[0] the first value holds (the reader warns when that can happen)."""
+    name: str
+    by: TableAxis
+    starts: tuple[float, ...]
+    values: tuple[float, ...]
+
+    @property
+    def clock(self) -> Clock:
+        return CLOCK_OF_TABLE_AXIS[self.by]
+
+
+@dataclass(frozen=True)
+class DistributionSpec:
+    """A parameter's uncertainty (PSA): family and its parameters, as in the file."""
+    family: str
+    params: Mapping[str, float | tuple[float, ...]]
+
+
+@dataclass(frozen=True)
+class ParameterSpec:
+    name: str
+    value: float
+    distribution: DistributionSpec | None = None
+    low: float | None = None  # one-way sensitivity range
+    high: float | None = None
+
+
+@dataclass(frozen=True)
+class StartSpec:
+    shares: Mapping[str, float]  # every state name in file order (0 if not given); sums to 1
+    age: float | None = None  # cohort age at time 0, in time units
+
+
+@dataclass(frozen=True)
+class OutcomesSpec:
+    discount_costs: float = 0.0  # effective rate per time unit
+    discount_effects: float = 0.0
+    correction: Correction = "half-cycle"
+
+
+@dataclass(frozen=True)
+class AttributeSpec:
+    """One patient attribute and the distribution it is drawn from.
+
+    distribution: normal (mean, sd, optional lower/upper truncation), lognormal (meanlog,
+    sdlog), uniform (lower, upper), beta (alpha, beta), gamma (shape, scale),
+    categorical (levels, shares), yesno (prevalence). Normal attributes always carry
+    lower/upper (-inf/inf when the file gives none)."""
+    name: str
+    distribution: str
+    params: Mapping[str, float | tuple]
+
+    @property
+    def continuous(self) -> bool:
+        return self.distribution in CONTINUOUS_DISTRIBUTIONS
+
+
+@dataclass(frozen=True)
+class DerivedSpec:
+    """A banded attribute: labels[i] for source values in [edges[i], edges[i+1])."""
+    name: str
+    source: str
+    edges: tuple[float, ...]
+    labels: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class PopulationSpec:
+    size: int
+    attributes: tuple[AttributeSpec, ...] = ()
+    correlation_attributes: tuple[str, ...] = ()
+    correlation: tuple[tuple[float, ...], ...] = ()
+    derived: tuple[DerivedSpec, ...] = ()
+    file: Path | None = None  # resample rows of a CSV/Parquet file instead
+    weights: str | None = None  # column of sampling weights in `file`
+
+
+@dataclass(frozen=True)
+class SimulationSpec:
+    seed: int = 20261201
+    batch_size: int = 5000
+    grid: float | None = None  # report grid step in time units; default: the cycle
+
+
+@dataclass(frozen=True)
+class Scenario:
+    title: str
+    description: str
+    provenance: str
+    time: TimeSpec
+    states: tuple[StateSpec, ...]
+    start: StartSpec
+    transitions: tuple[TransitionSpec, ...]
+    parameters: Mapping[str, ParameterSpec] = field(default_factory=dict)
+    tables: Mapping[str, TableSpec] = field(default_factory=dict)
+    events: tuple[EventSpec, ...] = ()
+    outcomes: OutcomesSpec = OutcomesSpec()
+    population: PopulationSpec | None = None
+    simulation: SimulationSpec = SimulationSpec()
+    source: Path | None = None
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def state_names(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self.states)
+
+    @property
+    def discrete(self) -> bool:
+        """True for per-cycle probability models, False for rate/hazard models."""
+        return any(t.probability is not None for t in self.transitions)
