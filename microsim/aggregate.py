@@ -10,8 +10,10 @@ from __future__ import annotations
 import numpy as np
 
 from microsim.binding import BoundModel
+from microsim.effects import Window
 from microsim.engines.histories import Histories
 from microsim.markov import outcomes as cycle_outcomes
+from microsim.outcomes import Exposure
 
 
 def discount_rates(model: BoundModel) -> np.ndarray:
@@ -49,25 +51,45 @@ def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
     return out
 
 
-def occupancy(model: BoundModel, h: Histories) -> np.ndarray:
-    """(B, S, 3) time in each state: undiscounted and discounted at the two rates."""
-    end = model.n_cycles * model.cycle
-    if model.discrete:
-        states = grid_states(h, model.times)
-        out = np.zeros((h.n_patients, model.n_states, 3))
-        rates = (0.0, model.discount_costs, model.discount_effects)
-        for w, rate in enumerate(rates):
-            weights = cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
-                                                   correction=model.correction)
-            for s in range(model.n_states):
-                out[:, s, w] = (states == s) @ weights
-        return out
-    a, b = h.time, next_times(h, end)
+def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(n, 3) integrals of 1, e^{-delta_c t}, e^{-delta_e t} over each [a, b) (0 if empty)."""
     deltas = discount_rates(model)
     with np.errstate(divide="ignore", invalid="ignore"):
-        integral = np.where(deltas > 0,
-                            (np.exp(-np.outer(a, deltas)) - np.exp(-np.outer(b, deltas))) / deltas,
-                            (b - a)[:, None])
-    out = np.zeros((h.n_patients, model.n_states, 3))
-    np.add.at(out, (h.patient, h.target), integral)
+        value = np.where(deltas > 0,
+                         (np.exp(-np.outer(a, deltas)) - np.exp(-np.outer(b, deltas))) / deltas,
+                         (b - a)[:, None])
+    return np.where((b > a)[:, None], value, 0.0)
+
+
+def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None) -> np.ndarray:
+    """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
+    `on` (B, T) holds, when given)."""
+    out = np.zeros((states.shape[0], model.n_states, 3))
+    rates = (0.0, model.discount_costs, model.discount_effects)
+    for w, rate in enumerate(rates):
+        weights = cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                               correction=model.correction)
+        for s in range(model.n_states):
+            here = states == s if on is None else (states == s) & on
+            out[:, s, w] = here @ weights
     return out
+
+
+def exposure(model: BoundModel, h: Histories, window: Window | None = None) -> Exposure:
+    """Per-patient time in state (and on treatment) and occurrences from histories."""
+    if model.discrete:
+        states = grid_states(h, model.times)
+        occupancy = cycle_occupancy(model, states)
+        on = (np.zeros_like(occupancy) if window is None
+              else cycle_occupancy(model, states, window.on_grid(model.times)))
+        return Exposure(occupancy, occurrences(model, h), on)
+    end = model.n_cycles * model.cycle
+    a, b = h.time, next_times(h, end)
+    occupancy = np.zeros((h.n_patients, model.n_states, 3))
+    np.add.at(occupancy, (h.patient, h.target), sojourn_integrals(model, a, b))
+    on = np.zeros_like(occupancy)
+    if window is not None:
+        start, stop = window.on[h.patient], window.off[h.patient]
+        np.add.at(on, (h.patient, h.target),
+                  sojourn_integrals(model, np.maximum(a, start), np.minimum(b, stop)))
+    return Exposure(occupancy, occurrences(model, h), on)

@@ -30,7 +30,7 @@ def cohort_trace(model: BoundModel, times: np.ndarray | None = None) -> pd.DataF
 def expected_outcomes(model: BoundModel) -> pd.DataFrame:
     """Expected life years, QALYs, costs (and discounted) and event counts for the cohort."""
     result = analytic(model)
-    return outcome_table(model, result.occupancy, result.occurrences)
+    return outcome_table(model, result.exposure)
 
 
 def chain_at_start(model: BoundModel) -> tuple[np.ndarray, Expansion]:

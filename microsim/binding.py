@@ -5,15 +5,15 @@ different bindings of the same scenario; no engine ever sees a parameter name.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Mapping
 
 import numpy as np
 
 from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard)
-from microsim.scenario.spec import (REMAINDER, EffectSpec, MemorySpec, Ref, Scenario,
-                                    TableSpec)
+from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
+                                    Scenario, StrategySpec, TableSpec)
 
 FAMILIES = {"constant": ConstantHazard, "weibull": WeibullHazard, "gompertz": GompertzHazard,
             "loglogistic": LogLogisticHazard}
@@ -84,6 +84,21 @@ class BoundRisk:
 
 
 @dataclass(frozen=True)
+class Treatment:
+    """A strategy's treatment in numbers: who may get it, when, and what it changes."""
+    strategy: str
+    eligible: EligibilitySpec | None
+    uptake: float
+    start: float
+    stop: float  # inf: until the horizon
+    discontinuation: float  # rate per time unit of stopping early
+    on_factor: np.ndarray  # (R,) hazard multipliers while on treatment
+    off_factor: np.ndarray  # (R,) 1, or 0 for risks that exist only on treatment
+    extra_cost: np.ndarray  # (S,) per time unit on treatment, by state
+    extra_utility: np.ndarray  # (S,) per time unit on treatment, by state
+
+
+@dataclass(frozen=True)
 class BoundModel:
     scenario: Scenario
     states: tuple[str, ...]
@@ -101,6 +116,7 @@ class BoundModel:
     discount_effects: float
     correction: str
     values: Mapping[str, float]
+    treatment: Treatment | None = None
 
     @property
     def n_states(self) -> int:
@@ -119,9 +135,15 @@ class BoundModel:
         return np.arange(self.n_cycles + 1) * self.cycle
 
 
-def bind(scenario: Scenario, values: Mapping[str, float] | None = None) -> BoundModel:
+def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
+         strategy: str | None = None) -> BoundModel:
     """Resolve every reference of `scenario` with the base-case parameter values,
-    overridden by `values` (a PSA draw or a sensitivity setting)."""
+    overridden by `values` (a PSA draw or a sensitivity setting), for one strategy (None:
+    the model as written, which is what the comparator runs)."""
+    spec = None if strategy is None else scenario.strategy(strategy)
+    if spec is not None and (spec.states or spec.transitions):
+        scenario = replace(scenario, states=scenario.states + spec.states,
+                           transitions=scenario.transitions + spec.transitions)
     resolved = {name: p.value for name, p in scenario.parameters.items()}
     unknown = set(values or ()) - set(resolved)
     if unknown:
@@ -178,6 +200,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None) -> Bound
 
     states = scenario.states
     outcomes = scenario.outcomes
+    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, number)
     return BoundModel(
         scenario=scenario,
         states=scenario.state_names,
@@ -195,4 +218,33 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None) -> Bound
         discount_effects=outcomes.discount_effects,
         correction=outcomes.correction,
         values=resolved,
+        treatment=treatment,
     )
+
+
+def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number) -> Treatment | None:
+    """The numbers of a strategy's treatment; None when it changes nothing."""
+    if not (spec.changes or spec.transitions):
+        return None
+    on = np.ones(len(risks))
+    off = np.ones(len(risks))
+    cost = np.zeros(len(scenario.states))
+    utility = np.zeros(len(scenario.states))
+    alive = np.array([not s.absorbing for s in scenario.states])
+    for change in spec.changes:
+        if change.risk is not None:
+            hit = [r for r, risk in enumerate(risks)
+                   if change.risk in (risk.name, f"{scenario.states[risk.source].name}->"
+                                      f"{'' if risk.target is None else scenario.states[risk.target].name}")]
+            on[hit] *= number(change.hazard_ratio)
+        else:
+            where = alive if change.state is None else np.arange(len(alive)) == index[change.state]
+            cost[where] += number(change.cost)
+            utility[where] += number(change.utility)
+    added = {t.name for t, gated in zip(spec.transitions, spec.while_treated) if gated}
+    for r, risk in enumerate(risks):
+        if risk.name in added:
+            off[r] = 0.0
+    return Treatment(spec.name, spec.eligible, number(spec.uptake), spec.start,
+                     np.inf if spec.stop is None else spec.stop, number(spec.discontinuation),
+                     on, off, cost, utility)

@@ -17,7 +17,7 @@ import pandas as pd
 from scipy.stats import norm
 
 from microsim.cohort.analytic import CohortResult, analytic
-from microsim.effects import average_patient, cohort_multipliers, multipliers
+from microsim.effects import average_patient
 from microsim.outcomes import outcome_values
 from microsim.simulate import Simulation
 
@@ -75,8 +75,8 @@ def trace_table(sim: Simulation, result: CohortResult) -> pd.DataFrame:
 
 
 def outcome_rows(sim: Simulation, result: CohortResult) -> pd.DataFrame:
-    simulated = outcome_values(sim.model, sim.occupancy, sim.occurrences)
-    expected = outcome_values(sim.model, result.occupancy, result.occurrences)
+    simulated = outcome_values(sim.model, sim.exposure)
+    expected = outcome_values(sim.model, result.exposure)
     rows = []
     for measure, values in simulated.items():
         se = values.std(ddof=1) / np.sqrt(len(values))
@@ -89,8 +89,7 @@ def outcome_rows(sim: Simulation, result: CohortResult) -> pd.DataFrame:
 def compare(sim: Simulation) -> Comparison:
     """Compare a simulation with the analytic counterpart of its model and patients."""
     model = sim.model
-    has_attributes = len(sim.patients.columns) > 1
-    mult = multipliers(model, sim.patients) if has_attributes else cohort_multipliers(model)
+    mult = sim.mult
     result = analytic(model, mult=mult, times=sim.grid)
     shares = trace_table(sim, result)
     outcomes = outcome_rows(sim, result)
@@ -115,8 +114,8 @@ def compare(sim: Simulation) -> Comparison:
 def average_rows(sim: Simulation, mult) -> pd.DataFrame:
     """The 'average patient' cohort against the simulated population, measure by measure."""
     result = analytic(sim.model, mult=average_patient(mult), times=sim.grid)
-    simulated = outcome_values(sim.model, sim.occupancy, sim.occurrences)
-    expected = outcome_values(sim.model, result.occupancy, result.occurrences)
+    simulated = outcome_values(sim.model, sim.exposure)
+    expected = outcome_values(sim.model, result.exposure)
     rows = []
     for measure, values in simulated.items():
         se = values.std(ddof=1) / np.sqrt(len(values))

@@ -22,15 +22,55 @@ AGE = "age"
 
 
 @dataclass(frozen=True)
+class Window:
+    """A treatment window per patient: while on <= t < off the risks' multipliers are
+    scaled by on_factor, otherwise by off_factor (0 for risks that exist only on
+    treatment). Untreated patients have an empty window (on = off = inf)."""
+    on: np.ndarray  # (patients,)
+    off: np.ndarray  # (patients,)
+    on_factor: np.ndarray  # (risks,)
+    off_factor: np.ndarray  # (risks,)
+
+    def active(self, t) -> np.ndarray:
+        return (self.on <= t) & (t < self.off)
+
+    def on_grid(self, times: np.ndarray) -> np.ndarray:
+        """(patients, T) whether each patient is on treatment at each time."""
+        return (self.on[:, None] <= times) & (times < self.off[:, None])
+
+    def factor(self, t) -> np.ndarray:
+        """(patients, risks) factor at time t."""
+        return np.where(self.active(t)[:, None], self.on_factor, self.off_factor)
+
+    def take(self, index) -> "Window":
+        return Window(self.on[index], self.off[index], self.on_factor, self.off_factor)
+
+
+@dataclass(frozen=True)
 class Multipliers:
     log_static: np.ndarray  # (patients, risks)
     age_slope: np.ndarray  # (risks,) log hazard ratio per time unit of attained age
     entry_age: np.ndarray | None  # (patients,) age at time 0, when known
+    window: Window | None = None  # a strategy's treatment window
 
     def at(self, t) -> np.ndarray:
-        """Multipliers (patients, risks) at time t since start (t scalar or (patients,))."""
-        t = np.asarray(t, float)
-        return np.exp(self.log_static + self.age_slope * (t[..., None] if t.ndim else t))
+        """Multipliers (patients, risks) at time t since start (t scalar)."""
+        base = np.exp(self.log_static + self.age_slope * float(t))
+        return base if self.window is None else base * self.window.factor(t)
+
+    @property
+    def size(self) -> int:
+        return self.log_static.shape[0]
+
+    def take(self, index) -> "Multipliers":
+        """The rows of some patients (an index array or slice)."""
+        return Multipliers(self.log_static[index], self.age_slope,
+                           None if self.entry_age is None else self.entry_age[index],
+                           None if self.window is None else self.window.take(index))
+
+    def repeated(self, n: int) -> "Multipliers":
+        """A one-row (uniform cohort) set of multipliers for n identical patients."""
+        return self if self.size == n else self.take(np.zeros(n, dtype=int))
 
 
 def indicator(patients: pd.DataFrame, attribute: str, level: str | None) -> np.ndarray:

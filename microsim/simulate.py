@@ -17,10 +17,12 @@ import pyarrow.parquet as pq
 
 from microsim import aggregate
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers, cohort_multipliers, multipliers
+from microsim.effects import Multipliers
 from microsim.engines.cycles import simulate_cycles
 from microsim.engines.events import simulate_events
+from microsim.outcomes import Exposure
 from microsim.population import PATIENT
+from microsim.strategies import patient_multipliers
 
 
 @dataclass(frozen=True)
@@ -28,10 +30,10 @@ class Simulation:
     """Per-patient results of one run; rows follow `patients`."""
     model: BoundModel
     patients: pd.DataFrame
+    mult: Multipliers  # the hazard multipliers (and treatment windows) the engine used
     grid: np.ndarray  # (T,) time points of `states`
     states: np.ndarray  # (N, T) state index of each patient at each grid time
-    occupancy: np.ndarray  # (N, S, 3) like CohortResult.occupancy
-    occurrences: np.ndarray  # (N, R, 3) like CohortResult.occurrences
+    exposure: Exposure  # time in state, on treatment, occurrences, per patient
     transitions: int  # records other than starts: transitions and events simulated
 
     @property
@@ -52,24 +54,18 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
              mult: Multipliers | None = None) -> Simulation:
     """Simulate every patient (rows of `patients`, ids in column 'patient')."""
     grid = report_grid(model) if grid is None else grid
-    if mult is None:
-        mult = multipliers(model, patients) if len(patients.columns) > 1 else cohort_multipliers(model)
-    if mult.log_static.shape[0] == 1 and len(patients) > 1:
-        mult = Multipliers(np.repeat(mult.log_static, len(patients), axis=0), mult.age_slope,
-                           None if mult.entry_age is None else np.repeat(mult.entry_age, len(patients)))
+    mult = patient_multipliers(model, patients, seed) if mult is None else mult.repeated(len(patients))
     engine = simulate_cycles if model.discrete else simulate_events
     ids = patients[PATIENT].to_numpy()
-    states, occupancy, occurrences, transitions = [], [], [], 0
+    states, exposures, transitions = [], [], 0
     writer = None
     try:
         for lo in range(0, len(ids), batch_size):
             part = slice(lo, lo + batch_size)
-            batch = Multipliers(mult.log_static[part], mult.age_slope,
-                                None if mult.entry_age is None else mult.entry_age[part])
+            batch = mult.take(part)
             h = engine(model, batch, ids[part], seed)
             states.append(aggregate.grid_states(h, grid))
-            occupancy.append(aggregate.occupancy(model, h))
-            occurrences.append(aggregate.occurrences(model, h))
+            exposures.append(aggregate.exposure(model, h, batch.window))
             transitions += int(np.sum(h.risk >= 0))
             if histories is not None:
                 table = h.table(ids[part], model.states, [r.name for r in model.risks])
@@ -78,8 +74,8 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     finally:
         if writer is not None:
             writer.close()
-    return Simulation(model, patients.reset_index(drop=True), grid, np.concatenate(states),
-                      np.concatenate(occupancy), np.concatenate(occurrences), transitions)
+    return Simulation(model, patients.reset_index(drop=True), mult, grid, np.concatenate(states),
+                      Exposure.join(exposures), transitions)
 
 
 def cohort_patients(size: int) -> pd.DataFrame:

@@ -372,6 +372,11 @@ CASES = [
     ("cycle does not divide lifetime cap", "discrete",
      [("cycle = 1\nhorizon = 10", 'cycle = 3\nhorizon = "lifetime"\nlifetime_cap = 100')],
      "time.lifetime_cap", "not a whole multiple"),
+    ("default lifetime cap not whole cycles", "discrete",
+     [("cycle = 1\nhorizon = 10", 'cycle = 3\nhorizon = "lifetime"')],
+     "time.lifetime_cap", "100 (the default lifetime_cap) is not a whole multiple"),
+    ("too many cycles", "discrete", [("cycle = 1", "cycle = 1e-6")],
+     "time.horizon", "at most 1000000 cycles"),
     ("lifetime cap with a number horizon", "discrete", [("horizon = 10", "horizon = 10\nlifetime_cap = 50")],
      "time.lifetime_cap", 'only used with horizon = "lifetime"'),
     # model kind and clocks
@@ -443,6 +448,11 @@ CASES = [
      [("[simulation]", '[[population.derived]]\nname = "band"\nfrom = "age"\nedges = [30, 50, 60]\n'
                        'labels = ["young", "old"]\n\n[simulation]')],
      "population.derived.band.labels", "has 2 labels for 3 edges"),
+    ("derived bands miss the youngest", "discrete",
+     [("[simulation]", '[[population.derived]]\nname = "band"\nfrom = "age"\nedges = [40, 60]\n'
+                       'labels = ["young", "old"]\n\n[simulation]')],
+     "population.derived.band.edges", "the first edge (40) is above the lowest value 'age' can "
+                                      "take (30)"),
     ("derived from a categorical attribute", "discrete",
      [("[simulation]", '[[population.derived]]\nname = "band"\nfrom = "sex"\nedges = [0]\n'
                        'labels = ["all"]\n\n[simulation]')],

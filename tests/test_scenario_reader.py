@@ -295,3 +295,13 @@ def test_normal_attribute_without_truncation_gets_infinite_bounds():
         '[[population.attributes]]\nname = "height"\ndistribution = "normal"\nmean = 170\nsd = 10\n'))
     height = s.population.attributes[1]
     assert height.params["lower"] == -math.inf and height.params["upper"] == math.inf
+
+
+def test_derived_bands_may_open_at_minus_infinity():
+    s = parse_scenario(population_text(
+        '\n[population]\nsize = 2\n[[population.attributes]]\nname = "sex"\n'
+        'distribution = "categorical"\nlevels = ["f", "m"]\nshares = [0.5, 0.5]\n'
+        '[[population.attributes]]\nname = "height"\ndistribution = "normal"\nmean = 170\nsd = 10\n'
+        '[[population.derived]]\nname = "tall"\nfrom = "height"\nedges = [-inf, 180]\n'
+        'labels = ["no", "yes"]\n'))
+    assert s.population.derived[0].edges == (-math.inf, 180.0)

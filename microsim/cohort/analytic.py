@@ -24,21 +24,15 @@ from microsim.cohort.rates import hazards_at, solve_rates, flows
 from microsim.effects import Multipliers, cohort_multipliers, multipliers
 from microsim.markov import continuous_outcomes, outcomes
 from microsim.markov.continuous import transient_piecewise
-
-WEIGHTINGS = ("undiscounted", "costs", "effects")
-
+from microsim.outcomes import Exposure
 
 @dataclass(frozen=True)
 class CohortResult:
-    """Expected results per patient row (one row for a uniform cohort).
-
-    occupancy[b, s, w]: expected time in state s; occurrences[b, r, w]: expected number of
-    occurrences of risk r; w indexes WEIGHTINGS (no discount, discounted at the cost rate,
-    at the effect rate). Cycle models apply the scenario's within-cycle correction."""
+    """Expected results per patient row (one row for a uniform cohort): the trace (B, T, S)
+    and the expected exposure (cycle models apply the scenario's within-cycle rule)."""
     times: np.ndarray
     trace: np.ndarray  # (B, T, S)
-    occupancy: np.ndarray  # (B, S, 3)
-    occurrences: np.ndarray  # (B, R, 3)
+    exposure: Exposure
     method: str
     exact: bool
     reasons: tuple[str, ...]
@@ -61,15 +55,18 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
         expanded.append(pi)
     trace = np.einsum("tbe,es->bts", np.array(expanded), exp.collapse())
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
+    on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)
     occupancy = np.empty((batch, model.n_states, 3))
+    on_treatment = np.empty((batch, model.n_states, 3))
     occurrences = np.empty((batch, len(model.risks), 3))
     ends = model.cycle * np.arange(1, model.n_cycles + 1)
     for w, rate in enumerate(discount_rates(model)):
         weights = outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                          correction=model.correction)
         occupancy[:, :, w] = np.einsum("t,bts->bs", weights, trace)
+        on_treatment[:, :, w] = np.einsum("t,bts,bt->bs", weights, trace, on)
         occurrences[:, :, w] = np.einsum("t,tbr->br", outcomes.discount_factors(ends, rate), flow)
-    return trace, occupancy, occurrences
+    return trace, Exposure(occupancy, occurrences, on_treatment)
 
 
 def piece_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
@@ -77,6 +74,8 @@ def piece_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
     model = exp.model
     end = model.n_cycles * model.cycle
     breaks = {0.0, end}
+    if mult.window is not None:
+        breaks.update(t for t in (mult.window.on[0], mult.window.off[0]) if 0 < t < end)
     for risk in model.risks:
         if risk.table is not None:
             shift = mult.entry_age[0] if risk.clock == "age" else 0.0
@@ -104,12 +103,16 @@ def exponential_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> 
     start = exp.start()
     trace = transient_piecewise(start, Q, breaks, times) @ collapse
     occupancy = np.empty((1, exp.model.n_states, 3))
+    on_treatment = np.zeros((1, exp.model.n_states, 3))
     occurrences = np.empty((1, len(exp.model.risks), 3))
+    on = (np.zeros(len(breaks) - 1, bool) if mult.window is None
+          else mult.window.on_grid(breaks[:-1])[0])
     for w, rate in enumerate(discount_rates(exp.model)):
         per_piece = continuous_outcomes.occupancy(start, Q, breaks, rate)  # (K, E)
         occupancy[0, :, w] = per_piece.sum(axis=0) @ collapse
+        on_treatment[0, :, w] = per_piece[on].sum(axis=0) @ collapse
         occurrences[0, :, w] = np.einsum("ke,ker->r", per_piece, rates)
-    return trace[None], occupancy, occurrences
+    return trace[None], Exposure(occupancy, occurrences, on_treatment)
 
 
 def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
@@ -128,16 +131,14 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
         mult = cohort_multipliers(model) if patients is None else multipliers(model, patients)
     memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
     if model.discrete:
-        trace, occupancy, occurrences = cycle_result(exp, mult)
+        trace, exposure = cycle_result(exp, mult)
         times, method = model.times, "cycle-by-cycle matrix products" + memory
     else:
         times = model.times if times is None else np.asarray(times, float)
         if piecewise_constant(exp, mult):
-            trace, occupancy, occurrences = exponential_result(exp, mult, times)
+            trace, exposure = exponential_result(exp, mult, times)
             method = "matrix exponential of the rate matrix" + memory
         else:
-            solution = solve_rates(exp, mult, times)
-            trace, occupancy, occurrences = (solution.trace, solution.occupancy,
-                                             solution.occurrences)
+            trace, exposure = solve_rates(exp, mult, times)
             method = "forward equations solved numerically (rtol 1e-10)" + memory
-    return CohortResult(times, trace, occupancy, occurrences, method, exp.exact, exp.reasons)
+    return CohortResult(times, trace, exposure, method, exp.exact, exp.reasons)

@@ -18,6 +18,7 @@ from scipy.integrate import solve_ivp
 
 from microsim.cohort.expand import Expansion
 from microsim.effects import Multipliers
+from microsim.outcomes import Exposure
 
 RTOL, ATOL = 1e-10, 1e-12
 
@@ -56,43 +57,36 @@ def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
     return out
 
 
-@dataclass(frozen=True)
-class RateSolution:
-    times: np.ndarray  # (T,)
-    trace: np.ndarray  # (B, T, S) state shares per patient
-    occupancy: np.ndarray  # (B, S, 3) time in state: undiscounted, at cost rate, at effect rate
-    occurrences: np.ndarray  # (B, R, 3) expected occurrences, weighted the same three ways
-
-
-def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> RateSolution:
-    """Integrate the forward equations (with outcome integrals) for a batch of patients."""
+def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[np.ndarray, Exposure]:
+    """Integrate the forward equations (with outcome integrals) for a batch of patients:
+    the trace (B, T, S) and the expected exposure."""
     model = exp.model
     f = flows(exp)
     moving = f.source != f.target
     collapse = exp.collapse()
-    batch = mult.log_static.shape[0]
+    batch = mult.size
     E, S, R = exp.size, model.n_states, len(model.risks)
     rates = np.log1p([0.0, model.discount_costs, model.discount_effects])
-
-    def unpack(y):
-        y = y.reshape(batch, -1)
-        return y[:, :E], y[:, E:E + 3 * S], y[:, E + 3 * S:]
+    window = mult.window
+    sizes = [E, 3 * S, 3 * S, 3 * R]
+    cuts = np.cumsum(sizes)[:-1]
 
     def derivative(t, y):
-        pi = unpack(y)[0]
+        pi = y.reshape(batch, -1)[:, :E]
         flux = pi[:, f.source] * hazards_at(exp, t, mult)[:, f.risk] * f.factor
         d_pi = np.zeros_like(pi)
         np.add.at(d_pi.T, f.source[moving], -flux[:, moving].T)
         np.add.at(d_pi.T, f.target[moving], flux[:, moving].T)
         discount = np.exp(-rates * t)
         d_occ = (pi @ collapse)[:, :, None] * discount
+        d_on = d_occ * (0.0 if window is None else window.active(t)[:, None, None])
         d_count = np.zeros((batch, R))
         np.add.at(d_count.T, f.risk, flux.T)
         d_count = d_count[:, :, None] * discount
-        return np.concatenate([d_pi, d_occ.reshape(batch, -1), d_count.reshape(batch, -1)],
-                              axis=1).ravel()
+        return np.concatenate([d_pi, d_occ.reshape(batch, -1), d_on.reshape(batch, -1),
+                               d_count.reshape(batch, -1)], axis=1).ravel()
 
-    y0 = np.zeros((batch, E + 3 * S + 3 * R))
+    y0 = np.zeros((batch, sum(sizes)))
     y0[:, :E] = exp.start()
     solution = solve_ivp(derivative, (times[0], times[-1]), y0.ravel(), method="DOP853",
                          t_eval=times, rtol=RTOL, atol=ATOL)
@@ -100,6 +94,6 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> RateSol
         raise RuntimeError(f"forward equations did not solve: {solution.message}")
     ys = solution.y.T.reshape(len(times), batch, -1)
     trace = np.einsum("tbe,es->bts", ys[:, :, :E], collapse)
-    final = ys[-1]
-    return RateSolution(times, trace, final[:, E:E + 3 * S].reshape(batch, S, 3),
-                        final[:, E + 3 * S:].reshape(batch, R, 3))
+    _, occ, on, count = np.split(ys[-1], cuts, axis=1)
+    return trace, Exposure(occ.reshape(batch, S, 3), count.reshape(batch, R, 3),
+                           on.reshape(batch, S, 3))

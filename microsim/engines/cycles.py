@@ -17,7 +17,7 @@ import simpy
 
 from microsim.binding import BoundModel
 from microsim.effects import Multipliers
-from microsim.engines import plan
+from microsim.engines import plan, streams
 from microsim.engines.histories import START, Histories, Recorder
 from microsim.scenario.spec import TableSpec
 
@@ -46,7 +46,8 @@ def state_plans(model: BoundModel, names: tuple[str, ...]):
             if risk.remainder:
                 remainder = (r, risk.target)
                 continue
-            row = (r, names.index(risk.name), risk.target, *base_value(risk.probability), memory[r])
+            row = (r, names.index(plan.risk_purpose(model, risk)), risk.target,
+                   *base_value(risk.probability), memory[r])
             (events if risk.is_event else moves).append(row)
         plans.append((tuple(moves), remainder, tuple(events)))
     return plans
@@ -55,22 +56,30 @@ def state_plans(model: BoundModel, names: tuple[str, ...]):
 def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
                     seed: int) -> Histories:
     """Run one batch of patients through the cycle model with SimPy."""
-    names = plan.purposes(model, (MOVE,))
-    draws = plan.BatchDraws.make(seed, patient_ids, names, max(model.n_cycles, 1))
+    names = (MOVE, *plan.risk_purposes(model))
+    draws = plan.BatchDraws.make(seed, patient_ids, names, max(model.n_cycles, 1), single=())
     plans = state_plans(model, names)
     tracked = plan.tracked_names(model)
     bumps = plan.bumps(model, tracked)
     slopes = mult.age_slope.tolist()
     statics = plan.static_multipliers(mult)
     ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
-    starts = plan.start_states(model, draws)
+    starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE))
     absorbing = model.absorbing.tolist()
     cycle, n_cycles = model.cycle, model.n_cycles
     record = Recorder()
     env = simpy.Environment()
     move_purpose = names.index(MOVE)
 
-    def probability(step, static, t, age, duration, counts, last):
+    window = mult.window
+    windowed = [window is not None and window.on_factor[r] != window.off_factor[r]
+                for r in range(len(model.risks))]
+    on_factor = None if window is None else window.on_factor.tolist()
+    off_factor = None if window is None else window.off_factor.tolist()
+    windows = ([(np.inf, np.inf)] * mult.size if window is None
+               else list(zip(window.on.tolist(), window.off.tolist())))
+
+    def probability(step, static, t, age, duration, counts, last, on, off):
         r, _, _, constant, table, memory = step
         if table is None:
             p = constant
@@ -81,6 +90,8 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         m = static[r]
         if slopes[r]:
             m *= exp(slopes[r] * t)
+        if windowed[r]:
+            m *= on_factor[r] if on <= t < off else off_factor[r]
         for index, multipliers, within, multiplier in memory:
             if multipliers is not None:
                 m *= multipliers[min(counts[index], len(multipliers) - 1)]
@@ -89,8 +100,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         return p if m == 1.0 else 1.0 - (1.0 - p) ** m
 
     def add(b, t, source, target, r):
-        record.patient.append(b), record.time.append(t), record.source.append(source)
-        record.target.append(target), record.risk.append(r)
+        record.rows.append((b, t, source, target, r))
 
     def occur(b, t, source, target, r, counts, last):
         add(b, t, source, target, r)
@@ -100,6 +110,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
 
     def patient(b: int):
         rows, static, age0 = draws.rows[b], statics[b], ages[b]
+        on, off = windows[b]
         state, duration = starts[b], 0
         counts, last = plan.initial_memory(model, tracked, state)
         add(b, 0.0, START, state, START)
@@ -111,7 +122,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             u = rows[move_purpose][n]
             chosen, total = None, 0.0
             for step in moves:
-                total += probability(step, static, t, age0 + t, duration, counts, last)
+                total += probability(step, static, t, age0 + t, duration, counts, last, on, off)
                 if u < total:
                     chosen = (step[0], step[2])
                     break
@@ -119,7 +130,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 chosen = remainder
             happened = [step for step in events
                         if rows[step[1]][n] < probability(step, static, t, age0 + t, duration,
-                                                          counts, last)]
+                                                          counts, last, on, off)]
             end = t + cycle
             for step in happened:
                 occur(b, end, state, state, step[0], counts, last)

@@ -6,89 +6,161 @@ earliest wins (the competing-risks construction of e.g. Beyersmann, Allignol & S
 2012, "Competing Risks and Multistate Models with R", ch. 3). After every occurrence, and
 when a time-limited memory effect runs out, all latent times are drawn afresh from the
 residual distributions given survival so far, which is exact for independent risks.
+
+Draws: the k-th round of draws in state i (k-th time the patient's latent times there
+are drawn) uses occurrence k of each of i's risks' purposes. So where every way out of a
+state is a constant rate, the winner and the time of every round can be computed for the
+whole batch with numpy before SimPy starts, and the patient process only looks them up.
+Draws are unit exponentials e = -log(u): a time to event solves m (H(a + s) - H(a)) = e.
 """
 from __future__ import annotations
 
-from math import exp, inf, log
+from math import exp, inf
 
 import numpy as np
 import simpy
 
 from microsim.binding import BoundModel
 from microsim.effects import Multipliers
-from microsim.engines import plan
+from microsim.engines import plan, streams
 from microsim.engines.histories import START, Histories, Recorder
 
-DEPTH = 32  # draws per purpose precomputed per patient; more are computed on demand
+DEPTH = 32  # rounds per state precomputed per patient; later ones are drawn on demand
+GROUP = 16  # patients simulated together in one SimPy environment
 
 
-def state_plans(model: BoundModel, names: tuple[str, ...]) -> list[tuple]:
-    """For each state: its risks as (risk, purpose, target, clock, constant rate or None,
-    sampler, memory terms)."""
-    tracked = plan.tracked_names(model)
-    memory = plan.memory_terms(model, tracked)
-    plans = []
-    for i in range(model.n_states):
-        rows = []
-        for r, risk in enumerate(model.risks):
-            if risk.source != i or model.absorbing[i]:
-                continue
-            constant = risk.family == "constant"
-            rows.append((r, names.index(risk.name), i if risk.target is None else risk.target,
-                         plan.CLOCKS[risk.clock], risk.params["rate"] if constant else None,
-                         risk.hazard.sample_time, memory[r]))
-        plans.append(tuple(rows))
-    return plans
+def latent_time(risk, e, m, now, entered, age0, memory, counts, last, change, window):
+    """Time from now to a risk (the general path), and the next change point."""
+    if risk.on_factor is not None:  # the strategy's treatment changes this risk
+        on, off = window
+        if on <= now < off:
+            m *= risk.on_factor
+            change = min(change, off)
+        else:
+            m *= risk.off_factor
+            if now < on:
+                change = min(change, on)
+        if m == 0.0:
+            return inf, change
+    for index, multipliers, within, multiplier in memory:
+        if multipliers is not None:
+            m *= multipliers[min(counts[index], len(multipliers) - 1)]
+        elif last[index] is not None and now - last[index] < within:
+            m *= multiplier
+            change = min(change, last[index] + within)
+    clock = risk.clock
+    a = now if clock == "since_start" else (now - entered if clock == "since_entry" else age0 + now)
+    if slope := risk.slope:
+        return risk.hazard.time_to_reach_growing(e, a, m * exp(slope * now), slope), change
+    return risk.hazard.time_to_reach(e / m, a), change
+
+
+class Batch:
+    """Everything the patient processes of one batch read, precomputed with numpy."""
+
+    def __init__(self, model: BoundModel, mult: Multipliers, patient_ids: np.ndarray, seed: int):
+        self.model, self.seed, self.ids = model, seed, np.asarray(patient_ids)
+        self.purposes = plan.risk_purposes(model)
+        self.tracked = plan.tracked_names(model)
+        self.memory = plan.memory_terms(model, self.tracked)
+        self.bumps = plan.bumps(model, self.tracked)
+        self.slopes = mult.age_slope
+        self.window = mult.window
+        rates = np.array([r.params["rate"] if r.family == "constant" else np.nan
+                          for r in model.risks])
+        self.statics = np.exp(mult.log_static)
+        with np.errstate(divide="ignore"):
+            self.mean_times = 1.0 / (self.statics * rates)  # inf for a zero rate
+        self.from_state = [[r for r, risk in enumerate(model.risks) if risk.source == i]
+                           for i in range(model.n_states)]
+        self.simple = [all(self.is_simple(r) for r in rs) for rs in self.from_state]
+        self.starts = plan.start_states(model, streams.uniforms(seed, self.ids, plan.START_PURPOSE))
+        e = -np.log(streams.block(seed, self.ids, self.purposes, DEPTH))  # (B, R, DEPTH)
+        self.times, self.winners = self.simple_rounds(e)
+        self.draws = {r: e[:, r].tolist() for rs, simple in zip(self.from_state, self.simple)
+                      if not simple for r in rs}
+
+    def is_simple(self, r: int) -> bool:
+        risk = self.model.risks[r]
+        return (risk.family == "constant" and not risk.memory and self.slopes[r] == 0.0
+                and not self.windowed(r))
+
+    def windowed(self, r: int) -> bool:
+        w = self.window
+        return w is not None and w.on_factor[r] != w.off_factor[r]
+
+    def simple_rounds(self, e: np.ndarray):
+        """For each all-constant state: time and winner of every precomputed round."""
+        times, winners = [None] * self.model.n_states, [None] * self.model.n_states
+        for i, rs in enumerate(self.from_state):
+            if self.simple[i] and rs and not self.model.absorbing[i]:
+                latent = e[:, rs] * self.mean_times[:, rs, None]  # (B, risks, DEPTH)
+                times[i] = latent.min(axis=1).tolist()
+                winners[i] = np.asarray(rs)[latent.argmin(axis=1)].tolist()
+        return times, winners
+
+    def more_draws(self, b: int, r: int, start: int) -> list[float]:
+        """Occurrences start .. start + 4 DEPTH of risk r's purpose for patient row b."""
+        u = streams.sequence(self.seed, int(self.ids[b]), self.purposes[r], start, 4 * DEPTH)
+        return (-np.log(u)).tolist()
+
+    def more_rounds(self, b: int, i: int, start: int) -> tuple[list, list]:
+        """Rounds start .. start + 4 DEPTH of an all-constant state, for patient row b."""
+        rs = self.from_state[i]
+        latent = np.array([self.more_draws(b, r, start) for r in rs]) * self.mean_times[b, rs, None]
+        return latent.min(axis=0).tolist(), np.asarray(rs)[latent.argmin(axis=0)].tolist()
 
 
 def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
                     seed: int) -> Histories:
     """Run one batch of patients through the continuous-time model with SimPy."""
-    names = plan.purposes(model)
-    draws = plan.BatchDraws.make(seed, patient_ids, names, DEPTH)
-    plans = state_plans(model, names)
-    tracked = plan.tracked_names(model)
-    bumps = plan.bumps(model, tracked)
-    slopes = mult.age_slope.tolist()
-    statics = plan.static_multipliers(mult)
-    ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
-    starts = plan.start_states(model, draws)
-    absorbing = model.absorbing.tolist()
+    batch = Batch(model, mult, patient_ids, seed)
+    window = mult.window
+    risks = [plan.RiskView(risk, float(batch.slopes[r]),
+                           *((window.on_factor[r], window.off_factor[r]) if batch.windowed(r)
+                             else (None, None)))
+             for r, risk in enumerate(model.risks)]
+    windows = ([(np.inf, np.inf)] * mult.size if window is None
+               else list(zip(window.on.tolist(), window.off.tolist())))
+    targets = [risk.source if risk.target is None else risk.target for risk in model.risks]
+    absorbing, simple, from_state = model.absorbing.tolist(), batch.simple, batch.from_state
+    memory, bumps, tracked = batch.memory, batch.bumps, batch.tracked
     end = model.n_cycles * model.cycle
     record = Recorder()
-    env = simpy.Environment()
-    timeout = env.timeout
-    add_patient, add_time = record.patient.append, record.time.append
-    add_source, add_target, add_risk = record.source.append, record.target.append, record.risk.append
+    add = record.rows.append
 
-    def patient(b: int):
-        rows, used, static, age0 = draws.rows[b], [1] + [0] * (len(names) - 1), statics[b], ages[b]
-        state, entered = starts[b], 0.0
+    def patient(b: int, timeout):
+        times = [t[b] if t else None for t in batch.times]  # extended when used up
+        winners = [w[b] if w else None for w in batch.winners]
+        draws = {r: d[b] for r, d in batch.draws.items()}
+        static = batch.statics[b].tolist()
+        age0 = 0.0 if mult.entry_age is None else float(mult.entry_age[b])
+        rounds = [0] * model.n_states
+        state, entered, now = batch.starts[b], 0.0, 0.0
         counts, last = plan.initial_memory(model, tracked, state)
-        add_patient(b), add_time(0.0), add_source(START), add_target(state), add_risk(START)
-        now = 0.0
+        add((b, 0.0, START, state, START))
         while not absorbing[state]:
-            best, winner, change = inf, None, end
-            for step in plans[state]:
-                r, p, target, clock, rate, sample, memory = step
-                k = used[p]
-                used[p] = k + 1
-                u = rows[p][k] if k < DEPTH else draws.spill(b, p, k)
-                m = static[r]
-                for index, multipliers, within, multiplier in memory:
-                    if multipliers is not None:
-                        m *= multipliers[min(counts[index], len(multipliers) - 1)]
-                    elif last[index] is not None and now - last[index] < within:
-                        m *= multiplier
-                        change = min(change, last[index] + within)
-                slope = slopes[r]
-                if slope == 0.0 and rate is not None:
-                    dt = -log(u) / (rate * m) if rate > 0.0 else inf
-                else:
-                    a = now if clock == 0 else (now - entered if clock == 1 else age0 + now)
-                    dt = sample(u, m * exp(slope * now) if slope else m, a, slope)
-                if dt < best:
-                    best, winner = dt, step
+            k = rounds[state]
+            rounds[state] = k + 1
+            change = end
+            if simple[state]:
+                try:
+                    best, winner = times[state][k], winners[state][k]
+                except IndexError:
+                    more_times, more_winners = batch.more_rounds(b, state, k)
+                    times[state] += more_times
+                    winners[state] += more_winners
+                    best, winner = times[state][k], winners[state][k]
+            else:
+                best, winner = inf, None
+                for r in from_state[state]:
+                    if k == len(draws[r]):
+                        draws[r] += batch.more_draws(b, r, k)
+                    e = draws[r][k]
+                    dt, change = latent_time(risks[r], e, static[r], now, entered, age0,
+                                             memory[r], counts, last, change, windows[b])
+                    if dt < best:
+                        best, winner = dt, r
             if now + best >= change:
                 if change >= end:
                     return
@@ -97,15 +169,20 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 continue
             yield timeout(best)
             now += best
-            r, target = winner[0], winner[2]
-            add_patient(b), add_time(now), add_source(state), add_target(target), add_risk(r)
-            for index in bumps[r]:
+            target = targets[winner]
+            add((b, now, state, target, winner))
+            for index in bumps[winner]:
                 counts[index] += 1
                 last[index] = now
             if target != state:
                 state, entered = target, now
 
-    for b in range(len(patient_ids)):
-        env.process(patient(b))
-    env.run()
+    # Patients run in small groups, each in its own environment: the event queue stays
+    # short (a heap of thousands of patients costs more than the model's arithmetic), and
+    # results cannot depend on it because every draw is keyed by the patient.
+    for lo in range(0, len(patient_ids), GROUP):
+        env = simpy.Environment()
+        for b in range(lo, min(lo + GROUP, len(patient_ids))):
+            env.process(patient(b, env.timeout))
+        env.run()
     return record.histories(len(patient_ids))

@@ -8,6 +8,7 @@ puts each patient's records together, in time order, for the aggregators.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import chain
 
 import numpy as np
 import pyarrow as pa
@@ -16,16 +17,19 @@ START = -1
 
 
 class Recorder:
-    """Cheap appends from inside the engines' hot loops."""
-    __slots__ = ("patient", "time", "source", "target", "risk")
+    """Cheap appends from inside the engines' hot loops: one tuple per record,
+    (patient row, time, from state, to state, risk)."""
+    __slots__ = ("rows",)
 
     def __init__(self):
-        self.patient, self.time, self.source, self.target, self.risk = [], [], [], [], []
+        self.rows: list[tuple] = []
 
     def histories(self, n_patients: int) -> "Histories":
-        return Histories(np.array(self.patient, np.int64), np.array(self.time, float),
-                         np.array(self.source, np.int16), np.array(self.target, np.int16),
-                         np.array(self.risk, np.int32), n_patients).sorted_by_patient()
+        table = np.fromiter(chain.from_iterable(self.rows), float,
+                            count=5 * len(self.rows)).reshape(-1, 5)
+        return Histories(table[:, 0].astype(np.int64), table[:, 1], table[:, 2].astype(np.int16),
+                         table[:, 3].astype(np.int16), table[:, 4].astype(np.int32),
+                         n_patients).sorted_by_patient()
 
 
 @dataclass(frozen=True)

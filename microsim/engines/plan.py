@@ -41,34 +41,75 @@ def memory_terms(model: BoundModel, tracked: tuple[str, ...]) -> list[tuple]:
                   for m in risk.memory) for risk in model.risks]
 
 
-def purposes(model: BoundModel, extra: tuple[str, ...] = ()) -> tuple[str, ...]:
-    """Draw purposes: the start, each named risk (shared by all states it occurs in)."""
-    return (START_PURPOSE, *extra, *model.risk_names)
+def risk_purpose(model: BoundModel, risk) -> str:
+    """The draw purpose of a risk: its name and the state it leaves, so an event that can
+    happen in several states has an independent stream in each, and a strategy that adds
+    a risk shifts no other risk's draws."""
+    return f"{risk.name}@{model.states[risk.source]}"
+
+
+def risk_purposes(model: BoundModel) -> tuple[str, ...]:
+    return tuple(risk_purpose(model, r) for r in model.risks)
+
+
+@dataclass(frozen=True, slots=True)
+class RiskView:
+    """What the event engine's general path reads of a risk: its clock and hazard, its
+    age slope, and its treatment factors (None when no strategy changes it)."""
+    clock: str
+    hazard: object
+    slope: float
+    on_factor: float | None
+    off_factor: float | None
+
+    def __init__(self, risk, slope: float, on_factor=None, off_factor=None):
+        for name, value in (("clock", risk.clock), ("hazard", risk.hazard), ("slope", slope),
+                            ("on_factor", on_factor), ("off_factor", off_factor)):
+            object.__setattr__(self, name, value)
 
 
 @dataclass
 class BatchDraws:
-    """A batch's uniforms by (patient row, purpose, occurrence), with a spill beyond the block."""
+    """A batch's draws by (patient row, purpose, occurrence), with more on demand.
+
+    Draws are uniforms, or unit exponentials -log(u) of the same uniforms when
+    `exponential` (what inverting a cumulative hazard needs)."""
     seed: int
     patient_ids: np.ndarray
     names: tuple[str, ...]
-    rows: list  # rows[b][p] -> list of uniforms
+    rows: list  # rows[b][p] -> list of draws
     depth: int
+    exponential: bool = False
 
     @classmethod
-    def make(cls, seed: int, patient_ids, names, depth: int) -> "BatchDraws":
-        block = streams.block(seed, patient_ids, names, depth)
-        return cls(seed, np.asarray(patient_ids), tuple(names), block.tolist(), depth)
+    def make(cls, seed: int, patient_ids, names, depth: int, exponential: bool = False,
+             single: tuple[str, ...] = (START_PURPOSE,)) -> "BatchDraws":
+        """Precompute `depth` draws of every purpose, one of those in `single`."""
+        ids = np.asarray(patient_ids)
+        many = [n for n in names if n not in single]
+        blocks = {n: streams.uniforms(seed, ids, n)[:, None] for n in names if n in single}
+        if many:
+            block = streams.block(seed, ids, many, depth)
+            blocks.update({n: block[:, k] for k, n in enumerate(many)})
+        ordered = np.concatenate([blocks[n] for n in names], axis=1)
+        flat = (-np.log(ordered) if exponential else ordered).tolist()
+        cuts = np.cumsum([0] + [blocks[n].shape[1] for n in names]).tolist()
+        rows = [[row[a:z] for a, z in zip(cuts, cuts[1:])] for row in flat]
+        return cls(seed, ids, tuple(names), rows, depth, exponential)
 
-    def spill(self, b: int, p: int, occurrence: int) -> float:
-        """A draw past the precomputed block (rare): computed on its own, same stream."""
-        return float(streams.uniforms(self.seed, self.patient_ids[b:b + 1], self.names[p],
-                                      occurrence)[0])
+    def more(self, b: int, p: int) -> list:
+        """The next 4 x depth draws of one patient's purpose, after all those precomputed
+        so far: the same stream, in order (they are also appended to the row)."""
+        row = self.rows[b][p]
+        u = streams.sequence(self.seed, int(self.patient_ids[b]), self.names[p], len(row),
+                             4 * self.depth)
+        fresh = (-np.log(u) if self.exponential else u).tolist()
+        row.extend(fresh)
+        return fresh
 
 
-def start_states(model: BoundModel, draws: BatchDraws) -> list[int]:
-    """Each patient's starting state, from its own 'start' draw and the start shares."""
-    u = np.array([row[0][0] for row in draws.rows])
+def start_states(model: BoundModel, u: np.ndarray) -> list[int]:
+    """Each patient's starting state, from its own 'start' uniform and the start shares."""
     cumulative = np.cumsum(model.start)
     cumulative[-1] = 1.0
     return np.searchsorted(cumulative, u, side="right").tolist()

@@ -79,6 +79,11 @@ class HazardFamily(ABC):
     def mean_time(self) -> float:
         """Expected time to event from clock 0 with multiplier 1 (inf if it may never happen)."""
 
+    def log_hazard(self, t: float) -> float:
+        """log h(t) (-inf where h is 0); families whose hazard may overflow give it directly."""
+        h = self.hazard(t)
+        return log(h) if h > 0.0 else -inf
+
     def survival(self, t: float) -> float:
         return exp(-self.cumulative_hazard(t))
 
@@ -134,8 +139,7 @@ def solve_growing_numerically(family: HazardFamily, extra: float, now: float,
     hundreds of microseconds per draw, against well under a microsecond for closed forms.
     """
     def rate_at(v: float) -> float:  # exp(growth v) h(now + v), formed in logs against overflow
-        h = family.hazard(now + v)
-        return exp(growth * v + log(h)) if 0.0 < h < inf else h
+        return exp(growth * v + family.log_hazard(now + v))
 
     def gained(s: float) -> float:
         try:

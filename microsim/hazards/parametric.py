@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from math import exp, expm1, inf, log1p
+from math import exp, expm1, inf, log, log1p
 
 import numpy as np
 from scipy import special
@@ -109,6 +109,9 @@ class GompertzHazard(HazardFamily):
 
     def hazard(self, t):
         return self.rate * exp(self.shape * t)
+
+    def log_hazard(self, t):
+        return log(self.rate) + self.shape * t if self.rate > 0.0 else -inf
 
     def cumulative_hazard(self, t):
         if self.shape == 0.0:

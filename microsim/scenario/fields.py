@@ -271,11 +271,14 @@ class Node:
             self.fail(key, f"must not be empty ({expect})")
         return value
 
-    def numbers(self, key: str, default: Any = REQUIRED, role: Role = ANY) -> tuple[float, ...]:
+    def numbers(self, key: str, default: Any = REQUIRED, role: Role = ANY,
+                open_start: bool = False) -> tuple[float, ...]:
+        """A non-empty list of numbers; `open_start` lets the first be -inf."""
         values = self._list(key, default, "a list of numbers", nonempty=True)
         if values is default:
             return default
-        return tuple(self._number(v, f"{key}[{i}]", role) for i, v in enumerate(values))
+        return tuple(-math.inf if open_start and i == 0 and v == -math.inf
+                     else self._number(v, f"{key}[{i}]", role) for i, v in enumerate(values))
 
     def matrix(self, key: str, size: int, role: Role) -> tuple[tuple[float, ...], ...]:
         """A square `size` x `size` list of rows of numbers."""

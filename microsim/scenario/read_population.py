@@ -43,7 +43,7 @@ def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
             node.fail("weights", f"{weights!r} is not a column of {file.name}; columns: "
                                  f"{listing(columns)}")
         return PopulationSpec(size=size, file=file, weights=weights,
-                              derived=read_derived(node, set(columns), set(columns)))
+                              derived=read_derived(node, dict.fromkeys(columns), set(columns)))
     if node.has("weights"):
         node.fail("weights", "is only used with file")
     if not node.has("attributes"):
@@ -53,9 +53,10 @@ def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
     continuous = {a.name for a in attributes if a.continuous}
     names, matrix = read_correlation(node.node("correlation", CORRELATION_KEYS, None),
                                      continuous)
+    lowest = {a.name: lowest_value(a) for a in attributes if a.continuous}
     return PopulationSpec(size=size, attributes=attributes, correlation_attributes=names,
                           correlation=matrix,
-                          derived=read_derived(node, continuous, {a.name for a in attributes}))
+                          derived=read_derived(node, lowest, {a.name for a in attributes}))
 
 
 def read_file_header(node: Node, base: Path) -> tuple[Path, tuple[str, ...]]:
@@ -164,8 +165,15 @@ def read_correlation(node: Node | None, continuous: set[str]
     return names, matrix
 
 
-def read_derived(node: Node, sources: set[str], taken: set[str]) -> tuple[DerivedSpec, ...]:
-    """Banded attributes from `sources` (continuous attributes or file columns)."""
+def lowest_value(attribute: AttributeSpec) -> float:
+    """The lowest value a continuous attribute can be drawn at."""
+    return attribute.params.get("lower", 0.0)  # lognormal, gamma and beta start at 0
+
+
+def read_derived(node: Node, sources: dict[str, float | None], taken: set[str]
+                 ) -> tuple[DerivedSpec, ...]:
+    """Banded attributes from `sources`: continuous attributes with their lowest value,
+    or file columns (lowest value unknown until the file is read: None)."""
     derived: list[DerivedSpec] = []
     for entry in node.nodes("derived", None):
         name = entry.name("name")
@@ -179,11 +187,17 @@ def read_derived(node: Node, sources: set[str], taken: set[str]) -> tuple[Derive
             entry.fail("from", f"{source!r} is not a continuous attribute or column"
                                f"{did_you_mean(source, sources)}; choose one of: "
                                f"{listing(sorted(sources))}")
-        edges = entry.numbers("edges")
+        edges = entry.numbers("edges", open_start=True)
         for i in range(1, len(edges)):
             if edges[i] <= edges[i - 1]:
                 entry.fail("edges", f"must be strictly increasing; {show(edges[i])} follows "
                                     f"{show(edges[i - 1])}")
+        lowest = sources[source]
+        if lowest is not None and edges[0] > lowest:
+            entry.fail("edges", f"the first edge ({show(edges[0])}) is above the lowest value "
+                                f"{source!r} can take ({show(lowest)}), so some patients would "
+                                "fit no band; lower it (it may be -inf) or truncate "
+                                f"{source!r}")
         labels = entry.texts("labels")
         if len(labels) != len(edges):
             entry.fail("labels", f"has {len(labels)} labels for {len(edges)} edges; label i "

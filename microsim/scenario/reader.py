@@ -119,7 +119,8 @@ def read_time(node: Node) -> TimeSpec:
     if node.raw("horizon", expect=expect) == LIFETIME:
         horizon = None
         cap = node.number("lifetime_cap", DEFAULT_LIFETIME_CAP, role=POSITIVE)
-        whole_cycles(node, "lifetime_cap", cap, cycle)
+        whole_cycles(node, "lifetime_cap", cap, cycle,
+                     "" if node.has("lifetime_cap") else " (the default lifetime_cap)")
     else:
         horizon = node.number("horizon", role=POSITIVE, expect=expect)
         if node.has("lifetime_cap"):
@@ -129,14 +130,14 @@ def read_time(node: Node) -> TimeSpec:
     return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap)
 
 
-def whole_cycles(node: Node, key: str, length: float, cycle: float) -> None:
+def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = "") -> None:
     """Refuse a length that is not a whole number (>= 1) of cycles (1e-9 relative)."""
     n = length / cycle
     if not math.isfinite(n) or n > MAX_CYCLES:
-        node.fail(key, f"{show(length)} is {show(n)} cycles; at most {MAX_CYCLES} cycles "
-                       "are supported (use a longer cycle)")
+        node.fail(key, f"{show(length)}{note} is {show(n)} cycles; at most {MAX_CYCLES} "
+                       "cycles are supported (use a longer cycle)")
     if round(n) < 1 or abs(n - round(n)) > TOLERANCE * max(1.0, n):
-        node.fail(key, f"{show(length)} is not a whole multiple of the cycle length "
+        node.fail(key, f"{show(length)}{note} is not a whole multiple of the cycle length "
                        f"{show(cycle)}; give a whole number of cycles")
 
 

@@ -195,7 +195,8 @@ class AttributeSpec:
 
 @dataclass(frozen=True)
 class DerivedSpec:
-    """A banded attribute: labels[i] for source values in [edges[i], edges[i+1])."""
+    """A banded attribute: labels[i] for source values in [edges[i], edges[i+1]); the last
+    label holds from the last edge up (len(labels) == len(edges); edges[0] may be -inf)."""
     name: str
     source: str
     edges: tuple[float, ...]
@@ -221,6 +222,70 @@ class SimulationSpec:
 
 
 @dataclass(frozen=True)
+class ConditionSpec:
+    """One eligibility condition on a patient attribute (at entry). Exactly one test:
+    above (x > v), at_least (x >= v), below (x < v), at_most (x <= v), equals, one_of."""
+    attribute: str
+    test: Literal["above", "at_least", "below", "at_most", "equals", "one_of"]
+    value: float | str | bool | tuple
+
+
+@dataclass(frozen=True)
+class EligibilitySpec:
+    """Who a strategy can reach: all of `all` and, when given, at least one of `any`."""
+    all: tuple[ConditionSpec, ...] = ()
+    any: tuple[ConditionSpec, ...] = ()
+
+
+@dataclass(frozen=True)
+class ChangeSpec:
+    """What a strategy changes while a patient is on treatment.
+
+    `risk` (a transition or event name, or a from->to key) with `hazard_ratio`; or `state`
+    (None: every non-absorbing state) with `cost` added per time unit and/or
+    `utility` added per time unit."""
+    risk: str | None = None
+    hazard_ratio: Ref | None = None
+    state: str | None = None
+    cost: Ref = 0.0
+    utility: Ref = 0.0
+
+
+@dataclass(frozen=True)
+class StrategySpec:
+    name: str
+    label: str
+    comparator: bool = False
+    eligible: EligibilitySpec | None = None  # None: everyone
+    uptake: Ref = 1.0  # share of eligible patients who take the treatment up
+    start: float = 0.0  # time since start at which treatment begins
+    stop: float | None = None  # time since start at which it ends (None: never)
+    discontinuation: Ref = 0.0  # rate per time unit at which patients stop early
+    changes: tuple[ChangeSpec, ...] = ()
+    states: tuple[StateSpec, ...] = ()  # added states
+    transitions: tuple[TransitionSpec, ...] = ()  # added transitions
+    while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
+
+
+@dataclass(frozen=True)
+class EconomicsSpec:
+    threshold: float = 20000.0  # willingness to pay per QALY
+    thresholds: tuple[float, float, float] = (0.0, 100000.0, 1000.0)  # from, to, step
+    currency: str = "money units"
+    precision: float | None = None  # target 95% CI half-width of incremental NMB
+
+
+@dataclass(frozen=True)
+class UncertaintySpec:
+    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows."""
+    draws: int = 100
+    patients: int | None = None  # default: the population size
+    correlation_parameters: tuple[str, ...] = ()
+    correlation: tuple[tuple[float, ...], ...] = ()
+    dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()
+
+
+@dataclass(frozen=True)
 class Scenario:
     title: str
     description: str
@@ -235,12 +300,18 @@ class Scenario:
     outcomes: OutcomesSpec = OutcomesSpec()
     population: PopulationSpec | None = None
     simulation: SimulationSpec = SimulationSpec()
+    strategies: tuple[StrategySpec, ...] = ()  # the first with comparator = true compares
+    economics: EconomicsSpec = EconomicsSpec()
+    uncertainty: UncertaintySpec = UncertaintySpec()
     source: Path | None = None
     warnings: tuple[str, ...] = ()
 
     @property
     def state_names(self) -> tuple[str, ...]:
         return tuple(s.name for s in self.states)
+
+    def strategy(self, name: str) -> StrategySpec:
+        return next(s for s in self.strategies if s.name == name)
 
     @property
     def discrete(self) -> bool:

@@ -1,0 +1,79 @@
+"""Who a strategy treats, and when: eligibility, uptake and treatment windows per patient.
+
+Eligibility is structured data (conditions on attributes at entry), never evaluated code.
+Uptake and early discontinuation are draws of the patient's own streams: the uptake draw
+is shared by every strategy (purpose "uptake"), so a patient who takes up one treatment
+with 60% uptake also takes up another with 80% — common random numbers for who is treated
+as well as for what happens to them.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from microsim.binding import BoundModel
+from microsim.effects import Multipliers, Window, cohort_multipliers, multipliers
+from microsim.engines import streams
+from microsim.population import PATIENT
+from microsim.scenario.spec import ConditionSpec, EligibilitySpec
+
+UPTAKE_PURPOSE = "uptake"
+
+
+def condition_holds(condition: ConditionSpec, patients: pd.DataFrame) -> np.ndarray:
+    column = patients[condition.attribute]
+    value = condition.value
+    match condition.test:
+        case "above":
+            return (column > value).to_numpy()
+        case "at_least":
+            return (column >= value).to_numpy()
+        case "below":
+            return (column < value).to_numpy()
+        case "at_most":
+            return (column <= value).to_numpy()
+        case "equals":
+            return (column.astype(str) == str(value)).to_numpy() if not isinstance(value, bool) \
+                else (column == value).to_numpy()
+        case "one_of":
+            return column.astype(str).isin([str(v) for v in value]).to_numpy()
+    raise ValueError(f"unknown condition test {condition.test!r}")
+
+
+def eligible(spec: EligibilitySpec | None, patients: pd.DataFrame) -> np.ndarray:
+    """Patients who meet every `all` condition and, when `any` is given, one of those."""
+    ok = np.ones(len(patients), dtype=bool)
+    if spec is None:
+        return ok
+    for condition in spec.all:
+        ok &= condition_holds(condition, patients)
+    if spec.any:
+        ok &= np.logical_or.reduce([condition_holds(c, patients) for c in spec.any])
+    return ok
+
+
+def treatment_window(model: BoundModel, patients: pd.DataFrame, seed: int) -> Window | None:
+    """Each patient's time on treatment under the model's strategy: from the start time
+    to the stop time or an earlier discontinuation (exponential at the given rate), for
+    eligible patients whose uptake draw falls below the uptake share."""
+    t = model.treatment
+    if t is None:
+        return None
+    ids = patients[PATIENT].to_numpy()
+    treated = eligible(t.eligible, patients)
+    treated &= streams.uniforms(seed, ids, UPTAKE_PURPOSE) < t.uptake
+    off = np.full(len(ids), t.stop)
+    if t.discontinuation > 0:
+        u = streams.uniforms(seed, ids, f"discontinuation:{t.strategy}")
+        off = np.minimum(off, t.start - np.log(u) / t.discontinuation)
+    on = np.where(treated, t.start, np.inf)
+    return Window(on, np.where(treated, off, np.inf), t.on_factor, t.off_factor)
+
+
+def patient_multipliers(model: BoundModel, patients: pd.DataFrame, seed: int) -> Multipliers:
+    """Covariate multipliers for these patients, with the strategy's treatment windows."""
+    has_attributes = len(patients.columns) > 1
+    mult = multipliers(model, patients) if has_attributes else cohort_multipliers(model).repeated(len(patients))
+    window = treatment_window(model, patients, seed)
+    return mult if window is None else Multipliers(mult.log_static, mult.age_slope,
+                                                    mult.entry_age, window)

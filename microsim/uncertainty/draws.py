@@ -1,0 +1,131 @@
+"""Parameter draws for probabilistic sensitivity analysis (PSA): one row per draw.
+
+Draw d of parameter `name` reads the uniform `streams.uniforms(seed, d, "psa:" + name)`:
+the draw index sits in the patient-id slot of the counter-based streams (occurrence 0),
+and the "psa:" prefix keeps these purposes apart from every patient-level purpose. So a
+draw is a pure function of (seed, draw index): draw 17 is the same whether 20 or 2000
+draws are asked for, and fixing, adding or removing one parameter leaves the others'
+draws alone. Families and the Gaussian copula come from `microsim.distributions`.
+"""
+from __future__ import annotations
+
+from typing import Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..distributions import Dirichlet, Distribution, correlation_root, draw_parameters, make_distribution
+from ..engines import streams
+from ..scenario.errors import ScenarioError
+from ..scenario.spec import ParameterSpec
+
+Correlation = tuple[Sequence[str], object]
+"""Parameter names and their correlation matrix (rows and columns in that order)."""
+DirichletGroup = tuple[Sequence[str], Sequence[float]]
+"""Parameter names and one alpha each: component k of one Dirichlet draw goes to name k."""
+
+
+def purpose(name: str) -> str:
+    """The stream purpose of one parameter's PSA uniforms."""
+    return "psa:" + name
+
+
+def _distribution(spec: ParameterSpec) -> Distribution:
+    family, params = spec.distribution.family, dict(spec.distribution.params)
+    if family == "fixed":
+        params.setdefault("value", spec.value)
+    try:
+        return make_distribution(family, params)
+    except ValueError as error:
+        raise ScenarioError(f"parameters.{spec.name}.distribution", str(error)) from None
+
+
+def _known(names: Sequence[str], parameters: Mapping[str, ParameterSpec], path: str) -> list[str]:
+    names = [str(n) for n in names]
+    unknown = [n for n in names if n not in parameters]
+    if unknown:
+        raise ScenarioError(path, f"unknown parameter {unknown[0]!r}; known: {', '.join(parameters)}")
+    if len(set(names)) != len(names):
+        raise ScenarioError(path, "names a parameter twice; give each parameter once")
+    return names
+
+
+def _dirichlet_groups(parameters: Mapping[str, ParameterSpec],
+                      dirichlets: Sequence[DirichletGroup]) -> dict[str, tuple[list[str], Dirichlet]]:
+    """Checked groups keyed "dirichlets[i]": member names and their Dirichlet."""
+    groups: dict[str, tuple[list[str], Dirichlet]] = {}
+    grouped: set[str] = set()
+    for i, (names, alphas) in enumerate(dirichlets):
+        path = f"dirichlets[{i}]"
+        names = _known(names, parameters, path)
+        if grouped & set(names):
+            raise ScenarioError(path, f"{sorted(grouped & set(names))[0]!r} is already in an earlier group")
+        if len(alphas) != len(names):
+            raise ScenarioError(f"{path}.alphas", f"has {len(alphas)} alphas for {len(names)} "
+                                                  "parameters; give one alpha per parameter")
+        for name in names:
+            if parameters[name].distribution is not None:
+                raise ScenarioError(f"parameters.{name}.distribution", f"{name} is drawn by "
+                                    f"{path}; remove its own distribution")
+        try:
+            groups[path] = names, Dirichlet(tuple(alphas))
+        except ValueError as error:
+            raise ScenarioError(f"{path}.alphas", str(error)) from None
+        grouped |= set(names)
+    return groups
+
+
+def _copula_matrix(scalars: Sequence[str], correlation: Correlation | None,
+                   parameters: Mapping[str, ParameterSpec]) -> np.ndarray | None:
+    """The correlation over all scalar uncertain parameters: the given block, identity elsewhere."""
+    if correlation is None:
+        return None
+    names, matrix = correlation
+    names = _known(names, parameters, "correlation")
+    outside = [n for n in names if n not in scalars]
+    if outside:
+        raise ScenarioError("correlation", f"{outside[0]!r} has no distribution of its own "
+                                           "(or is in a dirichlet group); only such parameters can be correlated")
+    block = np.asarray(matrix, dtype=float)
+    if block.shape != (len(names), len(names)):
+        raise ScenarioError("correlation", f"must be {len(names)} x {len(names)} (one row per "
+                                           f"named parameter), got shape {block.shape}")
+    try:
+        correlation_root(block)
+    except ValueError as error:
+        raise ScenarioError("correlation", str(error)) from None
+    positions = [scalars.index(n) for n in names]
+    full = np.eye(len(scalars))
+    full[np.ix_(positions, positions)] = block
+    return full
+
+
+def parameter_draws(parameters: Mapping[str, ParameterSpec], seed: int, n_draws: int,
+                    correlation: Correlation | None = None,
+                    dirichlets: Sequence[DirichletGroup] = ()) -> pd.DataFrame:
+    """PSA draws, wide: column `draw` (0..n_draws-1), then one float column per parameter.
+
+    Parameters without a distribution keep their value in every draw. `correlation`
+    (names, matrix) correlates named parameters through a Gaussian copula, keeping each
+    marginal. Each Dirichlet group (names, alphas) fills its parameters from one
+    Dirichlet draw, component k from the uniforms of parameter k.
+    """
+    if isinstance(n_draws, bool) or not isinstance(n_draws, (int, np.integer)) or n_draws < 1:
+        raise ScenarioError("n_draws", f"must be a whole number >= 1, got {n_draws!r}")
+    if "draw" in parameters:
+        raise ScenarioError("parameters.draw", "'draw' names the draw column of PSA tables; rename the parameter")
+    groups = _dirichlet_groups(parameters, dirichlets)
+    uncertain: dict[str, Distribution] = {
+        name: _distribution(spec) for name, spec in parameters.items() if spec.distribution is not None}
+    matrix = _copula_matrix(list(uncertain), correlation, parameters)
+    columns = [*uncertain, *(name for names, _ in groups.values() for name in names)]
+    ids = np.arange(n_draws, dtype=np.uint64)
+    uniforms = np.empty((n_draws, len(columns)))
+    for j, name in enumerate(columns):
+        uniforms[:, j] = streams.uniforms(seed, ids, purpose(name))
+    drawn = draw_parameters({**uncertain, **{key: d for key, (_, d) in groups.items()}}, uniforms, matrix)
+    values = {name: np.full(n_draws, spec.value, dtype=float) for name, spec in parameters.items()}
+    values.update({name: drawn[name] for name in uncertain})
+    for key, (names, _) in groups.items():
+        values.update({name: drawn[key][:, k] for k, name in enumerate(names)})
+    return pd.DataFrame({"draw": np.arange(n_draws, dtype=np.int64), **values})

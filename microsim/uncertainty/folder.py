@@ -1,0 +1,77 @@
+"""The PSA run folder: one Parquet file per finished draw, the run's fingerprint, the total.
+
+    run_dir/psa.json                 fingerprint + hash of the parameter draws (written first)
+    run_dir/draws/draw-000017.parquet  results of draw 17 (appears only when complete)
+    run_dir/psa_draws.parquet        every draw's results, in draw order (written last)
+
+Every file is written to a temporary name beside its target and moved into place with
+os.replace, so a file that exists is complete and an interrupted run can resume from
+whatever it finds.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Callable, Iterable
+
+import numpy as np
+import pandas as pd
+
+from ..scenario.errors import ScenarioError
+
+RECORD = "psa.json"
+RESULTS = "psa_draws.parquet"
+DRAWS = "draws"
+
+
+def write_atomically(target: Path, write: Callable[[Path], None]) -> None:
+    """Let `write` fill a temporary file beside `target`, then rename it into place."""
+    handle, temporary = tempfile.mkstemp(prefix=f".{target.name}-", suffix=".tmp", dir=target.parent)
+    os.close(handle)
+    try:
+        write(Path(temporary))
+        os.replace(temporary, target)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def write_table(table: pd.DataFrame, target: Path) -> None:
+    write_atomically(target, lambda path: table.to_parquet(path, index=False))
+
+
+def draws_hash(draws: pd.DataFrame) -> str:
+    """SHA-256 of the parameter draws (names and float64 values, in draw order)."""
+    ordered = draws.sort_values("draw", kind="stable")
+    digest = hashlib.sha256(json.dumps(list(map(str, ordered.columns))).encode())
+    digest.update(np.ascontiguousarray(ordered.to_numpy(dtype="<f8")).tobytes())
+    return digest.hexdigest()
+
+
+def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> None:
+    """Write psa.json, or refuse a folder whose psa.json describes a different run."""
+    record = json.loads(json.dumps({"fingerprint": fingerprint, "parameter_draws_sha256": draws_hash(draws)}))
+    path = run_dir / RECORD
+    if path.exists():
+        if json.loads(path.read_text()) != record:
+            raise ScenarioError("psa", f"{run_dir} was written by a different run; use a new "
+                                       "output folder or remove it")
+    else:
+        run_dir.mkdir(parents=True, exist_ok=True)
+        write_atomically(path, lambda p: p.write_text(json.dumps(record, indent=2) + "\n"))
+    (run_dir / DRAWS).mkdir(exist_ok=True)
+    for leftover in (run_dir / DRAWS).glob(".*.tmp"):  # from a run killed mid-write
+        leftover.unlink(missing_ok=True)
+
+
+def draw_path(run_dir: Path, draw: int) -> Path:
+    return run_dir / DRAWS / f"draw-{draw:06d}.parquet"
+
+
+def read_draws(run_dir: Path, draws: Iterable[int]) -> pd.DataFrame:
+    """All the given draws' results, sorted by draw, rows within a draw as evaluated."""
+    tables = [pd.read_parquet(draw_path(run_dir, d)) for d in sorted(draws)]
+    return pd.concat(tables, ignore_index=True)

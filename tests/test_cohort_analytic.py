@@ -1,0 +1,565 @@
+"""The analytic counterpart of a bound model (`microsim.cohort.analytic`) against outside
+references: numpy matrix powers, scipy's matrix exponential and quadrature, closed forms
+of survival and discounted life expectancy, and hand-written expanded chains."""
+import math
+
+import numpy as np
+import pytest
+from numpy.linalg import matrix_power
+from scipy import integrate
+from scipy.linalg import expm
+
+from microsim.binding import bind
+from microsim.cohort.analytic import analytic
+from microsim.effects import Multipliers
+from microsim.markov import cohort_trace, counter_expansion, tunnel_expansion
+from microsim.outcomes import outcome_values
+from microsim.population import draw_population
+from microsim.scenario.reader import parse_scenario
+
+HEADER = """
+title = "test model"
+provenance = "invented for a test"
+"""
+
+
+def model_of(body: str):
+    return bind(parse_scenario(HEADER + body))
+
+
+def hand_recursion(start, matrix, n):
+    """pi_n = pi_0 P^n, one numpy.linalg.matrix_power per cycle (Chapman-Kolmogorov)."""
+    return np.array([np.asarray(start) @ matrix_power(matrix, k) for k in range(n + 1)])
+
+
+# ------------------------------------------------------------------ homogeneous cycle model
+
+CYCLE_MODEL = """
+[time]
+unit = "years"
+cycle = 1
+horizon = 20
+[start]
+shares = { well = 0.8, sick = 0.2 }
+[outcomes]
+discount_costs = 0.05
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "sick"
+utility = 0.6
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+probability = 0.1
+cost = 500
+[[transitions]]
+from = "well"
+to = "dead"
+probability = 0.02
+[[transitions]]
+from = "well"
+to = "well"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "well"
+probability = 0.05
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = 0.2
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+"""
+CYCLE_P = np.array([[0.88, 0.10, 0.02], [0.05, 0.75, 0.20], [0.0, 0.0, 1.0]])
+CYCLE_START = np.array([0.8, 0.2, 0.0])
+
+
+def test_cycle_trace_equals_cohort_trace_and_matrix_powers():
+    model = model_of(CYCLE_MODEL)
+    result = analytic(model)
+    assert result.exact and result.trace.shape == (1, 21, 3)
+    # reference: the project's closed-form chain and numpy.linalg.matrix_power
+    np.testing.assert_allclose(result.trace[0], cohort_trace(CYCLE_START, CYCLE_P, 20),
+                               rtol=0, atol=1e-12)
+    np.testing.assert_allclose(result.trace[0], hand_recursion(CYCLE_START, CYCLE_P, 20),
+                               rtol=0, atol=1e-12)
+
+
+def test_cycle_occurrences_counted_at_cycle_end_with_discount():
+    # expected moves well->sick in cycle k: pi_k[well] * P[well, sick]; one-off costs at the
+    # end of the cycle, discounted (1 + d)^-(k + 1) (common practice)
+    model = model_of(CYCLE_MODEL)
+    result = analytic(model)
+    trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
+    moves = trace[:-1, 0] * 0.1
+    r = model.risk_names.index("well->sick")
+    np.testing.assert_allclose(result.occurrences[0, r, 0], moves.sum(), rtol=1e-12)
+    discounted = moves @ 1.05 ** -np.arange(1.0, 21.0)
+    np.testing.assert_allclose(result.occurrences[0, r, 1], discounted, rtol=1e-12)
+    costs = outcome_values(model, result.occupancy, result.occurrences)["costs_discounted"]
+    np.testing.assert_allclose(costs[0], 500 * discounted, rtol=1e-12)
+
+
+def test_cycle_occupancy_half_cycle_rule():
+    # the scenario format's half-cycle rule: cycle * (pi_0 / 2 + pi_1 + ... + pi_{n-1})
+    # (docs/scenario-format.md; Sonnenberg & Beck 1993, from memory)
+    result = analytic(model_of(CYCLE_MODEL))
+    trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
+    expected = trace[0] / 2 + trace[1:-1].sum(axis=0)
+    np.testing.assert_allclose(result.occupancy[0, :, 0], expected, rtol=1e-12)
+
+
+# ------------------------------------------------------------------- homogeneous rate model
+
+RATE_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 0.7, sick = 0.3 }
+[outcomes]
+discount_effects = 0.035
+[[states]]
+name = "well"
+utility = 0.9
+[[states]]
+name = "sick"
+utility = 0.5
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.15
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.03
+[[transitions]]
+from = "sick"
+to = "well"
+rate = 0.1
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.25
+[[events]]
+name = "flare"
+states = ["sick"]
+rate = 0.4
+"""
+RATE_Q = np.array([[-0.18, 0.15, 0.03], [0.1, -0.35, 0.25], [0.0, 0.0, 0.0]])
+RATE_START = np.array([0.7, 0.3, 0.0])
+
+
+def test_rate_trace_equals_matrix_exponential():
+    model = model_of(RATE_MODEL)
+    times = np.linspace(0.0, 10.0, 41)
+    result = analytic(model, times=times)
+    assert result.exact and "exponential" in result.method
+    # reference: scipy.linalg.expm, pi(t) = pi(0) exp(Q t)
+    expected = np.array([RATE_START @ expm(RATE_Q * t) for t in times])
+    np.testing.assert_allclose(result.trace[0], expected, rtol=0, atol=1e-9)
+
+
+def test_rate_occupancy_and_event_counts_equal_quadrature():
+    # reference: scipy.integrate.quad_vec of pi(0) exp(Q s) e^{-delta s}, delta = ln(1.035)
+    model = model_of(RATE_MODEL)
+    result = analytic(model)
+    delta = math.log(1.035)
+    undiscounted = integrate.quad_vec(lambda s: RATE_START @ expm(RATE_Q * s), 0, 10,
+                                      epsabs=1e-13)[0]
+    discounted = integrate.quad_vec(lambda s: RATE_START @ expm(RATE_Q * s) * math.exp(-delta * s),
+                                    0, 10, epsabs=1e-13)[0]
+    np.testing.assert_allclose(result.occupancy[0, :, 0], undiscounted, rtol=1e-9)
+    np.testing.assert_allclose(result.occupancy[0, :, 2], discounted, rtol=1e-9)
+    names = [r.name for r in model.risks]
+    # expected occurrences = integral of pi_i(s) q_ij ds
+    np.testing.assert_allclose(result.occurrences[0, names.index("flare"), 0],
+                               0.4 * undiscounted[1], rtol=1e-9)
+    np.testing.assert_allclose(result.occurrences[0, names.index("sick->dead"), 2],
+                               0.25 * discounted[1], rtol=1e-9)
+
+
+SURVIVAL_MODEL = """
+[time]
+unit = "years"
+horizon = 30
+[start]
+shares = { alive = 1 }
+[outcomes]
+discount_costs = 0.05
+discount_effects = 0.035
+[[states]]
+name = "alive"
+utility = 0.85
+cost = 1000
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "alive"
+to = "dead"
+rate = 0.08
+"""
+
+
+def discounted_life(mu, d, horizon):
+    """integral_0^T e^{-mu t} e^{-delta t} dt = (1 - e^{-(mu+delta) T}) / (mu + delta),
+    delta = ln(1 + d): standard continuous discounting (common practice)."""
+    k = mu + math.log1p(d)
+    return (1 - math.exp(-k * horizon)) / k
+
+
+@pytest.mark.parametrize("batch", [1, 2])  # 2 identical rows take the forward-equation path
+def test_discounted_qalys_closed_form(batch):
+    model = model_of(SURVIVAL_MODEL)
+    mult = Multipliers(np.zeros((batch, 1)), np.zeros(1), None)
+    result = analytic(model, mult=mult)
+    values = outcome_values(model, result.occupancy, result.occurrences)
+    tol = 1e-12 if batch == 1 else 1e-8
+    for b in range(batch):
+        np.testing.assert_allclose(values["qalys_discounted"][b],
+                                   0.85 * discounted_life(0.08, 0.035, 30), rtol=tol)
+        np.testing.assert_allclose(values["qalys"][b], 0.85 * discounted_life(0.08, 0.0, 30),
+                                   rtol=tol)
+        np.testing.assert_allclose(values["costs_discounted"][b],
+                                   1000 * discounted_life(0.08, 0.05, 30), rtol=tol)
+        np.testing.assert_allclose(values["life_years"][b], discounted_life(0.08, 0.0, 30),
+                                   rtol=tol)
+
+
+# ------------------------------------------------ time-varying hazards from time 0 (Markov)
+
+def varying_model(hazard: str, clock: str) -> str:
+    return f"""
+[time]
+unit = "years"
+horizon = 12
+[start]
+shares = {{ first = 1 }}
+[[states]]
+name = "first"
+[[states]]
+name = "second"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "first"
+to = "second"
+hazard = {hazard}
+clock = "{clock}"
+[[transitions]]
+from = "first"
+to = "dead"
+rate = 0.05
+[[transitions]]
+from = "second"
+to = "dead"
+rate = 0.1
+"""
+
+
+WEIBULL = ('{ family = "weibull", shape = 1.7, scale = 4 }',
+           lambda t: (t / 4.0) ** 1.7, lambda t: 1.7 / 4.0 * (t / 4.0) ** 0.7)
+GOMPERTZ = ('{ family = "gompertz", rate = 0.05, shape = 0.2 }',
+            lambda t: 0.05 * math.expm1(0.2 * t) / 0.2, lambda t: 0.05 * math.exp(0.2 * t))
+
+
+@pytest.mark.parametrize("clock", ["since_start", "since_entry"])
+@pytest.mark.parametrize("family", [WEIBULL, GOMPERTZ], ids=["weibull", "gompertz"])
+def test_parametric_hazard_from_time_zero_matches_survival(family, clock):
+    # 'first' is occupied only from time 0, so time since entry is time since start and the
+    # model is Markov; survival in 'first' is exp(-H(t) - mu t) (competing risks, common
+    # practice); 'second' is the convolution integral_0^t S1(s) h(s) e^{-0.1 (t - s)} ds
+    text, cumulative, hazard = family
+    model = model_of(varying_model(text, clock))
+    times = np.linspace(0.0, 12.0, 25)
+    result = analytic(model, times=times)
+    assert result.exact and "forward equations" in result.method
+    survival = np.array([math.exp(-cumulative(t) - 0.05 * t) for t in times])
+    np.testing.assert_allclose(result.trace[0, :, 0], survival, rtol=0, atol=1e-7)
+    second = [integrate.quad(lambda s: math.exp(-cumulative(s) - 0.05 * s) * hazard(s)
+                             * math.exp(-0.1 * (t - s)), 0, t, epsabs=1e-12)[0] for t in times]
+    np.testing.assert_allclose(result.trace[0, :, 1], second, rtol=0, atol=1e-7)
+
+
+# ---------------------------------------------------------- tunnel states (time in state)
+
+TUNNEL_MODEL = """
+[time]
+unit = "years"
+cycle = 1
+horizon = 25
+[start]
+shares = { healthy = 1 }
+[[states]]
+name = "healthy"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "healthy"
+to = "sick"
+probability = 0.08
+[[transitions]]
+from = "healthy"
+to = "dead"
+probability = 0.02
+[[transitions]]
+from = "healthy"
+to = "healthy"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = "die_by_stay"
+[[transitions]]
+from = "sick"
+to = "healthy"
+probability = "recover_by_stay"
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+[tables.die_by_stay]
+by = "time_in_state"
+starts = [0, 1, 2]
+values = [0.2, 0.1, 0.05]
+[tables.recover_by_stay]
+by = "time_in_state"
+starts = [0, 1, 2]
+values = [0.0, 0.1, 0.2]
+"""
+DIE = np.array([0.20, 0.10, 0.05])  # in the 1st, 2nd, 3rd+ cycle of a stay
+RECOVER = np.array([0.00, 0.10, 0.20])
+
+
+def tunnel_recursion(n_cycles):
+    """Hand recursion that follows the sick by the cycle of their stay (1, 2, 3+)."""
+    healthy, sick, dead = 1.0, np.zeros(3), 0.0
+    rows = [(healthy, sick.sum(), dead)]
+    for _ in range(n_cycles):
+        stay = sick * (1 - DIE - RECOVER)
+        healthy, sick, dead = (healthy * 0.90 + sick @ RECOVER,
+                               np.array([healthy * 0.08, stay[0], stay[1] + stay[2]]),
+                               dead + healthy * 0.02 + sick @ DIE)
+        rows.append((healthy, sick.sum(), dead))
+    return np.array(rows)
+
+
+def test_tunnel_table_matches_recursion_and_tunnel_expansion():
+    result = analytic(model_of(TUNNEL_MODEL))
+    assert result.exact and "expanded" in result.method
+    np.testing.assert_allclose(result.trace[0], tunnel_recursion(25), rtol=0, atol=1e-12)
+    base = np.array([[0.90, 0.08, 0.02], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    chain = tunnel_expansion(base, {1: np.column_stack([RECOVER, 1 - DIE - RECOVER, DIE])})
+    reference = chain.collapse(cohort_trace(chain.expand_start([1, 0, 0]), chain.matrices, 25))
+    np.testing.assert_allclose(result.trace[0], reference, rtol=0, atol=1e-12)
+
+
+# ---------------------------------------------------------------------- count memory
+
+def count_model(kind: str) -> str:
+    """well -> sick whose hazard is multiplied by 1, 1.5, 2 after 0, 1, 2+ earlier flares."""
+    value = "probability" if kind == "cycle" else "rate"
+    stay = ('[[transitions]]\nfrom = "well"\nto = "well"\nprobability = "remainder"\n'
+            '[[transitions]]\nfrom = "sick"\nto = "sick"\nprobability = "remainder"\n'
+            if kind == "cycle" else "")
+    return f"""
+[time]
+unit = "years"
+cycle = 1
+horizon = 15
+[start]
+shares = {{ well = 1 }}
+[[states]]
+name = "well"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+{value} = 0.1
+  [[transitions.memory]]
+  after = "flare"
+  multipliers = [1, 1.5, 2]
+[[transitions]]
+from = "well"
+to = "dead"
+{value} = 0.02
+[[transitions]]
+from = "sick"
+to = "dead"
+{value} = 0.2
+{stay}
+[[events]]
+name = "flare"
+states = ["well"]
+{value} = 0.3
+"""
+
+
+MULTIPLIERS = (1.0, 1.5, 2.0)
+
+
+def hand_count_chain():
+    """Expanded per-cycle matrix over (state, flares 0/1/2+) built by hand: the move uses the
+    count at the start of the cycle, on the rate scale p' = 1 - (1 - p)^m (Fleurence &
+    Hollenbeak 2007, from memory); the flare happens independently with probability 0.3 and
+    adds one (capped at 2) whatever the move. Order: well0..2, sick0..2, dead."""
+    P = np.zeros((7, 7))
+    flare = 0.3
+    for c, m in enumerate(MULTIPLIERS):
+        up = min(c + 1, 2)
+        p_sick = 1 - (1 - 0.1) ** m
+        moves = {c: 1 - p_sick - 0.02, 3 + c: p_sick, 6: 0.02}  # same count, no flare
+        for target, p in moves.items():
+            P[c, target] += p * (1 - flare)
+            shifted = 6 if target == 6 else target - c + up
+            P[c, shifted] += p * flare
+        P[3 + c, 3 + c], P[3 + c, 6] = 0.8, 0.2
+    P[6, 6] = 1.0
+    collapse = np.zeros((7, 3))
+    collapse[0:3, 0] = collapse[3:6, 1] = collapse[6, 2] = 1
+    return P, collapse
+
+
+def test_cycle_count_memory_matches_hand_built_chain():
+    result = analytic(model_of(count_model("cycle")))
+    assert result.exact and "expanded" in result.method
+    P, collapse = hand_count_chain()
+    start = np.eye(7)[0]
+    np.testing.assert_allclose(result.trace[0], hand_recursion(start, P, 15) @ collapse,
+                               rtol=0, atol=1e-12)
+
+
+def test_cycle_count_memory_expected_flares():
+    # expected flares = sum over cycles of the share in 'well' times 0.3 (hand chain)
+    model = model_of(count_model("cycle"))
+    result = analytic(model)
+    P, collapse = hand_count_chain()
+    trace = hand_recursion(np.eye(7)[0], P, 15) @ collapse
+    flare = [r.name for r in model.risks].index("flare")
+    np.testing.assert_allclose(result.occurrences[0, flare, 0], 0.3 * trace[:-1, 0].sum(),
+                               rtol=1e-12)
+
+
+def test_rate_count_memory_matches_counter_expansion():
+    # reference: microsim.markov.counter_expansion of a hand-written generator per count,
+    # then scipy.linalg.expm
+    model = model_of(count_model("rate"))
+    times = np.linspace(0, 15, 16)
+    result = analytic(model, times=times)
+    assert result.exact and "expanded" in result.method
+    plain = np.zeros((3, 3, 3))
+    counting = np.zeros((3, 3, 3))
+    for c, m in enumerate(MULTIPLIERS):
+        plain[c, 0, 1], plain[c, 0, 2], plain[c, 1, 2] = 0.1 * m, 0.02, 0.2
+        counting[c, 0, 0] = 0.3  # the flare leaves the state unchanged and counts
+        plain[c, 0, 0] = -(0.1 * m + 0.02 + 0.3)
+        plain[c, 1, 1] = -0.2
+    chain = counter_expansion(plain, counting, generator=True)
+    start = chain.expand_start([1, 0, 0])
+    expected = chain.collapse(np.array([start @ expm(chain.matrices * t) for t in times]))
+    np.testing.assert_allclose(result.trace[0], expected, rtol=0, atol=1e-9)
+
+
+# ---------------------------------------------------------------- covariate effects
+
+COVARIATE_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 1 }
+[[states]]
+name = "well"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.1
+  [[transitions.effects]]
+  attribute = "smoker"
+  hazard_ratio = 2.5
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.02
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.3
+  [[transitions.effects]]
+  attribute = "smoker"
+  hazard_ratio = 1.5
+[population]
+size = 40
+[[population.attributes]]
+name = "smoker"
+distribution = "yesno"
+prevalence = 0.4
+"""
+
+
+def test_yes_no_hazard_ratio_per_patient_matches_expm():
+    # proportional hazards (Cox 1972): exposed patients' rates are multiplied by the HR;
+    # reference: scipy.linalg.expm of each patient's own generator
+    model = model_of(COVARIATE_MODEL)
+    people = draw_population(model.scenario.population, 11)
+    assert 0 < people.smoker.sum() < len(people)
+    times = np.linspace(0, 10, 11)
+    result = analytic(model, patients=people, times=times)
+    assert result.trace.shape == (40, 11, 3)
+    for b, smoker in enumerate(people.smoker):
+        hr_sick, hr_dead = (2.5, 1.5) if smoker else (1.0, 1.0)
+        Q = np.array([[-(0.1 * hr_sick + 0.02), 0.1 * hr_sick, 0.02],
+                      [0.0, -0.3 * hr_dead, 0.3 * hr_dead], [0.0, 0.0, 0.0]])
+        expected = np.array([[1.0, 0.0, 0.0] @ expm(Q * t) for t in times])
+        np.testing.assert_allclose(result.trace[b], expected, rtol=0, atol=1e-8)
+
+
+def test_continuous_attribute_on_probability_rate_scale():
+    # a per-cycle probability p with an effect HR^(x - centre) becomes
+    # 1 - (1 - p)^(HR^(x - centre)) (Fleurence & Hollenbeak 2007, from memory)
+    text = CYCLE_MODEL.replace(
+        'probability = 0.1\ncost = 500',
+        'probability = 0.1\ncost = 500\n  [[transitions.effects]]\n  attribute = "marker"\n'
+        '  hazard_ratio = 1.8\n  centre = 1.0') + """
+[population]
+size = 5
+[[population.attributes]]
+name = "marker"
+distribution = "uniform"
+lower = 0
+upper = 3
+"""
+    model = model_of(text)
+    people = draw_population(model.scenario.population, 3)
+    result = analytic(model, patients=people)
+    for b, x in enumerate(people.marker):
+        p = 1 - 0.9 ** (1.8 ** (x - 1.0))
+        P = CYCLE_P.copy()
+        P[0] = [1 - p - 0.02, p, 0.02]
+        np.testing.assert_allclose(result.trace[b], hand_recursion(CYCLE_START, P, 20),
+                                   rtol=0, atol=1e-12)

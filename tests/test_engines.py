@@ -1,0 +1,550 @@
+"""The engines against the analytic side and reference distributions, within Monte-Carlo
+error: fixed seeds, |z| < 4 with standard errors from the binomial, the Poisson-binomial
+or the sample standard deviation (common practice), Kolmogorov-Smirnov tests at level
+0.001 against scipy.stats distributions (reference library)."""
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.linalg import expm
+
+from microsim.binding import bind
+from microsim.cohort.analytic import analytic
+from microsim.compare import compare, critical_z, trace_table
+from microsim.effects import Multipliers
+from microsim.engines.events import simulate_events
+from microsim.population import draw_population
+from microsim.scenario.reader import parse_scenario
+from microsim.simulate import cohort_patients, simulate
+
+Z = 4.0
+KS_LEVEL = 0.001  # a correct sampler fails a KS test at this level once in 1000 seeds
+
+HEADER = """
+title = "test model"
+provenance = "invented for a test"
+"""
+
+
+def model_of(body: str):
+    return bind(parse_scenario(HEADER + body))
+
+
+def same_multipliers(n: int, risks: int, log_hr: float = 0.0) -> Multipliers:
+    """Every patient with the same log multiplier on every risk, no age."""
+    return Multipliers(np.full((n, risks), log_hr), np.zeros(risks), None)
+
+
+def shares(sim) -> np.ndarray:
+    """(T, S) simulated share of patients in each state at each grid time."""
+    return np.stack([(sim.states == s).mean(axis=0) for s in range(sim.model.n_states)], axis=1)
+
+
+def assert_mean_agrees(values: np.ndarray, expected: float):
+    """|mean - expected| < Z sample standard errors (central limit theorem)."""
+    se = values.std(ddof=1) / math.sqrt(len(values))
+    assert abs(values.mean() - expected) < Z * se, (values.mean(), expected, se)
+
+
+# ------------------------------------------------- continuous engine, constant rates
+
+RATE_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 0.7, sick = 0.3 }
+[outcomes]
+discount_costs = 0.05
+[[states]]
+name = "well"
+[[states]]
+name = "sick"
+cost = 100
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.15
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.03
+[[transitions]]
+from = "sick"
+to = "well"
+rate = 0.1
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.25
+[[events]]
+name = "flare"
+states = ["sick"]
+rate = 0.8
+"""
+RATE_Q = np.array([[-0.18, 0.15, 0.03], [0.1, -0.35, 0.25], [0.0, 0.0, 0.0]])
+RATE_START = np.array([0.7, 0.3, 0.0])
+GRID = np.linspace(0.0, 10.0, 11)
+
+
+@pytest.fixture(scope="module")
+def rate_run():
+    model = model_of(RATE_MODEL)
+    return model, simulate(model, cohort_patients(20_000), 101, grid=GRID)
+
+
+def test_event_engine_shares_match_matrix_exponential(rate_run):
+    model, sim = rate_run
+    # reference: scipy.linalg.expm; binomial standard error sqrt(p (1 - p) / N)
+    p = np.array([RATE_START @ expm(RATE_Q * t) for t in GRID])
+    se = np.sqrt(p * (1 - p) / sim.size)
+    observed = shares(sim)
+    inside = se > 0
+    assert np.all(np.abs(observed - p)[inside] < Z * se[inside])
+    assert np.array_equal(observed[~inside], p[~inside])  # time 0 and the empty dead state
+
+
+def test_event_engine_time_in_state_and_counts_match_analytic(rate_run):
+    model, sim = rate_run
+    expected = analytic(model, times=GRID)
+    for s in range(model.n_states):
+        for w in (0, 1):  # undiscounted and discounted at the cost rate
+            assert_mean_agrees(sim.occupancy[:, s, w], expected.occupancy[0, s, w])
+    for r in range(len(model.risks)):  # transitions and flares: counts per patient
+        for w in (0, 1):
+            assert_mean_agrees(sim.occurrences[:, r, w], expected.occurrences[0, r, w])
+
+
+# ------------------------------------------------------ sojourn times of parametric hazards
+
+def two_state(hazard: str, horizon: float) -> str:
+    return f"""
+[time]
+unit = "years"
+horizon = {horizon}
+[start]
+shares = {{ alive = 1 }}
+[[states]]
+name = "alive"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "alive"
+to = "dead"
+hazard = {hazard}
+"""
+
+
+# scipy's parameterisations (reference library): weibull_min S = exp(-(t/scale)^c);
+# gompertz with c = rate/shape, scale = 1/shape has hazard rate e^{shape t};
+# fisk (log-logistic) S = 1 / (1 + (t/scale)^c)
+SOJOURNS = [
+    ("weibull", '{ family = "weibull", shape = 1.5, scale = 8 }', 0.0,
+     stats.weibull_min(1.5, scale=8)),
+    ("weibull-falling", '{ family = "weibull", shape = 0.7, scale = 8 }', 0.0,
+     stats.weibull_min(0.7, scale=8)),
+    ("weibull-hr", '{ family = "weibull", shape = 1.5, scale = 8 }', math.log(3.0),
+     stats.weibull_min(1.5, scale=8 * 3.0 ** (-1 / 1.5))),
+    ("gompertz", '{ family = "gompertz", rate = 0.02, shape = 0.15 }', 0.0,
+     stats.gompertz(0.02 / 0.15, scale=1 / 0.15)),
+    ("loglogistic", '{ family = "loglogistic", shape = 2.5, scale = 6 }', 0.0,
+     stats.fisk(2.5, scale=6)),
+]
+
+
+@pytest.mark.parametrize("seed, case", list(enumerate(SOJOURNS)), ids=[c[0] for c in SOJOURNS])
+def test_death_times_follow_the_hazard_family(seed, case):
+    _, hazard, log_hr, reference = case
+    horizon, n = 40.0, 5000
+    model = model_of(two_state(hazard, horizon))
+    h = simulate_events(model, same_multipliers(n, 1, log_hr), np.arange(n), seed)
+    deaths = h.time[h.risk >= 0]
+    # deaths before the horizon: binomial count, and the truncated distribution F(t) / F(T)
+    died = reference.cdf(horizon)
+    assert abs(len(deaths) - n * died) < Z * math.sqrt(n * died * (1 - died)) + 1e-9
+    result = stats.kstest(deaths, lambda t: reference.cdf(t) / died)
+    assert result.pvalue > KS_LEVEL, result
+
+
+def test_sojourns_in_a_reentered_state_restart_the_entry_clock():
+    # 'ill' is entered again and again; its exit is Weibull on the time since entry, with a
+    # competing constant death: each stay lasts min(Weibull, exponential), survival
+    # exp(-(t/2)^1.5 - 0.1 t) (independent competing risks, common practice)
+    model = model_of("""
+[time]
+unit = "years"
+horizon = 60
+[start]
+shares = { well = 1 }
+[[states]]
+name = "well"
+[[states]]
+name = "ill"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "ill"
+rate = 0.5
+[[transitions]]
+from = "ill"
+to = "well"
+hazard = { family = "weibull", shape = 1.5, scale = 2 }
+[[transitions]]
+from = "ill"
+to = "dead"
+rate = 0.1
+""")
+    n = 1500
+    h = simulate_events(model, same_multipliers(n, 3), np.arange(n), 17)
+    ill = model.states.index("ill")
+    entries = np.flatnonzero((h.target == ill) & (h.source != ill))
+    following = np.minimum(entries + 1, len(h.time) - 1)  # the next record ends the stay
+    ended = (entries + 1 < len(h.time)) & (h.patient[following] == h.patient[entries])
+    began = h.time[entries]
+    # a stay longer than 20 years has probability exp(-(10)^1.5 - 2) < 1e-14, so every stay
+    # that began before year 40 ended before the horizon: no censoring among them
+    assert np.all(ended[began < 40.0])
+    durations = (h.time[following] - began)[ended & (began < 40.0)]
+    assert len(durations) > 2000
+
+    def cdf(t):
+        return 1 - np.exp(-(t / 2) ** 1.5 - 0.1 * t)
+
+    result = stats.kstest(durations, cdf)
+    assert result.pvalue > KS_LEVEL, result
+
+
+# -------------------------------------------------------------- heterogeneous population
+
+HETEROGENEOUS = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 1 }
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "sick"
+utility = 0.5
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.1
+  [[transitions.effects]]
+  attribute = "risk_factor"
+  hazard_ratio = 2
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.01
+  [[transitions.effects]]
+  attribute = "age"
+  hazard_ratio = 1.08
+  centre = 60
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.15
+  [[transitions.effects]]
+  attribute = "age"
+  hazard_ratio = 1.08
+  centre = 60
+[population]
+size = 2000
+[[population.attributes]]
+name = "risk_factor"
+distribution = "yesno"
+prevalence = 0.3
+[[population.attributes]]
+name = "age"
+distribution = "normal"
+mean = 60
+sd = 8
+"""
+
+
+def test_heterogeneous_population_matches_average_of_patient_traces():
+    model = model_of(HETEROGENEOUS)
+    people = draw_population(model.scenario.population, 3)
+    grid = np.linspace(0.0, 10.0, 6)
+    sim = simulate(model, people, 4, grid=grid)
+    p = analytic(model, patients=people, times=grid).trace  # (N, T, S)
+    # patients are independent Bernoulli trials with their own p: the share's standard
+    # error is sqrt(sum p (1 - p)) / N (Poisson-binomial variance, common practice)
+    se = np.sqrt((p * (1 - p)).sum(axis=0)) / len(people)
+    observed, expected = shares(sim), p.mean(axis=0)
+    inside = se > 0
+    assert np.all(np.abs(observed - expected)[inside] < Z * se[inside])
+    verdict = compare(sim)
+    assert verdict.agrees is True, verdict.verdict
+
+
+STRONG_HR = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { alive = 1 }
+[[states]]
+name = "alive"
+utility = 1
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "alive"
+to = "dead"
+rate = 0.2
+  [[transitions.effects]]
+  attribute = "risk_factor"
+  hazard_ratio = 5
+[population]
+size = 2000
+[[population.attributes]]
+name = "risk_factor"
+distribution = "yesno"
+prevalence = 0.5
+"""
+
+
+def test_average_patient_misrepresents_a_strongly_heterogeneous_population():
+    model = model_of(STRONG_HR)
+    people = draw_population(model.scenario.population, 5)
+    sim = simulate(model, people, 6)
+    result = compare(sim)
+    assert result.agrees is True, result.verdict
+    row = result.average_patient.set_index("measure").loc["life_years"]
+    # the average patient has the mean log hazard ratio: rate 0.2 * 5^share, and expected
+    # life years (1 - e^{-10 r}) / r (closed form, common practice)
+    rate = 0.2 * 5.0 ** people.risk_factor.mean()
+    assert row.average_patient == pytest.approx((1 - math.exp(-10 * rate)) / rate, rel=1e-9)
+    # Jensen's inequality: the population lives longer than its average patient, by far
+    assert row.z < -result.critical
+    assert "misrepresents" in result.average_verdict
+
+
+# ---------------------------------------------------------------------- cycle engine
+
+CYCLE_MODEL = """
+[time]
+unit = "years"
+cycle = 1
+horizon = 12
+[start]
+shares = { well = 0.8, sick = 0.2 }
+[outcomes]
+discount_effects = 0.035
+[[states]]
+name = "well"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+probability = 0.1
+[[transitions]]
+from = "well"
+to = "dead"
+probability = 0.02
+[[transitions]]
+from = "well"
+to = "well"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "well"
+probability = 0.05
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = 0.2
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+"""
+
+TUNNEL = """
+[time]
+unit = "years"
+cycle = 1
+horizon = 12
+[start]
+shares = { healthy = 1 }
+[[states]]
+name = "healthy"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "healthy"
+to = "sick"
+probability = 0.15
+[[transitions]]
+from = "healthy"
+to = "dead"
+probability = 0.02
+[[transitions]]
+from = "healthy"
+to = "healthy"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = "die_by_stay"
+[[transitions]]
+from = "sick"
+to = "healthy"
+probability = "recover_by_stay"
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+[tables.die_by_stay]
+by = "time_in_state"
+starts = [0, 1, 2]
+values = [0.2, 0.1, 0.05]
+[tables.recover_by_stay]
+by = "time_in_state"
+starts = [0, 1, 2]
+values = [0.0, 0.1, 0.3]
+"""
+
+COUNTS = """
+[time]
+unit = "years"
+cycle = 1
+horizon = 12
+[start]
+shares = { well = 1 }
+[[states]]
+name = "well"
+[[states]]
+name = "sick"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+probability = 0.1
+  [[transitions.memory]]
+  after = "flare"
+  multipliers = [1, 1.5, 2]
+[[transitions]]
+from = "well"
+to = "dead"
+probability = 0.02
+[[transitions]]
+from = "well"
+to = "well"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = 0.2
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+[[events]]
+name = "flare"
+states = ["well"]
+probability = 0.3
+"""
+
+
+@pytest.mark.parametrize("text", [CYCLE_MODEL, TUNNEL, COUNTS],
+                         ids=["homogeneous", "tunnel", "count-memory"])
+def test_cycle_engine_matches_expanded_chain(text):
+    # the analytic side here is the expanded chain checked against hand-written chains in
+    # test_cohort_analytic.py
+    model = model_of(text)
+    sim = simulate(model, cohort_patients(8000), 202)
+    expected = analytic(model)
+    p = expected.trace[0]
+    se = np.sqrt(p * (1 - p) / sim.size)
+    observed = shares(sim)
+    inside = se > 0
+    assert np.all(np.abs(observed - p)[inside] < Z * se[inside])
+    assert np.array_equal(observed[~inside], p[~inside])
+    for s in range(model.n_states):  # time in state, half-cycle rule, with and without discount
+        for w in (0, 2):
+            assert_mean_agrees(sim.occupancy[:, s, w], expected.occupancy[0, s, w])
+    for r in range(len(model.risks)):
+        if np.any(sim.occurrences[:, r, 0]):
+            assert_mean_agrees(sim.occurrences[:, r, 0], expected.occurrences[0, r, 0])
+        else:
+            assert expected.occurrences[0, r, 0] == 0.0
+
+
+# ------------------------------------------------------------------------ the verdict
+
+SEMI_MARKOV = """
+[time]
+unit = "days"
+horizon = 30
+[start]
+shares = { recovering = 1 }
+[[states]]
+name = "recovering"
+[[states]]
+name = "complication"
+[[states]]
+name = "discharged"
+absorbing = true
+[[transitions]]
+from = "recovering"
+to = "complication"
+rate = 0.1
+[[transitions]]
+from = "recovering"
+to = "discharged"
+rate = 0.2
+[[transitions]]
+from = "complication"
+to = "recovering"
+hazard = { family = "weibull", shape = 1.5, scale = 4 }
+"""
+
+
+def test_verdict_agrees_on_a_correct_model(rate_run):
+    _, sim = rate_run
+    result = compare(sim)
+    assert result.exact and result.agrees is True
+    assert "agrees" in result.verdict
+
+
+def test_verdict_says_when_there_is_no_exact_counterpart():
+    model = model_of(SEMI_MARKOV)
+    result = compare(simulate(model, cohort_patients(300), 8))
+    assert result.exact is False and result.agrees is None
+    assert "no exact counterpart" in result.verdict
+    assert "complication->recovering" in result.verdict
+
+
+def test_comparison_has_power_against_a_wrong_counterpart(rate_run):
+    # model B: the well->sick rate 20% higher; the simulation of model A must be told apart
+    model, sim = rate_run
+    wrong = model_of(RATE_MODEL.replace("rate = 0.15", "rate = 0.18"))
+    table = trace_table(sim, analytic(wrong, times=sim.grid))
+    assert np.nanmax(np.abs(table.z)) > critical_z(len(table))
+    right = trace_table(sim, analytic(model, times=sim.grid))
+    assert np.nanmax(np.abs(right.z)) < critical_z(len(right))
