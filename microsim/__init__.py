@@ -1,7 +1,32 @@
-"""microsim: individual-level health microsimulation with a Markov backbone."""
+"""microsim: individual-level health microsimulation with a Markov backbone.
+
+The public API is imported lazily, so `import microsim` stays light:
+
+    from microsim import read_scenario, bind, cohort_trace, simulate, compare, run_main
+"""
 
 __version__ = "0.1.0"
 
 CAUTION = ("Caution: microsim supports analysis by qualified people. Its results are not "
            "clinical advice; check them against local guidance and review them before they "
            "inform decisions about patients or funding.")
+
+_API = {
+    "read_scenario": "microsim.scenario", "parse_scenario": "microsim.scenario",
+    "ScenarioError": "microsim.scenario", "bind": "microsim.binding",
+    "cohort_trace": "microsim.api", "expected_outcomes": "microsim.api",
+    "chain_summary": "microsim.api", "analytic": "microsim.cohort.analytic",
+    "draw_population": "microsim.population", "describe_population": "microsim.population",
+    "simulate": "microsim.simulate", "compare": "microsim.compare",
+    "run_strategies": "microsim.decision", "decide": "microsim.decision",
+    "run_psa": "microsim.psa", "run_main": "microsim.workflow",
+}
+
+__all__ = ["CAUTION", "__version__", *_API]
+
+
+def __getattr__(name: str):
+    if name in _API:
+        import importlib
+        return getattr(importlib.import_module(_API[name]), name)
+    raise AttributeError(f"module 'microsim' has no attribute {name!r}")

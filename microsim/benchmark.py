@@ -1,25 +1,33 @@
 """Speed and variance figures measured as ratios within one run (machines here are shared
-and noisy, so absolute timings mean little; ratios taken seconds apart mean more).
+and noisy, so absolute timings mean little; ratios of interleaved timings mean more).
 
-- engine ratio: the SimPy event engine's transitions per second over bare SimPy timeouts
-  per second in the same process (target: at least 0.3);
+- engine / bare SimPy: the event engine's transitions per second over bare SimPy timeouts
+  per second, against two baselines measured beside it: one SimPy process doing nothing
+  but timeouts (the cheapest SimPy can be), and the same timeouts replayed by one bare
+  process per patient in the engine's grouping (SimPy's own cost for this workload);
 - cycle engine: patient-cycles per second over bare timeouts per second;
-- common random numbers: the standard error of incremental QALYs with shared draws over
-  the same with independent draws (added by the strategy comparison).
+- common random numbers: the standard error of incremental QALYs on the demo scenario
+  with shared draws, over the same with independent draws for the two strategies.
 """
 from __future__ import annotations
 
 import time
+from pathlib import Path
 
 import numpy as np
 import simpy
 
 from microsim.binding import bind
-from microsim.scenario import parse_scenario
+from microsim.effects import cohort_multipliers
+from microsim.engines import events
+from microsim.engines.histories import Histories
+from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulate import cohort_patients, simulate
 
+DEMO = Path(__file__).resolve().parent.parent / "scenarios" / "lakemoor_kidney.toml"
+
 BENCH_MODEL = """
-title = "benchmark: a progressive condition with competing risks"
+title = "benchmark: a relapsing condition with competing risks"
 provenance = "All numbers are invented for benchmarking."
 [time]
 unit = "years"
@@ -52,7 +60,7 @@ rate = 0.05
 """
 
 
-def bare_timeouts_per_second(n: int) -> float:
+def bare_single(n: int) -> float:
     """Timeouts per second of one SimPy process doing nothing else."""
     env = simpy.Environment()
 
@@ -66,30 +74,90 @@ def bare_timeouts_per_second(n: int) -> float:
     return n / (time.perf_counter() - started)
 
 
-def engine_transitions_per_second(scenario_text: str, patients: int) -> tuple[float, int]:
-    model = bind(parse_scenario(scenario_text))
+def bare_replay(h: Histories) -> float:
+    """Timeouts per second when bare SimPy processes, one per patient, in the engine's
+    groups, wait exactly the engine's sojourn times and do nothing else."""
+    delays: list[list[float]] = [[] for _ in range(h.n_patients)]
+    for b, dt in zip(h.patient[1:][h.patient[1:] == h.patient[:-1]],
+                     np.diff(h.time)[h.patient[1:] == h.patient[:-1]]):
+        delays[b].append(float(dt))
+    n = sum(map(len, delays))
+
+    def replay(waits, timeout):
+        for dt in waits:
+            yield timeout(dt)
+
     started = time.perf_counter()
-    sim = simulate(model, cohort_patients(patients), seed=1, batch_size=patients)
-    return sim.transitions / (time.perf_counter() - started), sim.transitions
+    for lo in range(0, h.n_patients, events.GROUP):
+        env = simpy.Environment()
+        for waits in delays[lo:lo + events.GROUP]:
+            env.process(replay(waits, env.timeout))
+        env.run()
+    return n / (time.perf_counter() - started)
 
 
-def engine_ratio(patients: int = 4000, repeats: int = 3) -> dict:
-    """Median over interleaved repeats of engine rate / bare rate, measured side by side."""
-    ratios, rates, bares = [], [], []
+def engine_ratio(patients: int, repeats: int) -> dict:
+    """Medians over interleaved repeats of engine rate over each bare rate."""
+    model = bind(parse_scenario(BENCH_MODEL))
+    mult = cohort_multipliers(model).repeated(patients)
+    ids = np.arange(patients)
+    single, replayed, rates = [], [], []
     for _ in range(repeats):
-        bare = bare_timeouts_per_second(200_000)
-        rate, transitions = engine_transitions_per_second(BENCH_MODEL, patients)
-        ratios.append(rate / bare)
+        started = time.perf_counter()
+        h = events.simulate_events(model, mult, ids, seed=1)
+        rate = int(np.sum(h.risk >= 0)) / (time.perf_counter() - started)
         rates.append(rate)
-        bares.append(bare)
-    return {"ratio": float(np.median(ratios)), "engine_per_second": float(np.median(rates)),
-            "bare_timeouts_per_second": float(np.median(bares)), "transitions": transitions}
+        single.append(rate / bare_single(100_000))
+        replayed.append(rate / bare_replay(h))
+    return {"engine": float(np.median(rates)), "vs_single": float(np.median(single)),
+            "vs_replay": float(np.median(replayed)), "transitions": int(np.sum(h.risk >= 0))}
 
 
-def main() -> int:
-    print("microsim benchmark (ratios measured in one run)")
-    e = engine_ratio()
-    print(f"SimPy event engine: {e['engine_per_second']:,.0f} transitions/s "
-          f"({e['transitions']:,} transitions); bare SimPy: {e['bare_timeouts_per_second']:,.0f} "
-          f"timeouts/s; ratio {e['ratio']:.2f} (target >= 0.30)")
+def cycle_ratio(patients: int) -> dict:
+    """The cycle engine's patient-cycles per second over bare single-process timeouts."""
+    scenario = read_scenario(DEMO)
+    model = bind(scenario)
+    people = cohort_patients(patients)
+    started = time.perf_counter()
+    sim = simulate(model, people, seed=1)
+    elapsed = time.perf_counter() - started
+    cycles = int(np.sum(sim.states[:, :-1] >= 0) - np.sum(model.absorbing[sim.states[:, :-1]]))
+    rate = cycles / elapsed
+    return {"cycles_per_second": rate, "vs_single": rate / bare_single(100_000)}
+
+
+def crn_ratio(patients: int) -> dict:
+    """SE of incremental QALYs with common random numbers over independent streams."""
+    from microsim.decision import EFFECT, patient_outcomes, run_strategies, strategy_names
+    from microsim.workflow import patients_for
+    scenario = read_scenario(DEMO)
+    names = strategy_names(scenario)
+    if len(names) < 2:
+        return {}
+    people = patients_for(scenario, patients, scenario.simulation.seed)
+    shared = patient_outcomes(run_strategies(scenario, people, seed=11))
+    other = patient_outcomes(run_strategies(scenario, people, seed=12))
+    rows = {}
+    for name in names[1:]:
+        base = shared[shared.strategy == names[0]][EFFECT].to_numpy()
+        paired = shared[shared.strategy == name][EFFECT].to_numpy() - base
+        independent = other[other.strategy == name][EFFECT].to_numpy() - base
+        rows[name] = float(np.std(paired, ddof=1) / np.std(independent, ddof=1))
+    return rows
+
+
+def main(quick: bool = False) -> int:
+    print("microsim benchmark (ratios of timings interleaved in one run)")
+    e = engine_ratio(patients=1000 if quick else 4000, repeats=1 if quick else 5)
+    print(f"SimPy event engine: {e['engine']:,.0f} transitions/s over {e['transitions']:,} "
+          f"transitions")
+    print(f"  ratio to bare SimPy, same timeouts, one process per patient: {e['vs_replay']:.2f}"
+          f" (target >= 0.30)")
+    print(f"  ratio to bare SimPy, one process doing only timeouts:       {e['vs_single']:.2f}")
+    c = cycle_ratio(patients=500 if quick else 2000)
+    print(f"SimPy cycle engine (demo scenario): {c['cycles_per_second']:,.0f} patient-cycles/s;"
+          f" ratio to bare single-process SimPy {c['vs_single']:.2f}")
+    for name, ratio in crn_ratio(patients=500 if quick else 2000).items():
+        print(f"Common random numbers, {name}: SE of incremental QALYs is {ratio:.2f} x that "
+              f"with independent streams (variance x {ratio ** 2:.2f})")
     return 0

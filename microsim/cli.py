@@ -28,11 +28,13 @@ def show(title: str, table: pd.DataFrame, rows: int = 40) -> None:
     print(table.to_string(index=False, max_rows=rows, float_format=lambda x: f"{x:.6g}"))
 
 
-def write(args, path: Path, tables: dict, started: float, **extra) -> None:
+def write(args, path: Path, tables: dict, started: float, documents: dict | None = None,
+          quiet: bool = False, **extra) -> None:
     from microsim.store import manifest, write_run
     target = out_dir(args, path)
-    write_run(target, tables, manifest(path, started, **extra))
-    print(f"\nwrote {', '.join(sorted(tables))} (CSV and Parquet) and manifest.json to {target}/")
+    write_run(target, tables, manifest(path, started, **extra), documents=documents)
+    if not quiet:
+        print(f"\nwrote {len(tables)} tables (CSV and Parquet) and manifest.json to {target}/")
 
 
 def command_check(args) -> int:
@@ -48,6 +50,7 @@ def command_check(args) -> int:
 
 
 def command_trace(args) -> int:
+    """The analytic cohort trace."""
     from microsim.api import cohort_trace
     from microsim.binding import bind
     started = time.perf_counter()
@@ -91,9 +94,46 @@ def command_summary(args) -> int:
 
 
 def command_run(args) -> int:
-    """The main job: for now the cohort and, with a population, simulation and validation."""
+    """The main job: strategies on the same patients, validation, evaluation, PSA."""
     from microsim.workflow import run_scenario
     return run_scenario(args)
+
+
+def command_population(args) -> int:
+    from microsim.population import describe_population
+    from microsim.workflow import patients_for
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    scenario = read_scenario(path)
+    if scenario.population is None:
+        raise ScenarioError("population", "the scenario has no population section to preview")
+    seed = scenario.simulation.seed if args.seed is None else args.seed
+    people = patients_for(scenario, args.patients, seed)
+    summary = describe_population(people)
+    print(f"Population preview — {scenario.title}: {len(people)} patients, seed {seed}")
+    show("Attributes", summary.attributes, rows=80)
+    if len(summary.correlations):
+        show("Correlations (Pearson, Spearman)", summary.correlations)
+    write(args, path, {"population": people, "population_summary": summary.attributes,
+                       "population_correlations": summary.correlations}, started, seed=seed)
+    return 0
+
+
+def command_sensitivity(args) -> int:
+    from microsim.sensitivity import tornado
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    scenario = read_scenario(path)
+    table, measure = tornado(scenario, args.patients, args.seed)
+    show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)
+    write(args, path, {"one_way": table}, started)
+    print(f"\n{CAUTION}")
+    return 0
+
+
+def command_benchmark(args) -> int:
+    from microsim.benchmark import main as benchmark
+    return benchmark(quick=args.quick)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -102,25 +142,42 @@ def build_parser() -> argparse.ArgumentParser:
         description="Individual-level health microsimulation with a Markov backbone. " + CAUTION)
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    def add(name, function, help_text):
+    def add(name, function, help_text, writes=True):
         sub = commands.add_parser(name, help=help_text, description=help_text)
         sub.add_argument("scenario", help="path to a scenario TOML file")
         sub.set_defaults(function=function)
+        if writes:
+            sub.add_argument("--out", default="outputs", help="output folder (default: outputs)")
         return sub
 
-    add("check", command_check, "Read and check a scenario file; print warnings.")
-    for sub in (
-        add("trace", command_trace, "Print and write the analytic cohort trace."),
-        add("summary", command_summary,
-            "Steady state, absorption times and probabilities, expected outcomes."),
-        add("run", command_run, "The main job: cohort, simulation and the comparison."),
-    ):
-        sub.add_argument("--out", default="outputs", help="output folder (default: outputs)")
-    commands.choices["trace"].add_argument("--rows", type=int, default=30,
-                                           help="rows of the trace to print (default 30)")
-    run = commands.choices["run"]
-    run.add_argument("--patients", type=int, help="population size (default: the scenario's)")
-    run.add_argument("--seed", type=int, help="run seed (default: the scenario's)")
+    def population_options(sub):
+        sub.add_argument("--patients", type=int, help="population size (default: the scenario's)")
+        sub.add_argument("--seed", type=int, help="run seed (default: the scenario's)")
+
+    add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
+    trace = add("trace", command_trace, "Print and write the analytic cohort trace.")
+    trace.add_argument("--rows", type=int, default=30, help="rows of the trace to print (default 30)")
+    add("summary", command_summary,
+        "Steady state, absorption times and probabilities, expected outcomes of the cohort.")
+    population_options(add("population", command_population,
+                           "Preview the generated population: summary per attribute, correlations."))
+    population_options(add("sensitivity", command_sensitivity,
+                           "One-way sensitivity over the parameters' low/high ranges (tornado data)."))
+    run = add("run", command_run, "The main job: every strategy on the same simulated patients, "
+              "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
+              "subgroups, and PSA when asked.")
+    population_options(run)
+    run.add_argument("--json", action="store_true", help="print a machine-readable JSON summary")
+    run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
+    run.add_argument("--draws", type=int, help="PSA outer draws (default: the scenario's)")
+    run.add_argument("--psa-patients", type=int, help="PSA inner patients per draw")
+    run.add_argument("--workers", type=int, default=1, help="PSA worker processes (default 1)")
+    run.add_argument("--backend", choices=("processes", "dask"), default="processes",
+                     help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")
+    run.add_argument("--address", help="address of a running Dask scheduler")
+    bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
+    bench.add_argument("--quick", action="store_true", help="a shorter run")
+    bench.set_defaults(function=command_benchmark)
     return parser
 
 

@@ -19,7 +19,7 @@ from scipy.stats import norm
 from microsim.cohort.analytic import CohortResult, analytic
 from microsim.effects import average_patient
 from microsim.outcomes import outcome_values
-from microsim.simulate import Simulation
+from microsim.simulate import Simulation, cohort_patients, simulate
 
 FAMILY_ALPHA = 0.001
 
@@ -89,11 +89,11 @@ def outcome_rows(sim: Simulation, result: CohortResult) -> pd.DataFrame:
 def compare(sim: Simulation) -> Comparison:
     """Compare a simulation with the analytic counterpart of its model and patients."""
     model = sim.model
-    mult = sim.mult
+    mult = sim.mult.distinct()
     result = analytic(model, mult=mult, times=sim.grid)
     shares = trace_table(sim, result)
     outcomes = outcome_rows(sim, result)
-    average = average_rows(sim, mult)
+    average = average_rows(sim, mult, result)
     critical = critical_z(len(shares) + len(outcomes))
     if result.exact:
         worst = float(np.nanmax(np.abs(np.concatenate([shares.z, outcomes.z]))))
@@ -106,24 +106,42 @@ def compare(sim: Simulation) -> Comparison:
     else:
         agrees = None
         verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
-                   "the figures beside the simulation are the Markov approximation that ignores it.")
+                   "the analytic figures beside the simulation are a Markov approximation that "
+                   "ignores this memory, shown for orientation only.")
     return Comparison(counterpart_name(sim, result), result.exact, shares, outcomes, average,
                       critical, agrees, verdict, average_verdict(average, critical))
 
 
-def average_rows(sim: Simulation, mult) -> pd.DataFrame:
-    """The 'average patient' cohort against the simulated population, measure by measure."""
-    result = analytic(sim.model, mult=average_patient(mult), times=sim.grid)
+def average_rows(sim: Simulation, mult, population: CohortResult) -> pd.DataFrame:
+    """The 'average patient' cohort against the simulated population, measure by measure.
+
+    Where the model has an exact counterpart, the average patient's result is exact and
+    the gap is tested against the simulation's standard error (the exact population mean
+    is shown beside it). Otherwise the average patient is simulated too, on other patient
+    ids, and the gap is tested against both standard errors."""
+    average = average_patient(mult)
     simulated = outcome_values(sim.model, sim.exposure)
-    expected = outcome_values(sim.model, result.exposure)
+    if population.exact:
+        expected = outcome_values(sim.model, analytic(sim.model, mult=average,
+                                                      times=sim.grid).exposure)
+        noise = {m: 0.0 for m in simulated}
+    else:
+        copies = cohort_patients(sim.size)
+        copies["patient"] += int(sim.patients["patient"].max()) + 1
+        twin = simulate(sim.model, copies, sim.seed, mult=average, grid=sim.grid)
+        expected = outcome_values(sim.model, twin.exposure)
+        noise = {m: float(v.var(ddof=1) / len(v)) for m, v in expected.items()}
+    exact_population = outcome_values(sim.model, population.exposure)
     rows = []
     for measure, values in simulated.items():
-        se = values.std(ddof=1) / np.sqrt(len(values))
-        diff = float(expected[measure][0] - values.mean())
-        rows.append((measure, values.mean(), float(expected[measure][0]), diff, se,
+        se = float(np.sqrt(values.var(ddof=1) / len(values) + noise[measure]))
+        avg = float(np.mean(expected[measure]))
+        diff = avg - float(values.mean())
+        rows.append((measure, float(values.mean()), float(np.mean(exact_population[measure]))
+                     if population.exact else np.nan, avg, diff, se,
                      float(z_scores(np.array(diff), np.array(se)))))
-    return pd.DataFrame(rows, columns=["measure", "population", "average_patient",
-                                       "difference", "se", "z"])
+    return pd.DataFrame(rows, columns=["measure", "population", "population_exact",
+                                       "average_patient", "difference", "se", "z"])
 
 
 def average_verdict(rows: pd.DataFrame, critical: float) -> str:

@@ -68,6 +68,15 @@ class Multipliers:
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index))
 
+    def distinct(self) -> "Multipliers":
+        """One row when every patient has the same multipliers and window (a uniform
+        cohort), else self: the analytic side then needs one trace, not N."""
+        same = np.all(self.log_static == self.log_static[:1]) and (
+            self.entry_age is None or np.all(self.entry_age == self.entry_age[0])) and (
+            self.window is None or (np.all(self.window.on == self.window.on[0])
+                                    and np.all(self.window.off == self.window.off[0])))
+        return self.take(slice(0, 1)) if same else self
+
     def repeated(self, n: int) -> "Multipliers":
         """A one-row (uniform cohort) set of multipliers for n identical patients."""
         return self if self.size == n else self.take(np.zeros(n, dtype=int))

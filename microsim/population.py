@@ -184,12 +184,12 @@ def _check_derived(spec: PopulationSpec, derived: DerivedSpec, taken: set[str]) 
     if derived.name in taken:
         raise ScenarioError(path, "this name is already used by another attribute")
     edges = np.asarray(derived.edges, dtype=float)
-    if edges.size < 2 or np.any(np.isnan(edges)) or np.any(np.diff(edges) <= 0):
-        raise ScenarioError(f"{path}.edges", f"must be at least two increasing numbers, "
-                            f"got {list(derived.edges)}")
-    if len(derived.labels) != edges.size - 1:
-        raise ScenarioError(f"{path}.labels", f"needs one label per band: {edges.size - 1} "
-                            f"for {edges.size} edges, got {len(derived.labels)}")
+    if edges.size < 1 or np.any(np.isnan(edges)) or np.any(np.diff(edges) <= 0):
+        raise ScenarioError(f"{path}.edges", f"must be increasing numbers (the lower edge of "
+                            f"each band), got {list(derived.edges)}")
+    if len(derived.labels) != edges.size:
+        raise ScenarioError(f"{path}.labels", f"needs one label per edge (each edge starts a "
+                            f"band): {edges.size} edges, got {len(derived.labels)} labels")
     if len(set(derived.labels)) != len(derived.labels):
         raise ScenarioError(f"{path}.labels",
                             f"labels must be distinct, got {list(derived.labels)}")
@@ -201,12 +201,11 @@ def _check_derived(spec: PopulationSpec, derived: DerivedSpec, taken: set[str]) 
     if source.distribution in _DISCRETE:
         raise ScenarioError(f"{path}.source", f"{derived.source!r} is {source.distribution}; "
                             f"bands need a numeric attribute")
-    low, high = marginal_distribution(source).support()
-    if low < edges[0] or high > edges[-1]:
-        raise ScenarioError(f"{path}.edges", f"the bands cover [{edges[0]:g}, {edges[-1]:g}] "
-                            f"but {derived.source!r} can take values in [{low:g}, {high:g}]; "
-                            f"widen the outer edges (they may be -inf and inf) or truncate "
-                            f"the source")
+    low, _ = marginal_distribution(source).support()
+    if low < edges[0]:
+        raise ScenarioError(f"{path}.edges", f"the first band starts at {edges[0]:g} but "
+                            f"{derived.source!r} can take values from {low:g}; lower the first "
+                            f"edge (it may be -inf) or truncate the source")
 
 
 def check_population(spec: PopulationSpec) -> None:
@@ -287,8 +286,8 @@ def _draw_attributes(spec: PopulationSpec, seed: int, ids: np.ndarray) -> dict:
 # ------------------------------------------------------------------------ bands
 
 def _band(values: pd.Series, derived: DerivedSpec) -> pd.Categorical:
-    """labels[i] for values in [edges[i], edges[i+1]); the last band also holds its
-    upper edge. Values outside every band are refused, naming the derived attribute."""
+    """labels[i] for values in [edges[i], edges[i+1]); the last band has no upper end.
+    Values below the first edge are refused, naming the derived attribute."""
     path = f"population.derived.{derived.name}"
     if not pd.api.types.is_numeric_dtype(values) or pd.api.types.is_bool_dtype(values):
         raise ScenarioError(f"{path}.source",
@@ -296,13 +295,11 @@ def _band(values: pd.Series, derived: DerivedSpec) -> pd.Categorical:
     x = values.to_numpy(dtype=float)
     edges = np.asarray(derived.edges, dtype=float)
     codes = np.searchsorted(edges, x, side="right") - 1
-    codes[x == edges[-1]] = len(derived.labels) - 1
-    outside = (codes < 0) | (codes >= len(derived.labels)) | np.isnan(x)
+    outside = (codes < 0) | np.isnan(x)
     if outside.any():
         raise ScenarioError(path, f"{int(outside.sum())} value(s) of {derived.source!r} "
-                            f"(from {np.nanmin(x):g} to {np.nanmax(x):g}) lie outside the bands "
-                            f"[{edges[0]:g}, {edges[-1]:g}]; widen the outer edges (they may be "
-                            f"-inf and inf)")
+                            f"(from {np.nanmin(x):g}) lie below the first band, which starts "
+                            f"at {edges[0]:g}; lower the first edge (it may be -inf)")
     return pd.Categorical.from_codes(codes, categories=list(derived.labels), ordered=True)
 
 

@@ -30,6 +30,7 @@ class Simulation:
     """Per-patient results of one run; rows follow `patients`."""
     model: BoundModel
     patients: pd.DataFrame
+    seed: int
     mult: Multipliers  # the hazard multipliers (and treatment windows) the engine used
     grid: np.ndarray  # (T,) time points of `states`
     states: np.ndarray  # (N, T) state index of each patient at each grid time
@@ -74,7 +75,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     finally:
         if writer is not None:
             writer.close()
-    return Simulation(model, patients.reset_index(drop=True), mult, grid, np.concatenate(states),
+    return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)
 
 

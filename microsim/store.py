@@ -20,7 +20,8 @@ from pathlib import Path
 
 import pandas as pd
 
-PACKAGES = ("microsim", "numpy", "scipy", "pandas", "pyarrow", "simpy")
+PACKAGES = ("microsim", "numpy", "scipy", "pandas", "pyarrow", "simpy", "tqdm", "dask",
+            "distributed")
 
 
 def file_hash(path: Path) -> str:
@@ -53,8 +54,10 @@ def manifest(scenario_path: Path | None, started: float, **extra) -> dict:
 
 
 def write_run(out_dir: Path, tables: dict[str, pd.DataFrame], record: dict,
-              formats: tuple[str, ...] = ("csv", "parquet")) -> list[Path]:
-    """Write each table as `<name>.<format>` and `manifest.json` into out_dir, atomically.
+              formats: tuple[str, ...] = ("csv", "parquet"),
+              documents: dict[str, dict] | None = None) -> list[Path]:
+    """Write each table as `<name>.<format>`, each document as `<name>.json`, and
+    `manifest.json` into out_dir, atomically.
 
     Each file is complete before it is moved in; files of the same names already in
     out_dir are replaced, other files are left alone.
@@ -72,6 +75,8 @@ def write_run(out_dir: Path, tables: dict[str, pd.DataFrame], record: dict,
                     table.to_parquet(target, index=False)
                 else:
                     raise ValueError(f"unknown output format {fmt!r}")
+        for name, document in (documents or {}).items():
+            (staging / f"{name}.json").write_text(json.dumps(document, indent=2) + "\n")
         record = {**record, "files": sorted(p.name for p in staging.iterdir())}
         (staging / "manifest.json").write_text(json.dumps(record, indent=2) + "\n")
         out_dir.mkdir(exist_ok=True)

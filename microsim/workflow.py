@@ -1,69 +1,178 @@
-"""The main job, end to end: read, bind, simulate, compare with the cohort, report, write.
+"""The main job, end to end: read, simulate every strategy on the same patients, compare
+with the cohort, evaluate, report, write.
 
 Kept apart from the CLI so that scripts and tests run exactly what `microsim run` runs.
 """
 from __future__ import annotations
 
+import json
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from microsim import CAUTION
-from microsim.api import cohort_trace, expected_outcomes
+from microsim.api import cohort_trace
 from microsim.binding import bind
 from microsim.compare import Comparison, compare
+from microsim.decision import Decision, decide, run_strategies, strategy_names
 from microsim.population import draw_population
-from microsim.scenario import read_scenario
+from microsim.psa import PsaResult, run_psa
+from microsim.scenario import Scenario, read_scenario
 from microsim.simulate import Simulation, cohort_patients, report_grid, simulate
 
 DEFAULT_PATIENTS = 2000
 
 
+def patients_for(scenario: Scenario, size: int | None, seed: int) -> pd.DataFrame:
+    spec = scenario.population
+    n = size or (spec.size if spec else DEFAULT_PATIENTS)
+    if spec is not None and (spec.attributes or spec.file):
+        return draw_population(spec, seed, np.arange(n))
+    return cohort_patients(n)
+
+
 @dataclass(frozen=True)
-class Validation:
-    simulation: Simulation
-    comparison: Comparison
+class MainResult:
+    scenario: Scenario
+    seed: int
+    simulations: dict[str, Simulation]
+    validations: dict[str, Comparison]
+    decision: Decision | None
+    psa: PsaResult | None = None
+    tables: dict[str, pd.DataFrame] = field(default_factory=dict)
 
 
-def validate(path: Path, patients: int | None = None, seed: int | None = None,
-             histories: Path | None = None) -> Validation:
-    """Simulate the scenario's population and compare it with the analytic counterpart."""
+def run_main(path: Path, patients: int | None = None, seed: int | None = None,
+             psa: dict | None = None) -> MainResult:
+    """Every strategy (or the model as written) on the same patients, validated against
+    the analytic counterpart, evaluated, and with PSA when `psa` settings are given."""
     scenario = read_scenario(path)
-    model = bind(scenario)
     seed = scenario.simulation.seed if seed is None else seed
-    population = scenario.population
-    size = patients or (population.size if population else DEFAULT_PATIENTS)
-    people = (draw_population(population, seed, range(size)) if population and
-              (population.attributes or population.file) else cohort_patients(size))
-    sim = simulate(model, people, seed, batch_size=scenario.simulation.batch_size,
-                   grid=report_grid(model, scenario.simulation.grid), histories=histories)
-    return Validation(sim, compare(sim))
+    people = patients_for(scenario, patients, seed)
+    if scenario.strategies:
+        sims = run_strategies(scenario, people, seed)
+        decision = decide(scenario, sims)
+    else:
+        model = bind(scenario)
+        sims = {"as written": simulate(model, people, seed,
+                                       batch_size=scenario.simulation.batch_size,
+                                       grid=report_grid(model, scenario.simulation.grid))}
+        decision = None
+    validations = {name: compare(sim) for name, sim in sims.items()}
+    psa_result = None
+    if psa is not None:
+        psa_result = run_psa(scenario, **psa)
+    return MainResult(scenario, seed, sims, validations, decision, psa_result,
+                      result_tables(scenario, sims, validations, decision, psa_result))
+
+
+def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.DataFrame]:
+    first = next(iter(sims))
+    tables = {"cohort_trace": cohort_trace(bind(scenario))}
+    tables["validation_shares"] = pd.concat(
+        [v.shares.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
+    tables["validation_outcomes"] = pd.concat(
+        [v.outcomes.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
+    tables["average_patient"] = validations[first].average_patient
+    if decision is not None:
+        tables.update({"patient_outcomes": decision.outcomes, "strategies": decision.strategies,
+                       "increments": decision.increments,
+                       "incremental_analysis": decision.analysis,
+                       "net_benefit": decision.net_benefit, "subgroups": decision.subgroups,
+                       "precision": decision.precision})
+    if psa is not None:
+        tables.update({"psa_draws": psa.results, "psa_parameters": psa.draws,
+                       "acceptability": psa.acceptability, "evpi": psa.evpi,
+                       "ce_plane": psa.plane, "psa_variance": psa.variance})
+    return tables
+
+
+def summary(result: MainResult) -> dict:
+    """A machine-readable summary (for scripts): what the printed summary says."""
+    s, d = result.scenario, result.decision
+    out = {"scenario": s.title, "provenance": s.provenance, "seed": result.seed,
+           "patients": len(next(iter(result.simulations.values())).patients),
+           "validation": {n: {"agrees": v.agrees, "verdict": v.verdict,
+                              "average_patient": v.average_verdict}
+                          for n, v in result.validations.items()},
+           "caution": CAUTION}
+    if d is not None:
+        out.update({
+            "comparator": d.comparator, "threshold": d.threshold,
+            "currency": s.economics.currency,
+            "strategies": records(d.strategies), "increments": records(d.increments),
+            "incremental_analysis": records(d.analysis),
+            "best_at_threshold": str(d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]),
+            "subgroups": records(d.subgroups), "precision": records(d.precision)})
+    if result.psa is not None:
+        at = result.psa.acceptability
+        near = at.loc[(at.threshold - s.economics.threshold).abs().idxmin(), "threshold"]
+        out["psa"] = {"draws": int(result.psa.draws.shape[0]),
+                      "acceptability_at_threshold": records(at[at.threshold == near]),
+                      "evpi_at_threshold": records(result.psa.evpi[result.psa.evpi.threshold == near]),
+                      "variance_split": records(result.psa.variance)}
+    return out
+
+
+def records(table: pd.DataFrame) -> list[dict]:
+    return json.loads(table.to_json(orient="records"))
+
+
+def print_summary(result: MainResult, show) -> None:
+    s, d = result.scenario, result.decision
+    first = next(iter(result.simulations.values()))
+    print(f"microsim run — {s.title}\n{s.provenance}")
+    print(f"{first.size} patients, seed {result.seed}; every strategy on the same patients "
+          "with common random numbers.")
+    if d is not None:
+        cur = s.economics.currency
+        table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",
+                                                          "life_years"])]
+        show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
+             table.pivot(index="strategy", columns="measure", values="mean").reset_index()
+             .merge(table.pivot(index="strategy", columns="measure", values="se")
+                    .add_suffix("_se").reset_index(), on="strategy"))
+        show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
+        show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
+        best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
+        show(f"Net benefit at {d.threshold:g} {cur} per QALY — best: {best}", d.net_benefit)
+        show("Who benefits: incremental net monetary benefit by subgroup", d.subgroups, rows=60)
+        show("Precision: patients needed for the target 95% CI half-width of incremental NMB",
+             d.precision)
+    for name, v in result.validations.items():
+        print(f"\nValidation ({name}): {v.verdict}")
+    first_validation = next(iter(result.validations.values()))
+    print(f"\n{first_validation.average_verdict}")
+    if result.psa is not None:
+        p = result.psa
+        near = (p.acceptability.threshold - s.economics.threshold).abs()
+        at = p.acceptability[near == near.min()]
+        show(f"PSA ({len(p.draws)} draws): probability each strategy is best", at)
+        show("Expected value of perfect information per patient",
+             p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
+        show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
 
 
 def run_scenario(args) -> int:
     from microsim.cli import show, write
     started = time.perf_counter()
     path = Path(args.scenario)
-    scenario = read_scenario(path)
-    model = bind(scenario)
-    trace = cohort_trace(model)
-    outcomes = expected_outcomes(model)
-    print(f"microsim run — {scenario.title}\n{scenario.provenance}")
-    show("Expected outcomes per patient, uniform cohort (analytic)", outcomes)
-    check = validate(path, args.patients, args.seed)
-    c = check.comparison
-    print(f"\nSimulated {check.simulation.size} patients "
-          f"({check.simulation.transitions} transitions and events).")
-    show("Simulated population against its analytic counterpart", c.outcomes)
-    print(f"\nValidation: {c.verdict}")
-    show("The 'average patient' cohort against the simulated population", c.average_patient)
-    print(f"\n{c.average_verdict}")
-    tables = {"cohort_trace": trace, "cohort_outcomes": outcomes,
-              "validation_shares": c.shares, "validation_outcomes": c.outcomes,
-              "average_patient": c.average_patient}
-    write(args, path, tables, started, seed=args.seed or scenario.simulation.seed,
-          patients=check.simulation.size, verdict=c.verdict)
-    print(f"\n{CAUTION}")
+    psa = None
+    if args.psa:
+        psa = {"run_dir": Path(args.out) / path.stem / "psa", "draws": args.draws,
+               "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
+               "address": args.address, "progress": not args.json}
+    result = run_main(path, args.patients, args.seed, psa)
+    data = summary(result)
+    if args.json:
+        print(json.dumps(data, indent=2))
+    else:
+        print_summary(result, show)
+    write(args, path, result.tables, started, documents={"summary": data}, quiet=args.json,
+          seed=result.seed, patients=data["patients"])
+    if not args.json:
+        print(f"\n{CAUTION}")
     return 0

@@ -101,10 +101,10 @@ def test_cycle_occurrences_counted_at_cycle_end_with_discount():
     trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
     moves = trace[:-1, 0] * 0.1
     r = model.risk_names.index("well->sick")
-    np.testing.assert_allclose(result.occurrences[0, r, 0], moves.sum(), rtol=1e-12)
+    np.testing.assert_allclose(result.exposure.occurrences[0, r, 0], moves.sum(), rtol=1e-12)
     discounted = moves @ 1.05 ** -np.arange(1.0, 21.0)
-    np.testing.assert_allclose(result.occurrences[0, r, 1], discounted, rtol=1e-12)
-    costs = outcome_values(model, result.occupancy, result.occurrences)["costs_discounted"]
+    np.testing.assert_allclose(result.exposure.occurrences[0, r, 1], discounted, rtol=1e-12)
+    costs = outcome_values(model, result.exposure)["costs_discounted"]
     np.testing.assert_allclose(costs[0], 500 * discounted, rtol=1e-12)
 
 
@@ -114,7 +114,7 @@ def test_cycle_occupancy_half_cycle_rule():
     result = analytic(model_of(CYCLE_MODEL))
     trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
     expected = trace[0] / 2 + trace[1:-1].sum(axis=0)
-    np.testing.assert_allclose(result.occupancy[0, :, 0], expected, rtol=1e-12)
+    np.testing.assert_allclose(result.exposure.occupancy[0, :, 0], expected, rtol=1e-12)
 
 
 # ------------------------------------------------------------------- homogeneous rate model
@@ -180,13 +180,13 @@ def test_rate_occupancy_and_event_counts_equal_quadrature():
                                       epsabs=1e-13)[0]
     discounted = integrate.quad_vec(lambda s: RATE_START @ expm(RATE_Q * s) * math.exp(-delta * s),
                                     0, 10, epsabs=1e-13)[0]
-    np.testing.assert_allclose(result.occupancy[0, :, 0], undiscounted, rtol=1e-9)
-    np.testing.assert_allclose(result.occupancy[0, :, 2], discounted, rtol=1e-9)
+    np.testing.assert_allclose(result.exposure.occupancy[0, :, 0], undiscounted, rtol=1e-9)
+    np.testing.assert_allclose(result.exposure.occupancy[0, :, 2], discounted, rtol=1e-9)
     names = [r.name for r in model.risks]
     # expected occurrences = integral of pi_i(s) q_ij ds
-    np.testing.assert_allclose(result.occurrences[0, names.index("flare"), 0],
+    np.testing.assert_allclose(result.exposure.occurrences[0, names.index("flare"), 0],
                                0.4 * undiscounted[1], rtol=1e-9)
-    np.testing.assert_allclose(result.occurrences[0, names.index("sick->dead"), 2],
+    np.testing.assert_allclose(result.exposure.occurrences[0, names.index("sick->dead"), 2],
                                0.25 * discounted[1], rtol=1e-9)
 
 
@@ -225,7 +225,7 @@ def test_discounted_qalys_closed_form(batch):
     model = model_of(SURVIVAL_MODEL)
     mult = Multipliers(np.zeros((batch, 1)), np.zeros(1), None)
     result = analytic(model, mult=mult)
-    values = outcome_values(model, result.occupancy, result.occurrences)
+    values = outcome_values(model, result.exposure)
     tol = 1e-12 if batch == 1 else 1e-8
     for b in range(batch):
         np.testing.assert_allclose(values["qalys_discounted"][b],
@@ -456,7 +456,7 @@ def test_cycle_count_memory_expected_flares():
     P, collapse = hand_count_chain()
     trace = hand_recursion(np.eye(7)[0], P, 15) @ collapse
     flare = [r.name for r in model.risks].index("flare")
-    np.testing.assert_allclose(result.occurrences[0, flare, 0], 0.3 * trace[:-1, 0].sum(),
+    np.testing.assert_allclose(result.exposure.occurrences[0, flare, 0], 0.3 * trace[:-1, 0].sum(),
                                rtol=1e-12)
 
 

@@ -201,23 +201,23 @@ def test_bad_attribute_is_refused_with_its_path(attribute, path):
 
 
 def test_bands_match_pandas_cut():
-    edges, labels = (-math.inf, 50.0, 65.0, math.inf), ("under 50", "50-64", "65 and over")
+    edges, labels = (-math.inf, 50.0, 65.0), ("under 50", "50-64", "65 and over")
     frame = draw_population(spec_of(normal("age", 60, 10), derived=(
         DerivedSpec("age_band", "age", edges, labels),)), SEED, np.arange(3000))
-    # Reference: pandas.cut with left-closed bins [edges[i], edges[i+1]).
-    expected = pd.cut(frame["age"], bins=list(edges), right=False, labels=list(labels))
+    # Reference: pandas.cut with left-closed bins [edges[i], edges[i+1]), the last open.
+    expected = pd.cut(frame["age"], bins=[*edges, math.inf], right=False, labels=list(labels))
     assert frame["age_band"].cat.ordered
     assert (frame["age_band"].astype(str) == expected.astype(str)).all()
 
 
 def test_bands_that_cannot_hold_every_value_are_refused():
     spec = spec_of(normal("age", 60, 10), derived=(
-        DerivedSpec("age_band", "age", (40.0, 65.0, 90.0), ("40-64", "65-89")),))
-    with pytest.raises(ScenarioError, match="widen the outer edges") as refused:
+        DerivedSpec("age_band", "age", (40.0, 65.0), ("40-64", "65+")),))
+    with pytest.raises(ScenarioError, match="lower the first edge") as refused:
         draw_population(spec, SEED)
     assert refused.value.path == "population.derived.age_band.edges"
     truncated = spec_of(normal("age", 60, 10, lower=40, upper=90), derived=spec.derived)
-    assert set(draw_population(truncated, SEED)["age_band"]) == {"40-64", "65-89"}
+    assert set(draw_population(truncated, SEED)["age_band"]) == {"40-64", "65+"}
 
 
 def write_csv(tmp_path, text, name="people.csv"):
@@ -250,14 +250,14 @@ def test_resampling_parquet_without_weights_is_uniform(tmp_path):
     assert stats.chisquare(counts).pvalue > 1e-4  # reference: scipy.stats.chisquare
 
 
-def test_bands_of_a_file_column_close_the_last_band(tmp_path):
+def test_bands_of_a_file_column_leave_the_last_band_open(tmp_path):
     spec = PopulationSpec(size=500, file=write_csv(tmp_path, PEOPLE), weights="w", derived=(
-        DerivedSpec("band", "age", (40.0, 65.0, 90.0), ("40-64", "65-90")),))
+        DerivedSpec("band", "age", (40.0, 65.0), ("40-64", "65+")),))
     frame = draw_population(spec, SEED)
-    expected = {"a": "40-64", "b": "65-90", "c": "65-90", "d": "65-90"}
+    expected = {"a": "40-64", "b": "65+", "c": "65+", "d": "65+"}
     assert (frame["band"].astype(str) == frame["group"].astype(str).map(expected)).all()
     outside = PopulationSpec(size=10, file=spec.file, derived=(
-        DerivedSpec("band", "age", (50.0, 90.0), ("50-90",)),))
+        DerivedSpec("band", "age", (50.0,), ("50+",)),))
     with pytest.raises(ScenarioError, match=r"1 value\(s\) of 'age'") as refused:
         draw_population(outside, SEED)  # the whole file is banded: age 40 (weight 1) is out
     assert refused.value.path == "population.derived.band"
@@ -285,7 +285,7 @@ def full_spec(file):
             "levels": ("female", "male"), "shares": (0.52, 0.48)}),
             AttributeSpec("smoker", "yesno", {"prevalence": 0.2})),
         correlation_attributes=("bmi", "smoker"), correlation=((1, 0.3), (0.3, 1)),
-        derived=(DerivedSpec("bmi_band", "bmi", (-math.inf, 30.0, math.inf), ("<30", "30+")),))
+        derived=(DerivedSpec("bmi_band", "bmi", (-math.inf, 30.0), ("<30", "30+")),))
 
 
 def test_patient_row_does_not_depend_on_size_or_order(tmp_path):

@@ -21,7 +21,8 @@ from hypothesis import strategies as st
 from microsim.scenario import Scenario, ScenarioError, parse_scenario
 
 SCENARIOS = Path(__file__).resolve().parent.parent / "scenarios"
-TEXTS = [(SCENARIOS / name).read_text() for name in ("lakemoor_kidney.toml", "ward_recovery.toml")]
+TEXTS = [(SCENARIOS / name).read_text() for name in ("lakemoor_kidney.toml", "ward_recovery.toml",
+                                                        "ward_length_of_stay.toml")]
 DOCUMENTS = [tomllib.loads(text) for text in TEXTS]
 BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 FUZZ = settings(max_examples=100, deadline=None, derandomize=True,

@@ -41,7 +41,8 @@ def minimal(value: str = "probability = 1", extra: str = "") -> Scenario:
     return parse_scenario(MINIMAL.replace("{value}", value) + extra)
 
 
-@pytest.mark.parametrize("name", ["lakemoor_kidney.toml", "ward_recovery.toml"])
+@pytest.mark.parametrize("name", ["lakemoor_kidney.toml", "ward_recovery.toml",
+                                  "ward_length_of_stay.toml"])
 def test_examples_load_without_warnings(name):
     scenario = read_scenario(SCENARIOS / name)
     assert scenario.warnings == ()
@@ -106,7 +107,7 @@ def test_lakemoor_values_land_in_their_fields():
 
 
 def test_ward_hazards_and_memory():
-    s = read_scenario(SCENARIOS / "ward_recovery.toml")
+    s = read_scenario(SCENARIOS / "ward_length_of_stay.toml")
     assert not s.discrete
     assert s.time.horizon == 60.0 and s.time.n_cycles == 60
     by_key = {t.key: t for t in s.transitions}

@@ -67,7 +67,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE))
     absorbing = model.absorbing.tolist()
     cycle, n_cycles = model.cycle, model.n_cycles
-    record = Recorder()
+    record = Recorder(mult.size)
     env = simpy.Environment()
     move_purpose = names.index(MOVE)
 
@@ -100,7 +100,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         return p if m == 1.0 else 1.0 - (1.0 - p) ** m
 
     def add(b, t, source, target, r):
-        record.rows.append((b, t, source, target, r))
+        record.rows[b].append((t, source, target, r))
 
     def occur(b, t, source, target, r, counts, last):
         add(b, t, source, target, r)
@@ -144,4 +144,4 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     for b in range(len(patient_ids)):
         env.process(patient(b))
     env.run()
-    return record.histories(len(patient_ids))
+    return record.histories()

@@ -126,8 +126,8 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     absorbing, simple, from_state = model.absorbing.tolist(), batch.simple, batch.from_state
     memory, bumps, tracked = batch.memory, batch.bumps, batch.tracked
     end = model.n_cycles * model.cycle
-    record = Recorder()
-    add = record.rows.append
+    record = Recorder(mult.size)
+    tracking = bool(tracked)
 
     def patient(b: int, timeout):
         times = [t[b] if t else None for t in batch.times]  # extended when used up
@@ -138,12 +138,12 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         rounds = [0] * model.n_states
         state, entered, now = batch.starts[b], 0.0, 0.0
         counts, last = plan.initial_memory(model, tracked, state)
-        add((b, 0.0, START, state, START))
+        add = record.rows[b].append
+        add((0.0, START, state, START))
         while not absorbing[state]:
             k = rounds[state]
             rounds[state] = k + 1
-            change = end
-            if simple[state]:
+            if simple[state]:  # a round computed beforehand; nothing changes within it
                 try:
                     best, winner = times[state][k], winners[state][k]
                 except IndexError:
@@ -151,29 +151,31 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                     times[state] += more_times
                     winners[state] += more_winners
                     best, winner = times[state][k], winners[state][k]
+                if now + best >= end:
+                    return
             else:
-                best, winner = inf, None
+                best, winner, change = inf, None, end
                 for r in from_state[state]:
                     if k == len(draws[r]):
                         draws[r] += batch.more_draws(b, r, k)
-                    e = draws[r][k]
-                    dt, change = latent_time(risks[r], e, static[r], now, entered, age0,
-                                             memory[r], counts, last, change, windows[b])
+                    dt, change = latent_time(risks[r], draws[r][k], static[r], now, entered,
+                                             age0, memory[r], counts, last, change, windows[b])
                     if dt < best:
                         best, winner = dt, r
-            if now + best >= change:
-                if change >= end:
-                    return
-                yield timeout(change - now)
-                now = change
-                continue
+                if now + best >= change:
+                    if change >= end:
+                        return
+                    yield timeout(change - now)
+                    now = change
+                    continue
             yield timeout(best)
             now += best
             target = targets[winner]
-            add((b, now, state, target, winner))
-            for index in bumps[winner]:
-                counts[index] += 1
-                last[index] = now
+            add((now, state, target, winner))
+            if tracking:
+                for index in bumps[winner]:
+                    counts[index] += 1
+                    last[index] = now
             if target != state:
                 state, entered = target, now
 
@@ -185,4 +187,4 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         for b in range(lo, min(lo + GROUP, len(patient_ids))):
             env.process(patient(b, env.timeout))
         env.run()
-    return record.histories(len(patient_ids))
+    return record.histories()

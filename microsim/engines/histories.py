@@ -2,8 +2,8 @@
 
 A history is a list of records (patient, time, from state, to state, risk). The first
 record of each patient is its start (from -1, risk -1); an event that does not change the
-state has from == to. Engines append records in simulation order; `sorted_by_patient`
-puts each patient's records together, in time order, for the aggregators.
+state has from == to. Engines keep one record list per patient, so the histories come out
+grouped by patient and in time order, as the aggregators need.
 """
 from __future__ import annotations
 
@@ -17,19 +17,20 @@ START = -1
 
 
 class Recorder:
-    """Cheap appends from inside the engines' hot loops: one tuple per record,
-    (patient row, time, from state, to state, risk)."""
+    """Cheap appends from inside the engines' hot loops: one list per patient row, one
+    tuple (time, from state, to state, risk) per record, already in time order."""
     __slots__ = ("rows",)
 
-    def __init__(self):
-        self.rows: list[tuple] = []
+    def __init__(self, n_patients: int):
+        self.rows: list[list[tuple]] = [[] for _ in range(n_patients)]
 
-    def histories(self, n_patients: int) -> "Histories":
-        table = np.fromiter(chain.from_iterable(self.rows), float,
-                            count=5 * len(self.rows)).reshape(-1, 5)
-        return Histories(table[:, 0].astype(np.int64), table[:, 1], table[:, 2].astype(np.int16),
-                         table[:, 3].astype(np.int16), table[:, 4].astype(np.int32),
-                         n_patients).sorted_by_patient()
+    def histories(self) -> "Histories":
+        lengths = np.fromiter(map(len, self.rows), np.int64, count=len(self.rows))
+        table = np.fromiter(chain.from_iterable(chain.from_iterable(self.rows)), float,
+                            count=4 * int(lengths.sum())).reshape(-1, 4)
+        return Histories(np.repeat(np.arange(len(self.rows)), lengths), table[:, 0],
+                         table[:, 1].astype(np.int16), table[:, 2].astype(np.int16),
+                         table[:, 3].astype(np.int32), len(self.rows))
 
 
 @dataclass(frozen=True)
@@ -41,11 +42,6 @@ class Histories:
     target: np.ndarray
     risk: np.ndarray
     n_patients: int
-
-    def sorted_by_patient(self) -> "Histories":
-        order = np.lexsort((self.time, self.patient))
-        return Histories(self.patient[order], self.time[order], self.source[order],
-                         self.target[order], self.risk[order], self.n_patients)
 
     def table(self, patient_ids: np.ndarray, state_names, risk_names) -> pa.Table:
         """The records as a typed Arrow table with patient ids and readable names."""

@@ -57,23 +57,28 @@ class HazardFamily(ABC):
     __slots__ = ()
 
     @abstractmethod
-    def hazard(self, t: float) -> float: ...
+    def hazard(self, t: float) -> float:
+        """h(t), the event rate at clock value t."""
 
     @abstractmethod
-    def cumulative_hazard(self, t: float) -> float: ...
+    def cumulative_hazard(self, t: float) -> float:
+        """H(t), the integral of h from 0 to t."""
 
     @abstractmethod
     def time_to_reach(self, extra: float, now: float = 0.0) -> float:
         """Smallest s >= 0 with H(now + s) - H(now) = extra (inf if never reached)."""
 
     @abstractmethod
-    def hazard_array(self, t) -> np.ndarray: ...
+    def hazard_array(self, t) -> np.ndarray:
+        """`hazard` over an array."""
 
     @abstractmethod
-    def cumulative_hazard_array(self, t) -> np.ndarray: ...
+    def cumulative_hazard_array(self, t) -> np.ndarray:
+        """`cumulative_hazard` over an array."""
 
     @abstractmethod
-    def time_to_reach_array(self, extra, now=0.0) -> np.ndarray: ...
+    def time_to_reach_array(self, extra, now=0.0) -> np.ndarray:
+        """`time_to_reach` over broadcast arrays."""
 
     @abstractmethod
     def mean_time(self) -> float:
@@ -85,6 +90,7 @@ class HazardFamily(ABC):
         return log(h) if h > 0.0 else -inf
 
     def survival(self, t: float) -> float:
+        """S(t) = exp(-H(t))."""
         return exp(-self.cumulative_hazard(t))
 
     def survival_array(self, t) -> np.ndarray:
@@ -99,10 +105,14 @@ class HazardFamily(ABC):
 
     def time_to_reach_growing(self, extra: float, now: float, multiplier: float,
                               growth: float) -> float:
-        """Smallest s >= 0 with multiplier * int_0^s exp(growth v) h(now + v) dv = extra."""
+        """Smallest s >= 0 with multiplier * int_0^s exp(growth v) h(now + v) dv = extra.
+
+        Numerical here; families with a closed form override it.
+        """
         return solve_growing_numerically(self, extra, now, multiplier, growth)
 
     def time_to_reach_growing_array(self, extra, now, multiplier, growth) -> np.ndarray:
+        """`time_to_reach_growing` over broadcast arrays (a loop unless a family overrides it)."""
         extra, now, multiplier, growth = float_arrays(extra, now, multiplier, growth)
         solve = np.frompyfunc(self.time_to_reach_growing, 4, 1)
         return np.asarray(solve(extra, now, multiplier, growth), dtype=float)
@@ -137,6 +147,8 @@ def solve_growing_numerically(family: HazardFamily, extra: float, now: float,
     which is an upper bound when growth > 0; otherwise it is doubled until G passes `extra`,
     after checking that G(inf) does (if not, the event never happens: inf).  Costs tens to
     hundreds of microseconds per draw, against well under a microsecond for closed forms.
+    Meant for smooth hazards: jumps (piecewise tables, which have their own closed form) cost
+    quadrature accuracy.
     """
     def rate_at(v: float) -> float:  # exp(growth v) h(now + v), formed in logs against overflow
         return exp(growth * v + family.log_hazard(now + v))

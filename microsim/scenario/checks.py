@@ -11,12 +11,10 @@ from typing import Iterable
 import numpy as np
 
 from .errors import ScenarioError
-from .fields import Reading, Reference, did_you_mean, listing, show
+from .fields import AGE, TOLERANCE, Reading, Reference, did_you_mean, listing, show
 from .read_parameters import support
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
-TOLERANCE = 1e-9
-AGE = "age"
 NO_AGE = 'no age is known; give start.age or a population attribute named "age"'
 Occurrence = TransitionSpec | EventSpec
 
@@ -75,11 +73,12 @@ def check_states(s: Scenario) -> None:
                                           "non-absorbing states")
 
 
-def check_names(s: Scenario) -> None:
+def check_names(s: Scenario, added: Iterable[tuple[str, TransitionSpec]] = ()) -> None:
     """Transition and event names are distinct and differ from state names, so that a
-    memory's `after` means one thing."""
+    memory's `after` means one thing. `added`: a strategy's added transitions with their
+    paths, checked after the model's own."""
     taken: dict[str, str] = {}
-    for path, occurrence in occurrences(s):
+    for path, occurrence in [*occurrences(s), *added]:
         name = occurrence.name
         if name in s.state_names:
             raise ScenarioError(f"{path}.name", f"{name!r} is a state name; give transitions "
@@ -160,10 +159,19 @@ def check_memory(s: Scenario) -> None:
 
 
 def attribute_kinds(s: Scenario, reading: Reading) -> dict[str, tuple[str, tuple[str, ...]]]:
-    """Attribute name -> (continuous | categorical | yesno | column, levels)."""
+    """Attribute name -> (continuous | categorical | yesno | column, levels); `age` is
+    known from start.age too."""
     kinds: dict[str, tuple[str, tuple[str, ...]]] = {}
     if s.start.age is not None:
         kinds[AGE] = ("continuous", ())
+    kinds.update(population_kinds(s, reading))
+    return kinds
+
+
+def population_kinds(s: Scenario, reading: Reading) -> dict[str, tuple[str, tuple[str, ...]]]:
+    """The attributes each simulated patient carries (drawn, file columns, bands), as in
+    `attribute_kinds`."""
+    kinds: dict[str, tuple[str, tuple[str, ...]]] = {}
     population = s.population
     if population is not None:
         kinds.update((c, ("column", ())) for c in reading.file_columns or ())

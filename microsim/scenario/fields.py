@@ -17,6 +17,8 @@ from .errors import ScenarioError
 from .spec import REMAINDER, Ref
 
 IDENTIFIER = re.compile(r"[a-z][a-z0-9_]*")
+TOLERANCE = 1e-9  # for sums that must be 1, whole numbers of cycles, matrix symmetry
+AGE = "age"  # the attribute, clock and table axis of attained age
 REQUIRED: Any = object()  # default meaning "the key must be present"
 
 

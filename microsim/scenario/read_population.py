@@ -7,8 +7,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .fields import (ANY, CORRELATION, POSITIVE, PROBABILITY, REQUIRED, SHARE, Node,
-                     did_you_mean, listing, show)
+from .fields import (AGE, ANY, CORRELATION, POSITIVE, PROBABILITY, REQUIRED, SHARE,
+                     TOLERANCE, Node, did_you_mean, listing, show)
 from .spec import AttributeSpec, DerivedSpec, PopulationSpec
 
 POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
@@ -20,8 +20,6 @@ POSITIVE_ATTRIBUTE_KEYS = {"sd", "sdlog", "alpha", "beta", "shape", "scale"}
 CORRELATION_KEYS = ("attributes", "matrix")
 DERIVED_KEYS = ("name", "from", "edges", "labels")
 FILE_SUFFIXES = (".csv", ".parquet")
-AGE = "age"
-TOLERANCE = 1e-9
 MIN_TRUNCATED_MASS = 1e-6  # less than this between lower and upper: nobody can be drawn
 
 

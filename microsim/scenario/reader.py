@@ -2,7 +2,8 @@
 
 The first pass walks the document section by section with `Node`s, so every refusal
 carries its field path. Cross-references and whole-model rules (row sums, reachability,
-model kind, attributes) are the second pass, in checks.py.
+model kind, attributes) are the second pass, in checks.py (and, for strategies, economics
+and uncertainty, in read_strategies.py).
 """
 from __future__ import annotations
 
@@ -15,15 +16,18 @@ from typing import Any
 
 from .checks import check_scenario
 from .errors import ScenarioError
-from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, UTILITY, Node, Reading, did_you_mean,
-                     listing, show)
+from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading,
+                     did_you_mean, listing, show)
 from .read_parameters import read_parameters, read_tables
 from .read_population import read_population
+from .read_strategies import (ECONOMICS_KEYS, UNCERTAINTY_KEYS, check_analysis, read_economics,
+                              read_strategies, read_uncertainty)
 from .read_transitions import read_events, read_transitions
 from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
-            "events", "parameters", "tables", "outcomes", "population", "simulation")
+            "events", "parameters", "tables", "outcomes", "population", "simulation",
+            "strategies", "economics", "uncertainty")
 TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
@@ -33,7 +37,6 @@ CORRECTIONS = ("none", "half-cycle", "trapezoidal", "simpson")
 LIFETIME = "lifetime"
 DEFAULT_LIFETIME_CAP = 100.0
 MAX_CYCLES = 1_000_000  # beyond this a run cannot hold its traces in memory
-TOLERANCE = 1e-9
 UNIT_WORD = re.compile(r"[A-Za-z]+")
 TOML_POSITION = re.compile(r"\s*\(at (?:line (\d+), column (\d+)|end of document)\)\s*$")
 
@@ -84,6 +87,10 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
     reading = Reading()
     doc = Node(data, "", reading, TOP_KEYS)
     base = Path(source).parent if source is not None else Path.cwd()
+    title = doc.text("title", nonempty=True)
+    description = doc.text("description", "")
+    provenance = doc.text("provenance", nonempty=True)
+    time = read_time(doc.node("time", TIME_KEYS))
     parameters = read_parameters(doc.node("parameters", None, default=None))
     tables = read_tables(doc.node("tables", None, default=None))
     for name in tables:
@@ -92,10 +99,7 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
                                 "parameters and tables share one set of names")
     states = read_states(doc.nodes("states", None, required=True))
     draft = Scenario(
-        title=doc.text("title", nonempty=True),
-        description=doc.text("description", ""),
-        provenance=doc.text("provenance", nonempty=True),
-        time=read_time(doc.node("time", TIME_KEYS)),
+        title=title, description=description, provenance=provenance, time=time,
         states=states,
         start=read_start(doc.node("start", START_KEYS), [s.name for s in states]),
         transitions=read_transitions(doc.nodes("transitions", None, required=True), tables),
@@ -105,9 +109,13 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
         outcomes=read_outcomes(doc.node("outcomes", OUTCOMES_KEYS, default=None)),
         population=read_population(doc.node("population", None, default=None), base),
         simulation=read_simulation(doc.node("simulation", SIMULATION_KEYS, default=None)),
+        strategies=read_strategies(doc.nodes("strategies", None), tables, time, read_states),
+        economics=read_economics(doc.node("economics", ECONOMICS_KEYS, default=None)),
+        uncertainty=read_uncertainty(doc.node("uncertainty", UNCERTAINTY_KEYS, default=None)),
         source=Path(source) if source is not None else None,
     )
-    return replace(draft, warnings=tuple(check_scenario(draft, reading)))
+    found = check_scenario(draft, reading)
+    return replace(draft, warnings=tuple(found + check_analysis(draft, reading)))
 
 
 def read_time(node: Node) -> TimeSpec:

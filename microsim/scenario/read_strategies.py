@@ -1,0 +1,561 @@
+"""Reading [[strategies]], [economics] and [uncertainty]: what is compared, at which
+willingness to pay, and how the PSA draws its parameters.
+
+A strategy's added states and transitions are read and checked by the base model's own
+readers and checks, run on the merged model (base + added) with their paths moved under
+the strategy (`strategies.<name>.transitions.<from>-><to>...`), so an added transition
+obeys exactly the rules of [[transitions]].
+"""
+from __future__ import annotations
+
+import math
+from contextlib import contextmanager
+from dataclasses import replace
+from typing import Callable, Iterable, Iterator
+
+import numpy as np
+
+from .checks import (check_age_known, check_effects, check_kind, check_lifetime, check_memory,
+                     check_names, check_row, check_states, may_be_positive, occurrences,
+                     population_kinds, reachable_from_start, unknown_state)
+from .errors import ScenarioError
+from .fields import (ANY, CORRELATION, HAZARD_RATIO, NON_NEGATIVE, POSITIVE, RATE, TOLERANCE,
+                     Node, Reading, Role, describe, did_you_mean, listing, show)
+from .read_transitions import read_transitions
+from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec,
+                   Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec, TransitionSpec,
+                   UncertaintySpec)
+
+STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
+                 "discontinuation", "changes", "states", "transitions")
+ELIGIBLE_KEYS = ("all", "any")
+NUMBER_TESTS = ("above", "at_least", "below", "at_most")
+LEVEL_TESTS = ("equals", "one_of")
+CONDITION_KEYS = ("attribute",) + NUMBER_TESTS + LEVEL_TESTS
+TEST_WORDS = {"above": "above", "at_least": "at least", "below": "below", "at_most": "at most",
+              "equals": "equal to"}
+RISK_KEYS = ("transition", "hazard_ratio")
+ON_TREATMENT_KEYS = ("state", "cost", "utility")
+CHANGE_KEYS = RISK_KEYS + ON_TREATMENT_KEYS
+WHILE_TREATED = "while_treated"
+ECONOMICS_KEYS = ("threshold", "thresholds", "currency", "precision")
+THRESHOLDS_KEYS = ("from", "to", "step")
+MAX_THRESHOLDS = 10_000
+UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
+CORRELATION_KEYS = ("parameters", "matrix")
+DIRICHLET_KEYS = ("parameters", "alphas")
+DIRICHLET_SUM_TOLERANCE = 1e-6
+MOVED_PATHS = ("states.", "transitions.")  # where the base readers and checks report
+
+UPTAKE = Role("an uptake share", 0.0, 1.0)
+TREATMENT_COST = Role("a treatment cost", 0.0)
+
+
+# -- paths of added states and transitions ----------------------------------------------
+
+def moved(path: str, prefix: str) -> str:
+    """A base-model path (`transitions.a->b.rate`) moved under a strategy's prefix."""
+    return f"{prefix}.{path}" if path.startswith(MOVED_PATHS) else path
+
+
+@contextmanager
+def under(prefix: str, reading: Reading | None = None) -> Iterator[None]:
+    """Run a base-model reader or check on a strategy's added states and transitions,
+    moving the paths it reports, and the paths of the names it records, under `prefix`."""
+    first = len(reading.references) if reading else 0
+    try:
+        yield
+    except ScenarioError as error:
+        raise ScenarioError(moved(error.path, prefix), error.message) from None
+    if reading:
+        reading.references[first:] = [replace(r, path=moved(r.path, prefix))
+                                      for r in reading.references[first:]]
+
+
+class AddedTransition(Node):
+    """An entry of [[strategies.transitions]]: the keys of [[transitions]] plus
+    while_treated, so the base reader refuses typos and lists every allowed key."""
+
+    def only(self, allowed: Iterable[str], where: str = "") -> None:
+        super().only(tuple(allowed) + (WHILE_TREATED,), where)
+
+
+# -- first pass: [[strategies]] -----------------------------------------------------------
+
+def read_strategies(nodes: list[Node], tables: dict[str, TableSpec], time: TimeSpec,
+                    read_states: Callable[[list[Node]], tuple[StateSpec, ...]]
+                    ) -> tuple[StrategySpec, ...]:
+    """`read_states` is the reader of [[states]], reused for added states."""
+    strategies: list[StrategySpec] = []
+    for node in nodes:
+        name = node.name("name")
+        if any(s.name == name for s in strategies):
+            node.fail("name", f"duplicate strategy name {name!r}; strategy names must be distinct")
+        node.path = f"strategies.{name}"
+        node.only(STRATEGY_KEYS)
+        strategies.append(read_strategy(node, name, tables, time, read_states))
+    if strategies:
+        check_comparator(strategies)
+    return tuple(strategies)
+
+
+def check_comparator(strategies: list[StrategySpec]) -> None:
+    names = [s.name for s in strategies]
+    if len(strategies) < 2:
+        raise ScenarioError("strategies", f"has only {names[0]!r}; give at least two strategies: "
+                            "a comparator (comparator = true) and one to compare with it")
+    chosen = [s.name for s in strategies if s.comparator]
+    if not chosen:
+        raise ScenarioError("strategies", "no strategy has comparator = true; mark the one the "
+                            f"others are compared with (strategies: {listing(names)})")
+    if len(chosen) > 1:
+        raise ScenarioError(f"strategies.{chosen[1]}.comparator",
+                            f"{listing(repr(n) for n in chosen)} all have comparator = true; "
+                            "exactly one strategy is the comparator")
+
+
+def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: TimeSpec,
+                  read_states: Callable[[list[Node]], tuple[StateSpec, ...]]) -> StrategySpec:
+    start = node.number("start", 0.0, role=NON_NEGATIVE)
+    end = f"the end of the horizon ({show(time.end)} {time.unit})"
+    if start >= time.end:
+        node.fail("start", f"{show(start)} is at or beyond {end}; the treatment would never begin")
+    stop = node.number("stop", None)
+    if stop is not None and stop <= start:
+        node.fail("stop", f"must be above start ({show(start)}), got {show(stop)}")
+    if stop is not None and stop > time.end * (1 + TOLERANCE):
+        node.fail("stop", f"{show(stop)} is beyond {end}; stop at or before it, or leave stop "
+                          "out to treat until the end")
+    with under(node.path, node.reading):
+        states = read_states(node.nodes("states", None))
+    transitions, gated = read_added_transitions(node, tables)
+    return StrategySpec(
+        name=name, label=node.text("label", name, nonempty=True),
+        comparator=node.flag("comparator", False),
+        eligible=read_eligible(node.node("eligible", ELIGIBLE_KEYS, default=None)),
+        uptake=node.ref("uptake", UPTAKE, 1.0), start=start, stop=stop,
+        discontinuation=node.ref("discontinuation", RATE, 0.0),
+        changes=tuple(read_change(n) for n in node.nodes("changes", CHANGE_KEYS)),
+        states=states, transitions=transitions, while_treated=gated)
+
+
+def read_added_transitions(node: Node, tables: dict[str, TableSpec]
+                           ) -> tuple[tuple[TransitionSpec, ...], tuple[bool, ...]]:
+    transitions, gated = [], []
+    for entry in node.nodes("transitions", None):
+        added = AddedTransition(entry.data, entry.path, entry.reading)
+        with under(node.path, node.reading):
+            transitions += read_transitions([added], tables)
+            gated.append(added.flag(WHILE_TREATED, True))
+    return tuple(transitions), tuple(gated)
+
+
+def read_eligible(node: Node | None) -> EligibilitySpec | None:
+    if node is None:
+        return None
+    groups = {key: tuple(read_condition(n) for n in node.nodes(key, CONDITION_KEYS))
+              for key in ELIGIBLE_KEYS}
+    if not any(groups.values()):
+        node.fail(None, "needs all = [...] and/or any = [...] (conditions on patient "
+                        "attributes); leave out eligible to make everyone eligible")
+    return EligibilitySpec(**groups)
+
+
+def read_condition(node: Node) -> ConditionSpec:
+    attribute = node.name("attribute")
+    test = node.one_of(NUMBER_TESTS + LEVEL_TESTS)
+    if test in NUMBER_TESTS:
+        value = node.number(test)
+    elif test == "one_of":
+        value = node.texts(test)
+    elif isinstance(node.raw(test), bool):
+        value = node.flag(test, False)
+    elif isinstance(node.raw(test), str):
+        value = node.text(test, nonempty=True)
+    else:
+        value = node.number(test, expect="a level (text), true or false, or a number")
+    return ConditionSpec(attribute, test, value)
+
+
+def read_change(node: Node) -> ChangeSpec:
+    if any(node.has(k) for k in RISK_KEYS):
+        for key in ON_TREATMENT_KEYS:
+            if node.has(key):
+                node.fail(key, "cannot be combined with transition and hazard_ratio; a change "
+                               "either scales a risk (transition with hazard_ratio) or adds cost "
+                               "and utility on treatment (cost, utility, optionally state); give "
+                               "them as two changes")
+        return ChangeSpec(risk=node.text("transition", nonempty=True),
+                          hazard_ratio=node.ref("hazard_ratio", HAZARD_RATIO))
+    if not any(node.has(k) for k in ("cost", "utility")):
+        node.fail(None, "needs transition with hazard_ratio, or cost and/or utility (optionally "
+                        "for one state)")
+    return ChangeSpec(state=node.name("state", None), cost=node.ref("cost", TREATMENT_COST, 0.0),
+                      utility=node.ref("utility", ANY, 0.0))
+
+
+# -- first pass: [economics] and [uncertainty] ------------------------------------------------
+
+def read_economics(node: Node | None) -> EconomicsSpec:
+    defaults = EconomicsSpec()
+    if node is None:
+        return defaults
+    thresholds = defaults.thresholds
+    curve = node.node("thresholds", THRESHOLDS_KEYS, default=None)
+    if curve is not None:
+        low = curve.number("from", defaults.thresholds[0], role=NON_NEGATIVE)
+        high = curve.number("to", defaults.thresholds[1], role=NON_NEGATIVE)
+        step = curve.number("step", defaults.thresholds[2], role=POSITIVE)
+        if high <= low:
+            curve.fail("to", f"must be above from ({show(low)}), got {show(high)}")
+        points = math.floor((high - low) / step + TOLERANCE) + 1
+        if points > MAX_THRESHOLDS:
+            curve.fail("step", f"{show(step)} gives {points} thresholds from {show(low)} to "
+                               f"{show(high)}; at most {MAX_THRESHOLDS} are supported (use a "
+                               "larger step)")
+        thresholds = (low, high, step)
+    return EconomicsSpec(
+        threshold=node.number("threshold", defaults.threshold, role=NON_NEGATIVE),
+        thresholds=thresholds,
+        currency=node.text("currency", defaults.currency, nonempty=True),
+        precision=node.number("precision", None, role=POSITIVE))
+
+
+def read_uncertainty(node: Node | None) -> UncertaintySpec:
+    defaults = UncertaintySpec()
+    if node is None:
+        return defaults
+    names, matrix = read_parameter_correlation(node.node("correlation", CORRELATION_KEYS, None))
+    dirichlets = []
+    for entry in node.nodes("dirichlet", DIRICHLET_KEYS):
+        members = entry.names("parameters")
+        if len(members) < 2:
+            entry.fail("parameters", "needs at least two parameters (a Dirichlet draws a row "
+                                     "of shares that sums to 1)")
+        alphas = entry.numbers("alphas", role=POSITIVE)
+        if len(alphas) != len(members):
+            entry.fail("alphas", f"has {len(alphas)} alphas for {len(members)} parameters; give "
+                                 "one alpha per parameter")
+        dirichlets.append((members, alphas))
+    return UncertaintySpec(
+        draws=node.whole("draws", defaults.draws, minimum=1),
+        patients=node.whole("patients", None, minimum=1),
+        correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets))
+
+
+def read_parameter_correlation(node: Node | None
+                               ) -> tuple[tuple[str, ...], tuple[tuple[float, ...], ...]]:
+    """Names and a correlation matrix: square, unit diagonal, symmetric and positive
+    semi-definite (smallest eigenvalue from numpy.linalg.eigvalsh at least -1e-9)."""
+    if node is None:
+        return (), ()
+    names = node.names("parameters")
+    if len(names) < 2:
+        node.fail("parameters", "needs at least two parameters to correlate")
+    rows = node.raw("matrix", expect=f"a list of {len(names)} rows")
+    if isinstance(rows, list) and len(rows) != len(names):
+        node.fail("matrix", f"has {len(rows)} rows; it needs {len(names)} (one per parameter)")
+    matrix = node.matrix("matrix", len(names), CORRELATION)
+    for i in range(len(names)):
+        if abs(matrix[i][i] - 1.0) > TOLERANCE:
+            node.fail(f"matrix[{i}][{i}]", f"the diagonal must be 1, got {show(matrix[i][i])}")
+        for j in range(i):
+            if abs(matrix[i][j] - matrix[j][i]) > TOLERANCE:
+                node.fail(f"matrix[{i}][{j}]", f"{show(matrix[i][j])} differs from "
+                          f"matrix[{j}][{i}] = {show(matrix[j][i])}; the matrix must be "
+                          "symmetric")
+    smallest = float(np.linalg.eigvalsh(np.array(matrix)).min())
+    if smallest < -TOLERANCE:
+        node.fail("matrix", f"is not positive semi-definite: its smallest eigenvalue is "
+                            f"{show(smallest)}; no set of parameters can have these correlations")
+    return names, matrix
+
+
+# -- second pass ------------------------------------------------------------------------------
+
+def check_analysis(s: Scenario, reading: Reading) -> list[str]:
+    """Cross-checks of the strategies, economics and uncertainty sections (after the base
+    model's own checks passed); returns their warnings."""
+    found: list[str] = []
+    for strategy in s.strategies:
+        found += check_strategy(s, reading, strategy)
+    found += check_uncertainty(s)
+    low, high, _ = s.economics.thresholds
+    if not low <= s.economics.threshold <= high:
+        found.append(f"economics.threshold: {show(s.economics.threshold)} is outside the "
+                     f"acceptability-curve range ({show(low)} to {show(high)}); the curve does "
+                     "not show it")
+    return found
+
+
+def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> list[str]:
+    prefix = f"strategies.{strategy.name}"
+    found = []
+    if strategy.eligible is not None:
+        reason = check_eligible(s, reading, strategy.eligible, f"{prefix}.eligible")
+        if reason:
+            found.append(f"{prefix}.eligible: no patient can be eligible: {reason}; the "
+                         "strategy treats no one")
+    merged = merged_model(s, reading, strategy, prefix)
+    check_changes(merged, strategy, prefix)
+    if not may_be_positive(s, strategy.uptake):
+        found.append(f"{prefix}.uptake: is 0, so no one takes the treatment up; the strategy "
+                     "runs the model as written")
+    changes = bool(strategy.changes or strategy.transitions)
+    if strategy.comparator and changes:
+        found.append(f"{prefix}: is the comparator but has changes or added transitions; a "
+                     "comparator normally runs the model as written (check that this is "
+                     "intended)")
+    if not strategy.comparator and not changes:
+        found.append(f"{prefix}: changes nothing (no changes and no added transitions), so it "
+                     "gives the same results as the comparator")
+    reachable, _ = reachable_from_start(merged)
+    found += [f"{prefix}.states.{st.name}: not reachable from the start (no transition that can "
+              "happen leads to it)" for st in strategy.states if st.name not in reachable]
+    return found
+
+
+def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str) -> Scenario:
+    """The model with the strategy's added states and transitions, checked by the rules of
+    the base model."""
+    if not (strategy.states or strategy.transitions):
+        return s
+    taken = {name: f"states.{name}" for name in s.state_names}
+    taken.update((o.name, path) for path, o in occurrences(s))
+    for state in strategy.states:
+        if state.name in taken:
+            raise ScenarioError(f"{prefix}.states.{state.name}.name", f"{state.name!r} is already "
+                                f"the name of {taken[state.name]}; give added states new names")
+    merged = replace(s, states=s.states + strategy.states,
+                     transitions=s.transitions + strategy.transitions)
+    paths = [f"{prefix}.transitions.{t.key}" for t in strategy.transitions]
+    for path, t in zip(paths, strategy.transitions):
+        if (t.probability is not None) != s.discrete:
+            uses, others = (("a rate or hazard", "per-cycle probabilities") if s.discrete
+                            else ("a per-cycle probability", "rates or hazards"))
+            raise ScenarioError(path, f"uses {uses}, but the model's transitions use {others}; "
+                                "added transitions use the model's kind")
+    with under(prefix):
+        check_states(merged)
+    check_names(replace(s, states=merged.states), zip(paths, strategy.transitions))
+    with under(prefix):
+        check_kind(merged)
+        check_memory(merged)
+        check_effects(merged, reading)
+        check_age_known(merged, reading)
+        if s.discrete:
+            check_added_rows(s, merged, strategy, paths)
+    if s.time.horizon is None:
+        try:
+            check_lifetime(merged)
+        except ScenarioError as error:
+            raise ScenarioError(f"{prefix}.transitions", f"with them the horizon "
+                                f"{error.message}") from None
+    return merged
+
+
+def check_added_rows(s: Scenario, merged: Scenario, strategy: StrategySpec,
+                     paths: list[str]) -> None:
+    """Rows of states with added transitions still sum properly; a row of an existing state
+    needs a remainder, which makes room for the added probability on treatment and takes it
+    back off treatment."""
+    for path, t in zip(paths, strategy.transitions):
+        row = [r for r in merged.transitions if r.source == t.source]
+        if t.source in s.state_names and not any(r.probability == REMAINDER for r in row):
+            raise ScenarioError(path, f"{t.source!r} has no transition with probability = "
+                                '"remainder"; a transition added from an existing state needs '
+                                "one in its row to make room for the added probability; add "
+                                f"one (often from {t.source!r} to itself)")
+    for source in dict.fromkeys(t.source for t in strategy.transitions):
+        check_row(merged, source)
+
+
+def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str) -> None:
+    risks = {o.name: o for _, o in occurrences(merged)}
+    risks.update((t.key, t) for t in merged.transitions)
+    names = list(dict.fromkeys(o.name for _, o in occurrences(merged)))
+    absorbing = {st.name for st in merged.states if st.absorbing}
+    for i, change in enumerate(strategy.changes):
+        here = f"{prefix}.changes[{i}]"
+        if change.risk is not None and change.risk not in risks:
+            raise ScenarioError(f"{here}.transition", f"{change.risk!r} is not a transition or "
+                                f"event{did_you_mean(change.risk, names)}; give a transition "
+                                f'name or "from->to" pair, or an event name: {listing(names)}')
+        if change.risk is not None and risks[change.risk].probability == REMAINDER:
+            raise ScenarioError(f"{here}.transition", f"{change.risk!r} takes the remainder of "
+                                "its row (what the other transitions leave), so a hazard ratio "
+                                "cannot act on it; change the other transitions of the row")
+        if change.state is not None and change.state not in merged.state_names:
+            raise ScenarioError(f"{here}.state", unknown_state(change.state, merged))
+        if change.state in absorbing:
+            raise ScenarioError(f"{here}.state", f"{change.state!r} is absorbing; treatment "
+                                "costs and utilities apply in non-absorbing states")
+
+
+# -- eligibility --------------------------------------------------------------------------------
+
+def check_eligible(s: Scenario, reading: Reading, eligible: EligibilitySpec, path: str
+                   ) -> str | None:
+    """Refuse conditions the population cannot answer; say why nobody can be eligible
+    when the attribute distributions make the group certainly empty (else None)."""
+    kinds = population_kinds(s, reading)
+    for group in ELIGIBLE_KEYS:
+        for i, condition in enumerate(getattr(eligible, group)):
+            check_condition(s, kinds, condition, f"{path}.{group}[{i}]")
+    if not eligible.any:
+        return empty_reason(s, eligible.all)
+    reasons = [empty_reason(s, eligible.all + (c,)) for c in eligible.any]
+    return "; ".join(dict.fromkeys(reasons)) if all(reasons) else None
+
+
+def check_condition(s: Scenario, kinds: dict[str, tuple[str, tuple[str, ...]]],
+                    condition: ConditionSpec, here: str) -> None:
+    name, test, value = condition.attribute, condition.test, condition.value
+    if s.population is None:
+        raise ScenarioError(f"{here}.attribute", f"the scenario has no [population], so no "
+                            f"attribute {name!r}; define it under [[population.attributes]]")
+    if name not in kinds:
+        raise ScenarioError(f"{here}.attribute", f"the population has no attribute {name!r}"
+                            f"{did_you_mean(name, kinds)}; attributes: {listing(kinds)}")
+    kind, levels = kinds[name]
+    at = f"{here}.{test}"
+    level_list = listing(repr(level) for level in levels)
+    if kind == "categorical" and test in NUMBER_TESTS:
+        raise ScenarioError(at, f"{name!r} is categorical; {test} compares numbers. Use equals "
+                            f"or one_of with its levels: {level_list}")
+    if kind == "yesno" and test != "equals":
+        raise ScenarioError(at, f"{name!r} is a yes/no attribute; use equals = true or "
+                            "equals = false")
+    if kind == "yesno" and not isinstance(value, bool):
+        raise ScenarioError(at, f"{name!r} is a yes/no attribute; equals needs true or false, "
+                            f"got {describe(value)}")
+    if kind == "continuous" and test == "one_of":
+        raise ScenarioError(at, f"{name!r} is continuous; one_of lists levels of a categorical "
+                            "attribute. Use above, at_least, below or at_most")
+    if kind == "continuous" and test == "equals" and not isinstance(value, float):
+        raise ScenarioError(at, f"{name!r} is continuous; equals needs a number, got "
+                            f"{describe(value)}")
+    if kind == "categorical":
+        for j, level in enumerate(value if test == "one_of" else (value,)):
+            if level not in levels:
+                where = f"{at}[{j}]" if test == "one_of" else at
+                raise ScenarioError(where, f"{describe(level)} is not a level of {name!r}; "
+                                    f"levels: {level_list}")
+
+
+def empty_reason(s: Scenario, conditions: tuple[ConditionSpec, ...]) -> str | None:
+    """Why no patient can meet every one of `conditions` (None when some can, as far as the
+    attribute distributions tell; file columns are not read here)."""
+    for name in dict.fromkeys(c.attribute for c in conditions):
+        on = [c for c in conditions if c.attribute == name]
+        attribute = next((a for a in s.population.attributes if a.name == name), None)
+        if attribute is not None and attribute.continuous:
+            reason = empty_range(name, marginal(attribute), on)
+        else:
+            shares = level_shares(s, name, attribute)
+            reason = None if shares is None else empty_levels(name, shares, on)
+        if reason:
+            return reason
+    return None
+
+
+def marginal(attribute: AttributeSpec):
+    """The scipy.stats distribution of a continuous attribute (imported on use, because
+    microsim.population itself imports this package)."""
+    from microsim.population import marginal_distribution
+    return marginal_distribution(attribute)
+
+
+def share_between(distribution, low: float, high: float) -> float:
+    """P(low < X < high), from whichever tail keeps its precision."""
+    if high <= low:
+        return 0.0
+    return max(float(distribution.cdf(high) - distribution.cdf(low)),
+               float(distribution.sf(low) - distribution.sf(high)))
+
+
+def empty_range(name: str, distribution, conditions: list[ConditionSpec]) -> str | None:
+    for c in conditions:
+        if c.test == "equals":
+            return f"{name!r} is continuous, so it equals {show(c.value)} with probability 0"
+    lowest, highest = distribution.support()
+    low, high = lowest, highest
+    for c in conditions:
+        if c.test in ("above", "at_least"):
+            low = max(low, c.value)
+        else:
+            high = min(high, c.value)
+    if share_between(distribution, low, high) > 0:
+        return None
+    tests = " and ".join(f"{TEST_WORDS[c.test]} {show(c.value)}" for c in conditions)
+    return f"{name!r} takes values from {show(lowest)} to {show(highest)}, none of them {tests}"
+
+
+def level_shares(s: Scenario, name: str, attribute: AttributeSpec | None) -> dict | None:
+    """The share of patients at each value of a categorical, yes/no or banded attribute
+    (None for file columns and bands of them)."""
+    if attribute is not None and attribute.distribution == "yesno":
+        prevalence = attribute.params["prevalence"]
+        return {True: prevalence, False: 1.0 - prevalence}
+    if attribute is not None:
+        return dict(zip(attribute.params["levels"], attribute.params["shares"]))
+    band = next((d for d in s.population.derived if d.name == name), None)
+    source = next((a for a in s.population.attributes if band and a.name == band.source), None)
+    if source is None:
+        return None
+    distribution = marginal(source)
+    edges = band.edges + (math.inf,)
+    return {label: share_between(distribution, edges[i], edges[i + 1])
+            for i, label in enumerate(band.labels)}
+
+
+def empty_levels(name: str, shares: dict, conditions: list[ConditionSpec]) -> str | None:
+    allowed = set(shares)
+    for c in conditions:
+        allowed &= set(c.value if c.test == "one_of" else (c.value,))
+    if not allowed:
+        return f"no value of {name!r} meets every condition on it"
+    if sum(shares[v] for v in allowed) > 0:
+        return None
+    values = " or ".join(describe(v) for v in shares if v in allowed)
+    return f"no patient has {name!r} = {values} (share 0)"
+
+
+# -- uncertainty --------------------------------------------------------------------------------
+
+def check_uncertainty(s: Scenario) -> list[str]:
+    spec, parameters = s.uncertainty, s.parameters
+    for i, name in enumerate(spec.correlation_parameters):
+        path = f"uncertainty.correlation.parameters[{i}]"
+        defined(s, name, path)
+        distribution = parameters[name].distribution
+        if distribution is None or distribution.family == "fixed":
+            raise ScenarioError(path, f"{name!r} has no distribution that varies, so the PSA "
+                                "does not draw it; only parameters with a distribution can be "
+                                "correlated")
+    found = []
+    grouped: dict[str, int] = {}
+    for i, (names, _) in enumerate(spec.dirichlets):
+        for j, name in enumerate(names):
+            path = f"uncertainty.dirichlet[{i}].parameters[{j}]"
+            defined(s, name, path)
+            if parameters[name].distribution is not None:
+                raise ScenarioError(path, f"{name!r} has its own distribution "
+                                    f"(parameters.{name}.distribution); a Dirichlet group "
+                                    "draws its members, so remove that distribution")
+            if name in grouped:
+                raise ScenarioError(path, f"{name!r} is already in uncertainty.dirichlet"
+                                    f"[{grouped[name]}]; a parameter can be in one group only")
+            grouped[name] = i
+        total = sum(parameters[name].value for name in names)
+        if abs(total - 1.0) > DIRICHLET_SUM_TOLERANCE:
+            found.append(f"uncertainty.dirichlet[{i}]: the base values of {listing(names)} sum "
+                         f"to {show(total)}, not 1; every PSA draw of the group sums to 1")
+    return found
+
+
+def defined(s: Scenario, name: str, path: str) -> None:
+    if name not in s.parameters:
+        raise ScenarioError(path, f"no parameter named {name!r}"
+                            f"{did_you_mean(name, s.parameters)}; defined: "
+                            f"{listing(s.parameters)}")
