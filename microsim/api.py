@@ -15,7 +15,7 @@ from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.analytic import generators, piece_breaks
 from microsim.effects import cohort_multipliers
 from microsim.markov import (NoUniqueSteadyState, absorption, absorption_continuous,
-                             steady_state, steady_state_continuous)
+                             probabilities_from_rates, steady_state, steady_state_continuous)
 from microsim.outcomes import outcome_table
 
 
@@ -54,6 +54,8 @@ def chain_summary(model: BoundModel) -> dict[str, pd.DataFrame | str]:
     note = ("The model changes with age or time; steady state and absorption describe the "
             "chain as it is at time 0." if varying else "")
     out: dict[str, pd.DataFrame | str] = {"note": note}
+    if not model.discrete:
+        out["cycle_probabilities"] = cycle_probabilities(model, matrix, exp)
     try:
         pi = (steady_state(matrix, names) if model.discrete
               else steady_state_continuous(matrix, names))
@@ -84,4 +86,17 @@ def absorption_table(model: BoundModel, exp: Expansion, a, unit: str) -> pd.Data
         ends = pd.Series(a.probabilities_from(start), index=absorbing_states).groupby(level=0).sum()
         rows.append({"from_state": name, f"expected_time_{unit}": a.expected_time_from(start) * scale,
                      **{f"ends_in_{k}": v for k, v in ends.items()}})
+    return pd.DataFrame(rows)
+
+
+def cycle_probabilities(model: BoundModel, generator: np.ndarray, exp: Expansion) -> pd.DataFrame:
+    """Per-cycle transition probabilities of a rate model at time 0, exactly: the matrix
+    exponential expm(Q * cycle) of the rate matrix, which accounts for competing risks and
+    several moves within a cycle (not the one-rate-at-a-time 1 - exp(-r t)), from each
+    state entered afresh, collapsed onto the model's states."""
+    P = probabilities_from_rates(generator, model.cycle) @ exp.collapse()
+    rows = []
+    for i, name in enumerate(model.states):
+        counts = exp.capped(tuple(int(c.after == name) for c in exp.counters))
+        rows.append({"from_state": name, **dict(zip(model.states, P[exp.index(i, 0, counts)]))})
     return pd.DataFrame(rows)

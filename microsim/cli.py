@@ -75,6 +75,10 @@ def command_summary(args) -> int:
     summary = chain_summary(model)
     tables = {}
     print(f"Summary — {scenario.title}")
+    if "cycle_probabilities" in summary:
+        show(f"Per-cycle transition probabilities (cycle {model.cycle:g} {scenario.time.unit}; "
+             "exact, from the matrix exponential of the rate matrix)", summary["cycle_probabilities"])
+        tables["cycle_probabilities"] = summary["cycle_probabilities"]
     for key in ("steady_state", "absorption"):
         if key in summary:
             show(key.replace("_", " ").capitalize(), summary[key])
@@ -97,6 +101,30 @@ def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
     from microsim.workflow import run_scenario
     return run_scenario(args)
+
+
+def command_validate(args) -> int:
+    """Simulate the model (or one strategy) and compare it with its analytic counterpart."""
+    from microsim.workflow import validate
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    target = out_dir(args, path)
+    check = validate(path, args.patients, args.seed, args.strategy,
+                     histories=target / "histories.parquet" if args.histories else None)
+    c = check.comparison
+    print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
+          f"patients, seed {check.simulation.seed}\nCounterpart: {c.counterpart}")
+    worst = c.shares.reindex(c.shares.z.abs().sort_values(ascending=False).index)
+    show("State shares with the largest |z| (simulated, analytic, Monte-Carlo SE)", worst, rows=12)
+    show("Outcomes per patient", c.outcomes)
+    print(f"\n{c.verdict}")
+    show("The 'average patient' cohort against the simulated population", c.average_patient)
+    print(f"\n{c.average_verdict}")
+    write(args, path, {"validation_shares": c.shares, "validation_outcomes": c.outcomes,
+                       "average_patient": c.average_patient}, started,
+          seed=check.simulation.seed, verdict=c.verdict)
+    print(f"\n{CAUTION}")
+    return 0
 
 
 def command_population(args) -> int:
@@ -159,6 +187,12 @@ def build_parser() -> argparse.ArgumentParser:
     trace.add_argument("--rows", type=int, default=30, help="rows of the trace to print (default 30)")
     add("summary", command_summary,
         "Steady state, absorption times and probabilities, expected outcomes of the cohort.")
+    validate = add("validate", command_validate, "Simulate the model and compare it, state by "
+                   "state and time by time, with its analytic counterpart; say if they agree.")
+    population_options(validate)
+    validate.add_argument("--strategy", help="validate this strategy instead of the model as written")
+    validate.add_argument("--histories", action="store_true",
+                          help="also write every patient's history as histories.parquet")
     population_options(add("population", command_population,
                            "Preview the generated population: summary per attribute, correlations."))
     population_options(add("sensitivity", command_sensitivity,

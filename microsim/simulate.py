@@ -7,6 +7,7 @@ history does not depend on the batch size or on which other patients are simulat
 """
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -60,6 +61,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     ids = patients[PATIENT].to_numpy()
     states, exposures, transitions = [], [], 0
     writer = None
+    partial = None if histories is None else Path(histories).with_suffix(".parquet.partial")
     try:
         for lo in range(0, len(ids), batch_size):
             part = slice(lo, lo + batch_size)
@@ -68,13 +70,17 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             states.append(aggregate.grid_states(h, grid))
             exposures.append(aggregate.exposure(model, h, batch.window))
             transitions += int(np.sum(h.risk >= 0))
-            if histories is not None:
+            if partial is not None:
                 table = h.table(ids[part], model.states, [r.name for r in model.risks])
-                writer = writer or pq.ParquetWriter(histories, table.schema)
+                if writer is None:
+                    partial.parent.mkdir(parents=True, exist_ok=True)
+                    writer = pq.ParquetWriter(partial, table.schema)
                 writer.write_table(table)
     finally:
         if writer is not None:
             writer.close()
+    if writer is not None:
+        os.replace(partial, histories)  # complete, so it takes its name
     return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)
 

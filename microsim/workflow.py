@@ -20,7 +20,7 @@ from microsim.compare import Comparison, compare
 from microsim.decision import Decision, decide, run_strategies, strategy_names
 from microsim.population import draw_population
 from microsim.psa import PsaResult, run_psa
-from microsim.scenario import Scenario, read_scenario
+from microsim.scenario import Scenario, ScenarioError, read_scenario
 from microsim.simulate import Simulation, cohort_patients, report_grid, simulate
 
 DEFAULT_PATIENTS = 2000
@@ -32,6 +32,27 @@ def patients_for(scenario: Scenario, size: int | None, seed: int) -> pd.DataFram
     if spec is not None and (spec.attributes or spec.file):
         return draw_population(spec, seed, np.arange(n))
     return cohort_patients(n)
+
+
+@dataclass(frozen=True)
+class Validation:
+    simulation: Simulation
+    comparison: Comparison
+
+
+def validate(path: Path, patients: int | None = None, seed: int | None = None,
+             strategy: str | None = None, histories: Path | None = None) -> Validation:
+    """Simulate the scenario (or one strategy) and compare it with its analytic counterpart."""
+    scenario = read_scenario(path)
+    if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
+        names = ", ".join(s.name for s in scenario.strategies) or "none"
+        raise ScenarioError("--strategy", f"no strategy {strategy!r}; the scenario has: {names}")
+    seed = scenario.simulation.seed if seed is None else seed
+    model = bind(scenario, strategy=strategy)
+    sim = simulate(model, patients_for(scenario, patients, seed), seed,
+                   batch_size=scenario.simulation.batch_size,
+                   grid=report_grid(model, scenario.simulation.grid), histories=histories)
+    return Validation(sim, compare(sim))
 
 
 @dataclass(frozen=True)

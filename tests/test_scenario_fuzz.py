@@ -117,7 +117,9 @@ def mutated_documents(draw) -> dict:
             parent[key] = draw(replacements)
         elif action == "add key" and isinstance(parent[key], dict):
             parent[key][draw(st.sampled_from(["extra", "nme", "rate", "probability", "level",
-                                              "clock", "file"]))] = draw(replacements)
+                                              "clock", "file", "comparator", "hazard_ratio",
+                                              "cost", "equals", "while_treated"]))] = \
+                draw(replacements)
         elif action == "swap":
             other = draw(st.sampled_from(where))
             nested = other[:len(path)] == path or path[:len(other)] == other

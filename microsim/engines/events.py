@@ -45,7 +45,8 @@ def latent_time(risk, e, m, now, entered, age0, memory, counts, last, change, wi
     for index, multipliers, within, multiplier in memory:
         if multipliers is not None:
             m *= multipliers[min(counts[index], len(multipliers) - 1)]
-        elif last[index] is not None and now - last[index] < within:
+        elif last[index] is not None and now < last[index] + within:
+            # the same sum as the change point, so at the change point it is over
             m *= multiplier
             change = min(change, last[index] + within)
     clock = risk.clock

@@ -450,7 +450,8 @@ def empty_reason(s: Scenario, conditions: tuple[ConditionSpec, ...]) -> str | No
         on = [c for c in conditions if c.attribute == name]
         attribute = next((a for a in s.population.attributes if a.name == name), None)
         if attribute is not None and attribute.continuous:
-            reason = empty_range(name, marginal(attribute), on)
+            distribution = marginal(attribute)
+            reason = None if distribution is None else empty_range(name, distribution, on)
         else:
             shares = level_shares(s, name, attribute)
             reason = None if shares is None else empty_levels(name, shares, on)
@@ -460,10 +461,14 @@ def empty_reason(s: Scenario, conditions: tuple[ConditionSpec, ...]) -> str | No
 
 
 def marginal(attribute: AttributeSpec):
-    """The scipy.stats distribution of a continuous attribute (imported on use, because
-    microsim.population itself imports this package)."""
+    """The scipy.stats distribution of a continuous attribute, or None when its parameters
+    overflow (a lognormal meanlog above ~709). Imported on use, because microsim.population
+    itself imports this package."""
     from microsim.population import marginal_distribution
-    return marginal_distribution(attribute)
+    try:
+        return marginal_distribution(attribute)
+    except OverflowError:
+        return None
 
 
 def share_between(distribution, low: float, high: float) -> float:
@@ -501,9 +506,9 @@ def level_shares(s: Scenario, name: str, attribute: AttributeSpec | None) -> dic
         return dict(zip(attribute.params["levels"], attribute.params["shares"]))
     band = next((d for d in s.population.derived if d.name == name), None)
     source = next((a for a in s.population.attributes if band and a.name == band.source), None)
-    if source is None:
+    distribution = None if source is None else marginal(source)
+    if distribution is None:
         return None
-    distribution = marginal(source)
     edges = band.edges + (math.inf,)
     return {label: share_between(distribution, edges[i], edges[i + 1])
             for i, label in enumerate(band.labels)}
