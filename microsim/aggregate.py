@@ -71,7 +71,9 @@ def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None
                                                correction=model.correction)
         for s in range(model.n_states):
             here = states == s if on is None else (states == s) & on
-            out[:, s, w] = here @ weights
+            # a row-wise sum, not a matrix product: BLAS would sum in an order that
+            # depends on the number of rows, and a patient's result must not
+            out[:, s, w] = (here * weights).sum(axis=1)
     return out
 
 

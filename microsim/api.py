@@ -13,7 +13,7 @@ from microsim.cohort.analytic import analytic
 from microsim.cohort.cycles import cycle_matrices
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.analytic import generators, piece_breaks
-from microsim.effects import cohort_multipliers
+from microsim.strategies import uniform_multipliers
 from microsim.markov import (NoUniqueSteadyState, absorption, absorption_continuous,
                              probabilities_from_rates, steady_state, steady_state_continuous)
 from microsim.outcomes import outcome_table
@@ -37,7 +37,7 @@ def chain_at_start(model: BoundModel) -> tuple[np.ndarray, Expansion]:
     """The one-step matrix (cycle models) or rate matrix of the cohort at time 0, over the
     expanded states, for questions about the chain itself (steady state, absorption)."""
     exp = expand(model)
-    mult = cohort_multipliers(model)
+    mult = uniform_multipliers(model)
     if model.discrete:
         return cycle_matrices(exp, 0, mult)[0][0], exp
     Q, _ = generators(exp, mult, piece_breaks(exp, mult)[:2])

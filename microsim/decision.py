@@ -117,15 +117,20 @@ def subgroups(outcomes: pd.DataFrame, patients: pd.DataFrame, comparator: str,
                     continue
                 gain = (part[name] - part[comparator]).to_numpy()
                 mean, se = float(gain.mean()), standard_error(gain)
+                scale = float(np.abs(part[comparator]).mean()) or 1.0
                 rows.append((variable, str(level), name, len(gain), mean, se,
-                             verdict(mean, se)))
+                             verdict(mean, se, scale=scale)))
     return pd.DataFrame(rows, columns=["attribute", "level", "strategy", "patients",
                                        "incremental_nmb", "se", "verdict"])
 
 
-def verdict(mean: float, se: float, z: float = 1.96) -> str:
+def verdict(mean: float, se: float, z: float = 1.96, scale: float = 1.0) -> str:
+    """Plain words for a paired increment; `scale` is the size of the values compared,
+    so that differences at the level of rounding read as none."""
     if not np.isfinite(se):
         return "too few patients to say"
+    if abs(mean) <= 1e-9 * scale and se <= 1e-9 * scale:
+        return "no difference (the strategy changes nothing here)"
     if mean - z * se > 0:
         return "pays (95% CI above 0)"
     if mean + z * se < 0:

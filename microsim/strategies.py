@@ -15,6 +15,7 @@ from microsim.binding import BoundModel
 from microsim.effects import Multipliers, Window, cohort_multipliers, multipliers
 from microsim.engines import streams
 from microsim.population import PATIENT
+from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import ConditionSpec, EligibilitySpec
 
 UPTAKE_PURPOSE = "uptake"
@@ -33,8 +34,10 @@ def condition_holds(condition: ConditionSpec, patients: pd.DataFrame) -> np.ndar
         case "at_most":
             return (column <= value).to_numpy()
         case "equals":
-            return (column.astype(str) == str(value)).to_numpy() if not isinstance(value, bool) \
-                else (column == value).to_numpy()
+            if isinstance(value, bool) or (isinstance(value, (int, float))
+                                           and pd.api.types.is_numeric_dtype(column)):
+                return (column == value).to_numpy()
+            return (column.astype(str) == str(value)).to_numpy()
         case "one_of":
             return column.astype(str).isin([str(v) for v in value]).to_numpy()
     raise ValueError(f"unknown condition test {condition.test!r}")
@@ -77,3 +80,21 @@ def patient_multipliers(model: BoundModel, patients: pd.DataFrame, seed: int) ->
     window = treatment_window(model, patients, seed)
     return mult if window is None else Multipliers(mult.log_static, mult.age_slope,
                                                     mult.entry_age, window)
+
+
+def uniform_multipliers(model: BoundModel) -> Multipliers:
+    """The uniform cohort of a bound model: mean covariates and, under a strategy that
+    treats everyone alike (no eligibility, full uptake, no discontinuation), its window.
+    Any other strategy treats some patients and not others, which no single cohort row
+    can show; that is refused rather than answered wrongly."""
+    mult = cohort_multipliers(model)
+    t = model.treatment
+    if t is None:
+        return mult
+    if t.eligible is not None or t.uptake < 1 or t.discontinuation > 0:
+        raise ScenarioError(f"strategies.{t.strategy}",
+                            "treats only some patients (eligibility, uptake or "
+                            "discontinuation), so it has no single cohort trace; simulate it "
+                            "with `microsim run` or `microsim validate --strategy`")
+    window = Window(np.array([t.start]), np.array([t.stop]), t.on_factor, t.off_factor)
+    return Multipliers(mult.log_static, mult.age_slope, mult.entry_age, window)

@@ -294,10 +294,6 @@ def test_parametric_hazard_from_time_zero_matches_survival(family, clock):
     np.testing.assert_allclose(result.trace[0, :, 1], second, rtol=0, atol=1e-7)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "cohort/rates.py hazards_at evaluates h(0) = inf for a Weibull or log-logistic hazard "
-    "with shape < 1 (hazards/parametric.py hazard_array gives 0 ** negative) and "
-    "solve_rates' solve_ivp stops: 'Required step size is less than spacing between numbers'"))
 @pytest.mark.parametrize("family", [
     ('{ family = "weibull", shape = 0.7, scale = 4 }', lambda t: (t / 4.0) ** 0.7),
     ('{ family = "loglogistic", shape = 0.8, scale = 4 }', lambda t: math.log1p((t / 4.0) ** 0.8)),
@@ -311,6 +307,109 @@ def test_falling_hazard_from_time_zero_matches_survival(family):
     result = analytic(model, times=times)
     survival = np.array([math.exp(-cumulative(t) - 0.05 * t) for t in times])
     np.testing.assert_allclose(result.trace[0, :, 0], survival, rtol=0, atol=1e-7)
+
+
+# ------------------------------------------------------------- life tables (step hazards)
+
+def table_model(by: str, start_age: str = "", population: str = "") -> str:
+    return f"""
+[time]
+unit = "years"
+horizon = 20
+[start]
+{start_age}
+shares = {{ well = 1 }}
+[outcomes]
+discount_effects = 0.035
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "sick"
+utility = 0.5
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = "steps"
+[[transitions]]
+from = "sick"
+to = "well"
+rate = 0.3
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.2
+[tables.steps]
+by = "{by}"
+starts = {"[0, 2.5, 6]" if by == "time" else "[0, 60, 70, 80]"}
+values = {"[0.1, 0.4, 0.05]" if by == "time" else "[0.01, 0.03, 0.08, 0.2]"}
+{population}
+"""
+
+
+def step_generator(rate):
+    return np.array([[-rate, rate, 0.0], [0.3, -0.5, 0.2], [0.0, 0.0, 0.0]])
+
+
+def piecewise_reference(t, edges, rates):
+    """pi(t) by one scipy.linalg.expm per constant piece [edges[k], edges[k+1])."""
+    pi, now = np.array([1.0, 0.0, 0.0]), 0.0
+    for k, rate in enumerate(rates):
+        step = min(t, edges[k + 1]) - now
+        if step <= 0:
+            break
+        pi, now = pi @ expm(step_generator(rate) * step), now + step
+    return pi
+
+
+@pytest.mark.parametrize("by", ["time", "age"])
+def test_step_hazard_matches_piecewise_exponentials(by):
+    # a table by time (breaks at 2.5, 6), or by age for a cohort aged 63 (breaks at 7, 17)
+    model = model_of(table_model(by, "age = 63" if by == "age" else ""))
+    edges, rates = (([0, 2.5, 6, np.inf], [0.1, 0.4, 0.05]) if by == "time"
+                    else ([0, 7, 17, np.inf], [0.03, 0.08, 0.2]))
+    times = np.linspace(0.0, 20.0, 41)
+    result = analytic(model, times=times)
+    assert result.exact and "exponential" in result.method
+    expected = np.array([piecewise_reference(t, edges, rates) for t in times])
+    np.testing.assert_allclose(result.trace[0], expected, rtol=0, atol=1e-12)
+    # discounted QALYs: integral of (pi_well + 0.5 pi_sick) e^{-delta t} by scipy quadrature,
+    # split at the breaks
+    delta = math.log(1.035)
+    pieces = [0.0] + [e for e in edges[1:-1]] + [20.0]
+    qalys = sum(integrate.quad(lambda t: (piecewise_reference(t, edges, rates) @ [1, 0.5, 0])
+                               * math.exp(-delta * t), a, b, epsabs=1e-12)[0]
+                for a, b in zip(pieces, pieces[1:]))
+    value = outcome_values(model, result.exposure)["qalys_discounted"][0]
+    assert value == pytest.approx(qalys, rel=1e-9)
+
+
+def test_life_table_by_age_per_patient_matches_piecewise_exponentials():
+    # patients of different ages cross the table's bands at different times: the forward
+    # equations per patient against each patient's own piecewise exponentials
+    population = """
+[population]
+size = 6
+[[population.attributes]]
+name = "age"
+distribution = "uniform"
+lower = 50
+upper = 75
+"""
+    model = model_of(table_model("age", population=population))
+    people = draw_population(model.scenario.population, 2)
+    times = np.linspace(0.0, 20.0, 21)
+    result = analytic(model, patients=people, times=times)
+    for b, age in enumerate(people.age):
+        starts = np.array([0, 60, 70, 80]) - age
+        inside = starts > 0
+        edges = [0.0, *starts[inside], np.inf]
+        rates = np.array([0.01, 0.03, 0.08, 0.2])[np.argmax(inside) - 1 if inside.any() else 3:]
+        expected = np.array([piecewise_reference(t, edges, rates) for t in times])
+        np.testing.assert_allclose(result.trace[b], expected, rtol=0, atol=1e-7)
 
 
 # ---------------------------------------------------------- tunnel states (time in state)

@@ -3,6 +3,8 @@ seed, patient id, purpose, occurrence), so a patient's history does not change w
 population size, the batch size or the order in which patients are given; a different
 seed gives different histories. Checked on both engines, with memory, events, covariates
 and (in the rate model) enough events per patient to run past the precomputed draws."""
+import functools
+
 import numpy as np
 import pytest
 
@@ -17,6 +19,9 @@ from microsim.simulate import simulate
 HEADER = """
 title = "test model"
 provenance = "invented for a test"
+[outcomes]
+discount_costs = 0.035
+discount_effects = 0.015
 """
 
 POPULATION = """
@@ -169,16 +174,12 @@ def histories_by_patient(model, engine, ids, seed=SEED):
     return out
 
 
-def rows(sim, ids):
-    """A patient's rows of states and exposure, found by patient id."""
+def rows(sim, ids, part="states"):
+    """Some patients' rows of states, occurrences or time in state, found by patient id."""
     where = {int(p): i for i, p in enumerate(sim.patients["patient"])}
     index = [where[int(p)] for p in ids]
-    return (sim.states[index], sim.exposure.occupancy[index], sim.exposure.occurrences[index])
-
-
-def assert_same_rows(a, b):
-    for x, y in zip(a, b):
-        assert np.array_equal(x, y)
+    return {"states": sim.states, "occurrences": sim.exposure.occurrences,
+            "occupancy": sim.exposure.occupancy}[part][index]
 
 
 def test_histories_do_not_depend_on_population_size(setup):
@@ -202,18 +203,36 @@ def test_histories_do_not_depend_on_order(setup):
         assert np.array_equal(straight[int(pid)], mixed[int(pid)])
 
 
-def test_simulation_rows_do_not_depend_on_size_batch_or_order(setup):
-    model, _ = setup
+@functools.cache
+def runs(name):
+    """The run of patients 0..999 in one batch, and runs it must match on the patients they
+    share: (patient ids, run) for another size, batch sizes 1 and 7, and another order."""
+    model = bind(parse_scenario(HEADER + ENGINES[name][0]))
     reference = simulate(model, people(model, np.arange(1000)), SEED, batch_size=1000)
-    first = np.arange(100)
-    small = simulate(model, people(model, first), SEED, batch_size=1000)
-    assert_same_rows(rows(small, first), rows(reference, first))
-    for batch_size in (1, 7):
-        batched = simulate(model, people(model, first), SEED, batch_size=batch_size)
-        assert_same_rows(rows(batched, first), rows(reference, first))
-    shuffled = np.random.default_rng(9).permutation(1000)
-    mixed = simulate(model, people(model, shuffled), SEED, batch_size=7)
-    assert_same_rows(rows(mixed, np.arange(1000)), rows(reference, np.arange(1000)))
+    first, shuffled = np.arange(100), np.random.default_rng(9).permutation(1000)
+    others = [(first, simulate(model, people(model, first), SEED, batch_size=size))
+              for size in (1000, 1, 7)]
+    others.append((np.arange(1000), simulate(model, people(model, shuffled), SEED,
+                                             batch_size=7)))
+    return reference, others
+
+
+@pytest.mark.parametrize("part", ["states", "occurrences"])
+@pytest.mark.parametrize("name", sorted(ENGINES))
+def test_simulation_rows_do_not_depend_on_size_batch_or_order(name, part):
+    reference, others = runs(name)
+    for ids, run in others:
+        assert np.array_equal(rows(run, ids, part), rows(reference, ids, part))
+
+
+@pytest.mark.parametrize("name", [
+    "rate",
+    "cycle",
+])
+def test_time_in_state_rows_do_not_depend_on_size_batch_or_order(name):
+    reference, others = runs(name)
+    for ids, run in others:
+        assert np.array_equal(rows(run, ids, "occupancy"), rows(reference, ids, "occupancy"))
 
 
 def test_another_seed_gives_other_histories(setup):

@@ -21,7 +21,8 @@ from microsim.binding import BoundModel
 from microsim.cohort.cycles import cycle_matrices
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.rates import hazards_at, solve_rates, flows
-from microsim.effects import Multipliers, cohort_multipliers, multipliers
+from microsim.effects import Multipliers, multipliers
+from microsim.strategies import uniform_multipliers
 from microsim.markov import continuous_outcomes, outcomes
 from microsim.markov.continuous import transient_piecewise
 from microsim.outcomes import Exposure
@@ -128,7 +129,10 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
     """Expected trace and outcome integrals per patient (or for the uniform cohort)."""
     exp = expand(model)
     if mult is None:
-        mult = cohort_multipliers(model) if patients is None else multipliers(model, patients)
+        if patients is not None and model.treatment is not None:
+            raise ValueError("a strategy's patients need their treatment windows: pass "
+                             "mult=strategies.patient_multipliers(model, patients, seed)")
+        mult = uniform_multipliers(model) if patients is None else multipliers(model, patients)
     memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
     if model.discrete:
         trace, exposure = cycle_result(exp, mult)

@@ -95,7 +95,9 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         for index, multipliers, within, multiplier in memory:
             if multipliers is not None:
                 m *= multipliers[min(counts[index], len(multipliers) - 1)]
-            elif last[index] is not None and t < last[index] + within:
+            elif last[index] is not None and t - last[index] < within - 1e-9 * cycle:
+                # t and last are whole cycles: the tolerance keeps "less than within
+                # has passed" exact when within is a whole number of cycles
                 m *= multiplier
         return p if m == 1.0 else 1.0 - (1.0 - p) ** m
 

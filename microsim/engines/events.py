@@ -53,6 +53,9 @@ def latent_time(risk, e, m, now, entered, age0, memory, counts, last, change, wi
     a = now if clock == "since_start" else (now - entered if clock == "since_entry" else age0 + now)
     if slope := risk.slope:
         return risk.hazard.time_to_reach_growing(e, a, m * exp(slope * now), slope), change
+    if risk.rate is not None:  # the same arithmetic as the precomputed rounds
+        rate = m * risk.rate
+        return (e / rate if rate > 0.0 else inf), change
     return risk.hazard.time_to_reach(e / m, a), change
 
 
@@ -70,8 +73,7 @@ class Batch:
         rates = np.array([r.params["rate"] if r.family == "constant" else np.nan
                           for r in model.risks])
         self.statics = np.exp(mult.log_static)
-        with np.errstate(divide="ignore"):
-            self.mean_times = 1.0 / (self.statics * rates)  # inf for a zero rate
+        self.rates = (self.statics * rates)  # multiplied rate of each constant risk
         self.from_state = [[r for r, risk in enumerate(model.risks) if risk.source == i]
                            for i in range(model.n_states)]
         self.simple = [all(self.is_simple(r) for r in rs) for rs in self.from_state]
@@ -95,7 +97,8 @@ class Batch:
         times, winners = [None] * self.model.n_states, [None] * self.model.n_states
         for i, rs in enumerate(self.from_state):
             if self.simple[i] and rs and not self.model.absorbing[i]:
-                latent = e[:, rs] * self.mean_times[:, rs, None]  # (B, risks, DEPTH)
+                with np.errstate(divide="ignore"):
+                    latent = e[:, rs] / self.rates[:, rs, None]  # (B, risks, DEPTH); inf at rate 0
                 times[i] = latent.min(axis=1).tolist()
                 winners[i] = np.asarray(rs)[latent.argmin(axis=1)].tolist()
         return times, winners
@@ -108,7 +111,8 @@ class Batch:
     def more_rounds(self, b: int, i: int, start: int) -> tuple[list, list]:
         """Rounds start .. start + 4 DEPTH of an all-constant state, for patient row b."""
         rs = self.from_state[i]
-        latent = np.array([self.more_draws(b, r, start) for r in rs]) * self.mean_times[b, rs, None]
+        with np.errstate(divide="ignore"):
+            latent = np.array([self.more_draws(b, r, start) for r in rs]) / self.rates[b, rs, None]
         return latent.min(axis=0).tolist(), np.asarray(rs)[latent.argmin(axis=0)].tolist()
 
 

@@ -61,10 +61,13 @@ class RiskView:
     slope: float
     on_factor: float | None
     off_factor: float | None
+    rate: float | None  # a constant rate's value, None for other families
 
     def __init__(self, risk, slope: float, on_factor=None, off_factor=None):
+        rate = risk.params["rate"] if risk.family == "constant" else None
         for name, value in (("clock", risk.clock), ("hazard", risk.hazard), ("slope", slope),
-                            ("on_factor", on_factor), ("off_factor", off_factor)):
+                            ("on_factor", on_factor), ("off_factor", off_factor),
+                            ("rate", rate)):
             object.__setattr__(self, name, value)
 
 

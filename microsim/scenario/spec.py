@@ -253,6 +253,8 @@ class ChangeSpec:
 
 @dataclass(frozen=True)
 class StrategySpec:
+    """One decision option: who is treated, when, and what treatment changes; added
+    states and transitions extend the model for this strategy only."""
     name: str
     label: str
     comparator: bool = False
@@ -269,6 +271,7 @@ class StrategySpec:
 
 @dataclass(frozen=True)
 class EconomicsSpec:
+    """Willingness to pay per QALY, the acceptability-curve range and the money label."""
     threshold: float = 20000.0  # willingness to pay per QALY
     thresholds: tuple[float, float, float] = (0.0, 100000.0, 1000.0)  # from, to, step
     currency: str = "money units"
@@ -282,7 +285,7 @@ class UncertaintySpec:
     patients: int | None = None  # default: the population size
     correlation_parameters: tuple[str, ...] = ()
     correlation: tuple[tuple[float, ...], ...] = ()
-    dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()
+    dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,240 @@
+"""The decision tables: paired increments, common random numbers, subgroups, the frontier
+and the patients needed for a target precision.
+
+References outside the project: numpy differences, means and sample standard deviations
+of the per-patient outcomes, with SE = sd / sqrt(n) and normal 95% intervals from
+scipy.stats.norm.ppf(0.975) (common practice; reference library); the incremental analysis
+worked by hand with the rules of Drummond et al. (2015), "Methods for the Economic
+Evaluation of Health Care Programmes", 4th ed. (dominance, extended dominance, ICERs);
+n = (z sd / h)^2 rounded up (common practice); |z| < 4 for Monte-Carlo checks.
+Strategies are built as specs (StrategySpec) on a parsed base model.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from microsim import economics
+from microsim.binding import bind
+from microsim.decision import COST, EFFECT, decide, run_strategies
+from microsim.outcomes import outcome_values
+from microsim.population import draw_population
+from microsim.scenario import parse_scenario
+from microsim.scenario.spec import ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec, StrategySpec
+from microsim.simulate import simulate
+
+Z = 4.0
+SEED = 5
+N = 2000
+Z95 = stats.norm.ppf(0.975)  # 1.959964 (reference library)
+
+MODEL = """
+title = "decision test"
+provenance = "invented for a test"
+[time]
+unit = "years"
+horizon = 20
+[start]
+shares = { well = 1.0 }
+[outcomes]
+discount_costs = 0.035
+discount_effects = 0.035
+[[states]]
+name = "well"
+utility = 0.9
+cost = 500
+[[states]]
+name = "sick"
+utility = 0.5
+cost = 3000
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.15
+  [[transitions.effects]]
+  attribute = "marker"
+  hazard_ratio = 2.0
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.03
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.25
+[population]
+size = 2000
+[[population.attributes]]
+name = "marker"
+distribution = "yesno"
+prevalence = 0.4
+"""
+
+USUAL = StrategySpec("usual", "usual care", comparator=True)
+THERAPY = (ChangeSpec(risk="well->sick", hazard_ratio=0.5), ChangeSpec(cost=400.0))
+TARGETED = StrategySpec("targeted", "therapy for marker-positive patients", changes=THERAPY,
+                        eligible=EligibilitySpec(all=(ConditionSpec("marker", "equals", True),)))
+EVERYONE = StrategySpec("everyone", "therapy for everyone", changes=THERAPY)
+
+
+def scenario_with(*strategies, **economics):
+    s = parse_scenario(MODEL)
+    return replace(s, strategies=(USUAL, *strategies), economics=EconomicsSpec(**economics))
+
+
+@pytest.fixture(scope="module")
+def run():
+    s = scenario_with(TARGETED, EVERYONE)
+    people = draw_population(s.population, SEED)
+    sims = run_strategies(s, people, SEED)
+    return s, people, sims, decide(s, sims)
+
+
+def per_patient(decision, strategy, measure):
+    rows = decision.outcomes[decision.outcomes.strategy == strategy].sort_values("patient")
+    return rows[measure].to_numpy()
+
+
+# ------------------------------------------------------------------- paired increments
+
+def test_paired_increments_are_numpy_differences_of_the_patients_outcomes(run):
+    s, _, _, d = run
+    lam = s.economics.threshold
+    base_cost, base_effect = per_patient(d, "usual", COST), per_patient(d, "usual", EFFECT)
+    for name in ("targeted", "everyone"):
+        delta_cost = per_patient(d, name, COST) - base_cost
+        delta_effect = per_patient(d, name, EFFECT) - base_effect
+        expected = {"incremental_cost": delta_cost, "incremental_effect": delta_effect,
+                    "incremental_nmb": lam * delta_effect - delta_cost}
+        table = d.increments[d.increments.strategy == name].set_index("measure")
+        for measure, x in expected.items():
+            row = table.loc[measure]
+            mean, se = x.mean(), x.std(ddof=1) / math.sqrt(len(x))  # common practice
+            assert row["n"] == len(x) == N
+            assert row["mean"] == pytest.approx(mean, rel=1e-12, abs=1e-9)
+            assert row["standard_error"] == pytest.approx(se, rel=1e-12)
+            # 95% CI: mean +- norm.ppf(0.975) SE (scipy.stats as reference)
+            assert row["lower"] == pytest.approx(mean - Z95 * se, rel=1e-12, abs=1e-9)
+            assert row["upper"] == pytest.approx(mean + Z95 * se, rel=1e-12, abs=1e-9)
+
+
+def test_strategy_means_and_errors_are_numpy_means_and_errors(run):
+    _, _, _, d = run
+    for name in ("usual", "targeted", "everyone"):
+        x = per_patient(d, name, EFFECT)
+        row = d.strategies[(d.strategies.strategy == name) & (d.strategies.measure == EFFECT)]
+        assert row["mean"].item() == pytest.approx(x.mean(), rel=1e-12)
+        assert row["se"].item() == pytest.approx(x.std(ddof=1) / math.sqrt(len(x)), rel=1e-12)
+
+
+# --------------------------------------------------------------- common random numbers
+
+def test_common_random_numbers_make_the_incremental_standard_error_smaller(run):
+    """Same seed for both strategies against different seeds (everything else equal).
+
+    Observed with these settings: SE of incremental discounted QALYs 0.034 with common
+    random numbers against 0.103-0.110 with a different seed for the therapy (seeds 6 to
+    11; ratio 0.31-0.33). With N = 2000 patients each SE is estimated to within a few
+    percent (relative SE of a sample SD about sqrt((kurtosis - 1) / 4N), common practice),
+    so a ratio near 0.32 cannot come out above 1 by chance."""
+    s, people, sims, _ = run
+    model = bind(s, strategy="everyone")
+    usual = outcome_values(sims["usual"].model, sims["usual"].exposure)[EFFECT]
+    shared = outcome_values(model, sims["everyone"].exposure)[EFFECT]
+    independent = outcome_values(model, simulate(model, people, SEED + 1).exposure)[EFFECT]
+    se_shared = np.std(shared - usual, ddof=1) / math.sqrt(N)
+    se_independent = np.std(independent - usual, ddof=1) / math.sqrt(N)
+    ratio = se_shared / se_independent
+    assert ratio < 1.0, (se_shared, se_independent)
+    # both runs estimate the same increment: their difference is within Monte-Carlo error
+    gap = independent.mean() - shared.mean()
+    assert abs(gap) < Z * math.sqrt(se_shared ** 2 + se_independent ** 2)
+
+
+# --------------------------------------------------------------------------- subgroups
+
+def test_a_targeted_strategy_pays_only_in_its_subgroup(run):
+    _, _, _, d = run
+    rows = d.subgroups[(d.subgroups.attribute == "marker") & (d.subgroups.strategy == "targeted")]
+    rows = rows.set_index("level")
+    assert rows.loc["True", "verdict"].startswith("pays")
+    assert rows.loc["True", "incremental_nmb"] - Z95 * rows.loc["True", "se"] > 0
+    untreated = rows.loc["False"]
+    # nobody in this subgroup is treated, and every draw is shared: the increment is 0
+    # within Monte-Carlo error (and in fact within rounding)
+    assert abs(untreated.incremental_nmb) <= Z * untreated.se + 1e-9
+    assert abs(untreated.incremental_nmb) < 1e-6
+    # the strategy for everyone gains in both subgroups
+    both = d.subgroups[(d.subgroups.attribute == "marker") & (d.subgroups.strategy == "everyone")]
+    assert both.verdict.str.startswith("pays").all()
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "a subgroup the strategy never treats gets the verdict 'does not pay (95% CI below 0)' "
+    "from floating-point noise: in microsim/engines/events.py a state with a windowed risk "
+    "leaves the precomputed path for EVERY patient of the batch, treated or not, and the "
+    "general path computes (e / m) / rate where the precomputed one computes "
+    "e * (1 / (m * rate)), so untreated patients' event times differ in the last bits; "
+    "microsim/decision.py verdict() then compares a mean of -4.3e-13 with an SE of 1.6e-13 "
+    "without any tolerance"))
+def test_a_subgroup_nobody_treats_is_not_told_it_loses(run):
+    _, _, _, d = run
+    rows = d.subgroups[(d.subgroups.attribute == "marker") & (d.subgroups.strategy == "targeted")]
+    assert rows.set_index("level").loc["False", "verdict"].startswith("uncertain")
+
+
+# ---------------------------------------------------------------------------- frontier
+
+def test_the_frontier_is_the_incremental_analysis_of_the_strategy_means(run):
+    _, _, _, d = run
+    means = d.outcomes.groupby("strategy", sort=False)[[COST, EFFECT]].mean()
+    expected = economics.incremental_analysis(list(means.index), means[COST], means[EFFECT])
+    pd.testing.assert_frame_equal(d.analysis, expected)
+    # by hand (Drummond et al. 2015): order by cost; targeted would be extendedly
+    # dominated if its ICER against usual care exceeds everyone's ICER against it
+    cost = {n: per_patient(d, n, COST).mean() for n in ("usual", "targeted", "everyone")}
+    effect = {n: per_patient(d, n, EFFECT).mean() for n in cost}
+    assert cost["usual"] < cost["targeted"] < cost["everyone"]
+    assert effect["usual"] < effect["targeted"] < effect["everyone"]
+
+    def icer(a, b):
+        return (cost[b] - cost[a]) / (effect[b] - effect[a])
+
+    table = d.analysis.set_index("strategy")
+    if icer("usual", "targeted") > icer("targeted", "everyone"):
+        assert table.loc["targeted", "status"] == "extendedly dominated"
+        assert table.loc["everyone", "icer"] == pytest.approx(icer("usual", "everyone"), rel=1e-12)
+    else:
+        assert table.loc["targeted", "icer"] == pytest.approx(icer("usual", "targeted"), rel=1e-12)
+        assert table.loc["everyone", "icer"] == pytest.approx(icer("targeted", "everyone"), rel=1e-12)
+    best = d.net_benefit.loc[d.net_benefit.best, "strategy"].item()
+    nmb = {n: d.threshold * effect[n] - cost[n] for n in cost}
+    assert best == max(nmb, key=nmb.get)
+
+
+# --------------------------------------------------------------------------- precision
+
+@pytest.mark.parametrize("target", [None, 500.0])
+def test_patients_needed_is_the_normal_sample_size(target):
+    s = scenario_with(EVERYONE, precision=target)
+    people = draw_population(s.population, SEED, np.arange(500))
+    d = decide(s, run_strategies(s, people, SEED))
+    lam = s.economics.threshold
+    gain = (lam * per_patient(d, "everyone", EFFECT) - per_patient(d, "everyone", COST)) - (
+        lam * per_patient(d, "usual", EFFECT) - per_patient(d, "usual", COST))
+    sd = np.std(gain, ddof=1)
+    half_width = abs(gain.mean()) / 10 if target is None else target
+    row = d.precision.set_index("strategy").loc["everyone"]
+    assert row.sd_paired_nmb == pytest.approx(sd, rel=1e-12)
+    assert row.target_half_width == pytest.approx(half_width, rel=1e-12)
+    assert row.patients_now == 500
+    # n = (z sd / h)^2 rounded up, z = norm.ppf(0.975) (common practice)
+    assert row.patients_needed == math.ceil((Z95 * sd / half_width) ** 2)

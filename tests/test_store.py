@@ -1,0 +1,113 @@
+"""Writing a run: every table as CSV and Parquet plus the manifest, all or nothing.
+
+References outside the project: pandas (read_csv) and pyarrow (read_parquet) reading the
+files back, json.loads for the manifest, and pyarrow's own refusal of a column type it
+cannot store (complex numbers). The rule checked is DESIGN.md's: outputs are written
+atomically, so a failed write leaves neither new files nor a staging folder behind.
+"""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from microsim.store import write_run
+
+TABLES = {
+    "trace": pd.DataFrame({"time": [0.0, 1.0, 2.0], "state": ["well", "sick", "dead"],
+                           "share": [1.0, 0.25, 0.125]}),
+    "counts": pd.DataFrame({"patient": np.arange(4, dtype=np.int64), "events": [0, 2, 1, 5]}),
+}
+RECORD = {"scenario": "x.toml", "seed": 3}
+
+
+def listing(folder):
+    return sorted(p.name for p in folder.iterdir())
+
+
+def test_write_run_writes_every_table_document_and_the_manifest(tmp_path):
+    target = tmp_path / "run"
+    written = write_run(target, TABLES, RECORD, documents={"summary": {"answer": 42}})
+    expected = ["counts.csv", "counts.parquet", "manifest.json", "summary.json",
+                "trace.csv", "trace.parquet"]
+    assert listing(target) == expected
+    assert sorted(p.name for p in written) == expected
+    assert written[-1].name == "manifest.json"  # moved in last: its presence means complete
+    for name, table in TABLES.items():
+        pd.testing.assert_frame_equal(pd.read_parquet(target / f"{name}.parquet"), table)
+        pd.testing.assert_frame_equal(pd.read_csv(target / f"{name}.csv"), table,
+                                      check_dtype=False)
+    manifest = json.loads((target / "manifest.json").read_text())
+    assert manifest["seed"] == 3 and manifest["scenario"] == "x.toml"
+    assert manifest["files"] == [n for n in expected if n != "manifest.json"]
+    assert json.loads((target / "summary.json").read_text()) == {"answer": 42}
+    assert listing(tmp_path) == ["run"]  # no staging folder left
+
+
+def unsupported_column(tables):
+    """pyarrow cannot store complex numbers: to_parquet raises (pyarrow as reference)."""
+    return {**tables, "zz_bad": pd.DataFrame({"z": np.array([1 + 2j, 3j])})}
+
+
+def failing_parquet(monkeypatch):
+    """Every table after the first fails to become Parquet (a full disk, say)."""
+    original, calls = pd.DataFrame.to_parquet, []
+
+    def to_parquet(self, *args, **kwargs):
+        calls.append(1)
+        if len(calls) > 1:
+            raise OSError("disk full (simulated)")
+        return original(self, *args, **kwargs)
+
+    monkeypatch.setattr(pd.DataFrame, "to_parquet", to_parquet)
+    return TABLES, {}
+
+
+FAILURES = {  # each gives (tables, documents) of a write that must fail
+    "unsupported column type": lambda monkeypatch: (unsupported_column(TABLES), {}),
+    "to_parquet raises": failing_parquet,
+    "document not JSON": lambda monkeypatch: (TABLES, {"summary": {"n": np.int64(1)}}),
+}
+
+
+def test_complex_numbers_really_are_refused_by_pyarrow(tmp_path):
+    with pytest.raises(Exception):
+        unsupported_column({})["zz_bad"].to_parquet(tmp_path / "x.parquet")
+
+
+@pytest.mark.parametrize("failure", FAILURES)
+def test_a_failed_write_leaves_nothing_behind(failure, tmp_path, monkeypatch):
+    tables, documents = FAILURES[failure](monkeypatch)
+    target = tmp_path / "run"
+    with pytest.raises(Exception):
+        write_run(target, tables, RECORD, documents=documents)
+    assert not target.exists()  # nothing appears where the run was going
+    assert listing(tmp_path) == []  # and no staging folder is left beside it
+
+
+@pytest.mark.parametrize("failure", FAILURES)
+def test_an_existing_target_keeps_its_files_when_a_write_fails(failure, tmp_path, monkeypatch):
+    target = tmp_path / "run"
+    target.mkdir()
+    (target / "notes.txt").write_text("mine")
+    (target / "trace.csv").write_text("old")
+    tables, documents = FAILURES[failure](monkeypatch)
+    with pytest.raises(Exception):
+        write_run(target, tables, RECORD, documents=documents)
+    assert listing(target) == ["notes.txt", "trace.csv"]
+    assert (target / "trace.csv").read_text() == "old"
+    assert listing(tmp_path) == ["run"]
+
+
+def test_a_successful_write_replaces_its_own_files_and_leaves_others_alone(tmp_path):
+    target = tmp_path / "run"
+    target.mkdir()
+    (target / "notes.txt").write_text("mine")
+    (target / "trace.csv").write_text("old")
+    write_run(target, TABLES, RECORD)
+    assert (target / "notes.txt").read_text() == "mine"
+    pd.testing.assert_frame_equal(pd.read_csv(target / "trace.csv"), TABLES["trace"])
+    assert "notes.txt" not in json.loads((target / "manifest.json").read_text())["files"]
+    assert listing(tmp_path) == ["run"]

@@ -1,0 +1,476 @@
+"""Strategies on the same patients: who is eligible, who takes the treatment up, how long
+they stay on it, and what the treatment does while they are on it.
+
+References outside the project: pandas boolean masks written by hand (eligibility); the
+binomial standard error sqrt(n p (1 - p)) and |z| < 4 (uptake, shares; common practice);
+scipy.stats.expon and scipy.stats.truncexpon with a Kolmogorov-Smirnov test at level 0.001
+(discontinuation; reference library); traces built by hand with scipy.linalg.expm of the
+rate matrix on each piece (rate models; reference library) and with numpy products of
+per-cycle matrices with p' = 1 - (1 - p)^HR (cycle models; Fleurence & Hollenbeak 2007,
+"Rates and probabilities in economic modelling", from memory); the closed form of a
+continuously discounted cost stream under constant mortality (common practice).
+Strategies are built as specs (StrategySpec) on parsed base models.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+from scipy.linalg import expm
+
+from microsim.api import cohort_trace
+from microsim.binding import bind
+from microsim.cohort.analytic import analytic
+from microsim.compare import compare
+from microsim.outcomes import outcome_values
+from microsim.population import draw_population
+from microsim.scenario import parse_scenario
+from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, HazardSpec,
+                                    StrategySpec, TransitionSpec)
+from microsim.simulate import cohort_patients, simulate
+from microsim.strategies import eligible, patient_multipliers, treatment_window
+
+Z = 4.0
+KS_LEVEL = 0.001
+SEED = 20261201
+
+HEADER = """
+title = "strategy test"
+provenance = "invented for a test"
+"""
+
+COMPARATOR = StrategySpec("usual", "usual care", comparator=True)
+
+
+def with_strategies(text: str, *strategies: StrategySpec):
+    return replace(parse_scenario(HEADER + text), strategies=(COMPARATOR, *strategies))
+
+
+# ------------------------------------------------------------------------- eligibility
+
+def hand_patients() -> pd.DataFrame:
+    """Patients with every kind of attribute; ages on whole years so boundaries are hit."""
+    rng = np.random.default_rng(11)
+    n = 400
+    return pd.DataFrame({
+        "patient": np.arange(n, dtype=np.int64),
+        "age": rng.integers(40, 90, n).astype(float),
+        "sex": pd.Categorical(rng.choice(["female", "male"], n), categories=["female", "male"]),
+        "diabetes": rng.random(n) < 0.3,
+        "band": pd.Categorical(rng.choice(["low", "mid", "high"], n),
+                               categories=["low", "mid", "high"], ordered=True),
+    })
+
+
+P = hand_patients()
+
+CONDITION_CASES = [
+    (ConditionSpec("age", "above", 60.0), P.age > 60),
+    (ConditionSpec("age", "at_least", 60.0), P.age >= 60),
+    (ConditionSpec("age", "below", 60.0), P.age < 60),
+    (ConditionSpec("age", "at_most", 60.0), P.age <= 60),
+    (ConditionSpec("age", "equals", 60.0), P.age == 60),
+    (ConditionSpec("sex", "equals", "male"), P.sex == "male"),
+    (ConditionSpec("diabetes", "equals", True), P.diabetes),
+    (ConditionSpec("diabetes", "equals", False), ~P.diabetes),
+    (ConditionSpec("band", "one_of", ("low", "high")), P.band.isin(["low", "high"])),
+]
+
+
+@pytest.mark.parametrize("condition, mask", CONDITION_CASES,
+                         ids=[f"{c.attribute}-{c.test}-{c.value}" for c, _ in CONDITION_CASES])
+def test_each_condition_matches_a_pandas_mask(condition, mask):
+    assert 0 < mask.sum() < len(P)  # the boundary and both sides occur
+    # reference: the pandas comparison written by hand
+    np.testing.assert_array_equal(eligible(EligibilitySpec(all=(condition,)), P),
+                                  mask.to_numpy())
+
+
+def test_all_and_any_combine_as_and_of_all_with_or_of_any():
+    spec = EligibilitySpec(
+        all=(ConditionSpec("age", "at_least", 50.0), ConditionSpec("age", "below", 80.0)),
+        any=(ConditionSpec("diabetes", "equals", True), ConditionSpec("sex", "equals", "male"),
+             ConditionSpec("band", "one_of", ("high",))))
+    # reference: pandas masks written by hand
+    mask = (P.age >= 50) & (P.age < 80) & (P.diabetes | (P.sex == "male") | (P.band == "high"))
+    np.testing.assert_array_equal(eligible(spec, P), mask.to_numpy())
+    only_any = EligibilitySpec(any=spec.any)
+    np.testing.assert_array_equal(eligible(only_any, P),
+                                  (P.diabetes | (P.sex == "male") | (P.band == "high")).to_numpy())
+    assert eligible(None, P).all()  # no eligibility section: everyone
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "microsim/strategies.py condition_holds, case 'equals': a number is compared as text "
+    "(column.astype(str) == str(value)), so an integer column (e.g. a population-file column "
+    "stage = 1, 2, 3) never equals the reader's float 2.0 ('2' != '2.0'): nobody is eligible"))
+def test_equals_a_number_on_a_whole_number_column():
+    patients = pd.DataFrame({"patient": np.arange(6, dtype=np.int64),
+                             "stage": np.array([1, 2, 3, 2, 1, 2], dtype=np.int64)})
+    # the reader stores `equals = 2` as the float 2.0 (Node.number)
+    spec = EligibilitySpec(all=(ConditionSpec("stage", "equals", 2.0),))
+    np.testing.assert_array_equal(eligible(spec, patients), (patients.stage == 2).to_numpy())
+
+
+# ------------------------------------------------------------------- uptake and windows
+
+POPULATION_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 1.0 }
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.1
+[population]
+size = 20000
+[[population.attributes]]
+name = "age"
+distribution = "normal"
+mean = 60
+sd = 10
+[[population.attributes]]
+name = "diabetes"
+distribution = "yesno"
+prevalence = 0.4
+"""
+
+DEATH_HR = (ChangeSpec(risk="well->dead", hazard_ratio=0.8),)
+
+
+def windows(scenario, name, patients, seed=SEED):
+    return treatment_window(bind(scenario, strategy=name), patients, seed)
+
+
+@pytest.fixture(scope="module")
+def population():
+    scenario = with_strategies(POPULATION_MODEL)
+    return draw_population(scenario.population, SEED)
+
+
+def test_treated_share_among_eligible_is_the_uptake(population):
+    rule = EligibilitySpec(all=(ConditionSpec("age", "at_least", 55.0),),
+                           any=(ConditionSpec("diabetes", "equals", True),))
+    scenario = with_strategies(POPULATION_MODEL, StrategySpec(
+        "drug", "drug", eligible=rule, uptake=0.6, changes=DEATH_HR))
+    w = windows(scenario, "drug", population)
+    treated = np.isfinite(w.on)
+    mask = ((population.age >= 55) & population.diabetes).to_numpy()
+    assert not treated[~mask].any()  # nobody outside the eligible group is treated
+    n, k = mask.sum(), treated[mask].sum()
+    z = (k - n * 0.6) / math.sqrt(n * 0.6 * 0.4)  # binomial (common practice)
+    assert abs(z) < Z, (k, n, z)
+
+
+def test_the_same_patients_take_up_every_strategy_with_the_same_uptake(population):
+    """Shared 'uptake' draws (common random numbers): same uptake, same patients; a higher
+    uptake treats a superset."""
+    scenario = with_strategies(
+        POPULATION_MODEL,
+        StrategySpec("a", "a", uptake=0.6, changes=DEATH_HR),
+        StrategySpec("b", "b", uptake=0.6, start=2.0, discontinuation=0.5,
+                     changes=(ChangeSpec(cost=100.0),)),
+        StrategySpec("c", "c", uptake=0.8, changes=DEATH_HR))
+    treated = {name: np.isfinite(windows(scenario, name, population).on) for name in "abc"}
+    np.testing.assert_array_equal(treated["a"], treated["b"])
+    assert (treated["a"] <= treated["c"]).all() and treated["c"].sum() > treated["a"].sum()
+    # the draws are the patient's own: another seed treats other patients
+    other = np.isfinite(windows(scenario, "a", population, seed=SEED + 1).on)
+    assert (other != treated["a"]).any()
+
+
+@pytest.mark.parametrize("start, stop", [(0.0, None), (1.0, 5.0)])
+def test_time_on_treatment_is_exponential_until_stop(population, start, stop):
+    rate = 0.3
+    scenario = with_strategies(POPULATION_MODEL, StrategySpec(
+        "drug", "drug", start=start, stop=stop, discontinuation=rate, changes=DEATH_HR))
+    w = windows(scenario, "drug", population)
+    assert np.all(w.on == start)
+    duration = w.off - w.on
+    if stop is None:
+        # reference: scipy.stats.expon with mean 1/rate
+        assert stats.kstest(duration, stats.expon(scale=1 / rate).cdf).pvalue > KS_LEVEL
+        return
+    length = stop - start
+    assert duration.max() <= length
+    stopped_early = duration < length
+    # below the stop: the exponential truncated at the stop (scipy.stats.truncexpon)
+    reference = stats.truncexpon(b=rate * length, scale=1 / rate)
+    assert stats.kstest(duration[stopped_early], reference.cdf).pvalue > KS_LEVEL
+    # at the stop: the exponential survival exp(-rate * length), binomial error
+    n, p = len(duration), math.exp(-rate * length)
+    z = ((~stopped_early).sum() - n * p) / math.sqrt(n * p * (1 - p))
+    assert abs(z) < Z, z
+
+
+# --------------------------------------------- treatment effects against hand-built traces
+
+RATE_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 0.8, sick = 0.2 }
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "sick"
+utility = 0.5
+cost = 200
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+rate = 0.25
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.05
+[[transitions]]
+from = "sick"
+to = "dead"
+rate = 0.3
+"""
+
+CYCLE_MODEL = """
+[time]
+unit = "years"
+horizon = 10
+[start]
+shares = { well = 0.8, sick = 0.2 }
+[[states]]
+name = "well"
+utility = 1
+[[states]]
+name = "sick"
+utility = 0.5
+cost = 200
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "sick"
+probability = 0.2
+[[transitions]]
+from = "well"
+to = "dead"
+probability = 0.05
+[[transitions]]
+from = "well"
+to = "well"
+probability = "remainder"
+[[transitions]]
+from = "sick"
+to = "dead"
+probability = 0.25
+[[transitions]]
+from = "sick"
+to = "sick"
+probability = "remainder"
+"""
+
+HR, START, STOP = 0.4, 2.0, 6.0
+
+
+def treated_strategy(recovery: TransitionSpec) -> StrategySpec:
+    """HR on onset from START to STOP, plus a recovery that exists only while treated."""
+    return StrategySpec(
+        "drug", "drug", start=START, stop=STOP,
+        changes=(ChangeSpec(risk="well->sick", hazard_ratio=HR), ChangeSpec(cost=1000.0)),
+        transitions=(recovery,), while_treated=(True,))
+
+
+def rate_matrix(on: bool) -> np.ndarray:
+    """The generator written by hand (states well, sick, dead)."""
+    onset = 0.25 * (HR if on else 1.0)
+    recovery = 0.5 if on else 0.0
+    Q = np.array([[0, onset, 0.05], [recovery, 0, 0.3], [0, 0, 0]], float)
+    return Q - np.diag(Q.sum(axis=1))
+
+
+def rate_reference(times: np.ndarray) -> np.ndarray:
+    """pi(t) = pi(0) expm(Q_off t) on [0, START), then Q_on until STOP, then Q_off."""
+    pieces = [(0.0, START, False), (START, STOP, True), (STOP, np.inf, False)]
+    out = []
+    for t in times:
+        pi = np.array([0.8, 0.2, 0.0])
+        for a, b, on in pieces:
+            if t <= a:
+                break
+            pi = pi @ expm(rate_matrix(on) * (min(t, b) - a))
+        out.append(pi)
+    return np.array(out)
+
+
+def cycle_reference(n_cycles: int) -> np.ndarray:
+    """Cycle n uses the on-treatment matrix when START <= n < STOP (cycle length 1)."""
+    def matrix(on):
+        onset = 1 - (1 - 0.2) ** HR if on else 0.2  # p' = 1 - (1 - p)^HR
+        recovery = 0.3 if on else 0.0
+        return np.array([[1 - onset - 0.05, onset, 0.05],
+                         [recovery, 1 - recovery - 0.25, 0.25], [0, 0, 1]])
+    pi, out = np.array([0.8, 0.2, 0.0]), []
+    for n in range(n_cycles + 1):
+        out.append(pi)
+        pi = pi @ matrix(START <= n < STOP)
+    return np.array(out)
+
+
+CASES = {
+    "rate": (RATE_MODEL, TransitionSpec("sick", "well", "recovery",
+                                        hazard=HazardSpec("constant", {"rate": 0.5})),
+             rate_reference),
+    "cycle": (CYCLE_MODEL, TransitionSpec("sick", "well", "recovery", probability=0.3),
+              lambda times: cycle_reference(len(times) - 1)),
+}
+
+
+@pytest.mark.parametrize("kind", CASES)
+def test_treatment_window_agrees_with_the_hand_built_trace(kind):
+    text, recovery, reference = CASES[kind]
+    model = bind(with_strategies(text, treated_strategy(recovery)), strategy="drug")
+    n = 4000
+    sim = simulate(model, cohort_patients(n), SEED)
+    expected = reference(sim.grid)  # (T, S)
+    # the project's analytic counterpart, given the windows, is the hand-built one
+    np.testing.assert_allclose(analytic(model, mult=sim.mult.distinct(), times=sim.grid).trace[0],
+                               expected, rtol=0, atol=1e-9)
+    result = compare(sim)
+    assert result.exact and result.agrees, result.verdict
+    assert result.shares.z.abs().max() < Z
+    # the simulated shares against the hand-built trace, binomial standard errors
+    simulated = np.stack([(sim.states == s).mean(axis=0) for s in range(3)], axis=1)
+    se = np.sqrt(expected * (1 - expected) / n)
+    z = np.where(se > 0, (simulated - expected) / np.where(se > 0, se, 1), 0)
+    assert np.abs(z).max() < Z
+    # no recovery happens outside the window: off_factor 0 on the added transition
+    recovery = model.risk_names.index("recovery")
+    assert model.treatment.off_factor[recovery] == 0.0
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "microsim/cohort/analytic.py line 131: analytic(model) without `mult` takes "
+    "cohort_multipliers(model) (or multipliers(model, patients)), which carry no treatment "
+    "window, so for a model bound with a strategy the hazard ratios are never applied and a "
+    "transition that exists only while treated acts at all times; microsim.api.cohort_trace "
+    "and expected_outcomes inherit this and return a wrong trace without a word"))
+@pytest.mark.parametrize("kind", CASES)
+def test_the_cohort_trace_of_a_strategy_applies_its_treatment(kind):
+    text, recovery, reference = CASES[kind]
+    model = bind(with_strategies(text, treated_strategy(recovery)), strategy="drug")
+    # uptake 1, no discontinuation: every patient's window is [START, STOP), so the
+    # cohort's trace is the hand-built one (or the call should refuse)
+    np.testing.assert_allclose(cohort_trace(model).pivot(index="time", columns="state",
+                                                         values="share")[list(model.states)],
+                               reference(model.times), rtol=0, atol=1e-9)
+
+
+# ---------------------------------------------------------------- costs on treatment
+
+SURVIVAL_MODEL = """
+[time]
+unit = "years"
+horizon = 12
+[start]
+shares = { alive = 1.0 }
+[outcomes]
+discount_costs = 0.035
+discount_effects = 0.015
+[[states]]
+name = "alive"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "alive"
+to = "dead"
+rate = 0.1
+"""
+MU, COST, UTILITY = 0.1, 1500.0, 0.2
+
+
+def discounted_stream(value, start, stop, discount):
+    """value * integral_start^stop e^{-(mu + delta) t} dt, delta = ln(1 + d) (continuous
+    discounting, common practice); with start 0: value (1 - e^{-(mu+delta) T})/(mu+delta)."""
+    k = MU + math.log1p(discount)
+    return value * (math.exp(-k * start) - math.exp(-k * stop)) / k
+
+
+@pytest.mark.parametrize("start, stop", [(0.0, 8.0), (3.0, 8.0), (0.0, None)])
+def test_discounted_cost_and_utility_on_treatment_have_the_closed_form(start, stop):
+    strategy = StrategySpec("drug", "drug", start=start, stop=stop,
+                            changes=(ChangeSpec(cost=COST, utility=UTILITY),))
+    model = bind(with_strategies(SURVIVAL_MODEL, strategy), strategy="drug")
+    end = 12.0 if stop is None else stop
+    expected = {"costs_discounted": discounted_stream(COST, start, end, 0.035),
+                "costs": discounted_stream(COST, start, end, 0.0),
+                "qalys_discounted": discounted_stream(UTILITY, start, end, 0.015)}
+    windows = patient_multipliers(model, cohort_patients(1), SEED)
+    exact = outcome_values(model, analytic(model, mult=windows).exposure)
+    for measure, value in expected.items():
+        assert exact[measure][0] == pytest.approx(value, rel=1e-9), measure
+    values = outcome_values(model, simulate(model, cohort_patients(4000), SEED).exposure)
+    for measure, value in expected.items():
+        x = values[measure]
+        z = (x.mean() - value) / (x.std(ddof=1) / math.sqrt(len(x)))
+        assert abs(z) < Z, (measure, x.mean(), value, z)
+
+
+# ------------------------------------------------ a strategy that changes nothing visible
+
+NO_OP_RATE = RATE_MODEL.replace("""rate = 0.3
+""", """hazard = { family = "weibull", shape = 1.5, scale = 3 }
+""") + """
+[population]
+size = 500
+[[population.attributes]]
+name = "marker"
+distribution = "yesno"
+prevalence = 0.5
+"""
+NO_OP_CYCLE = CYCLE_MODEL + """
+[population]
+size = 500
+[[population.attributes]]
+name = "marker"
+distribution = "yesno"
+prevalence = 0.5
+"""
+
+
+@pytest.mark.parametrize("text", [NO_OP_RATE, NO_OP_CYCLE], ids=["rate", "cycle"])
+def test_a_strategy_with_hazard_ratio_1_and_cost_0_reproduces_the_comparator(text):
+    """Patient by patient, because every draw is shared (common random numbers)."""
+    strategy = StrategySpec(
+        "inert", "inert", eligible=EligibilitySpec(all=(ConditionSpec("marker", "equals", True),)),
+        uptake=0.7, start=1.0, stop=7.0, discontinuation=0.2,
+        changes=(ChangeSpec(risk="well->sick", hazard_ratio=1.0),
+                 ChangeSpec(risk="sick->dead", hazard_ratio=1.0), ChangeSpec(cost=0.0)))
+    scenario = with_strategies(text, strategy)
+    people = draw_population(scenario.population, SEED)
+    base = simulate(bind(scenario, strategy="usual"), people, SEED)
+    inert_model = bind(scenario, strategy="inert")
+    inert = simulate(inert_model, people, SEED)
+    assert inert_model.treatment is not None  # the strategy is bound, not dropped
+    assert np.isfinite(inert.mult.window.on).sum() > 100  # and it does treat patients
+    np.testing.assert_array_equal(inert.states, base.states)
+    assert inert.transitions == base.transitions
+    ours, theirs = outcome_values(inert_model, inert.exposure), outcome_values(base.model, base.exposure)
+    for measure in ours:
+        np.testing.assert_array_equal(ours[measure], theirs[measure], err_msg=measure)
