@@ -68,6 +68,18 @@ class Multipliers:
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index))
 
+    def unique(self) -> tuple["Multipliers", np.ndarray]:
+        """The distinct patient rows and, for each patient, the index of its row: patients
+        with the same multipliers, entry age and window share one analytic result."""
+        parts = [self.log_static]
+        if self.entry_age is not None:
+            parts.append(self.entry_age[:, None])
+        if self.window is not None:
+            parts += [self.window.on[:, None], self.window.off[:, None]]
+        _, first, inverse = np.unique(np.hstack(parts), axis=0, return_index=True,
+                                      return_inverse=True)
+        return self.take(first), inverse.ravel()
+
     def distinct(self) -> "Multipliers":
         """One row when every patient has the same multipliers and window (a uniform
         cohort), else self: the analytic side then needs one trace, not N."""

@@ -11,6 +11,7 @@ import json
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 
 from microsim.store import write_run
@@ -62,26 +63,27 @@ def failing_parquet(monkeypatch):
         return original(self, *args, **kwargs)
 
     monkeypatch.setattr(pd.DataFrame, "to_parquet", to_parquet)
-    return TABLES, {}
+    return TABLES, {}, OSError
 
 
-FAILURES = {  # each gives (tables, documents) of a write that must fail
-    "unsupported column type": lambda monkeypatch: (unsupported_column(TABLES), {}),
+FAILURES = {  # each gives (tables, documents, the error) of a write that must fail
+    "unsupported column type": lambda monkeypatch: (unsupported_column(TABLES), {},
+                                                    pa.ArrowException),
     "to_parquet raises": failing_parquet,
-    "document not JSON": lambda monkeypatch: (TABLES, {"summary": {"n": np.int64(1)}}),
+    "document not JSON": lambda monkeypatch: (TABLES, {"summary": {"n": np.int64(1)}}, TypeError),
 }
 
 
 def test_complex_numbers_really_are_refused_by_pyarrow(tmp_path):
-    with pytest.raises(Exception):
+    with pytest.raises(pa.ArrowException):
         unsupported_column({})["zz_bad"].to_parquet(tmp_path / "x.parquet")
 
 
 @pytest.mark.parametrize("failure", FAILURES)
 def test_a_failed_write_leaves_nothing_behind(failure, tmp_path, monkeypatch):
-    tables, documents = FAILURES[failure](monkeypatch)
+    tables, documents, error = FAILURES[failure](monkeypatch)
     target = tmp_path / "run"
-    with pytest.raises(Exception):
+    with pytest.raises(error):
         write_run(target, tables, RECORD, documents=documents)
     assert not target.exists()  # nothing appears where the run was going
     assert listing(tmp_path) == []  # and no staging folder is left beside it
@@ -93,8 +95,8 @@ def test_an_existing_target_keeps_its_files_when_a_write_fails(failure, tmp_path
     target.mkdir()
     (target / "notes.txt").write_text("mine")
     (target / "trace.csv").write_text("old")
-    tables, documents = FAILURES[failure](monkeypatch)
-    with pytest.raises(Exception):
+    tables, documents, error = FAILURES[failure](monkeypatch)
+    with pytest.raises(error):
         write_run(target, tables, RECORD, documents=documents)
     assert listing(target) == ["notes.txt", "trace.csv"]
     assert (target / "trace.csv").read_text() == "old"
@@ -111,3 +113,16 @@ def test_a_successful_write_replaces_its_own_files_and_leaves_others_alone(tmp_p
     pd.testing.assert_frame_equal(pd.read_csv(target / "trace.csv"), TABLES["trace"])
     assert "notes.txt" not in json.loads((target / "manifest.json").read_text())["files"]
     assert listing(tmp_path) == ["run"]
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "microsim/store.py write_run: files are moved from the staging folder one by one with "
+    "os.replace, so when a later move fails (here: a folder named trace.csv in the target) "
+    "the files moved before it (counts.csv, counts.parquet) are already in place, against "
+    "the module's promise that a run's files appear together or not at all"))
+def test_a_failed_move_into_the_target_leaves_no_new_files(tmp_path):
+    target = tmp_path / "run"
+    (target / "trace.csv").mkdir(parents=True)  # in the way of one of the run's files
+    with pytest.raises(OSError):
+        write_run(target, TABLES, RECORD)
+    assert listing(target) == ["trace.csv"]

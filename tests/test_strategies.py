@@ -28,11 +28,11 @@ from microsim.cohort.analytic import analytic
 from microsim.compare import compare
 from microsim.outcomes import outcome_values
 from microsim.population import draw_population
-from microsim.scenario import parse_scenario
+from microsim.scenario import ScenarioError, parse_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, HazardSpec,
                                     StrategySpec, TransitionSpec)
 from microsim.simulate import cohort_patients, simulate
-from microsim.strategies import eligible, patient_multipliers, treatment_window
+from microsim.strategies import eligible, treatment_window
 
 Z = 4.0
 KS_LEVEL = 0.001
@@ -104,11 +104,10 @@ def test_all_and_any_combine_as_and_of_all_with_or_of_any():
     assert eligible(None, P).all()  # no eligibility section: everyone
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "microsim/strategies.py condition_holds, case 'equals': a number is compared as text "
-    "(column.astype(str) == str(value)), so an integer column (e.g. a population-file column "
-    "stage = 1, 2, 3) never equals the reader's float 2.0 ('2' != '2.0'): nobody is eligible"))
 def test_equals_a_number_on_a_whole_number_column():
+    """A population-file column of whole numbers (stage 1, 2, 3) against `equals = 2`.
+
+    Regression: numbers were compared as text ('2' != '2.0'), so nobody was eligible."""
     patients = pd.DataFrame({"patient": np.arange(6, dtype=np.int64),
                              "stage": np.array([1, 2, 3, 2, 1, 2], dtype=np.int64)})
     # the reader stores `equals = 2` as the float 2.0 (Node.number)
@@ -364,21 +363,39 @@ def test_treatment_window_agrees_with_the_hand_built_trace(kind):
     assert model.treatment.off_factor[recovery] == 0.0
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "microsim/cohort/analytic.py line 131: analytic(model) without `mult` takes "
-    "cohort_multipliers(model) (or multipliers(model, patients)), which carry no treatment "
-    "window, so for a model bound with a strategy the hazard ratios are never applied and a "
-    "transition that exists only while treated acts at all times; microsim.api.cohort_trace "
-    "and expected_outcomes inherit this and return a wrong trace without a word"))
 @pytest.mark.parametrize("kind", CASES)
 def test_the_cohort_trace_of_a_strategy_applies_its_treatment(kind):
     text, recovery, reference = CASES[kind]
+    """Regression: the cohort side used to drop the treatment window, so the hazard ratio
+    never acted and the while-treated transition acted at all times."""
     model = bind(with_strategies(text, treated_strategy(recovery)), strategy="drug")
     # uptake 1, no discontinuation: every patient's window is [START, STOP), so the
-    # cohort's trace is the hand-built one (or the call should refuse)
+    # cohort's trace is the hand-built one
     np.testing.assert_allclose(cohort_trace(model).pivot(index="time", columns="state",
                                                          values="share")[list(model.states)],
                                reference(model.times), rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("change", [dict(uptake=0.6), dict(discontinuation=0.1),
+                                    dict(eligible=EligibilitySpec(
+                                        all=(ConditionSpec("age", "above", 60.0),)))],
+                         ids=["uptake", "discontinuation", "eligibility"])
+def test_a_cohort_trace_of_a_strategy_that_treats_some_patients_is_refused(change):
+    """No single cohort row shows a mix of treated and untreated patients: the answer is a
+    refusal naming the strategy, not the untreated trace."""
+    strategy = replace(treated_strategy(CASES["rate"][1]), **change)
+    scenario = with_strategies(RATE_MODEL + """
+[population]
+size = 10
+[[population.attributes]]
+name = "age"
+distribution = "uniform"
+lower = 40
+upper = 80
+""", strategy)
+    with pytest.raises(ScenarioError) as refused:
+        cohort_trace(bind(scenario, strategy="drug"))
+    assert refused.value.path == "strategies.drug"
 
 
 # ---------------------------------------------------------------- costs on treatment
@@ -421,8 +438,7 @@ def test_discounted_cost_and_utility_on_treatment_have_the_closed_form(start, st
     expected = {"costs_discounted": discounted_stream(COST, start, end, 0.035),
                 "costs": discounted_stream(COST, start, end, 0.0),
                 "qalys_discounted": discounted_stream(UTILITY, start, end, 0.015)}
-    windows = patient_multipliers(model, cohort_patients(1), SEED)
-    exact = outcome_values(model, analytic(model, mult=windows).exposure)
+    exact = outcome_values(model, analytic(model).exposure)
     for measure, value in expected.items():
         assert exact[measure][0] == pytest.approx(value, rel=1e-9), measure
     values = outcome_values(model, simulate(model, cohort_patients(4000), SEED).exposure)

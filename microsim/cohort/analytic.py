@@ -118,31 +118,50 @@ def exponential_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> 
 
 def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
     """True when every hazard is constant between table breaks (exact exponentials apply)."""
-    if np.any(mult.age_slope != 0) or mult.log_static.shape[0] != 1:
+    if np.any(mult.age_slope != 0):
         return False
     return all(r.family == "constant" or (r.table is not None and r.table.by != "time_in_state")
                for r in exp.model.risks)
 
 
+ODE_CHUNK = 64  # patients solved together: each one's table breaks slow the others' steps
+
+
+def rows_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple:
+    """The rate-model result for distinct patient rows: exact exponentials row by row when
+    hazards are piecewise constant, else the forward equations in chunks of rows."""
+    if piecewise_constant(exp, mult):
+        parts = [exponential_result(exp, mult.take(slice(b, b + 1)), times)
+                 for b in range(mult.size)]
+        method = "matrix exponential of the rate matrix"
+    else:
+        parts = [solve_rates(exp, mult.take(slice(lo, lo + ODE_CHUNK)), times)
+                 for lo in range(0, mult.size, ODE_CHUNK)]
+        method = "forward equations solved numerically (rtol 1e-10)"
+    trace = np.concatenate([p[0] for p in parts])
+    return trace, Exposure.join([p[1] for p in parts]), method
+
+
 def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
              mult: Multipliers | None = None, times: np.ndarray | None = None) -> CohortResult:
-    """Expected trace and outcome integrals per patient (or for the uniform cohort)."""
+    """Expected trace and outcome integrals per patient (or for the uniform cohort).
+
+    Patients with identical multipliers (and entry age and treatment window) share one
+    computation, so a population that differs only by a yes/no factor costs two."""
     exp = expand(model)
     if mult is None:
         if patients is not None and model.treatment is not None:
             raise ValueError("a strategy's patients need their treatment windows: pass "
                              "mult=strategies.patient_multipliers(model, patients, seed)")
         mult = uniform_multipliers(model) if patients is None else multipliers(model, patients)
+    distinct, inverse = mult.unique()
     memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
     if model.discrete:
-        trace, exposure = cycle_result(exp, mult)
-        times, method = model.times, "cycle-by-cycle matrix products" + memory
+        trace, exposure = cycle_result(exp, distinct)
+        times, method = model.times, "cycle-by-cycle matrix products"
     else:
         times = model.times if times is None else np.asarray(times, float)
-        if piecewise_constant(exp, mult):
-            trace, exposure = exponential_result(exp, mult, times)
-            method = "matrix exponential of the rate matrix" + memory
-        else:
-            trace, exposure = solve_rates(exp, mult, times)
-            method = "forward equations solved numerically (rtol 1e-10)" + memory
-    return CohortResult(times, trace, exposure, method, exp.exact, exp.reasons)
+        trace, exposure, method = rows_result(exp, distinct, times)
+    exposure = Exposure(exposure.occupancy[inverse], exposure.occurrences[inverse],
+                        exposure.on_treatment[inverse])
+    return CohortResult(times, trace[inverse], exposure, method + memory, exp.exact, exp.reasons)
