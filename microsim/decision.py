@@ -156,6 +156,7 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
                                        "patients_now", "patients_needed"])
 
 
+
 @dataclass(frozen=True)
 class Decision:
     comparator: str

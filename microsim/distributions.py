@@ -278,12 +278,12 @@ def correlation_root(correlation: object) -> np.ndarray:
     matrix = np.asarray(correlation, dtype=float)
     if matrix.ndim != 2 or matrix.shape[0] != matrix.shape[1] or not np.all(np.isfinite(matrix)):
         raise ValueError(f"correlation must be a finite square matrix, got shape {matrix.shape}")
-    if not np.allclose(matrix, matrix.T, rtol=0, atol=1e-10):
+    if not np.allclose(matrix, matrix.T, rtol=0, atol=1e-9):
         raise ValueError("correlation matrix must be symmetric")
-    if not np.allclose(np.diag(matrix), 1.0, rtol=0, atol=1e-10):
+    if not np.allclose(np.diag(matrix), 1.0, rtol=0, atol=1e-9):
         raise ValueError("correlation matrix must have ones on the diagonal")
     eigenvalues, eigenvectors = np.linalg.eigh((matrix + matrix.T) / 2)
-    if eigenvalues.min() < -1e-10:
+    if eigenvalues.min() < -1e-9:
         raise ValueError(f"correlation matrix is not positive semi-definite: "
                          f"smallest eigenvalue {eigenvalues.min():.6g}")
     return (eigenvectors * np.sqrt(np.clip(eigenvalues, 0.0, None))) @ eigenvectors.T

@@ -422,7 +422,8 @@ def expected_covariate(spec: PopulationSpec, attribute: str, level: str | None =
         source = next(a for a in spec.attributes if a.name == derived.source)
         k = list(derived.labels).index(level)
         cdf = marginal_distribution(source).cdf
-        return float(cdf(derived.edges[k + 1]) - cdf(derived.edges[k]))
+        upper = derived.edges[k + 1] if k + 1 < len(derived.edges) else math.inf  # open last band
+        return float(cdf(upper) - cdf(derived.edges[k]))
     spec_attribute = next(a for a in spec.attributes if a.name == attribute)
     match spec_attribute.distribution:
         case "yesno":

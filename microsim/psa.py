@@ -62,7 +62,8 @@ class PsaResult:
 
 def thresholds(scenario: Scenario) -> np.ndarray:
     start, stop, step = scenario.economics.thresholds
-    return np.arange(start, stop + step / 2, step)
+    points = start + step * np.arange(int(np.floor((stop - start) / step + 1e-9)) + 1)
+    return points[points <= stop]
 
 
 def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:

@@ -1,10 +1,10 @@
 """Who a strategy treats, and when: eligibility, uptake and treatment windows per patient.
 
 Eligibility is structured data (conditions on attributes at entry), never evaluated code.
-Uptake and early discontinuation are draws of the patient's own streams: the uptake draw
-is shared by every strategy (purpose "uptake"), so a patient who takes up one treatment
-with 60% uptake also takes up another with 80% — common random numbers for who is treated
-as well as for what happens to them.
+Uptake and early discontinuation are draws of the patient's own streams, shared by every
+strategy (purposes "uptake" and "discontinuation"): a patient who takes up one treatment
+with 60% uptake also takes up another with 80%, and stops early alike — common random
+numbers for who is treated as well as for what happens to them.
 """
 from __future__ import annotations
 
@@ -19,6 +19,7 @@ from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import ConditionSpec, EligibilitySpec
 
 UPTAKE_PURPOSE = "uptake"
+DISCONTINUATION_PURPOSE = "discontinuation"  # shared too: the same patients stop early
 
 
 def condition_holds(condition: ConditionSpec, patients: pd.DataFrame) -> np.ndarray:
@@ -67,7 +68,7 @@ def treatment_window(model: BoundModel, patients: pd.DataFrame, seed: int) -> Wi
     treated &= streams.uniforms(seed, ids, UPTAKE_PURPOSE) < t.uptake
     off = np.full(len(ids), t.stop)
     if t.discontinuation > 0:
-        u = streams.uniforms(seed, ids, f"discontinuation:{t.strategy}")
+        u = streams.uniforms(seed, ids, DISCONTINUATION_PURPOSE)
         off = np.minimum(off, t.start - np.log(u) / t.discontinuation)
     on = np.where(treated, t.start, np.inf)
     return Window(on, np.where(treated, off, np.inf), t.on_factor, t.off_factor)

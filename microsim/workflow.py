@@ -152,15 +152,19 @@ def print_summary(result: MainResult, show) -> None:
         cur = s.economics.currency
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",
                                                           "life_years"])]
+        order = list(dict.fromkeys(table.strategy))
+        means = table.pivot(index="strategy", columns="measure", values="mean").loc[order]
+        errors = table.pivot(index="strategy", columns="measure", values="se").loc[order]
         show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
-             table.pivot(index="strategy", columns="measure", values="mean").reset_index()
-             .merge(table.pivot(index="strategy", columns="measure", values="se")
-                    .add_suffix("_se").reset_index(), on="strategy"))
+             means.join(errors.add_suffix("_se")).reset_index())
         show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
         show(f"Net benefit at {d.threshold:g} {cur} per QALY — best: {best}", d.net_benefit)
-        show("Who benefits: incremental net monetary benefit by subgroup", d.subgroups, rows=60)
+        print("\nWho benefits (incremental NMB against the comparator, by subgroup):")
+        for line in subgroup_headlines(d.subgroups):
+            print(f"  {line}")
+        show("Incremental net monetary benefit by subgroup (all)", d.subgroups, rows=60)
         show("Precision: patients needed for the target 95% CI half-width of incremental NMB",
              d.precision)
     for name, v in result.validations.items():
@@ -175,6 +179,20 @@ def print_summary(result: MainResult, show) -> None:
         show("Expected value of perfect information per patient",
              p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
         show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
+
+
+def subgroup_headlines(subgroups: pd.DataFrame) -> list[str]:
+    """One line per strategy: the subgroups where it clearly pays and clearly does not."""
+    lines = []
+    for name, rows in subgroups.groupby("strategy", sort=False):
+        def listed(rows):
+            return "; ".join(f"{r.attribute} = {r.level} ({r.incremental_nmb:+,.0f} +- "
+                             f"{1.96 * r.se:,.0f})" for r in rows.itertuples()) or "none"
+        pays = rows[rows.verdict.str.startswith("pays")]
+        loses = rows[rows.verdict.str.startswith("does not pay")]
+        lines.append(f"{name} pays for: {listed(pays)}")
+        lines.append(f"{name} does not pay for: {listed(loses)}")
+    return lines
 
 
 def run_scenario(args) -> int:

@@ -398,6 +398,44 @@ upper = 80
     assert refused.value.path == "strategies.drug"
 
 
+UPTAKE, QUIT = 0.6, 0.3
+
+
+def rate_reference_with_quitting(times: np.ndarray) -> np.ndarray:
+    """Uptake and exponential discontinuation keep the model Markov on (state, on/off):
+    at START a share UPTAKE of every state turns on, on-patients turn off at rate QUIT
+    whatever their state, and everyone is off from STOP (a Markov expansion of the
+    treatment status, common practice). Generator on (well, sick, dead) x (on, off)."""
+    Q = np.zeros((6, 6))
+    Q[:3, :3] = rate_matrix(True) - QUIT * np.eye(3)
+    Q[:3, 3:] = QUIT * np.eye(3)
+    Q[3:, 3:] = rate_matrix(False)
+    out = []
+    for t in times:
+        pi = np.array([0.8, 0.2, 0.0]) @ expm(rate_matrix(False) * min(t, START))
+        if t > START:
+            pi = np.concatenate([UPTAKE * pi, (1 - UPTAKE) * pi]) @ expm(Q * (min(t, STOP) - START))
+            pi = (pi[:3] + pi[3:]) @ expm(rate_matrix(False) * max(t - STOP, 0.0))
+        out.append(pi)
+    return np.array(out)
+
+
+def test_uptake_and_discontinuation_agree_with_the_expanded_chain():
+    strategy = replace(treated_strategy(CASES["rate"][1]), uptake=UPTAKE, discontinuation=QUIT)
+    model = bind(with_strategies(RATE_MODEL, strategy), strategy="drug")
+    n = 4000
+    sim = simulate(model, cohort_patients(n), SEED)
+    expected = rate_reference_with_quitting(sim.grid)
+    # each patient's state at t is an independent Bernoulli draw with the mixture
+    # probability (its own uptake and quitting draws), so the binomial SE applies
+    simulated = np.stack([(sim.states == s).mean(axis=0) for s in range(3)], axis=1)
+    se = np.sqrt(expected * (1 - expected) / n)
+    z = np.where(se > 0, (simulated - expected) / np.where(se > 0, se, 1), 0)
+    assert np.abs(z).max() < Z
+    result = compare(sim)  # the per-patient counterpart, given the drawn windows
+    assert result.exact and result.agrees, result.verdict
+
+
 # ---------------------------------------------------------------- costs on treatment
 
 SURVIVAL_MODEL = """
