@@ -140,8 +140,9 @@ def verdict(mean: float, se: float, z: float = 1.96, scale: float = 1.0) -> str:
 
 def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
                      target: float | None) -> pd.DataFrame:
-    """Patients needed for a 95% CI half-width of incremental NMB of `target` (default:
-    a tenth of the estimate's magnitude), from the paired standard deviation."""
+    """Patients needed for a 95% CI half-width of incremental NMB of `target`, from the
+    paired standard deviation. Without a target: the half-width equal to the estimate's own
+    size, i.e. the patients needed before the sign of the increment is clear at 95%."""
     nmb = threshold * wide(outcomes, EFFECT) - wide(outcomes, COST)
     rows = []
     for name in nmb.columns:
@@ -149,7 +150,7 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
             continue
         gain = (nmb[name] - nmb[comparator]).to_numpy()
         sd = float(np.std(gain, ddof=1))
-        half_width = target if target is not None else abs(float(gain.mean())) / 10
+        half_width = target if target is not None else abs(float(gain.mean()))
         needed = economics.patients_needed(sd, half_width=half_width) if half_width > 0 and sd > 0 else 0
         rows.append((name, half_width, sd, len(gain), needed))
     return pd.DataFrame(rows, columns=["strategy", "target_half_width", "sd_paired_nmb",

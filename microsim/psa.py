@@ -5,7 +5,9 @@ strategy on its own inner patients (ids draw * n .. draw * n + n - 1, so draws a
 independent and each is reproducible on its own). Per draw we keep the strategies' mean
 cost and effect and, for the ANOVA split of O'Hagan, Stevenson & Madan (2007, "Monte Carlo
 probabilistic sensitivity analysis for patient level simulation models", Health Economics
-16:1009-1023), the within-draw variance of each strategy's net monetary benefit.
+16:1009-1023), the within-draw variance of each strategy's paired incremental net benefit.
+Inner Monte-Carlo noise inflates the spread of per-draw means, and with it EVPI and the
+acceptability curve's extremes; the split tells how many inner patients make that small.
 """
 from __future__ import annotations
 
@@ -36,18 +38,23 @@ def inner_patients(scenario: Scenario, draw: int, n: int) -> pd.DataFrame:
 
 
 def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.DataFrame:
-    """One outer draw: every strategy on the draw's inner patients."""
+    """One outer draw: every strategy on the draw's inner patients. Besides the means, the
+    within-draw variance of each strategy's paired incremental net benefit against the
+    comparator, which the inner/outer split needs."""
     sims = run_strategies(scenario, inner_patients(scenario, draw, n),
                           scenario.simulation.seed, values)
     outcomes = patient_outcomes(sims)
     threshold = scenario.economics.threshold
+    nmb = (threshold * outcomes[EFFECT] - outcomes[COST]).groupby(outcomes.strategy, sort=False)
+    comparator = strategy_names(scenario)[0]
+    base = nmb.get_group(comparator).to_numpy()
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
-        nmb = threshold * group[EFFECT] - group[COST]
+        gain = nmb.get_group(name).to_numpy() - base
         rows.append((name, group[COST].mean(), group[EFFECT].mean(), group["life_years"].mean(),
-                     float(nmb.var(ddof=1)), len(group)))
+                     float(gain.var(ddof=1)), len(group)))
     return pd.DataFrame(rows, columns=["strategy", "cost", "effect", "life_years",
-                                       "nmb_within_variance", "patients"])
+                                       "incremental_nmb_within_variance", "patients"])
 
 
 @dataclass(frozen=True)
@@ -67,23 +74,30 @@ def thresholds(scenario: Scenario) -> np.ndarray:
 
 
 def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
-    """Per strategy: between-draw variance of mean NMB corrected for inner noise
-    (s_B^2 - tau^2 / n), the within-draw variance tau^2, and the optimal split of the same
-    total number of patients (O'Hagan, Stevenson & Madan 2007)."""
+    """Per strategy against the comparator: the between-draw variance of the incremental
+    net benefit corrected for inner noise (s_B^2 - tau^2 / n), the within-draw (patient)
+    variance tau^2, and the split of the same total number of patients that estimates the
+    between-draw variance best (O'Hagan, Stevenson & Madan 2007)."""
     threshold = scenario.economics.threshold
+    names = strategy_names(scenario)
+    nmb = (threshold * results["effect"] - results["cost"]).to_numpy()
+    table = results.assign(nmb=nmb).pivot(index="draw", columns="strategy", values="nmb")
     rows = []
-    for name, group in results.groupby("strategy", sort=False):
+    for name in names[1:]:
+        group = results[results.strategy == name]
         n = int(group["patients"].iloc[0])
-        means = threshold * group["effect"] - group["cost"]
-        within = float(group["nmb_within_variance"].mean())
+        within = float(group["incremental_nmb_within_variance"].mean())
+        means = table[name] - table[names[0]]
         between = max(float(means.var(ddof=1)) - within / n, 0.0)
-        split = economics.optimal_sample_split(between, within, n * len(group)) if between > 0 else None
-        rows.append((name, len(group), n, between, within,
+        split = (economics.optimal_sample_split(between, within, n * len(group))
+                 if between > 0 else None)
+        rows.append((name, len(group), n, float(means.mean()), between, within,
                      None if split is None else split.n_draws,
                      None if split is None else split.patients_per_draw))
     return pd.DataFrame(rows, columns=["strategy", "draws", "patients_per_draw",
-                                       "between_draw_variance", "within_draw_variance",
-                                       "suggested_draws", "suggested_patients_per_draw"])
+                                       "mean_incremental_nmb", "between_draw_variance",
+                                       "within_draw_variance", "suggested_draws",
+                                       "suggested_patients_per_draw"])
 
 
 def run_psa(scenario: Scenario, run_dir: Path, *, draws: int | None = None,

@@ -165,7 +165,9 @@ def print_summary(result: MainResult, show) -> None:
         for line in subgroup_headlines(d.subgroups):
             print(f"  {line}")
         show("Incremental net monetary benefit by subgroup (all)", d.subgroups, rows=60)
-        show("Precision: patients needed for the target 95% CI half-width of incremental NMB",
+        target = ("the scenario's economics.precision" if s.economics.precision else
+                  "a half-width equal to the estimate, i.e. until its sign is clear")
+        show(f"Precision: patients needed for a 95% CI of incremental NMB with {target}",
              d.precision)
     for name, v in result.validations.items():
         print(f"\nValidation ({name}): {v.verdict}")
