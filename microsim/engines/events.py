@@ -131,6 +131,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     absorbing, simple, from_state = model.absorbing.tolist(), batch.simple, batch.from_state
     memory, bumps, tracked = batch.memory, batch.bumps, batch.tracked
     end = model.n_cycles * model.cycle
+    statics = batch.statics.tolist()
     record = Recorder(mult.size)
     tracking = bool(tracked)
 
@@ -138,7 +139,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         times = [t[b] if t else None for t in batch.times]  # extended when used up
         winners = [w[b] if w else None for w in batch.winners]
         draws = {r: d[b] for r, d in batch.draws.items()}
-        static = batch.statics[b].tolist()
+        static = statics[b]
         age0 = 0.0 if mult.entry_age is None else float(mult.entry_age[b])
         rounds = [0] * model.n_states
         state, entered, now = batch.starts[b], 0.0, 0.0
