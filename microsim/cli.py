@@ -32,7 +32,7 @@ def write(args, path: Path, tables: dict, started: float, documents: dict | None
           quiet: bool = False, **extra) -> None:
     from microsim.store import manifest, write_run
     target = out_dir(args, path)
-    write_run(target, tables, manifest(path, started, **extra), documents=documents)
+    write_run(target, tables, manifest(path, started, args.argv, **extra), documents=documents)
     if not quiet:
         print(f"\nwrote {len(tables)} tables (CSV and Parquet) and manifest.json to {target}/")
 
@@ -215,9 +215,28 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+WHOLE_NUMBERS = {  # option: (smallest allowed, what it is)
+    "patients": (1, "a population size"), "seed": (0, "a seed"), "draws": (1, "a number of draws"),
+    "psa_patients": (1, "a number of patients"), "workers": (1, "a number of workers"),
+    "rows": (0, "a number of rows")}
+
+
+def check_numbers(args) -> None:
+    """Command-line numbers are input too: refuse them like a bad field, in one line."""
+    for name, (low, what) in WHOLE_NUMBERS.items():
+        value = getattr(args, name, None)
+        if value is not None and (value < low or (name == "seed" and value >= 2**64)):
+            bound = f">= {low}" if name != "seed" else "in [0, 2**64)"
+            raise ScenarioError(f"--{name.replace('_', '-')}",
+                                f"{what} must be a whole number {bound}, got {value}")
+
+
 def main(argv: list[str] | None = None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = build_parser().parse_args(argv)
+    args.argv = argv
     try:
+        check_numbers(args)
         return args.function(args)
     except ScenarioError as error:
         print(f"error: {error}", file=sys.stderr)

@@ -105,8 +105,10 @@ def run_psa(scenario: Scenario, run_dir: Path, *, draws: int | None = None,
             address: str | None = None, progress: bool = True) -> PsaResult:
     """The PSA loop, resumable from `run_dir`, identical for any number of workers."""
     spec = scenario.uncertainty
-    n_draws = draws or spec.draws
-    n = patients or spec.patients or (scenario.population.size if scenario.population else 1000)
+    n_draws = spec.draws if draws is None else draws
+    n = next(v for v in (patients, spec.patients,
+                         scenario.population.size if scenario.population else None, 1000)
+             if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
     table = parameter_draws(scenario.parameters, scenario.simulation.seed, n_draws,
                             correlation=correlation, dirichlets=spec.dirichlets)

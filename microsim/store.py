@@ -39,12 +39,14 @@ def package_versions() -> dict[str, str]:
     return versions
 
 
-def manifest(scenario_path: Path | None, started: float, **extra) -> dict:
-    """What a reader needs to reproduce a run: scenario hash, command, versions, time."""
+def manifest(scenario_path: Path | None, started: float, command: list[str] | None = None,
+             **extra) -> dict:
+    """What a reader needs to reproduce a run: scenario hash, command, versions, time.
+    `command` is the argument list the run was given (default: this process's)."""
     record = {
         "scenario": str(scenario_path) if scenario_path else None,
         "scenario_sha256": file_hash(scenario_path) if scenario_path else None,
-        "command": " ".join(["microsim", *sys.argv[1:]]),
+        "command": " ".join(["microsim", *(sys.argv[1:] if command is None else command)]),
         "versions": package_versions(),
         "finished_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
         "wall_seconds": round(time.perf_counter() - started, 3),
@@ -82,8 +84,30 @@ def write_run(out_dir: Path, tables: dict[str, pd.DataFrame], record: dict,
         out_dir.mkdir(exist_ok=True)
         # The manifest moves last: its presence says the run's files are complete.
         paths = sorted(staging.iterdir(), key=lambda p: (p.name == "manifest.json", p.name))
-        for path in paths:
-            os.replace(path, out_dir / path.name)
+        move_all(paths, out_dir, staging / ".previous")
         return [out_dir / p.name for p in paths]
     finally:
         shutil.rmtree(staging, ignore_errors=True)
+
+
+def move_all(paths: list[Path], out_dir: Path, backup: Path) -> None:
+    """Move every path into out_dir, or none: files they replace are set aside first and
+    put back if any move fails."""
+    backup.mkdir()
+    done: list[tuple[Path, Path | None]] = []
+    try:
+        for path in paths:
+            target = out_dir / path.name
+            kept = None
+            if target.is_file():
+                kept = backup / path.name
+                os.replace(target, kept)
+            done.append((target, kept))
+            os.replace(path, target)
+    except BaseException:
+        for target, kept in reversed(done):
+            if target.is_file():
+                target.unlink()
+            if kept is not None:
+                os.replace(kept, target)
+        raise

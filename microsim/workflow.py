@@ -28,7 +28,7 @@ DEFAULT_PATIENTS = 2000
 
 def patients_for(scenario: Scenario, size: int | None, seed: int) -> pd.DataFrame:
     spec = scenario.population
-    n = size or (spec.size if spec else DEFAULT_PATIENTS)
+    n = size if size is not None else (spec.size if spec else DEFAULT_PATIENTS)
     if spec is not None and (spec.attributes or spec.file):
         return draw_population(spec, seed, np.arange(n))
     return cohort_patients(n)

@@ -115,11 +115,6 @@ def test_a_successful_write_replaces_its_own_files_and_leaves_others_alone(tmp_p
     assert listing(tmp_path) == ["run"]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "microsim/store.py write_run: files are moved from the staging folder one by one with "
-    "os.replace, so when a later move fails (here: a folder named trace.csv in the target) "
-    "the files moved before it (counts.csv, counts.parquet) are already in place, against "
-    "the module's promise that a run's files appear together or not at all"))
 def test_a_failed_move_into_the_target_leaves_no_new_files(tmp_path):
     target = tmp_path / "run"
     (target / "trace.csv").mkdir(parents=True)  # in the way of one of the run's files

@@ -9,12 +9,14 @@ rate matrix on each piece (rate models; reference library) and with numpy produc
 per-cycle matrices with p' = 1 - (1 - p)^HR (cycle models; Fleurence & Hollenbeak 2007,
 "Rates and probabilities in economic modelling", from memory); the closed form of a
 continuously discounted cost stream under constant mortality (common practice).
-Strategies are built as specs (StrategySpec) on parsed base models.
+Strategies are built as specs (StrategySpec) on parsed base models, and read from TOML in
+the two end-to-end eligibility checks.
 """
 from __future__ import annotations
 
 import math
 from dataclasses import replace
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -28,7 +30,7 @@ from microsim.cohort.analytic import analytic
 from microsim.compare import compare
 from microsim.outcomes import outcome_values
 from microsim.population import draw_population
-from microsim.scenario import ScenarioError, parse_scenario
+from microsim.scenario import ScenarioError, parse_scenario, read_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, HazardSpec,
                                     StrategySpec, TransitionSpec)
 from microsim.simulate import cohort_patients, simulate
@@ -113,6 +115,44 @@ def test_equals_a_number_on_a_whole_number_column():
     # the reader stores `equals = 2` as the float 2.0 (Node.number)
     spec = EligibilitySpec(all=(ConditionSpec("stage", "equals", 2.0),))
     np.testing.assert_array_equal(eligible(spec, patients), (patients.stage == 2).to_numpy())
+
+
+def test_the_demo_targets_the_patients_its_file_names():
+    """End to end from the scenario file: eligibility read from TOML, bound, applied to the
+    generated population (the demo's targeted therapy: biomarker at least 1.0 and age
+    below 80), against the pandas mask written by hand."""
+    demo = read_scenario(Path(__file__).resolve().parent.parent / "scenarios" / "lakemoor_kidney.toml")
+    people = draw_population(demo.population, SEED, np.arange(3000))
+    model = bind(demo, strategy="protein_lowering")
+    treated = np.isfinite(treatment_window(model, people, SEED).on)
+    mask = ((people.biomarker >= 1.0) & (people.age < 80)).to_numpy()
+    assert 100 < mask.sum() < 2900
+    assert not treated[~mask].any()
+    n, k, u = mask.sum(), treated[mask].sum(), model.treatment.uptake
+    assert abs(k - n * u) < Z * math.sqrt(n * u * (1 - u))  # binomial (common practice)
+
+
+def test_equals_a_number_reaches_patients_of_a_population_file(tmp_path):
+    (tmp_path / "people.csv").write_text("stage,age\n1,50\n2,60\n3,70\n")
+    (tmp_path / "s.toml").write_text(HEADER + POPULATION_MODEL.split("[population]")[0] + """
+[population]
+size = 300
+file = "people.csv"
+[[strategies]]
+name = "usual"
+comparator = true
+[[strategies]]
+name = "stage_two"
+  [strategies.eligible]
+  all = [{ attribute = "stage", equals = 2 }]
+  [[strategies.changes]]
+  transition = "well->dead"
+  hazard_ratio = 0.5
+""")
+    scenario = read_scenario(tmp_path / "s.toml")
+    people = draw_population(scenario.population, SEED)
+    treated = np.isfinite(treatment_window(bind(scenario, strategy="stage_two"), people, SEED).on)
+    np.testing.assert_array_equal(treated, (people.stage == 2).to_numpy())  # pandas mask
 
 
 # ------------------------------------------------------------------- uptake and windows
