@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
 import pyarrow.parquet as pq
 
 from microsim import aggregate
@@ -71,7 +70,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             exposures.append(aggregate.exposure(model, h, batch.window))
             transitions += int(np.sum(h.risk >= 0))
             if partial is not None:
-                table = h.table(ids[part], model.states, [r.name for r in model.risks])
+                table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks])
                 if writer is None:
                     partial.parent.mkdir(parents=True, exist_ok=True)
                     writer = pq.ParquetWriter(partial, table.schema)
@@ -88,9 +87,3 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
 def cohort_patients(size: int) -> pd.DataFrame:
     """Identical patients (ids only), for scenarios without a population section."""
     return pd.DataFrame({PATIENT: np.arange(size, dtype=np.int64)})
-
-
-def histories_with_attributes(path: Path, patients: pd.DataFrame) -> pa.Table:
-    """The history file joined with each patient's attributes (for reading, not hot paths)."""
-    return pq.read_table(path).join(pa.Table.from_pandas(patients, preserve_index=False),
-                                    PATIENT)

@@ -43,13 +43,16 @@ class Histories:
     risk: np.ndarray
     n_patients: int
 
-    def table(self, patient_ids: np.ndarray, state_names, risk_names) -> pa.Table:
-        """The records as a typed Arrow table with patient ids and readable names."""
+    def table(self, patients, state_names, risk_names) -> pa.Table:
+        """The records as a typed Arrow table: patient id, time, from state, to state,
+        event, then the patient's attributes (`patients`: the batch's rows, with ids in
+        column 'patient')."""
+        patient_ids = patients["patient"].to_numpy()
         states = pa.array(list(state_names))
         names = list(dict.fromkeys(risk_names))  # an event in several states has one name
         name_of = np.array([names.index(n) for n in risk_names] + [0], np.int32)
         risks = pa.array(names)
-        return pa.table({
+        table = pa.table({
             "patient": pa.array(np.asarray(patient_ids)[self.patient]),
             "time": pa.array(self.time),
             "from_state": pa.DictionaryArray.from_arrays(
@@ -58,3 +61,7 @@ class Histories:
             "event": pa.DictionaryArray.from_arrays(
                 pa.array(np.where(self.risk < 0, None, name_of[self.risk]), pa.int32()), risks),
         })
+        attributes = patients.drop(columns="patient").iloc[self.patient].reset_index(drop=True)
+        for name in attributes.columns:
+            table = table.append_column(name, pa.Array.from_pandas(attributes[name]))
+        return table
