@@ -19,7 +19,7 @@ _API = {
     "draw_population": "microsim.population", "describe_population": "microsim.population",
     "simulate": "microsim.simulate", "compare": "microsim.compare",
     "run_strategies": "microsim.decision", "decide": "microsim.decision",
-    "run_psa": "microsim.psa", "run_main": "microsim.workflow",
+    "parameter_uncertainty": "microsim.psa", "run_main": "microsim.workflow",
 }
 
 __all__ = ["CAUTION", "__version__", *_API]

@@ -100,7 +100,7 @@ def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
                                        "suggested_patients_per_draw"])
 
 
-def run_psa(scenario: Scenario, run_dir: Path, *, draws: int | None = None,
+def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | None = None,
             patients: int | None = None, workers: int = 1, backend: str = "processes",
             address: str | None = None, progress: bool = True) -> PsaResult:
     """The PSA loop, resumable from `run_dir`, identical for any number of workers."""

@@ -19,7 +19,7 @@ from microsim.binding import bind
 from microsim.compare import Comparison, compare
 from microsim.decision import Decision, decide, run_strategies, strategy_names
 from microsim.population import draw_population
-from microsim.psa import PsaResult, run_psa
+from microsim.psa import PsaResult, parameter_uncertainty
 from microsim.scenario import Scenario, ScenarioError, read_scenario
 from microsim.simulate import Simulation, cohort_patients, report_grid, simulate
 
@@ -85,7 +85,7 @@ def run_main(path: Path, patients: int | None = None, seed: int | None = None,
     validations = {name: compare(sim) for name, sim in sims.items()}
     psa_result = None
     if psa is not None:
-        psa_result = run_psa(scenario, **psa)
+        psa_result = parameter_uncertainty(scenario, **psa)
     return MainResult(scenario, seed, sims, validations, decision, psa_result,
                       result_tables(scenario, sims, validations, decision, psa_result))
 

@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 
 from microsim import psa
-from microsim.psa import run_psa
+from microsim.psa import parameter_uncertainty
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, StrategySpec, UncertaintySpec
 from microsim.uncertainty import parameter_draws
@@ -92,7 +92,7 @@ def assert_same(a, b):
 
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory):
-    return run_psa(SCENARIO, tmp_path_factory.mktemp("reference"), workers=1, progress=False)
+    return parameter_uncertainty(SCENARIO, tmp_path_factory.mktemp("reference"), workers=1, progress=False)
 
 
 def test_the_reference_run_is_complete(reference):
@@ -103,12 +103,12 @@ def test_the_reference_run_is_complete(reference):
 
 
 def test_two_worker_processes_give_the_same_tables(reference, tmp_path):
-    assert_same(run_psa(SCENARIO, tmp_path, workers=2, progress=False), reference)
+    assert_same(parameter_uncertainty(SCENARIO, tmp_path, workers=2, progress=False), reference)
 
 
 def test_dask_gives_the_same_tables(reference, tmp_path):
     pytest.importorskip("dask.distributed")
-    assert_same(run_psa(SCENARIO, tmp_path, workers=2, backend="dask", progress=False), reference)
+    assert_same(parameter_uncertainty(SCENARIO, tmp_path, workers=2, backend="dask", progress=False), reference)
 
 
 # ------------------------------------------------------------------ interrupt and resume
@@ -133,13 +133,13 @@ def test_an_interrupted_run_resumes_to_the_same_tables(reference, tmp_path, monk
     EVALUATED.clear()
     run_dir = tmp_path / "run"
     with pytest.raises(KeyboardInterrupt):
-        run_psa(SCENARIO, run_dir, workers=1, progress=False)
+        parameter_uncertainty(SCENARIO, run_dir, workers=1, progress=False)
     # finished draws stay on disk, the interrupted one and the total do not
     kept = sorted(p.name for p in (run_dir / folder.DRAWS).iterdir())
     assert kept == [folder.draw_path(run_dir, d).name for d in (0, 1, 2)]
     assert not (run_dir / folder.RESULTS).exists()
     EVALUATED.clear()
-    resumed = run_psa(SCENARIO, run_dir, workers=1, progress=False)
+    resumed = parameter_uncertainty(SCENARIO, run_dir, workers=1, progress=False)
     assert EVALUATED == [3, 4, 5]  # only the draws not yet on disk
     assert_same(resumed, reference)
 
