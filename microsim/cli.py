@@ -49,13 +49,18 @@ def command_check(args) -> int:
     return 0
 
 
+def begin(args) -> tuple[float, Path, object]:
+    """Start a command's clock and read its scenario (refusing bad input before any work)."""
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    return started, path, read_scenario(path)
+
+
 def command_trace(args) -> int:
     """The analytic cohort trace."""
     from microsim.api import cohort_trace
     from microsim.binding import bind
-    started = time.perf_counter()
-    path = Path(args.scenario)
-    scenario = read_scenario(path)
+    started, path, scenario = begin(args)
     trace = cohort_trace(bind(scenario))
     wide = trace.pivot(index="time", columns="state", values="share")[list(scenario.state_names)]
     show(f"Cohort trace — {scenario.title} (share of the cohort in each state)",
@@ -68,9 +73,7 @@ def command_trace(args) -> int:
 def command_summary(args) -> int:
     from microsim.api import chain_summary, expected_outcomes
     from microsim.binding import bind
-    started = time.perf_counter()
-    path = Path(args.scenario)
-    scenario = read_scenario(path)
+    started, path, scenario = begin(args)
     model = bind(scenario)
     summary = chain_summary(model)
     tables = {}
@@ -130,9 +133,7 @@ def command_validate(args) -> int:
 def command_population(args) -> int:
     from microsim.population import describe_population
     from microsim.workflow import patients_for
-    started = time.perf_counter()
-    path = Path(args.scenario)
-    scenario = read_scenario(path)
+    started, path, scenario = begin(args)
     if scenario.population is None:
         raise ScenarioError("population", "the scenario has no population section to preview")
     seed = scenario.simulation.seed if args.seed is None else args.seed
@@ -149,9 +150,7 @@ def command_population(args) -> int:
 
 def command_sensitivity(args) -> int:
     from microsim.sensitivity import tornado
-    started = time.perf_counter()
-    path = Path(args.scenario)
-    scenario = read_scenario(path)
+    started, path, scenario = begin(args)
     table, measure = tornado(scenario, args.patients, args.seed)
     show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)
     write(args, path, {"one_way": table}, started)

@@ -14,6 +14,19 @@ from microsim.hazards.base import (HazardFamily, check, float_arrays, gompertz_t
 _LARGE_EXPONENT = 700.0  # above this exp() overflows soon: switch to the log form
 
 
+def check_shape_scale(family) -> None:
+    """Check and store a shape-scale family's parameters (Weibull, log-logistic)."""
+    object.__setattr__(family, "shape", positive("shape", family.shape))
+    object.__setattr__(family, "scale", positive("scale", family.scale))
+    object.__setattr__(family, "_inverse_shape", 1.0 / family.shape)
+
+
+def hazard_at_zero(shape: float, scale: float) -> float:
+    """h(0) of a shape-scale family (Weibull, log-logistic): infinite for shape < 1,
+    1/scale for shape 1 (both are then exponential at the origin), 0 above."""
+    return inf if shape < 1.0 else (1.0 / scale if shape == 1.0 else 0.0)
+
+
 @dataclass(frozen=True, slots=True)
 class ConstantHazard(HazardFamily):
     """h(t) = rate: the exponential distribution (rate 0: never)."""
@@ -61,13 +74,11 @@ class WeibullHazard(HazardFamily):
     _inverse_shape: float = field(init=False, repr=False, compare=False)
 
     def __post_init__(self):
-        object.__setattr__(self, "shape", positive("shape", self.shape))
-        object.__setattr__(self, "scale", positive("scale", self.scale))
-        object.__setattr__(self, "_inverse_shape", 1.0 / self.shape)
+        check_shape_scale(self)
 
     def hazard(self, t):
         if t == 0.0:
-            return inf if self.shape < 1.0 else (1.0 / self.scale if self.shape == 1.0 else 0.0)
+            return hazard_at_zero(self.shape, self.scale)
         return self.shape / self.scale * (t / self.scale) ** (self.shape - 1.0)
 
     def cumulative_hazard(self, t):
@@ -165,13 +176,11 @@ class LogLogisticHazard(HazardFamily):
     _inverse_shape: float = field(init=False, repr=False, compare=False)
 
     def __post_init__(self):
-        object.__setattr__(self, "shape", positive("shape", self.shape))
-        object.__setattr__(self, "scale", positive("scale", self.scale))
-        object.__setattr__(self, "_inverse_shape", 1.0 / self.shape)
+        check_shape_scale(self)
 
     def hazard(self, t):
         if t == 0.0:
-            return inf if self.shape < 1.0 else (1.0 / self.scale if self.shape == 1.0 else 0.0)
+            return hazard_at_zero(self.shape, self.scale)
         z = (t / self.scale) ** self.shape
         return self.shape * z / (t * (1.0 + z))
 
