@@ -123,7 +123,8 @@ def command_validate(args) -> int:
     print(f"\n{c.verdict}")
     show("The 'average patient' cohort against the simulated population", c.average_patient)
     print(f"\n{c.average_verdict}")
-    write(args, path, {"validation_shares": c.shares, "validation_outcomes": c.outcomes,
+    write(args, path, {"validation_shares": c.shares, "validation_subgroups": c.subgroups,
+                       "validation_outcomes": c.outcomes,
                        "average_patient": c.average_patient}, started,
           seed=check.simulation.seed, verdict=c.verdict)
     print(f"\n{CAUTION}")

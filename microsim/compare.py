@@ -19,6 +19,7 @@ from scipy.stats import norm
 from microsim.cohort.analytic import CohortResult, analytic
 from microsim.effects import average_patient
 from microsim.outcomes import outcome_values
+from microsim.population import subgroup_attributes
 from microsim.simulate import Simulation, cohort_patients, simulate
 
 FAMILY_ALPHA = 0.001
@@ -42,6 +43,7 @@ class Comparison:
     counterpart: str  # which analytic counterpart was used, in plain words
     exact: bool
     shares: pd.DataFrame  # time, state, simulated, analytic, se, z
+    subgroups: pd.DataFrame  # the same by attribute level or band
     outcomes: pd.DataFrame  # measure, simulated, analytic, se, z
     average_patient: pd.DataFrame  # measure, population, average_patient, difference, se, z
     critical: float
@@ -61,17 +63,37 @@ def counterpart_name(sim: Simulation, result: CohortResult) -> str:
     return f"{kind} ({result.method})"
 
 
-def trace_table(sim: Simulation, result: CohortResult) -> pd.DataFrame:
-    p = result.trace  # (B, T, S)
-    n = sim.size
+def trace_table(sim: Simulation, result: CohortResult, rows: np.ndarray | None = None) -> pd.DataFrame:
+    """Simulated and analytic state shares on the grid (of the patients in `rows`)."""
+    p = result.trace  # (B, T, S); one row for a uniform cohort
+    states = sim.states
+    if rows is not None:
+        states = states[rows]
+        p = p[rows] if p.shape[0] > 1 else p
+    n = len(states)
     analytic_share = p.mean(axis=0)
     se = np.sqrt((p * (1 - p)).sum(axis=0)) / n if p.shape[0] > 1 else np.sqrt(p[0] * (1 - p[0]) / n)
-    simulated = np.stack([(sim.states == s).mean(axis=0) for s in range(sim.model.n_states)], axis=1)
-    times, states = np.meshgrid(sim.grid, np.arange(sim.model.n_states), indexing="ij")
+    simulated = np.stack([(states == s).mean(axis=0) for s in range(sim.model.n_states)], axis=1)
+    times, index = np.meshgrid(sim.grid, np.arange(sim.model.n_states), indexing="ij")
     return pd.DataFrame({
-        "time": times.ravel(), "state": np.array(sim.model.states)[states.ravel()],
+        "time": times.ravel(), "state": np.array(sim.model.states)[index.ravel()],
         "simulated": simulated.ravel(), "analytic": analytic_share.ravel(), "se": se.ravel(),
         "z": z_scores(simulated - analytic_share, se).ravel()})
+
+
+def subgroup_table(sim: Simulation, result: CohortResult) -> pd.DataFrame:
+    """State shares on the grid by subgroup (attribute levels and bands), simulated and
+    analytic, with standard errors and z-scores."""
+    frames = []
+    for attribute in subgroup_attributes(sim.patients):
+        for level, members in sim.patients.groupby(attribute, observed=True).indices.items():
+            frames.append(trace_table(sim, result, np.asarray(members))
+                          .assign(attribute=attribute, level=str(level)))
+    if not frames:
+        return pd.DataFrame(columns=["attribute", "level", "time", "state", "simulated",
+                                     "analytic", "se", "z"])
+    table = pd.concat(frames, ignore_index=True)
+    return table[["attribute", "level"] + [c for c in table.columns if c not in ("attribute", "level")]]
 
 
 def outcome_rows(sim: Simulation, result: CohortResult) -> pd.DataFrame:
@@ -108,7 +130,8 @@ def compare(sim: Simulation) -> Comparison:
         verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
                    "the analytic figures beside the simulation are a Markov approximation that "
                    "ignores this memory, shown for orientation only.")
-    return Comparison(counterpart_name(sim, result), result.exact, shares, outcomes, average,
+    return Comparison(counterpart_name(sim, result), result.exact, shares,
+                      subgroup_table(sim, result), outcomes, average,
                       critical, agrees, verdict, average_verdict(average, critical))
 
 

@@ -16,6 +16,7 @@ import pandas as pd
 from microsim import economics
 from microsim.binding import bind
 from microsim.outcomes import outcome_values
+from microsim.population import subgroup_attributes
 from microsim.scenario.spec import Scenario
 from microsim.simulate import Simulation, report_grid, simulate
 
@@ -97,19 +98,13 @@ def frontier(outcomes: pd.DataFrame, threshold: float) -> tuple[pd.DataFrame, pd
     return analysis, benefit
 
 
-def subgroup_variables(patients: pd.DataFrame) -> list[str]:
-    """Attributes that define subgroups: categories, yes/no, and bands."""
-    return [c for c in patients.columns if c != "patient" and (
-        patients[c].dtype == bool or isinstance(patients[c].dtype, pd.CategoricalDtype))]
-
-
 def subgroups(outcomes: pd.DataFrame, patients: pd.DataFrame, comparator: str,
               threshold: float) -> pd.DataFrame:
     """Paired incremental NMB of each strategy by subgroup, with SE and a plain verdict."""
     nmb = threshold * wide(outcomes, EFFECT) - wide(outcomes, COST)
     people = patients.set_index("patient").loc[nmb.index]
     rows = []
-    for variable in subgroup_variables(patients):
+    for variable in subgroup_attributes(patients):
         for level, members in people.groupby(variable, observed=True).groups.items():
             part = nmb.loc[members]
             for name in nmb.columns:
@@ -158,10 +153,17 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
 
 
 
+def treated_counts(sims: dict[str, Simulation]) -> dict[str, int]:
+    """How many patients each strategy puts on treatment at some time."""
+    return {name: 0 if sim.mult.window is None else int(np.isfinite(sim.mult.window.on).sum())
+            for name, sim in sims.items()}
+
+
 @dataclass(frozen=True)
 class Decision:
     comparator: str
     threshold: float
+    treated: dict[str, int]  # patients each strategy treats
     outcomes: pd.DataFrame  # per patient and strategy
     strategies: pd.DataFrame
     increments: pd.DataFrame
@@ -177,7 +179,7 @@ def decide(scenario: Scenario, sims: dict[str, Simulation]) -> Decision:
     outcomes = patient_outcomes(sims)
     patients = next(iter(sims.values())).patients
     analysis, benefit = frontier(outcomes, threshold)
-    return Decision(comparator, threshold, outcomes, strategy_table(outcomes),
+    return Decision(comparator, threshold, treated_counts(sims), outcomes, strategy_table(outcomes),
                     paired_increments(outcomes, comparator, threshold), analysis, benefit,
                     subgroups(outcomes, patients, comparator, threshold),
                     precision_needed(outcomes, comparator, threshold,

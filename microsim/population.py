@@ -403,6 +403,12 @@ def draw_population(spec: PopulationSpec, seed: int, patient_ids=None) -> pd.Dat
     return frame
 
 
+def subgroup_attributes(patients: pd.DataFrame) -> list[str]:
+    """Attributes that define subgroups: categories, yes/no, and bands."""
+    return [c for c in patients.columns if c != PATIENT and (
+        patients[c].dtype == bool or isinstance(patients[c].dtype, pd.CategoricalDtype))]
+
+
 # ------------------------------------------------------------------------ expectations
 
 def expected_covariate(spec: PopulationSpec, attribute: str, level: str | None = None) -> float:

@@ -95,6 +95,8 @@ def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.Da
     tables = {"cohort_trace": cohort_trace(bind(scenario))}
     tables["validation_shares"] = pd.concat(
         [v.shares.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
+    tables["validation_subgroups"] = pd.concat(
+        [v.subgroups.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_outcomes"] = pd.concat(
         [v.outcomes.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["average_patient"] = validations[first].average_patient
@@ -122,7 +124,7 @@ def summary(result: MainResult) -> dict:
            "caution": CAUTION}
     if d is not None:
         out.update({
-            "comparator": d.comparator, "threshold": d.threshold,
+            "comparator": d.comparator, "threshold": d.threshold, "treated": d.treated,
             "currency": s.economics.currency,
             "strategies": records(d.strategies), "increments": records(d.increments),
             "incremental_analysis": records(d.analysis),
@@ -150,6 +152,13 @@ def print_summary(result: MainResult, show) -> None:
           "with common random numbers.")
     if d is not None:
         cur = s.economics.currency
+        for spec in s.strategies:
+            if spec.comparator:
+                continue
+            count = d.treated[spec.name]
+            print(f"{spec.name}: treats {count} of {first.size} patients ({count / first.size:.1%})"
+                  + ("" if count else " — warning: nobody is treated; check its eligibility "
+                                      "and uptake"))
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",
                                                           "life_years"])]
         order = list(dict.fromkeys(table.strategy))

@@ -155,6 +155,11 @@ class Node:
                 self.fail(key, f"unknown key{where}{did_you_mean(key, allowed)}; "
                                f"allowed keys: {listing(allowed)}")
 
+    def above(self, key: str, value: float, lower_key: str, lower: float) -> None:
+        """Refuse `value` (at `key`) unless it is above `lower` (the value at `lower_key`)."""
+        if value <= lower:
+            self.fail(key, f"must be above {lower_key} ({show(lower)}), got {show(value)}")
+
     def has(self, key: str) -> bool:
         return key in self.data
 
@@ -221,6 +226,15 @@ class Node:
             self.fail(key, "must not be empty")
         return value
 
+    def entry_name(self, taken: Iterable[str], what: str, section: str) -> str:
+        """The `name` of an entry of [[section]], refused when already `taken`; the entry's
+        path becomes `section.<name>`."""
+        name = self.name("name")
+        if name in taken:
+            self.fail("name", f"duplicate {what} name {name!r}; {what} names must be distinct")
+        self.path = f"{section}.{name}"
+        return name
+
     def name(self, key: str, default: Any = REQUIRED) -> str:
         if key not in self.data:
             return self.raw(key, default, "a name")
@@ -274,19 +288,27 @@ class Node:
         return value
 
     def numbers(self, key: str, default: Any = REQUIRED, role: Role = ANY,
-                open_start: bool = False) -> tuple[float, ...]:
-        """A non-empty list of numbers; `open_start` lets the first be -inf."""
+                open_start: bool = False, increasing: bool = False) -> tuple[float, ...]:
+        """A non-empty list of numbers; `open_start` lets the first be -inf; `increasing`
+        refuses a list that is not strictly increasing."""
         values = self._list(key, default, "a list of numbers", nonempty=True)
         if values is default:
             return default
-        return tuple(-math.inf if open_start and i == 0 and v == -math.inf
-                     else self._number(v, f"{key}[{i}]", role) for i, v in enumerate(values))
+        numbers = tuple(-math.inf if open_start and i == 0 and v == -math.inf
+                        else self._number(v, f"{key}[{i}]", role) for i, v in enumerate(values))
+        for i in range(1, len(numbers) if increasing else 0):
+            if numbers[i] <= numbers[i - 1]:
+                self.fail(key, f"must be strictly increasing; {show(numbers[i])} follows "
+                               f"{show(numbers[i - 1])}")
+        return numbers
 
-    def matrix(self, key: str, size: int, role: Role) -> tuple[tuple[float, ...], ...]:
-        """A square `size` x `size` list of rows of numbers."""
-        rows = self._list(key, REQUIRED, f"a list of {size} rows", nonempty=True)
+    def matrix(self, key: str, size: int, role: Role, per: str, empty_as_short: bool = False
+               ) -> tuple[tuple[float, ...], ...]:
+        """A square `size` x `size` list of rows of numbers, one row per `per` (an
+        attribute, a parameter); `empty_as_short` refuses [] as too few rows, not as empty."""
+        rows = self._list(key, REQUIRED, f"a list of {size} rows", nonempty=not empty_as_short)
         if len(rows) != size:
-            self.fail(key, f"has {len(rows)} rows; it needs {size} (one per attribute)")
+            self.fail(key, f"has {len(rows)} rows; it needs {size} (one per {per})")
         for i, row in enumerate(rows):
             if not isinstance(row, list) or len(row) != size:
                 got = f"{len(row)} value(s)" if isinstance(row, list) else describe(row)

@@ -71,9 +71,8 @@ def read_distribution(node: Node | None) -> DistributionSpec | None:
     node.only(("family",) + keys, f" for a {family} distribution")
     params = {k: node.number(k, role=POSITIVE if k in POSITIVE_DISTRIBUTION_KEYS else ANY)
               for k in keys}
-    if family == "uniform" and params["lower"] >= params["upper"]:
-        node.fail("upper", f"must be above lower ({show(params['lower'])}), "
-                           f"got {show(params['upper'])}")
+    if family == "uniform":
+        node.above("upper", params["upper"], "lower", params["lower"])
     return DistributionSpec(family, params)
 
 
@@ -83,11 +82,7 @@ def read_tables(node: Node | None) -> dict[str, TableSpec]:
         name_key(node, name, "table")
         entry = node.node(name, TABLE_KEYS)
         by = entry.text("by", choices=TABLE_AXES)
-        starts = entry.numbers("starts", role=NON_NEGATIVE)
-        for i in range(1, len(starts)):
-            if starts[i] <= starts[i - 1]:
-                entry.fail("starts", f"must be strictly increasing; {show(starts[i])} follows "
-                                     f"{show(starts[i - 1])}")
+        starts = entry.numbers("starts", role=NON_NEGATIVE, increasing=True)
         values = entry.numbers("values", role=NON_NEGATIVE)
         if len(values) != len(starts):
             entry.fail("values", f"has {len(values)} values but starts has {len(starts)}; "

@@ -5,10 +5,9 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
-import numpy as np
-
-from .fields import (AGE, ANY, CORRELATION, POSITIVE, PROBABILITY, REQUIRED, SHARE,
-                     TOLERANCE, Node, did_you_mean, listing, show)
+from .correlation import read_correlation_matrix
+from .fields import (AGE, ANY, POSITIVE, PROBABILITY, REQUIRED, SHARE, TOLERANCE, Node,
+                     did_you_mean, listing, show)
 from .spec import AttributeSpec, DerivedSpec, PopulationSpec
 
 POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
@@ -116,9 +115,8 @@ def attribute_params(node: Node, distribution: str) -> dict[str, float | tuple]:
     params = {k: node.number(k, optional.get(k, REQUIRED),
                              role=POSITIVE if k in POSITIVE_ATTRIBUTE_KEYS else ANY)
               for k in ATTRIBUTE_KEYS[distribution]}
-    if "lower" in params and params["lower"] >= params["upper"]:
-        node.fail("upper", f"must be above lower ({show(params['lower'])}), "
-                           f"got {show(params['upper'])}")
+    if "lower" in params:
+        node.above("upper", params["upper"], "lower", params["lower"])
     if distribution == "normal":
         mass = normal_mass(params["mean"], params["sd"], params["lower"], params["upper"])
         if mass < MIN_TRUNCATED_MASS:
@@ -144,23 +142,7 @@ def read_correlation(node: Node | None, continuous: set[str]
             node.fail(f"attributes[{i}]", f"{name!r} is not a continuous attribute of the "
                                           f"population; continuous attributes: "
                                           f"{listing(sorted(continuous))}")
-    if len(names) < 2:
-        node.fail("attributes", "needs at least two attributes to correlate")
-    matrix = node.matrix("matrix", len(names), CORRELATION)
-    for i in range(len(names)):
-        if abs(matrix[i][i] - 1.0) > TOLERANCE:
-            node.fail(f"matrix[{i}][{i}]", f"the diagonal must be 1, got {show(matrix[i][i])}")
-        for j in range(i):
-            if abs(matrix[i][j] - matrix[j][i]) > TOLERANCE:
-                node.fail(f"matrix[{i}][{j}]", f"{show(matrix[i][j])} differs from "
-                          f"matrix[{j}][{i}] = {show(matrix[j][i])}; the matrix must be "
-                          "symmetric")
-    smallest = float(np.linalg.eigvalsh(np.array(matrix)).min())
-    if smallest < -TOLERANCE:
-        node.fail("matrix", f"is not positive semi-definite: its smallest eigenvalue is "
-                            f"{show(smallest)}; no set of attributes can have these "
-                            "correlations")
-    return names, matrix
+    return names, read_correlation_matrix(node, "attributes", names)
 
 
 def lowest_value(attribute: AttributeSpec) -> float:
@@ -185,11 +167,7 @@ def read_derived(node: Node, sources: dict[str, float | None], taken: set[str]
             entry.fail("from", f"{source!r} is not a continuous attribute or column"
                                f"{did_you_mean(source, sources)}; choose one of: "
                                f"{listing(sorted(sources))}")
-        edges = entry.numbers("edges", open_start=True)
-        for i in range(1, len(edges)):
-            if edges[i] <= edges[i - 1]:
-                entry.fail("edges", f"must be strictly increasing; {show(edges[i])} follows "
-                                    f"{show(edges[i - 1])}")
+        edges = entry.numbers("edges", open_start=True, increasing=True)
         lowest = sources[source]
         if lowest is not None and edges[0] > lowest:
             entry.fail("edges", f"the first edge ({show(edges[0])}) is above the lowest value "

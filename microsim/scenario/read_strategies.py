@@ -1,5 +1,4 @@
-"""Reading [[strategies]], [economics] and [uncertainty]: what is compared, at which
-willingness to pay, and how the PSA draws its parameters.
+"""Reading [[strategies]]: what is compared, who is eligible, and what treatment changes.
 
 A strategy's added states and transitions are read and checked by the base model's own
 readers and checks, run on the merged model (base + added) with their paths moved under
@@ -13,18 +12,15 @@ from contextlib import contextmanager
 from dataclasses import replace
 from typing import Callable, Iterable, Iterator
 
-import numpy as np
-
 from .checks import (check_age_known, check_effects, check_kind, check_lifetime, check_memory,
                      check_names, check_row, check_states, may_be_positive, occurrences,
                      population_kinds, reachable_from_start, unknown_state)
 from .errors import ScenarioError
-from .fields import (ANY, CORRELATION, HAZARD_RATIO, NON_NEGATIVE, POSITIVE, RATE, TOLERANCE,
-                     Node, Reading, Role, describe, did_you_mean, listing, show)
+from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, Node, Reading, Role,
+                     describe, did_you_mean, listing, show)
 from .read_transitions import read_transitions
-from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec,
-                   Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec, TransitionSpec,
-                   UncertaintySpec)
+from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec, Scenario,
+                   StateSpec, StrategySpec, TableSpec, TimeSpec, TransitionSpec)
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
                  "discontinuation", "changes", "states", "transitions")
@@ -38,13 +34,6 @@ RISK_KEYS = ("transition", "hazard_ratio")
 ON_TREATMENT_KEYS = ("state", "cost", "utility")
 CHANGE_KEYS = RISK_KEYS + ON_TREATMENT_KEYS
 WHILE_TREATED = "while_treated"
-ECONOMICS_KEYS = ("threshold", "thresholds", "currency", "precision")
-THRESHOLDS_KEYS = ("from", "to", "step")
-MAX_THRESHOLDS = 10_000
-UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
-CORRELATION_KEYS = ("parameters", "matrix")
-DIRICHLET_KEYS = ("parameters", "alphas")
-DIRICHLET_SUM_TOLERANCE = 1e-6
 MOVED_PATHS = ("states.", "transitions.")  # where the base readers and checks report
 
 UPTAKE = Role("an uptake share", 0.0, 1.0)
@@ -88,10 +77,7 @@ def read_strategies(nodes: list[Node], tables: dict[str, TableSpec], time: TimeS
     """`read_states` is the reader of [[states]], reused for added states."""
     strategies: list[StrategySpec] = []
     for node in nodes:
-        name = node.name("name")
-        if any(s.name == name for s in strategies):
-            node.fail("name", f"duplicate strategy name {name!r}; strategy names must be distinct")
-        node.path = f"strategies.{name}"
+        name = node.entry_name([s.name for s in strategies], "strategy", "strategies")
         node.only(STRATEGY_KEYS)
         strategies.append(read_strategy(node, name, tables, time, read_states))
     if strategies:
@@ -121,8 +107,8 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
     if start >= time.end:
         node.fail("start", f"{show(start)} is at or beyond {end}; the treatment would never begin")
     stop = node.number("stop", None)
-    if stop is not None and stop <= start:
-        node.fail("stop", f"must be above start ({show(start)}), got {show(stop)}")
+    if stop is not None:
+        node.above("stop", stop, "start", start)
     if stop is not None and stop > time.end * (1 + TOLERANCE):
         node.fail("stop", f"{show(stop)} is beyond {end}; stop at or before it, or leave stop "
                           "out to treat until the end")
@@ -194,97 +180,14 @@ def read_change(node: Node) -> ChangeSpec:
                       utility=node.ref("utility", ANY, 0.0))
 
 
-# -- first pass: [economics] and [uncertainty] ------------------------------------------------
-
-def read_economics(node: Node | None) -> EconomicsSpec:
-    defaults = EconomicsSpec()
-    if node is None:
-        return defaults
-    thresholds = defaults.thresholds
-    curve = node.node("thresholds", THRESHOLDS_KEYS, default=None)
-    if curve is not None:
-        low = curve.number("from", defaults.thresholds[0], role=NON_NEGATIVE)
-        high = curve.number("to", defaults.thresholds[1], role=NON_NEGATIVE)
-        step = curve.number("step", defaults.thresholds[2], role=POSITIVE)
-        if high <= low:
-            curve.fail("to", f"must be above from ({show(low)}), got {show(high)}")
-        points = math.floor((high - low) / step + TOLERANCE) + 1
-        if points > MAX_THRESHOLDS:
-            curve.fail("step", f"{show(step)} gives {points} thresholds from {show(low)} to "
-                               f"{show(high)}; at most {MAX_THRESHOLDS} are supported (use a "
-                               "larger step)")
-        thresholds = (low, high, step)
-    return EconomicsSpec(
-        threshold=node.number("threshold", defaults.threshold, role=NON_NEGATIVE),
-        thresholds=thresholds,
-        currency=node.text("currency", defaults.currency, nonempty=True),
-        precision=node.number("precision", None, role=POSITIVE))
-
-
-def read_uncertainty(node: Node | None) -> UncertaintySpec:
-    defaults = UncertaintySpec()
-    if node is None:
-        return defaults
-    names, matrix = read_parameter_correlation(node.node("correlation", CORRELATION_KEYS, None))
-    dirichlets = []
-    for entry in node.nodes("dirichlet", DIRICHLET_KEYS):
-        members = entry.names("parameters")
-        if len(members) < 2:
-            entry.fail("parameters", "needs at least two parameters (a Dirichlet draws a row "
-                                     "of shares that sums to 1)")
-        alphas = entry.numbers("alphas", role=POSITIVE)
-        if len(alphas) != len(members):
-            entry.fail("alphas", f"has {len(alphas)} alphas for {len(members)} parameters; give "
-                                 "one alpha per parameter")
-        dirichlets.append((members, alphas))
-    return UncertaintySpec(
-        draws=node.whole("draws", defaults.draws, minimum=1),
-        patients=node.whole("patients", None, minimum=1),
-        correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets))
-
-
-def read_parameter_correlation(node: Node | None
-                               ) -> tuple[tuple[str, ...], tuple[tuple[float, ...], ...]]:
-    """Names and a correlation matrix: square, unit diagonal, symmetric and positive
-    semi-definite (smallest eigenvalue from numpy.linalg.eigvalsh at least -1e-9)."""
-    if node is None:
-        return (), ()
-    names = node.names("parameters")
-    if len(names) < 2:
-        node.fail("parameters", "needs at least two parameters to correlate")
-    rows = node.raw("matrix", expect=f"a list of {len(names)} rows")
-    if isinstance(rows, list) and len(rows) != len(names):
-        node.fail("matrix", f"has {len(rows)} rows; it needs {len(names)} (one per parameter)")
-    matrix = node.matrix("matrix", len(names), CORRELATION)
-    for i in range(len(names)):
-        if abs(matrix[i][i] - 1.0) > TOLERANCE:
-            node.fail(f"matrix[{i}][{i}]", f"the diagonal must be 1, got {show(matrix[i][i])}")
-        for j in range(i):
-            if abs(matrix[i][j] - matrix[j][i]) > TOLERANCE:
-                node.fail(f"matrix[{i}][{j}]", f"{show(matrix[i][j])} differs from "
-                          f"matrix[{j}][{i}] = {show(matrix[j][i])}; the matrix must be "
-                          "symmetric")
-    smallest = float(np.linalg.eigvalsh(np.array(matrix)).min())
-    if smallest < -TOLERANCE:
-        node.fail("matrix", f"is not positive semi-definite: its smallest eigenvalue is "
-                            f"{show(smallest)}; no set of parameters can have these correlations")
-    return names, matrix
-
-
 # -- second pass ------------------------------------------------------------------------------
 
-def check_analysis(s: Scenario, reading: Reading) -> list[str]:
-    """Cross-checks of the strategies, economics and uncertainty sections (after the base
-    model's own checks passed); returns their warnings."""
+def check_strategies(s: Scenario, reading: Reading) -> list[str]:
+    """Cross-checks of the strategies (after the base model's own checks passed); returns
+    their warnings."""
     found: list[str] = []
     for strategy in s.strategies:
         found += check_strategy(s, reading, strategy)
-    found += check_uncertainty(s)
-    low, high, _ = s.economics.thresholds
-    if not low <= s.economics.threshold <= high:
-        found.append(f"economics.threshold: {show(s.economics.threshold)} is outside the "
-                     f"acceptability-curve range ({show(low)} to {show(high)}); the curve does "
-                     "not show it")
     return found
 
 
@@ -524,43 +427,3 @@ def empty_levels(name: str, shares: dict, conditions: list[ConditionSpec]) -> st
         return None
     values = " or ".join(describe(v) for v in shares if v in allowed)
     return f"no patient has {name!r} = {values} (share 0)"
-
-
-# -- uncertainty --------------------------------------------------------------------------------
-
-def check_uncertainty(s: Scenario) -> list[str]:
-    spec, parameters = s.uncertainty, s.parameters
-    for i, name in enumerate(spec.correlation_parameters):
-        path = f"uncertainty.correlation.parameters[{i}]"
-        defined(s, name, path)
-        distribution = parameters[name].distribution
-        if distribution is None or distribution.family == "fixed":
-            raise ScenarioError(path, f"{name!r} has no distribution that varies, so the PSA "
-                                "does not draw it; only parameters with a distribution can be "
-                                "correlated")
-    found = []
-    grouped: dict[str, int] = {}
-    for i, (names, _) in enumerate(spec.dirichlets):
-        for j, name in enumerate(names):
-            path = f"uncertainty.dirichlet[{i}].parameters[{j}]"
-            defined(s, name, path)
-            if parameters[name].distribution is not None:
-                raise ScenarioError(path, f"{name!r} has its own distribution "
-                                    f"(parameters.{name}.distribution); a Dirichlet group "
-                                    "draws its members, so remove that distribution")
-            if name in grouped:
-                raise ScenarioError(path, f"{name!r} is already in uncertainty.dirichlet"
-                                    f"[{grouped[name]}]; a parameter can be in one group only")
-            grouped[name] = i
-        total = sum(parameters[name].value for name in names)
-        if abs(total - 1.0) > DIRICHLET_SUM_TOLERANCE:
-            found.append(f"uncertainty.dirichlet[{i}]: the base values of {listing(names)} sum "
-                         f"to {show(total)}, not 1; every PSA draw of the group sums to 1")
-    return found
-
-
-def defined(s: Scenario, name: str, path: str) -> None:
-    if name not in s.parameters:
-        raise ScenarioError(path, f"no parameter named {name!r}"
-                            f"{did_you_mean(name, s.parameters)}; defined: "
-                            f"{listing(s.parameters)}")

@@ -3,7 +3,7 @@
 The first pass walks the document section by section with `Node`s, so every refusal
 carries its field path. Cross-references and whole-model rules (row sums, reachability,
 model kind, attributes) are the second pass, in checks.py (and, for strategies, economics
-and uncertainty, in read_strategies.py).
+and uncertainty, beside their readers).
 """
 from __future__ import annotations
 
@@ -18,10 +18,11 @@ from .checks import check_scenario
 from .errors import ScenarioError
 from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading,
                      did_you_mean, listing, show)
+from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
 from .read_population import read_population
-from .read_strategies import (ECONOMICS_KEYS, UNCERTAINTY_KEYS, check_analysis, read_economics,
-                              read_strategies, read_uncertainty)
+from .read_strategies import check_strategies, read_strategies
+from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .read_transitions import read_events, read_transitions
 from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
 
@@ -115,7 +116,8 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
         source=Path(source) if source is not None else None,
     )
     found = check_scenario(draft, reading)
-    return replace(draft, warnings=tuple(found + check_analysis(draft, reading)))
+    found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
+    return replace(draft, warnings=tuple(found))
 
 
 def read_time(node: Node) -> TimeSpec:
@@ -152,10 +154,7 @@ def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = 
 def read_states(nodes: list[Node]) -> tuple[StateSpec, ...]:
     states: list[StateSpec] = []
     for node in nodes:
-        name = node.name("name")
-        if any(s.name == name for s in states):
-            node.fail("name", f"duplicate state name {name!r}; state names must be distinct")
-        node.path = f"states.{name}"
+        name = node.entry_name([s.name for s in states], "state", "states")
         node.only(STATE_KEYS)
         states.append(StateSpec(
             name=name, label=node.text("label", name, nonempty=True),

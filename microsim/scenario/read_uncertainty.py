@@ -1,0 +1,83 @@
+"""Reading [uncertainty]: how many PSA draws, and which parameters are drawn together
+(correlated, or as the shares of a Dirichlet group)."""
+from __future__ import annotations
+
+from .correlation import read_correlation_matrix
+from .errors import ScenarioError
+from .fields import POSITIVE, Node, did_you_mean, listing, show
+from .spec import Scenario, UncertaintySpec
+
+UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
+CORRELATION_KEYS = ("parameters", "matrix")
+DIRICHLET_KEYS = ("parameters", "alphas")
+DIRICHLET_SUM_TOLERANCE = 1e-6
+
+
+def read_uncertainty(node: Node | None) -> UncertaintySpec:
+    defaults = UncertaintySpec()
+    if node is None:
+        return defaults
+    names, matrix = read_parameter_correlation(node.node("correlation", CORRELATION_KEYS, None))
+    dirichlets = []
+    for entry in node.nodes("dirichlet", DIRICHLET_KEYS):
+        members = entry.names("parameters")
+        if len(members) < 2:
+            entry.fail("parameters", "needs at least two parameters (a Dirichlet draws a row "
+                                     "of shares that sums to 1)")
+        alphas = entry.numbers("alphas", role=POSITIVE)
+        if len(alphas) != len(members):
+            entry.fail("alphas", f"has {len(alphas)} alphas for {len(members)} parameters; give "
+                                 "one alpha per parameter")
+        dirichlets.append((members, alphas))
+    return UncertaintySpec(
+        draws=node.whole("draws", defaults.draws, minimum=1),
+        patients=node.whole("patients", None, minimum=1),
+        correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets))
+
+
+def read_parameter_correlation(node: Node | None
+                               ) -> tuple[tuple[str, ...], tuple[tuple[float, ...], ...]]:
+    if node is None:
+        return (), ()
+    names = node.names("parameters")
+    return names, read_correlation_matrix(node, "parameters", names, empty_as_short=True)
+
+
+def check_uncertainty(s: Scenario) -> list[str]:
+    """Correlated parameters are drawn by the PSA, Dirichlet members by their group only;
+    returns a warning for each group whose base values do not sum to 1."""
+    spec, parameters = s.uncertainty, s.parameters
+    for i, name in enumerate(spec.correlation_parameters):
+        path = f"uncertainty.correlation.parameters[{i}]"
+        defined(s, name, path)
+        distribution = parameters[name].distribution
+        if distribution is None or distribution.family == "fixed":
+            raise ScenarioError(path, f"{name!r} has no distribution that varies, so the PSA "
+                                "does not draw it; only parameters with a distribution can be "
+                                "correlated")
+    found = []
+    grouped: dict[str, int] = {}
+    for i, (names, _) in enumerate(spec.dirichlets):
+        for j, name in enumerate(names):
+            path = f"uncertainty.dirichlet[{i}].parameters[{j}]"
+            defined(s, name, path)
+            if parameters[name].distribution is not None:
+                raise ScenarioError(path, f"{name!r} has its own distribution "
+                                    f"(parameters.{name}.distribution); a Dirichlet group "
+                                    "draws its members, so remove that distribution")
+            if name in grouped:
+                raise ScenarioError(path, f"{name!r} is already in uncertainty.dirichlet"
+                                    f"[{grouped[name]}]; a parameter can be in one group only")
+            grouped[name] = i
+        total = sum(parameters[name].value for name in names)
+        if abs(total - 1.0) > DIRICHLET_SUM_TOLERANCE:
+            found.append(f"uncertainty.dirichlet[{i}]: the base values of {listing(names)} sum "
+                         f"to {show(total)}, not 1; every PSA draw of the group sums to 1")
+    return found
+
+
+def defined(s: Scenario, name: str, path: str) -> None:
+    if name not in s.parameters:
+        raise ScenarioError(path, f"no parameter named {name!r}"
+                            f"{did_you_mean(name, s.parameters)}; defined: "
+                            f"{listing(s.parameters)}")
