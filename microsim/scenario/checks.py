@@ -6,7 +6,7 @@ with a field path. The checks run in an order where each may rely on the ones be
 """
 from __future__ import annotations
 
-from typing import Iterable
+from typing import Iterable, Sequence
 
 import numpy as np
 
@@ -43,9 +43,23 @@ def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
             + [(f"events.{e.name}", e) for e in s.events])
 
 
-def unknown_state(name: str, s: Scenario) -> str:
-    return (f"unknown state {name!r}{did_you_mean(name, s.state_names)}; "
-            f"states: {listing(s.state_names)}")
+def unknown_state(name: str, state_names: Sequence[str]) -> str:
+    return (f"unknown state {name!r}{did_you_mean(name, state_names)}; "
+            f"states: {listing(state_names)}")
+
+
+def undefined(what: str, name: str, known: list[str]) -> str:
+    """Why a name of a parameter (or table) cannot be used: none is defined by that name."""
+    return f"no {what} named {name!r}{did_you_mean(name, known)}; defined: {listing(known)}"
+
+
+def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> str:
+    """Why a patient attribute cannot be used: there is no population, or it lacks `name`."""
+    if s.population is None:
+        return (f"the scenario has no [population], so no attribute {name!r}; define it under "
+                "[[population.attributes]]")
+    return (f"the population has no attribute {name!r}{did_you_mean(name, kinds)}; "
+            f"attributes: {listing(kinds)}")
 
 
 def check_states(s: Scenario) -> None:
@@ -55,7 +69,7 @@ def check_states(s: Scenario) -> None:
         path = f"transitions.{t.key}"
         for end, key in ((t.source, "from"), (t.target, "to")):
             if end not in s.state_names:
-                raise ScenarioError(f"{path}.{key}", unknown_state(end, s))
+                raise ScenarioError(f"{path}.{key}", unknown_state(end, s.state_names))
         if t.source in absorbing:
             raise ScenarioError(f"{path}.from", f"{t.source!r} is absorbing; an absorbing "
                                 "state has no outgoing transitions (patients stay in it)")
@@ -67,7 +81,7 @@ def check_states(s: Scenario) -> None:
         for i, name in enumerate(e.states):
             path = f"events.{e.name}.states[{i}]"
             if name not in s.state_names:
-                raise ScenarioError(path, unknown_state(name, s))
+                raise ScenarioError(path, unknown_state(name, s.state_names))
             if name in absorbing:
                 raise ScenarioError(path, f"{name!r} is absorbing; events can only happen in "
                                           "non-absorbing states")
@@ -106,8 +120,7 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         what, known = "parameter", list(s.parameters)
         if ref.tables_allowed:
             what, known = "parameter or table", known + list(s.tables)
-        raise ScenarioError(ref.path, f"no {what} named {ref.name!r}"
-                            f"{did_you_mean(ref.name, known)}; defined: {listing(known)}")
+        raise ScenarioError(ref.path, undefined(what, ref.name, known))
     p = s.parameters[ref.name]
     where = f"parameters.{p.name}"
     for key, value in (("", p.value), (".low", p.low), (".high", p.high)):
@@ -187,14 +200,8 @@ def check_effects(s: Scenario, reading: Reading) -> None:
     for path, occurrence in occurrences(s):
         for i, effect in enumerate(occurrence.effects):
             here, name = f"{path}.effects[{i}]", effect.attribute
-            if name not in kinds and s.population is None:
-                raise ScenarioError(f"{here}.attribute", f"the scenario has no [population], "
-                                    f"so no attribute {name!r}; define it under "
-                                    "[[population.attributes]]")
             if name not in kinds:
-                raise ScenarioError(f"{here}.attribute", f"the population has no attribute "
-                                    f"{name!r}{did_you_mean(name, kinds)}; attributes: "
-                                    f"{listing(kinds)}")
+                raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
             kind, levels = kinds[name]
             level_list = listing(repr(level) for level in levels)
             if kind == "categorical" and effect.level is None:

@@ -14,7 +14,8 @@ from typing import Callable, Iterable, Iterator
 
 from .checks import (check_age_known, check_effects, check_kind, check_lifetime, check_memory,
                      check_names, check_row, check_states, may_be_positive, occurrences,
-                     population_kinds, reachable_from_start, unknown_state)
+                     population_kinds, reachable_from_start, unknown_attribute,
+                     unknown_state)
 from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, Node, Reading, Role,
                      describe, did_you_mean, listing, show)
@@ -289,7 +290,7 @@ def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str) -> None
                                 "its row (what the other transitions leave), so a hazard ratio "
                                 "cannot act on it; change the other transitions of the row")
         if change.state is not None and change.state not in merged.state_names:
-            raise ScenarioError(f"{here}.state", unknown_state(change.state, merged))
+            raise ScenarioError(f"{here}.state", unknown_state(change.state, merged.state_names))
         if change.state in absorbing:
             raise ScenarioError(f"{here}.state", f"{change.state!r} is absorbing; treatment "
                                 "costs and utilities apply in non-absorbing states")
@@ -314,12 +315,8 @@ def check_eligible(s: Scenario, reading: Reading, eligible: EligibilitySpec, pat
 def check_condition(s: Scenario, kinds: dict[str, tuple[str, tuple[str, ...]]],
                     condition: ConditionSpec, here: str) -> None:
     name, test, value = condition.attribute, condition.test, condition.value
-    if s.population is None:
-        raise ScenarioError(f"{here}.attribute", f"the scenario has no [population], so no "
-                            f"attribute {name!r}; define it under [[population.attributes]]")
-    if name not in kinds:
-        raise ScenarioError(f"{here}.attribute", f"the population has no attribute {name!r}"
-                            f"{did_you_mean(name, kinds)}; attributes: {listing(kinds)}")
+    if s.population is None or name not in kinds:
+        raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
     kind, levels = kinds[name]
     at = f"{here}.{test}"
     level_list = listing(repr(level) for level in levels)

@@ -2,9 +2,10 @@
 (correlated, or as the shares of a Dirichlet group)."""
 from __future__ import annotations
 
+from .checks import undefined
 from .correlation import read_correlation_matrix
 from .errors import ScenarioError
-from .fields import POSITIVE, Node, did_you_mean, listing, show
+from .fields import POSITIVE, Node, listing, show
 from .spec import Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
@@ -78,6 +79,4 @@ def check_uncertainty(s: Scenario) -> list[str]:
 
 def defined(s: Scenario, name: str, path: str) -> None:
     if name not in s.parameters:
-        raise ScenarioError(path, f"no parameter named {name!r}"
-                            f"{did_you_mean(name, s.parameters)}; defined: "
-                            f"{listing(s.parameters)}")
+        raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))

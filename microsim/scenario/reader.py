@@ -14,16 +14,15 @@ from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
-from .checks import check_scenario
+from .checks import check_scenario, unknown_state
 from .errors import ScenarioError
-from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading,
-                     did_you_mean, listing, show)
+from .fields import ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading, show
 from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
 from .read_population import read_population
 from .read_strategies import check_strategies, read_strategies
-from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .read_transitions import read_events, read_transitions
+from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
@@ -169,8 +168,7 @@ def read_start(node: Node, state_names: list[str]) -> StartSpec:
     given = {}
     for name in shares_node.data:
         if name not in state_names:
-            shares_node.fail(name, f"unknown state {name!r}{did_you_mean(name, state_names)}; "
-                                   f"states: {listing(state_names)}")
+            shares_node.fail(name, unknown_state(name, state_names))
         given[name] = shares_node.number(name, role=SHARE)
     total = sum(given.values())
     if abs(total - 1.0) > TOLERANCE:
