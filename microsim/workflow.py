@@ -148,8 +148,13 @@ def print_summary(result: MainResult, show) -> None:
     s, d = result.scenario, result.decision
     first = next(iter(result.simulations.values()))
     print(f"microsim run — {s.title}\n{s.provenance}")
-    print(f"{first.size} patients, seed {result.seed}; every strategy on the same patients "
-          "with common random numbers.")
+    print(f"{first.size} patients, seed {result.seed}" + (
+        "; every strategy on the same patients with common random numbers." if d is not None
+        else "; the model as written (the scenario defines no strategies)."))
+    if d is None:
+        v = next(iter(result.validations.values()))
+        show("Outcomes per patient: simulated (Monte-Carlo SE) and the analytic counterpart",
+             v.outcomes)
     if d is not None:
         cur = s.economics.currency
         for spec in s.strategies:

@@ -10,89 +10,30 @@ import pytest
 from scipy import integrate
 
 from microsim import aggregate
-from microsim.binding import bind
 from microsim.engines.histories import START, Histories
 from microsim.markov import cycle_weights
-from microsim.scenario.reader import parse_scenario
+from support import (event, horizon, model_of, outcomes, probability, rate, scenario_text, start,
+                     state)
 
-HEADER = """
-title = "test model"
-provenance = "invented for a test"
-"""
-STATES = """
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-"""
+STATES = (state("well"), state("sick"), state("dead", absorbing=True))
 
 
-def rate_model(horizon=5, costs=0.05, effects=0.03):
-    return bind(parse_scenario(HEADER + f"""
-[time]
-unit = "years"
-horizon = {horizon}
-[start]
-shares = {{ well = 1 }}
-[outcomes]
-discount_costs = {costs}
-discount_effects = {effects}
-{STATES}
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.2
-[[transitions]]
-from = "sick"
-to = "well"
-rate = 0.1
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.3
-[[events]]
-name = "flare"
-states = ["sick"]
-rate = 0.5
-"""))
+def rate_model(years=5, costs=0.05, effects=0.03):
+    return model_of(scenario_text(
+        horizon(years), start(well=1), outcomes(discount_costs=costs, discount_effects=effects),
+        *STATES,
+        rate("well", "sick", 0.2), rate("sick", "well", 0.1), rate("sick", "dead", 0.3),
+        event("flare", ["sick"], rate=0.5)))
 
 
 def cycle_model(correction="half-cycle", n_cycles=6, cycle=0.5, effects=0.04):
-    return bind(parse_scenario(HEADER + f"""
-[time]
-unit = "years"
-cycle = {cycle}
-horizon = {n_cycles * cycle}
-[start]
-shares = {{ well = 1 }}
-[outcomes]
-discount_effects = {effects}
-correction = "{correction}"
-{STATES}
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.2
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.3
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-[[events]]
-name = "flare"
-states = ["sick"]
-probability = 0.5
-"""))
+    return model_of(scenario_text(
+        horizon(n_cycles * cycle, cycle=cycle), start(well=1),
+        outcomes(discount_effects=effects, correction=correction),
+        *STATES,
+        probability("well", "sick", 0.2), probability("well", "well", "remainder"),
+        probability("sick", "dead", 0.3), probability("sick", "sick", "remainder"),
+        event("flare", ["sick"], probability=0.5)))
 
 
 WELL, SICK, DEAD = 0, 1, 2

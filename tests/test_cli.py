@@ -22,6 +22,7 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import build_parser, main
 from microsim.scenario import read_scenario
+from support import horizon, probability, rate, scenario_text, start, state
 
 ROOT = Path(__file__).resolve().parent.parent
 SCENARIOS = sorted((ROOT / "scenarios").glob("*.toml"))
@@ -51,45 +52,13 @@ def test_check_through_python_m():
 
 # ----------------------------------------------------------------- bad input is refused
 
-GOOD = """title = "bad input test"
-provenance = "invented for a test"
-[time]
-unit = "years"
-horizon = 5
-[start]
-shares = { well = 1.0 }
-[[states]]
-name = "well"
-cost = 100
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.1
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-"""
-RATE = """title = "bad input test"
-provenance = "invented for a test"
-[time]
-unit = "days"
-horizon = 5
-[start]
-shares = { well = 1.0 }
-[[states]]
-name = "well"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "dead"
-rate = -0.1
-"""
+TITLE = "bad input test"
+GOOD = scenario_text(
+    horizon(5), start(well=1.0), state("well", cost=100), state("dead", absorbing=True),
+    probability("well", "dead", 0.1), probability("well", "well", "remainder"), title=TITLE)
+RATE = scenario_text(
+    horizon(5, unit="days"), start(well=1.0), state("well"), state("dead", absorbing=True),
+    rate("well", "dead", -0.1), title=TITLE)
 
 # (file text, the field path the message must name)
 BAD = {

@@ -9,22 +9,13 @@ from numpy.linalg import matrix_power
 from scipy import integrate
 from scipy.linalg import expm
 
-from microsim.binding import bind
 from microsim.cohort.analytic import analytic
 from microsim.effects import Multipliers
 from microsim.markov import cohort_trace, counter_expansion, tunnel_expansion
 from microsim.outcomes import outcome_values
 from microsim.population import draw_population
-from microsim.scenario.reader import parse_scenario
-
-HEADER = """
-title = "test model"
-provenance = "invented for a test"
-"""
-
-
-def model_of(body: str):
-    return bind(parse_scenario(HEADER + body))
+from support import (after, attribute, effect, event, horizon, model_of, outcomes, population,
+                     probability, rate, scenario_text, start, state, table, transition)
 
 
 def hand_recursion(start, matrix, n):
@@ -34,50 +25,18 @@ def hand_recursion(start, matrix, n):
 
 # ------------------------------------------------------------------ homogeneous cycle model
 
-CYCLE_MODEL = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 20
-[start]
-shares = { well = 0.8, sick = 0.2 }
-[outcomes]
-discount_costs = 0.05
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "sick"
-utility = 0.6
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.1
-cost = 500
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.02
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "well"
-probability = 0.05
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.2
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-"""
+def cycle_model(*more: str, onset_effects=None) -> str:
+    """The homogeneous cycle model; `onset_effects` on well->sick, `more` blocks after it."""
+    return scenario_text(
+        horizon(20, cycle=1), start(well=0.8, sick=0.2), outcomes(discount_costs=0.05),
+        state("well", utility=1), state("sick", utility=0.6), state("dead", absorbing=True),
+        probability("well", "sick", 0.1, cost=500, effects=onset_effects),
+        probability("well", "dead", 0.02), probability("well", "well", "remainder"),
+        probability("sick", "well", 0.05), probability("sick", "dead", 0.2),
+        probability("sick", "sick", "remainder"), *more)
+
+
+CYCLE_MODEL = cycle_model()
 CYCLE_P = np.array([[0.88, 0.10, 0.02], [0.05, 0.75, 0.20], [0.0, 0.0, 1.0]])
 CYCLE_START = np.array([0.8, 0.2, 0.0])
 
@@ -119,44 +78,12 @@ def test_cycle_occupancy_half_cycle_rule():
 
 # ------------------------------------------------------------------- homogeneous rate model
 
-RATE_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 0.7, sick = 0.3 }
-[outcomes]
-discount_effects = 0.035
-[[states]]
-name = "well"
-utility = 0.9
-[[states]]
-name = "sick"
-utility = 0.5
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.15
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.03
-[[transitions]]
-from = "sick"
-to = "well"
-rate = 0.1
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.25
-[[events]]
-name = "flare"
-states = ["sick"]
-rate = 0.4
-"""
+RATE_MODEL = scenario_text(
+    horizon(10), start(well=0.7, sick=0.3), outcomes(discount_effects=0.035),
+    state("well", utility=0.9), state("sick", utility=0.5), state("dead", absorbing=True),
+    rate("well", "sick", 0.15), rate("well", "dead", 0.03),
+    rate("sick", "well", 0.1), rate("sick", "dead", 0.25),
+    event("flare", ["sick"], rate=0.4))
 RATE_Q = np.array([[-0.18, 0.15, 0.03], [0.1, -0.35, 0.25], [0.0, 0.0, 0.0]])
 RATE_START = np.array([0.7, 0.3, 0.0])
 
@@ -190,27 +117,10 @@ def test_rate_occupancy_and_event_counts_equal_quadrature():
                                0.25 * discounted[1], rtol=1e-9)
 
 
-SURVIVAL_MODEL = """
-[time]
-unit = "years"
-horizon = 30
-[start]
-shares = { alive = 1 }
-[outcomes]
-discount_costs = 0.05
-discount_effects = 0.035
-[[states]]
-name = "alive"
-utility = 0.85
-cost = 1000
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "alive"
-to = "dead"
-rate = 0.08
-"""
+SURVIVAL_MODEL = scenario_text(
+    horizon(30), start(alive=1), outcomes(discount_costs=0.05, discount_effects=0.035),
+    state("alive", utility=0.85, cost=1000), state("dead", absorbing=True),
+    rate("alive", "dead", 0.08))
 
 
 def discounted_life(mu, d, horizon):
@@ -240,39 +150,17 @@ def test_discounted_qalys_closed_form(batch):
 
 # ------------------------------------------------ time-varying hazards from time 0 (Markov)
 
-def varying_model(hazard: str, clock: str) -> str:
-    return f"""
-[time]
-unit = "years"
-horizon = 12
-[start]
-shares = {{ first = 1 }}
-[[states]]
-name = "first"
-[[states]]
-name = "second"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "first"
-to = "second"
-hazard = {hazard}
-clock = "{clock}"
-[[transitions]]
-from = "first"
-to = "dead"
-rate = 0.05
-[[transitions]]
-from = "second"
-to = "dead"
-rate = 0.1
-"""
+def varying_model(hazard: dict, clock: str) -> str:
+    return scenario_text(
+        horizon(12), start(first=1),
+        state("first"), state("second"), state("dead", absorbing=True),
+        transition("first", "second", hazard=hazard, clock=clock),
+        rate("first", "dead", 0.05), rate("second", "dead", 0.1))
 
 
-WEIBULL = ('{ family = "weibull", shape = 1.7, scale = 4 }',
+WEIBULL = (dict(family="weibull", shape=1.7, scale=4),
            lambda t: (t / 4.0) ** 1.7, lambda t: 1.7 / 4.0 * (t / 4.0) ** 0.7)
-GOMPERTZ = ('{ family = "gompertz", rate = 0.05, shape = 0.2 }',
+GOMPERTZ = (dict(family="gompertz", rate=0.05, shape=0.2),
             lambda t: 0.05 * math.expm1(0.2 * t) / 0.2, lambda t: 0.05 * math.exp(0.2 * t))
 
 
@@ -295,8 +183,8 @@ def test_parametric_hazard_from_time_zero_matches_survival(family, clock):
 
 
 @pytest.mark.parametrize("family", [
-    ('{ family = "weibull", shape = 0.7, scale = 4 }', lambda t: (t / 4.0) ** 0.7),
-    ('{ family = "loglogistic", shape = 0.8, scale = 4 }', lambda t: math.log1p((t / 4.0) ** 0.8)),
+    (dict(family="weibull", shape=0.7, scale=4), lambda t: (t / 4.0) ** 0.7),
+    (dict(family="loglogistic", shape=0.8, scale=4), lambda t: math.log1p((t / 4.0) ** 0.8)),
 ], ids=["weibull", "loglogistic"])
 def test_falling_hazard_from_time_zero_matches_survival(family):
     # a falling hazard (shape < 1) is infinite at 0 but its cumulative hazard is finite:
@@ -311,43 +199,15 @@ def test_falling_hazard_from_time_zero_matches_survival(family):
 
 # ------------------------------------------------------------- life tables (step hazards)
 
-def table_model(by: str, start_age: str = "", population: str = "") -> str:
-    return f"""
-[time]
-unit = "years"
-horizon = 20
-[start]
-{start_age}
-shares = {{ well = 1 }}
-[outcomes]
-discount_effects = 0.035
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "sick"
-utility = 0.5
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = "steps"
-[[transitions]]
-from = "sick"
-to = "well"
-rate = 0.3
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.2
-[tables.steps]
-by = "{by}"
-starts = {"[0, 2.5, 6]" if by == "time" else "[0, 60, 70, 80]"}
-values = {"[0.1, 0.4, 0.05]" if by == "time" else "[0.01, 0.03, 0.08, 0.2]"}
-{population}
-"""
+def table_model(by: str, *more: str, start_age=None) -> str:
+    """well <-> sick -> dead with well->sick a step table by time or by age."""
+    steps = (table("steps", by=by, starts=[0, 2.5, 6], values=[0.1, 0.4, 0.05]) if by == "time"
+             else table("steps", by=by, starts=[0, 60, 70, 80], values=[0.01, 0.03, 0.08, 0.2]))
+    return scenario_text(
+        horizon(20), start(age=start_age, well=1), outcomes(discount_effects=0.035),
+        state("well", utility=1), state("sick", utility=0.5), state("dead", absorbing=True),
+        rate("well", "sick", "steps"), rate("sick", "well", 0.3), rate("sick", "dead", 0.2),
+        steps, *more)
 
 
 def step_generator(rate):
@@ -368,7 +228,7 @@ def piecewise_reference(t, edges, rates):
 @pytest.mark.parametrize("by", ["time", "age"])
 def test_step_hazard_matches_piecewise_exponentials(by):
     # a table by time (breaks at 2.5, 6), or by age for a cohort aged 63 (breaks at 7, 17)
-    model = model_of(table_model(by, "age = 63" if by == "age" else ""))
+    model = model_of(table_model(by, start_age=63 if by == "age" else None))
     edges, rates = (([0, 2.5, 6, np.inf], [0.1, 0.4, 0.05]) if by == "time"
                     else ([0, 7, 17, np.inf], [0.03, 0.08, 0.2]))
     times = np.linspace(0.0, 20.0, 41)
@@ -390,16 +250,8 @@ def test_step_hazard_matches_piecewise_exponentials(by):
 def test_life_table_by_age_per_patient_matches_piecewise_exponentials():
     # patients of different ages cross the table's bands at different times: the forward
     # equations per patient against each patient's own piecewise exponentials
-    population = """
-[population]
-size = 6
-[[population.attributes]]
-name = "age"
-distribution = "uniform"
-lower = 50
-upper = 75
-"""
-    model = model_of(table_model("age", population=population))
+    model = model_of(table_model(
+        "age", population(6, attribute("age", "uniform", lower=50, upper=75))))
     people = draw_population(model.scenario.population, 2)
     times = np.linspace(0.0, 20.0, 21)
     result = analytic(model, patients=people, times=times)
@@ -414,53 +266,15 @@ upper = 75
 
 # ---------------------------------------------------------- tunnel states (time in state)
 
-TUNNEL_MODEL = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 25
-[start]
-shares = { healthy = 1 }
-[[states]]
-name = "healthy"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "healthy"
-to = "sick"
-probability = 0.08
-[[transitions]]
-from = "healthy"
-to = "dead"
-probability = 0.02
-[[transitions]]
-from = "healthy"
-to = "healthy"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = "die_by_stay"
-[[transitions]]
-from = "sick"
-to = "healthy"
-probability = "recover_by_stay"
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-[tables.die_by_stay]
-by = "time_in_state"
-starts = [0, 1, 2]
-values = [0.2, 0.1, 0.05]
-[tables.recover_by_stay]
-by = "time_in_state"
-starts = [0, 1, 2]
-values = [0.0, 0.1, 0.2]
-"""
+TUNNEL_MODEL = scenario_text(
+    horizon(25, cycle=1), start(healthy=1),
+    state("healthy"), state("sick"), state("dead", absorbing=True),
+    probability("healthy", "sick", 0.08), probability("healthy", "dead", 0.02),
+    probability("healthy", "healthy", "remainder"),
+    probability("sick", "dead", "die_by_stay"), probability("sick", "healthy", "recover_by_stay"),
+    probability("sick", "sick", "remainder"),
+    table("die_by_stay", by="time_in_state", starts=[0, 1, 2], values=[0.2, 0.1, 0.05]),
+    table("recover_by_stay", by="time_in_state", starts=[0, 1, 2], values=[0.0, 0.1, 0.2]))
 DIE = np.array([0.20, 0.10, 0.05])  # in the 1st, 2nd, 3rd+ cycle of a stay
 RECOVER = np.array([0.00, 0.10, 0.20])
 
@@ -493,44 +307,15 @@ def test_tunnel_table_matches_recursion_and_tunnel_expansion():
 def count_model(kind: str) -> str:
     """well -> sick whose hazard is multiplied by 1, 1.5, 2 after 0, 1, 2+ earlier flares."""
     value = "probability" if kind == "cycle" else "rate"
-    stay = ('[[transitions]]\nfrom = "well"\nto = "well"\nprobability = "remainder"\n'
-            '[[transitions]]\nfrom = "sick"\nto = "sick"\nprobability = "remainder"\n'
-            if kind == "cycle" else "")
-    return f"""
-[time]
-unit = "years"
-cycle = 1
-horizon = 15
-[start]
-shares = {{ well = 1 }}
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-{value} = 0.1
-  [[transitions.memory]]
-  after = "flare"
-  multipliers = [1, 1.5, 2]
-[[transitions]]
-from = "well"
-to = "dead"
-{value} = 0.02
-[[transitions]]
-from = "sick"
-to = "dead"
-{value} = 0.2
-{stay}
-[[events]]
-name = "flare"
-states = ["well"]
-{value} = 0.3
-"""
+    stays = ([probability("well", "well", "remainder"), probability("sick", "sick", "remainder")]
+             if kind == "cycle" else [])
+    return scenario_text(
+        horizon(15, cycle=1), start(well=1),
+        state("well"), state("sick"), state("dead", absorbing=True),
+        transition("well", "sick", **{value: 0.1},
+                   memory=[after("flare", multipliers=[1, 1.5, 2])]),
+        transition("well", "dead", **{value: 0.02}), transition("sick", "dead", **{value: 0.2}),
+        *stays, event("flare", ["well"], **{value: 0.3}))
 
 
 MULTIPLIERS = (1.0, 1.5, 2.0)
@@ -600,44 +385,13 @@ def test_rate_count_memory_matches_counter_expansion():
 
 # ---------------------------------------------------------------- covariate effects
 
-COVARIATE_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 1 }
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.1
-  [[transitions.effects]]
-  attribute = "smoker"
-  hazard_ratio = 2.5
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.02
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.3
-  [[transitions.effects]]
-  attribute = "smoker"
-  hazard_ratio = 1.5
-[population]
-size = 40
-[[population.attributes]]
-name = "smoker"
-distribution = "yesno"
-prevalence = 0.4
-"""
+COVARIATE_MODEL = scenario_text(
+    horizon(10), start(well=1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    rate("well", "sick", 0.1, effects=[effect("smoker", 2.5)]),
+    rate("well", "dead", 0.02),
+    rate("sick", "dead", 0.3, effects=[effect("smoker", 1.5)]),
+    population(40, attribute("smoker", "yesno", prevalence=0.4)))
 
 
 def test_yes_no_hazard_ratio_per_patient_matches_expm():
@@ -660,18 +414,8 @@ def test_yes_no_hazard_ratio_per_patient_matches_expm():
 def test_continuous_attribute_on_probability_rate_scale():
     # a per-cycle probability p with an effect HR^(x - centre) becomes
     # 1 - (1 - p)^(HR^(x - centre)) (Fleurence & Hollenbeak 2007, from memory)
-    text = CYCLE_MODEL.replace(
-        'probability = 0.1\ncost = 500',
-        'probability = 0.1\ncost = 500\n  [[transitions.effects]]\n  attribute = "marker"\n'
-        '  hazard_ratio = 1.8\n  centre = 1.0') + """
-[population]
-size = 5
-[[population.attributes]]
-name = "marker"
-distribution = "uniform"
-lower = 0
-upper = 3
-"""
+    text = cycle_model(population(5, attribute("marker", "uniform", lower=0, upper=3)),
+                       onset_effects=[effect("marker", 1.8, centre=1.0)])
     model = model_of(text)
     people = draw_population(model.scenario.population, 3)
     result = analytic(model, patients=people)

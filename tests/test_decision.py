@@ -27,56 +27,21 @@ from microsim.population import draw_population
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec, StrategySpec
 from microsim.simulate import simulate
+from support import (Z, attribute, effect, horizon, outcomes, population, rate, scenario_text,
+                     start, state)
 
-Z = 4.0
 SEED = 5
 N = 2000
 Z95 = stats.norm.ppf(0.975)  # 1.959964 (reference library)
 
-MODEL = """
-title = "decision test"
-provenance = "invented for a test"
-[time]
-unit = "years"
-horizon = 20
-[start]
-shares = { well = 1.0 }
-[outcomes]
-discount_costs = 0.035
-discount_effects = 0.035
-[[states]]
-name = "well"
-utility = 0.9
-cost = 500
-[[states]]
-name = "sick"
-utility = 0.5
-cost = 3000
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.15
-  [[transitions.effects]]
-  attribute = "marker"
-  hazard_ratio = 2.0
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.03
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.25
-[population]
-size = 2000
-[[population.attributes]]
-name = "marker"
-distribution = "yesno"
-prevalence = 0.4
-"""
+MODEL = scenario_text(
+    horizon(20), start(well=1.0), outcomes(discount_costs=0.035, discount_effects=0.035),
+    state("well", utility=0.9, cost=500), state("sick", utility=0.5, cost=3000),
+    state("dead", absorbing=True),
+    rate("well", "sick", 0.15, effects=[effect("marker", 2.0)]),
+    rate("well", "dead", 0.03), rate("sick", "dead", 0.25),
+    population(2000, attribute("marker", "yesno", prevalence=0.4)),
+    title="decision test")
 
 USUAL = StrategySpec("usual", "usual care", comparator=True)
 THERAPY = (ChangeSpec(risk="well->sick", hazard_ratio=0.5), ChangeSpec(cost=400.0))

@@ -14,23 +14,13 @@ from microsim.distributions import (
     Beta, Dirichlet, Fixed, Gamma, LogNormal, Normal, Uniform, correlation_root,
     draw_parameters, draws_table, make_distribution,
 )
+from support import assert_moments_match
 
 N_DRAWS = 200_000
 
 
 def uniforms(seed, *shape):
     return np.random.default_rng(seed).random(shape)
-
-
-def assert_moments_match(sample, mean, variance):
-    """Sample mean and variance within |z| < 4 of the reference values."""
-    n = sample.size
-    centred = sample - sample.mean()
-    sample_variance = centred.var(ddof=1)
-    z_mean = (sample.mean() - mean) / math.sqrt(sample_variance / n)
-    z_variance = (sample_variance - variance) / math.sqrt(((centred**4).mean() - sample_variance**2) / n)
-    assert abs(z_mean) < 4, z_mean
-    assert abs(z_variance) < 4, z_variance
 
 
 @pytest.mark.parametrize("ours, reference", [

@@ -11,27 +11,16 @@ import pytest
 from scipy import stats
 from scipy.linalg import expm
 
-from microsim.binding import bind
 from microsim.cohort.analytic import analytic
 from microsim.compare import compare, critical_z, trace_table
 from microsim.effects import Multipliers
 from microsim.engines.cycles import simulate_cycles
 from microsim.engines.events import simulate_events
 from microsim.population import draw_population
-from microsim.scenario.reader import parse_scenario
 from microsim.simulate import cohort_patients, simulate
-
-Z = 4.0
-KS_LEVEL = 0.001  # a correct sampler fails a KS test at this level once in 1000 seeds
-
-HEADER = """
-title = "test model"
-provenance = "invented for a test"
-"""
-
-
-def model_of(body: str):
-    return bind(parse_scenario(HEADER + body))
+from support import (Z, after, assert_follows, assert_mean_agrees, attribute, effect, event,
+                     horizon, model_of, outcomes, population, probability, rate, scenario_text,
+                     start, state, state_shares, table, transition)
 
 
 def same_multipliers(n: int, risks: int, log_hr: float = 0.0) -> Multipliers:
@@ -39,56 +28,24 @@ def same_multipliers(n: int, risks: int, log_hr: float = 0.0) -> Multipliers:
     return Multipliers(np.full((n, risks), log_hr), np.zeros(risks), None)
 
 
-def shares(sim) -> np.ndarray:
-    """(T, S) simulated share of patients in each state at each grid time."""
-    return np.stack([(sim.states == s).mean(axis=0) for s in range(sim.model.n_states)], axis=1)
-
-
-def assert_mean_agrees(values: np.ndarray, expected: float):
-    """|mean - expected| < Z sample standard errors (central limit theorem)."""
-    se = values.std(ddof=1) / math.sqrt(len(values))
-    assert abs(values.mean() - expected) < Z * se, (values.mean(), expected, se)
+def assert_shares_binomial(sim, p: np.ndarray):
+    """Each simulated share within Z binomial standard errors sqrt(p (1 - p) / N) of p
+    (common practice); where p is 0 or 1 (time 0, an empty state) the share is exactly p."""
+    se = np.sqrt(p * (1 - p) / sim.size)
+    observed = state_shares(sim)
+    inside = se > 0
+    assert np.all(np.abs(observed - p)[inside] < Z * se[inside])
+    assert np.array_equal(observed[~inside], p[~inside])
 
 
 # ------------------------------------------------- continuous engine, constant rates
 
-RATE_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 0.7, sick = 0.3 }
-[outcomes]
-discount_costs = 0.05
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-cost = 100
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.15
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.03
-[[transitions]]
-from = "sick"
-to = "well"
-rate = 0.1
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.25
-[[events]]
-name = "flare"
-states = ["sick"]
-rate = 0.8
-"""
+RATE_MODEL = scenario_text(
+    horizon(10), start(well=0.7, sick=0.3), outcomes(discount_costs=0.05),
+    state("well"), state("sick", cost=100), state("dead", absorbing=True),
+    rate("well", "sick", 0.15), rate("well", "dead", 0.03),
+    rate("sick", "well", 0.1), rate("sick", "dead", 0.25),
+    event("flare", ["sick"], rate=0.8))
 RATE_Q = np.array([[-0.18, 0.15, 0.03], [0.1, -0.35, 0.25], [0.0, 0.0, 0.0]])
 RATE_START = np.array([0.7, 0.3, 0.0])
 GRID = np.linspace(0.0, 10.0, 11)
@@ -104,11 +61,7 @@ def test_event_engine_shares_match_matrix_exponential(rate_run):
     model, sim = rate_run
     # reference: scipy.linalg.expm; binomial standard error sqrt(p (1 - p) / N)
     p = np.array([RATE_START @ expm(RATE_Q * t) for t in GRID])
-    se = np.sqrt(p * (1 - p) / sim.size)
-    observed = shares(sim)
-    inside = se > 0
-    assert np.all(np.abs(observed - p)[inside] < Z * se[inside])
-    assert np.array_equal(observed[~inside], p[~inside])  # time 0 and the empty dead state
+    assert_shares_binomial(sim, p)  # exact at time 0 and in the empty dead state
 
 
 def test_event_engine_time_in_state_and_counts_match_analytic(rate_run):
@@ -124,38 +77,25 @@ def test_event_engine_time_in_state_and_counts_match_analytic(rate_run):
 
 # ------------------------------------------------------ sojourn times of parametric hazards
 
-def two_state(hazard: str, horizon: float) -> str:
-    return f"""
-[time]
-unit = "years"
-horizon = {horizon}
-[start]
-shares = {{ alive = 1 }}
-[[states]]
-name = "alive"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "alive"
-to = "dead"
-hazard = {hazard}
-"""
+def two_state(hazard: dict, years: float) -> str:
+    return scenario_text(horizon(years), start(alive=1),
+                         state("alive"), state("dead", absorbing=True),
+                         transition("alive", "dead", hazard=hazard))
 
 
 # scipy's parameterisations (reference library): weibull_min S = exp(-(t/scale)^c);
 # gompertz with c = rate/shape, scale = 1/shape has hazard rate e^{shape t};
 # fisk (log-logistic) S = 1 / (1 + (t/scale)^c)
 SOJOURNS = [
-    ("weibull", '{ family = "weibull", shape = 1.5, scale = 8 }', 0.0,
+    ("weibull", dict(family="weibull", shape=1.5, scale=8), 0.0,
      stats.weibull_min(1.5, scale=8)),
-    ("weibull-falling", '{ family = "weibull", shape = 0.7, scale = 8 }', 0.0,
+    ("weibull-falling", dict(family="weibull", shape=0.7, scale=8), 0.0,
      stats.weibull_min(0.7, scale=8)),
-    ("weibull-hr", '{ family = "weibull", shape = 1.5, scale = 8 }', math.log(3.0),
+    ("weibull-hr", dict(family="weibull", shape=1.5, scale=8), math.log(3.0),
      stats.weibull_min(1.5, scale=8 * 3.0 ** (-1 / 1.5))),
-    ("gompertz", '{ family = "gompertz", rate = 0.02, shape = 0.15 }', 0.0,
+    ("gompertz", dict(family="gompertz", rate=0.02, shape=0.15), 0.0,
      stats.gompertz(0.02 / 0.15, scale=1 / 0.15)),
-    ("loglogistic", '{ family = "loglogistic", shape = 2.5, scale = 6 }', 0.0,
+    ("loglogistic", dict(family="loglogistic", shape=2.5, scale=6), 0.0,
      stats.fisk(2.5, scale=6)),
 ]
 
@@ -170,40 +110,19 @@ def test_death_times_follow_the_hazard_family(seed, case):
     # deaths before the horizon: binomial count, and the truncated distribution F(t) / F(T)
     died = reference.cdf(horizon)
     assert abs(len(deaths) - n * died) < Z * math.sqrt(n * died * (1 - died)) + 1e-9
-    result = stats.kstest(deaths, lambda t: reference.cdf(t) / died)
-    assert result.pvalue > KS_LEVEL, result
+    assert_follows(deaths, lambda t: reference.cdf(t) / died)
 
 
 def test_sojourns_in_a_reentered_state_restart_the_entry_clock():
     # 'ill' is entered again and again; its exit is Weibull on the time since entry, with a
     # competing constant death: each stay lasts min(Weibull, exponential), survival
     # exp(-(t/2)^1.5 - 0.1 t) (independent competing risks, common practice)
-    model = model_of("""
-[time]
-unit = "years"
-horizon = 60
-[start]
-shares = { well = 1 }
-[[states]]
-name = "well"
-[[states]]
-name = "ill"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "ill"
-rate = 0.5
-[[transitions]]
-from = "ill"
-to = "well"
-hazard = { family = "weibull", shape = 1.5, scale = 2 }
-[[transitions]]
-from = "ill"
-to = "dead"
-rate = 0.1
-""")
+    model = model_of(scenario_text(
+        horizon(60), start(well=1),
+        state("well"), state("ill"), state("dead", absorbing=True),
+        rate("well", "ill", 0.5),
+        transition("ill", "well", hazard=dict(family="weibull", shape=1.5, scale=2)),
+        rate("ill", "dead", 0.1)))
     n = 1500
     h = simulate_events(model, same_multipliers(n, 3), np.arange(n), 17)
     ill = model.states.index("ill")
@@ -220,62 +139,19 @@ rate = 0.1
     def cdf(t):
         return 1 - np.exp(-(t / 2) ** 1.5 - 0.1 * t)
 
-    result = stats.kstest(durations, cdf)
-    assert result.pvalue > KS_LEVEL, result
+    assert_follows(durations, cdf)
 
 
 # -------------------------------------------------------------- heterogeneous population
 
-HETEROGENEOUS = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 1 }
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "sick"
-utility = 0.5
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.1
-  [[transitions.effects]]
-  attribute = "risk_factor"
-  hazard_ratio = 2
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.01
-  [[transitions.effects]]
-  attribute = "age"
-  hazard_ratio = 1.08
-  centre = 60
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.15
-  [[transitions.effects]]
-  attribute = "age"
-  hazard_ratio = 1.08
-  centre = 60
-[population]
-size = 2000
-[[population.attributes]]
-name = "risk_factor"
-distribution = "yesno"
-prevalence = 0.3
-[[population.attributes]]
-name = "age"
-distribution = "normal"
-mean = 60
-sd = 8
-"""
+HETEROGENEOUS = scenario_text(
+    horizon(10), start(well=1),
+    state("well", utility=1), state("sick", utility=0.5), state("dead", absorbing=True),
+    rate("well", "sick", 0.1, effects=[effect("risk_factor", 2)]),
+    rate("well", "dead", 0.01, effects=[effect("age", 1.08, centre=60)]),
+    rate("sick", "dead", 0.15, effects=[effect("age", 1.08, centre=60)]),
+    population(2000, attribute("risk_factor", "yesno", prevalence=0.3),
+               attribute("age", "normal", mean=60, sd=8)))
 
 
 def test_heterogeneous_population_matches_average_of_patient_traces():
@@ -287,39 +163,18 @@ def test_heterogeneous_population_matches_average_of_patient_traces():
     # patients are independent Bernoulli trials with their own p: the share's standard
     # error is sqrt(sum p (1 - p)) / N (Poisson-binomial variance, common practice)
     se = np.sqrt((p * (1 - p)).sum(axis=0)) / len(people)
-    observed, expected = shares(sim), p.mean(axis=0)
+    observed, expected = state_shares(sim), p.mean(axis=0)
     inside = se > 0
     assert np.all(np.abs(observed - expected)[inside] < Z * se[inside])
     verdict = compare(sim)
     assert verdict.agrees is True, verdict.verdict
 
 
-STRONG_HR = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { alive = 1 }
-[[states]]
-name = "alive"
-utility = 1
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "alive"
-to = "dead"
-rate = 0.2
-  [[transitions.effects]]
-  attribute = "risk_factor"
-  hazard_ratio = 5
-[population]
-size = 2000
-[[population.attributes]]
-name = "risk_factor"
-distribution = "yesno"
-prevalence = 0.5
-"""
+STRONG_HR = scenario_text(
+    horizon(10), start(alive=1),
+    state("alive", utility=1), state("dead", absorbing=True),
+    rate("alive", "dead", 0.2, effects=[effect("risk_factor", 5)]),
+    population(2000, attribute("risk_factor", "yesno", prevalence=0.5)))
 
 
 def test_average_patient_misrepresents_a_strongly_heterogeneous_population():
@@ -340,138 +195,31 @@ def test_average_patient_misrepresents_a_strongly_heterogeneous_population():
 
 # ---------------------------------------------------------------------- cycle engine
 
-CYCLE_MODEL = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 12
-[start]
-shares = { well = 0.8, sick = 0.2 }
-[outcomes]
-discount_effects = 0.035
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.1
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.02
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "well"
-probability = 0.05
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.2
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-"""
+CYCLE_MODEL = scenario_text(
+    horizon(12, cycle=1), start(well=0.8, sick=0.2), outcomes(discount_effects=0.035),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.1), probability("well", "dead", 0.02),
+    probability("well", "well", "remainder"),
+    probability("sick", "well", 0.05), probability("sick", "dead", 0.2),
+    probability("sick", "sick", "remainder"))
 
-TUNNEL = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 12
-[start]
-shares = { healthy = 1 }
-[[states]]
-name = "healthy"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "healthy"
-to = "sick"
-probability = 0.15
-[[transitions]]
-from = "healthy"
-to = "dead"
-probability = 0.02
-[[transitions]]
-from = "healthy"
-to = "healthy"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = "die_by_stay"
-[[transitions]]
-from = "sick"
-to = "healthy"
-probability = "recover_by_stay"
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-[tables.die_by_stay]
-by = "time_in_state"
-starts = [0, 1, 2]
-values = [0.2, 0.1, 0.05]
-[tables.recover_by_stay]
-by = "time_in_state"
-starts = [0, 1, 2]
-values = [0.0, 0.1, 0.3]
-"""
+TUNNEL = scenario_text(
+    horizon(12, cycle=1), start(healthy=1),
+    state("healthy"), state("sick"), state("dead", absorbing=True),
+    probability("healthy", "sick", 0.15), probability("healthy", "dead", 0.02),
+    probability("healthy", "healthy", "remainder"),
+    probability("sick", "dead", "die_by_stay"), probability("sick", "healthy", "recover_by_stay"),
+    probability("sick", "sick", "remainder"),
+    table("die_by_stay", by="time_in_state", starts=[0, 1, 2], values=[0.2, 0.1, 0.05]),
+    table("recover_by_stay", by="time_in_state", starts=[0, 1, 2], values=[0.0, 0.1, 0.3]))
 
-COUNTS = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 12
-[start]
-shares = { well = 1 }
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.1
-  [[transitions.memory]]
-  after = "flare"
-  multipliers = [1, 1.5, 2]
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.02
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.2
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-[[events]]
-name = "flare"
-states = ["well"]
-probability = 0.3
-"""
+COUNTS = scenario_text(
+    horizon(12, cycle=1), start(well=1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.1, memory=[after("flare", multipliers=[1, 1.5, 2])]),
+    probability("well", "dead", 0.02), probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.2), probability("sick", "sick", "remainder"),
+    event("flare", ["well"], probability=0.3))
 
 
 @pytest.mark.parametrize("text", [CYCLE_MODEL, TUNNEL, COUNTS],
@@ -482,12 +230,7 @@ def test_cycle_engine_matches_expanded_chain(text):
     model = model_of(text)
     sim = simulate(model, cohort_patients(8000), 202)
     expected = analytic(model)
-    p = expected.trace[0]
-    se = np.sqrt(p * (1 - p) / sim.size)
-    observed = shares(sim)
-    inside = se > 0
-    assert np.all(np.abs(observed - p)[inside] < Z * se[inside])
-    assert np.array_equal(observed[~inside], p[~inside])
+    assert_shares_binomial(sim, expected.trace[0])
     for s in range(model.n_states):  # time in state, half-cycle rule, with and without discount
         for w in (0, 2):
             assert_mean_agrees(sim.exposure.occupancy[:, s, w], expected.exposure.occupancy[0, s, w])
@@ -500,30 +243,11 @@ def test_cycle_engine_matches_expanded_chain(text):
 
 # ------------------------------------------------------------ memory of the last event
 
-WITHIN = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { ill = 1 }
-[[states]]
-name = "ill"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "ill"
-to = "dead"
-rate = 0.1
-  [[transitions.memory]]
-  after = "fall"
-  within = 0.5
-  multiplier = 4
-[[events]]
-name = "fall"
-states = ["ill"]
-rate = 1
-"""
+WITHIN = scenario_text(
+    horizon(10), start(ill=1),
+    state("ill"), state("dead", absorbing=True),
+    rate("ill", "dead", 0.1, memory=[after("fall", within=0.5, multiplier=4)]),
+    event("fall", ["ill"], rate=1))
 
 
 @contextmanager
@@ -573,43 +297,14 @@ def test_time_since_memory_matches_direct_simulation_of_falls():
     assert np.all(np.abs(alive - expected)[1:] < Z * se[1:])
 
 
-MONTHLY_WINDOW = """
-[time]
-unit = "years"
-cycle = 0.08333333333333333
-horizon = 1
-[start]
-shares = { well = 1 }
-[[states]]
-name = "well"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.0
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[events]]
-name = "flare"
-states = ["well"]
-probability = "first_cycle_only"
-[[events]]
-name = "check"
-states = ["well"]
-probability = 0.5
-  [[events.memory]]
-  after = "flare"
-  within = 0.5
-  multiplier = 1e-12
-[tables.first_cycle_only]
-by = "time"
-starts = [0, 0.08333333333333333]
-values = [1, 0]
-"""
+MONTHLY_WINDOW = scenario_text(
+    horizon(1, cycle=0.08333333333333333), start(well=1),
+    state("well"), state("dead", absorbing=True),
+    probability("well", "dead", 0.0), probability("well", "well", "remainder"),
+    event("flare", ["well"], probability="first_cycle_only"),
+    event("check", ["well"], probability=0.5,
+          memory=[after("flare", within=0.5, multiplier=1e-12)]),
+    table("first_cycle_only", by="time", starts=[0, 0.08333333333333333], values=[1, 0]))
 
 
 def test_cycle_engine_time_since_window_lasts_whole_cycles():
@@ -630,32 +325,11 @@ def test_cycle_engine_time_since_window_lasts_whole_cycles():
 
 # ------------------------------------------------------------------------ the verdict
 
-SEMI_MARKOV = """
-[time]
-unit = "days"
-horizon = 30
-[start]
-shares = { recovering = 1 }
-[[states]]
-name = "recovering"
-[[states]]
-name = "complication"
-[[states]]
-name = "discharged"
-absorbing = true
-[[transitions]]
-from = "recovering"
-to = "complication"
-rate = 0.1
-[[transitions]]
-from = "recovering"
-to = "discharged"
-rate = 0.2
-[[transitions]]
-from = "complication"
-to = "recovering"
-hazard = { family = "weibull", shape = 1.5, scale = 4 }
-"""
+SEMI_MARKOV = scenario_text(
+    horizon(30, unit="days"), start(recovering=1),
+    state("recovering"), state("complication"), state("discharged", absorbing=True),
+    rate("recovering", "complication", 0.1), rate("recovering", "discharged", 0.2),
+    transition("complication", "recovering", hazard=dict(family="weibull", shape=1.5, scale=4)))
 
 
 def test_verdict_agrees_on_a_correct_model(rate_run):

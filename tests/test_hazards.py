@@ -14,9 +14,9 @@ from scipy import integrate, special, stats
 
 from microsim.hazards import (ConstantHazard, GompertzHazard, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard, solve_growing_numerically)
+from support import KS_LEVEL
 
 DRAWS = 3000
-KS_LEVEL = 1e-3
 
 
 def uniforms(seed, n=DRAWS):

@@ -10,10 +10,10 @@ from scipy import stats
 from microsim.population import describe_population, draw_population
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec
+from support import Z
 
 SEED = 7
 N = 20_000
-Z = 4.0
 
 
 def spec_of(*attributes, size=N, **fields):

@@ -21,52 +21,24 @@ from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, StrategySpec, UncertaintySpec
 from microsim.uncertainty import parameter_draws
 from microsim.uncertainty import folder
+from support import (attribute, effect, horizon, parameters, population, rate, scenario_text,
+                     section, start, state)
 
 DRAWS, PATIENTS = 6, 100
 
-MODEL = """
-title = "psa test"
-provenance = "invented for a test"
-[time]
-unit = "days"
-horizon = 30
-[start]
-shares = { ward = 1.0 }
-[[states]]
-name = "ward"
-cost = "c_ward"
-utility = 0.7
-[[states]]
-name = "home"
-absorbing = true
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "ward"
-to = "home"
-rate = "r_home"
-  [[transitions.effects]]
-  attribute = "frail"
-  hazard_ratio = 0.7
-[[transitions]]
-from = "ward"
-to = "dead"
-rate = "r_death"
-[parameters]
-c_ward = { value = 600, distribution = { family = "gamma", shape = 100, scale = 6 } }
-r_home = { value = 0.2, distribution = { family = "gamma", shape = 200, scale = 0.001 } }
-r_death = { value = 0.004, distribution = { family = "beta", alpha = 4, beta = 996 } }
-hr_rehab = { value = 1.3, distribution = { family = "lognormal", meanlog = 0.26, sdlog = 0.1 } }
-[population]
-size = 100
-[[population.attributes]]
-name = "frail"
-distribution = "yesno"
-prevalence = 0.3
-[simulation]
-seed = 99
-"""
+MODEL = scenario_text(
+    horizon(30, unit="days"), start(ward=1.0),
+    state("ward", cost="c_ward", utility=0.7), state("home", absorbing=True),
+    state("dead", absorbing=True),
+    rate("ward", "home", "r_home", effects=[effect("frail", 0.7)]), rate("ward", "dead", "r_death"),
+    parameters(
+        c_ward=dict(value=600, distribution=dict(family="gamma", shape=100, scale=6)),
+        r_home=dict(value=0.2, distribution=dict(family="gamma", shape=200, scale=0.001)),
+        r_death=dict(value=0.004, distribution=dict(family="beta", alpha=4, beta=996)),
+        hr_rehab=dict(value=1.3, distribution=dict(family="lognormal", meanlog=0.26, sdlog=0.1))),
+    population(100, attribute("frail", "yesno", prevalence=0.3)),
+    section("simulation", seed=99),
+    title="psa test")
 
 
 def small_scenario():

@@ -8,144 +8,45 @@ import functools
 import numpy as np
 import pytest
 
-from microsim.binding import bind
 from microsim.effects import multipliers
 from microsim.engines.cycles import simulate_cycles
 from microsim.engines.events import simulate_events
 from microsim.population import draw_population
-from microsim.scenario.reader import parse_scenario
 from microsim.simulate import simulate
+from support import (after, attribute, effect, event, horizon, model_of, outcomes, population,
+                     probability, rate, scenario_text, start, state, table, transition)
 
-HEADER = """
-title = "test model"
-provenance = "invented for a test"
-[outcomes]
-discount_costs = 0.035
-discount_effects = 0.015
-"""
-
-POPULATION = """
-[population]
-size = 1000
-[[population.attributes]]
-name = "smoker"
-distribution = "yesno"
-prevalence = 0.4
-[[population.attributes]]
-name = "age"
-distribution = "normal"
-mean = 60
-sd = 8
-"""
+DISCOUNTS = outcomes(discount_costs=0.035, discount_effects=0.015)
+POPULATION = population(1000, attribute("smoker", "yesno", prevalence=0.4),
+                        attribute("age", "normal", mean=60, sd=8))
 
 # a flare rate of 5 per year over 20 years gives many patients more rounds of draws in one
 # state than the engine precomputes (tens), so draws made on demand are covered too
-RATE_MODEL = """
-[time]
-unit = "years"
-horizon = 20
-[start]
-shares = { well = 0.9, sick = 0.1 }
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.15
-  [[transitions.effects]]
-  attribute = "smoker"
-  hazard_ratio = 2
-  [[transitions.memory]]
-  after = "flare"
-  multipliers = [1, 1.2, 1.5]
-[[transitions]]
-from = "sick"
-to = "well"
-hazard = { family = "weibull", shape = 1.4, scale = 3 }
-[[transitions]]
-from = "well"
-to = "dead"
-hazard = { family = "gompertz", rate = 0.005, shape = 0.08 }
-clock = "since_start"
-  [[transitions.effects]]
-  attribute = "age"
-  hazard_ratio = 1.05
-  centre = 60
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.05
-  [[transitions.memory]]
-  after = "sick"
-  multipliers = [1, 1, 2]
-[[events]]
-name = "flare"
-states = ["well", "sick"]
-rate = 5
-""" + POPULATION
+RATE_MODEL = scenario_text(
+    DISCOUNTS, horizon(20), start(well=0.9, sick=0.1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    rate("well", "sick", 0.15, effects=[effect("smoker", 2)],
+         memory=[after("flare", multipliers=[1, 1.2, 1.5])]),
+    transition("sick", "well", hazard=dict(family="weibull", shape=1.4, scale=3)),
+    transition("well", "dead", hazard=dict(family="gompertz", rate=0.005, shape=0.08),
+               clock="since_start", effects=[effect("age", 1.05, centre=60)]),
+    rate("sick", "dead", 0.05, memory=[after("sick", multipliers=[1, 1, 2])]),
+    event("flare", ["well", "sick"], rate=5),
+    POPULATION)
 
-CYCLE_MODEL = """
-[time]
-unit = "years"
-cycle = 1
-horizon = 20
-[start]
-shares = { well = 0.9, sick = 0.1 }
-[[states]]
-name = "well"
-[[states]]
-name = "sick"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.1
-  [[transitions.effects]]
-  attribute = "smoker"
-  hazard_ratio = 2
-  [[transitions.memory]]
-  after = "flare"
-  multipliers = [1, 1.5]
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.02
-  [[transitions.effects]]
-  attribute = "age"
-  hazard_ratio = 1.05
-  centre = 60
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "well"
-probability = "recover_by_stay"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.1
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-[[events]]
-name = "flare"
-states = ["well", "sick"]
-probability = 0.3
-[tables.recover_by_stay]
-by = "time_in_state"
-starts = [0, 1, 3]
-values = [0.05, 0.2, 0.3]
-""" + POPULATION
+CYCLE_MODEL = scenario_text(
+    DISCOUNTS, horizon(20, cycle=1), start(well=0.9, sick=0.1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.1, effects=[effect("smoker", 2)],
+                memory=[after("flare", multipliers=[1, 1.5])]),
+    probability("well", "dead", 0.02, effects=[effect("age", 1.05, centre=60)]),
+    probability("well", "well", "remainder"),
+    probability("sick", "well", "recover_by_stay"), probability("sick", "dead", 0.1),
+    probability("sick", "sick", "remainder"),
+    event("flare", ["well", "sick"], probability=0.3),
+    table("recover_by_stay", by="time_in_state", starts=[0, 1, 3], values=[0.05, 0.2, 0.3]),
+    POPULATION)
+
 
 SEED = 31
 ENGINES = {"rate": (RATE_MODEL, simulate_events), "cycle": (CYCLE_MODEL, simulate_cycles)}
@@ -154,7 +55,7 @@ ENGINES = {"rate": (RATE_MODEL, simulate_events), "cycle": (CYCLE_MODEL, simulat
 @pytest.fixture(scope="module", params=sorted(ENGINES))
 def setup(request):
     text, engine = ENGINES[request.param]
-    model = bind(parse_scenario(HEADER + text))
+    model = model_of(text)
     return model, engine
 
 
@@ -207,7 +108,7 @@ def test_histories_do_not_depend_on_order(setup):
 def runs(name):
     """The run of patients 0..999 in one batch, and runs it must match on the patients they
     share: (patient ids, run) for another size, batch sizes 1 and 7, and another order."""
-    model = bind(parse_scenario(HEADER + ENGINES[name][0]))
+    model = model_of(ENGINES[name][0])
     reference = simulate(model, people(model, np.arange(1000)), SEED, batch_size=1000)
     first, shuffled = np.arange(100), np.random.default_rng(9).permutation(1000)
     others = [(first, simulate(model, people(model, first), SEED, batch_size=size))

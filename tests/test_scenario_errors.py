@@ -10,185 +10,45 @@ import numpy as np
 import pytest
 
 from microsim.scenario import ScenarioError, parse_scenario, read_scenario
+from support import (after, assert_refused, attribute, edited, effect, event, horizon, nested,
+                     outcomes, parameters, population, probability, rate, refusal, scenario_text,
+                     section, start, state, table, transition)
 
-DISCRETE = """\
-title = "Test"
-provenance = "Invented for tests; not real data."
+PROVENANCE = "Invented for tests; not real data."
 
-[time]
-unit = "years"
-cycle = 1
-horizon = 10
+DISCRETE = scenario_text(
+    horizon(10, cycle=1), start(age=50, well=0.9, sick=0.1),
+    state("well", cost=100, utility=0.9), state("sick", cost="c_sick", utility=0.6),
+    state("dead", absorbing=True),
+    probability("well", "sick", "p_sick", effects=[effect("marker", 1.2)],
+                memory=[after("flare", multipliers=[1.0, 1.5])]),
+    probability("well", "dead", "mortality"), probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.2), probability("sick", "sick", 0.8),
+    event("flare", ["well", "sick"], probability=0.1, cost=50),
+    parameters(p_sick=dict(value=0.1, distribution=dict(family="beta", alpha=10, beta=90),
+                           low=0.05, high=0.15),
+               c_sick=500),
+    table("mortality", by="age", starts=[0, 60, 80], values=[0.01, 0.05, 0.2]),
+    outcomes(discount_costs=0.035),
+    population(100, attribute("age", "normal", mean=50, sd=5, lower=30, upper=70),
+               attribute("marker", "lognormal", meanlog=0, sdlog=0.5),
+               attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
+               attribute("smoker", "yesno", prevalence=0.2),
+               correlation=nested(attributes=["age", "marker"],
+                                  matrix=[[1.0, 0.3], [0.3, 1.0]])),
+    section("simulation", seed=1),
+    title="Test", provenance=PROVENANCE)
 
-[start]
-age = 50
-shares = { well = 0.9, sick = 0.1 }
-
-[[states]]
-name = "well"
-cost = 100
-utility = 0.9
-
-[[states]]
-name = "sick"
-cost = "c_sick"
-utility = 0.6
-
-[[states]]
-name = "dead"
-absorbing = true
-
-[[transitions]]
-from = "well"
-to = "sick"
-probability = "p_sick"
-
-  [[transitions.effects]]
-  attribute = "marker"
-  hazard_ratio = 1.2
-
-  [[transitions.memory]]
-  after = "flare"
-  multipliers = [1.0, 1.5]
-
-[[transitions]]
-from = "well"
-to = "dead"
-probability = "mortality"
-
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.2
-
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = 0.8
-
-[[events]]
-name = "flare"
-states = ["well", "sick"]
-probability = 0.1
-cost = 50
-
-[parameters]
-p_sick = { value = 0.1, distribution = { family = "beta", alpha = 10, beta = 90 }, low = 0.05, high = 0.15 }
-c_sick = 500
-
-[tables.mortality]
-by = "age"
-starts = [0, 60, 80]
-values = [0.01, 0.05, 0.2]
-
-[outcomes]
-discount_costs = 0.035
-
-[population]
-size = 100
-
-  [[population.attributes]]
-  name = "age"
-  distribution = "normal"
-  mean = 50
-  sd = 5
-  lower = 30
-  upper = 70
-
-  [[population.attributes]]
-  name = "marker"
-  distribution = "lognormal"
-  meanlog = 0
-  sdlog = 0.5
-
-  [[population.attributes]]
-  name = "sex"
-  distribution = "categorical"
-  levels = ["female", "male"]
-  shares = [0.5, 0.5]
-
-  [[population.attributes]]
-  name = "smoker"
-  distribution = "yesno"
-  prevalence = 0.2
-
-  [population.correlation]
-  attributes = ["age", "marker"]
-  matrix = [[1.0, 0.3], [0.3, 1.0]]
-
-[simulation]
-seed = 1
-"""
-
-CONTINUOUS = """\
-title = "Ward"
-provenance = "Invented for tests; not real data."
-
-[time]
-unit = "days"
-horizon = 30
-
-[start]
-shares = { ward = 1.0 }
-
-[[states]]
-name = "ward"
-cost = 500
-
-[[states]]
-name = "complication"
-
-[[states]]
-name = "home"
-absorbing = true
-
-[[transitions]]
-from = "ward"
-to = "home"
-rate = "discharge"
-
-[[transitions]]
-from = "ward"
-to = "complication"
-rate = 0.02
-
-[[transitions]]
-from = "complication"
-to = "ward"
-hazard = { family = "weibull", shape = 1.5, scale = 6 }
-
-[[transitions]]
-from = "complication"
-to = "home"
-rate = 0.004
-
-[tables.discharge]
-by = "time_in_state"
-starts = [0, 3]
-values = [0.1, 0.3]
-"""
+CONTINUOUS = scenario_text(
+    horizon(30, unit="days"), start(ward=1.0),
+    state("ward", cost=500), state("complication"), state("home", absorbing=True),
+    rate("ward", "home", "discharge"), rate("ward", "complication", 0.02),
+    transition("complication", "ward", hazard=dict(family="weibull", shape=1.5, scale=6)),
+    rate("complication", "home", 0.004),
+    table("discharge", by="time_in_state", starts=[0, 3], values=[0.1, 0.3]),
+    title="Ward", provenance=PROVENANCE)
 
 BASES = {"discrete": DISCRETE, "continuous": CONTINUOUS}
-
-
-def edited(base: str, *edits: tuple[str, str]) -> str:
-    """Apply (old, new) replacements; each `old` must occur exactly once in the text."""
-    text = base
-    for old, new in edits:
-        assert text.count(old) == 1, f"edit target not unique: {old!r}"
-        text = text.replace(old, new)
-    return text
-
-
-def refusal(text: str) -> ScenarioError:
-    with pytest.raises(ScenarioError) as caught:
-        parse_scenario(text)
-    return caught.value
 
 
 @pytest.mark.parametrize("name", BASES)
@@ -470,10 +330,7 @@ CASES = [
 @pytest.mark.parametrize("case", CASES, ids=[c[0] for c in CASES])
 def test_refusal_names_path_and_fix(case):
     _, base, edits, path, phrase = case
-    error = refusal(edited(BASES[base], *edits))
-    assert error.path == path, str(error)
-    assert phrase in error.message, str(error)
-    assert "\n" not in str(error)  # one line
+    assert_refused(edited(BASES[base], *edits), path, phrase)
 
 
 def test_smallest_eigenvalue_is_named():

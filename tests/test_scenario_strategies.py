@@ -8,6 +8,7 @@ positive-semi-definiteness check from numpy.linalg.eigvalsh.
 """
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -15,236 +16,79 @@ import pytest
 from scipy import stats
 
 from microsim.binding import bind
-from microsim.scenario import ScenarioError, parse_scenario, read_scenario
+from microsim.scenario import parse_scenario, read_scenario
 from microsim.scenario.spec import ChangeSpec, ConditionSpec, EconomicsSpec, UncertaintySpec
+from support import (assert_refused, attribute, edited, event, horizon, move, nested, parameters,
+                     population, probability, rate, refusal, scenario_text, section, start, state,
+                     strategy, transition)
 
 SCENARIOS = Path(__file__).resolve().parent.parent / "scenarios"
 
-BASE = """\
-title = "Test"
-provenance = "Invented for tests; not real data."
+PROVENANCE = "Invented for tests; not real data."
 
-[time]
-unit = "years"
-horizon = 10
 
-[start]
-shares = { well = 1.0 }
+def base_text(**added) -> str:
+    """The base scenario; `added` gives the drug strategy its own states and transitions."""
+    return scenario_text(
+        horizon(10), start(well=1.0),
+        state("well", cost=100, utility=0.9), state("sick", utility=0.6),
+        state("dead", absorbing=True),
+        transition("well", "sick", name="onset", probability="p_sick"),
+        probability("well", "well", "remainder"),
+        probability("sick", "dead", 0.2), probability("sick", "sick", 0.8),
+        event("flare", ["well", "sick"], probability=0.1),
+        parameters(
+            p_sick=dict(value=0.1, distribution=dict(family="beta", alpha=10, beta=90)),
+            hr_drug=dict(value=0.7, distribution=dict(family="lognormal", meanlog=-0.357,
+                                                      sdlog=0.1)),
+            c_drug=dict(value=300, distribution=dict(family="gamma", shape=100, scale=3))),
+        population(100, attribute("age", "normal", mean=50, sd=5, lower=30, upper=70),
+                   attribute("marker", "lognormal", meanlog=0, sdlog=0.5),
+                   attribute("sex", "categorical", levels=["female", "male", "other"],
+                             shares=[0.5, 0.5, 0.0]),
+                   attribute("smoker", "yesno", prevalence=0.2),
+                   derived=[nested(**{"name": "marker_band", "from": "marker",
+                                      "edges": [-math.inf, 2], "labels": ["low", "high"]})]),
+        strategy("usual", comparator=True),
+        strategy("drug", label="A drug for the high-risk", uptake=0.8, start=1, stop=8,
+                 discontinuation=0.1,
+                 eligible=nested(all=[dict(attribute="marker", at_least=1.0),
+                                      dict(attribute="age", below=65)],
+                                 any=[dict(attribute="smoker", equals=True),
+                                      dict(attribute="sex", one_of=["male"])]),
+                 changes=[nested(transition="onset", hazard_ratio="hr_drug"),
+                          nested(transition="flare", hazard_ratio=0.5),
+                          nested(state="well", cost="c_drug", utility=-0.01)],
+                 **added),
+        section("economics", threshold=30000, thresholds={"from": 0, "to": 50000, "step": 500},
+                currency="test dollars", precision=100),
+        section("uncertainty", draws=20, patients=50,
+                correlation=nested(parameters=["p_sick", "hr_drug"], matrix=[[1, 0.3], [0.3, 1]])),
+        title="Test", provenance=PROVENANCE)
 
-[[states]]
-name = "well"
-cost = 100
-utility = 0.9
 
-[[states]]
-name = "sick"
-utility = 0.6
+BASE = base_text()
 
-[[states]]
-name = "dead"
-absorbing = true
 
-[[transitions]]
-from = "well"
-to = "sick"
-name = "onset"
-probability = "p_sick"
+def with_added() -> str:
+    """The drug strategy with added states and transitions (they follow its changes)."""
+    return base_text(states=[nested(name="on_drug", utility=0.95)],
+                     transitions=[move("well", "on_drug", probability=0.3),
+                                  move("on_drug", "sick", probability=0.05, while_treated=False),
+                                  move("on_drug", "on_drug", probability="remainder",
+                                       while_treated=False)])
 
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
 
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.2
-
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = 0.8
-
-[[events]]
-name = "flare"
-states = ["well", "sick"]
-probability = 0.1
-
-[parameters]
-p_sick = { value = 0.1, distribution = { family = "beta", alpha = 10, beta = 90 } }
-hr_drug = { value = 0.7, distribution = { family = "lognormal", meanlog = -0.357, sdlog = 0.1 } }
-c_drug = { value = 300, distribution = { family = "gamma", shape = 100, scale = 3 } }
-
-[population]
-size = 100
-
-  [[population.attributes]]
-  name = "age"
-  distribution = "normal"
-  mean = 50
-  sd = 5
-  lower = 30
-  upper = 70
-
-  [[population.attributes]]
-  name = "marker"
-  distribution = "lognormal"
-  meanlog = 0
-  sdlog = 0.5
-
-  [[population.attributes]]
-  name = "sex"
-  distribution = "categorical"
-  levels = ["female", "male", "other"]
-  shares = [0.5, 0.5, 0.0]
-
-  [[population.attributes]]
-  name = "smoker"
-  distribution = "yesno"
-  prevalence = 0.2
-
-  [[population.derived]]
-  name = "marker_band"
-  from = "marker"
-  edges = [-inf, 2]
-  labels = ["low", "high"]
-
-[[strategies]]
-name = "usual"
-comparator = true
-
-[[strategies]]
-name = "drug"
-label = "A drug for the high-risk"
-uptake = 0.8
-start = 1
-stop = 8
-discontinuation = 0.1
-
-  [strategies.eligible]
-  all = [{ attribute = "marker", at_least = 1.0 }, { attribute = "age", below = 65 }]
-  any = [{ attribute = "smoker", equals = true }, { attribute = "sex", one_of = ["male"] }]
-
-  [[strategies.changes]]
-  transition = "onset"
-  hazard_ratio = "hr_drug"
-
-  [[strategies.changes]]
-  transition = "flare"
-  hazard_ratio = 0.5
-
-  [[strategies.changes]]
-  state = "well"
-  cost = "c_drug"
-  utility = -0.01
-
-[economics]
-threshold = 30000
-thresholds = { from = 0, to = 50000, step = 500 }
-currency = "test dollars"
-precision = 100
-
-[uncertainty]
-draws = 20
-patients = 50
-
-  [uncertainty.correlation]
-  parameters = ["p_sick", "hr_drug"]
-  matrix = [[1, 0.3], [0.3, 1]]
-"""
-
-ADDED = """
-  [[strategies.states]]
-  name = "on_drug"
-  utility = 0.95
-
-  [[strategies.transitions]]
-  from = "well"
-  to = "on_drug"
-  probability = 0.3
-
-  [[strategies.transitions]]
-  from = "on_drug"
-  to = "sick"
-  probability = 0.05
-  while_treated = false
-
-  [[strategies.transitions]]
-  from = "on_drug"
-  to = "on_drug"
-  probability = "remainder"
-  while_treated = false
-"""
-
-CONTINUOUS = """\
-title = "Ward"
-provenance = "Invented for tests; not real data."
-
-[time]
-unit = "days"
-horizon = 30
-
-[start]
-shares = { ward = 1.0 }
-
-[[states]]
-name = "ward"
-
-[[states]]
-name = "home"
-absorbing = true
-
-[[transitions]]
-from = "ward"
-to = "home"
-rate = 0.1
-
-[[strategies]]
-name = "usual"
-comparator = true
-
-[[strategies]]
-name = "early_discharge"
-
-  [[strategies.states]]
-  name = "day_unit"
-
-  [[strategies.transitions]]
-  from = "ward"
-  to = "day_unit"
-  name = "fast_track"
-  rate = 0.05
-
-  [[strategies.transitions]]
-  from = "day_unit"
-  to = "home"
-  rate = 0.5
-  while_treated = false
-"""
+CONTINUOUS = scenario_text(
+    horizon(30, unit="days"), start(ward=1.0), state("ward"), state("home", absorbing=True),
+    rate("ward", "home", 0.1),
+    strategy("usual", comparator=True),
+    strategy("early_discharge", states=[nested(name="day_unit")],
+             transitions=[move("ward", "day_unit", name="fast_track", rate=0.05),
+                          move("day_unit", "home", rate=0.5, while_treated=False)]),
+    title="Ward", provenance=PROVENANCE)
 
 BASES = {"base": BASE, "continuous": CONTINUOUS}
-ECONOMICS = BASE[BASE.index("[economics]"):BASE.index("[uncertainty]")]
-UNCERTAINTY = BASE[BASE.index("[uncertainty]"):]
-
-
-def edited(base: str, *edits: tuple[str, str]) -> str:
-    """Apply (old, new) replacements; each `old` must occur exactly once in the text."""
-    text = base
-    for old, new in edits:
-        assert text.count(old) == 1, f"edit target not unique: {old!r}"
-        text = text.replace(old, new)
-    return text
-
-
-def with_added(text: str = BASE) -> str:
-    """The drug strategy with added states and transitions (they follow its changes)."""
-    return edited(text, ("  utility = -0.01\n", "  utility = -0.01\n" + ADDED))
-
-
-def refusal(text: str) -> ScenarioError:
-    with pytest.raises(ScenarioError) as caught:
-        parse_scenario(text)
-    return caught.value
 
 
 # -- reading -------------------------------------------------------------------------------
@@ -645,10 +489,7 @@ CASES += [
 def test_refusal_names_path_and_fix(case):
     _, base, edits, path, phrase = case
     text = with_added() if base == "added" else BASES[base]
-    error = refusal(edited(text, *edits))
-    assert error.path == path, str(error)
-    assert phrase in error.message, str(error)
-    assert "\n" not in str(error)  # one line
+    assert_refused(edited(text, *edits), path, phrase)
 
 
 def test_smallest_eigenvalue_is_named():

@@ -35,21 +35,19 @@ from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, 
                                     StrategySpec, TransitionSpec)
 from microsim.simulate import cohort_patients, simulate
 from microsim.strategies import eligible, treatment_window
+from support import (Z, assert_follows, assert_mean_agrees, attribute, horizon, nested, outcomes,
+                     population, probability, rate, scenario_text, start, state, state_shares,
+                     strategy, transition)
 
-Z = 4.0
-KS_LEVEL = 0.001
 SEED = 20261201
 
-HEADER = """
-title = "strategy test"
-provenance = "invented for a test"
-"""
+TITLE = "strategy test"
 
 COMPARATOR = StrategySpec("usual", "usual care", comparator=True)
 
 
 def with_strategies(text: str, *strategies: StrategySpec):
-    return replace(parse_scenario(HEADER + text), strategies=(COMPARATOR, *strategies))
+    return replace(parse_scenario(text), strategies=(COMPARATOR, *strategies))
 
 
 # ------------------------------------------------------------------------- eligibility
@@ -134,21 +132,11 @@ def test_the_demo_targets_the_patients_its_file_names():
 
 def test_equals_a_number_reaches_patients_of_a_population_file(tmp_path):
     (tmp_path / "people.csv").write_text("stage,age\n1,50\n2,60\n3,70\n")
-    (tmp_path / "s.toml").write_text(HEADER + POPULATION_MODEL.split("[population]")[0] + """
-[population]
-size = 300
-file = "people.csv"
-[[strategies]]
-name = "usual"
-comparator = true
-[[strategies]]
-name = "stage_two"
-  [strategies.eligible]
-  all = [{ attribute = "stage", equals = 2 }]
-  [[strategies.changes]]
-  transition = "well->dead"
-  hazard_ratio = 0.5
-""")
+    (tmp_path / "s.toml").write_text(population_model(
+        population(300, file="people.csv"),
+        strategy("usual", comparator=True),
+        strategy("stage_two", eligible=nested(all=[dict(attribute="stage", equals=2)]),
+                 changes=[nested(transition="well->dead", hazard_ratio=0.5)])))
     scenario = read_scenario(tmp_path / "s.toml")
     people = draw_population(scenario.population, SEED)
     treated = np.isfinite(treatment_window(bind(scenario, strategy="stage_two"), people, SEED).on)
@@ -157,34 +145,17 @@ name = "stage_two"
 
 # ------------------------------------------------------------------- uptake and windows
 
-POPULATION_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 1.0 }
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.1
-[population]
-size = 20000
-[[population.attributes]]
-name = "age"
-distribution = "normal"
-mean = 60
-sd = 10
-[[population.attributes]]
-name = "diabetes"
-distribution = "yesno"
-prevalence = 0.4
-"""
+def population_model(*more: str) -> str:
+    """well -> dead at rate 0.1 for 10 years; `more` gives the population (and strategies)."""
+    return scenario_text(
+        horizon(10), start(well=1.0), state("well", utility=1), state("dead", absorbing=True),
+        rate("well", "dead", 0.1), *more, title=TITLE)
+
+
+POPULATION_MODEL = population_model(population(
+    20000, attribute("age", "normal", mean=60, sd=10),
+    attribute("diabetes", "yesno", prevalence=0.4)))
+
 
 DEATH_HR = (ChangeSpec(risk="well->dead", hazard_ratio=0.8),)
 
@@ -194,26 +165,26 @@ def windows(scenario, name, patients, seed=SEED):
 
 
 @pytest.fixture(scope="module")
-def population():
+def people():
     scenario = with_strategies(POPULATION_MODEL)
     return draw_population(scenario.population, SEED)
 
 
-def test_treated_share_among_eligible_is_the_uptake(population):
+def test_treated_share_among_eligible_is_the_uptake(people):
     rule = EligibilitySpec(all=(ConditionSpec("age", "at_least", 55.0),),
                            any=(ConditionSpec("diabetes", "equals", True),))
     scenario = with_strategies(POPULATION_MODEL, StrategySpec(
         "drug", "drug", eligible=rule, uptake=0.6, changes=DEATH_HR))
-    w = windows(scenario, "drug", population)
+    w = windows(scenario, "drug", people)
     treated = np.isfinite(w.on)
-    mask = ((population.age >= 55) & population.diabetes).to_numpy()
+    mask = ((people.age >= 55) & people.diabetes).to_numpy()
     assert not treated[~mask].any()  # nobody outside the eligible group is treated
     n, k = mask.sum(), treated[mask].sum()
     z = (k - n * 0.6) / math.sqrt(n * 0.6 * 0.4)  # binomial (common practice)
     assert abs(z) < Z, (k, n, z)
 
 
-def test_the_same_patients_take_up_every_strategy_with_the_same_uptake(population):
+def test_the_same_patients_take_up_every_strategy_with_the_same_uptake(people):
     """Shared 'uptake' draws (common random numbers): same uptake, same patients; a higher
     uptake treats a superset."""
     scenario = with_strategies(
@@ -222,32 +193,32 @@ def test_the_same_patients_take_up_every_strategy_with_the_same_uptake(populatio
         StrategySpec("b", "b", uptake=0.6, start=2.0, discontinuation=0.5,
                      changes=(ChangeSpec(cost=100.0),)),
         StrategySpec("c", "c", uptake=0.8, changes=DEATH_HR))
-    treated = {name: np.isfinite(windows(scenario, name, population).on) for name in "abc"}
+    treated = {name: np.isfinite(windows(scenario, name, people).on) for name in "abc"}
     np.testing.assert_array_equal(treated["a"], treated["b"])
     assert (treated["a"] <= treated["c"]).all() and treated["c"].sum() > treated["a"].sum()
     # the draws are the patient's own: another seed treats other patients
-    other = np.isfinite(windows(scenario, "a", population, seed=SEED + 1).on)
+    other = np.isfinite(windows(scenario, "a", people, seed=SEED + 1).on)
     assert (other != treated["a"]).any()
 
 
 @pytest.mark.parametrize("start, stop", [(0.0, None), (1.0, 5.0)])
-def test_time_on_treatment_is_exponential_until_stop(population, start, stop):
+def test_time_on_treatment_is_exponential_until_stop(people, start, stop):
     rate = 0.3
     scenario = with_strategies(POPULATION_MODEL, StrategySpec(
         "drug", "drug", start=start, stop=stop, discontinuation=rate, changes=DEATH_HR))
-    w = windows(scenario, "drug", population)
+    w = windows(scenario, "drug", people)
     assert np.all(w.on == start)
     duration = w.off - w.on
     if stop is None:
         # reference: scipy.stats.expon with mean 1/rate
-        assert stats.kstest(duration, stats.expon(scale=1 / rate).cdf).pvalue > KS_LEVEL
+        assert_follows(duration, stats.expon(scale=1 / rate).cdf)
         return
     length = stop - start
     assert duration.max() <= length
     stopped_early = duration < length
     # below the stop: the exponential truncated at the stop (scipy.stats.truncexpon)
     reference = stats.truncexpon(b=rate * length, scale=1 / rate)
-    assert stats.kstest(duration[stopped_early], reference.cdf).pvalue > KS_LEVEL
+    assert_follows(duration[stopped_early], reference.cdf)
     # at the stop: the exponential survival exp(-rate * length), binomial error
     n, p = len(duration), math.exp(-rate * length)
     z = ((~stopped_early).sum() - n * p) / math.sqrt(n * p * (1 - p))
@@ -256,73 +227,28 @@ def test_time_on_treatment_is_exponential_until_stop(population, start, stop):
 
 # --------------------------------------------- treatment effects against hand-built traces
 
-RATE_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 0.8, sick = 0.2 }
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "sick"
-utility = 0.5
-cost = 200
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-rate = 0.25
-[[transitions]]
-from = "well"
-to = "dead"
-rate = 0.05
-[[transitions]]
-from = "sick"
-to = "dead"
-rate = 0.3
-"""
+TREATED_STATES = (horizon(10), start(well=0.8, sick=0.2),
+                  state("well", utility=1), state("sick", utility=0.5, cost=200),
+                  state("dead", absorbing=True))
 
-CYCLE_MODEL = """
-[time]
-unit = "years"
-horizon = 10
-[start]
-shares = { well = 0.8, sick = 0.2 }
-[[states]]
-name = "well"
-utility = 1
-[[states]]
-name = "sick"
-utility = 0.5
-cost = 200
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "well"
-to = "sick"
-probability = 0.2
-[[transitions]]
-from = "well"
-to = "dead"
-probability = 0.05
-[[transitions]]
-from = "well"
-to = "well"
-probability = "remainder"
-[[transitions]]
-from = "sick"
-to = "dead"
-probability = 0.25
-[[transitions]]
-from = "sick"
-to = "sick"
-probability = "remainder"
-"""
+
+def rate_model(*more: str, **sick_death) -> str:
+    """sick -> dead at rate 0.3, or by `sick_death` (e.g. a hazard)."""
+    return scenario_text(
+        *TREATED_STATES, rate("well", "sick", 0.25), rate("well", "dead", 0.05),
+        transition("sick", "dead", **(sick_death or dict(rate=0.3))), *more, title=TITLE)
+
+
+def cycle_model(*more: str) -> str:
+    return scenario_text(
+        *TREATED_STATES, probability("well", "sick", 0.2), probability("well", "dead", 0.05),
+        probability("well", "well", "remainder"),
+        probability("sick", "dead", 0.25), probability("sick", "sick", "remainder"),
+        *more, title=TITLE)
+
+
+RATE_MODEL, CYCLE_MODEL = rate_model(), cycle_model()
+
 
 HR, START, STOP = 0.4, 2.0, 6.0
 
@@ -371,6 +297,13 @@ def cycle_reference(n_cycles: int) -> np.ndarray:
     return np.array(out)
 
 
+def binomial_z(sim, expected: np.ndarray, n: int) -> np.ndarray:
+    """(T, S) z of the simulated shares against `expected`, binomial standard errors
+    sqrt(p (1 - p) / n) (common practice); 0 where p is 0 or 1."""
+    se = np.sqrt(expected * (1 - expected) / n)
+    return np.where(se > 0, (state_shares(sim) - expected) / np.where(se > 0, se, 1), 0)
+
+
 CASES = {
     "rate": (RATE_MODEL, TransitionSpec("sick", "well", "recovery",
                                         hazard=HazardSpec("constant", {"rate": 0.5})),
@@ -394,10 +327,7 @@ def test_treatment_window_agrees_with_the_hand_built_trace(kind):
     assert result.exact and result.agrees, result.verdict
     assert result.shares.z.abs().max() < Z
     # the simulated shares against the hand-built trace, binomial standard errors
-    simulated = np.stack([(sim.states == s).mean(axis=0) for s in range(3)], axis=1)
-    se = np.sqrt(expected * (1 - expected) / n)
-    z = np.where(se > 0, (simulated - expected) / np.where(se > 0, se, 1), 0)
-    assert np.abs(z).max() < Z
+    assert np.abs(binomial_z(sim, expected, n)).max() < Z
     # no recovery happens outside the window: off_factor 0 on the added transition
     recovery = model.risk_names.index("recovery")
     assert model.treatment.off_factor[recovery] == 0.0
@@ -424,15 +354,8 @@ def test_a_cohort_trace_of_a_strategy_that_treats_some_patients_is_refused(chang
     """No single cohort row shows a mix of treated and untreated patients: the answer is a
     refusal naming the strategy, not the untreated trace."""
     strategy = replace(treated_strategy(CASES["rate"][1]), **change)
-    scenario = with_strategies(RATE_MODEL + """
-[population]
-size = 10
-[[population.attributes]]
-name = "age"
-distribution = "uniform"
-lower = 40
-upper = 80
-""", strategy)
+    scenario = with_strategies(
+        rate_model(population(10, attribute("age", "uniform", lower=40, upper=80))), strategy)
     with pytest.raises(ScenarioError) as refused:
         cohort_trace(bind(scenario, strategy="drug"))
     assert refused.value.path == "strategies.drug"
@@ -468,35 +391,16 @@ def test_uptake_and_discontinuation_agree_with_the_expanded_chain():
     expected = rate_reference_with_quitting(sim.grid)
     # each patient's state at t is an independent Bernoulli draw with the mixture
     # probability (its own uptake and quitting draws), so the binomial SE applies
-    simulated = np.stack([(sim.states == s).mean(axis=0) for s in range(3)], axis=1)
-    se = np.sqrt(expected * (1 - expected) / n)
-    z = np.where(se > 0, (simulated - expected) / np.where(se > 0, se, 1), 0)
-    assert np.abs(z).max() < Z
+    assert np.abs(binomial_z(sim, expected, n)).max() < Z
     result = compare(sim)  # the per-patient counterpart, given the drawn windows
     assert result.exact and result.agrees, result.verdict
 
 
 # ---------------------------------------------------------------- costs on treatment
 
-SURVIVAL_MODEL = """
-[time]
-unit = "years"
-horizon = 12
-[start]
-shares = { alive = 1.0 }
-[outcomes]
-discount_costs = 0.035
-discount_effects = 0.015
-[[states]]
-name = "alive"
-[[states]]
-name = "dead"
-absorbing = true
-[[transitions]]
-from = "alive"
-to = "dead"
-rate = 0.1
-"""
+SURVIVAL_MODEL = scenario_text(
+    horizon(12), start(alive=1.0), outcomes(discount_costs=0.035, discount_effects=0.015),
+    state("alive"), state("dead", absorbing=True), rate("alive", "dead", 0.1), title=TITLE)
 MU, COST, UTILITY = 0.1, 1500.0, 0.2
 
 
@@ -521,31 +425,14 @@ def test_discounted_cost_and_utility_on_treatment_have_the_closed_form(start, st
         assert exact[measure][0] == pytest.approx(value, rel=1e-9), measure
     values = outcome_values(model, simulate(model, cohort_patients(4000), SEED).exposure)
     for measure, value in expected.items():
-        x = values[measure]
-        z = (x.mean() - value) / (x.std(ddof=1) / math.sqrt(len(x)))
-        assert abs(z) < Z, (measure, x.mean(), value, z)
+        assert_mean_agrees(values[measure], value, measure)
 
 
 # ------------------------------------------------ a strategy that changes nothing visible
 
-NO_OP_RATE = RATE_MODEL.replace("""rate = 0.3
-""", """hazard = { family = "weibull", shape = 1.5, scale = 3 }
-""") + """
-[population]
-size = 500
-[[population.attributes]]
-name = "marker"
-distribution = "yesno"
-prevalence = 0.5
-"""
-NO_OP_CYCLE = CYCLE_MODEL + """
-[population]
-size = 500
-[[population.attributes]]
-name = "marker"
-distribution = "yesno"
-prevalence = 0.5
-"""
+MARKER = population(500, attribute("marker", "yesno", prevalence=0.5))
+NO_OP_RATE = rate_model(MARKER, hazard=dict(family="weibull", shape=1.5, scale=3))
+NO_OP_CYCLE = cycle_model(MARKER)
 
 
 @pytest.mark.parametrize("text", [NO_OP_RATE, NO_OP_CYCLE], ids=["rate", "cycle"])

@@ -19,6 +19,7 @@ from microsim import economics
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import DistributionSpec, ParameterSpec
 from microsim.uncertainty import one_way, parameter_draws, run_draws, summarise_draws
+from support import assert_moments_match
 
 SEED = 20261201
 N_LARGE = 20_000
@@ -67,16 +68,6 @@ def logging_model(draw, values, *, log_dir, stop_at=None, interrupt=StopHere):
 def calls(log_dir):
     """Draw index of every call logged so far, sorted."""
     return sorted(int(p.name.split("-")[0]) for p in log_dir.iterdir())
-
-
-def assert_moments_match(sample, mean, variance):
-    n = sample.size
-    centred = sample - sample.mean()
-    sample_variance = centred.var(ddof=1)
-    z_mean = (sample.mean() - mean) / math.sqrt(sample_variance / n)
-    z_variance = (sample_variance - variance) / math.sqrt(((centred**4).mean() - sample_variance**2) / n)
-    assert abs(z_mean) < 4, z_mean
-    assert abs(z_variance) < 4, z_variance
 
 
 # --- parameter draws ---------------------------------------------------------------------
