@@ -21,6 +21,7 @@ from microsim.binding import bind
 from microsim.effects import cohort_multipliers
 from microsim.engines import events
 from microsim.engines.histories import Histories
+from microsim.engines.plan import paused_gc
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulate import cohort_patients, simulate
 
@@ -70,7 +71,8 @@ def bare_single(n: int) -> float:
 
     env.process(ticker())
     started = time.perf_counter()
-    env.run()
+    with paused_gc():  # the same conditions as the engines
+        env.run()
     return n / (time.perf_counter() - started)
 
 
@@ -88,11 +90,12 @@ def bare_replay(h: Histories) -> float:
             yield timeout(dt)
 
     started = time.perf_counter()
-    for lo in range(0, h.n_patients, events.GROUP):
-        env = simpy.Environment()
-        for waits in delays[lo:lo + events.GROUP]:
-            env.process(replay(waits, env.timeout))
-        env.run()
+    with paused_gc():  # the same conditions as the engines
+        for lo in range(0, h.n_patients, events.GROUP):
+            env = simpy.Environment()
+            for waits in delays[lo:lo + events.GROUP]:
+                env.process(replay(waits, env.timeout))
+            env.run()
     return n / (time.perf_counter() - started)
 
 

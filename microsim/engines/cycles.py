@@ -145,5 +145,6 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
 
     for b in range(len(patient_ids)):
         env.process(patient(b))
-    env.run()
+    with plan.paused_gc():
+        env.run()
     return record.histories()

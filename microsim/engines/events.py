@@ -188,9 +188,10 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     # Patients run in small groups, each in its own environment: the event queue stays
     # short (a heap of thousands of patients costs more than the model's arithmetic), and
     # results cannot depend on it because every draw is keyed by the patient.
-    for lo in range(0, len(patient_ids), GROUP):
-        env = simpy.Environment()
-        for b in range(lo, min(lo + GROUP, len(patient_ids))):
-            env.process(patient(b, env.timeout))
-        env.run()
+    with plan.paused_gc():
+        for lo in range(0, len(patient_ids), GROUP):
+            env = simpy.Environment()
+            for b in range(lo, min(lo + GROUP, len(patient_ids))):
+                env.process(patient(b, env.timeout))
+            env.run()
     return record.histories()

@@ -6,6 +6,8 @@ the arithmetic of a transition.
 """
 from __future__ import annotations
 
+import gc
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -128,3 +130,17 @@ def initial_memory(model: BoundModel, tracked: tuple[str, ...], state: int):
     counts = [int(t == name) for t in tracked]
     last = [0.0 if t == name else None for t in tracked]
     return counts, last
+
+
+@contextmanager
+def paused_gc():
+    """Pause Python's cyclic garbage collector while a batch runs: the loop allocates
+    many small objects (events, records) and would otherwise trigger collections that
+    walk every live object again and again; the collector catches up afterwards."""
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if enabled:
+            gc.enable()
