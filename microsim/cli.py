@@ -113,7 +113,8 @@ def command_validate(args) -> int:
     path = Path(args.scenario)
     target = out_dir(args, path)
     check = validate(path, args.patients, args.seed, args.strategy,
-                     histories=target / "histories.parquet" if args.histories else None)
+                     histories=target / "histories.parquet" if args.histories else None,
+                     engine=args.engine)
     c = check.comparison
     print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
           f"patients, seed {check.simulation.seed}\nCounterpart: {c.counterpart}")
@@ -182,6 +183,12 @@ def build_parser() -> argparse.ArgumentParser:
         sub.add_argument("--patients", type=int, help="population size (default: the scenario's)")
         sub.add_argument("--seed", type=int, help="run seed (default: the scenario's)")
 
+    def engine_option(sub):
+        sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
+                         help="auto (default): vectorised for cycle models, SimPy events for "
+                              "rate models; simpy: the SimPy engine for either (cycle models: "
+                              "identical histories, about ten times slower)")
+
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")
     trace.add_argument("--rows", type=int, default=30, help="rows of the trace to print (default 30)")
@@ -190,6 +197,7 @@ def build_parser() -> argparse.ArgumentParser:
     validate = add("validate", command_validate, "Simulate the model and compare it, state by "
                    "state and time by time, with its analytic counterpart; say if they agree.")
     population_options(validate)
+    engine_option(validate)
     validate.add_argument("--strategy", help="validate this strategy instead of the model as written")
     validate.add_argument("--histories", action="store_true",
                           help="also write every patient's history as histories.parquet")
@@ -201,6 +209,7 @@ def build_parser() -> argparse.ArgumentParser:
               "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
               "subgroups, and PSA when asked.")
     population_options(run)
+    engine_option(run)
     run.add_argument("--json", action="store_true", help="print a machine-readable JSON summary")
     run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
     run.add_argument("--draws", type=int, help="PSA outer draws (default: the scenario's)")

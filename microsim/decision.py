@@ -31,13 +31,13 @@ def strategy_names(scenario: Scenario) -> list[str]:
 
 
 def run_strategies(scenario: Scenario, patients: pd.DataFrame, seed: int,
-                   values: dict | None = None) -> dict[str, Simulation]:
+                   values: dict | None = None, engine: str = "auto") -> dict[str, Simulation]:
     """Simulate every strategy on the same patients with the same seed."""
     sims = {}
     for name in strategy_names(scenario):
         model = bind(scenario, values, strategy=name)
         sims[name] = simulate(model, patients, seed, batch_size=scenario.simulation.batch_size,
-                              grid=report_grid(model, scenario.simulation.grid))
+                              grid=report_grid(model, scenario.simulation.grid), engine=engine)
     return sims
 
 

@@ -20,8 +20,10 @@ from microsim.binding import BoundModel
 from microsim.effects import Multipliers
 from microsim.engines.cycles import simulate_cycles
 from microsim.engines.events import simulate_events
+from microsim.engines.vectorised import simulate_cycles_vectorised
 from microsim.outcomes import Exposure
 from microsim.population import PATIENT
+from microsim.scenario.errors import ScenarioError
 from microsim.strategies import patient_multipliers
 
 
@@ -50,13 +52,30 @@ def report_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
     return np.linspace(0.0, end, int(round(end / step)) + 1)
 
 
+ENGINES = ("auto", "simpy", "vectorised")
+
+
+def choose_engine(model: BoundModel, engine: str):
+    """auto: the vectorised cycle engine for cycle models (its histories are identical to
+    the SimPy cycle engine's, draw for draw, and it is about ten times faster), the SimPy
+    event engine for rate models; simpy: the SimPy engine of the model's kind."""
+    if engine not in ENGINES:
+        raise ScenarioError("--engine", f"must be one of {', '.join(ENGINES)}, got {engine!r}")
+    if not model.discrete:
+        if engine == "vectorised":
+            raise ScenarioError("--engine", "the vectorised engine runs cycle models; this is a "
+                                "rate model (use auto or simpy)")
+        return simulate_events
+    return simulate_cycles if engine == "simpy" else simulate_cycles_vectorised
+
+
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,
              grid: np.ndarray | None = None, histories: Path | None = None,
-             mult: Multipliers | None = None) -> Simulation:
+             mult: Multipliers | None = None, engine: str = "auto") -> Simulation:
     """Simulate every patient (rows of `patients`, ids in column 'patient')."""
     grid = report_grid(model) if grid is None else grid
     mult = patient_multipliers(model, patients, seed) if mult is None else mult.repeated(len(patients))
-    engine = simulate_cycles if model.discrete else simulate_events
+    engine = choose_engine(model, engine)
     ids = patients[PATIENT].to_numpy()
     states, exposures, transitions = [], [], 0
     writer = None

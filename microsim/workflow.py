@@ -41,7 +41,8 @@ class Validation:
 
 
 def validate(path: Path, patients: int | None = None, seed: int | None = None,
-             strategy: str | None = None, histories: Path | None = None) -> Validation:
+             strategy: str | None = None, histories: Path | None = None,
+             engine: str = "auto") -> Validation:
     """Simulate the scenario (or one strategy) and compare it with its analytic counterpart."""
     scenario = read_scenario(path)
     if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
@@ -51,7 +52,8 @@ def validate(path: Path, patients: int | None = None, seed: int | None = None,
     model = bind(scenario, strategy=strategy)
     sim = simulate(model, patients_for(scenario, patients, seed), seed,
                    batch_size=scenario.simulation.batch_size,
-                   grid=report_grid(model, scenario.simulation.grid), histories=histories)
+                   grid=report_grid(model, scenario.simulation.grid), histories=histories,
+                   engine=engine)
     return Validation(sim, compare(sim))
 
 
@@ -67,20 +69,21 @@ class MainResult:
 
 
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
-             psa: dict | None = None) -> MainResult:
+             psa: dict | None = None, engine: str = "auto") -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
     the analytic counterpart, evaluated, and with PSA when `psa` settings are given."""
     scenario = read_scenario(path)
     seed = scenario.simulation.seed if seed is None else seed
     people = patients_for(scenario, patients, seed)
     if scenario.strategies:
-        sims = run_strategies(scenario, people, seed)
+        sims = run_strategies(scenario, people, seed, engine=engine)
         decision = decide(scenario, sims)
     else:
         model = bind(scenario)
         sims = {"as written": simulate(model, people, seed,
                                        batch_size=scenario.simulation.batch_size,
-                                       grid=report_grid(model, scenario.simulation.grid))}
+                                       grid=report_grid(model, scenario.simulation.grid),
+                                       engine=engine)}
         decision = None
     validations = {name: compare(sim) for name, sim in sims.items()}
     psa_result = None
@@ -220,7 +223,7 @@ def run_scenario(args) -> int:
         psa = {"run_dir": Path(args.out) / path.stem / "psa", "draws": args.draws,
                "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
                "address": args.address, "progress": not args.json}
-    result = run_main(path, args.patients, args.seed, psa)
+    result = run_main(path, args.patients, args.seed, psa, args.engine)
     data = summary(result)
     if args.json:
         print(json.dumps(data, indent=2))

@@ -34,7 +34,7 @@ class _Batch:
         tracked = plan.tracked_names(model)
         self.cycle = model.cycle
         self.bumps = plan.bumps(model, tracked)
-        self.static = np.asarray(plan.static_multipliers(mult), float).reshape(mult.size, -1)
+        self.static = np.exp(mult.log_static)  # the values of plan.static_multipliers
         self.slopes = mult.age_slope.tolist()
         self.age0 = np.zeros(mult.size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
         window = mult.window

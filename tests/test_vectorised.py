@@ -1,0 +1,199 @@
+"""The vectorised cycle engine against the SimPy cycle engine: for the same model,
+multipliers, patient ids and seed the histories must be identical, array for array and
+bit for bit (the reference is `microsim.engines.cycles.simulate_cycles`, whose rules are
+checked against the analytic chains in test_engines.py). Each model also checks that
+every one of its risks actually happens, so an equality of empty histories cannot pass."""
+import dataclasses
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from microsim.binding import bind
+from microsim.engines.cycles import simulate_cycles
+from microsim.engines.vectorised import simulate_cycles_vectorised
+from microsim.population import PATIENT, draw_population
+from microsim.scenario import parse_scenario
+from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, StrategySpec,
+                                    TransitionSpec)
+from microsim.strategies import patient_multipliers
+from support import (after, attribute, effect, event, horizon, population, probability, start,
+                     state, scenario_text, table)
+
+COLUMNS = ("patient", "time", "source", "target", "risk")
+IDS = np.arange(1500) * 3 + 7  # not 0..n-1: draws are keyed by id, not by row
+
+HOMOGENEOUS = scenario_text(
+    horizon(12, cycle=1), start(well=0.8, sick=0.2),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.1), probability("well", "dead", 0.02),
+    probability("well", "well", "remainder"),
+    probability("sick", "well", 0.05), probability("sick", "dead", 0.2),
+    probability("sick", "sick", "remainder"),
+    event("flare", ["well", "sick"], probability=0.15))
+
+PEOPLE = population(
+    1000,
+    attribute("age", "normal", mean=60, sd=9, lower=40, upper=90),
+    attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
+    attribute("diabetes", "yesno", prevalence=0.3),
+    attribute("biomarker", "lognormal", meanlog=-0.5, sdlog=0.5))
+
+COVARIATES = scenario_text(
+    horizon(15, cycle=1), start(well=0.6, sick=0.4),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.12,
+                effects=[effect("diabetes", 1.6), effect("biomarker", 1.8, centre=0.8),
+                         effect("sex", 1.2, level="male"), effect("age", 1.04, centre=60)]),
+    probability("well", "dead", 0.03, effects=[effect("age", 1.09, centre=60)]),
+    probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.15, effects=[effect("diabetes", 1.3)]),
+    probability("sick", "sick", "remainder"),
+    PEOPLE)
+
+TABLES = scenario_text(  # half-year cycles: times and times in state are not whole numbers
+    horizon(15, cycle=0.5), start(healthy=1),
+    state("healthy"), state("sick"), state("dead", absorbing=True),
+    probability("healthy", "sick", 0.08), probability("healthy", "dead", "death_by_age"),
+    probability("healthy", "healthy", "remainder"),
+    probability("sick", "dead", "die_by_stay"), probability("sick", "healthy", "recover_by_stay"),
+    probability("sick", "sick", "remainder"),
+    event("check", ["healthy", "sick"], probability="checks_by_time"),
+    table("death_by_age", by="age", starts=[0, 60, 70, 80], values=[0.004, 0.01, 0.03, 0.08]),
+    table("die_by_stay", by="time_in_state", starts=[0, 1, 2.5], values=[0.2, 0.1, 0.05]),
+    table("recover_by_stay", by="time_in_state", starts=[0, 1, 2.5], values=[0.0, 0.15, 0.3]),
+    table("checks_by_time", by="time", starts=[0, 2, 7.5], values=[0.5, 0.2, 0.1]),
+    population(1000, attribute("age", "normal", mean=62, sd=10, lower=40, upper=95)))
+
+MEMORY = scenario_text(
+    # cycles of 0.1: differences of cycle times are not whole numbers of cycles in floats
+    # (0.6 - 0.3 < 0.3), the case the 'within' tolerance is there for
+    horizon(3, cycle=0.1), start(well=1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.04, memory=[after("flare", multipliers=[1, 1.5, 2.5])]),
+    probability("well", "dead", 0.01, memory=[after("flare", within=0.3, multiplier=3)]),
+    probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.05, memory=[after("sick", multipliers=[1, 2])]),
+    probability("sick", "well", 0.1), probability("sick", "sick", "remainder"),
+    event("flare", ["well", "sick"], probability=0.1,
+          memory=[after("flare", within=0.2, multiplier=0.5)]))
+
+ROWS = scenario_text(
+    # 'a' has no remainder: diabetics' lower exit probability leaves room to stay put
+    # without a named transition; 'b' sends its remainder to 'dead'; 'c' has no way out
+    horizon(10, cycle=1), start(a=0.5, b=0.3, c=0.2),
+    state("a"), state("b"), state("c"), state("dead", absorbing=True),
+    probability("a", "b", 0.2, effects=[effect("diabetes", 0.5)]),
+    probability("a", "a", 0.7), probability("a", "dead", 0.1),
+    probability("b", "c", 0.1), probability("b", "b", 0.6), probability("b", "dead", "remainder"),
+    population(1000, attribute("diabetes", "yesno", prevalence=0.4)))
+
+TREATED = scenario_text(
+    horizon(12, cycle=1), start(well=1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.15, name="progress", effects=[effect("biomarker", 1.8, centre=0.8)]),
+    probability("well", "dead", 0.02), probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.1), probability("sick", "sick", "remainder"),
+    event("flare", ["well", "sick"], probability=0.2),
+    PEOPLE)
+
+TREATMENT = StrategySpec(
+    name="treat", label="Treat", uptake=0.7, start=1.0, stop=8.0, discontinuation=0.1,
+    eligible=EligibilitySpec(all=(ConditionSpec("biomarker", "at_least", 0.5),)),
+    changes=(ChangeSpec(risk="progress", hazard_ratio=0.5), ChangeSpec(risk="flare", hazard_ratio=0.7)),
+    transitions=(TransitionSpec("sick", "well", "cure", probability=0.2),), while_treated=(True,))
+USUAL_CARE = StrategySpec(name="usual_care", label="Usual care", comparator=True)
+
+
+def treated_model():
+    scenario = dataclasses.replace(parse_scenario(TREATED), strategies=(USUAL_CARE, TREATMENT))
+    return bind(scenario, strategy="treat")
+
+
+def both_engines(model, ids, seed):
+    """Histories of the SimPy and the vectorised engine, and the multipliers they read."""
+    spec = model.scenario.population
+    patients = (pd.DataFrame({PATIENT: ids}) if spec is None
+                else draw_population(spec, seed, ids))
+    mult = patient_multipliers(model, patients, seed)
+    return (simulate_cycles(model, mult, ids, seed),
+            simulate_cycles_vectorised(model, mult, ids, seed), mult)
+
+
+def assert_identical(expected, got):
+    assert got.n_patients == expected.n_patients
+    for name in COLUMNS:
+        a, b = getattr(expected, name), getattr(got, name)
+        assert a.dtype == b.dtype, name
+        assert np.array_equal(a, b), (name, np.flatnonzero(a != b)[:5] if a.shape == b.shape
+                                      else (a.shape, b.shape))
+
+
+def assert_every_risk_happens(model, histories):
+    happened = set(histories.risk.tolist())
+    for r, risk in enumerate(model.risks):
+        if risk.source != risk.target:
+            assert r in happened, risk.name
+
+
+@pytest.mark.parametrize("text", [HOMOGENEOUS, COVARIATES, TABLES, MEMORY, ROWS],
+                         ids=["homogeneous", "covariates", "tables", "memory", "rows"])
+def test_histories_equal_the_simpy_cycle_engine(text):
+    model = bind(parse_scenario(text))
+    expected, got, _ = both_engines(model, IDS, 20260511)
+    assert_identical(expected, got)
+    assert_every_risk_happens(model, got)
+
+
+def test_treatment_window_histories_equal_the_simpy_cycle_engine():
+    model = treated_model()
+    expected, got, mult = both_engines(model, IDS, 99)
+    window = mult.window
+    treated = np.isfinite(window.on)
+    # the window matters: some treated, some not, some stop early (discontinuation)
+    assert 0 < treated.sum() < len(IDS)
+    assert np.any(treated & (window.off < 8.0))
+    assert_identical(expected, got)
+    assert_every_risk_happens(model, got)
+
+
+def test_staying_put_is_not_recorded():
+    # an explicit a->a, b->b, an implicit stay in 'a' (diabetics) and a state with no way
+    # out ('c'): none of them leaves a record
+    model = bind(parse_scenario(ROWS))
+    _, got, _ = both_engines(model, IDS, 5)
+    moves = got.source >= 0
+    assert not np.any(got.source[moves] == got.target[moves])
+    assert not np.any(got.source == model.states.index("c"))
+
+
+def test_a_patient_history_does_not_depend_on_the_batch():
+    # design rule: draws are a function of (seed, patient id, purpose, occurrence)
+    model = bind(parse_scenario(MEMORY))
+    _, whole, _ = both_engines(model, IDS, 8)
+    part_ids = IDS[::7]
+    _, part, _ = both_engines(model, part_ids, 8)
+    rows = np.arange(len(IDS))[::7]
+    keep = np.isin(whole.patient, rows)
+    assert np.array_equal(np.searchsorted(rows, whole.patient[keep]), part.patient)
+    for name in COLUMNS[1:]:
+        assert np.array_equal(getattr(whole, name)[keep], getattr(part, name))
+
+
+def test_demo_scenario_histories_equal_the_simpy_cycle_engine():
+    scenario = parse_scenario(Path(__file__).parents[1].joinpath(
+        "scenarios", "lakemoor_kidney.toml").read_text())
+    model = bind(scenario, strategy="protein_lowering")
+    expected, got, _ = both_engines(model, np.arange(600), 20261201)
+    assert_identical(expected, got)
+
+
+def test_float_power_is_pythons_power():
+    # Python's float ** calls the C library's pow; the engine relies on np.float_power
+    # doing the same element by element (reference: Python's own arithmetic)
+    rng = np.random.default_rng(3)
+    base, exponent = rng.random(20_000), rng.random(20_000) * 4
+    expected = [math.pow(b, m) for b, m in zip(base.tolist(), exponent.tolist())]
+    assert np.float_power(base, exponent).tolist() == expected
