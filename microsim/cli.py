@@ -17,6 +17,7 @@ from microsim import CAUTION
 from microsim.scenario import ScenarioError, read_scenario
 
 EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
 
 
 def out_dir(args, scenario_path: Path) -> Path:
@@ -250,3 +251,7 @@ def main(argv: list[str] | None = None) -> int:
     except ScenarioError as error:
         print(f"error: {error}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("interrupted: finished PSA draws are kept; run the same command again to resume",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED

@@ -8,8 +8,8 @@ cluster needs no shared file system.
 """
 from __future__ import annotations
 
+import multiprocessing
 import signal
-from concurrent.futures import ProcessPoolExecutor, as_completed
 from typing import Callable, Iterator, Sequence
 
 import numpy as np
@@ -53,18 +53,17 @@ def _start_worker(evaluate: Evaluate) -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
-def _evaluate_in_worker(draw: int, values: dict[str, float]) -> tuple[int, pd.DataFrame]:
+def _evaluate_in_worker(job: Job) -> tuple[int, pd.DataFrame]:
+    draw, values = job
     return evaluate_draw(_worker_evaluate, draw, values)
 
 
 def process_pool(evaluate: Evaluate, jobs: Sequence[Job], workers: int) -> Finished:
-    pool = ProcessPoolExecutor(max_workers=workers, initializer=_start_worker, initargs=(evaluate,))
-    try:
-        futures = [pool.submit(_evaluate_in_worker, draw, values) for draw, values in jobs]
-        for future in as_completed(futures):
-            yield future.result()
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)  # draws already running finish first
+    """A pool of `workers` processes; when the loop stops early (Ctrl-C, an error, or the
+    consumer closing this iterator) the pool is terminated at once: draws in flight are
+    simply evaluated again on resume, and nothing is left waiting on a worker."""
+    with multiprocessing.Pool(workers, initializer=_start_worker, initargs=(evaluate,)) as pool:
+        yield from pool.imap_unordered(_evaluate_in_worker, jobs)
 
 
 def import_dask():
