@@ -1,6 +1,5 @@
 """The README's Python example runs as written (examples in the docs are checked, as
 SimPy's documentation does with its own examples)."""
-import os
 import re
 from pathlib import Path
 
