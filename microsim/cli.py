@@ -15,6 +15,7 @@ import pandas as pd
 
 from microsim import CAUTION
 from microsim.scenario import ScenarioError, read_scenario
+from microsim.scenario.fields import MAX_PATIENTS
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
@@ -235,8 +236,9 @@ def check_numbers(args) -> None:
     """Command-line numbers are input too: refuse them like a bad field, in one line."""
     for name, (low, what) in WHOLE_NUMBERS.items():
         value = getattr(args, name, None)
-        if value is not None and (value < low or (name == "seed" and value >= 2**64)):
-            bound = f">= {low}" if name != "seed" else "in [0, 2**64)"
+        high = 2**64 - 1 if name == "seed" else MAX_PATIENTS
+        if value is not None and not low <= value <= high:
+            bound = f"from {low} to {high}"
             raise ScenarioError(f"--{name.replace('_', '-')}",
                                 f"{what} must be a whole number {bound}, got {value}")
 

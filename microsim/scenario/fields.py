@@ -16,6 +16,8 @@ from typing import Any, Iterable, NoReturn
 from .errors import ScenarioError
 from .spec import REMAINDER, Ref
 
+MAX_PATIENTS = 100_000_000  # patients a run may ask for; beyond, memory runs out first
+
 IDENTIFIER = re.compile(r"[a-z][a-z0-9_]*")
 TOLERANCE = 1e-9  # for sums that must be 1, whole numbers of cycles, matrix symmetry
 AGE = "age"  # the attribute, clock and table axis of attained age
@@ -198,7 +200,8 @@ class Node:
             self.fail(key, problem)
         return x
 
-    def whole(self, key: str, default: Any = REQUIRED, minimum: int = 0) -> int:
+    def whole(self, key: str, default: Any = REQUIRED, minimum: int = 0,
+              maximum: int | None = None) -> int:
         if key not in self.data:
             return self.raw(key, default, "a whole number")
         value = self.data[key]
@@ -208,6 +211,8 @@ class Node:
         n = int(value)
         if n < minimum:
             self.fail(key, f"must be at least {minimum}, got {n}")
+        if maximum is not None and n > maximum:
+            self.fail(key, f"must be at most {maximum}, got {n}")
         return n
 
     def text(self, key: str, default: Any = REQUIRED, choices: tuple[str, ...] | None = None,

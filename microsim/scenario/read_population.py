@@ -6,8 +6,8 @@ import math
 from pathlib import Path
 
 from .correlation import read_correlation_matrix
-from .fields import (AGE, ANY, POSITIVE, PROBABILITY, REQUIRED, SHARE, TOLERANCE, Node,
-                     did_you_mean, listing, show)
+from .fields import (AGE, ANY, MAX_PATIENTS, POSITIVE, PROBABILITY, REQUIRED, SHARE,
+                     TOLERANCE, Node, did_you_mean, listing, show)
 from .spec import AttributeSpec, DerivedSpec, PopulationSpec
 
 POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
@@ -27,7 +27,7 @@ def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
     if node is None:
         return None
     node.only(POPULATION_KEYS)
-    size = node.whole("size", minimum=1)
+    size = node.whole("size", minimum=1, maximum=MAX_PATIENTS)
     if node.has("file"):
         for key in ("attributes", "correlation"):
             if node.has(key):

@@ -5,7 +5,7 @@ from __future__ import annotations
 from .checks import undefined
 from .correlation import read_correlation_matrix
 from .errors import ScenarioError
-from .fields import POSITIVE, Node, listing, show
+from .fields import MAX_PATIENTS, POSITIVE, Node, listing, show
 from .spec import Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
@@ -31,8 +31,8 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
                                  "one alpha per parameter")
         dirichlets.append((members, alphas))
     return UncertaintySpec(
-        draws=node.whole("draws", defaults.draws, minimum=1),
-        patients=node.whole("patients", None, minimum=1),
+        draws=node.whole("draws", defaults.draws, minimum=1, maximum=1_000_000),
+        patients=node.whole("patients", None, minimum=1, maximum=MAX_PATIENTS),
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets))
 
 

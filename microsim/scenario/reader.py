@@ -191,6 +191,6 @@ def read_simulation(node: Node | None) -> SimulationSpec:
         return SimulationSpec()
     defaults = SimulationSpec()
     return SimulationSpec(
-        seed=node.whole("seed", defaults.seed, minimum=0),
+        seed=node.whole("seed", defaults.seed, minimum=0, maximum=2**64 - 1),
         batch_size=node.whole("batch_size", defaults.batch_size, minimum=1),
         grid=node.number("grid", None, role=POSITIVE))
