@@ -36,7 +36,8 @@ def write(args, path: Path, tables: dict, started: float, documents: dict | None
     target = out_dir(args, path)
     write_run(target, tables, manifest(path, started, args.argv, **extra), documents=documents)
     if not quiet:
-        print(f"\nwrote {len(tables)} tables (CSV and Parquet) and manifest.json to {target}/")
+        count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
+        print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {target}/")
 
 
 def command_check(args) -> int:
@@ -58,6 +59,15 @@ def begin(args) -> tuple[float, Path, object]:
     return started, path, read_scenario(path)
 
 
+def cohort_note(scenario) -> str:
+    """Say what the cohort commands' single cohort is when patients differ."""
+    if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events):
+        return ("\nNote: one uniform cohort, every patient given the population's mean "
+                "attributes (the 'average patient'); `microsim validate` or `run` simulates "
+                "the heterogeneous population and shows how far this cohort is from it.")
+    return ""
+
+
 def command_trace(args) -> int:
     """The analytic cohort trace."""
     from microsim.api import cohort_trace
@@ -68,7 +78,7 @@ def command_trace(args) -> int:
     show(f"Cohort trace — {scenario.title} (share of the cohort in each state)",
          wide.reset_index(), rows=args.rows)
     write(args, path, {"cohort_trace": trace}, started)
-    print(f"\n{CAUTION}")
+    print(f"{cohort_note(scenario)}\n{CAUTION}")
     return 0
 
 
@@ -98,7 +108,7 @@ def command_summary(args) -> int:
          f"correction {model.correction})", outcomes)
     tables["expected_outcomes"] = outcomes
     write(args, path, tables, started)
-    print(f"\n{CAUTION}")
+    print(f"{cohort_note(scenario)}\n{CAUTION}")
     return 0
 
 
