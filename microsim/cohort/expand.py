@@ -13,6 +13,7 @@ from __future__ import annotations
 import itertools
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -51,13 +52,9 @@ class Expansion:
             return self._lookup[(state, 0, (0,) * len(self.counters))]
         return self._lookup[(state, duration, counts)]
 
-    @property
+    @cached_property
     def _lookup(self) -> dict:
-        cached = self.__dict__.get("_lookup_cache")
-        if cached is None:
-            cached = {key: e for e, key in enumerate(self.expanded)}
-            object.__setattr__(self, "_lookup_cache", cached)
-        return cached
+        return {key: e for e, key in enumerate(self.expanded)}
 
     def collapse(self) -> np.ndarray:
         """(E, S) 0/1 matrix: expanded trace @ collapse() -> trace over model states."""
