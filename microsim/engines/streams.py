@@ -41,14 +41,18 @@ _PURPOSE_SALT = b"microsim-purpose"
 
 
 def _mulhilo(a: np.ndarray, multiplier: int) -> tuple[np.ndarray, np.ndarray]:
-    """High and low words of the 128-bit product a * multiplier, from 32-bit halves."""
+    """High and low words of the 128-bit product a * multiplier, from 32-bit halves
+    (the multiply-high of Warren 2012, "Hacker's Delight", 2nd ed., section 8-2); no
+    intermediate sum can overflow 64 bits."""
     m_lo, m_hi = np.uint64(multiplier & 0xFFFFFFFF), np.uint64(multiplier >> 32)
     a_lo, a_hi = a & _MASK32, a >> _SHIFT32
-    lo_lo = a_lo * m_lo
-    lo_hi = a_lo * m_hi
-    hi_lo = a_hi * m_lo
-    middle = (lo_lo >> _SHIFT32) + (lo_hi & _MASK32) + (hi_lo & _MASK32)
-    high = a_hi * m_hi + (lo_hi >> _SHIFT32) + (hi_lo >> _SHIFT32) + (middle >> _SHIFT32)
+    t = a_hi * m_lo
+    t += (a_lo * m_lo) >> _SHIFT32
+    w = t & _MASK32
+    w += a_lo * m_hi
+    high = a_hi * m_hi
+    high += t >> _SHIFT32
+    high += w >> _SHIFT32
     return high, a * np.uint64(multiplier)
 
 
