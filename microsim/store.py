@@ -17,6 +17,7 @@ import time
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
+from typing import Callable
 
 import pandas as pd
 
@@ -53,6 +54,20 @@ def manifest(scenario_path: Path | None, started: float, command: list[str] | No
     }
     record.update(extra)
     return record
+
+
+def write_atomically(target: Path, write: Callable[[Path], None]) -> None:
+    """One file, atomically: let `write` fill a temporary file beside `target`, then
+    rename it into place (what the PSA folder uses for each draw)."""
+    handle, temporary = tempfile.mkstemp(prefix=f".{target.name}-", suffix=".tmp",
+                                         dir=target.parent)
+    os.close(handle)
+    try:
+        write(Path(temporary))
+        os.replace(temporary, target)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
 
 
 def write_run(out_dir: Path, tables: dict[str, pd.DataFrame], record: dict,

@@ -17,7 +17,7 @@ from microsim import CAUTION
 from microsim.api import cohort_trace
 from microsim.binding import bind
 from microsim.compare import Comparison, compare
-from microsim.decision import Decision, decide, run_strategies, strategy_names
+from microsim.decision import Decision, decide, run_strategies
 from microsim.population import draw_population
 from microsim.psa import PsaResult, parameter_uncertainty
 from microsim.scenario import Scenario, ScenarioError, read_scenario

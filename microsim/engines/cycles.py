@@ -57,7 +57,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                     seed: int) -> Histories:
     """Run one batch of patients through the cycle model with SimPy."""
     names = (MOVE, *plan.risk_purposes(model))
-    draws = plan.BatchDraws.make(seed, patient_ids, names, max(model.n_cycles, 1), single=())
+    draws = streams.block(seed, patient_ids, names, max(model.n_cycles, 1)).tolist()  # [b][p][cycle]
     plans = state_plans(model, names)
     tracked = plan.tracked_names(model)
     bumps = plan.bumps(model, tracked)
@@ -111,7 +111,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             last[index] = t
 
     def patient(b: int):
-        rows, static, age0 = draws.rows[b], statics[b], ages[b]
+        rows, static, age0 = draws[b], statics[b], ages[b]
         on, off = windows[b]
         state, duration = starts[b], 0
         counts, last = plan.initial_memory(model, tracked, state)

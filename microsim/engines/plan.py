@@ -1,4 +1,4 @@
-"""What both SimPy engines precompute for a batch: per-state risk plans, memory, draws.
+"""What the engines precompute for a batch: purposes, memory, start states, multipliers.
 
 Everything a patient process reads in its loop is turned into plain Python lists and
 tuples here, once per batch, because attribute lookups and numpy scalars cost more than
@@ -14,7 +14,6 @@ import numpy as np
 
 from microsim.binding import BoundModel
 from microsim.effects import Multipliers
-from microsim.engines import streams
 
 CLOCKS = {"since_start": 0, "since_entry": 1, "age": 2}
 START_PURPOSE = "start"
@@ -71,46 +70,6 @@ class RiskView:
                             ("on_factor", on_factor), ("off_factor", off_factor),
                             ("rate", rate)):
             object.__setattr__(self, name, value)
-
-
-@dataclass
-class BatchDraws:
-    """A batch's draws by (patient row, purpose, occurrence), with more on demand.
-
-    Draws are uniforms, or unit exponentials -log(u) of the same uniforms when
-    `exponential` (what inverting a cumulative hazard needs)."""
-    seed: int
-    patient_ids: np.ndarray
-    names: tuple[str, ...]
-    rows: list  # rows[b][p] -> list of draws
-    depth: int
-    exponential: bool = False
-
-    @classmethod
-    def make(cls, seed: int, patient_ids, names, depth: int, exponential: bool = False,
-             single: tuple[str, ...] = (START_PURPOSE,)) -> "BatchDraws":
-        """Precompute `depth` draws of every purpose, one of those in `single`."""
-        ids = np.asarray(patient_ids)
-        many = [n for n in names if n not in single]
-        blocks = {n: streams.uniforms(seed, ids, n)[:, None] for n in names if n in single}
-        if many:
-            block = streams.block(seed, ids, many, depth)
-            blocks.update({n: block[:, k] for k, n in enumerate(many)})
-        ordered = np.concatenate([blocks[n] for n in names], axis=1)
-        flat = (-np.log(ordered) if exponential else ordered).tolist()
-        cuts = np.cumsum([0] + [blocks[n].shape[1] for n in names]).tolist()
-        rows = [[row[a:z] for a, z in zip(cuts, cuts[1:])] for row in flat]
-        return cls(seed, ids, tuple(names), rows, depth, exponential)
-
-    def more(self, b: int, p: int) -> list:
-        """The next 4 x depth draws of one patient's purpose, after all those precomputed
-        so far: the same stream, in order (they are also appended to the row)."""
-        row = self.rows[b][p]
-        u = streams.sequence(self.seed, int(self.patient_ids[b]), self.names[p], len(row),
-                             4 * self.depth)
-        fresh = (-np.log(u) if self.exponential else u).tolist()
-        row.extend(fresh)
-        return fresh
 
 
 def start_states(model: BoundModel, u: np.ndarray) -> list[int]:

@@ -12,31 +12,18 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import tempfile
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import Iterable
 
 import numpy as np
 import pandas as pd
 
 from ..scenario.errors import ScenarioError
+from ..store import write_atomically
 
 RECORD = "psa.json"
 RESULTS = "psa_draws.parquet"
 DRAWS = "draws"
-
-
-def write_atomically(target: Path, write: Callable[[Path], None]) -> None:
-    """Let `write` fill a temporary file beside `target`, then rename it into place."""
-    handle, temporary = tempfile.mkstemp(prefix=f".{target.name}-", suffix=".tmp", dir=target.parent)
-    os.close(handle)
-    try:
-        write(Path(temporary))
-        os.replace(temporary, target)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
 
 
 def write_table(table: pd.DataFrame, target: Path) -> None:
