@@ -14,12 +14,12 @@ CAUTION = ("Caution: microsim supports analysis by qualified people. Its results
 _API = {
     "read_scenario": "microsim.scenario", "parse_scenario": "microsim.scenario",
     "ScenarioError": "microsim.scenario", "bind": "microsim.binding",
-    "cohort_trace": "microsim.api", "expected_outcomes": "microsim.api",
-    "chain_summary": "microsim.api", "analytic": "microsim.cohort.analytic",
-    "draw_population": "microsim.population", "describe_population": "microsim.population",
-    "simulate": "microsim.simulate", "compare": "microsim.compare",
-    "run_strategies": "microsim.decision", "decide": "microsim.decision",
-    "parameter_uncertainty": "microsim.psa", "run_main": "microsim.workflow",
+    "cohort_trace": "microsim.cohort.summaries", "expected_outcomes": "microsim.cohort.summaries",
+    "chain_summary": "microsim.cohort.summaries", "analytic": "microsim.cohort.analytic",
+    "draw_population": "microsim.patients.population", "describe_population": "microsim.patients.population",
+    "simulate": "microsim.simulation", "compare": "microsim.results.comparison",
+    "run_strategies": "microsim.decision.strategies", "decide": "microsim.decision.strategies",
+    "parameter_uncertainty": "microsim.uncertainty.psa", "run_main": "microsim.workflow",
 }
 
 __all__ = ["CAUTION", "__version__", *_API]

@@ -20,12 +20,13 @@ import numpy as np
 import simpy
 
 from microsim.binding import bind
-from microsim.effects import cohort_multipliers
-from microsim.engines import events
+from microsim.patients.multipliers import cohort_multipliers
+from microsim.engines import event_engine
 from microsim.engines.histories import Histories
 from microsim.engines.plan import paused_gc
 from microsim.scenario import parse_scenario, read_scenario
-from microsim.simulate import cohort_patients, simulate
+from microsim.patients.population import cohort_patients
+from microsim.simulation import simulate
 
 DEMO = Path(__file__).resolve().parent.parent / "scenarios" / "lakemoor_kidney.toml"
 
@@ -93,9 +94,9 @@ def bare_replay(h: Histories) -> float:
 
     started = time.perf_counter()
     with paused_gc():  # the same conditions as the engines
-        for lo in range(0, h.n_patients, events.GROUP):
+        for lo in range(0, h.n_patients, event_engine.GROUP):
             env = simpy.Environment()
-            for waits in delays[lo:lo + events.GROUP]:
+            for waits in delays[lo:lo + event_engine.GROUP]:
                 env.process(replay(waits, env.timeout))
             env.run()
     return n / (time.perf_counter() - started)
@@ -109,7 +110,7 @@ def engine_ratio(patients: int, repeats: int) -> dict:
     single, replayed, rates = [], [], []
     for _ in range(repeats):
         started = time.perf_counter()
-        h = events.simulate_events(model, mult, ids, seed=1)
+        h = event_engine.simulate_events(model, mult, ids, seed=1)
         rate = int(np.sum(h.risk >= 0)) / (time.perf_counter() - started)
         rates.append(rate)
         single.append(rate / bare_single(100_000))
@@ -137,8 +138,8 @@ def cycle_ratio(patients: int) -> dict:
 
 def crn_ratio(patients: int) -> dict:
     """SE of incremental QALYs with common random numbers over independent streams."""
-    from microsim.decision import EFFECT, patient_outcomes, run_strategies, strategy_names
-    from microsim.workflow import patients_for
+    from microsim.decision.strategies import EFFECT, patient_outcomes, run_strategies, strategy_names
+    from microsim.patients.population import patients_for
     scenario = read_scenario(DEMO)
     names = strategy_names(scenario)
     if len(names) < 2:

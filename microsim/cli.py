@@ -7,13 +7,13 @@ is written; every command that writes puts its tables and a manifest in
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 import time
 from pathlib import Path
 
-import pandas as pd
-
 from microsim import CAUTION
+from microsim.present import show
 from microsim.scenario import ScenarioError, read_scenario
 from microsim.scenario.fields import MAX_PATIENTS
 
@@ -23,11 +23,6 @@ EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
 
 def out_dir(args, scenario_path: Path) -> Path:
     return Path(args.out) / scenario_path.stem
-
-
-def show(title: str, table: pd.DataFrame, rows: int = 40) -> None:
-    print(f"\n{title}")
-    print(table.to_string(index=False, max_rows=rows, float_format=lambda x: f"{x:.6g}"))
 
 
 def write(args, path: Path, tables: dict, started: float, documents: dict | None = None,
@@ -70,7 +65,7 @@ def cohort_note(scenario) -> str:
 
 def command_trace(args) -> int:
     """The analytic cohort trace."""
-    from microsim.api import cohort_trace
+    from microsim.cohort.summaries import cohort_trace
     from microsim.binding import bind
     started, path, scenario = begin(args)
     trace = cohort_trace(bind(scenario))
@@ -83,7 +78,7 @@ def command_trace(args) -> int:
 
 
 def command_summary(args) -> int:
-    from microsim.api import chain_summary, expected_outcomes
+    from microsim.cohort.summaries import chain_summary, expected_outcomes
     from microsim.binding import bind
     started, path, scenario = begin(args)
     model = bind(scenario)
@@ -114,8 +109,26 @@ def command_summary(args) -> int:
 
 def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
-    from microsim.workflow import run_scenario
-    return run_scenario(args)
+    from microsim.present import print_summary, summary
+    from microsim.workflow import run_main
+    started = time.perf_counter()
+    path = Path(args.scenario)
+    psa = None
+    if args.psa:
+        psa = {"run_dir": Path(args.out) / path.stem / "psa", "draws": args.draws,
+               "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
+               "address": args.address, "progress": not args.json}
+    result = run_main(path, args.patients, args.seed, psa, args.engine)
+    data = summary(result)
+    if args.json:
+        print(json.dumps(data, indent=2))
+    else:
+        print_summary(result)
+    write(args, path, result.tables, started, documents={"summary": data}, quiet=args.json,
+          seed=result.seed, patients=data["patients"])
+    if not args.json:
+        print(f"\n{CAUTION}")
+    return 0
 
 
 def command_validate(args) -> int:
@@ -145,8 +158,8 @@ def command_validate(args) -> int:
 
 
 def command_population(args) -> int:
-    from microsim.population import describe_population
-    from microsim.workflow import patients_for
+    from microsim.patients.population import describe_population
+    from microsim.patients.population import patients_for
     started, path, scenario = begin(args)
     if scenario.population is None:
         raise ScenarioError("population", "the scenario has no population section to preview")
@@ -163,7 +176,7 @@ def command_population(args) -> int:
 
 
 def command_sensitivity(args) -> int:
-    from microsim.sensitivity import tornado
+    from microsim.uncertainty.one_way import tornado
     started, path, scenario = begin(args)
     table, measure = tornado(scenario, args.patients, args.seed)
     show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)

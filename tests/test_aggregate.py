@@ -1,4 +1,4 @@
-"""Aggregators (`microsim.aggregate`) on hand-made histories: states on a grid, time in
+"""Aggregators (`microsim.results.aggregate`) on hand-made histories: states on a grid, time in
 state integrated exactly with continuous discounting, occurrences discounted at their
 time, and the within-cycle rule of cycle models. References: hand integrals of
 e^{-delta t} with delta = ln(1 + d) (standard continuous discounting, common practice),
@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from microsim import aggregate
+from microsim.results import aggregate
 from microsim.engines.histories import START, Histories
 from microsim.markov import cycle_weights
 from support import (event, horizon, model_of, outcomes, probability, rate, scenario_text, start,

@@ -10,10 +10,10 @@ from scipy import integrate
 from scipy.linalg import expm
 
 from microsim.cohort.analytic import analytic
-from microsim.effects import Multipliers
+from microsim.patients.multipliers import Multipliers
 from microsim.markov import cohort_trace, counter_expansion, tunnel_expansion
-from microsim.outcomes import outcome_values
-from microsim.population import draw_population
+from microsim.results.outcomes import outcome_values
+from microsim.patients.population import draw_population
 from support import (after, attribute, effect, event, horizon, model_of, outcomes, population,
                      probability, rate, scenario_text, start, state, table, transition)
 

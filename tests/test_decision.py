@@ -19,14 +19,14 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from microsim import economics
+from microsim.decision import economics
 from microsim.binding import bind
-from microsim.decision import COST, EFFECT, decide, run_strategies
-from microsim.outcomes import outcome_values
-from microsim.population import draw_population
+from microsim.decision.strategies import COST, EFFECT, decide, run_strategies
+from microsim.results.outcomes import outcome_values
+from microsim.patients.population import draw_population
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec, StrategySpec
-from microsim.simulate import simulate
+from microsim.simulation import simulate
 from support import (Z, attribute, effect, horizon, outcomes, population, rate, scenario_text,
                      start, state)
 

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
-from microsim.distributions import (
+from microsim.uncertainty.distributions import (
     Beta, Dirichlet, Fixed, Gamma, LogNormal, Normal, Uniform, correlation_root,
     draw_parameters, draws_table, make_distribution,
 )

@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
-from microsim.economics import (
+from microsim.decision.economics import (
     acceptability_curve, best_strategy, between_estimate_variance, cost_effectiveness_plane,
     discounted_population, incremental_analysis, net_benefit, optimal_sample_split,
     paired_difference, patients_needed, per_person_evpi, population_evpi, variance_components,

@@ -12,12 +12,13 @@ from scipy import stats
 from scipy.linalg import expm
 
 from microsim.cohort.analytic import analytic
-from microsim.compare import compare, critical_z, trace_table
-from microsim.effects import Multipliers
-from microsim.engines.cycles import simulate_cycles
-from microsim.engines.events import simulate_events
-from microsim.population import draw_population
-from microsim.simulate import cohort_patients, simulate
+from microsim.results.comparison import compare, critical_z, trace_table
+from microsim.patients.multipliers import Multipliers
+from microsim.engines.cycle_engine import simulate_cycles
+from microsim.engines.event_engine import simulate_events
+from microsim.patients.population import draw_population
+from microsim.patients.population import cohort_patients
+from microsim.simulation import simulate
 from support import (Z, after, assert_follows, assert_mean_agrees, attribute, effect, event,
                      horizon, model_of, outcomes, population, probability, rate, scenario_text,
                      start, state, state_shares, table, transition)

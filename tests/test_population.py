@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from microsim.population import describe_population, draw_population
+from microsim.patients.population import describe_population, draw_population
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec
 from support import Z

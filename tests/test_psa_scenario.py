@@ -15,8 +15,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from microsim import psa
-from microsim.psa import parameter_uncertainty
+from microsim.uncertainty import psa
+from microsim.uncertainty.psa import parameter_uncertainty
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, StrategySpec, UncertaintySpec
 from microsim.uncertainty import parameter_draws

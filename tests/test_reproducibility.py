@@ -8,11 +8,11 @@ import functools
 import numpy as np
 import pytest
 
-from microsim.effects import multipliers
-from microsim.engines.cycles import simulate_cycles
-from microsim.engines.events import simulate_events
-from microsim.population import draw_population
-from microsim.simulate import simulate
+from microsim.patients.multipliers import multipliers
+from microsim.engines.cycle_engine import simulate_cycles
+from microsim.engines.event_engine import simulate_events
+from microsim.patients.population import draw_population
+from microsim.simulation import simulate
 from support import (after, attribute, effect, event, horizon, model_of, outcomes, population,
                      probability, rate, scenario_text, start, state, table, transition)
 

@@ -24,17 +24,18 @@ import pytest
 from scipy import stats
 from scipy.linalg import expm
 
-from microsim.api import cohort_trace
+from microsim.cohort.summaries import cohort_trace
 from microsim.binding import bind
 from microsim.cohort.analytic import analytic
-from microsim.compare import compare
-from microsim.outcomes import outcome_values
-from microsim.population import draw_population
+from microsim.results.comparison import compare
+from microsim.results.outcomes import outcome_values
+from microsim.patients.population import draw_population
 from microsim.scenario import ScenarioError, parse_scenario, read_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, HazardSpec,
                                     StrategySpec, TransitionSpec)
-from microsim.simulate import cohort_patients, simulate
-from microsim.strategies import eligible, treatment_window
+from microsim.patients.population import cohort_patients
+from microsim.simulation import simulate
+from microsim.patients.treatment import eligible, treatment_window
 from support import (Z, assert_follows, assert_mean_agrees, attribute, horizon, nested, outcomes,
                      population, probability, rate, scenario_text, start, state, state_shares,
                      strategy, transition)

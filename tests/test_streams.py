@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from scipy import stats
 from scipy.special import ndtri
 
-from microsim.engines import streams
+from microsim import streams
 
 SEED = 20261201
 TWO_64 = 2**64

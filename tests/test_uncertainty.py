@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from microsim import economics
+from microsim.decision import economics
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import DistributionSpec, ParameterSpec
 from microsim.uncertainty import one_way, parameter_draws, run_draws, summarise_draws

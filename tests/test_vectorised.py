@@ -1,6 +1,6 @@
 """The vectorised cycle engine against the SimPy cycle engine: for the same model,
 multipliers, patient ids and seed the histories must be identical, array for array and
-bit for bit (the reference is `microsim.engines.cycles.simulate_cycles`, whose rules are
+bit for bit (the reference is `microsim.engines.cycle_engine.simulate_cycles`, whose rules are
 checked against the analytic chains in test_engines.py). Each model also checks that
 every one of its risks actually happens, so an equality of empty histories cannot pass."""
 import dataclasses
@@ -12,13 +12,13 @@ import pandas as pd
 import pytest
 
 from microsim.binding import bind
-from microsim.engines.cycles import simulate_cycles
-from microsim.engines.vectorised import simulate_cycles_vectorised
-from microsim.population import PATIENT, draw_population
+from microsim.engines.cycle_engine import simulate_cycles
+from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
+from microsim.patients.population import PATIENT, draw_population
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, StrategySpec,
                                     TransitionSpec)
-from microsim.strategies import patient_multipliers
+from microsim.patients.treatment import patient_multipliers
 from support import (after, attribute, effect, event, horizon, population, probability, start,
                      state, scenario_text, table)
 

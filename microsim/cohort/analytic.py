@@ -18,14 +18,14 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.cohort.cycles import cycle_matrices
+from microsim.cohort.cycle_matrices import cycle_matrices
 from microsim.cohort.expand import Expansion, expand
-from microsim.cohort.rates import hazards_at, solve_rates, flows
-from microsim.effects import Multipliers, multipliers
-from microsim.strategies import uniform_multipliers
-from microsim.markov import continuous_outcomes, outcomes
+from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
+from microsim.patients.multipliers import Multipliers, multipliers
+from microsim.patients.treatment import uniform_multipliers
+from microsim.markov import continuous_outcomes, discrete_outcomes
 from microsim.markov.continuous import transient_piecewise
-from microsim.outcomes import Exposure
+from microsim.results.outcomes import Exposure
 
 @dataclass(frozen=True)
 class CohortResult:
@@ -62,11 +62,11 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     occurrences = np.empty((batch, len(model.risks), 3))
     ends = model.cycle * np.arange(1, model.n_cycles + 1)
     for w, rate in enumerate(discount_rates(model)):
-        weights = outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+        weights = discrete_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                          correction=model.correction)
         occupancy[:, :, w] = np.einsum("t,bts->bs", weights, trace)
         on_treatment[:, :, w] = np.einsum("t,bts,bt->bs", weights, trace, on)
-        occurrences[:, :, w] = np.einsum("t,tbr->br", outcomes.discount_factors(ends, rate), flow)
+        occurrences[:, :, w] = np.einsum("t,tbr->br", discrete_outcomes.discount_factors(ends, rate), flow)
     return trace, Exposure(occupancy, occurrences, on_treatment)
 
 

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers
+from microsim.patients.multipliers import Multipliers
 
 CLOCKS = {"since_start": 0, "since_entry": 1, "age": 2}
 START_PURPOSE = "start"

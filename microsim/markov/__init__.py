@@ -12,7 +12,7 @@ from .convert import (CycleChange, NotATransitionMatrix, change_cycle, naive_pro
 from .counters import counter_expansion, split_counted
 from .discrete import cohort_trace, n_step
 from .expanded import ExpandedChain
-from .outcomes import (cycle_weights, discount_factors, expected_value, one_off_value,
+from .discrete_outcomes import (cycle_weights, discount_factors, expected_value, one_off_value,
                        state_time, transition_counts, transition_value)
 from .steady import (NoUniqueSteadyState, closed_classes, communicating_classes, period,
                      steady_state, steady_state_continuous)

@@ -362,9 +362,9 @@ def empty_reason(s: Scenario, conditions: tuple[ConditionSpec, ...]) -> str | No
 
 def marginal(attribute: AttributeSpec):
     """The scipy.stats distribution of a continuous attribute, or None when its parameters
-    overflow (a lognormal meanlog above ~709). Imported on use, because microsim.population
+    overflow (a lognormal meanlog above ~709). Imported on use, because microsim.patients.population
     itself imports this package."""
-    from microsim.population import marginal_distribution
+    from microsim.patients.population import marginal_distribution
     try:
         return marginal_distribution(attribute)
     except OverflowError:

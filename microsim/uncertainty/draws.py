@@ -5,7 +5,7 @@ the draw index sits in the patient-id slot of the counter-based streams (occurre
 and the "psa:" prefix keeps these purposes apart from every patient-level purpose. So a
 draw is a pure function of (seed, draw index): draw 17 is the same whether 20 or 2000
 draws are asked for, and fixing, adding or removing one parameter leaves the others'
-draws alone. Families and the Gaussian copula come from `microsim.distributions`.
+draws alone. Families and the Gaussian copula come from `microsim.uncertainty.distributions`.
 """
 from __future__ import annotations
 
@@ -14,8 +14,8 @@ from typing import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..distributions import Dirichlet, Distribution, correlation_root, draw_parameters, make_distribution
-from ..engines import streams
+from .distributions import Dirichlet, Distribution, correlation_root, draw_parameters, make_distribution
+from .. import streams
 from ..scenario.errors import ScenarioError
 from ..scenario.spec import ParameterSpec
 

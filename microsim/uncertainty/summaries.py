@@ -1,10 +1,10 @@
 """PSA summaries from the draws table (draw, strategy, cost, effect): thin wrappers over
-`microsim.economics`, checking the user's choices (comparator) on the way in."""
+`microsim.decision.economics`, checking the user's choices (comparator) on the way in."""
 from __future__ import annotations
 
 import pandas as pd
 
-from .. import economics
+from ..decision import economics
 from ..scenario.errors import ScenarioError
 
 

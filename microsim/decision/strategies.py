@@ -13,12 +13,12 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from microsim import economics
+from microsim.decision import economics
 from microsim.binding import bind
-from microsim.outcomes import outcome_values
-from microsim.population import subgroup_attributes
+from microsim.results.outcomes import outcome_values
+from microsim.patients.population import subgroup_attributes
 from microsim.scenario.spec import Scenario
-from microsim.simulate import Simulation, report_grid, simulate
+from microsim.simulation import Simulation, report_grid, simulate
 
 COST, EFFECT = "costs_discounted", "qalys_discounted"
 REPORTED = ("costs_discounted", "qalys_discounted", "life_years", "costs", "qalys")

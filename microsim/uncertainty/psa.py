@@ -18,23 +18,18 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from microsim import __version__, economics
-from microsim.decision import COST, EFFECT, patient_outcomes, run_strategies, strategy_names
-from microsim.population import draw_population
+from microsim import __version__
+from microsim.decision import economics
+from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_strategies, strategy_names
+from microsim.patients.population import scenario_patients
 from microsim.scenario.spec import Scenario
-from microsim.simulate import cohort_patients
 from microsim.store import file_hash
 from microsim.uncertainty import parameter_draws, run_draws, summarise_draws
 
 
 def inner_patients(scenario: Scenario, draw: int, n: int) -> pd.DataFrame:
-    ids = np.arange(draw * n, draw * n + n)
-    spec = scenario.population
-    if spec is not None and (spec.attributes or spec.file):
-        return draw_population(spec, scenario.simulation.seed, ids)
-    people = cohort_patients(n)
-    people["patient"] = ids
-    return people
+    """Draw d's own patients: ids d * n .. d * n + n - 1."""
+    return scenario_patients(scenario, scenario.simulation.seed, np.arange(draw * n, draw * n + n))
 
 
 def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.DataFrame:

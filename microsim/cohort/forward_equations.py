@@ -17,8 +17,8 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from microsim.cohort.expand import Expansion
-from microsim.effects import Multipliers
-from microsim.outcomes import Exposure
+from microsim.patients.multipliers import Multipliers
+from microsim.results.outcomes import Exposure
 
 RTOL, ATOL = 1e-10, 1e-12
 

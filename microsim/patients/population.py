@@ -26,9 +26,9 @@ import pandas as pd
 from scipy import stats
 from scipy.special import ndtr, ndtri
 
-from microsim.engines import streams
+from microsim import streams
 from microsim.scenario.errors import ScenarioError
-from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec
+from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec, Scenario
 
 PATIENT = "patient"
 ROW_PURPOSE = "population:file-row"
@@ -401,6 +401,30 @@ def draw_population(spec: PopulationSpec, seed: int, patient_ids=None) -> pd.Dat
         if derived.name not in frame.columns:
             frame[derived.name] = _band(frame[derived.source], derived)
     return frame
+
+
+DEFAULT_PATIENTS = 2000  # patients of a scenario without a population section
+
+
+def cohort_patients(size: int) -> pd.DataFrame:
+    """Identical patients (ids only), for scenarios without a population section."""
+    return pd.DataFrame({PATIENT: np.arange(size, dtype=np.int64)})
+
+
+def scenario_patients(scenario: Scenario, seed: int, ids: np.ndarray) -> pd.DataFrame:
+    """The scenario's patients with these ids: drawn from its population section, or
+    identical patients when it has none."""
+    spec = scenario.population
+    if spec is not None and (spec.attributes or spec.file):
+        return draw_population(spec, seed, ids)
+    return pd.DataFrame({PATIENT: np.asarray(ids, dtype=np.int64)})
+
+
+def patients_for(scenario: Scenario, size: int | None, seed: int) -> pd.DataFrame:
+    """Patients 0..size-1 of a scenario (size: the population's, or DEFAULT_PATIENTS)."""
+    spec = scenario.population
+    n = size if size is not None else (spec.size if spec else DEFAULT_PATIENTS)
+    return scenario_patients(scenario, seed, np.arange(n))
 
 
 def subgroup_attributes(patients: pd.DataFrame) -> list[str]:

@@ -15,16 +15,16 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 
-from microsim import aggregate
+from microsim.results import aggregate
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers
-from microsim.engines.cycles import simulate_cycles
-from microsim.engines.events import simulate_events
-from microsim.engines.vectorised import simulate_cycles_vectorised
-from microsim.outcomes import Exposure
-from microsim.population import PATIENT
+from microsim.patients.multipliers import Multipliers
+from microsim.engines.cycle_engine import simulate_cycles
+from microsim.engines.event_engine import simulate_events
+from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
+from microsim.results.outcomes import Exposure
+from microsim.patients.population import PATIENT
 from microsim.scenario.errors import ScenarioError
-from microsim.strategies import patient_multipliers
+from microsim.patients.treatment import patient_multipliers
 
 
 @dataclass(frozen=True)
@@ -101,8 +101,3 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         os.replace(partial, histories)  # complete, so it takes its name
     return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)
-
-
-def cohort_patients(size: int) -> pd.DataFrame:
-    """Identical patients (ids only), for scenarios without a population section."""
-    return pd.DataFrame({PATIENT: np.arange(size, dtype=np.int64)})

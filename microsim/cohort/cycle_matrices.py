@@ -15,7 +15,7 @@ import numpy as np
 
 from microsim.binding import BoundRisk
 from microsim.cohort.expand import Expansion
-from microsim.effects import Multipliers
+from microsim.patients.multipliers import Multipliers
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import TableSpec
 

@@ -3,7 +3,7 @@
 Each cycle a patient takes one way out of its state, chosen by one uniform against the
 cumulative probabilities (the remainder takes what the others leave), and each event of
 the state happens or not by its own uniform; counts and time in state then move on.
-These are exactly the rules of `microsim.cohort.cycles`, so the expected simulated trace
+These are exactly the rules of `microsim.cohort.cycle_matrices`, so the expected simulated trace
 is the analytic one. Draws are keyed by cycle number (occurrence = cycle), so strategies
 share them cycle by cycle (common random numbers).
 """
@@ -16,8 +16,9 @@ import numpy as np
 import simpy
 
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers
-from microsim.engines import plan, streams
+from microsim.patients.multipliers import Multipliers
+from microsim import streams
+from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
 from microsim.scenario.spec import TableSpec
 

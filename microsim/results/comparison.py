@@ -17,10 +17,11 @@ import pandas as pd
 from scipy.stats import norm
 
 from microsim.cohort.analytic import CohortResult, analytic
-from microsim.effects import average_patient
-from microsim.outcomes import outcome_values
-from microsim.population import subgroup_attributes
-from microsim.simulate import Simulation, cohort_patients, simulate
+from microsim.patients.multipliers import average_patient
+from microsim.results.outcomes import outcome_values
+from microsim.patients.population import subgroup_attributes
+from microsim.patients.population import cohort_patients
+from microsim.simulation import Simulation, simulate
 
 FAMILY_ALPHA = 0.001
 

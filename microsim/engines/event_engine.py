@@ -21,8 +21,9 @@ import numpy as np
 import simpy
 
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers
-from microsim.engines import plan, streams
+from microsim.patients.multipliers import Multipliers
+from microsim import streams
+from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
 
 DEPTH = 32  # rounds per state precomputed per patient; later ones are drawn on demand

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.population import expected_covariate
+from microsim.patients.population import expected_covariate
 
 AGE = "age"
 

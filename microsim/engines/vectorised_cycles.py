@@ -1,7 +1,7 @@
 """The vectorised cycle engine: the SimPy cycle engine's rules and draws, one cycle at a
 time for the whole batch.
 
-`microsim.engines.cycles` runs one process per patient; here each cycle is a handful of
+`microsim.engines.cycle_engine` runs one process per patient; here each cycle is a handful of
 numpy operations over the patients in each live state, in the same risk order and with the
 same draws (same purposes, occurrence = cycle), so the two engines return equal histories,
 record for record and bit for bit. Two details keep the floats identical:
@@ -20,9 +20,10 @@ from math import exp
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers
-from microsim.engines import plan, streams
-from microsim.engines.cycles import MOVE, state_plans
+from microsim.patients.multipliers import Multipliers
+from microsim import streams
+from microsim.engines import plan
+from microsim.engines.cycle_engine import MOVE, state_plans
 from microsim.engines.histories import START, Histories
 
 
@@ -85,7 +86,7 @@ class _Batch:
 def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
                                seed: int) -> Histories:
     """Run one batch of patients through the cycle model, a cycle at a time; the same
-    histories as `microsim.engines.cycles.simulate_cycles` for the same arguments."""
+    histories as `microsim.engines.cycle_engine.simulate_cycles` for the same arguments."""
     ids = np.asarray(patient_ids)
     names = (MOVE, *plan.risk_purposes(model))
     # (cycle, purpose, patient): one contiguous row of draws per purpose and cycle

@@ -12,9 +12,9 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.effects import Multipliers, Window, cohort_multipliers, multipliers
-from microsim.engines import streams
-from microsim.population import PATIENT
+from microsim.patients.multipliers import Multipliers, Window, cohort_multipliers, multipliers
+from microsim import streams
+from microsim.patients.population import PATIENT
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import ConditionSpec, EligibilitySpec
 

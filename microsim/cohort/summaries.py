@@ -10,12 +10,12 @@ import pandas as pd
 
 from microsim.binding import BoundModel
 from microsim.cohort.analytic import analytic, generators, piece_breaks
-from microsim.cohort.cycles import cycle_matrices
+from microsim.cohort.cycle_matrices import cycle_matrices
 from microsim.cohort.expand import Expansion, expand
 from microsim.markov import (NoUniqueSteadyState, absorption, absorption_continuous,
                              probabilities_from_rates, steady_state, steady_state_continuous)
-from microsim.outcomes import outcome_table
-from microsim.strategies import uniform_multipliers
+from microsim.results.outcomes import outcome_table
+from microsim.patients.treatment import uniform_multipliers
 
 
 def cohort_trace(model: BoundModel, times: np.ndarray | None = None) -> pd.DataFrame:

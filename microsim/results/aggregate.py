@@ -1,7 +1,7 @@
 """Histories -> per-patient time in state, occurrences, and states on a time grid.
 
 The per-patient arrays have the layout of the analytic cohort's (`CohortResult`), so the
-same valuation (`microsim.outcomes`) and the same comparison apply to both. Time in state
+same valuation (`microsim.results.outcomes`) and the same comparison apply to both. Time in state
 is integrated exactly over each sojourn with continuous discounting in rate models, and by
 the scenario's within-cycle rule on the cycle points in cycle models.
 """
@@ -10,10 +10,10 @@ from __future__ import annotations
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.effects import Window
+from microsim.patients.multipliers import Window
 from microsim.engines.histories import Histories
-from microsim.markov import outcomes as cycle_outcomes
-from microsim.outcomes import Exposure
+from microsim.markov import discrete_outcomes as cycle_outcomes
+from microsim.results.outcomes import Exposure
 
 
 def discount_rates(model: BoundModel) -> np.ndarray:

@@ -1,0 +1,2 @@
+"""The decision problem: strategies on the same patients, incremental analysis and
+economics."""
