@@ -93,8 +93,8 @@ def print_summary(result: MainResult) -> None:
              d.precision)
     for name, v in result.validations.items():
         print(f"\nValidation ({name}): {v.verdict}")
-    first_validation = next(iter(result.validations.values()))
-    print(f"\n{first_validation.average_verdict}")
+    for name, v in result.validations.items():
+        print(f"\nAverage patient ({name}): {v.average_verdict}")
     if result.psa is not None:
         p = result.psa
         near = (p.acceptability.threshold - s.economics.threshold).abs()

@@ -80,7 +80,6 @@ def run_main(path: Path, patients: int | None = None, seed: int | None = None,
 
 
 def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.DataFrame]:
-    first = next(iter(sims))
     tables = {"cohort_trace": cohort_trace(bind(scenario))}
     tables["validation_shares"] = pd.concat(
         [v.shares.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
@@ -88,7 +87,8 @@ def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.Da
         [v.subgroups.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_outcomes"] = pd.concat(
         [v.outcomes.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
-    tables["average_patient"] = validations[first].average_patient
+    tables["average_patient"] = pd.concat(
+        [v.average_patient.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     if decision is not None:
         tables.update({"patient_outcomes": decision.outcomes, "strategies": decision.strategies,
                        "increments": decision.increments,

@@ -12,7 +12,7 @@ some memory has no finite expansion the result says so (`exact` False, with reas
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -26,6 +26,7 @@ from microsim.patients.treatment import uniform_multipliers
 from microsim.markov import continuous_outcomes, discrete_outcomes
 from microsim.markov.continuous import transient_piecewise
 from microsim.results.outcomes import Exposure
+from microsim.scenario.errors import ScenarioError
 
 @dataclass(frozen=True)
 class CohortResult:
@@ -154,6 +155,8 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
             raise ValueError("a strategy's patients need their treatment windows: pass "
                              "mult=strategies.patient_multipliers(model, patients, seed)")
         mult = uniform_multipliers(model) if patients is None else multipliers(model, patients)
+    if model.discrete and mult.window is not None:
+        mult = replace(mult, window=mult.window.on_grid_points(model.times))
     distinct, inverse = mult.unique()
     memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
     if model.discrete:
@@ -164,4 +167,23 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
         trace, exposure, method = rows_result(exp, distinct, times)
     exposure = Exposure(exposure.occupancy[inverse], exposure.occurrences[inverse],
                         exposure.on_treatment[inverse])
-    return CohortResult(times, trace[inverse], exposure, method + memory, exp.exact, exp.reasons)
+    return CohortResult(times, cleaned(trace, model, times)[inverse], exposure, method + memory,
+                        exp.exact, exp.reasons)
+
+
+SHARE_ROUNDOFF = 1e-9  # how far outside [0, 1] round-off may take a computed share
+
+
+def cleaned(trace: np.ndarray, model: BoundModel, times: np.ndarray) -> np.ndarray:
+    """State shares put back into [0, 1] where round-off took them out by at most
+    SHARE_ROUNDOFF (numerically solved traces over long horizons give shares such as
+    -1e-11); anything further out means the numbers cannot be trusted, and is refused."""
+    low, high = float(trace.min(initial=0.0)), float(trace.max(initial=1.0))
+    if low < -SHARE_ROUNDOFF or high > 1.0 + SHARE_ROUNDOFF:
+        b, t, s = np.unravel_index(np.argmax(np.maximum(-trace, trace - 1.0)), trace.shape)
+        raise ScenarioError("", f"the analytic counterpart gives a share of {trace[b, t, s]:.3g} "
+                            f"for state {model.states[s]!r} at time {times[t]:g}, outside [0, 1] "
+                            f"by more than round-off ({SHARE_ROUNDOFF:g}); the model is too "
+                            "stiff for the numerical solver (rates that differ by many orders "
+                            "of magnitude, or a hazard that is huge over the horizon)")
+    return np.clip(trace, 0.0, 1.0)

@@ -45,6 +45,16 @@ class Window:
     def take(self, index) -> "Window":
         return Window(self.on[index], self.off[index], self.on_factor, self.off_factor)
 
+    def on_grid_points(self, times: np.ndarray) -> "Window":
+        """The same window for a model that looks only at the grid `times` (cycle models):
+        on and off moved up to the next grid time (inf beyond the last), which changes no
+        `on <= t < off` at any grid time but lets patients whose windows differ only
+        between grid times share one analytic result."""
+        def snapped(x):
+            index = np.searchsorted(times, x, side="left")
+            return np.where(index < len(times), times[np.minimum(index, len(times) - 1)], np.inf)
+        return Window(snapped(self.on), snapped(self.off), self.on_factor, self.off_factor)
+
 
 @dataclass(frozen=True)
 class Multipliers:
@@ -155,11 +165,18 @@ def _uses_age(model: BoundModel) -> bool:
 
 
 def average_patient(m: Multipliers) -> Multipliers:
-    """The 'average patient': every attribute at its population mean.
+    """The 'average patient' of a set of patients: one row per patient, every row with the
+    patients' mean attributes, and each with its patient's own treatment window.
 
     The log multiplier is linear in the attributes (0/1 indicators for levels and yes/no),
-    so the mean attributes give the mean of the log multipliers; this is how a cohort model
-    is usually fed mean covariates (common practice), and Jensen's inequality is why it
-    differs from the population average of the patients' own results."""
-    ages = None if m.entry_age is None else m.entry_age.mean(keepdims=True)
-    return Multipliers(m.log_static.mean(axis=0, keepdims=True), m.age_slope, ages)
+    so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
+    as its share of "yes", so a hazard ratio HR on it becomes HR ** share. Attained age moves
+    on from the mean entry age. Keeping every patient's window means that under a strategy
+    the average patient is treated as the patients are (the same share treated, from the
+    same start, stopping at the same times), so the comparison isolates the attributes.
+    Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
+    it differs from the mean of the patients' own results."""
+    n = m.size
+    log_static = np.repeat(m.log_static.mean(axis=0, keepdims=True), n, axis=0)
+    ages = None if m.entry_age is None else np.full(n, m.entry_age.mean())
+    return Multipliers(log_static, m.age_slope, ages, m.window)

@@ -1,0 +1,226 @@
+"""The comparison's verdicts on the edges: no Monte-Carlo error at all, round-off in the
+analytic shares, rare states, and the average patient (exact gaps, strategies)."""
+import warnings
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from microsim.binding import bind
+from microsim.cohort import analytic as analytic_module
+from microsim.cohort.analytic import analytic, cleaned
+from microsim.patients.multipliers import Window, average_patient
+from microsim.patients.population import cohort_patients, draw_population
+from microsim.results.comparison import EXACT, compare, share_p_values
+from microsim.scenario import ScenarioError, parse_scenario
+from microsim.simulation import simulate
+from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
+                     start, state, strategy, transition)
+
+# Two states and no way out of the model: everyone is alive at every time, so life years
+# equal the horizon for every patient (no Monte-Carlo error), while the trace comes from
+# the forward equations (a Weibull hazard on the time since start) with round-off.
+NEVER_ABSORBED = scenario_text(
+    horizon(12), start(well=1),
+    state("well", utility=1, cost=100), state("ill", utility=0.5, cost=900),
+    transition("well", "ill", hazard=dict(family="weibull", shape=1.6, scale=5),
+               clock="since_start"),
+    rate("ill", "well", 0.4))
+
+
+def test_an_outcome_equal_for_every_patient_agrees_within_round_off():
+    sim = simulate(model_of(NEVER_ABSORBED), cohort_patients(2000), 3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no sqrt-of-negative or divide warnings
+        result = compare(sim)
+    assert result.agrees is True, result.verdict
+    life = result.outcomes.set_index("measure").loc["life_years"]
+    assert life.simulated == 12.0 and life.analytic == pytest.approx(12.0, rel=1e-9)
+    assert life.test == EXACT and life.z == 0.0 and life.p_value == 1.0
+    assert "without Monte-Carlo error agree within round-off" in result.verdict
+    # the other outcomes vary between patients and are tested as usual
+    assert (result.outcomes.set_index("measure").drop("life_years").test != EXACT).all()
+
+
+def test_a_wrong_deterministic_outcome_still_disagrees():
+    # the same simulation with every patient's time in state scaled by 13/12: life years
+    # are 13 for everyone against the analytic 12, where there is no Monte-Carlo error
+    sim = simulate(model_of(NEVER_ABSORBED), cohort_patients(500), 3)
+    scaled = replace(sim, exposure=replace(sim.exposure,
+                                           occupancy=sim.exposure.occupancy * 13 / 12))
+    result = compare(scaled)
+    assert result.agrees is False
+    assert "life_years differs by 1 where there is no Monte-Carlo error" in result.verdict
+
+
+# Gompertz mortality by age and a Weibull sojourn over 100 years: the forward equations
+# give shares of about -1.6e-10 (measured), which must not become NaN standard errors.
+LONG_HORIZON = scenario_text(
+    horizon(100), start(age=40, alive=1),
+    state("alive", utility=1), state("sick", utility=0.6), state("dead", absorbing=True),
+    transition("alive", "sick", hazard=dict(family="weibull", shape=2.5, scale=8),
+               clock="since_start"),
+    transition("alive", "dead", hazard=dict(family="gompertz", rate=0.0005, shape=0.09),
+               clock="age"),
+    transition("sick", "dead", hazard=dict(family="gompertz", rate=0.002, shape=0.1),
+               clock="age"))
+
+
+def test_round_off_in_analytic_shares_is_cleaned(monkeypatch):
+    model = model_of(LONG_HORIZON)
+    raw = analytic_module.cleaned
+    monkeypatch.setattr(analytic_module, "cleaned", lambda trace, model, times: trace)
+    uncleaned = analytic(model).trace
+    monkeypatch.setattr(analytic_module, "cleaned", raw)
+    assert uncleaned.min() < 0  # the case this test is about
+    trace = analytic(model).trace
+    assert trace.min() >= 0.0 and trace.max() <= 1.0
+    np.testing.assert_allclose(trace, uncleaned, atol=1e-9)
+    sim = simulate(model, cohort_patients(1000), 5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        result = compare(sim)
+    assert result.agrees is True, result.verdict
+    assert np.isfinite(result.shares.se).all() and np.isfinite(result.shares.z).all()
+
+
+def test_shares_far_outside_the_unit_interval_are_refused():
+    model = model_of(NEVER_ABSORBED)
+    trace = np.full((1, 3, 2), 0.5)
+    trace[0, 2, 1] = -1e-6
+    with pytest.raises(ScenarioError, match="outside \\[0, 1\\] by more than round-off"):
+        cleaned(trace, model, np.array([0.0, 1.0, 2.0]))
+    trace[0, 2, 1] = -1e-11
+    assert cleaned(trace, model, np.array([0.0, 1.0, 2.0]))[0, 2, 1] == 0.0
+
+
+def test_rare_state_tail_probabilities_are_binomial():
+    # one patient of 20 in a state with share 0.0005: P(X >= 1) = 1 - (1 - p)^20 (the
+    # binomial distribution, common practice); the normal approximation would give
+    # z = (0.05 - 0.0005) / sqrt(0.0005 * 0.9995 / 20) = 9.9, a false alarm
+    p = 0.0005
+    value = share_p_values(np.array([1 / 20]), np.array([p]), 20)[0]
+    assert value == pytest.approx(2 * (1 - (1 - p) ** 20), rel=1e-12)
+    assert share_p_values(np.array([0.0]), np.array([p]), 20)[0] == 1.0
+    assert share_p_values(np.array([0.1]), np.array([0.0]), 20)[0] == 0.0
+
+
+def poisson_binomial(probabilities: np.ndarray) -> np.ndarray:
+    """The exact distribution of a sum of independent Bernoulli trials, by convolution
+    (numpy as the reference)."""
+    pmf = np.array([1.0])
+    for p in probabilities:
+        pmf = np.convolve(pmf, [1 - p, p])
+    return pmf
+
+
+def test_binomial_tails_are_conservative_for_unequal_patients():
+    # Hoeffding (1956): beyond one of the mean, the binomial with the same mean has the
+    # heavier tails, so p-values from it never overstate the evidence
+    rng = np.random.default_rng(7)
+    for _ in range(20):
+        p = rng.beta(0.3, 3.0, size=60)
+        pmf = poisson_binomial(p)
+        mean = p.sum()
+        for count in range(len(p) + 1):
+            if abs(count - mean) < 1:
+                continue
+            exact = min(pmf[:count + 1].sum(), pmf[count:].sum())
+            assert share_p_values(np.array([count / 60]), np.array([p.mean()]), 60)[0] \
+                >= min(1.0, 2 * exact) - 1e-12
+
+
+def test_verdicts_on_a_rare_state_do_not_raise_false_alarms():
+    # a state entered with a tiny probability: the verdict must hold for many seeds
+    text = scenario_text(horizon(5), start(well=1), state("well"), state("rare"),
+                         state("dead", absorbing=True),
+                         rate("well", "rare", 0.0002), rate("well", "dead", 0.05),
+                         rate("rare", "dead", 0.5))
+    model = model_of(text)
+    flagged = sum(compare(simulate(model, cohort_patients(300), seed)).agrees is False
+                  for seed in range(30))
+    # at family-wise level 0.001, 30 correct runs give a false alarm with probability
+    # about 0.03 (binomial); more than one would mean the test is not calibrated
+    assert flagged <= 1
+
+
+# ----------------------------------------------------------------- the average patient
+
+TREATED = scenario_text(
+    horizon(10), start(alive=1),
+    state("alive", utility=1), state("dead", absorbing=True),
+    rate("alive", "dead", 0.2, effects=[effect("risk_factor", 5)]),
+    population(3000, attribute("risk_factor", "yesno", prevalence=0.4)),
+    strategy("none", comparator=True),
+    strategy("drug", uptake=0.6, changes=[dict(transition="alive->dead", hazard_ratio=0.5)]))
+
+
+def life_years(rate_value: np.ndarray) -> np.ndarray:
+    """Expected time alive over 10 years at a constant death rate (closed form)."""
+    return (1 - np.exp(-10 * rate_value)) / rate_value
+
+
+def test_the_average_patient_gets_the_strategy_too():
+    scenario = parse_scenario(TREATED)
+    model = bind(scenario, strategy="drug")
+    people = draw_population(scenario.population, 11)
+    sim = simulate(model, people, 11)
+    result = compare(sim)
+    assert result.agrees is True, result.verdict
+    row = result.average_patient.set_index("measure").loc["life_years"]
+    # the average patient: death rate 0.2 * 5^share, halved for the treated share of the
+    # simulated patients (each patient's own window), closed form
+    share = people.risk_factor.mean()
+    treated = np.isfinite(sim.mult.window.on).mean()
+    assert 0.5 < treated < 0.7
+    base = 0.2 * 5.0 ** share
+    expected = treated * life_years(base * 0.5) + (1 - treated) * life_years(base)
+    assert row.average_patient == pytest.approx(expected, rel=1e-9)
+    # the population's exact value: each patient's own rate and window
+    own = 0.2 * 5.0 ** people.risk_factor.to_numpy(float) * np.where(
+        np.isfinite(sim.mult.window.on), 0.5, 1.0)
+    assert row.population == pytest.approx(life_years(own).mean(), rel=1e-9)
+
+
+def test_the_average_patient_has_mean_attributes_and_keeps_each_window():
+    log_static = np.array([[0.0, 1.0], [2.0, 3.0], [4.0, 8.0]])
+    window = Window(np.array([0.0, np.inf, 1.0]), np.array([5.0, np.inf, 2.0]),
+                    np.array([0.5, 1.0]), np.array([1.0, 1.0]))
+    from microsim.patients.multipliers import Multipliers
+    average = average_patient(Multipliers(log_static, np.zeros(2), np.array([50.0, 60.0, 70.0]),
+                                          window))
+    np.testing.assert_array_equal(average.log_static, [[2.0, 4.0]] * 3)
+    np.testing.assert_array_equal(average.entry_age, [60.0] * 3)
+    assert average.window is window
+
+
+def test_snapping_windows_to_the_cycle_grid_changes_nothing_on_the_grid():
+    rng = np.random.default_rng(3)
+    times = np.arange(11) * 0.5
+    on = np.where(rng.random(200) < 0.2, np.inf, rng.uniform(0, 6, 200))
+    off = on + rng.exponential(2.0, 200)
+    window = Window(on, off, np.ones(1), np.ones(1))
+    snapped = window.on_grid_points(times)
+    np.testing.assert_array_equal(snapped.on_grid(times), window.on_grid(times))
+    assert len(np.unique(np.c_[snapped.on, snapped.off], axis=0)) <= 11 * 12
+
+
+def test_cycle_model_with_discontinuation_has_few_distinct_analytic_rows():
+    text = scenario_text(
+        horizon(8, cycle=1), start(well=1),
+        state("well", utility=1), state("ill", utility=0.5), state("dead", absorbing=True),
+        transition("well", "ill", probability=0.1), transition("well", "dead", probability=0.02),
+        transition("well", "well", probability="remainder"),
+        transition("ill", "dead", probability=0.2), transition("ill", "ill", probability="remainder"),
+        strategy("none", comparator=True),
+        strategy("drug", discontinuation=0.3, changes=[dict(transition="well->ill", hazard_ratio=0.5)]))
+    model = bind(parse_scenario(text), strategy="drug")
+    sim = simulate(model, cohort_patients(4000), 2)
+    result = compare(sim)
+    assert result.agrees is True, result.verdict
+    # every patient's analytic trace, computed one by one on its raw window, equals the
+    # shared computation on windows moved to the grid
+    one_by_one = np.concatenate([analytic(model, mult=sim.mult.take(slice(b, b + 1))).trace
+                                 for b in range(0, 4000, 397)])
+    shared = analytic(model, mult=sim.mult).trace[::397]
+    np.testing.assert_allclose(shared, one_by_one, rtol=0, atol=1e-15)
