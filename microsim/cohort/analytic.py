@@ -155,7 +155,7 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
                              "mult=strategies.patient_multipliers(model, patients, seed)")
         mult = uniform_multipliers(model) if patients is None else multipliers(model, patients)
     distinct, inverse = mult.unique()
-    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
+    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count/window memory)"
     if model.discrete:
         trace, exposure = cycle_result(exp, distinct)
         times, method = model.times, "cycle-by-cycle matrix products"
