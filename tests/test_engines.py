@@ -231,11 +231,20 @@ COUNTS = scenario_text(
     event("flare", ["well"], probability=0.3))
 
 
-@pytest.mark.parametrize("text", [CYCLE_MODEL, TUNNEL, COUNTS],
-                         ids=["homogeneous", "tunnel", "count-memory"])
+WINDOW = scenario_text(
+    horizon(12, cycle=1), start(well=1),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.1, memory=[after("flare", within=2, multiplier=3)]),
+    probability("well", "dead", 0.02), probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.2), probability("sick", "sick", "remainder"),
+    event("flare", ["well"], probability=0.3))
+
+
+@pytest.mark.parametrize("text", [CYCLE_MODEL, TUNNEL, COUNTS, WINDOW],
+                         ids=["homogeneous", "tunnel", "count-memory", "window-memory"])
 def test_cycle_engine_matches_expanded_chain(text):
     # the analytic side here is the expanded chain checked against hand-written chains in
-    # test_cohort_analytic.py
+    # test_cohort_analytic.py and test_cohort_windows.py
     model = model_of(text)
     sim = simulate(model, cohort_patients(8000), 202)
     expected = analytic(model)
@@ -330,6 +339,9 @@ def test_cycle_engine_time_since_window_lasts_whole_cycles():
     assert np.all(per_cycle[1:7] == 0)
     low = n / 2 - Z * math.sqrt(n / 4)  # binomial(400, 1/2) lower bound
     assert per_cycle[0] > low and np.all(per_cycle[7:] > low), per_cycle
+    # the expanded chain mirrors the rule: 6 cycles at 1/2 and 6 suppressed (rate scale)
+    expected = analytic(model).exposure.occurrences[0, check, 0]
+    assert expected == pytest.approx(6 * 0.5 + 6 * (1 - 0.5 ** 1e-12), rel=1e-12)
 
 
 # ------------------------------------------------------------------------ the verdict

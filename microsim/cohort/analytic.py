@@ -158,7 +158,7 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
     if model.discrete and mult.window is not None:
         mult = replace(mult, window=mult.window.on_grid_points(model.times))
     distinct, inverse = mult.unique()
-    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count memory)"
+    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count/window memory)"
     if model.discrete:
         trace, exposure = cycle_result(exp, distinct)
         times, method = model.times, "cycle-by-cycle matrix products"

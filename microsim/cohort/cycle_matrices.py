@@ -48,7 +48,6 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
     m_all = mult.at(time)
     batch = m_all.shape[0]
     ages = None if mult.entry_age is None else mult.entry_age + time
-    counted = {c.after for c in exp.counters}
     P = np.zeros((batch, exp.size, exp.size))
     risk_p = np.zeros((batch, exp.size, len(model.risks)))
     for e, (i, d, counts) in enumerate(exp.expanded):
@@ -87,17 +86,18 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
         for r, risk in enumerate(model.risks):
             if risk.source == i and risk.target == i:
                 risk_p[:, e, r] = 0.0
-        counting = [(risk, p) for risk, p in events if risk.name in counted]
+        # Events that move no count are summed over; the others split each move by which
+        # of them happened in the same cycle.
+        counting = [(risk, p) for risk, p in events if risk.name in exp.tracked]
         for risk, p in moves:
             j = i if risk is None else risk.target
             d_next = min(d + 1, exp.durations[i] - 1) if j == i else 0
-            after = exp.after_move(counts, i, risk)
             for pattern in itertools.product((False, True), repeat=len(counting)):
                 weight = p
-                c_next = after
+                occurred = [] if risk is None else [risk]
                 for happened, (event, pe) in zip(pattern, counting):
                     weight = weight * (pe if happened else 1.0 - pe)
                     if happened:
-                        c_next = exp.after_move(c_next, i, event)
-                P[:, e, exp.index(j, d_next, c_next)] += weight
+                        occurred.append(event)
+                P[:, e, exp.index(j, d_next, exp.after_move(counts, i, occurred))] += weight
     return P, risk_p

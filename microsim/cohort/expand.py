@@ -1,12 +1,18 @@
 """The expanded state space that turns finite memory back into a Markov chain.
 
-A patient's "expanded state" is (state, cycles spent in it, capped counts of earlier
-occurrences). Tunnel states carry time-in-state memory of cycle models; counter copies
-carry count memory ("number of earlier flares, up to 2+"). With them, the trace of the
-expanded chain collapsed onto the model's states is the exact counterpart of a simulation
-with that memory (common practice for tunnel states; see e.g. Hawkins, Sculpher & Epstein
-2005, "Cost-effectiveness analysis of treatments for chronic disease: using R to
-incorporate time dependency of treatment response").
+A patient's "expanded state" is (state, cycles spent in it, counts). The counts are capped
+whole numbers, one per tracked name: for count memory, the number of earlier occurrences
+("earlier flares, up to 2+"); for `within` memory in cycle models, the number of whole
+cycles since the last occurrence, where the cap means "not recent, or never". Tunnel states
+carry time-in-state memory of cycle models. With them, the trace of the expanded chain
+collapsed onto the model's states is the exact counterpart of a simulation with that memory
+(common practice for tunnel states; see e.g. Hawkins, Sculpher & Epstein 2005,
+"Cost-effectiveness analysis of treatments for chronic disease: using R to incorporate time
+dependency of treatment response").
+
+`within` memory is finite only in cycle models: there every occurrence happens at a cycle
+end and every probability is read at a cycle start, so the time since an occurrence is a
+whole number of cycles. In rate models it is continuous and has no finite expansion.
 """
 from __future__ import annotations
 
@@ -29,9 +35,31 @@ class Counter:
 
 
 @dataclass(frozen=True)
+class Recency:
+    """Cycles since the last occurrence of `after`, read at a cycle start and capped at
+    `cap` ("not recent, or never"). An occurrence happens at its cycle's end, so the next
+    cycle starts at 0; starting in a state is entering it at time 0."""
+    after: str
+    cap: int
+
+
+def window_cycles(within: float, model: BoundModel) -> int:
+    """Cycles in which a `within` window applies after the cycle of its occurrence.
+
+    The engines apply it while t - last < within - 1e-9 * cycle (t a cycle start, `last`
+    the cycle end of the occurrence, or 0 for the start state), and t - last = k * cycle,
+    k = 0, 1, ...: so for the k < within / cycle - 1e-9. The tolerance makes a whole number
+    of cycles exact (within = 2 cycles: k = 0, 1); within = 1.5 cycles also gives 2 and
+    half a cycle gives 1 (the next cycle starts less than half a cycle after it). A window
+    longer than the horizon is cut to it: no later cycle start exists."""
+    return min(max(0, math.ceil(within / model.cycle - 1e-9)), model.n_cycles)
+
+
+@dataclass(frozen=True)
 class Expansion:
     model: BoundModel
     counters: tuple[Counter, ...]
+    recencies: tuple[Recency, ...]  # cycle models only; counts list them after the counters
     durations: tuple[int, ...]  # per model state: tunnel length (1 = no tunnel)
     expanded: tuple[tuple[int, int, tuple[int, ...]], ...]  # (state, duration, counts)
     exact: bool  # False when some memory has no finite expansion
@@ -45,11 +73,21 @@ class Expansion:
     def trivial(self) -> bool:
         return self.size == self.model.n_states
 
+    @property
+    def memories(self) -> tuple[Counter | Recency, ...]:
+        """What the counts hold, in order."""
+        return (*self.counters, *self.recencies)
+
+    @cached_property
+    def tracked(self) -> frozenset[str]:
+        """Names whose occurrences move some count."""
+        return frozenset(c.after for c in self.memories)
+
     def index(self, state: int, duration: int, counts: tuple[int, ...]) -> int:
         """Position of an expanded state; an absorbing state has one copy, whatever the
         memory it was entered with (nothing happens there any more)."""
         if self.model.absorbing[state]:
-            return self._lookup[(state, 0, (0,) * len(self.counters))]
+            return self._lookup[(state, 0, (0,) * len(self.memories))]
         return self._lookup[(state, duration, counts)]
 
     @cached_property
@@ -63,40 +101,53 @@ class Expansion:
             out[e, state] = 1.0
         return out
 
+    def entry(self, state: int) -> int:
+        """The expanded state of a patient who starts in `state`: duration 0, and starting
+        there counts as an entry at time 0 (count 1, 0 cycles since)."""
+        name = self.model.states[state]
+        counts = tuple(min(int(c.after == name), c.cap) for c in self.counters)
+        since = tuple(0 if c.after == name else c.cap for c in self.recencies)
+        return self.index(state, 0, counts + since)
+
     def start(self) -> np.ndarray:
-        """Initial distribution over expanded states: duration 0, counts from the start."""
+        """Initial distribution over expanded states."""
         p = np.zeros(self.size)
-        names = self.model.states
         for i, share in enumerate(self.model.start):
             if share > 0:
-                counts = tuple(int(c.after == names[i]) for c in self.counters)
-                p[self.index(i, 0, self.capped(counts))] += share
+                p[self.entry(i)] += share
         return p
 
-    def capped(self, counts) -> tuple[int, ...]:
-        return tuple(min(n, c.cap) for n, c in zip(counts, self.counters))
-
     def memory_factor(self, risk: BoundRisk, counts: tuple[int, ...]) -> float:
-        """The product of a risk's count-memory multipliers in expanded state `counts`."""
+        """The product of a risk's memory multipliers in expanded state `counts`."""
         factor = 1.0
         for m in risk.memory:
-            if m.multipliers is None:
-                continue  # time-since memory: no finite expansion (Expansion.exact is False)
-            k = next(k for k, c in enumerate(self.counters) if c.after == m.after)
-            factor *= m.multipliers[min(counts[k], len(m.multipliers) - 1)]
+            if m.multipliers is not None:
+                k = self._position[(Counter, m.after)]
+                factor *= m.multipliers[min(counts[k], len(m.multipliers) - 1)]
+            elif self.model.discrete:
+                k = self._position[(Recency, m.after)]
+                if counts[k] < window_cycles(m.within, self.model):
+                    factor *= m.multiplier
+            # rate models: time since an occurrence has no finite expansion (exact is False)
         return factor
 
-    def after_move(self, counts, source: int, risk: BoundRisk | None) -> tuple[int, ...]:
-        """Counts after `risk` happens from `source` (None: staying put, no event)."""
-        if risk is None:
-            return counts
-        names = self.model.states
-        bumped = []
-        for n, c in zip(counts, self.counters):
-            hit = c.after == risk.name or (
-                risk.target is not None and risk.target != source and c.after == names[risk.target])
-            bumped.append(n + hit)
-        return self.capped(bumped)
+    @cached_property
+    def _position(self) -> dict:
+        return {(type(c), c.after): k for k, c in enumerate(self.memories)}
+
+    def after_move(self, counts, source: int, occurred) -> tuple[int, ...]:
+        """Counts after the risks `occurred` happen from `source`, in one cycle (cycle
+        models) or one jump (rate models): a counter adds its hits; a recency restarts
+        at 0 on a hit and otherwise ages by a cycle. An occurrence hits its own name and,
+        for a move to another state, that state's name (its entries)."""
+        states = self.model.states
+        hits = [risk.name for risk in occurred] + [
+            states[risk.target] for risk in occurred
+            if risk.target is not None and risk.target != source]
+        n = len(self.counters)
+        return (tuple(min(k + hits.count(c.after), c.cap) for k, c in zip(counts, self.counters))
+                + tuple(0 if c.after in hits else min(k + 1, c.cap)
+                        for k, c in zip(counts[n:], self.recencies)))
 
 
 def tunnel_length(risks: tuple[BoundRisk, ...], cycle: float) -> int:
@@ -124,21 +175,27 @@ def expand(model: BoundModel) -> Expansion:
     """Build the expanded state space of `model` and say whether it is exact."""
     reasons = []
     caps: dict[str, int] = {}
+    windows: dict[str, int] = {}
     for risk in model.risks:
         for m in risk.memory:
-            if m.multipliers is None:
-                reasons.append(f"'{risk.name}' depends on the time since the last '{m.after}'")
-            else:
+            if m.multipliers is not None:
                 caps[m.after] = max(caps.get(m.after, 0), len(m.multipliers) - 1)
+            elif model.discrete:
+                windows[m.after] = max(windows.get(m.after, 0), window_cycles(m.within, model))
+            else:
+                reasons.append(f"'{risk.name}' depends on the time since the last '{m.after}' "
+                               "(continuous in a rate model: no finite expansion)")
         if semi_markov(model, risk):
             reasons.append(f"'{risk.name}' has a {risk.family} hazard on the time since "
                            f"entering a state that patients can re-enter (semi-Markov)")
     counters = tuple(Counter(after, cap) for after, cap in sorted(caps.items()))
+    recencies = tuple(Recency(after, cap) for after, cap in sorted(windows.items()))
     durations = tuple(tunnel_length(model.risks_from(i), model.cycle) if model.discrete else 1
                       for i in range(model.n_states))
-    count_space = list(itertools.product(*(range(c.cap + 1) for c in counters)))
-    plain = ((0,) * len(counters),)
+    memories = (*counters, *recencies)
+    count_space = list(itertools.product(*(range(c.cap + 1) for c in memories)))
+    plain = ((0,) * len(memories),)
     expanded = tuple((i, d, counts) for i in range(model.n_states)
                      for d in range(durations[i])
                      for counts in (plain if model.absorbing[i] else count_space))
-    return Expansion(model, counters, durations, expanded, not reasons, tuple(reasons))
+    return Expansion(model, counters, recencies, durations, expanded, not reasons, tuple(reasons))

@@ -41,7 +41,7 @@ def flows(exp: Expansion) -> Flows:
         for r, risk in enumerate(model.risks):
             if risk.source == i:
                 j = i if risk.is_event else risk.target
-                rows.append((e, exp.index(j, 0, exp.after_move(counts, i, risk)), r,
+                rows.append((e, exp.index(j, 0, exp.after_move(counts, i, (risk,))), r,
                              exp.memory_factor(risk, counts)))
     source, target, risk, factor = (np.array(c) for c in zip(*rows)) if rows else [np.zeros(0)] * 4
     return Flows(source.astype(int), target.astype(int), risk.astype(int), factor.astype(float))

@@ -80,8 +80,7 @@ def absorption_table(model: BoundModel, exp: Expansion, a, unit: str) -> pd.Data
         if model.absorbing[i]:
             continue
         start = np.zeros(exp.size)
-        counts = exp.capped(tuple(int(c.after == name) for c in exp.counters))
-        start[exp.index(i, 0, counts)] = 1.0
+        start[exp.entry(i)] = 1.0
         ends = pd.Series(a.probabilities_from(start), index=absorbing_states).groupby(level=0).sum()
         rows.append({"from_state": name, f"expected_time_{unit}": a.expected_time_from(start) * scale,
                      **{f"ends_in_{k}": v for k, v in ends.items()}})
@@ -96,6 +95,5 @@ def cycle_probabilities(model: BoundModel, generator: np.ndarray, exp: Expansion
     P = probabilities_from_rates(generator, model.cycle) @ exp.collapse()
     rows = []
     for i, name in enumerate(model.states):
-        counts = exp.capped(tuple(int(c.after == name) for c in exp.counters))
-        rows.append({"from_state": name, **dict(zip(model.states, P[exp.index(i, 0, counts)]))})
+        rows.append({"from_state": name, **dict(zip(model.states, P[exp.entry(i)]))})
     return pd.DataFrame(rows)

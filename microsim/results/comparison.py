@@ -101,7 +101,7 @@ def counterpart_name(sim: Simulation, result: CohortResult) -> str:
         return "no exact counterpart: " + "; ".join(result.reasons)
     kind = "the average of per-patient analytic traces" if heterogeneous else "the cohort trace"
     if "expanded" in result.method:
-        kind = "the expanded chain (tunnel/count states), " + (
+        kind = "the expanded chain (tunnel/count/window states), " + (
             "averaged over patients" if heterogeneous else "for the cohort")
     return f"{kind} ({result.method})"
 
