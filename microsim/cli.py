@@ -78,31 +78,28 @@ def command_trace(args) -> int:
 
 
 def command_summary(args) -> int:
+    """Per-cycle probabilities, steady state, absorption (closed form and/or up to the end)
+    and expected outcomes of the cohort; each part says which form it takes and why."""
     from microsim.cohort.summaries import chain_summary, expected_outcomes
     from microsim.binding import bind
     started, path, scenario = begin(args)
     model = bind(scenario)
     summary = chain_summary(model)
-    tables = {}
     print(f"Summary — {scenario.title}")
-    if "cycle_probabilities" in summary:
-        show(f"Per-cycle transition probabilities (cycle {model.cycle:g} {scenario.time.unit}; "
-             "exact, from the matrix exponential of the rate matrix)", summary["cycle_probabilities"])
-        tables["cycle_probabilities"] = summary["cycle_probabilities"]
-    for key in ("steady_state", "absorption"):
-        if key in summary:
-            show(key.replace("_", " ").capitalize(), summary[key])
-            tables[key] = summary[key]
-        elif f"{key}_note" in summary:
-            print(f"\n{key.replace('_', ' ').capitalize()}: {summary[key + '_note']}")
-    if summary["note"]:
-        print(f"\nNote: {summary['note']}")
+    for note in summary.notes:
+        print(f"\nNote: {note}")
+    for part in summary.parts:
+        if part.table is None:
+            print(f"\n{part.heading}: {part.note}")
+            continue
+        show(part.heading, part.table)
+        if part.note:
+            print(part.note)
     outcomes = expected_outcomes(model)
     show(f"Expected outcomes per patient (discount rates per time unit, {scenario.time.unit}: "
          f"costs {model.discount_costs:g}, effects {model.discount_effects:g}; within-cycle "
          f"correction {model.correction})", outcomes)
-    tables["expected_outcomes"] = outcomes
-    write(args, path, tables, started)
+    write(args, path, {**summary.tables(), "expected_outcomes": outcomes}, started)
     print(f"{cohort_note(scenario)}\n{CAUTION}")
     return 0
 

@@ -21,6 +21,7 @@ from microsim.binding import BoundModel
 from microsim.cohort.cycle_matrices import cycle_matrices
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
+from microsim.cohort.time_dependence import time_dependence
 from microsim.patients.multipliers import Multipliers, multipliers
 from microsim.patients.treatment import uniform_multipliers
 from microsim.markov import continuous_outcomes, discrete_outcomes
@@ -118,11 +119,9 @@ def exponential_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> 
 
 
 def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
-    """True when every hazard is constant between table breaks (exact exponentials apply)."""
-    if np.any(mult.age_slope != 0):
-        return False
-    return all(r.family == "constant" or (r.table is not None and r.table.by != "time_in_state")
-               for r in exp.model.risks)
+    """True when every hazard is constant between table and window breaks (exact
+    exponentials apply)."""
+    return not time_dependence(exp, mult).smooth
 
 
 ODE_CHUNK = 64  # patients solved together: each one's table breaks slow the others' steps
