@@ -111,7 +111,7 @@ def test_chain_summary_starts_each_state_as_an_entry():
                             np.ones(len(transient)))
     from_state = {"well": steps[transient.index(keys.index(("well", 2, 1)))],
                   "ill": steps[transient.index(keys.index(("ill", 2, 0)))]}
-    table_ = chain_summary(model_of(FLARES))["absorption"].set_index("from_state")
+    table_ = chain_summary(model_of(FLARES)).part("absorption").table.set_index("from_state")
     for name, value in from_state.items():
         assert table_.loc[name, "expected_time_years"] == pytest.approx(value, rel=1e-10)
 
