@@ -258,9 +258,9 @@ def test_bands_of_a_file_column_leave_the_last_band_open(tmp_path):
     assert (frame["band"].astype(str) == frame["group"].astype(str).map(expected)).all()
     outside = PopulationSpec(size=10, file=spec.file, derived=(
         DerivedSpec("band", "age", (50.0,), ("50+",)),))
-    with pytest.raises(ScenarioError, match=r"1 value\(s\) of 'age'") as refused:
-        draw_population(outside, SEED)  # the whole file is banded: age 40 (weight 1) is out
-    assert refused.value.path == "population.derived.band"
+    with pytest.raises(ScenarioError, match=r"lowest value 'age' can take \(40\)") as refused:
+        draw_population(outside, SEED)  # the whole file counts: age 40 (weight 1) is out
+    assert refused.value.path == "population.derived.band.edges"
 
 
 @pytest.mark.parametrize("text,weights,path", [

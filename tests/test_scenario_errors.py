@@ -400,10 +400,18 @@ def file_population(tmp_path, population: str) -> ScenarioError:
     # the effect in the base reads `marker`, which the file does not have
     ('[population]\nsize = 10\nfile = "patients.csv"', "transitions.well->sick.effects[0].attribute",
      "the population has no attribute 'marker'"),
+    ('[population]\nsize = 10\nfile = "reserved.csv"', "population.file",
+     "reserved.csv has a column named 'patient', which is reserved for the patient id"),
+    # the weights column is not an attribute: `marker` holds weights here
+    ('[population]\nsize = 10\nfile = "marker.csv"\nweights = "marker"',
+     "transitions.well->sick.effects[0].attribute",
+     "the population has no attribute 'marker'; attributes: age"),
 ])
 def test_file_population_refusals(tmp_path, population, path, phrase):
     (tmp_path / "patients.csv").write_text("age,weight\n50,1\n")
     (tmp_path / "empty.csv").write_text("")
+    (tmp_path / "reserved.csv").write_text("patient,age\n1,50\n")
+    (tmp_path / "marker.csv").write_text("age,marker\n50,1\n")
     error = file_population(tmp_path, population)
     assert error.path == path, str(error)
     assert phrase in error.message, str(error)

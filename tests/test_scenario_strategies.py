@@ -312,14 +312,14 @@ CASES = [
     ("yes/no equals a level", "base", [("equals = true", 'equals = "yes"')],
      f"{ELIGIBLE}.any[0].equals", "equals needs true or false, got 'yes'"),
     ("level not among the levels", "base", [('one_of = ["male"]', 'one_of = ["male", "mal"]')],
-     f"{ELIGIBLE}.any[1].one_of[1]", "'mal' is not a level of 'sex'; levels: 'female', 'male', "
-                                     "'other'"),
+     f"{ELIGIBLE}.any[1].one_of[1]", "'mal' is not a level of 'sex' (levels: 'female', 'male', "
+                                     "'other'; did you mean 'male'?)"),
     ("equals a level that is not one", "base",
      [('{ attribute = "sex", one_of = ["male"] }', '{ attribute = "sex", equals = "men" }')],
      f"{ELIGIBLE}.any[1].equals", "'men' is not a level of 'sex'"),
     ("band level not among its labels", "base",
      [('{ attribute = "sex", one_of = ["male"] }', '{ attribute = "marker_band", equals = "hi" }')],
-     f"{ELIGIBLE}.any[1].equals", "'hi' is not a level of 'marker_band'; levels: 'low', 'high'"),
+     f"{ELIGIBLE}.any[1].equals", "'hi' is not a level of 'marker_band' (levels: 'low', 'high'"),
     ("one_of on a continuous attribute", "base",
      [('{ attribute = "age", below = 65 }', '{ attribute = "age", one_of = ["old"] }')],
      f"{ELIGIBLE}.all[1].one_of", "'age' is continuous; one_of lists levels"),

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.patients.population import expected_covariate
+from microsim.patients.population import check_population_file, expected_covariate
 
 AGE = "age"
 
@@ -155,6 +155,7 @@ def cohort_multipliers(model: BoundModel) -> Multipliers:
     """The uniform cohort: every covariate at the population's expected value (exact,
     from the population spec), age at the start age or the population's mean age."""
     spec = model.scenario.population
+    check_population_file(model.scenario)
     means = None if spec is None else partial(expected_covariate, spec)
     return multipliers(model, None, means)
 

@@ -18,7 +18,6 @@ from __future__ import annotations
 import math
 import numbers
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Mapping
 
 import numpy as np
@@ -28,9 +27,12 @@ from scipy.special import ndtr, ndtri
 
 from microsim import streams
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.file_uses import check_column_uses, check_file_population
+from microsim.scenario.population_file import RESERVED, PopulationFile, read_population_file
+from microsim.scenario.read_population import band_gap
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec, Scenario
 
-PATIENT = "patient"
+PATIENT = RESERVED  # the column of patient ids, which no file or attribute may take
 ROW_PURPOSE = "population:file-row"
 _EIGENVALUE_TOLERANCE = 1e-10
 _SHARE_TOLERANCE = 1e-6
@@ -196,16 +198,14 @@ def _check_derived(spec: PopulationSpec, derived: DerivedSpec, taken: set[str]) 
     source = next((a for a in spec.attributes if a.name == derived.source), None)
     if source is None:
         if spec.file is None:
-            raise ScenarioError(f"{path}.source", f"{derived.source!r} is not an attribute")
-        return  # a column of the file: checked when the file is read
+            raise ScenarioError(f"{path}.from", f"{derived.source!r} is not an attribute")
+        return  # a column of the file: checked when the file is read (file_uses.check_band)
     if source.distribution in _DISCRETE:
-        raise ScenarioError(f"{path}.source", f"{derived.source!r} is {source.distribution}; "
+        raise ScenarioError(f"{path}.from", f"{derived.source!r} is {source.distribution}; "
                             f"bands need a numeric attribute")
-    low, _ = marginal_distribution(source).support()
-    if low < edges[0]:
-        raise ScenarioError(f"{path}.edges", f"the first band starts at {edges[0]:g} but "
-                            f"{derived.source!r} can take values from {low:g}; lower the first "
-                            f"edge (it may be -inf) or truncate the source")
+    gap = band_gap(derived.source, float(edges[0]), marginal_distribution(source).support()[0])
+    if gap:
+        raise ScenarioError(f"{path}.edges", f"{gap} or truncate {derived.source!r}")
 
 
 def check_population(spec: PopulationSpec) -> None:
@@ -287,99 +287,39 @@ def _draw_attributes(spec: PopulationSpec, seed: int, ids: np.ndarray) -> dict:
 
 def _band(values: pd.Series, derived: DerivedSpec) -> pd.Categorical:
     """labels[i] for values in [edges[i], edges[i+1]); the last band has no upper end.
-    Values below the first edge are refused, naming the derived attribute."""
-    path = f"population.derived.{derived.name}"
-    if not pd.api.types.is_numeric_dtype(values) or pd.api.types.is_bool_dtype(values):
-        raise ScenarioError(f"{path}.source",
-                            f"{derived.source!r} is not numeric; bands need numbers")
-    x = values.to_numpy(dtype=float)
-    edges = np.asarray(derived.edges, dtype=float)
-    codes = np.searchsorted(edges, x, side="right") - 1
-    outside = (codes < 0) | np.isnan(x)
-    if outside.any():
-        raise ScenarioError(path, f"{int(outside.sum())} value(s) of {derived.source!r} "
-                            f"(from {np.nanmin(x):g}) lie below the first band, which starts "
-                            f"at {edges[0]:g}; lower the first edge (it may be -inf)")
+    Every value lies in a band: the first edge is checked against the source's lowest
+    value (`_check_derived`, `file_uses.check_band`)."""
+    codes = np.searchsorted(np.asarray(derived.edges, dtype=float), values.to_numpy(dtype=float),
+                            side="right") - 1
     return pd.Categorical.from_codes(codes, categories=list(derived.labels), ordered=True)
 
 
 # ------------------------------------------------------------------------ data file
 
-def _read_file(path: Path) -> pd.DataFrame:
-    if not path.is_file():
-        raise ScenarioError("population.file", f"file not found: {path}")
-    suffix = path.suffix.lower()
-    readers = {".csv": pd.read_csv, ".parquet": pd.read_parquet, ".pq": pd.read_parquet}
-    if suffix not in readers:
-        raise ScenarioError("population.file", f"{path.name}: use a .csv or .parquet file")
-    try:
-        table = readers[suffix](path)
-    except Exception as error:  # any reader failure is a bad file, reported as such
-        raise ScenarioError("population.file", f"could not read {path}: {error}") from error
-    if table.empty:
-        raise ScenarioError("population.file", f"{path} has no rows")
-    if PATIENT in table.columns:
-        raise ScenarioError("population.file", f"{path} has a column named {PATIENT!r}, "
-                            f"which is reserved for the patient id; rename it")
-    return table
+def population_file(spec: PopulationSpec) -> PopulationFile:
+    """The spec's file, read and typed (once per process while it is unchanged), with the
+    population's own uses of its columns checked: names, bands, age."""
+    file = read_population_file(spec.file, spec.weights)
+    check_file_population(spec, file)
+    return file
 
 
-def _sampling_weights(table: pd.DataFrame, column: str | None) -> np.ndarray:
-    if column is None:
-        return np.ones(len(table))
-    if column not in table.columns:
-        raise ScenarioError("population.weights", f"no column {column!r} in the file; "
-                            f"columns are {', '.join(map(str, table.columns))}")
-    weights = pd.to_numeric(table[column], errors="coerce").to_numpy(dtype=float)
-    bad = np.flatnonzero(~np.isfinite(weights) | (weights < 0))
-    if bad.size:
-        raise ScenarioError("population.weights", f"weights must be finite numbers >= 0; "
-                            f"data row {bad[0] + 1} has {table[column].iloc[bad[0]]!r}")
-    if weights.sum() <= 0:
-        raise ScenarioError("population.weights", "weights are all zero")
-    return weights
-
-
-def _typed(table: pd.DataFrame) -> pd.DataFrame:
-    """Text columns become categoricals whose levels come from the whole file, so they
-    do not depend on which rows a population happens to draw."""
-    typed = table.copy()
-    for name in typed.columns:
-        column = typed[name]
-        if pd.api.types.is_string_dtype(column) or pd.api.types.is_object_dtype(column):
-            typed[name] = pd.Categorical(column, categories=sorted(column.unique()))
-    return typed
+def check_population_file(scenario: Scenario) -> None:
+    """Read the scenario's population file, if it has one, and refuse every use of its
+    columns that what they hold cannot answer, before anything is simulated."""
+    spec = scenario.population
+    if spec is not None and spec.file is not None:
+        check_column_uses(scenario, population_file(spec))
 
 
 def _resample_file(spec: PopulationSpec, seed: int, ids: np.ndarray) -> pd.DataFrame:
     """Sampling with replacement: patient i takes the row where its own uniform falls
     on the cumulative weights (inverse CDF of the weighted empirical distribution)."""
-    table = _read_file(Path(spec.file))
-    weights = _sampling_weights(table, spec.weights)
-    if spec.weights is not None:
-        table = table.drop(columns=spec.weights)
-    missing = table.columns[table.isna().any()].tolist()
-    if missing:
-        raise ScenarioError("population.file", f"{spec.file}: columns {missing} have "
-                            f"missing values; fill or drop them first")
-    table = _typed(table)
-    for attribute in spec.attributes:
-        if attribute.name in table.columns:
-            raise ScenarioError(_attribute_path(attribute.name),
-                                "is also a column of population.file; rename one of them")
-    for derived in spec.derived:
-        if derived.name in table.columns:
-            raise ScenarioError(f"population.derived.{derived.name}",
-                                "is also a column of population.file; rename one of them")
-        if derived.source in table.columns:  # banded over the whole file: order-free
-            table[derived.name] = _band(table[derived.source], derived)
-        elif not any(a.name == derived.source for a in spec.attributes):
-            raise ScenarioError(f"population.derived.{derived.name}.source",
-                                f"{derived.source!r} is neither an attribute nor a file column")
-    cumulative = np.cumsum(weights)
+    file = population_file(spec)
+    cumulative = np.cumsum(file.weights)
     rows = np.searchsorted(cumulative / cumulative[-1], streams.uniforms(seed, ids, ROW_PURPOSE),
                            side="right")
-    return table.iloc[rows].reset_index(drop=True)
+    return file.rows.iloc[rows].reset_index(drop=True)
 
 
 # ------------------------------------------------------------------------ the generator
@@ -416,6 +356,7 @@ def scenario_patients(scenario: Scenario, seed: int, ids: np.ndarray) -> pd.Data
     identical patients when it has none."""
     spec = scenario.population
     if spec is not None and (spec.attributes or spec.file):
+        check_population_file(scenario)
         return draw_population(spec, seed, ids)
     return pd.DataFrame({PATIENT: np.asarray(ids, dtype=np.int64)})
 
@@ -438,16 +379,13 @@ def subgroup_attributes(patients: pd.DataFrame) -> list[str]:
 def expected_covariate(spec: PopulationSpec, attribute: str, level: str | None = None) -> float:
     """The population mean of an attribute (or the share at `level`), exactly, from the
     spec rather than from a draw: what the 'average patient' cohort is given."""
-    if spec.file is not None and not any(a.name == attribute for a in spec.attributes):
-        table = _read_file(Path(spec.file))
-        weights = _sampling_weights(table, spec.weights)
-        for derived in spec.derived:
-            if derived.source in table.columns:
-                table[derived.name] = _band(table[derived.source], derived)
-        column = table[attribute]
-        x = (column.astype(str) == level) if level is not None else column
-        return float(np.average(x.to_numpy(dtype=float), weights=weights))
     derived = next((d for d in spec.derived if d.name == attribute), None)
+    source = attribute if derived is None else derived.source
+    if spec.file is not None and not any(a.name == source for a in spec.attributes):
+        file = population_file(spec)
+        column = file.rows[source] if derived is None else _band(file.rows[source], derived)
+        x = (column.astype(str) == level) if level is not None else column
+        return float(np.average(x.to_numpy(dtype=float), weights=file.weights))
     if derived is not None:
         source = next(a for a in spec.attributes if a.name == derived.source)
         k = list(derived.labels).index(level)

@@ -11,10 +11,12 @@ from typing import Iterable, Sequence
 import numpy as np
 
 from .errors import ScenarioError
-from .fields import AGE, TOLERANCE, Reading, Reference, did_you_mean, listing, show
+from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_you_mean,
+                     listing, show)
 from .read_parameters import support
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
+MAX_LISTED = 12  # levels named in one message
 NO_AGE = 'no age is known; give start.age or a population attribute named "age"'
 Occurrence = TransitionSpec | EventSpec
 
@@ -187,12 +189,27 @@ def population_kinds(s: Scenario, reading: Reading) -> dict[str, tuple[str, tupl
     kinds: dict[str, tuple[str, tuple[str, ...]]] = {}
     population = s.population
     if population is not None:
-        kinds.update((c, ("column", ())) for c in reading.file_columns or ())
+        kinds.update(reading.file_columns or {})
         for a in population.attributes:
             kinds[a.name] = ("continuous", ()) if a.continuous else \
                 (a.distribution, tuple(a.params.get("levels", ())))
         kinds.update((d.name, ("categorical", d.labels)) for d in population.derived)
     return kinds
+
+
+def level_listing(levels: Sequence) -> str:
+    """Levels for a message, cut after MAX_LISTED (a file column may have thousands)."""
+    shown = listing(describe(level) for level in levels[:MAX_LISTED])
+    more = len(levels) - MAX_LISTED
+    return shown + (f" and {more} more" if more > 0 else "")
+
+
+def not_a_level(value, name: str, levels: Sequence, reading: Reading) -> str:
+    """Why a level given for a categorical attribute (or file column) cannot be used."""
+    called = f"column {name!r}" if name in (reading.file_columns or {}) else repr(name)
+    close = closest(value, levels) if isinstance(value, str) else None
+    hint = f"; did you mean {close!r}?" if close else ""
+    return f"{describe(value)} is not a level of {called} (levels: {level_listing(levels)}{hint})"
 
 
 def check_effects(s: Scenario, reading: Reading) -> None:
@@ -203,14 +220,13 @@ def check_effects(s: Scenario, reading: Reading) -> None:
             if name not in kinds:
                 raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
             kind, levels = kinds[name]
-            level_list = listing(repr(level) for level in levels)
             if kind == "categorical" and effect.level is None:
                 raise ScenarioError(f"{here}.level", f"is required: {name!r} is categorical; "
                                     f"give the level the hazard ratio applies to, one of "
-                                    f"{level_list}")
+                                    f"{level_listing(levels)}")
             if kind == "categorical" and effect.level not in levels:
-                raise ScenarioError(f"{here}.level", f"{effect.level!r} is not a level of "
-                                    f"{name!r}; levels: {level_list}")
+                raise ScenarioError(f"{here}.level",
+                                    not_a_level(effect.level, name, levels, reading))
             if kind == "yesno" and effect.level is not None:
                 raise ScenarioError(f"{here}.level", f"{name!r} is a yes/no attribute: the "
                                     "hazard ratio applies when yes; remove level")

@@ -46,10 +46,17 @@ def describe(value: Any) -> str:
     return f"{type(value).__name__} {value}"
 
 
+def closest(word: str, choices: Iterable[str]) -> str | None:
+    """The choice closest to `word` (difflib, ignoring case, so 'B' finds 'b'), if any."""
+    folded = {choice.lower(): choice for choice in reversed(list(choices))}  # first wins
+    close = difflib.get_close_matches(word.lower(), list(folded), n=1)
+    return folded[close[0]] if close else None
+
+
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """' (did you mean 'x'?)' when a choice is close to `word`, else ''."""
-    close = difflib.get_close_matches(word, list(choices), n=1)
-    return f" (did you mean {close[0]!r}?)" if close else ""
+    close = closest(word, choices)
+    return f" (did you mean {close!r}?)" if close else ""
 
 
 def listing(names: Iterable[str]) -> str:
@@ -124,7 +131,9 @@ class Reference:
 class Reading:
     """What the first pass hands to the second besides the specs."""
     references: list[Reference] = field(default_factory=list)
-    file_columns: tuple[str, ...] | None = None  # header of a population file
+    # a population file's columns -> (kind, levels) as in checks.attribute_kinds: kind
+    # "column" (any use accepted) from the header, the file's own kinds once it is read
+    file_columns: dict[str, tuple[str, tuple[str, ...]]] | None = None
 
 
 class Node:

@@ -1,5 +1,6 @@
 """Reading [population]: attribute distributions, their correlation and banded attributes,
-or a CSV/Parquet file of patients to resample (only its header is read here)."""
+or a CSV/Parquet file of patients to resample (only its header is read here; the whole file
+is read and its uses checked when patients are drawn: population_file.py, file_uses.py)."""
 from __future__ import annotations
 
 import math
@@ -8,6 +9,7 @@ from pathlib import Path
 from .correlation import read_correlation_matrix
 from .fields import (AGE, ANY, MAX_PATIENTS, POSITIVE, PROBABILITY, REQUIRED, SHARE,
                      TOLERANCE, Node, did_you_mean, listing, show)
+from .population_file import read_header
 from .spec import AttributeSpec, DerivedSpec, PopulationSpec
 
 POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
@@ -18,7 +20,6 @@ ATTRIBUTE_KEYS = {
 POSITIVE_ATTRIBUTE_KEYS = {"sd", "sdlog", "alpha", "beta", "shape", "scale"}
 CORRELATION_KEYS = ("attributes", "matrix")
 DERIVED_KEYS = ("name", "from", "edges", "labels")
-FILE_SUFFIXES = (".csv", ".parquet")
 MIN_TRUNCATED_MASS = 1e-6  # less than this between lower and upper: nobody can be drawn
 
 
@@ -33,14 +34,18 @@ def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
             if node.has(key):
                 node.fail(key, "cannot be combined with file; a file population takes its "
                                "attributes from the file's columns")
-        file, columns = read_file_header(node, base)
-        node.reading.file_columns = columns
+        given = node.text("file", nonempty=True)
+        file = base / given
+        columns = read_header(file, given)
         weights = node.text("weights", None, nonempty=True)
         if weights is not None and weights not in columns:
             node.fail("weights", f"{weights!r} is not a column of {file.name}; columns: "
                                  f"{listing(columns)}")
+        attributes = [c for c in columns if c != weights]
+        node.reading.file_columns = {c: ("column", ()) for c in attributes}
         return PopulationSpec(size=size, file=file, weights=weights,
-                              derived=read_derived(node, dict.fromkeys(columns), set(columns)))
+                              derived=read_derived(node, dict.fromkeys(attributes),
+                                                   set(columns)))
     if node.has("weights"):
         node.fail("weights", "is only used with file")
     if not node.has("attributes"):
@@ -54,31 +59,6 @@ def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
     return PopulationSpec(size=size, attributes=attributes, correlation_attributes=names,
                           correlation=matrix,
                           derived=read_derived(node, lowest, {a.name for a in attributes}))
-
-
-def read_file_header(node: Node, base: Path) -> tuple[Path, tuple[str, ...]]:
-    given = node.text("file", nonempty=True)
-    path = base / given
-    if path.suffix.lower() not in FILE_SUFFIXES:
-        node.fail("file", f"must be a .csv or .parquet file, got {given!r}")
-    try:
-        found = path.is_file()
-    except (OSError, ValueError):
-        found = False
-    if not found:
-        node.fail("file", f"no such file: {path} (a relative path is read from the folder "
-                          "of the scenario file)")
-    try:
-        if path.suffix.lower() == ".csv":
-            import pandas
-            columns = pandas.read_csv(path, nrows=0).columns
-        else:
-            import pyarrow.parquet
-            columns = pyarrow.parquet.read_schema(path).names
-    except (OSError, ValueError) as error:
-        reason = (str(error).splitlines() or [type(error).__name__])[0]
-        node.fail("file", f"cannot read the column names of {path.name}: {reason}")
-    return path, tuple(str(c) for c in columns)
 
 
 def read_attributes(nodes: list[Node]) -> tuple[AttributeSpec, ...]:
@@ -150,6 +130,16 @@ def lowest_value(attribute: AttributeSpec) -> float:
     return attribute.params.get("lower", 0.0)  # lognormal, gamma and beta start at 0
 
 
+def band_gap(source: str, first_edge: float, lowest: float) -> str | None:
+    """Why some patients would fit no band: the first edge is above the lowest value of
+    the source (None when it is not)."""
+    if first_edge <= lowest:
+        return None
+    return (f"the first edge ({show(first_edge)}) is above the lowest value {source!r} can "
+            f"take ({show(lowest)}), so some patients would fit no band; lower the first "
+            "edge (it may be -inf)")
+
+
 def read_derived(node: Node, sources: dict[str, float | None], taken: set[str]
                  ) -> tuple[DerivedSpec, ...]:
     """Banded attributes from `sources`: continuous attributes with their lowest value,
@@ -168,12 +158,9 @@ def read_derived(node: Node, sources: dict[str, float | None], taken: set[str]
                                f"{did_you_mean(source, sources)}; choose one of: "
                                f"{listing(sorted(sources))}")
         edges = entry.numbers("edges", open_start=True, increasing=True)
-        lowest = sources[source]
-        if lowest is not None and edges[0] > lowest:
-            entry.fail("edges", f"the first edge ({show(edges[0])}) is above the lowest value "
-                                f"{source!r} can take ({show(lowest)}), so some patients would "
-                                "fit no band; lower it (it may be -inf) or truncate "
-                                f"{source!r}")
+        gap = None if sources[source] is None else band_gap(source, edges[0], sources[source])
+        if gap:
+            entry.fail("edges", f"{gap} or truncate {source!r}")
         labels = entry.texts("labels")
         if len(labels) != len(edges):
             entry.fail("labels", f"has {len(labels)} labels for {len(edges)} edges; label i "

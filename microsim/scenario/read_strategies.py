@@ -13,9 +13,9 @@ from dataclasses import replace
 from typing import Callable, Iterable, Iterator
 
 from .checks import (check_age_known, check_effects, check_kind, check_lifetime, check_memory,
-                     check_names, check_row, check_states, may_be_positive, occurrences,
-                     population_kinds, reachable_from_start, unknown_attribute,
-                     unknown_state)
+                     check_names, check_row, check_states, level_listing, may_be_positive,
+                     not_a_level, occurrences, population_kinds, reachable_from_start,
+                     unknown_attribute, unknown_state)
 from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, Node, Reading, Role,
                      describe, did_you_mean, listing, show)
@@ -302,27 +302,31 @@ def check_eligible(s: Scenario, reading: Reading, eligible: EligibilitySpec, pat
                    ) -> str | None:
     """Refuse conditions the population cannot answer; say why nobody can be eligible
     when the attribute distributions make the group certainly empty (else None)."""
-    kinds = population_kinds(s, reading)
-    for group in ELIGIBLE_KEYS:
-        for i, condition in enumerate(getattr(eligible, group)):
-            check_condition(s, kinds, condition, f"{path}.{group}[{i}]")
+    check_conditions(s, reading, eligible, path)
     if not eligible.any:
         return empty_reason(s, eligible.all)
     reasons = [empty_reason(s, eligible.all + (c,)) for c in eligible.any]
     return "; ".join(dict.fromkeys(reasons)) if all(reasons) else None
 
 
-def check_condition(s: Scenario, kinds: dict[str, tuple[str, tuple[str, ...]]],
-                    condition: ConditionSpec, here: str) -> None:
+def check_conditions(s: Scenario, reading: Reading, eligible: EligibilitySpec, path: str
+                     ) -> None:
+    """Refuse conditions the population's attributes (or file columns) cannot answer."""
+    for group in ELIGIBLE_KEYS:
+        for i, condition in enumerate(getattr(eligible, group)):
+            check_condition(s, reading, condition, f"{path}.{group}[{i}]")
+
+
+def check_condition(s: Scenario, reading: Reading, condition: ConditionSpec, here: str) -> None:
     name, test, value = condition.attribute, condition.test, condition.value
+    kinds = population_kinds(s, reading)
     if s.population is None or name not in kinds:
         raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
     kind, levels = kinds[name]
     at = f"{here}.{test}"
-    level_list = listing(repr(level) for level in levels)
     if kind == "categorical" and test in NUMBER_TESTS:
         raise ScenarioError(at, f"{name!r} is categorical; {test} compares numbers. Use equals "
-                            f"or one_of with its levels: {level_list}")
+                            f"or one_of with its levels: {level_listing(levels)}")
     if kind == "yesno" and test != "equals":
         raise ScenarioError(at, f"{name!r} is a yes/no attribute; use equals = true or "
                             "equals = false")
@@ -339,8 +343,7 @@ def check_condition(s: Scenario, kinds: dict[str, tuple[str, tuple[str, ...]]],
         for j, level in enumerate(value if test == "one_of" else (value,)):
             if level not in levels:
                 where = f"{at}[{j}]" if test == "one_of" else at
-                raise ScenarioError(where, f"{describe(level)} is not a level of {name!r}; "
-                                    f"levels: {level_list}")
+                raise ScenarioError(where, not_a_level(level, name, levels, reading))
 
 
 def empty_reason(s: Scenario, conditions: tuple[ConditionSpec, ...]) -> str | None:

@@ -1,0 +1,66 @@
+"""Every use of a population file's columns, checked once the file is read.
+
+The scenario reader knows only a file's column names, so it accepts any use of a column.
+When a command reads the file (`population_file.read_population_file`), the columns' kinds
+and levels take the names' place and the reader's own checks of effects and eligibility run
+again with them, so a file column obeys exactly the rules of a drawn attribute. Bands, age
+and names are checked against the columns here.
+"""
+from __future__ import annotations
+
+from dataclasses import replace
+
+from .checks import check_effects
+from .errors import ScenarioError
+from .fields import AGE, Reading
+from .population_file import FILE, KIND_WORDS, PopulationFile
+from .read_population import band_gap
+from .read_strategies import check_conditions, under
+from .spec import DerivedSpec, PopulationSpec, Scenario
+
+
+def check_column_uses(s: Scenario, file: PopulationFile) -> None:
+    """Effects and eligibility conditions on the file's columns, by the rules of drawn
+    attributes (a level the column has, a test that suits its kind)."""
+    reading = Reading(file_columns=file.kinds())
+    check_effects(s, reading)
+    for strategy in s.strategies:
+        prefix = f"strategies.{strategy.name}"
+        if strategy.eligible is not None:
+            check_conditions(s, reading, strategy.eligible, f"{prefix}.eligible")
+        with under(prefix):  # the strategy's added transitions, as a model of their own
+            check_effects(replace(s, transitions=strategy.transitions, events=()), reading)
+
+
+def check_file_population(spec: PopulationSpec, file: PopulationFile) -> None:
+    """The population's own uses of the file's columns: names, bands and age."""
+    for attribute in spec.attributes:
+        if attribute.name in file.columns:
+            raise ScenarioError(f"population.attributes.{attribute.name}",
+                                f"is also a column of {file.path.name}; rename one of them")
+    for derived in spec.derived:
+        check_band(spec, derived, file)
+    age = file.columns.get(AGE)
+    if age is not None and age.kind != "continuous":
+        raise ScenarioError(FILE, f"column {AGE!r} of {file.path.name} is the age at time 0 "
+                                  f"and must hold numbers, but it holds {KIND_WORDS[age.kind]}")
+
+
+def check_band(spec: PopulationSpec, derived: DerivedSpec, file: PopulationFile) -> None:
+    """A band of a column needs numbers, and a first edge at or below the column's
+    lowest value (bands of drawn attributes are checked by `check_population`)."""
+    path = f"population.derived.{derived.name}"
+    if derived.name in file.columns:
+        raise ScenarioError(path, f"is also a column of {file.path.name}; rename one of them")
+    column = file.columns.get(derived.source)
+    if column is None:
+        if not any(a.name == derived.source for a in spec.attributes):
+            raise ScenarioError(f"{path}.from", f"{derived.source!r} is neither an attribute "
+                                f"nor a column of {file.path.name}")
+        return
+    if column.kind != "continuous":
+        raise ScenarioError(f"{path}.from", f"column {derived.source!r} of {file.path.name} "
+                            f"holds {KIND_WORDS[column.kind]}; bands need a column of numbers")
+    gap = band_gap(derived.source, derived.edges[0], column.lowest)
+    if gap:
+        raise ScenarioError(f"{path}.edges", gap)
