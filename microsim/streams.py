@@ -3,22 +3,24 @@
 which other patients exist.
 
 The generator is Philox4x64-10 (Salmon, Moraes, Dror & Shaw 2011, "Parallel random
-numbers: as easy as 1, 2, 3", SC'11), written with numpy uint64 arrays so that one call
-evaluates it for millions of (key, counter) pairs at once.
-
-Layout of one draw (all words unsigned 64-bit):
+numbers: as easy as 1, 2, 3", SC'11). Layout of one draw (all words unsigned 64-bit):
 
     key     = (seed, purpose_id(purpose))
-    counter = (occurrence // 4, patient id, 0, 0)
+    counter = (patient id, occurrence // 4, 0, 0)
     draw    = word number occurrence % 4 of the Philox output block
 
-So patient p's draws for one purpose are exactly the raw output stream of
-`numpy.random.Philox(key=(seed, purpose_id), counter=p * 2**64 - 1)`: numpy adds one to
-the counter before each block, and occurrence j is the j-th 64-bit word. The two last
-counter words are zero and free for a later need (e.g. a replicate index). Purposes are
-keyed by a hash of their name, not by position, so adding a purpose (a strategy with one
-more transition) never shifts the draws of the others, and strategies that use the same
-purpose name share the same draws (common random numbers).
+For one purpose and one block of four occurrences, consecutive patient ids are therefore
+consecutive counter values of one keyed stream: the draws of patients p .. p + n - 1 for
+occurrences 4k .. 4k + 3 are exactly the 4n raw words of
+`numpy.random.Philox(key=(seed, purpose_id), counter=k * 2**64 + p - 1)` (numpy adds one to
+the counter before each block), so numpy's compiled generator fills whole arrays of a batch
+at its own speed (`block`, and `uniforms` for one occurrence). Scattered (patient,
+occurrence) pairs are evaluated by the same function written with numpy uint64 arrays
+(`philox4x64_10`), bit for bit. The two last counter words are zero and free for a later
+need (e.g. a replicate index). Purposes are keyed by a hash of their name, not by position,
+so adding a purpose (a strategy with one more transition) never shifts the draws of the
+others, and strategies that use the same purpose name share the same draws (common random
+numbers).
 """
 from __future__ import annotations
 
@@ -87,8 +89,8 @@ def to_open_unit(words) -> np.ndarray:
     possible draw. (Top 53 bits plus half a step would need 54 significant bits and
     round to exactly 1.0 for the largest word.)
     """
-    k = np.asarray(words, dtype=np.uint64) >> np.uint64(12)
-    return (2.0 * k.astype(np.float64) + 1.0) * 2.0**-53
+    odd = (np.asarray(words, dtype=np.uint64) >> np.uint64(11)) | np.uint64(1)  # 2k + 1
+    return odd.astype(np.float64) * 2.0**-53
 
 
 def _as_seed(seed) -> np.uint64:
@@ -108,6 +110,21 @@ def _as_indices(values, what: str) -> np.ndarray:
     return array.astype(np.uint64)
 
 
+def _contiguous(patients: np.ndarray) -> bool:
+    """True for ids p, p + 1, ..., p + n - 1: one run of counters of a keyed stream."""
+    return patients.ndim == 1 and patients.size > 0 and bool(
+        int(patients[-1]) - int(patients[0]) == patients.size - 1
+        and (patients.size == 1 or np.all(np.diff(patients) == 1)))
+
+
+def _run(seed: int, first: int, n: int, purpose: int, block_number: int) -> np.ndarray:
+    """(n, 4) words of block `block_number` for patients first .. first + n - 1, from
+    numpy's Philox keyed by (seed, purpose) and set to the run's first counter."""
+    counter = ((block_number << 64) + first - 1) % 2**256
+    bits = np.random.Philox(counter=counter, key=int(_as_seed(seed)) + (purpose << 64))
+    return bits.random_raw(4 * n).reshape(n, 4)
+
+
 def uniforms(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
     """Uniform draws in (0, 1) for each (patient id, occurrence) pair.
 
@@ -117,10 +134,14 @@ def uniforms(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
     """
     patients = _as_indices(patient_ids, "patient ids")
     occurrence = _as_indices(occurrences, "occurrences")
+    if occurrence.ndim == 0 and _contiguous(patients):
+        k, lane = divmod(int(occurrence), 4)
+        words = _run(seed, int(patients[0]), patients.size, purpose_id(purpose), k)[:, lane]
+        return to_open_unit(words)
     patients, occurrence = np.broadcast_arrays(patients, occurrence)
     zero = np.uint64(0)
     words = philox4x64_10(
-        (occurrence >> np.uint64(2), patients, zero, zero),
+        (patients, occurrence >> np.uint64(2), zero, zero),
         (_as_seed(seed), np.uint64(purpose_id(purpose))),
     )
     lane = (occurrence & np.uint64(3)).astype(np.intp)
@@ -129,16 +150,14 @@ def uniforms(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
 
 
 def sequence(seed: int, patient_id: int, purpose: str, start: int, n: int) -> np.ndarray:
-    """Occurrences start .. start+n-1 of one patient's draws for one purpose.
-
-    The same numbers as `uniforms`, taken from numpy's own Philox4x64-10 (the layout above
-    makes one (patient, purpose) stream a plain numpy Philox stream), so a long run of one
-    patient's draws costs microseconds instead of a vectorised call's fixed overhead."""
-    blocks_before, skip = divmod(operator.index(start), 4)
-    counter = (operator.index(patient_id) << 64) + blocks_before - 1
-    bits = np.random.Philox(counter=counter % 2**256,
-                            key=(int(_as_seed(seed)), purpose_id(purpose)))
-    return to_open_unit(bits.random_raw(skip + n)[skip:])
+    """Occurrences start .. start+n-1 of one patient's draws for one purpose (the same
+    numbers as `uniforms`; one vectorised evaluation of the blocks they fall in)."""
+    first, skip = divmod(operator.index(start), 4)
+    blocks = np.arange(first, first + -(-(skip + n) // 4), dtype=np.uint64)
+    zero = np.uint64(0)
+    words = philox4x64_10((np.uint64(operator.index(patient_id)), blocks, zero, zero),
+                          (_as_seed(seed), np.uint64(purpose_id(purpose))))
+    return to_open_unit(words.T.reshape(-1)[skip:skip + n])
 
 
 def normals(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
@@ -146,23 +165,31 @@ def normals(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
     return ndtri(uniforms(seed, patient_ids, purpose, occurrences))
 
 
-def block(seed: int, patient_ids, purposes: Sequence[str], n_occurrences: int) -> np.ndarray:
-    """All draws of occurrences 0..n_occurrences-1 for each patient and purpose.
-
-    Returns shape (n_patients, n_purposes, n_occurrences), equal element by element to
-    `uniforms`, but using all four words of every Philox block.
-    """
+def block(seed: int, patient_ids, purposes: Sequence[str], n_occurrences: int,
+          first: int = 0) -> np.ndarray:
+    """All draws of occurrences first .. first + n_occurrences - 1 for each patient and
+    purpose: shape (n_patients, n_purposes, n_occurrences), equal element by element to
+    `uniforms`. Contiguous patient ids (a batch) are filled by numpy's generator directly;
+    any other ids by the vectorised function, using all four words of every block."""
     patients = _as_indices(patient_ids, "patient ids").reshape(-1)
-    if n_occurrences < 0:
-        raise ValueError(f"n_occurrences must be >= 0, got {n_occurrences}")
-    n_blocks = -(-n_occurrences // 4)
-    ids = np.array([purpose_id(p) for p in purposes], dtype=np.uint64)
-    counter_block = np.arange(n_blocks, dtype=np.uint64)[None, None, :]
-    zero = np.uint64(0)
-    words = philox4x64_10(
-        (counter_block, patients[:, None, None], zero, zero),
-        (_as_seed(seed), ids[None, :, None]),
-    )
-    words = np.broadcast_to(words, (4, patients.size, ids.size, n_blocks))
-    ordered = np.moveaxis(words, 0, -1).reshape(patients.size, ids.size, 4 * n_blocks)
-    return to_open_unit(ordered[:, :, :n_occurrences])
+    if n_occurrences < 0 or first < 0:
+        raise ValueError(f"occurrences must be >= 0, got {first} and {n_occurrences}")
+    low, skip = divmod(first, 4)
+    n_blocks = -(-(skip + n_occurrences) // 4)
+    ids = [purpose_id(p) for p in purposes]
+    if _contiguous(patients):
+        start = int(patients[0])
+        words = np.empty((patients.size, len(ids), 4 * n_blocks), np.uint64)
+        for j, purpose in enumerate(ids):
+            for b in range(n_blocks):
+                words[:, j, 4 * b:4 * b + 4] = _run(seed, start, patients.size, purpose, low + b)
+    else:
+        counter_block = np.arange(low, low + n_blocks, dtype=np.uint64)[None, None, :]
+        zero = np.uint64(0)
+        blocks = philox4x64_10(
+            (patients[:, None, None], counter_block, zero, zero),
+            (_as_seed(seed), np.asarray(ids, dtype=np.uint64)[None, :, None]),
+        )
+        blocks = np.broadcast_to(blocks, (4, patients.size, len(ids), n_blocks))
+        words = np.moveaxis(blocks, 0, -1).reshape(patients.size, len(ids), 4 * n_blocks)
+    return to_open_unit(words[:, :, skip:skip + n_occurrences])

@@ -55,17 +55,32 @@ def test_philox_bit_exact_against_numpy_for_random_keys_and_counters():
         np.testing.assert_array_equal(ours[:, i], numpy_block(counters[:, i], keys[:, i]))
 
 
-def test_patient_stream_is_numpys_philox_stream():
-    # Documented layout: patient p's draws for a purpose are the raw words of
-    # numpy.random.Philox(key=(seed, purpose_id), counter=p * 2**64 - 1), including the
-    # carry into the patient word (which is why p = 0 starts at 2**256 - 1).
-    for patient in (0, 5, 2**40 + 3):
-        reference = np.random.Philox(
-            counter=(patient * TWO_64 - 1) % 2**256,
-            key=as_int([SEED, streams.purpose_id("death")]),
-        ).random_raw(11)
-        ours = streams.uniforms(SEED, patient, "death", np.arange(11))
+def test_a_batch_is_one_run_of_numpys_philox_stream():
+    # Documented layout: for one purpose and block k of four occurrences, patients
+    # p .. p + n - 1 are the 4n raw words of numpy.random.Philox(key=(seed, purpose_id),
+    # counter=k * 2**64 + p - 1), including the borrow at p = 0 (2**256 - 1 for k = 0).
+    key = as_int([SEED, streams.purpose_id("death")])
+    for first, k in ((0, 0), (0, 3), (5, 1), (2**40 + 3, 2)):
+        reference = np.random.Philox(counter=(k * TWO_64 + first - 1) % 2**256,
+                                     key=key).random_raw(4 * 7).reshape(7, 4)
+        ids = np.arange(first, first + 7)
+        ours = streams.uniforms(SEED, ids[:, None], "death", np.arange(4 * k, 4 * k + 4))
         np.testing.assert_array_equal(ours, streams.to_open_unit(reference))
+        # the bulk path (contiguous ids) and the scattered path give the same numbers
+        np.testing.assert_array_equal(streams.block(SEED, ids, ["death"], 4, first=4 * k)[:, 0],
+                                      ours)
+        for lane in range(4):
+            np.testing.assert_array_equal(streams.uniforms(SEED, ids, "death", 4 * k + lane),
+                                          ours[:, lane])
+
+
+def test_scattered_and_contiguous_ids_agree():
+    ids = np.arange(100, 400)
+    bulk = streams.block(SEED, ids, ["a", "b"], 9, first=3)
+    order = np.random.default_rng(2).permutation(ids.size)
+    np.testing.assert_array_equal(streams.block(SEED, ids[order], ["a", "b"], 9, first=3),
+                                  bulk[order])
+    np.testing.assert_array_equal(streams.sequence(SEED, 117, "b", 3, 9), bulk[17, 1])
 
 
 def test_purpose_id_is_blake2b_of_the_name():
