@@ -467,3 +467,21 @@ def test_population_and_sensitivity_use_the_seed_given(tmp_path, capsys):
     capsys.readouterr()
     assert not tables["population", 1].equals(tables["population", 2])
     assert not tables["sensitivity", 1].equals(tables["sensitivity", 2])
+
+
+def test_a_psa_resumed_with_another_seed_is_refused_before_any_work(tmp_path, capsys):
+    command = ["run", str(WARD), "--patients", "20", "--psa", "--draws", "2",
+               "--psa-patients", "20", "--out", str(tmp_path)]
+    assert main([*command, "--seed", "1"]) == 0
+    capsys.readouterr()
+    before = snapshot(tmp_path)
+    assert main([*command, "--seed", "2"]) == 2
+    assert "was written by a different run" in refused(capsys.readouterr(), "error: psa: ")
+    assert snapshot(tmp_path) == before
+
+
+def test_an_engine_the_model_cannot_use_is_refused_before_the_psa(tmp_path, capsys):
+    assert main(["run", str(WARD), "--psa", "--draws", "2", "--engine", "vectorised",
+                 "--out", str(tmp_path / "out")]) == 2
+    refused(capsys.readouterr(), "error: --engine: the vectorised engine runs cycle models")
+    assert list(tmp_path.iterdir()) == []
