@@ -14,7 +14,7 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 from __future__ import annotations
 
 import time
-from pathlib import Path
+from importlib import resources
 
 import numpy as np
 import simpy
@@ -24,11 +24,18 @@ from microsim.patients.multipliers import cohort_multipliers
 from microsim.engines import event_engine
 from microsim.engines.histories import Histories
 from microsim.engines.plan import paused_gc
-from microsim.scenario import parse_scenario, read_scenario
+from microsim.scenario import Scenario, parse_scenario, read_scenario
 from microsim.patients.population import cohort_patients
 from microsim.simulation import simulate
 
-DEMO = Path(__file__).resolve().parent.parent / "scenarios" / "lakemoor_kidney.toml"
+DEMO = "lakemoor_kidney.toml"
+
+
+def demo_scenario() -> Scenario:
+    """The demo scenario, read from the installed package: scenarios/ ships as the data
+    package microsim.examples (see pyproject.toml), so this works wherever microsim runs."""
+    with resources.as_file(resources.files("microsim.examples") / DEMO) as path:
+        return read_scenario(path)
 
 BENCH_MODEL = """
 title = "benchmark: a relapsing condition with competing risks"
@@ -122,7 +129,7 @@ def engine_ratio(patients: int, repeats: int) -> dict:
 def cycle_ratio(patients: int) -> dict:
     """The cycle engines on the demo: patient-cycles per second of the SimPy cycle engine
     (over bare single-process timeouts) and of the vectorised one (over the SimPy one)."""
-    model = bind(read_scenario(DEMO))
+    model = bind(demo_scenario())
     people = cohort_patients(patients)
     rates = {}
     for engine in ("simpy", "vectorised"):
@@ -140,7 +147,7 @@ def crn_ratio(patients: int) -> dict:
     """SE of incremental QALYs with common random numbers over independent streams."""
     from microsim.decision.strategies import EFFECT, patient_outcomes, run_strategies, strategy_names
     from microsim.patients.population import patients_for
-    scenario = read_scenario(DEMO)
+    scenario = demo_scenario()
     names = strategy_names(scenario)
     if len(names) < 2:
         return {}

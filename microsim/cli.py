@@ -1,23 +1,31 @@
 """The command line: thin wrappers that read, call the API, print, and write outputs.
 
-A `ScenarioError` (bad input) becomes one line on stderr and exit code 2, before anything
-is written; every command that writes puts its tables and a manifest in
-`<out>/<scenario name>/` atomically.
+Bad input (a `ScenarioError`, a bad option, an --out that cannot take files) becomes one
+line on stderr and exit code 2, before any work and before anything is written; every
+command that writes puts its tables and a manifest in `<out>/<scenario name>/` atomically.
+Results that cannot be stored (a full disk) are one line and exit code 74.
 """
 from __future__ import annotations
 
 import argparse
 import json
+import re
 import sys
 import time
+from contextlib import nullcontext
 from pathlib import Path
 
 from microsim import CAUTION
 from microsim.present import show
 from microsim.scenario import ScenarioError, read_scenario
 from microsim.scenario.fields import MAX_PATIENTS
+from microsim.store import OutputError
 
 EXIT_BAD_INPUT = 2
+# EX_IOERR of BSD's sysexits.h (common practice): the input was fine, the results could
+# not be stored; distinct from 2 so that a script can tell "fix the command" from "free
+# the disk and run the same command again".
+EXIT_NOT_WRITTEN = 74
 EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
 
 
@@ -25,11 +33,32 @@ def out_dir(args, scenario_path: Path) -> Path:
     return Path(args.out) / scenario_path.stem
 
 
+def psa_dir(args) -> Path:
+    return out_dir(args, Path(args.scenario)) / "psa"
+
+
+def check_output(args) -> None:
+    """Refuse an --out that cannot take the command's files, before any work."""
+    from microsim.store import unwritable
+    folders = [out_dir(args, Path(args.scenario))]
+    if getattr(args, "psa", False):
+        folders.append(psa_dir(args))
+    for folder in folders:
+        problem = unwritable(folder)
+        if problem:
+            raise ScenarioError("--out", problem)
+
+
+def run_seed(args, scenario) -> int:
+    return scenario.simulation.seed if args.seed is None else args.seed
+
+
 def write(args, path: Path, tables: dict, started: float, documents: dict | None = None,
-          quiet: bool = False, **extra) -> None:
+          quiet: bool = False, files: dict | None = None, **extra) -> None:
     from microsim.store import manifest, write_run
     target = out_dir(args, path)
-    write_run(target, tables, manifest(path, started, args.argv, **extra), documents=documents)
+    write_run(target, tables, manifest(path, started, args.argv, **extra), documents=documents,
+              files=files)
     if not quiet:
         count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
         print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {target}/")
@@ -112,7 +141,7 @@ def command_run(args) -> int:
     path = Path(args.scenario)
     psa = None
     if args.psa:
-        psa = {"run_dir": Path(args.out) / path.stem / "psa", "draws": args.draws,
+        psa = {"run_dir": psa_dir(args), "draws": args.draws,
                "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
                "address": args.address, "progress": not args.json}
     result = run_main(path, args.patients, args.seed, psa, args.engine)
@@ -129,13 +158,20 @@ def command_run(args) -> int:
 
 
 def command_validate(args) -> int:
-    """Simulate the model (or one strategy) and compare it with its analytic counterpart."""
-    from microsim.workflow import validate
+    """Simulate the model (or one strategy) and compare it with its analytic counterpart.
+    Histories stream into a scratch folder and move in with the run's other files, or
+    vanish with it when the run is refused or stopped."""
+    from microsim.store import scratch_folder
     started = time.perf_counter()
     path = Path(args.scenario)
-    target = out_dir(args, path)
-    check = validate(path, args.patients, args.seed, args.strategy,
-                     histories=target / "histories.parquet" if args.histories else None,
+    with scratch_folder(out_dir(args, path)) if args.histories else nullcontext() as scratch:
+        histories = scratch / "histories.parquet" if args.histories else None
+        return validation_report(args, path, started, histories)
+
+
+def validation_report(args, path: Path, started: float, histories: Path | None) -> int:
+    from microsim.workflow import validate
+    check = validate(path, args.patients, args.seed, args.strategy, histories=histories,
                      engine=args.engine)
     c = check.comparison
     print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
@@ -149,6 +185,7 @@ def command_validate(args) -> int:
     write(args, path, {"validation_shares": c.shares, "validation_subgroups": c.subgroups,
                        "validation_outcomes": c.outcomes,
                        "average_patient": c.average_patient}, started,
+          files={"histories.parquet": histories} if histories else None,
           seed=check.simulation.seed, verdict=c.verdict)
     print(f"\n{CAUTION}")
     return 0
@@ -160,7 +197,7 @@ def command_population(args) -> int:
     started, path, scenario = begin(args)
     if scenario.population is None:
         raise ScenarioError("population", "the scenario has no population section to preview")
-    seed = scenario.simulation.seed if args.seed is None else args.seed
+    seed = run_seed(args, scenario)
     people = patients_for(scenario, args.patients, seed)
     summary = describe_population(people)
     print(f"Population preview — {scenario.title}: {len(people)} patients, seed {seed}")
@@ -175,9 +212,10 @@ def command_population(args) -> int:
 def command_sensitivity(args) -> int:
     from microsim.uncertainty.one_way import tornado
     started, path, scenario = begin(args)
-    table, measure = tornado(scenario, args.patients, args.seed)
+    seed = run_seed(args, scenario)
+    table, measure = tornado(scenario, args.patients, seed)
     show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)
-    write(args, path, {"one_way": table}, started)
+    write(args, path, {"one_way": table}, started, seed=seed)
     print(f"\n{CAUTION}")
     return 0
 
@@ -187,8 +225,46 @@ def command_benchmark(args) -> int:
     return benchmark(quick=args.quick)
 
 
+def whole_number(low: int, high: int = MAX_PATIENTS):
+    """An argparse type: a whole number from low to high, refused in words of our own."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
+        if not low <= value <= high:
+            raise argparse.ArgumentTypeError(f"must be a whole number from {low} to {high}, "
+                                             f"got {value}")
+        return value
+    return parse
+
+
+COUNT, SEED, ROWS = whole_number(1), whole_number(0, 2**64 - 1), whole_number(0)
+
+# argparse's complaints, reworded as (what, problem); {prog} is the command's name
+ARGPARSE_WORDING = (
+    (r"argument (?P<what>[^:]+): expected one argument", "needs a value after it"),
+    (r"argument (?P<what>[^:]+): (?P<problem>.+)", "{problem}"),
+    (r"the following arguments are required: (?P<what>[^,]+).*", "missing; see `{prog} --help`"),
+    (r"ambiguous option: (?P<what>\S+?)(=\S*)? could match (?P<options>.+)",
+     "could be any of {options}; spell it out"),
+)
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse whose refusals are one line, like every other refusal, not the usage text."""
+
+    def error(self, message: str):
+        for pattern, problem in ARGPARSE_WORDING:
+            match = re.fullmatch(pattern, message)
+            if match:
+                raise ScenarioError(match["what"],
+                                    problem.format(prog=self.prog, **match.groupdict()))
+        raise ScenarioError(self.prog, f"{message}; see `{self.prog} --help`")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = Parser(
         prog="microsim",
         description="Individual-level health microsimulation with a Markov backbone. " + CAUTION)
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
@@ -202,8 +278,8 @@ def build_parser() -> argparse.ArgumentParser:
         return sub
 
     def population_options(sub):
-        sub.add_argument("--patients", type=int, help="population size (default: the scenario's)")
-        sub.add_argument("--seed", type=int, help="run seed (default: the scenario's)")
+        sub.add_argument("--patients", type=COUNT, help="population size (default: the scenario's)")
+        sub.add_argument("--seed", type=SEED, help="run seed (default: the scenario's)")
 
     def engine_option(sub):
         sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
@@ -213,7 +289,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")
-    trace.add_argument("--rows", type=int, default=30, help="rows of the trace to print (default 30)")
+    trace.add_argument("--rows", type=ROWS, default=30, help="rows of the trace to print (default 30)")
     add("summary", command_summary,
         "Steady state, absorption times and probabilities, expected outcomes of the cohort.")
     validate = add("validate", command_validate, "Simulate the model and compare it, state by "
@@ -234,9 +310,9 @@ def build_parser() -> argparse.ArgumentParser:
     engine_option(run)
     run.add_argument("--json", action="store_true", help="print a machine-readable JSON summary")
     run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
-    run.add_argument("--draws", type=int, help="PSA outer draws (default: the scenario's)")
-    run.add_argument("--psa-patients", type=int, help="PSA inner patients per draw")
-    run.add_argument("--workers", type=int, default=1, help="PSA worker processes (default 1)")
+    run.add_argument("--draws", type=COUNT, help="PSA outer draws (default: the scenario's)")
+    run.add_argument("--psa-patients", type=COUNT, help="PSA inner patients per draw")
+    run.add_argument("--workers", type=COUNT, default=1, help="PSA worker processes (default 1)")
     run.add_argument("--backend", choices=("processes", "dask"), default="processes",
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")
     run.add_argument("--address", help="address of a running Dask scheduler")
@@ -246,34 +322,35 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-WHOLE_NUMBERS = {  # option: (smallest allowed, what it is)
-    "patients": (1, "a population size"), "seed": (0, "a seed"), "draws": (1, "a number of draws"),
-    "psa_patients": (1, "a number of patients"), "workers": (1, "a number of workers"),
-    "rows": (0, "a number of rows")}
-
-
-def check_numbers(args) -> None:
-    """Command-line numbers are input too: refuse them like a bad field, in one line."""
-    for name, (low, what) in WHOLE_NUMBERS.items():
-        value = getattr(args, name, None)
-        high = 2**64 - 1 if name == "seed" else MAX_PATIENTS
-        if value is not None and not low <= value <= high:
-            bound = f"from {low} to {high}"
-            raise ScenarioError(f"--{name.replace('_', '-')}",
-                                f"{what} must be a whole number {bound}, got {value}")
+def interrupted(args) -> str:
+    """What a stopped command leaves: its PSA's finished draws, or nothing new at all."""
+    if getattr(args, "psa", False):
+        return (f"interrupted: the PSA draws finished so far are kept in {psa_dir(args)}; "
+                "run the same command again to resume")
+    if hasattr(args, "out"):
+        return "interrupted: nothing was written; outputs already there are unchanged"
+    return "interrupted"
 
 
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
-    args = build_parser().parse_args(argv)
-    args.argv = argv
+    args = None
     try:
-        check_numbers(args)
+        args, unknown = build_parser().parse_known_args(argv)
+        args.argv = argv
+        if unknown:
+            raise ScenarioError(unknown[0], f"unknown option or extra argument; see "
+                                            f"`microsim {args.command} --help`")
+        if hasattr(args, "out"):
+            check_output(args)
         return args.function(args)
     except ScenarioError as error:
         print(f"error: {error}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except OutputError as error:
+        print(f"error: --out: could not write {error.filename} ({error.strerror}); free some "
+              "space or choose another --out, then run the same command again", file=sys.stderr)
+        return EXIT_NOT_WRITTEN
     except KeyboardInterrupt:
-        print("interrupted: finished PSA draws are kept; run the same command again to resume",
-              file=sys.stderr)
+        print(interrupted(args), file=sys.stderr)
         return EXIT_INTERRUPTED

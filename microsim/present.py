@@ -39,12 +39,17 @@ def summary(result: MainResult) -> dict:
             "best_at_threshold": str(d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]),
             "subgroups": records(d.subgroups), "precision": records(d.precision)})
     if result.psa is not None:
-        at = result.psa.acceptability
-        near = at.loc[(at.threshold - s.economics.threshold).abs().idxmin(), "threshold"]
-        out["psa"] = {"draws": int(result.psa.draws.shape[0]),
-                      "acceptability_at_threshold": records(at[at.threshold == near]),
-                      "evpi_at_threshold": records(result.psa.evpi[result.psa.evpi.threshold == near]),
-                      "variance_split": records(result.psa.variance)}
+        p = result.psa
+        out["psa"] = {"draws": int(p.draws.shape[0]), "outcomes": records(p.outcomes)}
+        if p.note is not None:
+            out["psa"]["note"] = p.note
+        else:
+            at = p.acceptability
+            near = at.loc[(at.threshold - s.economics.threshold).abs().idxmin(), "threshold"]
+            out["psa"].update({
+                "acceptability_at_threshold": records(at[at.threshold == near]),
+                "evpi_at_threshold": records(p.evpi[p.evpi.threshold == near]),
+                "variance_split": records(p.variance)})
     return out
 
 
@@ -97,6 +102,11 @@ def print_summary(result: MainResult) -> None:
         print(f"\nAverage patient ({name}): {v.average_verdict}")
     if result.psa is not None:
         p = result.psa
+        show(f"PSA ({len(p.draws)} draws): mean per patient over the draws and the 95% interval "
+             "of the draws (2.5th to 97.5th percentile); costs discounted", p.outcomes)
+        if p.note is not None:
+            print(f"\nPSA: {p.note}.")
+            return
         near = (p.acceptability.threshold - s.economics.threshold).abs()
         at = p.acceptability[near == near.min()]
         show(f"PSA ({len(p.draws)} draws): probability each strategy is best", at)

@@ -24,6 +24,7 @@ from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
 from microsim.results.outcomes import Exposure
 from microsim.patients.population import PATIENT
 from microsim.scenario.errors import ScenarioError
+from microsim.store import writing
 from microsim.patients.treatment import patient_multipliers
 
 
@@ -90,14 +91,17 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             transitions += int(np.sum(h.risk >= 0))
             if partial is not None:
                 table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks])
-                if writer is None:
-                    partial.parent.mkdir(parents=True, exist_ok=True)
-                    writer = pq.ParquetWriter(partial, table.schema)
-                writer.write_table(table)
+                with writing(histories):
+                    if writer is None:
+                        partial.parent.mkdir(parents=True, exist_ok=True)
+                        writer = pq.ParquetWriter(partial, table.schema)
+                    writer.write_table(table)
     finally:
         if writer is not None:
-            writer.close()
+            with writing(histories):
+                writer.close()
     if writer is not None:
-        os.replace(partial, histories)  # complete, so it takes its name
+        with writing(histories):
+            os.replace(partial, histories)  # complete, so it takes its name
     return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)

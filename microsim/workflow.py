@@ -8,7 +8,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 
 from microsim.cohort.summaries import cohort_trace
@@ -18,7 +17,7 @@ from microsim.decision.strategies import Decision, decide, run_strategies
 from microsim.patients.population import patients_for
 from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
 from microsim.scenario import Scenario, ScenarioError, read_scenario
-from microsim.simulation import Simulation, report_grid, simulate
+from microsim.simulation import Simulation, choose_engine, report_grid, simulate
 
 @dataclass(frozen=True)
 class Validation:
@@ -57,24 +56,19 @@ class MainResult:
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
              psa: dict | None = None, engine: str = "auto") -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
-    the analytic counterpart, evaluated, and with PSA when `psa` settings are given."""
+    the analytic counterpart, evaluated, and with PSA when `psa` settings are given.
+
+    What can be refused is refused before any work: the engine, the patients, and the PSA
+    (its folder of another run, its backend) by running it first; its finished draws stay
+    on disk however the rest ends."""
     scenario = read_scenario(path)
     seed = scenario.simulation.seed if seed is None else seed
+    choose_engine(bind(scenario), engine)
     people = patients_for(scenario, patients, seed)
-    if scenario.strategies:
-        sims = run_strategies(scenario, people, seed, engine=engine)
-        decision = decide(scenario, sims)
-    else:
-        model = bind(scenario)
-        sims = {"as written": simulate(model, people, seed,
-                                       batch_size=scenario.simulation.batch_size,
-                                       grid=report_grid(model, scenario.simulation.grid),
-                                       engine=engine)}
-        decision = None
+    psa_result = None if psa is None else parameter_uncertainty(scenario, seed=seed, **psa)
+    sims = run_strategies(scenario, people, seed, engine=engine)
+    decision = decide(scenario, sims) if scenario.strategies else None
     validations = {name: compare(sim) for name, sim in sims.items()}
-    psa_result = None
-    if psa is not None:
-        psa_result = parameter_uncertainty(scenario, **psa)
     return MainResult(scenario, seed, sims, validations, decision, psa_result,
                       result_tables(scenario, sims, validations, decision, psa_result))
 
@@ -97,6 +91,8 @@ def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.Da
                        "precision": decision.precision})
     if psa is not None:
         tables.update({"psa_draws": psa.results, "psa_parameters": psa.draws,
-                       "acceptability": psa.acceptability, "evpi": psa.evpi,
-                       "ce_plane": psa.plane, "psa_variance": psa.variance})
+                       "psa_outcomes": psa.outcomes})
+        if psa.note is None:
+            tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
+                           "ce_plane": psa.plane, "psa_variance": psa.variance})
     return tables

@@ -2,17 +2,25 @@
 
 References outside the project: hashlib.sha256 of the scenario file's bytes and the
 installed versions from importlib.metadata (the manifest); json.loads (the --json
-output); pandas reading back the CSV and Parquet tables; argparse's own --help exit code 0.
-The rules checked are DESIGN.md's: bad input gives one line on stderr starting with
-"error: " that names the field, exit code 2, no traceback, and nothing written.
+output); pandas reading back the CSV and Parquet tables; argparse's own --help exit code 0;
+errno/os.strerror for the operating system's ENOSPC and EACCES; the shell's 130 for a
+process stopped by SIGINT and sysexits.h's EX_IOERR (74) for output that could not be
+written (both common practice). The rules checked are DESIGN.md's: bad input gives one
+line on stderr starting with "error: " that names the field or option, exit code 2, no
+traceback, and nothing written.
 """
 from __future__ import annotations
 
 import argparse
+import errno
 import hashlib
 import json
+import os
+import signal
 import subprocess
 import sys
+import tempfile
+import time
 from importlib import metadata
 from pathlib import Path
 
@@ -30,9 +38,26 @@ DEMO = ROOT / "scenarios" / "lakemoor_kidney.toml"
 WARD = ROOT / "scenarios" / "ward_recovery.toml"
 
 
+ENTRY_POINT = Path(sys.executable).parent / "microsim"  # the installed console script
+
+
 def python_m(*args: str, cwd: Path = ROOT) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-m", "microsim", *map(str, args)], cwd=cwd,
                           capture_output=True, text=True, timeout=120)
+
+
+def refused(captured, start: str) -> str:
+    """The one line of a refusal: on stderr, starting with `start`, nothing on stdout."""
+    lines = captured.err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith(start), captured.err
+    assert captured.out == "" and "Traceback" not in captured.err
+    return lines[0]
+
+
+def snapshot(folder: Path) -> dict[str, bytes]:
+    """Every file under `folder` (hidden ones too) with its bytes."""
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*"))
+            if p.is_file()}
 
 
 # ------------------------------------------------------------------------------- check
@@ -226,3 +251,237 @@ def test_demo_commands_run_and_write(command, tables, tmp_path, capsys):
         # one row per parameter of the demo that carries a low..high range
         ranged = {n for n, p in read_scenario(DEMO).parameters.items() if p.low is not None}
         assert ranged and set(one_way.parameter) == ranged
+
+
+# ------------------------------------------------------- the command line's own refusals
+
+COMMAND_LINES = {  # argv after the command name, the start of the one line on stderr
+    "patients-not-a-number": (["run", WARD, "--patients", "abc"],
+                              "error: --patients: must be a whole number, got 'abc'"),
+    "rows-not-whole": (["trace", WARD, "--rows", "1.5"],
+                       "error: --rows: must be a whole number, got '1.5'"),
+    "draws-zero": (["run", WARD, "--psa", "--draws", "0"],
+                   "error: --draws: must be a whole number from 1 to"),
+    "value-missing": (["run", WARD, "--patients"], "error: --patients: needs a value"),
+    "unknown-option": (["run", WARD, "--bogus", "3"],
+                       "error: --bogus: unknown option or extra argument; see "
+                       "`microsim run --help`"),
+    "unknown-choice": (["validate", WARD, "--engine", "fast"],
+                       "error: --engine: invalid choice: 'fast'"),
+    "missing-scenario": (["run"], "error: scenario: missing; see `microsim run --help`"),
+    "unknown-command": (["frobnicate", WARD], "error: COMMAND: invalid choice: 'frobnicate'"),
+}
+
+
+@pytest.mark.parametrize("case", COMMAND_LINES)
+def test_a_bad_command_line_is_one_line_not_the_usage(case, tmp_path, capsys):
+    argv, start = COMMAND_LINES[case]
+    out = tmp_path / "out"
+    assert main([*map(str, argv), "--out", str(out)]) == 2
+    refused(capsys.readouterr(), start)
+    assert not out.exists()
+
+
+def test_the_entry_point_refuses_in_one_line_with_exit_2_and_helps_with_0(tmp_path):
+    done = subprocess.run([ENTRY_POINT, "run", WARD, "--patients", "abc",
+                           "--out", tmp_path / "out"], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 2
+    assert done.stderr.splitlines() == ["error: --patients: must be a whole number, got 'abc'"]
+    assert done.stdout == "" and not (tmp_path / "out").exists()
+    helped = subprocess.run([ENTRY_POINT, "run", "--help"], capture_output=True, text=True,
+                            timeout=120)
+    assert helped.returncode == 0 and helped.stdout.startswith("usage: microsim run")
+
+
+# ------------------------------------------------------------ --out is checked before work
+
+def out_in_the_way(tmp_path: Path) -> tuple[Path, str]:
+    """--out names a regular file."""
+    (tmp_path / "notes.txt").write_text("mine")
+    return tmp_path / "notes.txt", "notes.txt is a file, not a folder"
+
+
+def out_under_a_file(tmp_path: Path) -> tuple[Path, str]:
+    """--out lies under a regular file: no one, root included, can create it."""
+    (tmp_path / "notes.txt").write_text("mine")
+    return tmp_path / "notes.txt" / "results", "notes.txt is a file, not a folder"
+
+
+def run_folder_is_a_file(tmp_path: Path) -> tuple[Path, str]:
+    """The scenario's own folder under --out is a regular file."""
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / WARD.stem).write_text("mine")
+    return tmp_path / "out", f"{WARD.stem} is a file, not a folder"
+
+
+OUT_PROBLEMS = {"a file": out_in_the_way, "under a file": out_under_a_file,
+                "run folder is a file": run_folder_is_a_file}
+
+
+@pytest.mark.parametrize("problem", OUT_PROBLEMS)
+@pytest.mark.parametrize("command", WRITING + [["validate", "--histories"]], ids=lambda c: c[0])
+def test_an_out_that_cannot_take_files_is_refused_before_any_work(problem, command, tmp_path,
+                                                                     capsys):
+    out, phrase = OUT_PROBLEMS[problem](tmp_path)
+    before = snapshot(tmp_path)
+    assert main([command[0], str(WARD), *command[1:], "--out", str(out)]) == 2
+    line = refused(capsys.readouterr(), "error: --out: ")  # nothing printed: no work done
+    assert phrase in line
+    assert snapshot(tmp_path) == before
+
+
+def test_a_psa_folder_that_is_a_file_is_refused_before_any_work(tmp_path, capsys):
+    (tmp_path / WARD.stem).mkdir()
+    (tmp_path / WARD.stem / "psa").write_text("mine")
+    before = snapshot(tmp_path)
+    assert main(["run", str(WARD), "--psa", "--draws", "2", "--out", str(tmp_path)]) == 2
+    assert "psa is a file, not a folder" in refused(capsys.readouterr(), "error: --out: ")
+    assert snapshot(tmp_path) == before
+
+
+def test_a_folder_that_refuses_files_is_refused_before_any_work(tmp_path, monkeypatch, capsys):
+    """Permission bits do not stop root (CI runs as root), so the refusal of the operating
+    system is simulated where the check meets it: the probe file."""
+    def refuse(*args, **kwargs):
+        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES))
+
+    monkeypatch.setattr(tempfile, "TemporaryFile", refuse)
+    assert main(["run", str(WARD), "--patients", "20", "--out", str(tmp_path / "out")]) == 2
+    line = refused(capsys.readouterr(), "error: --out: cannot write in ")
+    assert os.strerror(errno.EACCES) in line
+    assert list(tmp_path.iterdir()) == []
+
+
+# --------------------------------------------------- a write that fails after the work
+
+def disk_full(monkeypatch):
+    """Every Parquet file fails as on a full disk."""
+    def to_parquet(self, *args, **kwargs):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(pd.DataFrame, "to_parquet", to_parquet)
+
+
+def test_a_full_disk_is_one_line_exit_74_and_earlier_outputs_stay(tmp_path, monkeypatch, capsys):
+    assert main(["trace", str(WARD), "--out", str(tmp_path)]) == 0
+    capsys.readouterr()
+    before = snapshot(tmp_path)
+    disk_full(monkeypatch)
+    assert main(["trace", str(WARD), "--rows", "3", "--out", str(tmp_path)]) == 74
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1 and err[0].startswith("error: --out: could not write "), err
+    assert os.strerror(errno.ENOSPC) in err[0]
+    assert snapshot(tmp_path) == before  # every earlier file as it was, nothing new
+
+
+def test_a_full_disk_on_a_first_run_leaves_nothing(tmp_path, monkeypatch, capsys):
+    disk_full(monkeypatch)
+    assert main(["validate", str(WARD), "--patients", "20", "--histories",
+                 "--out", str(tmp_path / "out")]) == 74
+    assert capsys.readouterr().err.startswith("error: --out: could not write ")
+    assert list(tmp_path.iterdir()) == []
+
+
+# ------------------------------------------------------------- histories land with the run
+
+def test_histories_land_with_the_run(tmp_path, capsys):
+    assert main(["validate", str(WARD), "--patients", "30", "--histories",
+                 "--out", str(tmp_path)]) == 0
+    folder = tmp_path / WARD.stem
+    record = json.loads((folder / "manifest.json").read_text())
+    assert "histories.parquet" in record["files"]
+    histories = pd.read_parquet(folder / "histories.parquet")
+    assert set(histories.patient) == set(range(30))
+    assert sorted(p.name for p in tmp_path.iterdir()) == [WARD.stem]  # no scratch left
+
+
+def test_histories_of_a_refused_validation_are_not_left_behind(tmp_path, monkeypatch, capsys):
+    """The comparison refuses after the simulation streamed every history."""
+    import microsim.workflow
+    from microsim.scenario import ScenarioError
+
+    def refuse(sim):
+        raise ScenarioError("simulation.grid", "refused after simulating (test)")
+
+    monkeypatch.setattr(microsim.workflow, "compare", refuse)
+    out = tmp_path / "out"
+    assert main(["validate", str(WARD), "--patients", "30", "--histories", "--out", str(out)]) == 2
+    refused(capsys.readouterr(), "error: simulation.grid: refused after simulating")
+    assert list(tmp_path.iterdir()) == []
+
+
+# -------------------------------------------------------------------------- interrupts
+
+def interrupt(*args, **kwargs):
+    raise KeyboardInterrupt
+
+
+def test_an_interrupted_run_without_psa_says_nothing_was_written(tmp_path, monkeypatch, capsys):
+    import microsim.workflow
+    monkeypatch.setattr(microsim.workflow, "run_main", interrupt)
+    assert main(["run", str(WARD), "--out", str(tmp_path)]) == 130
+    err = capsys.readouterr().err
+    assert err.splitlines() == ["interrupted: nothing was written; outputs already there are "
+                                "unchanged"]
+    assert "PSA" not in err and list(tmp_path.iterdir()) == []
+
+
+def test_ctrl_c_during_a_psa_keeps_its_draws_and_says_where(tmp_path):
+    """SIGINT (what Ctrl-C sends) to the installed entry point once a draw is on disk."""
+    out = tmp_path / "out"
+    draws = out / WARD.stem / "psa" / "draws"
+    process = subprocess.Popen(
+        [ENTRY_POINT, "run", WARD, "--patients", "20", "--psa", "--draws", "5000",
+         "--psa-patients", "100", "--out", out], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+        text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while not any(draws.glob("draw-*.parquet")) and process.poll() is None:
+            assert time.monotonic() < deadline, "no PSA draw finished in time"
+            time.sleep(0.05)
+        process.send_signal(signal.SIGINT)
+        stdout, stderr = process.communicate(timeout=120)
+    finally:
+        process.kill()
+    assert process.returncode == 130, stderr
+    assert stderr.splitlines()[-1] == (f"interrupted: the PSA draws finished so far are kept in "
+                                       f"{out / WARD.stem / 'psa'}; run the same command again "
+                                       "to resume")
+    assert "Traceback" not in stderr and stdout == ""
+    assert any(draws.glob("draw-*.parquet"))
+    assert not (out / WARD.stem / "manifest.json").exists()  # the run's own files: none
+
+
+# ------------------------------------------------------------- the seed given is the seed used
+
+def test_population_and_sensitivity_use_the_seed_given(tmp_path, capsys):
+    tables = {}
+    for seed in (1, 2):
+        for command, table in (("population", "population"), ("sensitivity", "one_way")):
+            out = tmp_path / f"{command}-{seed}"
+            assert main([command, str(DEMO), "--patients", "60", "--seed", str(seed),
+                         "--out", str(out)]) == 0
+            folder = out / DEMO.stem
+            assert json.loads((folder / "manifest.json").read_text())["seed"] == seed
+            tables[command, seed] = pd.read_parquet(folder / f"{table}.parquet")
+    capsys.readouterr()
+    assert not tables["population", 1].equals(tables["population", 2])
+    assert not tables["sensitivity", 1].equals(tables["sensitivity", 2])
+
+
+def test_a_psa_resumed_with_another_seed_is_refused_before_any_work(tmp_path, capsys):
+    command = ["run", str(WARD), "--patients", "20", "--psa", "--draws", "2",
+               "--psa-patients", "20", "--out", str(tmp_path)]
+    assert main([*command, "--seed", "1"]) == 0
+    capsys.readouterr()
+    before = snapshot(tmp_path)
+    assert main([*command, "--seed", "2"]) == 2
+    assert "was written by a different run" in refused(capsys.readouterr(), "error: psa: ")
+    assert snapshot(tmp_path) == before
+
+
+def test_an_engine_the_model_cannot_use_is_refused_before_the_psa(tmp_path, capsys):
+    assert main(["run", str(WARD), "--psa", "--draws", "2", "--engine", "vectorised",
+                 "--out", str(tmp_path / "out")]) == 2
+    refused(capsys.readouterr(), "error: --engine: the vectorised engine runs cycle models")
+    assert list(tmp_path.iterdir()) == []

@@ -1,20 +1,25 @@
 """Writing a run: every table as CSV and Parquet plus the manifest, all or nothing.
 
 References outside the project: pandas (read_csv) and pyarrow (read_parquet) reading the
-files back, json.loads for the manifest, and pyarrow's own refusal of a column type it
-cannot store (complex numbers). The rule checked is DESIGN.md's: outputs are written
-atomically, so a failed write leaves neither new files nor a staging folder behind.
+files back, json.loads for the manifest, pyarrow's own refusal of a column type it
+cannot store (complex numbers), and errno/os.strerror for the operating system's ENOSPC.
+The rule checked is DESIGN.md's: outputs are written atomically, so a failed write leaves
+neither new files nor a staging folder behind, and the files already there as they were.
 """
 from __future__ import annotations
 
+import errno
 import json
+import os
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
+from pathlib import Path
 
-from microsim.store import write_run
+from microsim import store
+from microsim.store import OutputError, scratch_folder, unwritable, write_run
 
 TABLES = {
     "trace": pd.DataFrame({"time": [0.0, 1.0, 2.0], "state": ["well", "sick", "dead"],
@@ -121,3 +126,82 @@ def test_a_failed_move_into_the_target_leaves_no_new_files(tmp_path):
     with pytest.raises(OSError):
         write_run(target, TABLES, RECORD)
     assert listing(target) == ["trace.csv"]
+
+
+def snapshot(folder):
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*"))
+            if p.is_file()}
+
+
+def earlier_run(tmp_path):
+    target = tmp_path / "run"
+    write_run(target, {"trace": TABLES["trace"].head(1)}, {"seed": 1},
+              documents={"summary": {"old": True}})
+    (target / "notes.txt").write_text("mine")
+    return target, snapshot(tmp_path)
+
+
+def full_disk_at_move(monkeypatch, failing: set[int]):
+    """os.replace in store fails as on a full disk at the given calls (counted from 1)."""
+    original, calls = os.replace, []
+
+    def replace(source, target):
+        calls.append(1)
+        if len(calls) in failing:
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return original(source, target)
+
+    monkeypatch.setattr(store.os, "replace", replace)
+
+
+@pytest.mark.parametrize("call", [1, 2, 5, 9])
+def test_a_full_disk_while_moving_in_puts_every_earlier_file_back(call, tmp_path, monkeypatch):
+    target, before = earlier_run(tmp_path)
+    full_disk_at_move(monkeypatch, {call})
+    with pytest.raises(OutputError) as caught:
+        write_run(target, TABLES, RECORD, documents={"summary": {"new": True}})
+    assert caught.value.errno == errno.ENOSPC and caught.value.filename == str(target)
+    assert snapshot(tmp_path) == before  # old files back, no new one, no staging left
+
+
+def test_replaced_files_that_cannot_be_put_back_are_kept_and_named(tmp_path, monkeypatch):
+    target, before = earlier_run(tmp_path)
+    # moves: counts.csv, counts.parquet (new), summary.json aside, summary.json in; the 5th
+    # (trace.csv aside) fails, and so does putting summary.json back (the 6th call)
+    full_disk_at_move(monkeypatch, {5, 6})
+    with pytest.raises(OutputError) as caught:
+        write_run(target, TABLES, RECORD, documents={"summary": {"new": True}})
+    message = caught.value.strerror
+    assert "summary.json could not be put back" in message
+    kept = Path(message.split("are kept in ")[1])
+    assert (kept / "summary.json").read_bytes() == before["run/summary.json"]
+    assert listing(target) == ["manifest.json", "notes.txt", "trace.csv", "trace.parquet"]
+    for name in ("manifest.json", "notes.txt", "trace.csv", "trace.parquet"):
+        assert (target / name).read_bytes() == before[f"run/{name}"]  # the rest as it was
+
+
+def test_files_move_in_with_the_tables(tmp_path):
+    scratch = tmp_path / "scratch"
+    scratch.mkdir()
+    (scratch / "histories.parquet").write_bytes(b"streamed")
+    target = tmp_path / "run"
+    write_run(target, TABLES, RECORD, files={"histories.parquet": scratch / "histories.parquet"})
+    assert (target / "histories.parquet").read_bytes() == b"streamed"
+    assert "histories.parquet" in json.loads((target / "manifest.json").read_text())["files"]
+    assert listing(scratch) == []
+
+
+def test_unwritable_names_a_file_in_the_way_and_accepts_a_new_folder(tmp_path):
+    (tmp_path / "notes.txt").write_text("mine")
+    assert unwritable(tmp_path / "a" / "b") is None
+    assert unwritable(tmp_path) is None
+    assert "notes.txt is a file, not a folder" in unwritable(tmp_path / "notes.txt" / "run")
+    assert listing(tmp_path) == ["notes.txt"]  # the checks leave nothing behind
+
+
+def test_a_scratch_folder_is_removed_either_way(tmp_path):
+    with pytest.raises(RuntimeError):
+        with scratch_folder(tmp_path / "not" / "yet") as scratch:
+            (scratch / "big.parquet").write_bytes(b"x")
+            raise RuntimeError
+    assert listing(tmp_path) == []

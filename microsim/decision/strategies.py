@@ -22,6 +22,7 @@ from microsim.simulation import Simulation, report_grid, simulate
 
 COST, EFFECT = "costs_discounted", "qalys_discounted"
 REPORTED = ("costs_discounted", "qalys_discounted", "life_years", "costs", "qalys")
+AS_WRITTEN = "as written"  # the name of the model's results when it defines no strategies
 
 
 def strategy_names(scenario: Scenario) -> list[str]:
@@ -32,12 +33,15 @@ def strategy_names(scenario: Scenario) -> list[str]:
 
 def run_strategies(scenario: Scenario, patients: pd.DataFrame, seed: int,
                    values: dict | None = None, engine: str = "auto") -> dict[str, Simulation]:
-    """Simulate every strategy on the same patients with the same seed."""
+    """Simulate every strategy on the same patients with the same seed, comparator first
+    (a scenario without strategies: the model as written, named AS_WRITTEN)."""
     sims = {}
-    for name in strategy_names(scenario):
+    for name in strategy_names(scenario) or [None]:
         model = bind(scenario, values, strategy=name)
-        sims[name] = simulate(model, patients, seed, batch_size=scenario.simulation.batch_size,
-                              grid=report_grid(model, scenario.simulation.grid), engine=engine)
+        sims[name or AS_WRITTEN] = simulate(model, patients, seed,
+                                            batch_size=scenario.simulation.batch_size,
+                                            grid=report_grid(model, scenario.simulation.grid),
+                                            engine=engine)
     return sims
 
 

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from ..scenario.errors import ScenarioError
-from ..store import write_atomically
+from ..store import missing_folders, remove_empty, write_atomically
 
 RECORD = "psa.json"
 RESULTS = "psa_draws.parquet"
@@ -38,10 +38,12 @@ def draws_hash(draws: pd.DataFrame) -> str:
     return digest.hexdigest()
 
 
-def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> None:
-    """Write psa.json, or refuse a folder whose psa.json describes a different run."""
+def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> list[Path]:
+    """Write psa.json, or refuse a folder whose psa.json describes a different run.
+    Returns the folders it created, deepest first, for `release`."""
     record = json.loads(json.dumps({"fingerprint": fingerprint, "parameter_draws_sha256": draws_hash(draws)}))
     path = run_dir / RECORD
+    created = missing_folders(run_dir / DRAWS)
     if path.exists():
         if json.loads(path.read_text()) != record:
             raise ScenarioError("psa", f"{run_dir} was written by a different run; use a new "
@@ -52,6 +54,16 @@ def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> None:
     (run_dir / DRAWS).mkdir(exist_ok=True)
     for leftover in (run_dir / DRAWS).glob(".*.tmp"):  # from a run killed mid-write
         leftover.unlink(missing_ok=True)
+    return created
+
+
+def release(run_dir: Path, created: list[Path]) -> None:
+    """Undo a claim that finished no draw (the run failed or was stopped before its first):
+    remove its psa.json and the folders it created, so a refused run leaves nothing."""
+    if run_dir.absolute() not in created or any((run_dir / DRAWS).glob("draw-*.parquet")):
+        return
+    (run_dir / RECORD).unlink(missing_ok=True)
+    remove_empty(created)
 
 
 def draw_path(run_dir: Path, draw: int) -> Path:

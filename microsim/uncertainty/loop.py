@@ -37,22 +37,27 @@ def run_draws(evaluate: Evaluate, draws: pd.DataFrame, run_dir: Path, *, workers
     else in a pool of `workers` processes; "dask" uses the scheduler at `address`, or a
     local cluster of `workers` processes. `fingerprint` (JSON-able: scenario hash, seed,
     patients per draw, number of draws, version...) is stored in psa.json; a folder
-    holding another run's psa.json is refused, the same run's is resumed. On Ctrl-C the
-    finished draws stay on disk, the workers are shut down and KeyboardInterrupt is re-raised.
+    holding another run's psa.json is refused, the same run's is resumed. On Ctrl-C (or any
+    failure) the finished draws stay on disk, the workers are shut down and the exception is
+    re-raised; a folder this call created is removed again if no draw had finished.
     """
     run = choose(backend, workers, address)
     jobs = _jobs(draws)
     run_dir = Path(run_dir)
-    folder.claim(run_dir, fingerprint, draws)
+    created = folder.claim(run_dir, fingerprint, draws)
     pending = [job for job in jobs if not folder.draw_path(run_dir, job[0]).exists()]
     hidden = not progress or not sys.stderr.isatty()
     with tqdm(total=len(jobs), initial=len(jobs) - len(pending), unit="draw", desc="PSA draws",
               disable=hidden) as bar:
         if pending:
-            with closing(run(evaluate, pending)) as finished:
-                for draw, results in finished:
-                    folder.write_table(results, folder.draw_path(run_dir, draw))
-                    bar.update()
+            try:
+                with closing(run(evaluate, pending)) as finished:
+                    for draw, results in finished:
+                        folder.write_table(results, folder.draw_path(run_dir, draw))
+                        bar.update()
+            except BaseException:
+                folder.release(run_dir, created)  # a new folder without a finished draw goes
+                raise
     table = folder.read_draws(run_dir, (draw for draw, _ in jobs))
     folder.write_table(table, run_dir / folder.RESULTS)
     return table

@@ -8,10 +8,12 @@ probabilistic sensitivity analysis for patient level simulation models", Health 
 16:1009-1023), the within-draw variance of each strategy's paired incremental net benefit.
 Inner Monte-Carlo noise inflates the spread of per-draw means, and with it EVPI and the
 acceptability curve's extremes; the split tells how many inner patients make that small.
+A scenario without strategies gets the per-draw outcomes of the model as written and their
+intervals; acceptability, EVPI and the split compare strategies, so it gets a note instead.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import partial
 from pathlib import Path
 
@@ -25,6 +27,11 @@ from microsim.patients.population import scenario_patients
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import parameter_draws, run_draws, summarise_draws
+from microsim.uncertainty.summaries import draw_intervals
+
+NEEDS_STRATEGIES = ("acceptability curves, the cost-effectiveness plane, EVPI and the "
+                    "inner/outer split compare strategies: they need at least two, and this "
+                    "scenario defines none")
 
 
 def inner_patients(scenario: Scenario, draw: int, n: int) -> pd.DataFrame:
@@ -41,8 +48,7 @@ def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.Dat
     outcomes = patient_outcomes(sims)
     threshold = scenario.economics.threshold
     nmb = (threshold * outcomes[EFFECT] - outcomes[COST]).groupby(outcomes.strategy, sort=False)
-    comparator = strategy_names(scenario)[0]
-    base = nmb.get_group(comparator).to_numpy()
+    base = nmb.get_group(next(iter(sims))).to_numpy()  # the comparator runs first
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
         gain = nmb.get_group(name).to_numpy() - base
@@ -56,10 +62,13 @@ def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.Dat
 class PsaResult:
     draws: pd.DataFrame  # parameter values per draw
     results: pd.DataFrame  # per draw and strategy
-    acceptability: pd.DataFrame
-    evpi: pd.DataFrame
-    plane: pd.DataFrame
-    variance: pd.DataFrame  # between/within split and the suggested inner/outer sizes
+    outcomes: pd.DataFrame  # per strategy and measure: mean over draws and 95% interval
+    # The comparisons of strategies; None (and `note` says why) without strategies:
+    acceptability: pd.DataFrame | None = None
+    evpi: pd.DataFrame | None = None
+    plane: pd.DataFrame | None = None
+    variance: pd.DataFrame | None = None  # between/within split, suggested inner/outer sizes
+    note: str | None = None
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -95,10 +104,15 @@ def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
                                        "suggested_patients_per_draw"])
 
 
-def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | None = None,
-            patients: int | None = None, workers: int = 1, backend: str = "processes",
-            address: str | None = None, progress: bool = True) -> PsaResult:
-    """The PSA loop, resumable from `run_dir`, identical for any number of workers."""
+def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None = None,
+                          draws: int | None = None, patients: int | None = None,
+                          workers: int = 1, backend: str = "processes",
+                          address: str | None = None, progress: bool = True) -> PsaResult:
+    """The PSA loop, resumable from `run_dir`, identical for any number of workers. `seed`
+    (default: the scenario's) keys the parameter draws and the inner patients alike, and is
+    part of the folder's fingerprint, so a run with another seed never resumes this one."""
+    if seed is not None:
+        scenario = replace(scenario, simulation=replace(scenario.simulation, seed=seed))
     spec = scenario.uncertainty
     n_draws = spec.draws if draws is None else draws
     n = next(v for v in (patients, spec.patients,
@@ -113,6 +127,9 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | Non
     results = run_draws(partial(evaluate_draw, scenario, n), table, Path(run_dir),
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
+    outcomes = draw_intervals(results)
+    if not scenario.strategies:
+        return PsaResult(table, results, outcomes, note=NEEDS_STRATEGIES)
     summary = summarise_draws(results, thresholds(scenario), strategy_names(scenario)[0])
-    return PsaResult(table, results, summary["acceptability"], summary["evpi"],
+    return PsaResult(table, results, outcomes, summary["acceptability"], summary["evpi"],
                      summary["plane"], variance_split(scenario, results))
