@@ -8,6 +8,7 @@ Results that cannot be stored (a full disk) are one line and exit code 74.
 from __future__ import annotations
 
 import argparse
+import os
 import json
 import re
 import sys
@@ -27,6 +28,7 @@ EXIT_BAD_INPUT = 2
 # the disk and run the same command again".
 EXIT_NOT_WRITTEN = 74
 EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
+EXIT_BROKEN_PIPE = 141  # 128 + SIGPIPE: what a shell reports for a closed pipe
 
 
 def out_dir(args, scenario_path: Path) -> Path:
@@ -65,7 +67,9 @@ def write(args, path: Path, tables: dict, started: float, documents: dict | None
 
 
 def command_check(args) -> int:
+    from microsim.patients.population import check_population_file
     scenario = read_scenario(args.scenario)
+    check_population_file(scenario)  # a population file's columns against their uses
     kind = "cycle model (per-cycle probabilities)" if scenario.discrete else "rate model (continuous time)"
     horizon = "lifetime" if scenario.time.horizon is None else f"{scenario.time.horizon:g}"
     print(f"ok: {scenario.title} — {len(scenario.states)} states, {len(scenario.transitions)} "
@@ -354,3 +358,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(interrupted(args), file=sys.stderr)
         return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # the reader of our output went away (`microsim trace ... | head`): stop quietly;
+        # point stdout at nothing so the interpreter's final flush cannot fail again
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_BROKEN_PIPE

@@ -485,3 +485,15 @@ def test_an_engine_the_model_cannot_use_is_refused_before_the_psa(tmp_path, caps
                  "--out", str(tmp_path / "out")]) == 2
     refused(capsys.readouterr(), "error: --engine: the vectorised engine runs cycle models")
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_reader_that_closes_the_pipe_ends_the_command_quietly(tmp_path):
+    # `microsim trace ... | head -2`: no traceback, the shell's code for a closed pipe,
+    # and nothing half-written: the run's files are all there (with their manifest) or none
+    scenario = ROOT / "scenarios" / "ward_recovery.toml"
+    command = f"'{ENTRY_POINT}' trace '{scenario}' --out '{tmp_path}' --rows 1000 | head -2"
+    done = subprocess.run(["bash", "-c", f"{command}; echo ${{PIPESTATUS[0]}} >&2"],
+                          capture_output=True, text=True, timeout=120)
+    assert "Traceback" not in done.stderr and done.stderr.split()[-1] == "141", done.stderr
+    written = list(tmp_path.rglob("*.csv"))
+    assert not written or (written[0].parent / "manifest.json").is_file()

@@ -365,3 +365,10 @@ def test_a_command_reads_the_file_once(tmp_path, monkeypatch, capsys):
     assert main(argv[:2] + ["--patients", "50", "--out", str(tmp_path / "again")]) == 0
     assert len(reads) == 2
     capsys.readouterr()
+
+
+def test_check_reads_the_file_and_refuses_what_run_would(tmp_path, capsys):
+    # `microsim check` must not say ok for a scenario that `run` then refuses
+    path = write(tmp_path, edited(BASE, ('level = "b"', 'level = "B"')))
+    assert main(["check", str(path)]) == 2
+    assert "is not a level of column 'group'" in capsys.readouterr().err
