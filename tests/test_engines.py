@@ -76,6 +76,19 @@ def test_event_engine_time_in_state_and_counts_match_analytic(rate_run):
             assert_mean_agrees(sim.exposure.occurrences[:, r, w], expected.exposure.occurrences[0, r, w])
 
 
+def test_event_engine_keeps_patients_in_a_state_with_no_way_out():
+    """A non-absorbing state without transitions or events keeps everyone who enters it
+    (an implicit self-loop, allowed by the format). Regression: the engine read the
+    precomputed rounds of such a state, which do not exist, and crashed."""
+    model = model_of(scenario_text(horizon(5), start(well=1.0), state("well", utility=1),
+                                   state("stuck", utility=1), rate("well", "stuck", 0.5)))
+    sim = simulate(model, cohort_patients(4000), 7)
+    # reference: P(stuck at t) = 1 - exp(-0.5 t), closed form of a single exponential
+    stuck = 1 - np.exp(-0.5 * sim.grid)
+    assert_shares_binomial(sim, np.stack([1 - stuck, stuck], axis=1))
+    assert np.all(np.diff(sim.states, axis=1) >= 0)  # nobody leaves "stuck"
+
+
 # ------------------------------------------------------ sojourn times of parametric hazards
 
 def two_state(hazard: dict, years: float) -> str:

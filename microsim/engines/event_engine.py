@@ -129,7 +129,9 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
     targets = [risk.source if risk.target is None else risk.target for risk in model.risks]
-    absorbing, simple, from_state = model.absorbing.tolist(), batch.simple, batch.from_state
+    simple, from_state = batch.simple, batch.from_state
+    # a state with no way out and no event keeps its patients to the end, as if absorbing
+    final = [bool(a) or not rs for a, rs in zip(model.absorbing, from_state)]
     memory, bumps, tracked = batch.memory, batch.bumps, batch.tracked
     end = model.n_cycles * model.cycle
     statics = batch.statics.tolist()
@@ -147,7 +149,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         counts, last = plan.initial_memory(model, tracked, state)
         add = record.rows[b].append
         add((0.0, START, state, START))
-        while not absorbing[state]:
+        while not final[state]:
             k = rounds[state]
             rounds[state] = k + 1
             if simple[state]:  # a round computed beforehand; nothing changes within it
