@@ -115,6 +115,7 @@ class BoundModel:
     discount_costs: float
     discount_effects: float
     correction: str
+    probability_rule: str  # cycle models: how a row's probabilities take the multipliers
     values: Mapping[str, float]
     treatment: Treatment | None = None
 
@@ -217,6 +218,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         discount_costs=outcomes.discount_costs,
         discount_effects=outcomes.discount_effects,
         correction=outcomes.correction,
+        probability_rule=scenario.time.probability_rule,
         values=resolved,
         treatment=treatment,
     )

@@ -23,12 +23,13 @@ from .read_population import read_population
 from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
-from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
+from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
+                   StartSpec, StateSpec, TimeSpec)
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
             "events", "parameters", "tables", "outcomes", "population", "simulation",
             "strategies", "economics", "uncertainty")
-TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap")
+TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
 OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
@@ -136,7 +137,9 @@ def read_time(node: Node) -> TimeSpec:
             node.fail("lifetime_cap", f'is only used with horizon = "{LIFETIME}"')
         whole_cycles(node, "horizon", horizon, cycle)
         cap = DEFAULT_LIFETIME_CAP
-    return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap)
+    rule = node.text("probability_rule", SEPARATE, choices=PROBABILITY_RULES)
+    return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap,
+                    probability_rule=rule)
 
 
 def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = "") -> None:

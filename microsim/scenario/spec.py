@@ -26,6 +26,12 @@ CLOCK_OF_TABLE_AXIS: Mapping[str, Clock] = {
     "age": "age", "time": "since_start", "time_in_state": "since_entry"}
 """The clock a table's `by` fixes for any transition or event that reads the table."""
 
+ProbabilityRule = Literal["separate", "competing"]
+SEPARATE, COMPETING = "separate", "competing"
+PROBABILITY_RULES = (SEPARATE, COMPETING)
+"""How a row's per-cycle probabilities take the hazard multipliers: each move on its own, or
+the moves competing through their rates (`microsim.hazards.cycle_probabilities`)."""
+
 CONTINUOUS_DISTRIBUTIONS = ("normal", "lognormal", "uniform", "beta", "gamma")
 """Attribute distributions that give numbers (the others give levels or yes/no)."""
 
@@ -36,6 +42,7 @@ class TimeSpec:
     cycle: float
     horizon: float | None  # None: lifetime (until everyone is absorbed, capped)
     lifetime_cap: float  # always set (default 100); only read when horizon is None
+    probability_rule: ProbabilityRule = SEPARATE  # cycle models only
 
     @property
     def end(self) -> float:
