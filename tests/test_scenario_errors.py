@@ -31,7 +31,7 @@ DISCRETE = scenario_text(
     table("mortality", by="age", starts=[0, 60, 80], values=[0.01, 0.05, 0.2]),
     outcomes(discount_costs=0.035),
     population(100, attribute("age", "normal", mean=50, sd=5, lower=30, upper=70),
-               attribute("marker", "lognormal", meanlog=0, sdlog=0.5),
+               attribute("marker", "normal", mean=1, sd=0.5, lower=0, upper=3),
                attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
                attribute("smoker", "yesno", prevalence=0.2),
                correlation=nested(attributes=["age", "marker"],

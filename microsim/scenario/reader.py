@@ -23,6 +23,7 @@ from .read_population import read_population
 from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
+from .rows import check_row_bounds, check_row_structure
 from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
                    StartSpec, StateSpec, TimeSpec)
 
@@ -117,7 +118,9 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
     )
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
-    return replace(draft, warnings=tuple(found))
+    uses = reading.references + check_row_structure(draft)
+    check_row_bounds(draft)
+    return replace(draft, warnings=tuple(found), uses=tuple(uses))
 
 
 def read_time(node: Node) -> TimeSpec:
