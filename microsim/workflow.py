@@ -55,10 +55,12 @@ class MainResult:
 
 
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
-             psa: dict | None = None, engine: str = "auto") -> MainResult:
+             psa: dict | None = None, engine: str = "auto",
+             invalid_draws: str | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
-    the analytic counterpart, evaluated, and with PSA when `psa` settings are given."""
-    scenario = read_scenario(path)
+    the analytic counterpart, evaluated, and with PSA when `psa` settings are given
+    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws)."""
+    scenario = read_scenario(path, invalid_draws)
     seed = scenario.simulation.seed if seed is None else seed
     people = patients_for(scenario, patients, seed)
     if scenario.strategies:
@@ -98,5 +100,6 @@ def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.Da
     if psa is not None:
         tables.update({"psa_draws": psa.results, "psa_parameters": psa.draws,
                        "acceptability": psa.acceptability, "evpi": psa.evpi,
-                       "ce_plane": psa.plane, "psa_variance": psa.variance})
+                       "ce_plane": psa.plane, "psa_variance": psa.variance,
+                       "psa_changed_draws": psa.changed})
     return tables

@@ -15,6 +15,7 @@ attributes it is the correlation of the latent normal.
 """
 from __future__ import annotations
 
+import functools
 import math
 import numbers
 from dataclasses import dataclass
@@ -28,6 +29,7 @@ from scipy.special import ndtr, ndtri
 
 from microsim import streams
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.rows import check_row_bounds
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec, Scenario
 
 PATIENT = "patient"
@@ -413,8 +415,11 @@ def cohort_patients(size: int) -> pd.DataFrame:
 
 def scenario_patients(scenario: Scenario, seed: int, ids: np.ndarray) -> pd.DataFrame:
     """The scenario's patients with these ids: drawn from its population section, or
-    identical patients when it has none."""
+    identical patients when it has none. A population file's ranges first bound the rows
+    (`microsim.scenario.rows`), as the spec's attributes did when the scenario was read."""
     spec = scenario.population
+    if spec is not None and spec.file is not None:
+        check_row_bounds(scenario, file_ranges(spec))
     if spec is not None and (spec.attributes or spec.file):
         return draw_population(spec, seed, ids)
     return pd.DataFrame({PATIENT: np.asarray(ids, dtype=np.int64)})
@@ -431,6 +436,21 @@ def subgroup_attributes(patients: pd.DataFrame) -> list[str]:
     """Attributes that define subgroups: categories, yes/no, and bands."""
     return [c for c in patients.columns if c != PATIENT and (
         patients[c].dtype == bool or isinstance(patients[c].dtype, pd.CategoricalDtype))]
+
+
+def file_ranges(spec: PopulationSpec) -> dict[str, tuple[float, float]]:
+    """The lowest and highest value of each numeric (or yes/no) column of the population
+    file over all its rows, any of which a patient may draw; read once per file version."""
+    path = Path(spec.file)
+    stat = path.stat() if path.is_file() else None
+    return dict(_column_ranges(path, spec.weights, stat and (stat.st_mtime_ns, stat.st_size)))
+
+
+@functools.lru_cache(maxsize=8)
+def _column_ranges(path: Path, weights: str | None, version) -> tuple:
+    table = _read_file(path).drop(columns=[weights] if weights else [])
+    numeric = [c for c in table.columns if pd.api.types.is_numeric_dtype(table[c])]
+    return tuple((str(c), (float(table[c].min()), float(table[c].max()))) for c in numeric)
 
 
 # ------------------------------------------------------------------------ expectations

@@ -91,6 +91,17 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
                       remainder, remainder_path, None if strategy is None else strategy.name)
 
 
+def row_names(row: Row) -> list[str]:
+    """The names the row's moves read: probabilities, hazard ratios, memory, treatment."""
+    refs = []
+    for move in row.moves:
+        refs += [move.spec.probability, *(e.hazard_ratio for e in move.spec.effects)]
+        for m in move.spec.memory:
+            refs += m.multipliers if m.multipliers is not None else [m.multiplier]
+        refs += [hr for _, hr in move.changes]
+    return list(dict.fromkeys(r for r in refs if isinstance(r, str)))
+
+
 # -- structure: what every rule needs ------------------------------------------------------
 
 def check_row_structure(s: Scenario) -> list[Reference]:
@@ -116,7 +127,7 @@ def check_row_structure(s: Scenario) -> list[Reference]:
                                     'needs a transition with probability = "remainder" to go '
                                     f"to; add one (often from {row.state!r} to itself)")
             uses += competing_uses(s, row)
-    return uses
+    return list(dict.fromkeys(uses))  # a strategy's rows repeat the model's moves
 
 
 def refuse_remainder_effects(row: Row) -> None:
@@ -198,22 +209,25 @@ def row_bounds(s: Scenario, values: Mapping[str, np.ndarray], ranges: Ranges) ->
     def value(ref: Ref) -> np.ndarray:
         return np.asarray(values[ref] if isinstance(ref, str) else ref, float)
 
-    found = []
+    found, model = [], {}
     for row in rows(s):
         if len(row.moves) < 2:
             continue
         drivers, terms = [], []
         for move in row.moves:
             found_terms = move_multiplier(move, row.strategy, value, ranges, span)
-            drivers += found_terms
+            drivers += [(what, attribute, np.broadcast_to(log, (size,)))
+                        for what, attribute, log in found_terms]
             terms.append(np.exp(sum(log for *_, log in found_terms)) if found_terms else 1.0)
-        bound = row_sum(s, row, value, terms)
-        base = row_sum(s, row, value, [1.0] * len(terms))
-        found.append(RowBound(row, np.broadcast_to(bound, (size,)),
-                              np.broadcast_to(base, (size,)), tuple(
-            (what, attribute, np.broadcast_to(log, (size,))) for what, attribute, log in drivers),
-            any(isinstance(m.spec.probability, str) and m.spec.probability in s.tables
-                for m in row.moves)))
+        bound = np.broadcast_to(row_sum(s, row, value, terms), (size,))
+        if row.strategy is None:
+            model[row.state] = bound
+        elif row.state in model and np.array_equal(bound, model[row.state]):
+            continue  # the strategy cannot raise this row: its verdicts are the model's
+        base = np.broadcast_to(row_sum(s, row, value, [1.0] * len(terms)), (size,))
+        tables = any(isinstance(m.spec.probability, str) and m.spec.probability in s.tables
+                     for m in row.moves)
+        found.append(RowBound(row, bound, base, tuple(drivers), tables))
     return found
 
 

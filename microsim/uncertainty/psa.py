@@ -24,7 +24,9 @@ from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_str
 from microsim.patients.population import scenario_patients
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
-from microsim.uncertainty import parameter_draws, run_draws, summarise_draws
+from microsim.uncertainty import run_draws, summarise_draws
+from microsim.uncertainty.draw_checks import check_draws
+from microsim.uncertainty.draws import ParameterSampler
 
 
 def inner_patients(scenario: Scenario, draw: int, n: int) -> pd.DataFrame:
@@ -60,6 +62,7 @@ class PsaResult:
     evpi: pd.DataFrame
     plane: pd.DataFrame
     variance: pd.DataFrame  # between/within split and the suggested inner/outer sizes
+    changed: pd.DataFrame  # values of invalid draws that were redrawn or truncated
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -105,8 +108,9 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | Non
                          scenario.population.size if scenario.population else None, 1000)
              if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
-    table = parameter_draws(scenario.parameters, scenario.simulation.seed, n_draws,
-                            correlation=correlation, dirichlets=spec.dirichlets)
+    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
+    checked = check_draws(scenario, sampler, n_draws)  # before anything is simulated
+    table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
                    "microsim": __version__}
@@ -115,4 +119,4 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | Non
                         fingerprint=fingerprint)
     summary = summarise_draws(results, thresholds(scenario), strategy_names(scenario)[0])
     return PsaResult(table, results, summary["acceptability"], summary["evpi"],
-                     summary["plane"], variance_split(scenario, results))
+                     summary["plane"], variance_split(scenario, results), checked.changed)
