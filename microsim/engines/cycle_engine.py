@@ -117,9 +117,6 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 m *= multiplier
         return values[k], None if logs is None else logs[k], m
 
-    def separate(p, _, m):
-        return p if m == 1.0 else 1.0 - (1.0 - p) ** m
-
     def add(b, t, source, target, r):
         record.rows[b].append((t, source, target, r))
 
@@ -140,20 +137,25 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 return
             t = n * cycle
             moves, remainder, events, combined = plans[state]
-            now = (static, t, age0 + t, duration, counts, last, on, off)
-            row = [weigh(step, *now) for step in moves]
-            chances = competing(row, pow) if combined else [separate(*w) for w in row]
+            age = age0 + t
+            row = [weigh(step, static, t, age, duration, counts, last, on, off) for step in moves]
+            chances = (competing(row, pow) if combined else
+                       [p if m == 1.0 else 1.0 - (1.0 - p) ** m for p, _, m in row])
             u = rows[move_purpose][n]
             chosen, total = None, 0.0
             for step, p in zip(moves, chances):
                 total += p
                 if chosen is None and u < total:
                     chosen = (step[0], step[2])
-            if not total <= LIMIT:
+            if not total <= LIMIT:  # never capped (and a nan is caught too)
                 raise overflow(row_name(model, state), total, f"patient {ids[b]}", n)
-            if chosen is None and remainder is not None:
+            if chosen is None:
                 chosen = remainder
-            happened = [step for step in events if rows[step[1]][n] < separate(*weigh(step, *now))]
+            happened = []
+            for step in events:
+                p, _, m = weigh(step, static, t, age, duration, counts, last, on, off)
+                if rows[step[1]][n] < (p if m == 1.0 else 1.0 - (1.0 - p) ** m):
+                    happened.append(step)
             end = t + cycle
             for step in happened:
                 occur(b, end, state, state, step[0], counts, last)
