@@ -17,7 +17,7 @@ import numpy as np
 from microsim.binding import BoundRisk
 from microsim.cohort.expand import Expansion
 from microsim.patients.multipliers import Multipliers
-from microsim.hazards.cycle_probabilities import LIMIT, competing, log_survival, overflow
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
 from microsim.scenario.spec import COMPETING, TableSpec
 
 
@@ -33,16 +33,14 @@ def on_rate_scale(p, m):
     return np.where(m == 1.0, p, 1.0 - np.power(1.0 - np.asarray(p, float), m))
 
 
-def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float,
-                     combined: bool = False):
+def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float):
     """Base per-cycle probability of a (non-remainder) risk for a batch of patients, and
-    its L = -ln(1 - p) when its row is combined by the competing rule (else None)."""
+    its L = -ln(1 - p) (the competing rule's weight)."""
     base = risk.probability
     if not isinstance(base, TableSpec):
-        return base, log_survival(base) if combined else None
+        return base, risk.logs[0]
     band = table_band(base, time, ages, duration * cycle)
-    logs = np.array([log_survival(p) for p in base.values]) if combined else None
-    return np.asarray(base.values)[band], None if logs is None else logs[band]
+    return np.asarray(base.values)[band], np.asarray(risk.logs)[band]
 
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
@@ -68,8 +66,7 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
                 remainder = r
                 continue
             m = m_all[:, r] * exp.memory_factor(risk, counts)
-            p, log = risk_probability(risk, time, ages, d, model.cycle,
-                                      combined and not risk.is_event)
+            p, log = risk_probability(risk, time, ages, d, model.cycle)
             if risk.is_event:
                 risk_p[:, e, r] = p = on_rate_scale(p, m)
                 events.append((risk, p))

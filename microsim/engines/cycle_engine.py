@@ -17,27 +17,28 @@ from math import exp
 import numpy as np
 import simpy
 
-from microsim.binding import BoundModel
+from microsim.binding import BoundModel, BoundRisk
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
-from microsim.hazards.cycle_probabilities import LIMIT, competing, log_survival, overflow
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
 from microsim.scenario.spec import COMPETING, TableSpec
 
 MOVE = "cycle:move"
 AXES = {"time": 0, "age": 1, "time_in_state": 2}
 
 
-def base_values(probability, competing: bool):
-    """(values, logs, bands) of a base probability: the value is values[band], band 0 for
-    a number, the band of (axis, starts) for a table (bands None for a number); logs holds
-    L = -ln(1 - p) of each value for the moves of a competing row, else None."""
+def base_values(risk: BoundRisk, competing: bool):
+    """(values, logs, bands) of a risk's base probability: the value is values[band], band 0
+    for a number, the band of (axis, starts) for a table (bands None for a number); logs
+    holds L = -ln(1 - p) of each value for the moves of a competing row, else None."""
+    probability = risk.probability
     if isinstance(probability, TableSpec):
         values, bands = list(probability.values), (AXES[probability.by], list(probability.starts))
     else:
         values, bands = [probability], None
-    return values, [log_survival(p) for p in values] if competing else None, bands
+    return values, list(risk.logs) if competing else None, bands
 
 
 def state_plans(model: BoundModel, names: tuple[str, ...]):
@@ -59,7 +60,7 @@ def state_plans(model: BoundModel, names: tuple[str, ...]):
                 remainder = (r, risk.target)
                 continue
             step = (r, names.index(plan.risk_purpose(model, risk)), risk.target,
-                    *base_values(risk.probability, combined and not risk.is_event), memory[r])
+                    *base_values(risk, combined and not risk.is_event), memory[r])
             (events if risk.is_event else moves).append(step)
         plans.append((tuple(moves), remainder, tuple(events), combined))
     return plans

@@ -12,7 +12,8 @@ Two rules, chosen per scenario (`time.probability_rule`):
   probability in the absence of the others: r_j = -ln(1 - p_j) / cycle x m_j,
   R = sum r_j, p'_j = (r_j / R)(1 - exp(-R cycle)), and the remainder takes exp(-R cycle).
   The cycle cancels in r_j / R, and exp(-R cycle) = prod (1 - p_j)^(m_j) exactly, so with
-  L_j = -log1p(-p_j) (precomputed once per base value with `math`) the per-patient
+  L_j = -log1p(-p_j) (precomputed with `math` once per base value when the model is bound,
+  `BoundRisk.logs`) the per-patient
   arithmetic is only *, +, / and powers: the same operations, in the same order, whether
   a patient is a Python float (the SimPy engine) or an element of an array (the vectorised
   engine, with `np.float_power`), so the two stay bit-identical. A row with one move is
@@ -28,8 +29,9 @@ LIMIT = 1.0 + TOLERANCE  # a row may exceed 1 by rounding, never by more
 
 
 def log_survival(p: float) -> float:
-    """L = -ln(1 - p): the cumulative hazard of one cycle (p < 1)."""
-    return -math.log1p(-p)
+    """L = -ln(1 - p): the cumulative hazard of one cycle (inf for p = 1, a certain move,
+    which the competing rule refuses beside other moves)."""
+    return -math.log1p(-p) if p < 1.0 else math.inf
 
 
 def competing(row, power):
