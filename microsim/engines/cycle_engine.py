@@ -1,10 +1,11 @@
 """The cycle SimPy engine: fixed steps with per-cycle probabilities.
 
 Each cycle a patient takes one way out of its state, chosen by one uniform against the
-cumulative probabilities (the scenario's probability rule, `microsim.hazards.cycle_probabilities`;
-the remainder takes what the others leave), and each event of the state happens or not by
-its own uniform; counts and time in state then move on. A row that sums above 1 is never
-capped: it raises, since the scenario checks refuse every row that could.
+cumulative probabilities (under the scenario's probability rule,
+`microsim.hazards.cycle_probabilities`; the remainder takes what the others leave), and
+each event of the state happens or not by its own uniform; counts and time in state then
+move on. A row that sums above 1 is never capped: it raises, since the scenario checks
+refuse every row that could.
 These are exactly the rules of `microsim.cohort.cycle_matrices`, so the expected simulated trace
 is the analytic one. Draws are keyed by cycle number (occurrence = cycle), so strategies
 share them cycle by cycle (common random numbers).

@@ -11,9 +11,8 @@ record for record and bit for bit. Two details keep the floats identical:
 - the rate-scale power 1 - (1 - p)^m, and the powers of the competing rule (one function,
   `microsim.hazards.cycle_probabilities.competing`, serves both engines), use
   `np.float_power`, which evaluates the C library's pow element by element as Python's
-  `**` does; `np.power` may take a SIMD
-  routine that differs in the last bit (measured: about 5% of random arguments on an
-  AVX-512 machine).
+  `**` does; `np.power` may take a SIMD routine that differs in the last bit (measured:
+  about 5% of random arguments on an AVX-512 machine).
 """
 from __future__ import annotations
 

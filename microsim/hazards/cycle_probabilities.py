@@ -13,11 +13,11 @@ Two rules, chosen per scenario (`time.probability_rule`):
   R = sum r_j, p'_j = (r_j / R)(1 - exp(-R cycle)), and the remainder takes exp(-R cycle).
   The cycle cancels in r_j / R, and exp(-R cycle) = prod (1 - p_j)^(m_j) exactly, so with
   L_j = -log1p(-p_j) (precomputed with `math` once per base value when the model is bound,
-  `BoundRisk.logs`) the per-patient
-  arithmetic is only *, +, / and powers: the same operations, in the same order, whether
-  a patient is a Python float (the SimPy engine) or an element of an array (the vectorised
-  engine, with `np.float_power`), so the two stay bit-identical. A row with one move is
-  the same under both rules, and is computed by the separate rule under either.
+  `BoundRisk.logs`) the per-patient arithmetic is only *, +, / and powers: the same
+  operations, in the same order, whether a patient is a Python float (the SimPy engine)
+  or an element of an array (the vectorised engine, with `np.float_power`), so the two
+  stay bit-identical. A row with one move is the same under both rules, and is computed
+  by the separate rule under either.
 """
 from __future__ import annotations
 

@@ -271,8 +271,10 @@ def check_row(s: Scenario, state: str) -> None:
             constant += s.parameters[t.probability].value
         else:
             constant += t.probability
-    if not row or remainder is not None:
+    if not row:
         return  # no way out: the state keeps everyone (an implicit self-loop)
+    if remainder is not None:
+        return  # the largest sum beside it is bounded in rows.py
     low = high = constant
     for tables in tables_by_axis.values():  # different axes vary independently
         points = np.unique(np.concatenate([t.starts for t in tables]))

@@ -31,7 +31,9 @@ from microsim.scenario.spec import Scenario
 from .draws import ParameterSampler
 
 MAX_ATTEMPTS = 1000
-CHANGED_COLUMNS = ["draw", "policy", "attempts", "parameter", "drawn", "used", "reason"]
+CHANGED_COLUMNS = {"draw": "int64", "policy": "string", "attempts": "int64",
+                   "parameter": "string", "drawn": "float64", "used": "float64",
+                   "reason": "string"}
 SETTING = 'set uncertainty.invalid_draws = "redraw" or "truncate" (or run with --invalid-draws)'
 
 
@@ -39,6 +41,10 @@ SETTING = 'set uncertainty.invalid_draws = "redraw" or "truncate" (or run with -
 class CheckedDraws:
     table: pd.DataFrame  # draw, then one column per parameter: what the PSA evaluates
     changed: pd.DataFrame  # CHANGED_COLUMNS: one row per value not used as first drawn
+
+
+def changes(rows: list[tuple]) -> pd.DataFrame:
+    return pd.DataFrame(rows, columns=list(CHANGED_COLUMNS)).astype(CHANGED_COLUMNS)
 
 
 @dataclass(frozen=True)
@@ -61,7 +67,7 @@ def check_draws(s: Scenario, sampler: ParameterSampler, n_draws: int) -> Checked
     found = problems(s, table, ranges)
     bad = flagged(found, n_draws)
     if not bad.any():
-        return CheckedDraws(table, pd.DataFrame(columns=CHANGED_COLUMNS))
+        return CheckedDraws(table, changes([]))
     if policy == "refuse":
         raise refusal(found, table, int(np.argmax(bad)),
                       f"{int(bad.sum())} of {n_draws} draws are invalid; {SETTING}, or ")
@@ -146,7 +152,7 @@ def redrawn(s: Scenario, sampler: ParameterSampler, first: pd.DataFrame, found: 
             rows.append((int(first["draw"].iloc[k]), "redraw", int(attempts[k]), name,
                          float(first[name].iloc[k]), float(table[name].iloc[k]),
                          "; ".join(p.reason for p in mine)))
-    return CheckedDraws(table, pd.DataFrame(rows, columns=CHANGED_COLUMNS))
+    return CheckedDraws(table, changes(rows))
 
 
 def truncated(s: Scenario, first: pd.DataFrame, ranges) -> CheckedDraws:
@@ -165,4 +171,4 @@ def truncated(s: Scenario, first: pd.DataFrame, ranges) -> CheckedDraws:
     if bad.any():
         raise refusal(left, table, int(np.argmax(bad)), "truncating each value to its range "
                       'cannot mend this; set uncertainty.invalid_draws = "redraw", or ')
-    return CheckedDraws(table, pd.DataFrame(rows, columns=CHANGED_COLUMNS))
+    return CheckedDraws(table, changes(rows))
