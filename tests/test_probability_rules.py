@@ -10,6 +10,7 @@ bound, worked out by hand below.
 """
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -72,6 +73,14 @@ def test_competing_rule_matches_the_formula_for_a_row_with_covariates():
     # a row with one move is the separate rule's 1 - (1 - p)^m (here m = 1)
     sick = model.states.index("sick")
     assert np.all(P[:, sick, model.states.index("dead")] == 0.25)
+
+
+def test_the_documented_example():
+    # docs/scenario-format.md: without effects, 0.3 and 0.1 become 0.286 and 0.084
+    chances = competing([(0.3, -math.log(0.7), 1.0), (0.1, -math.log(0.9), 1.0)], pow)
+    expected, stay = by_hand(np.array([0.3, 0.1]), np.ones(2), 1.0)
+    np.testing.assert_allclose(chances, expected, rtol=1e-12)
+    assert [round(p, 3) for p in chances] == [0.286, 0.084] and round(stay, 2) == 0.63
 
 
 @pytest.mark.parametrize("extreme", [1e6, 1e-6])
