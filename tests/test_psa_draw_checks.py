@@ -54,7 +54,7 @@ NORMAL_UTILITY = dict(family="normal", mean=0.9, sd=0.08)
 
 def checked(text: str, n: int = DRAWS):
     s = parse_scenario(text)
-    return check_draws(s, ParameterSampler(s.parameters), n)
+    return check_draws(s, ParameterSampler(s.parameters), n, SEED)
 
 
 def by_hand(n: int = DRAWS) -> tuple[pd.DataFrame, np.ndarray]:
@@ -82,7 +82,7 @@ def test_a_draw_whose_row_sums_above_1_is_refused_with_its_number_and_values():
 
 def test_redraw_gives_valid_draws_from_the_next_stream_occurrence():
     s = parse_scenario(two_betas("redraw", BETA_UTILITY))
-    result = check_draws(s, ParameterSampler(s.parameters), DRAWS)
+    result = check_draws(s, ParameterSampler(s.parameters), DRAWS, SEED)
     first, bad = by_hand()
     table, changed = result.table, result.changed
     assert np.all(table.p_a + table.p_b <= 1)
@@ -96,7 +96,7 @@ def test_redraw_gives_valid_draws_from_the_next_stream_occurrence():
         before = sampler.draws(SEED, [draw], attempts - 1)
         assert before.p_a[0] + before.p_b[0] > 1  # every earlier attempt was invalid
     # a draw is the same whether 20 or 40 are asked for
-    fewer = check_draws(s, sampler, 20).table
+    fewer = check_draws(s, sampler, 20, SEED).table
     pd.testing.assert_frame_equal(fewer, table.iloc[:20])
 
 
@@ -116,7 +116,7 @@ def test_truncate_clips_values_to_their_use_and_says_so():
         "p_a = 0.3"))
     sampler = ParameterSampler(s.parameters)
     drawn = sampler.draws(SEED, np.arange(DRAWS))
-    result = check_draws(s, sampler, DRAWS)
+    result = check_draws(s, sampler, DRAWS, SEED)
     np.testing.assert_array_equal(result.table.u_well, np.clip(drawn.u_well, None, 1.0))
     over = np.flatnonzero(drawn.u_well > 1)
     assert over.size > 0

@@ -58,9 +58,10 @@ class Problem:
     fix: str
 
 
-def check_draws(s: Scenario, sampler: ParameterSampler, n_draws: int) -> CheckedDraws:
-    """Draws 0..n_draws-1, each valid for every use of its values and every row."""
-    seed, policy = s.simulation.seed, s.uncertainty.invalid_draws
+def check_draws(s: Scenario, sampler: ParameterSampler, n_draws: int, seed: int) -> CheckedDraws:
+    """Draws 0..n_draws-1 of the PSA seeded `seed`, each valid for every use of its values
+    and every row."""
+    policy = s.uncertainty.invalid_draws
     spec = s.population
     ranges = attribute_ranges(s, file_ranges(spec) if spec and spec.file else None)
     table = sampler.draws(seed, np.arange(n_draws))
@@ -72,7 +73,7 @@ def check_draws(s: Scenario, sampler: ParameterSampler, n_draws: int) -> Checked
         raise refusal(found, table, int(np.argmax(bad)),
                       f"{int(bad.sum())} of {n_draws} draws are invalid; {SETTING}, or ")
     if policy == "redraw":
-        return redrawn(s, sampler, table, found, ranges)
+        return redrawn(s, sampler, seed, table, found, ranges)
     return truncated(s, table, ranges)
 
 
@@ -130,8 +131,8 @@ def refusal(found: list[Problem], table: pd.DataFrame, k: int, lead: str) -> Sce
     return ScenarioError(problem.path, f"{problem.why(k)}; {lead}{problem.fix}")
 
 
-def redrawn(s: Scenario, sampler: ParameterSampler, first: pd.DataFrame, found: list[Problem],
-            ranges) -> CheckedDraws:
+def redrawn(s: Scenario, sampler: ParameterSampler, seed: int, first: pd.DataFrame,
+            found: list[Problem], ranges) -> CheckedDraws:
     """Each invalid draw again from the next occurrence of its streams, until it is valid."""
     table, attempts = first.copy(), np.zeros(len(first), np.int64)
     bad, retry, again = flagged(found, len(first)), found, first
@@ -141,7 +142,7 @@ def redrawn(s: Scenario, sampler: ParameterSampler, first: pd.DataFrame, found: 
             raise refusal(retry, again, stuck, f"still invalid after {MAX_ATTEMPTS} attempts: "
                           "valid draws are too rare to redraw; ")
         attempts[bad] += 1
-        again = sampler.draws(s.simulation.seed, first["draw"].to_numpy()[bad], attempts[bad])
+        again = sampler.draws(seed, first["draw"].to_numpy()[bad], attempts[bad])
         table.iloc[np.flatnonzero(bad), 1:] = again.iloc[:, 1:].to_numpy()
         retry = problems(s, again, ranges)
         bad[bad] = flagged(retry, len(again))

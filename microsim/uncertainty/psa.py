@@ -109,7 +109,8 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, draws: int | Non
              if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
     sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
-    checked = check_draws(scenario, sampler, n_draws)  # before anything is simulated
+    # every draw checked (refused, redrawn or truncated) before anything is simulated
+    checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
     table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
