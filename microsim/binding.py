@@ -12,6 +12,7 @@ import numpy as np
 
 from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard)
+from microsim.hazards.cycle_probabilities import log_survival
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
@@ -53,6 +54,7 @@ class BoundRisk:
     source: int
     target: int | None
     probability: float | TableSpec | None  # per cycle (discrete models)
+    logs: tuple[float, ...] | None  # L = -ln(1 - p) of each base value (the competing rule)
     remainder: bool
     family: str | None  # hazard family (continuous models)
     params: Mapping[str, float]
@@ -115,6 +117,7 @@ class BoundModel:
     discount_costs: float
     discount_effects: float
     correction: str
+    probability_rule: str  # cycle models: how a row's probabilities take the multipliers
     values: Mapping[str, float]
     treatment: Treatment | None = None
 
@@ -184,9 +187,11 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
             else:
                 params = {k: number(v) for k, v in hazard.params.items()}
                 family = FAMILIES[hazard.family](**params)
+        base = probability(spec.probability)
         return BoundRisk(
-            name=name, source=source, target=target,
-            probability=probability(spec.probability),
+            name=name, source=source, target=target, probability=base,
+            logs=None if base is None else tuple(map(log_survival, (
+                base.values if isinstance(base, TableSpec) else (base,)))),
             remainder=spec.probability == REMAINDER,
             family=None if hazard is None else hazard.family,
             params=params, table=table, hazard=family, clock=spec.clock,
@@ -217,6 +222,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         discount_costs=outcomes.discount_costs,
         discount_effects=outcomes.discount_effects,
         correction=outcomes.correction,
+        probability_rule=scenario.time.probability_rule,
         values=resolved,
         treatment=treatment,
     )

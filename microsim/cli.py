@@ -21,6 +21,7 @@ from microsim.present import show
 from microsim.scenario import ScenarioError, read_scenario
 from microsim.scenario.fields import MAX_PATIENTS
 from microsim.store import OutputError
+from microsim.scenario.spec import INVALID_DRAWS
 
 EXIT_BAD_INPUT = 2
 # EX_IOERR of BSD's sysexits.h (common practice): the input was fine, the results could
@@ -148,7 +149,7 @@ def command_run(args) -> int:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
                "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
                "address": args.address, "progress": not args.json}
-    result = run_main(path, args.patients, args.seed, psa, args.engine)
+    result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws)
     data = summary(result)
     if args.json:
         print(json.dumps(data, indent=2))
@@ -320,6 +321,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--backend", choices=("processes", "dask"), default="processes",
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")
     run.add_argument("--address", help="address of a running Dask scheduler")
+    run.add_argument("--invalid-draws", choices=INVALID_DRAWS,
+                     help="what the PSA does with a draw whose values or rows are invalid "
+                          "(default: the scenario's uncertainty.invalid_draws, else refuse)")
     bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
     bench.add_argument("--quick", action="store_true", help="a shorter run")
     bench.set_defaults(function=command_benchmark)

@@ -50,6 +50,10 @@ def summary(result: MainResult) -> dict:
                 "acceptability_at_threshold": records(at[at.threshold == near]),
                 "evpi_at_threshold": records(p.evpi[p.evpi.threshold == near]),
                 "variance_split": records(p.variance)})
+        out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
+                                       "changed_draws": int(p.changed.draw.nunique()),
+                                       "changes": records(p.changed),
+                                       "summary": changed_draws(p)}
     return out
 
 
@@ -113,6 +117,28 @@ def print_summary(result: MainResult) -> None:
         show("Expected value of perfect information per patient",
              p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
         show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
+        print(f"\n{changed_draws(p)}")
+
+
+def changed_draws(psa, listed: int = 5) -> str:
+    """One line: which PSA draws were redrawn or truncated, and why (every draw is checked
+    against every use of its values and every row before anything is simulated)."""
+    changed, n = psa.changed, len(psa.draws)
+    if changed.empty:
+        return f"PSA draws: all {n} valid as drawn (every value in its range, every row at most 1)."
+    first = changed.drop_duplicates("draw")
+    if first.policy.iloc[0] == "redraw":
+        items = [f"draw {r.draw} after {r.attempts} attempt{'s' if r.attempts > 1 else ''} "
+                 f"({r.reason})" for r in first.itertuples()]
+        what = f"{len(first)} of {n} draws were invalid and were drawn again"
+    else:
+        items = [f"draw {r.draw} {r.parameter} {r.drawn:.6g} -> {r.used:.6g} ({r.reason})"
+                 for r in changed.itertuples()]
+        what = (f"{len(changed)} value(s) in {len(first)} of {n} draws were outside their "
+                "range and were truncated to it")
+    more = f"; {len(items) - listed} more" if len(items) > listed else ""
+    return (f"PSA draws: {what}: {'; '.join(items[:listed])}{more} (all in the "
+            "psa_changed_draws table).")
 
 
 def subgroup_headlines(subgroups: pd.DataFrame) -> list[str]:

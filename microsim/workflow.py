@@ -54,14 +54,16 @@ class MainResult:
 
 
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
-             psa: dict | None = None, engine: str = "auto") -> MainResult:
+             psa: dict | None = None, engine: str = "auto",
+             invalid_draws: str | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
-    the analytic counterpart, evaluated, and with PSA when `psa` settings are given.
+    the analytic counterpart, evaluated, and with PSA when `psa` settings are given
+    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws).
 
     What can be refused is refused before any work: the engine, the patients, and the PSA
     (its folder of another run, its backend) by running it first; its finished draws stay
     on disk however the rest ends."""
-    scenario = read_scenario(path)
+    scenario = read_scenario(path, invalid_draws)
     seed = scenario.simulation.seed if seed is None else seed
     choose_engine(bind(scenario), engine)
     people = patients_for(scenario, patients, seed)
@@ -91,7 +93,7 @@ def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.Da
                        "precision": decision.precision})
     if psa is not None:
         tables.update({"psa_draws": psa.results, "psa_parameters": psa.draws,
-                       "psa_outcomes": psa.outcomes})
+                       "psa_outcomes": psa.outcomes, "psa_changed_draws": psa.changed})
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
                            "ce_plane": psa.plane, "psa_variance": psa.variance})

@@ -83,8 +83,9 @@ def section(path: str, **fields) -> str:
     return _block(path, fields, array=False)
 
 
-def horizon(length, *, unit: str = "years", cycle=None) -> str:
-    return section("time", unit=unit, cycle=cycle, horizon=length)
+def horizon(length, *, unit: str = "years", cycle=None, rule=None) -> str:
+    """[time]; `rule` is the probability_rule of cycle models."""
+    return section("time", unit=unit, cycle=cycle, horizon=length, probability_rule=rule)
 
 
 def start(*, age=None, **shares) -> str:

@@ -34,8 +34,8 @@ RATE_MODEL = scenario_text(
     event("flare", ["well", "sick"], rate=5),
     POPULATION)
 
-CYCLE_MODEL = scenario_text(
-    DISCOUNTS, horizon(20, cycle=1), start(well=0.9, sick=0.1),
+CYCLE_MODEL = scenario_text(  # attained age is unbounded: the moves compete
+    DISCOUNTS, horizon(20, cycle=1, rule="competing"), start(well=0.9, sick=0.1),
     state("well"), state("sick"), state("dead", absorbing=True),
     probability("well", "sick", 0.1, effects=[effect("smoker", 2)],
                 memory=[after("flare", multipliers=[1, 1.5])]),

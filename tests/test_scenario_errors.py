@@ -31,7 +31,7 @@ DISCRETE = scenario_text(
     table("mortality", by="age", starts=[0, 60, 80], values=[0.01, 0.05, 0.2]),
     outcomes(discount_costs=0.035),
     population(100, attribute("age", "normal", mean=50, sd=5, lower=30, upper=70),
-               attribute("marker", "lognormal", meanlog=0, sdlog=0.5),
+               attribute("marker", "normal", mean=1, sd=0.5, lower=0, upper=3),
                attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
                attribute("smoker", "yesno", prevalence=0.2),
                correlation=nested(attributes=["age", "marker"],
@@ -324,6 +324,48 @@ CASES = [
      "outcomes.correction", 'must be one of "none", "half-cycle", "trapezoidal", "simpson"'),
     ("negative discount rate", "discrete", [("discount_costs = 0.035", "discount_costs = -0.01")],
      "outcomes.discount_costs", "must be at least 0, got -0.01"),
+    # rows of per-cycle probabilities and the probability rule
+    ("unknown probability rule", "discrete", [("cycle = 1", 'cycle = 1\nprobability_rule = "compete"')],
+     "time.probability_rule", 'must be one of "separate", "competing", got \'compete\''),
+    ("competing rule in a rate model", "continuous",
+     [('unit = "days"', 'unit = "days"\nprobability_rule = "competing"')],
+     "time.probability_rule", "but this is a rate model"),
+    ("unbounded attribute under the separate rule", "discrete", [("  upper = 3\n", "")],
+     "transitions.well->*", "driven by marker (unbounded), memory of flare; set "
+                            'time.probability_rule = "competing"'),
+    ("one-way setting above 1 under the separate rule", "discrete",
+     [("high = 0.15", "high = 0.95")],
+     "transitions.well->*", "with parameters.p_sick at its high value 0.95 (one-way range)"),
+    ("effect on a row without a remainder", "discrete",
+     [("probability = 0.2", 'probability = 0.2\neffects = [{ attribute = "smoker", hazard_ratio = 2 }]')],
+     "transitions.sick->dead.effects[0]", "'sick' has no transition with probability = "
+                                          '"remainder"'),
+    ("treatment on a row without a remainder", "discrete",
+     [("seed = 1", 'seed = 1\n\n[[strategies]]\nname = "usual"\ncomparator = true\n\n'
+                   '[[strategies]]\nname = "drug"\n[[strategies.changes]]\n'
+                   'transition = "sick->dead"\nhazard_ratio = 0.5')],
+     "strategies.drug.changes[0].transition", "so a multiplier on its moves would leave the row"),
+    ("memory on the remainder", "discrete",
+     [('probability = "remainder"',
+       'probability = "remainder"\nmemory = [{ after = "flare", multipliers = [1, 2] }]')],
+     "transitions.well->well.memory[0]", "the remainder takes what the other transitions"),
+    ("competing moves without a remainder", "discrete",
+     [("cycle = 1", 'cycle = 1\nprobability_rule = "competing"')],
+     "transitions.sick->*", 'needs a transition with probability = "remainder" to go to'),
+    ("competing move that is certain", "discrete",
+     [("cycle = 1", 'cycle = 1\nprobability_rule = "competing"'),
+      ("probability = 0.8", 'probability = "remainder"'),
+      ('probability = "mortality"', "probability = 1.0")],
+     "transitions.well->dead.probability", "a certain move leaves the others nothing"),
+    ("competing table band of 1", "discrete",
+     [("cycle = 1", 'cycle = 1\nprobability_rule = "competing"'),
+      ("probability = 0.8", 'probability = "remainder"'),
+      ("values = [0.01, 0.05, 0.2]", "values = [0.01, 0.05, 1]")],
+     "tables.mortality.values[2]", "1 is not below 1; a probability of a move that competes "
+                                   "with others must be at least 0 and below 1"),
+    ("unknown invalid-draws policy", "discrete",
+     [("seed = 1", 'seed = 1\n\n[uncertainty]\ninvalid_draws = "redrew"')],
+     "uncertainty.invalid_draws", "did you mean 'redraw'"),
 ]
 
 

@@ -265,8 +265,9 @@ def test_row_sum_on_independent_axes_adds_the_peaks():
 
 
 def population_text(population: str) -> str:
-    text = MINIMAL.replace("{value}", 'probability = 1\neffects = [{ attribute = "sex", '
-                                      'level = "m", hazard_ratio = 1.2 }]')
+    text = MINIMAL.replace("{value}", 'probability = 0.5\neffects = [{ attribute = "sex", '
+                                      'level = "m", hazard_ratio = 1.2 }]\n\n[[transitions]]\n'
+                                      'from = "a"\nto = "a"\nprobability = "remainder"')
     return text.replace("shares = { a = 1 }", "shares = { a = 1 }\n") + population
 
 

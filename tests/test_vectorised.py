@@ -34,20 +34,20 @@ HOMOGENEOUS = scenario_text(
     probability("sick", "sick", "remainder"),
     event("flare", ["well", "sick"], probability=0.15))
 
-PEOPLE = population(
+PEOPLE = population(  # bounded attributes: the separate rule's rows stay below 1
     1000,
     attribute("age", "normal", mean=60, sd=9, lower=40, upper=90),
     attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
     attribute("diabetes", "yesno", prevalence=0.3),
-    attribute("biomarker", "lognormal", meanlog=-0.5, sdlog=0.5))
+    attribute("biomarker", "normal", mean=0.7, sd=0.3, lower=0, upper=2))
 
 COVARIATES = scenario_text(
     horizon(15, cycle=1), start(well=0.6, sick=0.4),
     state("well"), state("sick"), state("dead", absorbing=True),
     probability("well", "sick", 0.12,
                 effects=[effect("diabetes", 1.6), effect("biomarker", 1.8, centre=0.8),
-                         effect("sex", 1.2, level="male"), effect("age", 1.04, centre=60)]),
-    probability("well", "dead", 0.03, effects=[effect("age", 1.09, centre=60)]),
+                         effect("sex", 1.2, level="male"), effect("age", 1.01, centre=60)]),
+    probability("well", "dead", 0.03, effects=[effect("age", 1.03, centre=60)]),
     probability("well", "well", "remainder"),
     probability("sick", "dead", 0.15, effects=[effect("diabetes", 1.3)]),
     probability("sick", "sick", "remainder"),
@@ -81,14 +81,12 @@ MEMORY = scenario_text(
           memory=[after("flare", within=0.2, multiplier=0.5)]))
 
 ROWS = scenario_text(
-    # 'a' has no remainder: diabetics' lower exit probability leaves room to stay put
-    # without a named transition; 'b' sends its remainder to 'dead'; 'c' has no way out
+    # 'a' has no remainder (its row sums to 1 as written); 'b' sends its remainder to
+    # 'dead'; 'c' has no way out
     horizon(10, cycle=1), start(a=0.5, b=0.3, c=0.2),
     state("a"), state("b"), state("c"), state("dead", absorbing=True),
-    probability("a", "b", 0.2, effects=[effect("diabetes", 0.5)]),
-    probability("a", "a", 0.7), probability("a", "dead", 0.1),
-    probability("b", "c", 0.1), probability("b", "b", 0.6), probability("b", "dead", "remainder"),
-    population(1000, attribute("diabetes", "yesno", prevalence=0.4)))
+    probability("a", "b", 0.2), probability("a", "a", 0.7), probability("a", "dead", 0.1),
+    probability("b", "c", 0.1), probability("b", "b", 0.6), probability("b", "dead", "remainder"))
 
 TREATED = scenario_text(
     horizon(12, cycle=1), start(well=1),
@@ -107,8 +105,17 @@ TREATMENT = StrategySpec(
 USUAL_CARE = StrategySpec(name="usual_care", label="Usual care", comparator=True)
 
 
-def treated_model():
-    scenario = dataclasses.replace(parse_scenario(TREATED), strategies=(USUAL_CARE, TREATMENT))
+RULES = ("separate", "competing")
+
+
+def under(rule: str, text: str) -> str:
+    """The scenario text with time.probability_rule set."""
+    return text.replace("[time]\n", f'[time]\nprobability_rule = "{rule}"\n', 1)
+
+
+def treated_model(rule: str = "separate"):
+    scenario = dataclasses.replace(parse_scenario(under(rule, TREATED)),
+                                   strategies=(USUAL_CARE, TREATMENT))
     return bind(scenario, strategy="treat")
 
 
@@ -138,17 +145,31 @@ def assert_every_risk_happens(model, histories):
             assert r in happened, risk.name
 
 
-@pytest.mark.parametrize("text", [HOMOGENEOUS, COVARIATES, TABLES, MEMORY, ROWS],
-                         ids=["homogeneous", "covariates", "tables", "memory", "rows"])
-def test_histories_equal_the_simpy_cycle_engine(text):
-    model = bind(parse_scenario(text))
+MODELS = {"homogeneous": HOMOGENEOUS, "covariates": COVARIATES, "tables": TABLES,
+          "memory": MEMORY}
+
+
+@pytest.mark.parametrize("rule", RULES)
+@pytest.mark.parametrize("name", MODELS)
+def test_histories_equal_the_simpy_cycle_engine(name, rule):
+    model = bind(parse_scenario(under(rule, MODELS[name])))
+    assert model.probability_rule == rule
     expected, got, _ = both_engines(model, IDS, 20260511)
     assert_identical(expected, got)
     assert_every_risk_happens(model, got)
 
 
-def test_treatment_window_histories_equal_the_simpy_cycle_engine():
-    model = treated_model()
+def test_rows_without_remainder_equal_the_simpy_cycle_engine():
+    # the separate rule only: the competing rule needs a remainder in every row of moves
+    model = bind(parse_scenario(ROWS))
+    expected, got, _ = both_engines(model, IDS, 20260511)
+    assert_identical(expected, got)
+    assert_every_risk_happens(model, got)
+
+
+@pytest.mark.parametrize("rule", RULES)
+def test_treatment_window_histories_equal_the_simpy_cycle_engine(rule):
+    model = treated_model(rule)
     expected, got, mult = both_engines(model, IDS, 99)
     window = mult.window
     treated = np.isfinite(window.on)
@@ -160,8 +181,7 @@ def test_treatment_window_histories_equal_the_simpy_cycle_engine():
 
 
 def test_staying_put_is_not_recorded():
-    # an explicit a->a, b->b, an implicit stay in 'a' (diabetics) and a state with no way
-    # out ('c'): none of them leaves a record
+    # an explicit a->a, b->b and a state with no way out ('c'): none of them leaves a record
     model = bind(parse_scenario(ROWS))
     _, got, _ = both_engines(model, IDS, 5)
     moves = got.source >= 0

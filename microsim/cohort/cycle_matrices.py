@@ -3,9 +3,10 @@
 Within a cycle a patient in expanded state (i, d, counts) takes one of the transitions out
 of i (the "remainder" takes what the others leave) and, independently, each event of i
 happens or not; counts and time-in-state then move on. Covariate and memory multipliers act
-on the rate scale, p' = 1 - (1 - p)^m, so a hazard ratio keeps a probability in [0, 1]
-(common practice; e.g. Briggs, Claxton & Sculpher 2006, "Decision Modelling for Health
-Economic Evaluation", ch. 3). The cycle engine follows exactly these rules.
+on the rate scale, each move on its own, p' = 1 - (1 - p)^m (common practice; e.g. Briggs,
+Claxton & Sculpher 2006, "Decision Modelling for Health Economic Evaluation", ch. 3), or,
+under the competing rule, the row's moves combined through their rates
+(`microsim.hazards.cycle_probabilities`). The cycle engines follow exactly these rules.
 """
 from __future__ import annotations
 
@@ -16,15 +17,14 @@ import numpy as np
 from microsim.binding import BoundRisk
 from microsim.cohort.expand import Expansion
 from microsim.patients.multipliers import Multipliers
-from microsim.scenario.errors import ScenarioError
-from microsim.scenario.spec import TableSpec
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
+from microsim.scenario.spec import COMPETING, TableSpec
 
 
-def table_value(table: TableSpec, time: float, age, time_in_state: float):
-    """A table's value at the point on its own axis (value i holds from starts[i])."""
+def table_band(table: TableSpec, time: float, age, time_in_state: float):
+    """The band of a table at the point on its own axis (band i holds from starts[i])."""
     x = {"time": time, "age": age, "time_in_state": time_in_state}[table.by]
-    index = np.searchsorted(np.asarray(table.starts), x, side="right") - 1
-    return np.asarray(table.values)[np.maximum(index, 0)]
+    return np.maximum(np.searchsorted(np.asarray(table.starts), x, side="right") - 1, 0)
 
 
 def on_rate_scale(p, m):
@@ -33,12 +33,14 @@ def on_rate_scale(p, m):
     return np.where(m == 1.0, p, 1.0 - np.power(1.0 - np.asarray(p, float), m))
 
 
-def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float, m):
-    """Per-cycle probability of a (non-remainder) risk for a batch of patients."""
+def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float):
+    """Base per-cycle probability of a (non-remainder) risk for a batch of patients, and
+    its L = -ln(1 - p) (the competing rule's weight)."""
     base = risk.probability
-    if isinstance(base, TableSpec):
-        base = table_value(base, time, ages, duration * cycle)
-    return on_rate_scale(base, m)
+    if not isinstance(base, TableSpec):
+        return base, risk.logs[0]
+    band = table_band(base, time, ages, duration * cycle)
+    return np.asarray(base.values)[band], np.asarray(risk.logs)[band]
 
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
@@ -54,27 +56,33 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
         if model.absorbing[i]:
             P[:, e, e] = 1.0
             continue
-        moves, events, total, remainder = [], [], 0.0, None
-        for r, risk in enumerate(model.risks):
-            if risk.source != i:
-                continue
+        row = [(r, risk) for r, risk in enumerate(model.risks) if risk.source == i]
+        combined = model.probability_rule == COMPETING and sum(
+            not risk.remainder and not risk.is_event for _, risk in row) > 1
+        moves, events, weighed, remainder = [], [], [], None
+        for r, risk in row:
             if risk.remainder:
                 remainder = r
                 continue
             m = m_all[:, r] * exp.memory_factor(risk, counts)
-            p = risk_probability(risk, time, ages, d, model.cycle, m)
-            risk_p[:, e, r] = p
+            p, log = risk_probability(risk, time, ages, d, model.cycle)
             if risk.is_event:
+                risk_p[:, e, r] = p = on_rate_scale(p, m)
                 events.append((risk, p))
             else:
-                moves.append((risk, p))
-                total = total + p
+                weighed.append((r, risk, (p, log, m)))
+        chances = (competing([w for *_, w in weighed], np.float_power) if combined
+                   else [on_rate_scale(p, m) for *_, (p, _, m) in weighed])
+        total = 0.0
+        for (r, risk, _), p in zip(weighed, chances):
+            risk_p[:, e, r] = p
+            moves.append((risk, p))
+            total = total + p
         stay = 1.0 - total
-        if np.min(stay) < -1e-9:
-            raise ScenarioError(
-                f"transitions from '{model.states[i]}'",
-                f"probabilities reach {1 - np.min(stay):.6g} at cycle {n} after covariate "
-                "or memory effects; lower them or mark one transition as 'remainder'")
+        if not np.min(stay) >= 1.0 - LIMIT:
+            k = int(np.argmin(stay))
+            raise overflow(f"transitions.{model.states[i]}->*", float(1.0 - stay[k]),
+                           f"the cohort's patient row {k}", n)
         stay = np.maximum(stay, 0.0)
         if remainder is not None:
             risk_p[:, e, remainder] = stay

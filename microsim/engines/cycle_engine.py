@@ -1,8 +1,11 @@
 """The cycle SimPy engine: fixed steps with per-cycle probabilities.
 
 Each cycle a patient takes one way out of its state, chosen by one uniform against the
-cumulative probabilities (the remainder takes what the others leave), and each event of
-the state happens or not by its own uniform; counts and time in state then move on.
+cumulative probabilities (under the scenario's probability rule,
+`microsim.hazards.cycle_probabilities`; the remainder takes what the others leave), and
+each event of the state happens or not by its own uniform; counts and time in state then
+move on. A row that sums above 1 is never capped: it raises, since the scenario checks
+refuse every row that could.
 These are exactly the rules of `microsim.cohort.cycle_matrices`, so the expected simulated trace
 is the analytic one. Draws are keyed by cycle number (occurrence = cycle), so strategies
 share them cycle by cycle (common random numbers).
@@ -15,43 +18,57 @@ from math import exp
 import numpy as np
 import simpy
 
-from microsim.binding import BoundModel
+from microsim.binding import BoundModel, BoundRisk
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
-from microsim.scenario.spec import TableSpec
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
+from microsim.scenario.spec import COMPETING, TableSpec
 
 MOVE = "cycle:move"
 AXES = {"time": 0, "age": 1, "time_in_state": 2}
 
 
-def base_value(probability):
-    """(constant, None) for a number; (None, (axis, starts, values)) for a table."""
+def base_values(risk: BoundRisk, competing: bool):
+    """(values, logs, bands) of a risk's base probability: the value is values[band], band 0
+    for a number, the band of (axis, starts) for a table (bands None for a number); logs
+    holds L = -ln(1 - p) of each value for the moves of a competing row, else None."""
+    probability = risk.probability
     if isinstance(probability, TableSpec):
-        return None, (AXES[probability.by], list(probability.starts), list(probability.values))
-    return probability, None
+        values, bands = list(probability.values), (AXES[probability.by], list(probability.starts))
+    else:
+        values, bands = [probability], None
+    return values, list(risk.logs) if competing else None, bands
 
 
 def state_plans(model: BoundModel, names: tuple[str, ...]):
-    """For each state: (moves, remainder, events); moves and events as
-    (risk, purpose, target, constant, table, memory)."""
+    """For each state: (moves, remainder, events, competing); moves and events as
+    (risk, purpose, target, values, logs, bands, memory) (see `base_values`). A row
+    combines its moves by the competing rule when the model says so and it has two or
+    more moves (with one move both rules agree)."""
     tracked = plan.tracked_names(model)
     memory = plan.memory_terms(model, tracked)
     plans = []
     for i in range(model.n_states):
+        row = [] if model.absorbing[i] else [(r, risk) for r, risk in enumerate(model.risks)
+                                             if risk.source == i]
+        n_moves = sum(not risk.remainder and not risk.is_event for _, risk in row)
+        combined = model.probability_rule == COMPETING and n_moves > 1
         moves, events, remainder = [], [], None
-        for r, risk in enumerate(model.risks):
-            if risk.source != i or model.absorbing[i]:
-                continue
+        for r, risk in row:
             if risk.remainder:
                 remainder = (r, risk.target)
                 continue
-            row = (r, names.index(plan.risk_purpose(model, risk)), risk.target,
-                   *base_value(risk.probability), memory[r])
-            (events if risk.is_event else moves).append(row)
-        plans.append((tuple(moves), remainder, tuple(events)))
+            step = (r, names.index(plan.risk_purpose(model, risk)), risk.target,
+                    *base_values(risk, combined and not risk.is_event), memory[r])
+            (events if risk.is_event else moves).append(step)
+        plans.append((tuple(moves), remainder, tuple(events), combined))
     return plans
+
+
+def row_name(model: BoundModel, state: int) -> str:
+    return f"transitions.{model.states[state]}->*"
 
 
 def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
@@ -67,6 +84,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
     starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE))
     absorbing = model.absorbing.tolist()
+    ids = np.asarray(patient_ids).tolist()
     cycle, n_cycles = model.cycle, model.n_cycles
     record = Recorder(mult.size)
     env = simpy.Environment()
@@ -80,14 +98,13 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
 
-    def probability(step, static, t, age, duration, counts, last, on, off):
-        r, _, _, constant, table, memory = step
-        if table is None:
-            p = constant
-        else:
-            axis, starts, values = table
-            x = (t, age, duration * cycle)[axis]
-            p = values[max(bisect_right(starts, x) - 1, 0)]
+    def weigh(step, static, t, age, duration, counts, last, on, off):
+        """(base probability, L, multiplier) of a risk for one patient now."""
+        r, _, _, values, logs, bands, memory = step
+        k = 0
+        if bands is not None:
+            axis, starts = bands
+            k = max(bisect_right(starts, (t, age, duration * cycle)[axis]) - 1, 0)
         m = static[r]
         if slopes[r]:
             m *= exp(slopes[r] * t)
@@ -100,7 +117,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 # t and last are whole cycles: the tolerance keeps "less than within
                 # has passed" exact when within is a whole number of cycles
                 m *= multiplier
-        return p if m == 1.0 else 1.0 - (1.0 - p) ** m
+        return values[k], None if logs is None else logs[k], m
 
     def add(b, t, source, target, r):
         record.rows[b].append((t, source, target, r))
@@ -121,19 +138,26 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             if absorbing[state]:
                 return
             t = n * cycle
-            moves, remainder, events = plans[state]
+            moves, remainder, events, combined = plans[state]
+            age = age0 + t
+            row = [weigh(step, static, t, age, duration, counts, last, on, off) for step in moves]
+            chances = (competing(row, pow) if combined else
+                       [p if m == 1.0 else 1.0 - (1.0 - p) ** m for p, _, m in row])
             u = rows[move_purpose][n]
             chosen, total = None, 0.0
-            for step in moves:
-                total += probability(step, static, t, age0 + t, duration, counts, last, on, off)
-                if u < total:
+            for step, p in zip(moves, chances):
+                total += p
+                if chosen is None and u < total:
                     chosen = (step[0], step[2])
-                    break
-            if chosen is None and remainder is not None:
+            if not total <= LIMIT:  # never capped (and a nan is caught too)
+                raise overflow(row_name(model, state), total, f"patient {ids[b]}", n)
+            if chosen is None:
                 chosen = remainder
-            happened = [step for step in events
-                        if rows[step[1]][n] < probability(step, static, t, age0 + t, duration,
-                                                          counts, last, on, off)]
+            happened = []
+            for step in events:
+                p, _, m = weigh(step, static, t, age, duration, counts, last, on, off)
+                if rows[step[1]][n] < (p if m == 1.0 else 1.0 - (1.0 - p) ** m):
+                    happened.append(step)
             end = t + cycle
             for step in happened:
                 occur(b, end, state, state, step[0], counts, last)

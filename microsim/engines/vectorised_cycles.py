@@ -8,10 +8,11 @@ record for record and bit for bit. Two details keep the floats identical:
 
 - the age factor exp(slope * t) is one number per risk and cycle, so it comes from
   `math.exp` exactly as in the cycle engine (numpy's SIMD exp can differ in the last bit);
-- the rate-scale power 1 - (1 - p)^m uses `np.float_power`, which evaluates the C
-  library's pow element by element as Python's `**` does; `np.power` may take a SIMD
-  routine that differs in the last bit (measured: about 5% of random arguments on an
-  AVX-512 machine).
+- the rate-scale power 1 - (1 - p)^m, and the powers of the competing rule (one function,
+  `microsim.hazards.cycle_probabilities.competing`, serves both engines), use
+  `np.float_power`, which evaluates the C library's pow element by element as Python's
+  `**` does; `np.power` may take a SIMD routine that differs in the last bit (measured:
+  about 5% of random arguments on an AVX-512 machine).
 """
 from __future__ import annotations
 
@@ -23,7 +24,8 @@ from microsim.binding import BoundModel
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
-from microsim.engines.cycle_engine import MOVE, state_plans
+from microsim.engines.cycle_engine import MOVE, row_name, state_plans
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
 from microsim.engines.histories import START, Histories
 
 
@@ -50,17 +52,17 @@ class _Batch:
         self.state = starts.copy()
         self.duration = np.zeros(len(starts), np.int64)
 
-    def probability(self, step, who: np.ndarray, t: float):
-        """The risk's per-cycle probability for patients `who` at time t, in the cycle
-        engine's order of operations."""
-        r, _, _, constant, table, memory = step
-        if table is None:
-            p = constant
-        else:
-            axis, starts, values = table
+    def weigh(self, step, who: np.ndarray, t: float):
+        """(base probability, L, multiplier) of a risk for patients `who` at time t, in the
+        cycle engine's order of operations."""
+        r, _, _, values, logs, bands, memory = step
+        k = 0
+        if bands is not None:
+            axis, starts = bands
             x = (t, self.age0[who] + t, self.duration[who] * self.cycle)[axis]
-            place = np.searchsorted(np.asarray(starts, float), x, side="right") - 1
-            p = np.asarray(values, float)[np.maximum(place, 0)]
+            k = np.maximum(np.searchsorted(np.asarray(starts, float), x, side="right") - 1, 0)
+        p = values[0] if bands is None else np.asarray(values, float)[k]
+        log = None if logs is None else logs[0] if bands is None else np.asarray(logs, float)[k]
         m = self.static[who, r]
         if self.slopes[r]:
             m = m * exp(self.slopes[r] * t)
@@ -75,7 +77,14 @@ class _Batch:
                 # the cycle engine's tolerance: whole cycles compare exactly with `within`
                 recent = t - self.last[who, index] < within - 1e-9 * self.cycle
                 m = np.where(recent, m * multiplier, m)
-        return np.where(m == 1.0, p, 1.0 - np.float_power(1.0 - p, m))
+        return p, log, m
+
+    def chances(self, steps, combined: bool, who: np.ndarray, t: float) -> list:
+        """The per-cycle probabilities of `steps` (a row's moves, or events one by one)."""
+        row = [self.weigh(step, who, t) for step in steps]
+        if combined:
+            return competing(row, np.float_power)
+        return [np.where(m == 1.0, p, 1.0 - np.float_power(1.0 - p, m)) for p, _, m in row]
 
     def occur(self, who: np.ndarray, r: int, end: float):
         for index in self.bumps[r]:
@@ -108,20 +117,24 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
         for i, who in groups:
             if who.size == 0:
                 continue
-            moves, remainder, events = plans[i]
+            moves, remainder, events, combined = plans[i]
             u = draws[n, 0, who]
             risk = np.full(who.size, START, np.int64)
             target = np.full(who.size, i, np.int64)
             total = 0.0
-            for step in moves:
-                total = total + batch.probability(step, who, t)
+            for step, p in zip(moves, batch.chances(moves, combined, who, t)):
+                total = total + p
                 taken = (risk == START) & (u < total)
                 risk[taken], target[taken] = step[0], step[2]
+            if moves and not np.max(total) <= LIMIT:
+                first = np.flatnonzero(~(total <= LIMIT))[0]
+                raise overflow(row_name(model, i), float(total[first]),
+                               f"patient {ids[who[first]]}", n)
             if remainder is not None:
                 rest = risk == START
                 risk[rest], target[rest] = remainder
-            happened = [(step[0], who[draws[n, step[1], who] < batch.probability(step, who, t)])
-                        for step in events]
+            happened = [(step[0], who[draws[n, step[1], who] < p])
+                        for step, p in zip(events, batch.chances(events, False, who, t))]
             for r, hit in happened:
                 records.append((hit, end, i, i, r))
                 batch.occur(hit, r, end)

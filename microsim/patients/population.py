@@ -30,6 +30,7 @@ from microsim.scenario.errors import ScenarioError
 from microsim.scenario.file_uses import check_column_uses, check_file_population
 from microsim.scenario.population_file import RESERVED, PopulationFile, read_population_file
 from microsim.scenario.read_population import band_gap
+from microsim.scenario.rows import check_row_bounds
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec, Scenario
 
 PATIENT = RESERVED  # the column of patient ids, which no file or attribute may take
@@ -353,8 +354,11 @@ def cohort_patients(size: int) -> pd.DataFrame:
 
 def scenario_patients(scenario: Scenario, seed: int, ids: np.ndarray) -> pd.DataFrame:
     """The scenario's patients with these ids: drawn from its population section, or
-    identical patients when it has none."""
+    identical patients when it has none. A population file's ranges first bound the rows
+    (`microsim.scenario.rows`), as the spec's attributes did when the scenario was read."""
     spec = scenario.population
+    if spec is not None and spec.file is not None:
+        check_row_bounds(scenario, file_ranges(spec))
     if spec is not None and (spec.attributes or spec.file):
         check_population_file(scenario)
         return draw_population(spec, seed, ids)
@@ -372,6 +376,14 @@ def subgroup_attributes(patients: pd.DataFrame) -> list[str]:
     """Attributes that define subgroups: categories, yes/no, and bands."""
     return [c for c in patients.columns if c != PATIENT and (
         patients[c].dtype == bool or isinstance(patients[c].dtype, pd.CategoricalDtype))]
+
+
+def file_ranges(spec: PopulationSpec) -> dict[str, tuple[float, float]]:
+    """The lowest and highest value of each numeric (or yes/no, as 0/1) column of the
+    population file over all its rows, any of which a patient may draw."""
+    return {name: (column.lowest, column.highest)
+            for name, column in population_file(spec).columns.items()
+            if column.lowest is not None}
 
 
 # ------------------------------------------------------------------------ expectations

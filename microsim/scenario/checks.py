@@ -130,14 +130,16 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         if problem:
             raise ScenarioError(where + key, f"{problem} (it is used as {role.noun} at "
                                              f"{ref.path})")
-    if p.distribution is not None and p.distribution.family != "fixed":
+    if (p.distribution is not None and p.distribution.family != "fixed"
+            and s.uncertainty.invalid_draws == "refuse"):  # else each draw is checked
         lowest, highest = support(p.distribution, p.value)
         if not role.holds_on(lowest, highest):
             raise ScenarioError(f"{where}.distribution",
                                 f"a {p.distribution.family} distribution draws values from "
                                 f"{show(lowest)} to {show(highest)}, but {p.name!r} is used as "
                                 f"{role.noun} at {ref.path} ({role.rule}); choose a "
-                                "distribution that stays in that range")
+                                "distribution that stays in that range, or set "
+                                'uncertainty.invalid_draws = "redraw" or "truncate"')
 
 
 def check_kind(s: Scenario) -> None:
@@ -265,11 +267,10 @@ def table_at(table: TableSpec, points: np.ndarray) -> np.ndarray:
 
 
 def check_row(s: Scenario, state: str) -> None:
-    """The outgoing probabilities of a non-absorbing state sum to 1 (or to at most 1
-    beside one remainder) at base-case values, in every band of every table."""
+    """A non-absorbing state's row has at most one remainder, and without one its
+    probabilities sum to 1 at base-case values, in every band of every table. (Beside a
+    remainder, the largest sum a row can reach is bounded in `rows.check_row_bounds`.)"""
     row = [t for t in s.transitions if t.source == state]
-    if not row:
-        return  # no way out: the state keeps everyone (an implicit self-loop)
     constant, remainder = 0.0, None
     tables_by_axis: dict[str, list[TableSpec]] = {}
     for t in row:
@@ -286,23 +287,21 @@ def check_row(s: Scenario, state: str) -> None:
             constant += s.parameters[t.probability].value
         else:
             constant += t.probability
+    if not row:
+        return  # no way out: the state keeps everyone (an implicit self-loop)
+    if remainder is not None:
+        return  # the largest sum beside it is bounded in rows.py
     low = high = constant
     for tables in tables_by_axis.values():  # different axes vary independently
         points = np.unique(np.concatenate([t.starts for t in tables]))
         total = sum(table_at(t, points) for t in tables)
         low, high = low + float(total.min()), high + float(total.max())
-    path = f"transitions.{state}->*"
-    if remainder is not None:
-        if high > 1.0 + TOLERANCE:
-            most = " (in the highest table band)" if high != low else ""
-            raise ScenarioError(path, f"probabilities from {state!r} other than the remainder "
-                                f"sum to {show(high)}{most}, above 1; lower them so that the "
-                                "remainder is not negative")
-    elif abs(low - 1.0) > TOLERANCE or abs(high - 1.0) > TOLERANCE:
+    if abs(low - 1.0) > TOLERANCE or abs(high - 1.0) > TOLERANCE:
         total = show(low) if low == high else \
             f"between {show(low)} and {show(high)} across the table bands"
-        raise ScenarioError(path, f"probabilities from {state!r} sum to {total}, not 1; add a "
-                            'transition with probability = "remainder" or fix the values')
+        raise ScenarioError(f"transitions.{state}->*", f"probabilities from {state!r} sum to "
+                            f"{total}, not 1; add a transition with probability = "
+                            '"remainder" or fix the values')
 
 
 def may_be_positive(s: Scenario, value: Ref) -> bool:

@@ -13,6 +13,8 @@ import re
 from dataclasses import dataclass, field
 from typing import Any, Iterable, NoReturn
 
+import numpy as np
+
 from .errors import ScenarioError
 from .spec import REMAINDER, Ref
 
@@ -75,14 +77,18 @@ class Role:
     upper: float = math.inf
     lower_open: bool = False
     named: bool = True
+    upper_open: bool = False
 
     @property
     def bounds(self) -> str:
         low = f"above {show(self.lower)}" if self.lower_open else f"at least {show(self.lower)}"
+        high = f"below {show(self.upper)}" if self.upper_open else f"at most {show(self.upper)}"
         if math.isinf(self.upper):
             return low if math.isfinite(self.lower) else "any number"
         if math.isinf(self.lower):
-            return f"at most {show(self.upper)}"
+            return high
+        if self.lower_open or self.upper_open:
+            return f"{low} and {high}"
         return f"between {show(self.lower)} and {show(self.upper)}"
 
     @property
@@ -92,18 +98,32 @@ class Role:
     def problem(self, x: float) -> str | None:
         """Why `x` cannot play this role, or None when it can."""
         too_low = x < self.lower or (self.lower_open and x == self.lower)
-        if not too_low and x <= self.upper:
+        too_high = x > self.upper or (self.upper_open and x == self.upper)
+        if not too_low and not too_high:
             return None
         if not self.named:
             return f"must be {self.bounds}, got {show(x)}"
         if too_low:
             relation = "not above" if self.lower_open else "below"
             return f"{show(x)} is {relation} {show(self.lower)}; {self.rule}"
-        return f"{show(x)} is above {show(self.upper)}; {self.rule}"
+        relation = "not below" if self.upper_open else "above"
+        return f"{show(x)} is {relation} {show(self.upper)}; {self.rule}"
 
     def holds_on(self, low: float, high: float) -> bool:
         """True when every value strictly between low and high is allowed."""
         return low >= self.lower and high <= self.upper
+
+    def outside(self, x: np.ndarray) -> np.ndarray:
+        """Which of the values `x` cannot play this role (vectorised `problem`)."""
+        return (np.isnan(x) | (x < self.lower) | (x > self.upper)
+                | (self.lower_open & (x == self.lower))
+                | (self.upper_open & (x == self.upper)))
+
+    def clip(self, x: np.ndarray) -> np.ndarray:
+        """The nearest values that can play this role (open ends: the nearest float inside)."""
+        low = np.nextafter(self.lower, math.inf) if self.lower_open else self.lower
+        high = np.nextafter(self.upper, -math.inf) if self.upper_open else self.upper
+        return np.clip(x, low, high)
 
 
 ANY = Role("a number")
@@ -116,6 +136,10 @@ HAZARD_RATIO = Role("a hazard ratio", 0.0, lower_open=True)
 MULTIPLIER = Role("a multiplier", 0.0, lower_open=True)
 UTILITY = Role("a utility weight", upper=1.0)
 CORRELATION = Role("a correlation", -1.0, 1.0)
+COMPETING_PROBABILITY = Role("a probability of a move that competes with others", 0.0, 1.0,
+                             upper_open=True)
+"""Under the competing rule a move beside other moves needs p < 1: p = 1 is an infinite rate
+that would leave the others nothing to compete for."""
 
 
 @dataclass(frozen=True)

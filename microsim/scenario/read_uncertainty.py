@@ -6,9 +6,9 @@ from .checks import undefined
 from .correlation import read_correlation_matrix
 from .errors import ScenarioError
 from .fields import MAX_PATIENTS, POSITIVE, Node, listing, show
-from .spec import Scenario, UncertaintySpec
+from .spec import INVALID_DRAWS, Scenario, UncertaintySpec
 
-UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet")
+UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws")
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
 DIRICHLET_SUM_TOLERANCE = 1e-6
@@ -33,7 +33,8 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
     return UncertaintySpec(
         draws=node.whole("draws", defaults.draws, minimum=1, maximum=1_000_000),
         patients=node.whole("patients", None, minimum=1, maximum=MAX_PATIENTS),
-        correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets))
+        correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
+        invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS))
 
 
 def read_parameter_correlation(node: Node | None

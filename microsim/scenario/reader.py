@@ -23,12 +23,14 @@ from .read_population import read_population
 from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
-from .spec import (OutcomesSpec, Scenario, SimulationSpec, StartSpec, StateSpec, TimeSpec)
+from .rows import check_row_bounds, check_row_structure
+from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
+                   StartSpec, StateSpec, TimeSpec)
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
             "events", "parameters", "tables", "outcomes", "population", "simulation",
             "strategies", "economics", "uncertainty")
-TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap")
+TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
 OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
@@ -41,8 +43,9 @@ UNIT_WORD = re.compile(r"[A-Za-z]+")
 TOML_POSITION = re.compile(r"\s*\(at (?:line (\d+), column (\d+)|end of document)\)\s*$")
 
 
-def read_scenario(path: str | Path) -> Scenario:
-    """Read and check a scenario file; refuse bad input with a `ScenarioError`."""
+def read_scenario(path: str | Path, invalid_draws: str | None = None) -> Scenario:
+    """Read and check a scenario file; refuse bad input with a `ScenarioError`.
+    `invalid_draws` overrides uncertainty.invalid_draws (the CLI's --invalid-draws)."""
     path = Path(path)
     try:
         data = path.read_bytes()
@@ -54,13 +57,14 @@ def read_scenario(path: str | Path) -> Scenario:
     except UnicodeDecodeError as error:
         raise ScenarioError(path.name, f"is not UTF-8 text (bad byte at offset {error.start})") \
             from None
-    return parse_scenario(text, source=path)
+    return parse_scenario(text, source=path, invalid_draws=invalid_draws)
 
 
-def parse_scenario(text: str, source: str | Path | None = None) -> Scenario:
+def parse_scenario(text: str, source: str | Path | None = None,
+                   invalid_draws: str | None = None) -> Scenario:
     """Check scenario text; `source` names it in errors and anchors relative file paths."""
     label = Path(source).name if source is not None else "scenario"
-    return scenario_from_data(load_toml(text, label), source)
+    return scenario_from_data(load_toml(text, label), source, invalid_draws)
 
 
 def load_toml(text: str, label: str) -> dict[str, Any]:
@@ -82,7 +86,8 @@ def load_toml(text: str, label: str) -> dict[str, Any]:
         raise ScenarioError(label, "is nested too deeply to read") from None
 
 
-def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -> Scenario:
+def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
+                       invalid_draws: str | None = None) -> Scenario:
     """Build and check a Scenario from an already-parsed TOML document."""
     reading = Reading()
     doc = Node(data, "", reading, TOP_KEYS)
@@ -114,9 +119,13 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -
         uncertainty=read_uncertainty(doc.node("uncertainty", UNCERTAINTY_KEYS, default=None)),
         source=Path(source) if source is not None else None,
     )
+    if invalid_draws is not None:
+        draft = replace(draft, uncertainty=replace(draft.uncertainty, invalid_draws=invalid_draws))
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
-    return replace(draft, warnings=tuple(found))
+    uses = reading.references + check_row_structure(draft)
+    check_row_bounds(draft)
+    return replace(draft, warnings=tuple(found), uses=tuple(uses))
 
 
 def read_time(node: Node) -> TimeSpec:
@@ -136,7 +145,9 @@ def read_time(node: Node) -> TimeSpec:
             node.fail("lifetime_cap", f'is only used with horizon = "{LIFETIME}"')
         whole_cycles(node, "horizon", horizon, cycle)
         cap = DEFAULT_LIFETIME_CAP
-    return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap)
+    rule = node.text("probability_rule", SEPARATE, choices=PROBABILITY_RULES)
+    return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap,
+                    probability_rule=rule)
 
 
 def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = "") -> None:

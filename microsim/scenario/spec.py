@@ -9,7 +9,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal, Mapping
+from typing import TYPE_CHECKING, Literal, Mapping
+
+if TYPE_CHECKING:
+    from .fields import Reference
 
 Ref = float | str
 """A literal number, or the name of a parameter (or, for transition values, a table)."""
@@ -26,6 +29,12 @@ CLOCK_OF_TABLE_AXIS: Mapping[str, Clock] = {
     "age": "age", "time": "since_start", "time_in_state": "since_entry"}
 """The clock a table's `by` fixes for any transition or event that reads the table."""
 
+ProbabilityRule = Literal["separate", "competing"]
+SEPARATE, COMPETING = "separate", "competing"
+PROBABILITY_RULES = (SEPARATE, COMPETING)
+"""How a row's per-cycle probabilities take the hazard multipliers: each move on its own, or
+the moves competing through their rates (`microsim.hazards.cycle_probabilities`)."""
+
 CONTINUOUS_DISTRIBUTIONS = ("normal", "lognormal", "uniform", "beta", "gamma")
 """Attribute distributions that give numbers (the others give levels or yes/no)."""
 
@@ -36,6 +45,7 @@ class TimeSpec:
     cycle: float
     horizon: float | None  # None: lifetime (until everyone is absorbed, capped)
     lifetime_cap: float  # always set (default 100); only read when horizon is None
+    probability_rule: ProbabilityRule = SEPARATE  # cycle models only
 
     @property
     def end(self) -> float:
@@ -278,14 +288,21 @@ class EconomicsSpec:
     precision: float | None = None  # target 95% CI half-width of incremental NMB
 
 
+INVALID_DRAWS = ("refuse", "redraw", "truncate")
+"""What a PSA does with a draw some value or row of which is invalid: refuse the run, draw
+it again from the next occurrence of its streams, or clip its values to their ranges."""
+
+
 @dataclass(frozen=True)
 class UncertaintySpec:
-    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows."""
+    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows, and
+    what to do with invalid draws."""
     draws: int = 100
     patients: int | None = None  # default: the population size
     correlation_parameters: tuple[str, ...] = ()
     correlation: tuple[tuple[float, ...], ...] = ()
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
+    invalid_draws: str = "refuse"  # one of INVALID_DRAWS
 
 
 @dataclass(frozen=True)
@@ -308,6 +325,8 @@ class Scenario:
     uncertainty: UncertaintySpec = UncertaintySpec()
     source: Path | None = None
     warnings: tuple[str, ...] = ()
+    uses: tuple[Reference, ...] = ()  # every parameter or table name in a number slot, with
+    # the role the reader gave it: what each PSA draw's values are checked against
 
     @property
     def state_names(self) -> tuple[str, ...]:

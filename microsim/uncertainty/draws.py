@@ -1,11 +1,11 @@
 """Parameter draws for probabilistic sensitivity analysis (PSA): one row per draw.
 
-Draw d of parameter `name` reads the uniform `streams.uniforms(seed, d, "psa:" + name)`:
-the draw index sits in the patient-id slot of the counter-based streams (occurrence 0),
-and the "psa:" prefix keeps these purposes apart from every patient-level purpose. So a
-draw is a pure function of (seed, draw index): draw 17 is the same whether 20 or 2000
-draws are asked for, and fixing, adding or removing one parameter leaves the others'
-draws alone. Families and the Gaussian copula come from `microsim.uncertainty.distributions`.
+Draw d of parameter `name` reads the uniform `streams.uniforms(seed, d, "psa:" + name, k)`:
+the draw index sits in the patient-id slot of the counter-based streams, the occurrence k
+is the attempt (0, or more when an invalid draw is drawn again), and the "psa:" prefix
+keeps these purposes apart from every patient-level purpose. So a draw is a pure function
+of (seed, draw index, attempt): draw 17 is the same whether 20 or 2000 draws are asked
+for, and fixing, adding or removing one parameter leaves the others' draws alone. Families and the Gaussian copula come from `microsim.uncertainty.distributions`.
 """
 from __future__ import annotations
 
@@ -100,32 +100,46 @@ def _copula_matrix(scalars: Sequence[str], correlation: Correlation | None,
     return full
 
 
+class ParameterSampler:
+    """The scenario's PSA distributions, checked once, ready to draw any draws.
+
+    `correlation` (names, matrix) correlates named parameters through a Gaussian copula,
+    keeping each marginal. Each Dirichlet group (names, alphas) fills its parameters from
+    one Dirichlet draw, component k from the uniforms of parameter k. Parameters without a
+    distribution keep their value in every draw."""
+
+    def __init__(self, parameters: Mapping[str, ParameterSpec], correlation: Correlation | None = None,
+                 dirichlets: Sequence[DirichletGroup] = ()):
+        if "draw" in parameters:
+            raise ScenarioError("parameters.draw", "'draw' names the draw column of PSA tables; rename the parameter")
+        self.parameters = parameters
+        self.groups = _dirichlet_groups(parameters, dirichlets)
+        self.uncertain: dict[str, Distribution] = {
+            name: _distribution(spec) for name, spec in parameters.items() if spec.distribution is not None}
+        self.matrix = _copula_matrix(list(self.uncertain), correlation, parameters)
+        self.columns = [*self.uncertain, *(name for names, _ in self.groups.values() for name in names)]
+
+    def draws(self, seed: int, ids: np.ndarray, attempts=0) -> pd.DataFrame:
+        """Draws `ids` (column `draw`), then one float column per parameter; draw d reads
+        occurrence attempts[d] (default 0) of its streams."""
+        ids = np.asarray(ids, dtype=np.uint64)
+        uniforms = np.empty((len(ids), len(self.columns)))
+        for j, name in enumerate(self.columns):
+            uniforms[:, j] = streams.uniforms(seed, ids, purpose(name), attempts)
+        drawn = draw_parameters({**self.uncertain, **{key: d for key, (_, d) in self.groups.items()}},
+                                uniforms, self.matrix)
+        values = {name: np.full(len(ids), spec.value, dtype=float) for name, spec in self.parameters.items()}
+        values.update({name: drawn[name] for name in self.uncertain})
+        for key, (names, _) in self.groups.items():
+            values.update({name: drawn[key][:, k] for k, name in enumerate(names)})
+        return pd.DataFrame({"draw": ids.astype(np.int64), **values})
+
+
 def parameter_draws(parameters: Mapping[str, ParameterSpec], seed: int, n_draws: int,
                     correlation: Correlation | None = None,
                     dirichlets: Sequence[DirichletGroup] = ()) -> pd.DataFrame:
-    """PSA draws, wide: column `draw` (0..n_draws-1), then one float column per parameter.
-
-    Parameters without a distribution keep their value in every draw. `correlation`
-    (names, matrix) correlates named parameters through a Gaussian copula, keeping each
-    marginal. Each Dirichlet group (names, alphas) fills its parameters from one
-    Dirichlet draw, component k from the uniforms of parameter k.
-    """
+    """PSA draws, wide: column `draw` (0..n_draws-1), then one float column per parameter
+    (see `ParameterSampler`)."""
     if isinstance(n_draws, bool) or not isinstance(n_draws, (int, np.integer)) or n_draws < 1:
         raise ScenarioError("n_draws", f"must be a whole number >= 1, got {n_draws!r}")
-    if "draw" in parameters:
-        raise ScenarioError("parameters.draw", "'draw' names the draw column of PSA tables; rename the parameter")
-    groups = _dirichlet_groups(parameters, dirichlets)
-    uncertain: dict[str, Distribution] = {
-        name: _distribution(spec) for name, spec in parameters.items() if spec.distribution is not None}
-    matrix = _copula_matrix(list(uncertain), correlation, parameters)
-    columns = [*uncertain, *(name for names, _ in groups.values() for name in names)]
-    ids = np.arange(n_draws, dtype=np.uint64)
-    uniforms = np.empty((n_draws, len(columns)))
-    for j, name in enumerate(columns):
-        uniforms[:, j] = streams.uniforms(seed, ids, purpose(name))
-    drawn = draw_parameters({**uncertain, **{key: d for key, (_, d) in groups.items()}}, uniforms, matrix)
-    values = {name: np.full(n_draws, spec.value, dtype=float) for name, spec in parameters.items()}
-    values.update({name: drawn[name] for name in uncertain})
-    for key, (names, _) in groups.items():
-        values.update({name: drawn[key][:, k] for k, name in enumerate(names)})
-    return pd.DataFrame({"draw": np.arange(n_draws, dtype=np.int64), **values})
+    return ParameterSampler(parameters, correlation, dirichlets).draws(seed, np.arange(n_draws))

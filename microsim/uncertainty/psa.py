@@ -26,7 +26,9 @@ from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_str
 from microsim.patients.population import scenario_patients
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
-from microsim.uncertainty import parameter_draws, run_draws, summarise_draws
+from microsim.uncertainty import run_draws, summarise_draws
+from microsim.uncertainty.draw_checks import check_draws
+from microsim.uncertainty.draws import ParameterSampler
 from microsim.uncertainty.summaries import draw_intervals
 
 NEEDS_STRATEGIES = ("acceptability curves, the cost-effectiveness plane, EVPI and the "
@@ -63,6 +65,7 @@ class PsaResult:
     draws: pd.DataFrame  # parameter values per draw
     results: pd.DataFrame  # per draw and strategy
     outcomes: pd.DataFrame  # per strategy and measure: mean over draws and 95% interval
+    changed: pd.DataFrame  # values of invalid draws that were redrawn or truncated
     # The comparisons of strategies; None (and `note` says why) without strategies:
     acceptability: pd.DataFrame | None = None
     evpi: pd.DataFrame | None = None
@@ -119,8 +122,10 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                          scenario.population.size if scenario.population else None, 1000)
              if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
-    table = parameter_draws(scenario.parameters, scenario.simulation.seed, n_draws,
-                            correlation=correlation, dirichlets=spec.dirichlets)
+    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
+    # every draw checked (refused, redrawn or truncated) before anything is simulated
+    checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
+    table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
                    "microsim": __version__}
@@ -129,7 +134,7 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
     if not scenario.strategies:
-        return PsaResult(table, results, outcomes, note=NEEDS_STRATEGIES)
+        return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES)
     summary = summarise_draws(results, thresholds(scenario), strategy_names(scenario)[0])
-    return PsaResult(table, results, outcomes, summary["acceptability"], summary["evpi"],
-                     summary["plane"], variance_split(scenario, results))
+    return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
+                     summary["evpi"], summary["plane"], variance_split(scenario, results))
