@@ -87,7 +87,8 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             batch = mult.take(part)
             h = engine(model, batch, ids[part], seed)
             states.append(aggregate.grid_states(h, grid))
-            exposures.append(aggregate.exposure(model, h, batch.window))
+            cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
+            exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
             transitions += int(np.sum(h.risk >= 0))
             if partial is not None:
                 table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks])

@@ -77,7 +77,7 @@ def test_competing_rule_matches_the_formula_for_a_row_with_covariates():
 
 def test_the_documented_example():
     # docs/scenario-format.md: without effects, 0.3 and 0.1 become 0.286 and 0.084
-    chances = competing([(0.3, -math.log(0.7), 1.0), (0.1, -math.log(0.9), 1.0)], pow)
+    chances = competing([(0.3, -math.log(0.7), 1.0), (0.1, -math.log(0.9), 1.0)])
     expected, stay = by_hand(np.array([0.3, 0.1]), np.ones(2), 1.0)
     np.testing.assert_allclose(chances, expected, rtol=1e-12)
     assert [round(p, 3) for p in chances] == [0.286, 0.084] and round(stay, 2) == 0.63
@@ -90,7 +90,7 @@ def test_competing_rows_never_exceed_1_for_extreme_multipliers(extreme):
     m = np.exp(rng.uniform(-1, 1, size=(3, 10_000))) * extreme
     m[0, :100] = 0.0  # a move switched off (a treatment-only move off treatment)
     p[1, 100:200] = 0.0
-    chances = competing([(p[j], -np.log1p(-p[j]), m[j]) for j in range(3)], np.float_power)
+    chances = competing([(p[j], -np.log1p(-p[j]), m[j]) for j in range(3)])
     total = np.sum(chances, axis=0)
     # at most 1 up to the rounding of three products and a sum (a few units in the last place)
     assert np.all(np.stack(chances) >= 0) and np.all(total <= 1.0 + 4 * np.finfo(float).eps)

@@ -17,7 +17,7 @@ import numpy as np
 from microsim.binding import BoundRisk
 from microsim.cohort.expand import Expansion
 from microsim.patients.multipliers import Multipliers
-from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
 from microsim.scenario.spec import COMPETING, TableSpec
 
 
@@ -27,10 +27,11 @@ def table_band(table: TableSpec, time: float, age, time_in_state: float):
     return np.maximum(np.searchsorted(np.asarray(table.starts), x, side="right") - 1, 0)
 
 
-def on_rate_scale(p, m):
-    """Apply hazard multiplier m to a per-cycle probability p: 1 - (1 - p)^m."""
+def on_rate_scale(p, log, m):
+    """Apply hazard multiplier m to a per-cycle probability p (cumulative hazard L):
+    1 - (1 - p)^m, the file's p itself where m is 1."""
     m = np.asarray(m, float)
-    return np.where(m == 1.0, p, 1.0 - np.power(1.0 - np.asarray(p, float), m))
+    return np.where(m == 1.0, p, separate(log, m))
 
 
 def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float):
@@ -67,12 +68,12 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
             m = m_all[:, r] * exp.memory_factor(risk, counts)
             p, log = risk_probability(risk, time, ages, d, model.cycle)
             if risk.is_event:
-                risk_p[:, e, r] = p = on_rate_scale(p, m)
+                risk_p[:, e, r] = p = on_rate_scale(p, log, m)
                 events.append((risk, p))
             else:
                 weighed.append((r, risk, (p, log, m)))
-        chances = (competing([w for *_, w in weighed], np.float_power) if combined
-                   else [on_rate_scale(p, m) for *_, (p, _, m) in weighed])
+        chances = (competing([w for *_, w in weighed]) if combined
+                   else [on_rate_scale(p, log, m) for *_, (p, log, m) in weighed])
         total = 0.0
         for (r, risk, _), p in zip(weighed, chances):
             risk_p[:, e, r] = p

@@ -23,23 +23,23 @@ from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
-from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
 from microsim.scenario.spec import COMPETING, TableSpec
 
 MOVE = "cycle:move"
 AXES = {"time": 0, "age": 1, "time_in_state": 2}
 
 
-def base_values(risk: BoundRisk, competing: bool):
+def base_values(risk: BoundRisk):
     """(values, logs, bands) of a risk's base probability: the value is values[band], band 0
     for a number, the band of (axis, starts) for a table (bands None for a number); logs
-    holds L = -ln(1 - p) of each value for the moves of a competing row, else None."""
+    holds L = -ln(1 - p) of each value."""
     probability = risk.probability
     if isinstance(probability, TableSpec):
         values, bands = list(probability.values), (AXES[probability.by], list(probability.starts))
     else:
         values, bands = [probability], None
-    return values, list(risk.logs) if competing else None, bands
+    return values, list(risk.logs), bands
 
 
 def state_plans(model: BoundModel, names: tuple[str, ...]):
@@ -61,7 +61,7 @@ def state_plans(model: BoundModel, names: tuple[str, ...]):
                 remainder = (r, risk.target)
                 continue
             step = (r, names.index(plan.risk_purpose(model, risk)), risk.target,
-                    *base_values(risk, combined and not risk.is_event), memory[r])
+                    *base_values(risk), memory[r])
             (events if risk.is_event else moves).append(step)
         plans.append((tuple(moves), remainder, tuple(events), combined))
     return plans
@@ -117,7 +117,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 # t and last are whole cycles: the tolerance keeps "less than within
                 # has passed" exact when within is a whole number of cycles
                 m *= multiplier
-        return values[k], None if logs is None else logs[k], m
+        return values[k], logs[k], m
 
     def add(b, t, source, target, r):
         record.rows[b].append((t, source, target, r))
@@ -141,8 +141,8 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             moves, remainder, events, combined = plans[state]
             age = age0 + t
             row = [weigh(step, static, t, age, duration, counts, last, on, off) for step in moves]
-            chances = (competing(row, pow) if combined else
-                       [p if m == 1.0 else 1.0 - (1.0 - p) ** m for p, _, m in row])
+            chances = (competing(row) if combined else
+                       [p if m == 1.0 else separate(log, m) for p, log, m in row])
             u = rows[move_purpose][n]
             chosen, total = None, 0.0
             for step, p in zip(moves, chances):
@@ -155,8 +155,8 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 chosen = remainder
             happened = []
             for step in events:
-                p, _, m = weigh(step, static, t, age, duration, counts, last, on, off)
-                if rows[step[1]][n] < (p if m == 1.0 else 1.0 - (1.0 - p) ** m):
+                p, log, m = weigh(step, static, t, age, duration, counts, last, on, off)
+                if rows[step[1]][n] < (p if m == 1.0 else separate(log, m)):
                     happened.append(step)
             end = t + cycle
             for step in happened:

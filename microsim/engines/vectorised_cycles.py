@@ -2,17 +2,19 @@
 time for the whole batch.
 
 `microsim.engines.cycle_engine` runs one process per patient; here each cycle is a handful of
-numpy operations over the patients in each live state, in the same risk order and with the
+numpy operations over the live patients of each state, in the same risk order and with the
 same draws (same purposes, occurrence = cycle), so the two engines return equal histories,
-record for record and bit for bit. Two details keep the floats identical:
+record for record and bit for bit. What keeps the floats identical:
 
-- the age factor exp(slope * t) is one number per risk and cycle, so it comes from
-  `math.exp` exactly as in the cycle engine (numpy's SIMD exp can differ in the last bit);
-- the rate-scale power 1 - (1 - p)^m, and the powers of the competing rule (one function,
-  `microsim.hazards.cycle_probabilities.competing`, serves both engines), use
-  `np.float_power`, which evaluates the C library's pow element by element as Python's
-  `**` does; `np.power` may take a SIMD routine that differs in the last bit (measured:
-  about 5% of random arguments on an AVX-512 machine).
+- the age factor exp(slope * t) is one number per risk and cycle, from `math.exp` in both;
+- the per-cycle probabilities come from the same functions
+  (`microsim.hazards.cycle_probabilities`), which use numpy's `expm1` on arrays here and
+  on numpy scalars in the SimPy engine: the same routine either way.
+
+Speed: only live patients are touched (the batch shrinks as patients are absorbed), draws
+are made only for the purposes a cycle model reads (the move of each cycle and each event),
+four cycles at a time for the whole batch by numpy's own Philox (`microsim.streams.block`),
+and nothing in a cycle loops over patients in Python.
 """
 from __future__ import annotations
 
@@ -20,24 +22,27 @@ from math import exp
 
 import numpy as np
 
-from microsim.binding import BoundModel
-from microsim.patients.multipliers import Multipliers
 from microsim import streams
+from microsim.binding import BoundModel
 from microsim.engines import plan
 from microsim.engines.cycle_engine import MOVE, row_name, state_plans
-from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow
 from microsim.engines.histories import START, Histories
+from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
+from microsim.patients.multipliers import Multipliers
+
+BLOCK = 4  # cycles of draws made at once: one Philox block holds four occurrences
 
 
 class _Batch:
     """What every patient of the batch carries from cycle to cycle, as arrays, and the
-    per-cycle probability of a risk for some of them."""
+    per-cycle probabilities of a row for some of them."""
 
     def __init__(self, model: BoundModel, mult: Multipliers, starts: np.ndarray):
         tracked = plan.tracked_names(model)
         self.cycle = model.cycle
         self.bumps = plan.bumps(model, tracked)
         self.static = np.exp(mult.log_static)  # the values of plan.static_multipliers
+        self.ones = np.all(mult.log_static == 0.0, axis=0).tolist()  # risks no effect touches
         self.slopes = mult.age_slope.tolist()
         self.age0 = np.zeros(mult.size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
         window = mult.window
@@ -54,16 +59,20 @@ class _Batch:
 
     def weigh(self, step, who: np.ndarray, t: float):
         """(base probability, L, multiplier) of a risk for patients `who` at time t, in the
-        cycle engine's order of operations."""
+        cycle engine's order of operations (scalars where every patient shares them)."""
         r, _, _, values, logs, bands, memory = step
-        k = 0
-        if bands is not None:
+        if bands is None:
+            p, log = values[0], logs[0]
+        else:
             axis, starts = bands
             x = (t, self.age0[who] + t, self.duration[who] * self.cycle)[axis]
-            k = np.maximum(np.searchsorted(np.asarray(starts, float), x, side="right") - 1, 0)
-        p = values[0] if bands is None else np.asarray(values, float)[k]
-        log = None if logs is None else logs[0] if bands is None else np.asarray(logs, float)[k]
-        m = self.static[who, r]
+            if np.ndim(x) == 0:
+                k = max(int(np.searchsorted(starts, x, side="right")) - 1, 0)
+                p, log = values[k], logs[k]
+            else:
+                k = np.maximum(np.searchsorted(starts, x, side="right") - 1, 0)
+                p, log = np.asarray(values, float)[k], np.asarray(logs, float)[k]
+        m = 1.0 if self.ones[r] else self.static[who, r]
         if self.slopes[r]:
             m = m * exp(self.slopes[r] * t)
         if self.windowed[r]:
@@ -83,8 +92,9 @@ class _Batch:
         """The per-cycle probabilities of `steps` (a row's moves, or events one by one)."""
         row = [self.weigh(step, who, t) for step in steps]
         if combined:
-            return competing(row, np.float_power)
-        return [np.where(m == 1.0, p, 1.0 - np.float_power(1.0 - p, m)) for p, _, m in row]
+            return competing(row)
+        return [np.where(m == 1.0, p, separate(log, m)) if np.ndim(m) else
+                (p if m == 1.0 else separate(log, m)) for p, log, m in row]
 
     def occur(self, who: np.ndarray, r: int, end: float):
         for index in self.bumps[r]:
@@ -98,27 +108,36 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
     histories as `microsim.engines.cycle_engine.simulate_cycles` for the same arguments."""
     ids = np.asarray(patient_ids)
     names = (MOVE, *plan.risk_purposes(model))
-    # (cycle, purpose, patient): one contiguous row of draws per purpose and cycle
-    draws = np.ascontiguousarray(
-        streams.block(seed, ids, names, max(model.n_cycles, 1)).transpose(2, 1, 0))
     plans = state_plans(model, names)
+    read = sorted({0} | {step[1] for _, _, events, _ in plans for step in events})
+    column = {purpose: j for j, purpose in enumerate(read)}  # purpose -> row of the draws
     starts = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE)),
                         np.int64).reshape(-1)
     batch = _Batch(model, mult, starts)
-    everyone = np.arange(len(ids))
-    records = [(everyone, 0.0, START, starts, START)]  # (patients, time, from, to, risk)
-    live = [i for i in range(model.n_states) if not model.absorbing[i]]
+    records = [(np.arange(len(ids)), 0.0, START, starts, START)]  # (patients, time, from, to, risk)
+    absorbing = model.absorbing
+    live = [i for i in range(model.n_states) if not absorbing[i]]
+    alive = np.flatnonzero(~absorbing[starts])
     cycle = model.cycle
+    draws = None
     for n in range(model.n_cycles):
+        if alive.size == 0:
+            break
+        if n % BLOCK == 0:  # (purposes, cycles, patients) of the next block of cycles
+            draws = np.ascontiguousarray(streams.block(
+                seed, ids, [names[j] for j in read], min(BLOCK, model.n_cycles - n),
+                first=n).transpose(1, 2, 0))
+        lane = n % BLOCK
         t = n * cycle
         end = t + cycle
         state = batch.state
-        groups = [(i, np.flatnonzero(state == i)) for i in live]
-        for i, who in groups:
+        here = state[alive]
+        for i in live:
+            who = alive[here == i]
             if who.size == 0:
                 continue
             moves, remainder, events, combined = plans[i]
-            u = draws[n, 0, who]
+            u = draws[0, lane, who]
             risk = np.full(who.size, START, np.int64)
             target = np.full(who.size, i, np.int64)
             total = 0.0
@@ -127,13 +146,13 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
                 taken = (risk == START) & (u < total)
                 risk[taken], target[taken] = step[0], step[2]
             if moves and not np.max(total) <= LIMIT:
-                first = np.flatnonzero(~(total <= LIMIT))[0]
-                raise overflow(row_name(model, i), float(total[first]),
+                first = np.flatnonzero(~(np.broadcast_to(total, who.shape) <= LIMIT))[0]
+                raise overflow(row_name(model, i), float(np.broadcast_to(total, who.shape)[first]),
                                f"patient {ids[who[first]]}", n)
             if remainder is not None:
                 rest = risk == START
                 risk[rest], target[rest] = remainder
-            happened = [(step[0], who[draws[n, step[1], who] < p])
+            happened = [(step[0], who[draws[column[step[1]], lane, who] < p])
                         for step, p in zip(events, batch.chances(events, False, who, t))]
             for r, hit in happened:
                 records.append((hit, end, i, i, r))
@@ -144,6 +163,7 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
                 batch.occur(who[moved & (risk == r)], r, end)
             batch.duration[who] = np.where(moved, 0, batch.duration[who] + 1)
             state[who[moved]] = target[moved]
+        alive = alive[~absorbing[state[alive]]]
     return _histories(records, len(ids))
 
 

@@ -29,17 +29,19 @@ def next_times(h: Histories, end: float) -> np.ndarray:
 
 
 def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
-    """(B, T) state of each patient at each grid time (the last record at or before it)."""
-    until = np.append(h.time[1:], np.inf)
-    until[np.append(h.patient[1:] != h.patient[:-1], True)] = np.inf
-    lo = np.searchsorted(grid, h.time, side="left")
-    hi = np.searchsorted(grid, until, side="left")
-    n = np.maximum(hi - lo, 0)
-    rows = np.repeat(h.patient, n)
-    cols = np.repeat(lo - np.cumsum(n) + n, n) + np.arange(n.sum())
-    states = np.full((h.n_patients, len(grid)), -1, np.int16)
-    states[rows, cols] = np.repeat(h.target, n)
-    return states
+    """(B, T) state of each patient at each grid time (the last record at or before it;
+    -1 before a patient's first record). Each record marks the first grid time at or after
+    it (the last record of a patient to reach a grid time wins), and the marks are carried
+    forward along the grid."""
+    T = len(grid)
+    at = np.searchsorted(grid, h.time, side="left")
+    key = h.patient.astype(np.int64) * (T + 1) + at  # records are in time order per patient
+    last = np.append(key[1:] != key[:-1], True) & (at < T)
+    marked = np.full((h.n_patients, T), -1, np.int64)  # index of the record that holds
+    marked[h.patient[last], at[last]] = np.flatnonzero(last)
+    np.maximum.accumulate(marked, axis=1, out=marked)
+    states = np.where(marked >= 0, h.target[np.maximum(marked, 0)], -1)
+    return states.astype(np.int16)
 
 
 def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
@@ -63,24 +65,27 @@ def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.nda
 
 def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    `on` (B, T) holds, when given)."""
-    out = np.zeros((states.shape[0], model.n_states, 3))
+    `on` (B, T) holds, when given). Each patient's sum runs over its own cycle points in
+    time order (`np.bincount` adds in input order), so it does not depend on the batch."""
+    B, S = states.shape[0], model.n_states
+    out = np.zeros((B, S, 3))
+    counted = states >= 0 if on is None else (states >= 0) & on
+    rows, cols = np.nonzero(counted)  # row by row, in time order within a row
+    cell = rows * S + states[rows, cols]
     rates = (0.0, model.discount_costs, model.discount_effects)
     for w, rate in enumerate(rates):
         weights = cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                                correction=model.correction)
-        for s in range(model.n_states):
-            here = states == s if on is None else (states == s) & on
-            # a row-wise sum, not a matrix product: BLAS would sum in an order that
-            # depends on the number of rows, and a patient's result must not
-            out[:, s, w] = (here * weights).sum(axis=1)
+        out[:, :, w] = np.bincount(cell, weights=weights[cols], minlength=B * S).reshape(B, S)
     return out
 
 
-def exposure(model: BoundModel, h: Histories, window: Window | None = None) -> Exposure:
-    """Per-patient time in state (and on treatment) and occurrences from histories."""
+def exposure(model: BoundModel, h: Histories, window: Window | None = None,
+             states: np.ndarray | None = None) -> Exposure:
+    """Per-patient time in state (and on treatment) and occurrences from histories (cycle
+    models: `states` on the cycle points, when the caller has them already)."""
     if model.discrete:
-        states = grid_states(h, model.times)
+        states = grid_states(h, model.times) if states is None else states
         occupancy = cycle_occupancy(model, states)
         on = (np.zeros_like(occupancy) if window is None
               else cycle_occupancy(model, states, window.on_grid(model.times)))
