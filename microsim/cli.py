@@ -16,6 +16,7 @@ from microsim import CAUTION
 from microsim.present import show
 from microsim.scenario import ScenarioError, read_scenario
 from microsim.scenario.fields import MAX_PATIENTS
+from microsim.decision.measures import MEASURES
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130  # the shell's code for Ctrl-C
@@ -173,10 +174,21 @@ def command_population(args) -> int:
 
 
 def command_sensitivity(args) -> int:
-    from microsim.uncertainty.one_way import tornado
+    from microsim.uncertainty.one_way import AS_WRITTEN, tornado
     started, path, scenario = begin(args)
-    table, measure = tornado(scenario, args.patients, args.seed)
-    show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)
+    table = tornado(scenario, args.patients, args.seed, args.strategy, args.measure)
+    first = table.iloc[0]
+    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
+    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
+          if first.measure.endswith("nmb") else "")
+    for name, rows in table.groupby("strategy", sort=False):
+        exact = rows.se_base.isna().all()
+        hidden = ["strategy", "measure", "compared_with", "basis",
+                  *(["se_low", "se_high", "se_base"] if exact else [])]
+        subject = "the model as written" if name == AS_WRITTEN else name
+        show(f"One-way sensitivity of {MEASURES[first.measure]} of {subject}{against}{at} "
+             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
+             rows.drop(columns=hidden))
     write(args, path, {"one_way": table}, started)
     print(f"\n{CAUTION}")
     return 0
@@ -225,8 +237,14 @@ def build_parser() -> argparse.ArgumentParser:
                           help="also write every patient's history as histories.parquet")
     population_options(add("population", command_population,
                            "Preview the generated population: summary per attribute, correlations."))
-    population_options(add("sensitivity", command_sensitivity,
-                           "One-way sensitivity over the parameters' low/high ranges (tornado data)."))
+    sensitivity = add("sensitivity", command_sensitivity,
+                      "One-way sensitivity over the parameters' low/high ranges (tornado data).")
+    population_options(sensitivity)
+    sensitivity.add_argument("--strategy", help="the strategy whose result is varied (default: "
+                             "every strategy the measure applies to)")
+    sensitivity.add_argument("--measure", help=f"what is varied, one of: {', '.join(MEASURES)} "
+                             "(default: incremental_nmb against the comparator; nmb for a "
+                             "scenario without strategies)")
     run = add("run", command_run, "The main job: every strategy on the same simulated patients, "
               "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
               "subgroups, and PSA when asked.")
