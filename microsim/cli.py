@@ -124,8 +124,23 @@ def command_run(args) -> int:
         print_summary(result)
     write(args, path, result.tables, started, documents={"summary": data}, quiet=args.json,
           seed=result.seed, patients=data["patients"])
+    if args.report:
+        report = make_report(out_dir(args, path))
+        if not args.json:
+            print(f"wrote {report}")
     if not args.json:
         print(f"\n{CAUTION}")
+    return 0
+
+
+def make_report(folder: Path) -> Path:
+    from microsim.report.builder import build_report
+    return build_report(folder)
+
+
+def command_report(args) -> int:
+    """The HTML report of an existing run folder."""
+    print(f"wrote {make_report(Path(args.folder))}")
     return 0
 
 
@@ -258,6 +273,14 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--backend", choices=("processes", "dask"), default="processes",
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")
     run.add_argument("--address", help="address of a running Dask scheduler")
+    run.add_argument("--report", action="store_true",
+                     help="also write report.html (figures, tables, verdicts) into the run folder")
+    report = commands.add_parser(
+        "report", help="Write report.html for an existing run folder.",
+        description="Write report.html (and figures/) for an existing run folder: the "
+                    "decision, the figures, the tables, the verdicts and the manifest.")
+    report.add_argument("folder", help="a folder `microsim run` wrote (e.g. outputs/<scenario>)")
+    report.set_defaults(function=command_report)
     bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
     bench.add_argument("--quick", action="store_true", help="a shorter run")
     bench.set_defaults(function=command_benchmark)
