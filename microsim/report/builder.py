@@ -24,7 +24,7 @@ from microsim.report import figures, tables
 from microsim.report.folder import RunFolder
 from microsim.report.structure import structure_figure
 from microsim.report.style import rendered
-from microsim.report.tables import CI95, Column, interval, normal_interval, number, percent, plain, whole
+from microsim.report.tables import CI95, Column, interval, normal_interval, number, percent, whole
 from microsim.report.words import decision
 
 REPORT = "report.html"
@@ -64,10 +64,12 @@ class Report:
         self.state_labels = {x.name: x.label for x in s.states} if s else {}
         for strategy in s.strategies if s else ():
             self.state_labels.update({x.name: x.label for x in strategy.states})
-        self.currency = self.summary.get("currency") or (s.economics.currency if s else "money units")
+        self.currency = self.summary.get("currency") or (
+            s.economics.currency if s else "money units")
         self.time_unit = s.time.unit if s else "time units"
         self.threshold = self.summary.get("threshold", s.economics.threshold if s else None)
         self.figures: list[Drawn | Absent] = []
+        self.comparator = self.label(self.summary.get("comparator", ""))
 
     def label(self, name: str) -> str:
         return self.strategy_labels.get(name, name)
@@ -109,7 +111,7 @@ class Report:
         psa_reason = NO_STRATEGIES if not strategies else NO_PSA
         has_psa = strategies and "psa" in s
         self.figure("ce_plane", "Cost-effectiveness plane",
-                    f"PSA draws of incremental QALYs and costs against {self.label(s.get('comparator', ''))}; "
+                    f"PSA draws of incremental QALYs and costs against {self.comparator}; "
                     "the base case (this run's patients) with its 95% CI; the dashed line is "
                     "the threshold: points below it are cost-effective.",
                     (lambda: figures.ce_plane_figure(
@@ -127,18 +129,19 @@ class Report:
                     "EVPI per patient over the threshold range.",
                     (lambda: figures.evpi_figure(run.table("evpi"), self.threshold,
                                                  self.currency)) if has_psa else None, psa_reason)
-        one_way = run.table("one_way")
+        one_way = self.one_way()
         self.figure("tornado", "One-way sensitivity (tornado)",
                     "Each parameter from its low to its high value, the others at base, widest "
-                    "swing on top; the vertical line is the base case.",
+                    "swing on top; the vertical line is the base case. The one-way analysis "
+                    "runs on patients of its own (`microsim sensitivity`).",
                     None if one_way is None else lambda: figures.tornado_figure(
                         one_way, self.strategy_labels, self.sensitivity_label(one_way),
                         self.sensitivity_unit(one_way)),
-                    "No one-way sensitivity in this folder; `microsim sensitivity FILE` with "
-                    "the same --out adds it.")
+                    "No one-way sensitivity by strategy and measure in this folder; "
+                    "`microsim sensitivity FILE` with the same --out adds it.")
         subgroups = run.table("subgroups")
         self.figure("subgroups", "Incremental net monetary benefit by subgroup",
-                    f"Per subgroup level and strategy against {self.label(s.get('comparator', ''))}, "
+                    f"Per subgroup level and strategy against {self.comparator}, "
                     "mean with its 95% CI (±1.96 Monte-Carlo SE).",
                     (lambda: figures.subgroup_figure(subgroups, self.strategy_labels,
                                                      self.currency))
@@ -149,6 +152,13 @@ class Report:
                     "States and transitions as the scenario gives them (base-case values).",
                     (lambda: structure_figure(self.scenario)) if self.scenario else None,
                     f"Left out: {self.scenario_note}.")
+
+    def one_way(self):
+        """The one-way table, when it names its strategy and measure (an older microsim
+        wrote it without them)."""
+        table = self.run.table("one_way")
+        wanted = {"strategy", "measure", "compared_with", "se_low", "se_high", "se_base"}
+        return table if table is not None and wanted <= set(table.columns) else None
 
     def sensitivity_label(self, one_way) -> str:
         return SENSITIVITY_MEASURES.get(one_way.measure.iloc[0], one_way.measure.iloc[0])
@@ -173,7 +183,7 @@ class Report:
                 "increments", run.table("increments"),
                 ["incremental_cost", "incremental_effect", "incremental_nmb"],
                 Column("", ("mean", "lower", "upper"), interval), self.strategy_labels,
-                f"Against {self.label(self.summary['comparator'])} on the same patients: mean "
+                f"Against {self.comparator} on the same patients: mean "
                 f"per patient ({CI95}, paired); money in {cur}"),
             tables.table("incremental_analysis", run.table("incremental_analysis"), [
                 Column("strategy", ("strategy",), self.label),
@@ -181,7 +191,8 @@ class Report:
                 Column("QALYs, discounted", ("effect",), number),
                 Column("status", ("status", "dominated_by"),
                        lambda s, by: s if tables.missing(by) else f"{s} by {by}"),
-                Column("compared with", ("compared_with",), plain),
+                Column("compared with", ("compared_with",),
+                       lambda c: "–" if tables.missing(c) else self.label(c)),
                 Column(f"incremental costs {money}", ("incremental_cost",), number),
                 Column("incremental QALYs", ("incremental_effect",), number),
                 Column(f"ICER ({cur} per QALY)", ("icer",), number)],
@@ -244,7 +255,7 @@ class Report:
                 Column("suggested draws", ("suggested_draws",), whole),
                 Column("suggested patients per draw", ("suggested_patients_per_draw",), whole)],
                 "Inner and outer samples (O'Hagan, Stevenson & Madan 2007)"))
-        one_way = run.table("one_way")
+        one_way = self.one_way()
         if one_way is not None:
             found.append(tables.table("one_way", one_way, [
                 Column("strategy", ("strategy",), self.label),

@@ -130,7 +130,8 @@ def ce_plane_figure(plane: pd.DataFrame, increments: pd.DataFrame, threshold: fl
                 linestyle=(0, (4, 3)), linewidth=0.9,
                 label=f"threshold: {threshold:,.0f} {currency} per QALY")
         ax.set_xlim(left, right)
-        ax.set_xlabel(f"incremental QALYs (discounted) against {strategies.get(comparator, comparator)}")
+        against = strategies.get(comparator, comparator)
+        ax.set_xlabel(f"incremental QALYs (discounted) against {against}")
         ax.set_ylabel(f"incremental costs ({currency}, discounted)")
         thousands(ax.yaxis)
         figure.legend(loc="outside lower center", ncols=2)

@@ -53,7 +53,7 @@ class RunFolder:
             return None, "the manifest names no scenario file"
         path = Path(recorded)
         if not path.is_file():
-            return None, f"the scenario file {recorded} named in the manifest is not found from here"
+            return None, f"the scenario file {recorded} the manifest names is not found"
         if file_hash(path) != self.manifest.get("scenario_sha256"):
             return None, f"the scenario file {recorded} has changed since the run"
         try:

@@ -51,7 +51,8 @@ def hazard_text(spec, scenario: Scenario) -> str:
     elif family == "table":
         text = f"rate from {value_text(params['table'], scenario)}"
     else:
-        text = f"{family}: " + ", ".join(f"{k} {value_text(v, scenario)}" for k, v in params.items())
+        text = f"{family}: " + ", ".join(f"{k} {value_text(v, scenario)}"
+                                         for k, v in params.items())
     return text + clock
 
 

@@ -85,18 +85,20 @@ def frontier(summary: dict, labels: Mapping[str, str]) -> list:
         path = f"incremental_analysis.{i}"
         if row["status"] == "frontier" and row["compared_with"]:
             other = name(row["compared_with"], row["compared_with"])
-            parts += [f"{strategy} against {other} costs ", key(summary, f"{path}.incremental_cost"),
+            parts += [f"{strategy} against {other} costs ",
+                      key(summary, f"{path}.incremental_cost"),
                       f" {cur} more for ", key(summary, f"{path}.incremental_effect"),
                       " more QALYs, an ICER of ", key(summary, f"{path}.icer"),
                       f" {cur} per QALY. "]
         elif row["status"] == "frontier":
             parts.append(f"{strategy} is the least costly strategy on the frontier. ")
         elif row["status"] == "dominated":
-            parts.append(f"{strategy} is dominated by {name(row['dominated_by'], row['dominated_by'])}: "
-                         "it costs more and gains no more QALYs. ")
+            by = name(row["dominated_by"], row["dominated_by"])
+            parts.append(f"{strategy} is dominated by {by}: it costs more and gains no more "
+                         "QALYs. ")
         else:
-            parts.append(f"{strategy} is extendedly dominated (a mix of "
-                         f"{row['dominated_by']} does better at every threshold). ")
+            parts.append(f"{strategy} is extendedly dominated: a mix of "
+                         f"{row['dominated_by']} costs less and gains more QALYs. ")
     return parts
 
 
@@ -105,13 +107,13 @@ def who_gains(summary: dict, labels: Mapping[str, str]) -> list:
     sentences = []
     by_strategy: dict[str, dict[str, list[str]]] = {}
     for row in summary["subgroups"]:
-        kind = ("pays" if row["verdict"].startswith("pays") else
-                "loses" if row["verdict"].startswith("does not pay") else "other")
-        by_strategy.setdefault(row["strategy"], {"pays": [], "loses": [], "other": []})[kind].append(
-            f"{row['attribute']} = {row['level']}")
+        kinds = by_strategy.setdefault(row["strategy"], {"pays": [], "does not pay": []})
+        kind = next((k for k in kinds if row["verdict"].startswith(k)), None)
+        if kind:
+            kinds[kind].append(f"{row['attribute']} = {row['level']}")
     for strategy, kinds in by_strategy.items():
         pays = listed(kinds["pays"]) or "no subgroup"
-        loses = listed(kinds["loses"]) or "no subgroup"
+        loses = listed(kinds["does not pay"]) or "no subgroup"
         sentences.append(f"{labels.get(strategy, strategy)} pays (95% CI of incremental net "
                          f"monetary benefit above 0) for {pays}, and does not pay (95% CI "
                          f"below 0) for {loses}.")
