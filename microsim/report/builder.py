@@ -29,7 +29,8 @@ from microsim.report.words import decision
 
 REPORT = "report.html"
 FIGURES = "figures"
-NO_PSA = "This run has no PSA; `microsim run FILE --psa` adds it."
+NO_PSA = "This run has no PSA; \u201cmicrosim run FILE --psa\u201d adds it."
+AS_WRITTEN = {"as written": "The model as written"}  # the one "strategy" without strategies
 NO_STRATEGIES = "The scenario defines no strategies, so there is nothing to compare."
 
 
@@ -60,9 +61,10 @@ class Report:
         self.run, self.summary = run, run.summary
         self.scenario, self.scenario_note = run.scenario()
         s = self.scenario
-        self.strategy_labels = {x.name: x.label for x in s.strategies} if s else {}
+        strategies = s.strategies if s else ()
+        self.strategy_labels = {**AS_WRITTEN, **{x.name: x.label for x in strategies}}
         self.state_labels = {x.name: x.label for x in s.states} if s else {}
-        for strategy in s.strategies if s else ():
+        for strategy in strategies:
             self.state_labels.update({x.name: x.label for x in strategy.states})
         self.currency = self.summary.get("currency") or (
             s.economics.currency if s else "money units")
@@ -92,9 +94,13 @@ class Report:
         run, s = self.run, self.summary
         strategies = "comparator" in s
         shares, survival = run.table("validation_shares"), run.table("validation_survival")
+        approximate = (" Where there is no exact counterpart (see the verdicts), the thin line "
+                       "is a Markov approximation, for orientation only."
+                       if any(v["agrees"] is None for v in s["validation"].values()) else "")
         self.figure("trace", "State shares over time",
                     "Share of patients in each state: simulated (line, with a band of ±1.96 "
-                    "Monte-Carlo SE) over its analytic counterpart (thin dark line), per strategy.",
+                    "Monte-Carlo SE) over its analytic counterpart (thin dark line), per "
+                    "strategy." + approximate,
                     None if shares is None else lambda: figures.trace_figure(
                         shares, self.strategy_labels, self.state_labels, self.time_unit),
                     "This run folder has no validation_shares table.")
@@ -105,7 +111,7 @@ class Report:
         self.figure("survival", "Survival: the share not yet absorbed",
                     "Share of patients not yet in an absorbing state: simulated (line, ±1.96 "
                     "Monte-Carlo SE, exact for independent patients) over its analytic "
-                    "counterpart (thin dark line).",
+                    "counterpart (thin dark line)." + approximate,
                     None if survival is None or survival.empty else lambda: figures.survival_figure(
                         survival, self.strategy_labels, self.time_unit), survival_reason)
         psa_reason = NO_STRATEGIES if not strategies else NO_PSA
@@ -133,12 +139,12 @@ class Report:
         self.figure("tornado", "One-way sensitivity (tornado)",
                     "Each parameter from its low to its high value, the others at base, widest "
                     "swing on top; the vertical line is the base case. The one-way analysis "
-                    "runs on patients of its own (`microsim sensitivity`).",
+                    "runs on patients of its own (\u201cmicrosim sensitivity\u201d).",
                     None if one_way is None else lambda: figures.tornado_figure(
                         one_way, self.strategy_labels, self.sensitivity_label(one_way),
                         self.sensitivity_unit(one_way)),
                     "No one-way sensitivity by strategy and measure in this folder; "
-                    "`microsim sensitivity FILE` with the same --out adds it.")
+                    "\u201cmicrosim sensitivity FILE\u201d with the same --out adds it.")
         subgroups = run.table("subgroups")
         self.figure("subgroups", "Incremental net monetary benefit by subgroup",
                     f"Per subgroup level and strategy against {self.comparator}, "
@@ -151,7 +157,7 @@ class Report:
         self.figure("structure", "The model's structure",
                     "States and transitions as the scenario gives them (base-case values).",
                     (lambda: structure_figure(self.scenario)) if self.scenario else None,
-                    f"Left out: {self.scenario_note}.")
+                    f"It needs the scenario, and {self.scenario_note}.")
 
     def one_way(self):
         """The one-way table, when it names its strategy and measure (an older microsim
