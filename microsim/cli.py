@@ -22,6 +22,7 @@ from microsim.scenario import ScenarioError, read_scenario
 from microsim.scenario.fields import MAX_PATIENTS
 from microsim.store import OutputError
 from microsim.scenario.spec import INVALID_DRAWS
+from microsim.decision.measures import MEASURES
 
 EXIT_BAD_INPUT = 2
 # EX_IOERR of BSD's sysexits.h (common practice): the input was fine, the results could
@@ -157,8 +158,23 @@ def command_run(args) -> int:
         print_summary(result)
     write(args, path, result.tables, started, documents={"summary": data}, quiet=args.json,
           seed=result.seed, patients=data["patients"])
+    if args.report:
+        report = make_report(out_dir(args, path))
+        if not args.json:
+            print(f"wrote {report}")
     if not args.json:
         print(f"\n{CAUTION}")
+    return 0
+
+
+def make_report(folder: Path) -> Path:
+    from microsim.report.builder import build_report
+    return build_report(folder)
+
+
+def command_report(args) -> int:
+    """The HTML report of an existing run folder."""
+    print(f"wrote {make_report(Path(args.folder))}")
     return 0
 
 
@@ -215,11 +231,22 @@ def command_population(args) -> int:
 
 
 def command_sensitivity(args) -> int:
-    from microsim.uncertainty.one_way import tornado
+    from microsim.uncertainty.one_way import AS_WRITTEN, tornado
     started, path, scenario = begin(args)
     seed = run_seed(args, scenario)
-    table, measure = tornado(scenario, args.patients, seed)
-    show(f"One-way sensitivity of {measure} (tornado data, widest swing first)", table)
+    table = tornado(scenario, args.patients, seed, args.strategy, args.measure)
+    first = table.iloc[0]
+    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
+    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
+          if first.measure.endswith("nmb") else "")
+    for name, rows in table.groupby("strategy", sort=False):
+        exact = rows.se_base.isna().all()
+        hidden = ["strategy", "measure", "compared_with", "basis",
+                  *(["se_low", "se_high", "se_base"] if exact else [])]
+        subject = "the model as written" if name == AS_WRITTEN else name
+        show(f"One-way sensitivity of {MEASURES[first.measure]} of {subject}{against}{at} "
+             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
+             rows.drop(columns=hidden))
     write(args, path, {"one_way": table}, started, seed=seed)
     print(f"\n{CAUTION}")
     return 0
@@ -306,8 +333,14 @@ def build_parser() -> argparse.ArgumentParser:
                           help="also write every patient's history as histories.parquet")
     population_options(add("population", command_population,
                            "Preview the generated population: summary per attribute, correlations."))
-    population_options(add("sensitivity", command_sensitivity,
-                           "One-way sensitivity over the parameters' low/high ranges (tornado data)."))
+    sensitivity = add("sensitivity", command_sensitivity,
+                      "One-way sensitivity over the parameters' low/high ranges (tornado data).")
+    population_options(sensitivity)
+    sensitivity.add_argument("--strategy", help="the strategy whose result is varied (default: "
+                             "every strategy the measure applies to)")
+    sensitivity.add_argument("--measure", help=f"what is varied, one of: {', '.join(MEASURES)} "
+                             "(default: incremental_nmb against the comparator; nmb for a "
+                             "scenario without strategies)")
     run = add("run", command_run, "The main job: every strategy on the same simulated patients, "
               "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
               "subgroups, and PSA when asked.")
@@ -324,6 +357,14 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--invalid-draws", choices=INVALID_DRAWS,
                      help="what the PSA does with a draw whose values or rows are invalid "
                           "(default: the scenario's uncertainty.invalid_draws, else refuse)")
+    run.add_argument("--report", action="store_true",
+                     help="also write report.html (figures, tables, verdicts) into the run folder")
+    report = commands.add_parser(
+        "report", help="Write report.html for an existing run folder.",
+        description="Write report.html (and figures/) for an existing run folder: the "
+                    "decision, the figures, the tables, the verdicts and the manifest.")
+    report.add_argument("folder", help="a folder `microsim run` wrote (e.g. outputs/<scenario>)")
+    report.set_defaults(function=command_report)
     bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
     bench.add_argument("--quick", action="store_true", help="a shorter run")
     bench.set_defaults(function=command_benchmark)

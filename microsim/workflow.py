@@ -12,7 +12,8 @@ import pandas as pd
 
 from microsim.cohort.summaries import cohort_trace
 from microsim.binding import bind
-from microsim.results.comparison import Comparison, compare
+from microsim.results.comparison import Comparison, compare, analytic_counterpart
+from microsim.results.survival import survival_table
 from microsim.decision.strategies import Decision, decide, run_strategies
 from microsim.patients.population import patients_for
 from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
@@ -70,15 +71,19 @@ def run_main(path: Path, patients: int | None = None, seed: int | None = None,
     psa_result = None if psa is None else parameter_uncertainty(scenario, seed=seed, **psa)
     sims = run_strategies(scenario, people, seed, engine=engine)
     decision = decide(scenario, sims) if scenario.strategies else None
-    validations = {name: compare(sim) for name, sim in sims.items()}
+    counterparts = {name: analytic_counterpart(sim) for name, sim in sims.items()}
+    validations = {name: compare(sim, counterparts[name]) for name, sim in sims.items()}
+    survival = {name: survival_table(sim, counterparts[name]) for name, sim in sims.items()}
     return MainResult(scenario, seed, sims, validations, decision, psa_result,
-                      result_tables(scenario, sims, validations, decision, psa_result))
+                      result_tables(scenario, validations, survival, decision, psa_result))
 
 
-def result_tables(scenario, sims, validations, decision, psa) -> dict[str, pd.DataFrame]:
+def result_tables(scenario, validations, survival, decision, psa) -> dict[str, pd.DataFrame]:
     tables = {"cohort_trace": cohort_trace(bind(scenario))}
     tables["validation_shares"] = pd.concat(
         [v.shares.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
+    tables["validation_survival"] = pd.concat(
+        [table.assign(strategy=n) for n, table in survival.items()], ignore_index=True)
     tables["validation_subgroups"] = pd.concat(
         [v.subgroups.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_outcomes"] = pd.concat(

@@ -95,6 +95,11 @@ class Comparison:
     average_verdict: str
 
 
+def analytic_counterpart(sim: Simulation) -> CohortResult:
+    """The analytic result for the simulation's own patients on its grid."""
+    return analytic(sim.model, mult=sim.mult.distinct(), times=sim.grid)
+
+
 def counterpart_name(sim: Simulation, result: CohortResult) -> str:
     heterogeneous = result.trace.shape[0] > 1
     if not result.exact:
@@ -161,11 +166,12 @@ def outcome_rows(sim: Simulation, result: CohortResult) -> pd.DataFrame:
         z=z, p_value=p, test=np.where(certain, EXACT, MONTE_CARLO))
 
 
-def compare(sim: Simulation) -> Comparison:
-    """Compare a simulation with the analytic counterpart of its model and patients."""
+def compare(sim: Simulation, result: CohortResult | None = None) -> Comparison:
+    """Compare a simulation with the analytic counterpart of its model and patients
+    (`result`, when the caller has computed it already: `analytic_counterpart(sim)`)."""
     model = sim.model
     mult = sim.mult.distinct()
-    result = analytic(model, mult=mult, times=sim.grid)
+    result = analytic_counterpart(sim) if result is None else result
     shares = trace_table(sim, result)
     outcomes = outcome_rows(sim, result)
     average = average_rows(sim, mult, result)

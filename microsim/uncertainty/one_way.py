@@ -1,14 +1,16 @@
 """One-way deterministic sensitivity analysis: the numbers behind a tornado diagram.
 
 `one_way` varies each ranged parameter on its own around any model evaluation; `tornado`
-applies it to a scenario's decision. Each setting is evaluated on the same generated
-patients. Where the model has an exact counterpart, the patients' analytic expectations are
-used, so the tornado carries no Monte-Carlo noise at all; otherwise every strategy is
-simulated with common random numbers.
+applies it to a scenario's decision, for a chosen measure (`microsim.decision.measures`)
+and each chosen strategy. Each setting is evaluated on the same generated patients. Where
+the model has an exact counterpart, the patients' analytic expectations are used, so the
+tornado carries no Monte-Carlo noise at all; otherwise every strategy is simulated with
+common random numbers and each result carries its Monte-Carlo standard error.
 """
 from __future__ import annotations
 
-from typing import Callable, Mapping
+import math
+from typing import Callable, Mapping, NamedTuple
 
 import numpy as np
 import pandas as pd
@@ -21,19 +23,31 @@ from microsim.results.outcomes import outcome_values
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import ParameterSpec, Scenario
 from microsim.simulation import simulate
+from microsim.decision.measures import MEASURES, incremental, per_patient
 
-COLUMNS = ["parameter", "low", "high", "base", "result_low", "result_high", "result_base", "swing"]
+COLUMNS = ["parameter", "low", "high", "base", "result_low", "result_high", "result_base", "swing",
+           "se_low", "se_high", "se_base"]
+AS_WRITTEN = "as written"  # the strategy column of a scenario without strategies
+EXACT = "exact: the patients' analytic expectations"
+SIMULATED = "simulated with common random numbers, with Monte-Carlo SE"
 
 
-def one_way(evaluate_values: Callable[[dict[str, float]], pd.DataFrame],
+class Estimate(NamedTuple):
+    """A measure's value and its Monte-Carlo standard error (nan where it is exact)."""
+    value: float
+    se: float = math.nan
+
+
+def one_way(evaluate_values: Callable[[dict[str, float]], object],
             parameters: Mapping[str, ParameterSpec],
-            measure: Callable[[pd.DataFrame], float]) -> pd.DataFrame:
+            measure: Callable[[object], float | Estimate]) -> pd.DataFrame:
     """Each parameter with a low..high range set to low, then high, the others at base.
 
-    `measure` reduces a model result to one number (e.g. incremental NMB). One row per
-    varied parameter, widest swing |result_high - result_low| first (ties keep the
-    parameters' order): parameter, low, high, base (the parameter's value),
-    result_low, result_high, result_base (every parameter at base), swing.
+    `measure` reduces a model result to one number (e.g. incremental NMB), or to an
+    `Estimate` with its Monte-Carlo standard error. One row per varied parameter, widest
+    swing |result_high - result_low| first (ties keep the parameters' order): parameter,
+    low, high, base (the parameter's value), result_low, result_high, result_base (every
+    parameter at base), swing, and se_low, se_high, se_base (nan where exact).
     """
     base = {name: float(spec.value) for name, spec in parameters.items()}
     ranged = [spec for spec in parameters.values() if spec.low is not None and spec.high is not None]
@@ -41,50 +55,110 @@ def one_way(evaluate_values: Callable[[dict[str, float]], pd.DataFrame],
         raise ScenarioError("parameters", "no parameter has a low..high range; give low and "
                                           "high to the parameters to vary")
 
-    def result(changes: dict[str, float]) -> float:
-        return float(measure(evaluate_values({**base, **changes})))
+    def result(changes: dict[str, float]) -> Estimate:
+        value = measure(evaluate_values({**base, **changes}))
+        return Estimate(*map(float, value)) if isinstance(value, tuple) else Estimate(float(value))
 
     at_base = result({})
     rows = []
     for spec in ranged:
         low, high = result({spec.name: float(spec.low)}), result({spec.name: float(spec.high)})
         rows.append({"parameter": spec.name, "low": float(spec.low), "high": float(spec.high),
-                     "base": base[spec.name], "result_low": low, "result_high": high,
-                     "result_base": at_base, "swing": abs(high - low)})
+                     "base": base[spec.name], "result_low": low.value, "result_high": high.value,
+                     "result_base": at_base.value, "swing": abs(high.value - low.value),
+                     "se_low": low.se, "se_high": high.se, "se_base": at_base.se})
     table = pd.DataFrame(rows, columns=COLUMNS)
     table["parameter"] = table["parameter"].astype("string")
     return table.sort_values("swing", ascending=False, kind="stable").reset_index(drop=True)
 
 
-def expected_outcomes(scenario: Scenario, people: pd.DataFrame, seed: int, values: dict,
-                      strategy: str | None) -> dict[str, float]:
-    """Mean discounted cost and effect over the patients, exactly when possible."""
+class PatientValues(NamedTuple):
+    costs: np.ndarray  # discounted, per patient
+    qalys: np.ndarray  # discounted, per patient
+    exact: bool  # analytic expectations (True) or one simulated history each (False)
+
+
+def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: dict,
+                   strategy: str | None) -> PatientValues:
+    """Each patient's discounted costs and QALYs: expected values where the model has an
+    exact counterpart, else simulated (the same seed for every strategy and setting)."""
     model = bind(scenario, values, strategy=strategy)
     mult = patient_multipliers(model, people, seed)
     result = analytic(model, mult=mult)
     exposure = (result.exposure if result.exact
                 else simulate(model, people, seed, mult=mult).exposure)
-    means = outcome_values(model, exposure)
-    return {"cost": float(np.mean(means[COST])), "effect": float(np.mean(means[EFFECT]))}
+    outcomes = outcome_values(model, exposure)
+    return PatientValues(np.asarray(outcomes[COST], float), np.asarray(outcomes[EFFECT], float),
+                         result.exact)
 
 
-def tornado(scenario: Scenario, patients: int | None = None, seed: int | None = None):
-    """The one-way table and the name of the measure it varies."""
+def tornado_strategies(scenario: Scenario, strategy: str | None,
+                       measure: str | None) -> tuple[str, list[str | None], str | None]:
+    """The measure (default: incremental NMB, or NMB without strategies), the strategies it
+    is reported for (default: every one it applies to) and the comparator, or refuse the
+    choice in one line."""
+    names = strategy_names(scenario)
+    measure = measure or ("incremental_nmb" if names else "nmb")
+    if measure not in MEASURES:
+        raise ScenarioError("--measure", f"no measure {measure!r}; choose one of: "
+                                         f"{', '.join(MEASURES)}")
+    if not names:
+        if strategy is not None:
+            raise ScenarioError("--strategy", "the scenario defines no strategies; leave "
+                                              "--strategy out")
+        if incremental(measure):
+            raise ScenarioError("--measure", f"{measure} compares strategies and the scenario "
+                                             "defines none; choose nmb, qalys or costs")
+        return measure, [None], None
+    comparator = names[0] if incremental(measure) else None
+    allowed = [n for n in names if n != comparator]
+    if strategy is None:
+        return measure, allowed, comparator
+    if strategy not in allowed:
+        why = (f"{strategy!r} is the comparator; an increment against itself is 0"
+               if strategy == comparator else f"no strategy {strategy!r}")
+        raise ScenarioError("--strategy", f"{why}; choose one of: {', '.join(allowed)}")
+    return measure, [strategy], comparator
+
+
+def tornado(scenario: Scenario, patients: int | None = None, seed: int | None = None,
+            strategy: str | None = None, measure: str | None = None) -> pd.DataFrame:
+    """The one-way table of `measure` for each chosen strategy (see `tornado_strategies`):
+    strategy, measure, compared_with, the `one_way` columns (widest swing first within each
+    strategy) and basis (exact, or simulated with its standard errors)."""
     from microsim.patients.population import patients_for
+    measure, chosen, comparator = tornado_strategies(scenario, strategy, measure)
     seed = scenario.simulation.seed if seed is None else seed
     people = patients_for(scenario, patients, seed)
-    names = strategy_names(scenario) or [None]
+    needed = list(dict.fromkeys([*([comparator] if comparator else []), *chosen]))
     threshold = scenario.economics.threshold
+    evaluated: dict[tuple, dict] = {}  # each setting once, whichever strategy reads it
 
-    def evaluate(values: dict) -> pd.DataFrame:
-        rows = [{"strategy": str(name), **expected_outcomes(scenario, people, seed, values, name)}
-                for name in names]
-        return pd.DataFrame(rows)
+    def evaluate(values: dict) -> dict[str | None, PatientValues]:
+        key = tuple(sorted(values.items()))
+        if key not in evaluated:
+            evaluated[key] = {name: patient_values(scenario, people, seed, values, name)
+                              for name in needed}
+        return evaluated[key]
 
-    def net_benefit(table: pd.DataFrame) -> float:
-        nmb = threshold * table["effect"] - table["cost"]
-        return float(nmb.iloc[1] - nmb.iloc[0]) if len(nmb) > 1 else float(nmb.iloc[0])
+    def estimate_for(name: str | None) -> Callable[[dict], Estimate]:
+        def estimate(result: dict) -> Estimate:
+            own = result[name]
+            value = per_patient(measure, own.costs, own.qalys, threshold)
+            exact = own.exact
+            if comparator is not None:
+                base = result[comparator]
+                value = value - per_patient(measure, base.costs, base.qalys, threshold)
+                exact = exact and base.exact
+            se = math.nan if exact else float(np.std(value, ddof=1) / np.sqrt(len(value)))
+            return Estimate(float(np.mean(value)), se)
+        return estimate
 
-    measure = (f"incremental NMB of {names[1]} against {names[0]} at {threshold:g}"
-               if len(names) > 1 else f"NMB at {threshold:g}")
-    return one_way(evaluate, scenario.parameters, net_benefit), measure
+    frames = [one_way(evaluate, scenario.parameters, estimate_for(name))
+              .assign(strategy=AS_WRITTEN if name is None else name, measure=measure,
+                      compared_with=comparator) for name in chosen]
+    table = pd.concat(frames, ignore_index=True)
+    table["basis"] = np.where(table.se_base.isna(), EXACT, SIMULATED)
+    for column in ("strategy", "measure", "compared_with", "basis"):
+        table[column] = table[column].astype("string")
+    return table[["strategy", "measure", "compared_with", *COLUMNS, "basis"]]

@@ -1,0 +1,243 @@
+"""The report's figures: each drawn from invented tables of the shape a run writes, with one
+series per strategy, state, parameter or subgroup in the data, and written as SVG and PNG.
+
+References outside the project: the PNG file signature and SVG as XML (the W3C formats,
+checked with the standard library), matplotlib's own artists (what was drawn), networkx's
+graph of the scenario (what the structure shows), and Python's format mini-language for the
+numbers on the page.
+"""
+import xml.etree.ElementTree as ET
+
+import numpy as np
+import pandas as pd
+import pytest
+from matplotlib.collections import PathCollection, PolyCollection
+from matplotlib.container import BarContainer, ErrorbarContainer
+
+from microsim.report import figures
+from microsim.report.structure import layered_positions, structure_figure, structure_graph
+from microsim.report.style import Z95, rendered
+from microsim.report.tables import interval, normal_interval, number, percent, whole
+from microsim.scenario import parse_scenario
+from support import (event, effect, horizon, move, nested, population, attribute, rate,
+                     scenario_text, start, state, strategy)
+
+STRATEGIES = ["usual", "drug", "both"]
+LABELS = {"usual": "Usual care", "drug": "A drug", "both": "A drug and a visit"}
+STATES = ["well", "ill", "dead"]
+TIMES = np.arange(6.0)
+
+
+def shares() -> pd.DataFrame:
+    """validation_shares: time, state, simulated, analytic, se, strategy (invented)."""
+    rows = []
+    for k, name in enumerate(STRATEGIES[:2]):
+        for t in TIMES:
+            dead = 1 - np.exp(-0.1 * (k + 1) * t)
+            for state_name, share in zip(STATES, [(1 - dead) * 0.7, (1 - dead) * 0.3, dead]):
+                rows.append((t, state_name, share + 0.01, share, 0.02, name))
+    return pd.DataFrame(rows, columns=["time", "state", "simulated", "analytic", "se", "strategy"])
+
+
+def survival() -> pd.DataFrame:
+    return pd.DataFrame([(t, np.exp(-0.1 * t), np.exp(-0.1 * t), 0.01, 0.0, name)
+                         for name in STRATEGIES for t in TIMES],
+                        columns=["time", "simulated", "analytic", "se", "z", "strategy"])
+
+
+def assert_written(figure):
+    files = rendered(figure)
+    assert files["png"].startswith(b"\x89PNG\r\n\x1a\n") and len(files["png"]) > 5000
+    root = ET.fromstring(files["svg"])
+    assert root.tag == "{http://www.w3.org/2000/svg}svg"
+    assert b"Date" not in files["svg"]  # reruns give the same file
+
+
+def test_the_trace_has_a_band_and_two_lines_per_state_in_each_strategy_panel():
+    figure = figures.trace_figure(shares(), LABELS, {"well": "Well"}, "years")
+    axes = figure.axes
+    assert [ax.get_title() for ax in axes] == ["Usual care", "A drug"]
+    for ax in axes:
+        assert len(ax.lines) == 2 * len(STATES)  # simulated and analytic per state
+        assert sum(isinstance(c, PolyCollection) for c in ax.collections) == len(STATES)
+    # the band is simulated +- 1.96 SE (normal interval, common practice)
+    band = axes[0].collections[0].get_paths()[0].vertices
+    assert band[:, 1].max() == pytest.approx(0.7 + 0.01 + Z95 * 0.02)
+    assert "Well" in [t.get_text() for t in figure.legends[0].get_texts()]
+    assert_written(figure)
+
+
+def test_survival_has_one_band_and_two_lines_per_strategy():
+    figure = figures.survival_figure(survival(), LABELS, "years")
+    [ax] = figure.axes
+    assert len(ax.lines) == 2 * len(STRATEGIES)
+    assert sum(isinstance(c, PolyCollection) for c in ax.collections) == len(STRATEGIES)
+    assert_written(figure)
+
+
+def test_the_plane_shows_every_draw_the_base_case_and_the_threshold():
+    rng = np.random.default_rng(3)
+    plane = pd.DataFrame([(d, name, rng.normal(500, 200), rng.normal(0.05, 0.02))
+                          for d in range(40) for name in STRATEGIES[1:]],
+                         columns=["draw", "strategy", "incremental_cost", "incremental_effect"])
+    increments = pd.DataFrame([(name, m, mean, 1.0, mean - 10, mean + 10, 100)
+                               for name in STRATEGIES[1:]
+                               for m, mean in [("incremental_cost", 480.0),
+                                               ("incremental_effect", 0.04),
+                                               ("incremental_nmb", 320.0)]],
+                              columns=["strategy", "measure", "mean", "standard_error", "lower",
+                                       "upper", "n"])
+    figure = figures.ce_plane_figure(plane, increments, 20000, "usual", LABELS, "test dollars")
+    [ax] = figure.axes
+    scatters = [c for c in ax.collections if isinstance(c, PathCollection)]
+    assert [len(c.get_offsets()) for c in scatters] == [40, 40]
+    base = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+    assert len(base) == 2
+    assert tuple(base[0].lines[0].get_xydata()[0]) == (0.04, 480.0)
+    threshold = next(line for line in ax.lines if "threshold" in line.get_label())
+    x, y = threshold.get_xdata(), threshold.get_ydata()
+    assert (y[1] - y[0]) / (x[1] - x[0]) == pytest.approx(20000)
+    assert_written(figure)
+
+
+def acceptability() -> pd.DataFrame:
+    thresholds = np.arange(0, 50001, 5000.0)
+    rows = []
+    for t in thresholds:
+        p_drug = min(1.0, t / 40000)
+        best = "drug" if p_drug > 0.5 else "usual"
+        rows += [(t, "usual", 1 - p_drug, 100.0, best == "usual"),
+                 (t, "drug", p_drug, 90.0, best == "drug")]
+    return pd.DataFrame(rows, columns=["threshold", "strategy", "probability_best",
+                                       "expected_nmb", "on_frontier"])
+
+
+def test_acceptability_has_a_curve_per_strategy_and_the_frontier():
+    table = acceptability()
+    figure = figures.acceptability_figure(table, 20000, LABELS, "test dollars")
+    [ax] = figure.axes
+    frontier = next(line for line in ax.lines if "frontier" in line.get_label())
+    curves = [line for line in ax.lines if line.get_label() in LABELS.values()]
+    assert len(curves) == 2
+    expected = table[table.on_frontier].sort_values("threshold")
+    np.testing.assert_array_equal(frontier.get_ydata(), expected.probability_best)
+    assert_written(figure)
+
+
+def test_evpi_is_one_curve_with_the_threshold_marked():
+    evpi = pd.DataFrame({"threshold": [0.0, 1e4, 2e4], "nmb_current_information": 0.0,
+                         "nmb_perfect_information": 0.0, "evpi": [5.0, 20.0, 8.0]})
+    figure = figures.evpi_figure(evpi, 10000, "test dollars")
+    [ax] = figure.axes
+    curve, marker = ax.lines
+    np.testing.assert_array_equal(curve.get_ydata(), [5.0, 20.0, 8.0])
+    assert list(marker.get_xdata()) == [10000, 10000]
+    assert_written(figure)
+
+
+def one_way(simulated: bool) -> pd.DataFrame:
+    rows = []
+    for name in ["drug", "both"]:
+        for parameter, low, high, swing in [("hr", 100.0, -300.0, 400.0), ("cost", 50.0, -60.0, 110.0),
+                                            ("p", -10.0, 5.0, 15.0)]:
+            se = 4.0 if simulated else np.nan
+            rows.append((name, "incremental_nmb", "usual", parameter, 0.1, 0.9, 0.5, low, high,
+                         -20.0, swing, se, se, se, "basis"))
+    return pd.DataFrame(rows, columns=["strategy", "measure", "compared_with", "parameter", "low",
+                                       "high", "base", "result_low", "result_high",
+                                       "result_base", "swing", "se_low", "se_high", "se_base",
+                                       "basis"])
+
+
+@pytest.mark.parametrize("simulated", [False, True])
+def test_the_tornado_has_two_bars_per_parameter_widest_on_top(simulated):
+    figure = figures.tornado_figure(one_way(simulated), LABELS, "incremental NMB", "test dollars")
+    assert len(figure.axes) == 2
+    for ax in figure.axes:
+        low, high = [c for c in ax.containers if isinstance(c, BarContainer)]
+        assert len(low) == len(high) == 3
+        # widest swing on top: the top bar (highest y) is "hr", from -20 to 100 and -300
+        top = int(np.argmax([bar.get_y() for bar in low]))
+        assert low[top].get_x() == -20.0 and low[top].get_width() == pytest.approx(120.0)
+        assert high[top].get_width() == pytest.approx(-280.0)
+        assert ax.get_yticklabels()[-1].get_text().startswith("hr")
+        errors = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+        assert len(errors) == (1 if simulated else 0)
+        assert ax.get_title() == "A drug against Usual care" or ax.get_title().startswith("A drug and")
+    assert_written(figure)
+
+
+def test_subgroups_have_one_interval_per_strategy_and_level():
+    table = pd.DataFrame([(a, l, name, 50, nmb, 30.0, "uncertain")
+                          for a, levels in [("sex", ["female", "male"]), ("band", ["low", "mid", "high"])]
+                          for l in levels for name, nmb in [("drug", 40.0), ("both", -10.0)]],
+                         columns=["attribute", "level", "strategy", "patients", "incremental_nmb",
+                                  "se", "verdict"])
+    figure = figures.subgroup_figure(table, LABELS, "test dollars")
+    [ax] = figure.axes
+    series = [c for c in ax.containers if isinstance(c, ErrorbarContainer)]
+    assert len(series) == 2 and all(len(s.lines[0].get_xdata()) == 5 for s in series)
+    assert [t.get_text() for t in ax.get_yticklabels()][-1] == "sex: female"  # file order, top down
+    assert_written(figure)
+
+
+WARD = scenario_text(
+    horizon(30, unit="days"), start(ward=1.0), state("ward", label="On the ward"),
+    state("icu"), state("home", absorbing=True), state("dead", absorbing=True),
+    rate("ward", "home", 0.1, effects=[effect("frail", 0.7)]), rate("ward", "icu", 0.02),
+    rate("icu", "ward", 0.3), rate("icu", "dead", 0.05),
+    event("fall", ["ward", "icu"], rate=0.01),
+    population(10, attribute("frail", "yesno", prevalence=0.3)),
+    strategy("usual", comparator=True),
+    strategy("early_discharge", states=[nested(name="day_unit", label="Day unit")],
+             transitions=[move("ward", "day_unit", name="fast_track", rate=0.05),
+                          move("day_unit", "home", rate=0.5, while_treated=False)]),
+    title="Ward", provenance="invented for a test")
+
+
+def test_the_structure_draws_every_state_transition_event_and_addition():
+    scenario = parse_scenario(WARD)
+    graph = structure_graph(scenario)
+    # networkx's own view of the scenario: 4 states and the strategy's added one; 4
+    # transitions and 2 added ones between distinct states
+    assert set(graph) == {"ward", "icu", "home", "dead", "day_unit"}
+    assert graph.number_of_edges() == 6
+    assert graph.nodes["day_unit"]["added_by"] == "early_discharge"
+    assert graph.edges["ward", "day_unit"]["added_by"] == "early_discharge"
+    assert graph.nodes["dead"]["absorbing"] and not graph.nodes["ward"]["absorbing"]
+    assert "rate 0.1 per day" in graph.edges["ward", "home"]["text"]
+    assert "effects: frail" in graph.edges["ward", "home"]["text"]
+    figure = structure_figure(scenario)
+    texts = [t.get_text() for t in figure.axes[0].texts]
+    assert sum(t.startswith("event: fall") for t in texts) == 1
+    assert any("added by early_discharge" in t for t in texts)
+    # one arrow per transition and one dotted link per state an event occurs in; text for
+    # the 5 states, 6 transition labels, the event and the key
+    arrows = [a for a in figure.axes[0].texts if getattr(a, "arrow_patch", None) is not None]
+    assert len(arrows) == 6 + 2
+    assert len(figure.axes[0].texts) - len(arrows) == 5 + 6 + 1 + 1
+    assert_written(figure)
+
+
+def test_the_structure_layers_follow_the_flow():
+    graph = structure_graph(parse_scenario(WARD))
+    pos = layered_positions(graph)
+    # ward first; icu, home and the day unit one step on; dead after icu (longest path)
+    layers = {n: graph.nodes[n]["layer"] for n in graph}
+    assert layers == {"ward": 0, "icu": 1, "home": 2, "dead": 2, "day_unit": 1}
+    assert pos["ward"][0] < pos["icu"][0] < pos["dead"][0]
+
+
+@pytest.mark.parametrize("value, text", [
+    (1234567.891, "1,234,568"), (-4321.5, "-4,322"), (100.4, "100"), (12.3456, "12.35"),
+    (0.0123456, "0.0123"), (0.0, "0"), (float("nan"), "–"), (None, "–")])
+def test_numbers_take_thousands_separators_and_sensible_digits(value, text):
+    # Reference: Python's format mini-language (",.0f", ",.2f", ".3g"), by hand
+    assert number(value) == text
+
+
+def test_intervals_and_percentages_say_what_they_are():
+    assert interval(10.0, 8.0, 12.5) == "10.00 (8.00 to 12.50)"
+    assert normal_interval(1000.0, 100.0) == "1,000 (804 to 1,196)"  # 1000 -+ 1.96 x 100
+    assert normal_interval(5.0, float("nan")) == "5.00"
+    assert percent(0.367) == "36.7%" and whole(1234.0) == "1,234"
