@@ -58,14 +58,17 @@ def run_seed(args, scenario) -> int:
 
 
 def write(args, path: Path, tables: dict, started: float, documents: dict | None = None,
-          quiet: bool = False, files: dict | None = None, **extra) -> None:
+          quiet: bool = False, files: dict | None = None, **extra) -> Path:
+    """A new run folder under `<out>/<scenario>/` with the command's tables, documents and
+    files, a copy of the scenario and the manifest; `latest` points at it."""
     from microsim.store import manifest, write_run
-    target = out_dir(args, path)
-    write_run(target, tables, manifest(path, started, args.argv, **extra), documents=documents,
-              files=files)
+    folder = write_run(out_dir(args, path), args.command, tables,
+                       manifest(path, started, args.argv, **extra), documents=documents,
+                       files=files, scenario=path)
     if not quiet:
         count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
-        print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {target}/")
+        print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {folder}/")
+    return folder
 
 
 def command_check(args) -> int:
@@ -151,15 +154,19 @@ def command_run(args) -> int:
                "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
                "address": args.address, "progress": not args.json}
     result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws)
+    tables = dict(result.tables)
+    if args.sensitivity:
+        from microsim.uncertainty.one_way import tornado
+        tables["one_way"] = tornado(result.scenario, args.patients, result.seed)
     data = summary(result)
     if args.json:
         print(json.dumps(data, indent=2))
     else:
         print_summary(result)
-    write(args, path, result.tables, started, documents={"summary": data}, quiet=args.json,
-          seed=result.seed, patients=data["patients"])
+    folder = write(args, path, tables, started, documents={"summary": data},
+                   quiet=args.json, seed=result.seed, patients=data["patients"])
     if args.report:
-        report = make_report(out_dir(args, path))
+        report = make_report(folder)
         if not args.json:
             print(f"wrote {report}")
     if not args.json:
@@ -168,13 +175,20 @@ def command_run(args) -> int:
 
 
 def make_report(folder: Path) -> Path:
+    """report.html (and figures/) in a run folder, whose manifest then lists them too."""
     from microsim.report.builder import build_report
-    return build_report(folder)
+    from microsim.store import add_to_manifest
+    report = build_report(folder)
+    add_to_manifest(folder)
+    return report
 
 
 def command_report(args) -> int:
-    """The HTML report of an existing run folder."""
-    print(f"wrote {make_report(Path(args.folder))}")
+    """The HTML report of an existing run folder (a scenario's output folder means its
+    newest `run`)."""
+    from microsim.store import latest_run
+    folder = Path(args.folder)
+    print(f"wrote {make_report(latest_run(folder, 'run') or folder)}")
     return 0
 
 
@@ -357,6 +371,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--invalid-draws", choices=INVALID_DRAWS,
                      help="what the PSA does with a draw whose values or rows are invalid "
                           "(default: the scenario's uncertainty.invalid_draws, else refuse)")
+    run.add_argument("--sensitivity", action="store_true",
+                     help="also run the one-way sensitivity (tornado data, incremental NMB of "
+                          "every strategy) and keep it with the run")
     run.add_argument("--report", action="store_true",
                      help="also write report.html (figures, tables, verdicts) into the run folder")
     report = commands.add_parser(

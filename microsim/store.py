@@ -1,9 +1,14 @@
-"""Writing results: tidy CSV and Parquet tables plus a run manifest, all atomically.
+"""Writing results: one new folder per run, with tidy CSV and Parquet tables and a
+manifest, written atomically.
 
-A run's files appear together or not at all: everything is written into a hidden
-staging folder beside the target and moved into place only when every file is complete,
-so an interrupted or refused run never leaves half-written outputs. A write that fails (a
-full disk, say) raises `OutputError` and leaves the files already there as they were.
+Every command that writes makes a new run folder `<root>/<run id>/` (the id sorts by time:
+`20261201T213015.123456Z-run`) and points `<root>/latest` at it, so files of an earlier
+run never mix with a new one's. The run is written into a hidden staging folder beside it
+and renamed into place only when every file is complete, so an interrupted, refused or
+failed run leaves no half-written outputs, and earlier runs are never touched. The
+manifest lists every file of the run with its SHA-256, beside the scenario's hash (a copy
+of the scenario file is in the folder), the command line, the seed, package versions and
+timings. A write that fails (a full disk, say) raises `OutputError`.
 """
 from __future__ import annotations
 
@@ -24,7 +29,10 @@ from typing import Callable, Iterator
 import pandas as pd
 
 PACKAGES = ("microsim", "numpy", "scipy", "pandas", "pyarrow", "simpy", "tqdm", "dask",
-            "distributed")
+            "distributed", "matplotlib", "jinja2", "networkx")
+LATEST = "latest"  # the pointer (a symbolic link) to a root's newest run folder
+MANIFEST = "manifest.json"
+SCENARIO_COPY = "scenario.toml"
 
 
 class OutputError(OSError):
@@ -143,40 +151,43 @@ def write_atomically(target: Path, write: Callable[[Path], None]) -> None:
             raise
 
 
-def write_run(out_dir: Path, tables: dict[str, pd.DataFrame], record: dict,
+def run_id(command: str, now: datetime | None = None) -> str:
+    """A run folder's name: the UTC time to the microsecond (so names sort by time), then
+    the command."""
+    return f"{(now or datetime.now(timezone.utc)):%Y%m%dT%H%M%S.%fZ}-{command}"
+
+
+def write_run(root: Path, command: str, tables: dict[str, pd.DataFrame], record: dict,
               formats: tuple[str, ...] = ("csv", "parquet"),
               documents: dict[str, dict] | None = None,
-              files: dict[str, Path] | None = None) -> list[Path]:
-    """Write each table as `<name>.<format>`, each document as `<name>.json`, and
-    `manifest.json` into out_dir, atomically, with `files` (name: a finished file, such as
-    streamed histories) moved in beside them.
-
-    Each file is complete before it is moved in; files of the same names already in
-    out_dir are replaced, other files are left alone. An OSError becomes OutputError.
-    """
-    out_dir = Path(out_dir)
-    created, staging, moved = missing_folders(out_dir), None, False
+              files: dict[str, Path] | None = None, scenario: Path | None = None) -> Path:
+    """A new run folder under `root` holding each table as `<name>.<format>`, each document
+    as `<name>.json`, `files` (name: a finished file, such as streamed histories) moved in,
+    a copy of the scenario file, and `manifest.json`; `root/latest` then points at it.
+    Returns the run folder. An OSError becomes OutputError (nothing is left behind)."""
+    root = Path(root)
+    created = missing_folders(root)
     try:
-        with writing(out_dir):
-            out_dir.parent.mkdir(parents=True, exist_ok=True)
-            staging = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}-", dir=out_dir.parent))
-            paths = stage(staging, tables, record, formats, documents or {}, files or {})
-            out_dir.mkdir(exist_ok=True)
-            move_all(paths, out_dir, staging / ".previous")
-        moved = True
-        return [out_dir / p.name for p in paths]
-    finally:
-        # kept only if it holds replaced files that could not be put back (OutputError says so)
-        if staging is not None and (moved or not any((staging / ".previous").glob("*"))):
-            shutil.rmtree(staging, ignore_errors=True)
-        if not moved:
-            remove_empty(created)
+        with writing(root):
+            root.mkdir(parents=True, exist_ok=True)
+            staging = Path(tempfile.mkdtemp(prefix=".staging-", dir=root))
+            try:
+                stage(staging, tables, record, formats, documents or {}, files or {}, scenario)
+                folder = place(staging, root, run_id(command))
+            except BaseException:
+                shutil.rmtree(staging, ignore_errors=True)
+                raise
+            point_latest(root, folder.name)
+    except BaseException:
+        remove_empty(created)
+        raise
+    return folder
 
 
 def stage(staging: Path, tables: dict[str, pd.DataFrame], record: dict,
-          formats: tuple[str, ...], documents: dict[str, dict],
-          files: dict[str, Path]) -> list[Path]:
-    """Write the run into the staging folder; the paths in the order they move in."""
+          formats: tuple[str, ...], documents: dict[str, dict], files: dict[str, Path],
+          scenario: Path | None) -> None:
+    """Write the run into the staging folder, the manifest last."""
     for name, table in tables.items():
         for fmt in formats:
             target = staging / f"{name}.{fmt}"
@@ -190,38 +201,60 @@ def stage(staging: Path, tables: dict[str, pd.DataFrame], record: dict,
         (staging / f"{name}.json").write_text(json.dumps(document, indent=2) + "\n")
     for name, source in files.items():
         shutil.move(source, staging / name)
-    record = {**record, "files": sorted(p.name for p in staging.iterdir())}
-    (staging / "manifest.json").write_text(json.dumps(record, indent=2) + "\n")
-    # The manifest moves last: its presence says the run's files are complete.
-    return sorted(staging.iterdir(), key=lambda p: (p.name == "manifest.json", p.name))
+    if scenario is not None:
+        shutil.copyfile(scenario, staging / SCENARIO_COPY)
+    write_manifest(staging, record)
 
 
-def move_all(paths: list[Path], out_dir: Path, backup: Path) -> None:
-    """Move every path into out_dir, or none: files they replace are set aside first and
-    put back if any move fails."""
-    backup.mkdir()
-    done: list[tuple[Path, Path | None]] = []
-    try:
-        for path in paths:
-            target = out_dir / path.name
-            kept = None
-            if target.is_file():
-                kept = backup / path.name
-                os.replace(target, kept)
-            done.append((target, kept))
-            os.replace(path, target)
-    except BaseException as error:
-        stuck = []
-        for target, kept in reversed(done):
-            if target.is_file():
-                target.unlink()
-            if kept is not None:
-                try:
-                    os.replace(kept, target)
-                except OSError:
-                    stuck.append(target.name)
-        if stuck:
-            raise OutputError(getattr(error, "errno", None), f"{error}; the earlier "
-                              f"{', '.join(stuck)} could not be put back and are kept in "
-                              f"{backup}", str(out_dir)) from error
-        raise
+def file_hashes(folder: Path) -> dict[str, str]:
+    """Every file under `folder` but the manifest (relative path: SHA-256), sorted."""
+    return {str(p.relative_to(folder)): file_hash(p) for p in sorted(folder.rglob("*"))
+            if p.is_file() and p.name != MANIFEST}
+
+
+def write_manifest(folder: Path, record: dict) -> None:
+    """The manifest of `folder`: `record` and the hash of every file in it, atomically."""
+    content = json.dumps({**record, "files": file_hashes(folder)}, indent=2) + "\n"
+    write_atomically(folder / MANIFEST, lambda path: path.write_text(content))
+
+
+def add_to_manifest(folder: Path) -> None:
+    """Rehash a finished run folder's files into its manifest (after a report is added)."""
+    record = json.loads((folder / MANIFEST).read_text())
+    record.pop("files", None)
+    with writing(folder):
+        write_manifest(folder, record)
+
+
+def place(staging: Path, root: Path, name: str) -> Path:
+    """Rename the staged run to its own name (a later one if a run of the same microsecond
+    already has it): one atomic rename, so the folder appears whole."""
+    for attempt in range(100):
+        folder = root / (name if attempt == 0 else f"{name}-{attempt}")
+        try:
+            os.rename(staging, folder)  # refuses an existing non-empty folder
+            return folder
+        except OSError:
+            if not folder.exists():
+                raise
+    raise OutputError(None, "too many runs with the same name", str(root))
+
+
+def point_latest(root: Path, name: str) -> None:
+    """Point root/latest at the run folder `name`, atomically (a new link renamed over the
+    old one)."""
+    link = root / f".{LATEST}-{os.getpid()}"
+    link.unlink(missing_ok=True)
+    os.symlink(name, link, target_is_directory=True)
+    os.replace(link, root / LATEST)
+
+
+def latest_run(root: Path, command: str | None = None) -> Path | None:
+    """The newest run folder under root (through the latest pointer), or the newest made by
+    `command`; None when there is none."""
+    root = Path(root)
+    if command is None:
+        link = root / LATEST
+        return link.resolve() if link.exists() else None
+    runs = sorted(p for p in root.glob(f"*-{command}") if (p / MANIFEST).is_file())
+    return runs[-1] if runs else None

@@ -161,9 +161,9 @@ def test_a_bad_command_line_number_is_refused(command, option, tmp_path, capsys)
 def test_trace_writes_tables_and_manifest(tmp_path, capsys):
     assert main(["trace", str(WARD), "--out", str(tmp_path)]) == 0
     assert CAUTION in capsys.readouterr().out
-    folder = tmp_path / WARD.stem
+    folder = tmp_path / WARD.stem / "latest"
     names = {p.name for p in folder.iterdir()}
-    assert {"cohort_trace.csv", "cohort_trace.parquet", "manifest.json"} <= names
+    assert {"cohort_trace.csv", "cohort_trace.parquet", "manifest.json", "scenario.toml"} <= names
     csv, parquet = pd.read_csv(folder / "cohort_trace.csv"), pd.read_parquet(folder / "cohort_trace.parquet")
     pd.testing.assert_frame_equal(csv, parquet, check_dtype=False)
     # a trace: shares of every state sum to 1 at every time (probability, common practice)
@@ -175,18 +175,22 @@ def test_trace_writes_tables_and_manifest(tmp_path, capsys):
         assert record["versions"][package] == metadata.version(package)
     assert record["versions"]["python"] == ".".join(map(str, sys.version_info[:3]))
     assert set(record["files"]) == names - {"manifest.json"}
+    # reference: hashlib over each file's bytes, and the run's own copy of the scenario
+    assert all(record["files"][n] == hashlib.sha256((folder / n).read_bytes()).hexdigest()
+               for n in record["files"])
+    assert (folder / "scenario.toml").read_bytes() == WARD.read_bytes()
 
 
 def test_trace_through_python_m_records_the_command(tmp_path):
     done = python_m("trace", WARD, "--out", tmp_path)
     assert done.returncode == 0, done.stderr
-    record = json.loads((tmp_path / WARD.stem / "manifest.json").read_text())
+    record = json.loads((tmp_path / WARD.stem / "latest" / "manifest.json").read_text())
     assert record["command"] == f"microsim trace {WARD} --out {tmp_path}"
 
 
 def test_trace_through_main_records_the_command(tmp_path):
     assert main(["trace", str(WARD), "--out", str(tmp_path)]) == 0
-    record = json.loads((tmp_path / WARD.stem / "manifest.json").read_text())
+    record = json.loads((tmp_path / WARD.stem / "latest" / "manifest.json").read_text())
     assert record["command"] == f"microsim trace {WARD} --out {tmp_path}"
 
 
@@ -196,7 +200,7 @@ def test_run_writes_the_summary_and_shows_the_caution(tmp_path, capsys):
     assert main(["run", str(WARD), "--patients", "300", "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
     assert CAUTION in out
-    folder = tmp_path / WARD.stem
+    folder = tmp_path / WARD.stem / "latest"
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["patients"] == 300 and summary["caution"] == CAUTION
     assert (folder / "manifest.json").exists()
@@ -240,7 +244,7 @@ def test_help_works_for_every_command(command, capsys):
 def test_demo_commands_run_and_write(command, tables, tmp_path, capsys):
     assert main([command[0], str(DEMO), *command[1:], "--out", str(tmp_path)]) == 0
     assert capsys.readouterr().err == ""
-    folder = tmp_path / DEMO.stem
+    folder = tmp_path / DEMO.stem / "latest"
     for name in tables:
         assert (folder / f"{name}.csv").exists() and (folder / f"{name}.parquet").exists()
     assert (folder / "manifest.json").exists()
@@ -387,12 +391,14 @@ def test_a_full_disk_on_a_first_run_leaves_nothing(tmp_path, monkeypatch, capsys
 def test_histories_land_with_the_run(tmp_path, capsys):
     assert main(["validate", str(WARD), "--patients", "30", "--histories",
                  "--out", str(tmp_path)]) == 0
-    folder = tmp_path / WARD.stem
+    folder = tmp_path / WARD.stem / "latest"
     record = json.loads((folder / "manifest.json").read_text())
     assert "histories.parquet" in record["files"]
     histories = pd.read_parquet(folder / "histories.parquet")
     assert set(histories.patient) == set(range(30))
     assert sorted(p.name for p in tmp_path.iterdir()) == [WARD.stem]  # no scratch left
+    assert sorted(p.name for p in (tmp_path / WARD.stem).iterdir()) == [
+        folder.resolve().name, "latest"]
 
 
 def test_histories_of_a_refused_validation_are_not_left_behind(tmp_path, monkeypatch, capsys):
@@ -461,7 +467,7 @@ def test_population_and_sensitivity_use_the_seed_given(tmp_path, capsys):
             out = tmp_path / f"{command}-{seed}"
             assert main([command, str(DEMO), "--patients", "60", "--seed", str(seed),
                          "--out", str(out)]) == 0
-            folder = out / DEMO.stem
+            folder = out / DEMO.stem / "latest"
             assert json.loads((folder / "manifest.json").read_text())["seed"] == seed
             tables[command, seed] = pd.read_parquet(folder / f"{table}.parquet")
     capsys.readouterr()

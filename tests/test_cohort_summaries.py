@@ -354,11 +354,11 @@ def test_summary_command_prints_the_time_dependent_table(tmp_path, capsys):
     assert "Absorption up to the end of the horizon, 10 years" in out.out
     assert "Steady state: none, because the chain changes over time" in out.out
     assert "Absorption, closed form" not in out.out and "not_absorbed_at_end" in out.out
-    written = pd.read_parquet(tmp_path / "weibull" / "absorption_to_end.parquet")
+    written = pd.read_parquet(tmp_path / "weibull" / "latest" / "absorption_to_end.parquet")
     assert written.loc[0, "in_progressed_at_end"] == pytest.approx(
         quad(weibull_progression, 0, END), abs=1e-7)
-    assert not (tmp_path / "weibull" / "absorption.csv").exists()
-    assert (tmp_path / "weibull" / "cycle_probabilities.csv").exists()
+    assert not (tmp_path / "weibull" / "latest" / "absorption.csv").exists()
+    assert (tmp_path / "weibull" / "latest" / "cycle_probabilities.csv").exists()
 
 
 def test_summary_command_names_both_tables_of_a_homogeneous_model(tmp_path, capsys):
@@ -368,4 +368,4 @@ def test_summary_command_names_both_tables_of_a_homogeneous_model(tmp_path, caps
     out = capsys.readouterr().out
     assert "Absorption, closed form" in out and "Absorption up to the end of the horizon" in out
     for name in ("absorption", "absorption_to_end", "steady_state", "expected_outcomes"):
-        assert (tmp_path / "chain" / f"{name}.csv").exists(), name
+        assert (tmp_path / "chain" / "latest" / f"{name}.csv").exists(), name

@@ -26,7 +26,7 @@ def test_the_demo_says_its_moves_compete():
 def test_the_demo_runs_for_other_seeds(seed, tmp_path):
     assert main(["run", str(DEMO), "--seed", str(seed), "--patients", "300",
                  "--out", str(tmp_path)]) == 0
-    summary = json.loads((tmp_path / "lakemoor_kidney" / "summary.json").read_text())
+    summary = json.loads((tmp_path / "lakemoor_kidney" / "latest" / "summary.json").read_text())
     assert summary["seed"] == seed and summary["patients"] == 300
     assert {name: v["agrees"] for name, v in summary["validation"].items()} == {
         "usual_care": True, "protein_lowering": True, "everyone_treated": True}
@@ -35,5 +35,5 @@ def test_the_demo_runs_for_other_seeds(seed, tmp_path):
 def test_the_demo_runs_for_a_large_population(tmp_path):
     assert main(["validate", str(DEMO), "--patients", "50000", "--engine", "vectorised",
                  "--out", str(tmp_path)]) == 0
-    manifest = json.loads((tmp_path / "lakemoor_kidney" / "manifest.json").read_text())
+    manifest = json.loads((tmp_path / "lakemoor_kidney" / "latest" / "manifest.json").read_text())
     assert manifest["verdict"].startswith("The simulation agrees")

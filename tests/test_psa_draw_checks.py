@@ -165,7 +165,7 @@ def test_the_command_line_refuses_or_redraws(tmp_path, capsys):
     assert not (tmp_path / "refused").exists()  # refused before anything is simulated
     assert main([*base, "--invalid-draws", "redraw", "--out", str(tmp_path / "ok")]) == 0
     assert "were invalid and were drawn again" in capsys.readouterr().out
-    folder = tmp_path / "ok" / "two"
+    folder = tmp_path / "ok" / "two" / "latest"
     changed = pd.read_csv(folder / "psa_changed_draws.csv")
     summary = json.loads((folder / "summary.json").read_text())["psa"]["invalid_draws"]
     assert summary["changed_draws"] == changed.draw.nunique() > 0

@@ -86,7 +86,7 @@ def test_run_psa_on_a_scenario_without_strategies_writes_and_says_so(tmp_path, c
                  "--psa-patients", "40", "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "need at least two" in printed
-    folder = out / "plain"
+    folder = out / "plain" / "latest"
     assert (folder / "psa_outcomes.parquet").exists() and (folder / "psa_draws.parquet").exists()
     assert not (folder / "acceptability.parquet").exists()
     summary = json.loads((folder / "summary.json").read_text())

@@ -41,12 +41,11 @@ CHROMIUM, CHROMEDRIVER = Path("/usr/bin/chromium"), Path("/usr/bin/chromedriver"
 
 @pytest.fixture(scope="module")
 def folder(tmp_path_factory) -> Path:
-    """The demo with PSA and a one-way sensitivity in one folder, and its report."""
+    """The demo with PSA and a one-way sensitivity in one run folder, and its report."""
     out = tmp_path_factory.mktemp("runs")
-    assert main(["sensitivity", str(DEMO), "--patients", "60", "--out", str(out)]) == 0
     assert main(["run", str(DEMO), "--patients", "300", "--psa", "--draws", "8",
-                 "--psa-patients", "40", "--out", str(out), "--report"]) == 0
-    return out / DEMO.stem
+                 "--psa-patients", "40", "--sensitivity", "--out", str(out), "--report"]) == 0
+    return out / DEMO.stem / "latest"
 
 
 class Page(HTMLParser):
@@ -153,7 +152,7 @@ def bare(tmp_path) -> Path:
                                   state("dead", absorbing=True), rate("well", "dead", 0.2),
                                   title="Wards <script>alert(1)</script> & beds"))
     assert main(["run", str(path), "--patients", "50", "--out", str(tmp_path / "out")]) == 0
-    return tmp_path / "out" / "bare"
+    return tmp_path / "out" / "bare" / "latest"
 
 
 def test_figures_without_data_are_left_out_with_a_reason(bare, capsys):
@@ -162,7 +161,7 @@ def test_figures_without_data_are_left_out_with_a_reason(bare, capsys):
     html, page = page_of(bare)
     assert page.figures == ["trace", "survival", "structure"]
     assert page.absent == ["subgroups", "ce_plane", "acceptability", "evpi", "tornado"]
-    assert "no strategies" in html and "microsim sensitivity FILE" in html
+    assert "no strategies" in html and "microsim run FILE --sensitivity" in html
     assert sorted(p.stem for p in (bare / "figures").glob("*.svg")) == sorted(page.figures)
 
 
@@ -173,15 +172,20 @@ def test_text_from_the_scenario_is_escaped(bare):
     assert "Wards &lt;script&gt;alert(1)&lt;/script&gt; &amp; beds" in html
 
 
-def test_a_changed_scenario_leaves_the_structure_out_and_old_figures_go(bare):
+def test_the_report_reads_the_runs_own_scenario_and_old_figures_go(bare):
+    # editing the scenario file after the run changes nothing: the run folder has its copy
     scenario = Path(json.loads((bare / "manifest.json").read_text())["scenario"])
     build_report(bare)
     (bare / "figures" / "stale.svg").write_text("<svg/>")
-    scenario.write_text(scenario.read_text() + "\n# edited after the run\n")
+    scenario.write_text(scenario.read_text().replace("Wards", "Clinics"))
     build_report(bare)
     html, page = page_of(bare)
-    assert "structure" in page.absent and "has changed since the run" in html
+    assert "structure" in page.figures and "Clinics" not in html
     assert not (bare / "figures" / "stale.svg").exists()
+    (bare / "scenario.toml").unlink()  # without the copy the structure is left out
+    build_report(bare)
+    html, page = page_of(bare)
+    assert "structure" in page.absent and "holds no copy of its scenario" in html
 
 
 def test_a_folder_that_is_not_a_run_folder_is_refused_in_one_line(tmp_path, capsys):

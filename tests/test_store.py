@@ -1,25 +1,29 @@
-"""Writing a run: every table as CSV and Parquet plus the manifest, all or nothing.
+"""Writing a run: a new folder per run, every table as CSV and Parquet plus the manifest
+with every file's hash, all or nothing, earlier runs untouched.
 
 References outside the project: pandas (read_csv) and pyarrow (read_parquet) reading the
-files back, json.loads for the manifest, pyarrow's own refusal of a column type it
-cannot store (complex numbers), and errno/os.strerror for the operating system's ENOSPC.
-The rule checked is DESIGN.md's: outputs are written atomically, so a failed write leaves
-neither new files nor a staging folder behind, and the files already there as they were.
+files back, json.loads for the manifest, hashlib.sha256 for the hashes, pyarrow's own
+refusal of a column type it cannot store (complex numbers), and errno/os.strerror for the
+operating system's ENOSPC. The rule checked is DESIGN.md's: outputs are written atomically,
+so a failed write leaves neither new files nor a staging folder behind, and earlier runs as
+they were.
 """
 from __future__ import annotations
 
 import errno
+import hashlib
 import json
 import os
+import re
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
-from pathlib import Path
 
 from microsim import store
-from microsim.store import OutputError, scratch_folder, unwritable, write_run
+from microsim.store import (LATEST, OutputError, add_to_manifest, latest_run, run_id,
+                            scratch_folder, unwritable, write_run)
 
 TABLES = {
     "trace": pd.DataFrame({"time": [0.0, 1.0, 2.0], "state": ["well", "sick", "dead"],
@@ -33,23 +37,49 @@ def listing(folder):
     return sorted(p.name for p in folder.iterdir())
 
 
-def test_write_run_writes_every_table_document_and_the_manifest(tmp_path):
-    target = tmp_path / "run"
-    written = write_run(target, TABLES, RECORD, documents={"summary": {"answer": 42}})
-    expected = ["counts.csv", "counts.parquet", "manifest.json", "summary.json",
-                "trace.csv", "trace.parquet"]
-    assert listing(target) == expected
-    assert sorted(p.name for p in written) == expected
-    assert written[-1].name == "manifest.json"  # moved in last: its presence means complete
+def sha256(path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_write_run_makes_a_new_folder_with_every_file_and_its_hash(tmp_path):
+    root = tmp_path / "scenario"
+    scenario = tmp_path / "x.toml"
+    scenario.write_text("title = 'x'\n")
+    folder = write_run(root, "run", TABLES, RECORD, documents={"summary": {"answer": 42}},
+                       scenario=scenario)
+    expected = ["counts.csv", "counts.parquet", "manifest.json", "scenario.toml",
+                "summary.json", "trace.csv", "trace.parquet"]
+    assert listing(folder) == expected
+    assert listing(root) == sorted([folder.name, LATEST])  # no staging folder left
+    assert re.fullmatch(r"\d{8}T\d{6}\.\d{6}Z-run", folder.name)
+    assert latest_run(root) == folder.resolve()
     for name, table in TABLES.items():
-        pd.testing.assert_frame_equal(pd.read_parquet(target / f"{name}.parquet"), table)
-        pd.testing.assert_frame_equal(pd.read_csv(target / f"{name}.csv"), table,
+        pd.testing.assert_frame_equal(pd.read_parquet(folder / f"{name}.parquet"), table)
+        pd.testing.assert_frame_equal(pd.read_csv(folder / f"{name}.csv"), table,
                                       check_dtype=False)
-    manifest = json.loads((target / "manifest.json").read_text())
+    manifest = json.loads((folder / "manifest.json").read_text())
     assert manifest["seed"] == 3 and manifest["scenario"] == "x.toml"
-    assert manifest["files"] == [n for n in expected if n != "manifest.json"]
-    assert json.loads((target / "summary.json").read_text()) == {"answer": 42}
-    assert listing(tmp_path) == ["run"]  # no staging folder left
+    assert manifest["files"] == {name: sha256(folder / name) for name in expected
+                                 if name != "manifest.json"}
+    assert (folder / "scenario.toml").read_bytes() == scenario.read_bytes()
+    assert json.loads((folder / "summary.json").read_text()) == {"answer": 42}
+
+
+def test_run_ids_sort_by_time():
+    from datetime import datetime, timedelta, timezone
+    now = datetime(2026, 12, 1, 9, 5, 7, 120, tzinfo=timezone.utc)
+    names = [run_id("run", now + timedelta(microseconds=k)) for k in (0, 1, 999_999, 10**7)]
+    assert names == sorted(names) and len(set(names)) == 4
+
+
+def test_a_second_run_gets_its_own_folder_and_the_first_stays_as_it_was(tmp_path):
+    root = tmp_path / "scenario"
+    first = write_run(root, "run", TABLES, {"seed": 1})
+    before = {p: p.read_bytes() for p in first.iterdir()}
+    second = write_run(root, "trace", {"trace": TABLES["trace"]}, {"seed": 2})
+    assert first != second and latest_run(root) == second.resolve()
+    assert {p: p.read_bytes() for p in first.iterdir()} == before
+    assert "counts.csv" not in listing(second)  # nothing of the first run mixes in
 
 
 def unsupported_column(tables):
@@ -64,17 +94,17 @@ def failing_parquet(monkeypatch):
     def to_parquet(self, *args, **kwargs):
         calls.append(1)
         if len(calls) > 1:
-            raise OSError("disk full (simulated)")
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
         return original(self, *args, **kwargs)
 
     monkeypatch.setattr(pd.DataFrame, "to_parquet", to_parquet)
-    return TABLES, {}, OSError
+    return TABLES, {}, OutputError
 
 
 FAILURES = {  # each gives (tables, documents, the error) of a write that must fail
     "unsupported column type": lambda monkeypatch: (unsupported_column(TABLES), {},
                                                     pa.ArrowException),
-    "to_parquet raises": failing_parquet,
+    "full disk while writing a table": failing_parquet,
     "document not JSON": lambda monkeypatch: (TABLES, {"summary": {"n": np.int64(1)}}, TypeError),
 }
 
@@ -87,45 +117,9 @@ def test_complex_numbers_really_are_refused_by_pyarrow(tmp_path):
 @pytest.mark.parametrize("failure", FAILURES)
 def test_a_failed_write_leaves_nothing_behind(failure, tmp_path, monkeypatch):
     tables, documents, error = FAILURES[failure](monkeypatch)
-    target = tmp_path / "run"
     with pytest.raises(error):
-        write_run(target, tables, RECORD, documents=documents)
-    assert not target.exists()  # nothing appears where the run was going
-    assert listing(tmp_path) == []  # and no staging folder is left beside it
-
-
-@pytest.mark.parametrize("failure", FAILURES)
-def test_an_existing_target_keeps_its_files_when_a_write_fails(failure, tmp_path, monkeypatch):
-    target = tmp_path / "run"
-    target.mkdir()
-    (target / "notes.txt").write_text("mine")
-    (target / "trace.csv").write_text("old")
-    tables, documents, error = FAILURES[failure](monkeypatch)
-    with pytest.raises(error):
-        write_run(target, tables, RECORD, documents=documents)
-    assert listing(target) == ["notes.txt", "trace.csv"]
-    assert (target / "trace.csv").read_text() == "old"
-    assert listing(tmp_path) == ["run"]
-
-
-def test_a_successful_write_replaces_its_own_files_and_leaves_others_alone(tmp_path):
-    target = tmp_path / "run"
-    target.mkdir()
-    (target / "notes.txt").write_text("mine")
-    (target / "trace.csv").write_text("old")
-    write_run(target, TABLES, RECORD)
-    assert (target / "notes.txt").read_text() == "mine"
-    pd.testing.assert_frame_equal(pd.read_csv(target / "trace.csv"), TABLES["trace"])
-    assert "notes.txt" not in json.loads((target / "manifest.json").read_text())["files"]
-    assert listing(tmp_path) == ["run"]
-
-
-def test_a_failed_move_into_the_target_leaves_no_new_files(tmp_path):
-    target = tmp_path / "run"
-    (target / "trace.csv").mkdir(parents=True)  # in the way of one of the run's files
-    with pytest.raises(OSError):
-        write_run(target, TABLES, RECORD)
-    assert listing(target) == ["trace.csv"]
+        write_run(tmp_path / "out" / "scenario", "run", tables, RECORD, documents=documents)
+    assert listing(tmp_path) == []  # not even the folders it would have made
 
 
 def snapshot(folder):
@@ -133,62 +127,55 @@ def snapshot(folder):
             if p.is_file()}
 
 
-def earlier_run(tmp_path):
-    target = tmp_path / "run"
-    write_run(target, {"trace": TABLES["trace"].head(1)}, {"seed": 1},
-              documents={"summary": {"old": True}})
-    (target / "notes.txt").write_text("mine")
-    return target, snapshot(tmp_path)
+@pytest.mark.parametrize("failure", FAILURES)
+def test_earlier_runs_and_the_latest_pointer_survive_a_failed_write(failure, tmp_path,
+                                                                    monkeypatch):
+    root = tmp_path / "scenario"
+    first = write_run(root, "run", {"trace": TABLES["trace"].head(1)}, {"seed": 1})
+    before = snapshot(tmp_path)
+    tables, documents, error = FAILURES[failure](monkeypatch)
+    with pytest.raises(error):
+        write_run(root, "run", tables, RECORD, documents=documents)
+    assert snapshot(tmp_path) == before and latest_run(root) == first.resolve()
+    assert listing(root) == sorted([first.name, LATEST])
 
 
-def full_disk_at_move(monkeypatch, failing: set[int]):
-    """os.replace in store fails as on a full disk at the given calls (counted from 1)."""
-    original, calls = os.replace, []
+def test_a_full_disk_at_the_rename_is_an_output_error_and_leaves_nothing(tmp_path, monkeypatch):
+    root = tmp_path / "scenario"
+    first = write_run(root, "run", TABLES, RECORD)
 
-    def replace(source, target):
-        calls.append(1)
-        if len(calls) in failing:
-            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
-        return original(source, target)
+    def rename(source, target):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 
-    monkeypatch.setattr(store.os, "replace", replace)
-
-
-@pytest.mark.parametrize("call", [1, 2, 5, 9])
-def test_a_full_disk_while_moving_in_puts_every_earlier_file_back(call, tmp_path, monkeypatch):
-    target, before = earlier_run(tmp_path)
-    full_disk_at_move(monkeypatch, {call})
+    monkeypatch.setattr(store.os, "rename", rename)
     with pytest.raises(OutputError) as caught:
-        write_run(target, TABLES, RECORD, documents={"summary": {"new": True}})
-    assert caught.value.errno == errno.ENOSPC and caught.value.filename == str(target)
-    assert snapshot(tmp_path) == before  # old files back, no new one, no staging left
-
-
-def test_replaced_files_that_cannot_be_put_back_are_kept_and_named(tmp_path, monkeypatch):
-    target, before = earlier_run(tmp_path)
-    # moves: counts.csv, counts.parquet (new), summary.json aside, summary.json in; the 5th
-    # (trace.csv aside) fails, and so does putting summary.json back (the 6th call)
-    full_disk_at_move(monkeypatch, {5, 6})
-    with pytest.raises(OutputError) as caught:
-        write_run(target, TABLES, RECORD, documents={"summary": {"new": True}})
-    message = caught.value.strerror
-    assert "summary.json could not be put back" in message
-    kept = Path(message.split("are kept in ")[1])
-    assert (kept / "summary.json").read_bytes() == before["run/summary.json"]
-    assert listing(target) == ["manifest.json", "notes.txt", "trace.csv", "trace.parquet"]
-    for name in ("manifest.json", "notes.txt", "trace.csv", "trace.parquet"):
-        assert (target / name).read_bytes() == before[f"run/{name}"]  # the rest as it was
+        write_run(root, "run", TABLES, RECORD)
+    assert caught.value.errno == errno.ENOSPC and caught.value.filename == str(root)
+    assert listing(root) == sorted([first.name, LATEST])
 
 
 def test_files_move_in_with_the_tables(tmp_path):
     scratch = tmp_path / "scratch"
     scratch.mkdir()
     (scratch / "histories.parquet").write_bytes(b"streamed")
-    target = tmp_path / "run"
-    write_run(target, TABLES, RECORD, files={"histories.parquet": scratch / "histories.parquet"})
-    assert (target / "histories.parquet").read_bytes() == b"streamed"
-    assert "histories.parquet" in json.loads((target / "manifest.json").read_text())["files"]
+    folder = write_run(tmp_path / "run", "validate", TABLES, RECORD,
+                       files={"histories.parquet": scratch / "histories.parquet"})
+    assert (folder / "histories.parquet").read_bytes() == b"streamed"
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["files"]["histories.parquet"] == sha256(folder / "histories.parquet")
     assert listing(scratch) == []
+
+
+def test_a_report_added_later_is_hashed_into_the_manifest(tmp_path):
+    folder = write_run(tmp_path / "run", "run", TABLES, RECORD)
+    (folder / "figures").mkdir()
+    (folder / "figures" / "trace.svg").write_text("<svg/>")
+    (folder / "report.html").write_text("<html/>")
+    add_to_manifest(folder)
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["seed"] == 3
+    assert manifest["files"]["report.html"] == sha256(folder / "report.html")
+    assert manifest["files"]["figures/trace.svg"] == sha256(folder / "figures" / "trace.svg")
 
 
 def test_unwritable_names_a_file_in_the_way_and_accepts_a_new_folder(tmp_path):
@@ -205,3 +192,11 @@ def test_a_scratch_folder_is_removed_either_way(tmp_path):
             (scratch / "big.parquet").write_bytes(b"x")
             raise RuntimeError
     assert listing(tmp_path) == []
+
+
+def test_the_newest_run_of_a_command_is_found_past_later_commands(tmp_path):
+    root = tmp_path / "scenario"
+    first = write_run(root, "run", TABLES, RECORD)
+    write_run(root, "sensitivity", TABLES, RECORD)  # latest now points here
+    assert latest_run(root, "run") == first and latest_run(root).name.endswith("-sensitivity")
+    assert latest_run(root, "validate") is None

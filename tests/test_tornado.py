@@ -141,7 +141,7 @@ def test_the_command_records_its_choice_and_refuses_an_unknown_measure(tmp_path,
     out = tmp_path / "out"
     assert main(["sensitivity", str(path), "--patients", "10", "--strategy", "drug",
                  "--measure", "incremental_qalys", "--out", str(out)]) == 0
-    written = pd.read_parquet(out / "drug" / "one_way.parquet")
+    written = pd.read_parquet(out / "drug" / "latest" / "one_way.parquet")
     assert set(written.strategy) == {"drug"} and set(written.measure) == {"incremental_qalys"}
     assert set(written.compared_with) == {"usual"}
     capsys.readouterr()

@@ -138,13 +138,12 @@ class Report:
         one_way = self.one_way()
         self.figure("tornado", "One-way sensitivity (tornado)",
                     "Each parameter from its low to its high value, the others at base, widest "
-                    "swing on top; the vertical line is the base case. The one-way analysis "
-                    "runs on patients of its own (\u201cmicrosim sensitivity\u201d).",
+                    "swing on top; the vertical line is the base case.",
                     None if one_way is None else lambda: figures.tornado_figure(
                         one_way, self.strategy_labels, self.sensitivity_label(one_way),
                         self.sensitivity_unit(one_way)),
-                    "No one-way sensitivity by strategy and measure in this folder; "
-                    "\u201cmicrosim sensitivity FILE\u201d with the same --out adds it.")
+                    "No one-way sensitivity in this run; \u201cmicrosim run FILE "
+                    "--sensitivity\u201d includes it.")
         subgroups = run.table("subgroups")
         self.figure("subgroups", "Incremental net monetary benefit by subgroup",
                     f"Per subgroup level and strategy against {self.comparator}, "

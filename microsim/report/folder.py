@@ -12,8 +12,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from microsim.scenario import Scenario, ScenarioError, read_scenario
-from microsim.store import file_hash
+from microsim.scenario import Scenario, ScenarioError, parse_scenario
+from microsim.store import SCENARIO_COPY
 
 SUMMARY, MANIFEST = "summary.json", "manifest.json"
 
@@ -30,7 +30,7 @@ class RunFolder:
         path = Path(path)
         if not path.is_dir():
             raise ScenarioError(str(path), "no such folder; give the folder a run wrote "
-                                           "(e.g. outputs/<scenario>)")
+                                           "(e.g. outputs/<scenario>/latest)")
         for name in (SUMMARY, MANIFEST):
             if not (path / name).is_file():
                 raise ScenarioError(str(path), f"not a run folder: it has no {name}; "
@@ -46,17 +46,12 @@ class RunFolder:
         return None
 
     def scenario(self) -> tuple[Scenario | None, str]:
-        """The scenario the manifest names, when it is still there and unchanged; else
-        None and the reason in words."""
-        recorded = self.manifest.get("scenario")
-        if not recorded:
-            return None, "the manifest names no scenario file"
-        path = Path(recorded)
-        if not path.is_file():
-            return None, f"the scenario file {recorded} the manifest names is not found"
-        if file_hash(path) != self.manifest.get("scenario_sha256"):
-            return None, f"the scenario file {recorded} has changed since the run"
+        """The run's own copy of its scenario (read as if it stood where the run read it,
+        so relative paths still resolve); else None and the reason in words."""
+        copy = self.path / SCENARIO_COPY
+        if not copy.is_file():
+            return None, f"the run folder holds no copy of its scenario ({SCENARIO_COPY})"
         try:
-            return read_scenario(path), ""
+            return parse_scenario(copy.read_text(), source=self.manifest.get("scenario")), ""
         except ScenarioError as error:
-            return None, f"the scenario file {recorded} no longer reads ({error})"
+            return None, f"the run's scenario no longer reads ({error})"
