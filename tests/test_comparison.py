@@ -15,7 +15,7 @@ from microsim.results.comparison import EXACT, compare, share_p_values
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.simulation import simulate
 from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
-                     start, state, strategy, transition)
+                     section, start, state, strategy, transition)
 
 # Two states and no way out of the model: everyone is alive at every time, so life years
 # equal the horizon for every patient (no Monte-Carlo error), while the trace comes from
@@ -37,7 +37,7 @@ def test_an_outcome_equal_for_every_patient_agrees_within_round_off():
     life = result.outcomes.set_index("measure").loc["life_years"]
     assert life.simulated == 12.0 and life.analytic == pytest.approx(12.0, rel=1e-9)
     assert life.test == EXACT and life.z == 0.0 and life.p_value == 1.0
-    assert "without Monte-Carlo error agree within round-off" in result.verdict
+    assert "without Monte-Carlo error agree within numerical error" in result.verdict
     # the other outcomes vary between patients and are tested as usual
     assert (result.outcomes.set_index("measure").drop("life_years").test != EXACT).all()
 
@@ -76,7 +76,7 @@ def test_round_off_in_analytic_shares_is_cleaned(monkeypatch):
     trace = analytic(model).trace
     assert trace.min() >= 0.0 and trace.max() <= 1.0
     np.testing.assert_allclose(trace, uncleaned, atol=1e-9)
-    sim = simulate(model, cohort_patients(1000), 5)
+    sim = simulate(model, cohort_patients(300), 5)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         result = compare(sim)
@@ -87,10 +87,13 @@ def test_round_off_in_analytic_shares_is_cleaned(monkeypatch):
 def test_shares_far_outside_the_unit_interval_are_refused():
     model = model_of(NEVER_ABSORBED)
     trace = np.full((1, 3, 2), 0.5)
-    trace[0, 2, 1] = -1e-6
-    with pytest.raises(ScenarioError, match="outside \\[0, 1\\] by more than round-off"):
+    trace[0, 2, 1] = -1e-5
+    with pytest.raises(ScenarioError, match="at time 2 1e-05 below 0, beyond the numerical"):
         cleaned(trace, model, np.array([0.0, 1.0, 2.0]))
-    trace[0, 2, 1] = -1e-11
+    trace[0, 2, 1] = 1 + 2e-5
+    with pytest.raises(ScenarioError, match="2e-05 above 1"):
+        cleaned(trace, model, np.array([0.0, 1.0, 2.0]))
+    trace[0, 2, 1] = -3.3e-9  # what the forward equations give over long horizons
     assert cleaned(trace, model, np.array([0.0, 1.0, 2.0]))[0, 2, 1] == 0.0
 
 
@@ -224,3 +227,26 @@ def test_cycle_model_with_discontinuation_has_few_distinct_analytic_rows():
                                  for b in range(0, 4000, 397)])
     shared = analytic(model, mult=sim.mult).trace[::397]
     np.testing.assert_allclose(shared, one_by_one, rtol=0, atol=1e-15)
+
+
+# A lifetime rate model with Weibull hazards and discounting (from a practitioner's trial):
+# the forward equations drift to about -3.3e-9 for a share near 0 after 33 years, which is
+# numerical error, not a reason to refuse the model.
+DISCOUNTED_LIFETIME = scenario_text(
+    section("time", unit="years", cycle=0.25, horizon="lifetime", lifetime_cap=40),
+    start(alive=1), state("alive", utility=0.8), state("sick", utility=0.5),
+    state("dead", absorbing=True),
+    transition("alive", "sick", hazard=dict(family="weibull", shape=1.3, scale=2),
+               clock="since_start"),
+    transition("sick", "dead", hazard=dict(family="weibull", shape=1.2, scale=1.5),
+               clock="since_start"),
+    rate("alive", "dead", 0.03),
+    section("outcomes", discount_costs=0.035, discount_effects=0.035))
+
+
+def test_a_discounted_lifetime_rate_model_is_not_refused_for_drift():
+    model = model_of(DISCOUNTED_LIFETIME)
+    trace = analytic(model).trace
+    assert trace.min() >= 0.0 and np.allclose(trace.sum(axis=2), 1.0, atol=1e-7)
+    result = compare(simulate(model, cohort_patients(1000), 4))
+    assert result.agrees is True, result.verdict
