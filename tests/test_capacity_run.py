@@ -34,6 +34,8 @@ from support import (arrivals, edited, horizon, outcomes, rate, replications, re
                      scenario_text, start, state, strategy)
 from test_capacity_engine import RICH, SEED
 
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "scenarios" / "fenmoor_joint_waiting.toml"
 
 
 # ---------------------------------------------------------------------------- MSER-5
@@ -219,3 +221,13 @@ def test_the_cohort_commands_say_they_ignore_the_queue(tmp_path, capsys):
     path = written(tmp_path, open_service())
     assert main(["trace", str(path), "--out", str(tmp_path / "out")]) == 0
     assert "the cohort ignores [arrivals] and [[resources]]" in capsys.readouterr().out
+    assert main(["population", str(DEMO), "--out", str(tmp_path / "out")]) == 0  # no size
+    assert "2000 patients" in capsys.readouterr().out  # an open population: the default
+
+
+def test_the_demo_runs_for_other_seeds_and_sizes(tmp_path, capsys):
+    for argv in (["--seed", "2", "--patients", "150"], ["--seed", "987654321", "--patients", "3"]):
+        assert main(["run", str(DEMO), *argv, "--out", str(tmp_path / "out")]) == 0, argv
+        out = capsys.readouterr().out
+        assert "Waiting for treatment places" in out and "best:" in out
+    assert "arrivals stopped at the limit on patients" in out

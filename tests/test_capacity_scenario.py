@@ -16,6 +16,8 @@ from support import (arrivals, assert_refused, attribute, edited, horizon, param
                      population, probability, rate, replications, resource, scenario_text,
                      start, state, strategy, table, transition)
 
+SCENARIOS = Path(__file__).resolve().parent.parent / "scenarios"
+
 SERVICE = scenario_text(
     horizon(400, unit="days"), start(age=60, treatment=1.0),
     state("treatment", cost=300), state("waiting", cost=20, utility=0.5),
@@ -85,6 +87,13 @@ def test_an_arrival_file_is_read_and_sorted(tmp_path):
         reference = sorted(float(row["time"]) for row in csv.DictReader(f) if row["time"])
     assert s.capacity.arrivals.times == tuple(reference)
     assert s.capacity.arrivals.file == tmp_path / "referrals.csv"
+
+
+def test_the_demo_loads_without_warnings():
+    s = read_scenario(SCENARIOS / "fenmoor_joint_waiting.toml")
+    assert s.warnings == () and "invented" in s.provenance.lower()
+    assert "INVENTED" in (SCENARIOS / "fenmoor_joint_waiting.toml").read_text().split("\n\n")[0]
+    assert [st.capacity is not None for st in s.strategies] == [False, True, True]
 
 
 CLOSED = scenario_text(
