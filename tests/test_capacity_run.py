@@ -226,7 +226,7 @@ def test_the_cohort_commands_say_they_ignore_the_queue(tmp_path, capsys):
 
 
 def test_the_demo_runs_for_other_seeds_and_sizes(tmp_path, capsys):
-    for argv in (["--seed", "2", "--patients", "150"], ["--seed", "987654321", "--patients", "3"]):
+    for argv in (["--seed", "2", "--patients", "60"], ["--seed", "987654321", "--patients", "3"]):
         assert main(["run", str(DEMO), *argv, "--out", str(tmp_path / "out")]) == 0, argv
         out = capsys.readouterr().out
         assert "Waiting for treatment places" in out and "best:" in out

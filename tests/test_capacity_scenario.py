@@ -191,6 +191,16 @@ CASES = [
     ("turned away into the queue", "service",
      [('turned_away = "elsewhere"', 'turned_away = "worse"')],
      "resources.chairs.turned_away", "'worse' is a waiting state"),
+    ("turned away from one limited queue to another", "closed",
+     [('waiting = ["waiting"]\n', 'waiting = ["waiting"]\nqueue_limit = 2\nturned_away = "home"\n\n'
+                                  '[[resources]]\nname = "rooms"\ncapacity = 1\nstate = "home"\n'
+                                  'waiting = ["other"]\nqueue_limit = 0\nturned_away = "treatment"\n'),
+      ('absorbing = true', 'absorbing = true\n\n[[states]]\nname = "other"'),
+      ('rate = 0.01', 'rate = 0.01\n\n[[transitions]]\nfrom = "home"\nto = "gone"\nrate = 0.1\n\n'
+                      '[[transitions]]\nfrom = "other"\nto = "gone"\nrate = 0.1'),
+      ('[[states]]\nname = "home"\nabsorbing = true', '[[states]]\nname = "home"\n\n'
+                                                      '[[states]]\nname = "gone"\nabsorbing = true')],
+     "resources.beds.turned_away", "could be turned away again and again"),
     ("patience without where to go", "service", [('leave_to = "elsewhere"\n', "")],
      "resources.chairs.leave_to", "is required with patience"),
     ("leaving to the held state", "service", [('leave_to = "elsewhere"', 'leave_to = "treatment"')],

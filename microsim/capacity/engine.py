@@ -279,11 +279,12 @@ class Service:
                 timed_out = limit >= end
                 if timed_out:
                     limit = end
+                delay = max(limit - now, 0.0)  # a patience already spent by round-off
                 try:
                     if waiting:
-                        yield ticket | env.timeout(limit - now)
+                        yield ticket | env.timeout(delay)
                     else:
-                        yield env.timeout(limit - now)
+                        yield env.timeout(delay)
                 except simpy.Interrupt:  # pre-empted (the resource took the unit): queue again
                     row[2] = env.now
                     now = entered = env.now - arrival
@@ -349,7 +350,8 @@ class Service:
                 if station is not None:
                     give_back(ticket)
                     row[2] = env.now
-                before, (state, station, ticket, row) = state, self.gate(b, target)
+                before = state
+                state, station, ticket, row = self.gate(b, target)
                 record((now, before, state, winner))
             entered = now
             bump(self.state_bumps[state], now)

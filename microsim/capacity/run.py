@@ -25,8 +25,7 @@ from microsim.capacity.statistics import (interval, interval_means, over_time, s
                                           window_measures)
 from microsim.capacity.validation import QueueValidation, compare_queues
 from microsim.capacity.warm_up import WarmUp, estimate_warm_up
-from microsim.decision import economics
-from microsim.decision.strategies import AS_WRITTEN, strategy_names
+from microsim.decision.strategies import AS_WRITTEN, frontier, strategy_names
 from microsim.patients.population import DEFAULT_PATIENTS, scenario_patients
 from microsim.patients.treatment import patient_multipliers
 from microsim.scenario.errors import ScenarioError
@@ -148,10 +147,6 @@ class ServiceResult:
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
 
     @property
-    def open_population(self) -> bool:
-        return self.scenario.capacity.arrivals is not None
-
-    @property
     def patients(self) -> int:
         """Patients simulated in all replications of the comparator."""
         return sum(len(run.patients) for run in self.strategies[self.comparator].runs)
@@ -166,7 +161,7 @@ def simulate_strategies(scenario: Scenario, names: list[str | None], seed: int,
     if reference:
         models[REFERENCE] = next(iter(models.values())).without_resources()
     runs = run_replications(scenario, models, seed, scenario.capacity.replications.count,
-                        patient_limit(scenario, patients))
+                            patient_limit(scenario, patients))
     return {name: StrategyRuns(name, models[name], runs[name]) for name in models}
 
 
@@ -178,9 +173,8 @@ def run_service(scenario: Scenario, seed: int, patients: int | None = None,
     runs = simulate_strategies(scenario, names, seed, patients, reference=True)
     reference = runs.pop(REFERENCE)
     comparator = next(iter(runs))
-    first = runs[comparator]
     warm_up = warm_up_of(scenario, list(runs.values()))
-    spans = windows(len(first.runs), warm_up.length, scenario.time.end)
+    spans = windows(scenario.capacity.replications.count, warm_up.length, scenario.time.end)
     open_population = scenario.capacity.arrivals is not None
     queue_groups = pd.concat([queue_values(s, spans) for s in runs.values()], ignore_index=True)
     outcome_groups = pd.concat([outcome_values(s, spans, warm_up.length, open_population)
@@ -189,16 +183,13 @@ def run_service(scenario: Scenario, seed: int, patients: int | None = None,
     outcomes_table = summarise(outcome_groups, ["strategy"])
     increments = paired_increments(outcome_groups, comparator, scenario.economics.threshold)
     analysis = benefit = None
-    if len(runs) > 1:
-        means = outcomes_table[outcomes_table.strategy != REFERENCE].pivot(
-            index="strategy", columns="measure", values="mean").loc[list(runs)]
-        analysis = economics.incremental_analysis(list(runs), means.costs_discounted,
-                                                  means.qalys_discounted)
-        benefit = economics.net_benefit(list(runs), means.costs_discounted,
-                                        means.qalys_discounted, [scenario.economics.threshold])
+    if len(runs) > 1:  # the frontier of the strategies' means over the groups
+        by_group = outcome_groups[outcome_groups.strategy != REFERENCE].pivot(
+            index=["strategy", "group"], columns="measure", values="value").reset_index()
+        analysis, benefit = frontier(by_group, scenario.economics.threshold)
     validations = {name: compare_queues(s.cm, queue_groups[queue_groups.strategy == name],
                                         s.cut, open_population) for name, s in runs.items()}
-    grid = report_grid(first.cm.model, scenario.simulation.grid)
+    grid = report_grid(runs[comparator].cm.model, scenario.simulation.grid)
     tables = {"queue_summary": queues_table, "queue_groups": queue_groups,
               "queue_over_time": pd.concat([over_time_table(s, grid) for s in runs.values()],
                                            ignore_index=True),
@@ -207,7 +198,7 @@ def run_service(scenario: Scenario, seed: int, patients: int | None = None,
               "service_outcomes": outcomes_table, "service_groups": outcome_groups,
               "warm_up": pd.DataFrame({"length": [warm_up.length], "rule": [warm_up.rule],
                                        "note": [warm_up.note]})}
-    if len(runs) > 1:
+    if analysis is not None:
         tables.update({"service_increments": increments, "incremental_analysis": analysis,
                        "net_benefit": benefit})
     per = scenario.time.unit.removesuffix("s") if open_population else "patient"

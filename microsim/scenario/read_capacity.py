@@ -241,7 +241,7 @@ def check_plan(s: Scenario, model: Scenario, capacity: CapacitySpec, prefix: str
         check_capacity_value(s, resource.capacity, f"{path}.capacity")
         check_holding_state(model, resource, path, holders)
         check_waiting_states(model, resource, path, holders, waiters, paths)
-        check_exits(model, resource, path, waiters)
+        check_exits(model, resource, path, waiters, capacity)
         if resource.priority is not None:
             check_priority(s, reading, resource, f"{path}.priority")
 
@@ -322,9 +322,11 @@ def check_waiting_states(model: Scenario, resource: ResourceSpec, path: str,
                                 "this transition")
 
 
-def check_exits(model: Scenario, resource: ResourceSpec, path: str,
-                waiters: dict[str, str]) -> None:
-    """Turned away or out of patience, patients go somewhere that is not a queue."""
+def check_exits(model: Scenario, resource: ResourceSpec, path: str, waiters: dict[str, str],
+                capacity: CapacitySpec) -> None:
+    """Turned away or out of patience, patients go somewhere that is not a queue; turned
+    away to another resource's units, they may wait for them but not be turned away again
+    (which could send them round in a circle)."""
     for key, partner, what in (("queue_limit", "turned_away", "where patients who find the "
                                 "queue full go"),
                                ("patience", "leave_to", "where patients who wait that long go")):
@@ -342,6 +344,11 @@ def check_exits(model: Scenario, resource: ResourceSpec, path: str,
                                 + ("the state that holds the unit" if target == resource.state
                                    else "a waiting state")
                                 + "; send these patients to a state outside the queue")
+        other = next((r for r in capacity.resources if r.state == target), None)
+        if partner == "turned_away" and other is not None and other.queue_limit is not None:
+            raise ScenarioError(f"{path}.{partner}", f"{target!r} holds units of "
+                                f"{other.name!r}, whose queue is limited too, so patients could "
+                                "be turned away again and again; send them where they can wait")
 
 
 def check_priority(s: Scenario, reading: Reading, resource: ResourceSpec, path: str) -> None:
