@@ -5,13 +5,15 @@ The closed forms are `microsim.markov.queues` (themselves checked against a nump
 birth-death chain and scipy.stats in tests/test_queues.py); the sources are Erlang 1917,
 Gross, Shortle, Thompson & Harris 2008 ("Fundamentals of Queueing Theory", ch. 2 and 5),
 Pollaczek 1930 / Khinchine 1932 and Little 1961 (from memory). Standard errors come from
-replications or, for one long run, from batch means; seeds are fixed and the runs short.
+replications or, for one long run, from batch means (trusted within Bartlett's bound on
+their lag-1 autocorrelation, 2 / sqrt(B), common practice); seeds are fixed, runs short.
 """
 from __future__ import annotations
 
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import special
 
@@ -45,7 +47,7 @@ def validated(text: str, seed: int = SEED):
     runs = simulate_strategies(s, [None], seed, None)
     (sr,) = runs.values()
     spans = windows(len(sr.runs), s.capacity.replications.warm_up, s.time.end)
-    return compare_queues(sr.cm, queue_values(sr, spans), sr.cut)
+    return compare_queues(sr.cm, queue_values(sr, spans), sr.cut, batches=len(sr.runs) == 1)
 
 
 def assert_agrees(check, model: str, quantities: set[str]):
@@ -150,3 +152,18 @@ def test_non_exponential_service_with_several_units_has_no_closed_form():
     s = parse_scenario(service(0.5, 2, service_risk=weibull))
     assert "M/G/c with several units" in counterpart(bind_capacity(s), 0)
     assert "stopped at the limit" in counterpart(bind_capacity(s), 0, cut=True)
+
+
+def test_correlated_batch_means_are_left_untested():
+    """Batch means of one run that trend (lag-1 autocorrelation far above Bartlett's 2 / sqrt(B))
+    give no standard error to trust; the same values as replications are tested."""
+    cm = bind_capacity(parse_scenario(service(0.6, 1, count=1)))
+    trend = np.linspace(0.5, 2.0, 20)
+    groups = pd.DataFrame([("desks", g, measure, v) for measure in
+                           ("waited", "mean_wait", "utilisation", "mean_queue", "little_gap")
+                           for g, v in enumerate(trend)],
+                          columns=["resource", "group", "measure", "value"])
+    batches = compare_queues(cm, groups, batches=True)
+    assert batches.table.p_value.isna().all() and batches.agrees is None
+    assert "5 figure(s) untested: the batches of the one run are correlated" in batches.verdict
+    assert compare_queues(cm, groups).table.p_value.notna().all()

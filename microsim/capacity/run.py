@@ -187,8 +187,10 @@ def run_service(scenario: Scenario, seed: int, patients: int | None = None,
         by_group = outcome_groups[outcome_groups.strategy != REFERENCE].pivot(
             index=["strategy", "group"], columns="measure", values="value").reset_index()
         analysis, benefit = frontier(by_group, scenario.economics.threshold)
+    batches = scenario.capacity.replications.count == 1
     validations = {name: compare_queues(s.cm, queue_groups[queue_groups.strategy == name],
-                                        s.cut, open_population) for name, s in runs.items()}
+                                        s.cut, open_population, batches)
+                   for name, s in runs.items()}
     grid = report_grid(runs[comparator].cm.model, scenario.simulation.grid)
     tables = {"queue_summary": queues_table, "queue_groups": queue_groups,
               "queue_over_time": pd.concat([over_time_table(s, grid) for s in runs.values()],

@@ -13,6 +13,10 @@ Each figure is tested with its standard error over replications (or batches of o
 z = (simulated - formula) / se with a two-sided Student-t p-value, and the verdict is the
 cohort comparison's rule (`microsim.results.comparison`): Bonferroni over the K figures at
 family-wise level 0.001, so a correct engine is flagged in fewer than one run in a thousand.
+Batch means are trusted only while their lag-1 autocorrelation is within Bartlett's bound
+2 / sqrt(B) for B uncorrelated batches (Bartlett 1946, "On the theoretical specification and
+sampling properties of autocorrelated time-series", from memory; common practice in
+simulation output analysis); a figure whose batches are more correlated is left untested.
 """
 from __future__ import annotations
 
@@ -119,15 +123,18 @@ def treatment_factors(cm: CapacityModel, service: list[int]) -> list[float] | st
 
 @dataclass(frozen=True)
 class QueueValidation:
-    table: pd.DataFrame  # resource, quantity, simulated, formula, se, z, p_value, model, source
+    table: pd.DataFrame  # resource, quantity, simulated, formula, se, z, p_value, groups,
+    # test, model, source
     agrees: bool | None  # None: nothing to compare
     verdict: str
 
 
 def compare_queues(cm: CapacityModel, groups: pd.DataFrame, cut: bool = False,
-                   open_population: bool = True) -> QueueValidation:
-    """Test every resource's figures (tidy per-group values: resource, group, measure, value)
-    against its closed form, and Little's law where arrivals go on over time."""
+                   open_population: bool = True, batches: bool = False) -> QueueValidation:
+    """Test every resource's figures (tidy per-group values in group order: resource, group,
+    measure, value) against its closed form, and Little's law where arrivals go on over time.
+    `batches`: the groups are consecutive batches of one run, whose standard error holds only
+    while they are nearly uncorrelated; a figure whose batch means are not is left untested."""
     rows, reasons = [], []
     for k, r in enumerate(cm.resources):
         mine = groups[groups.resource == r.name]
@@ -139,17 +146,25 @@ def compare_queues(cm: CapacityModel, groups: pd.DataFrame, cut: bool = False,
                 if field == "p_blocked" and r.queue_limit is None:
                     continue
                 rows.append(test_row(r.name, measure, mine, getattr(formula, field),
-                                     formula.model, formula.source))
+                                     formula.model, formula.source, batches))
         if open_population:
-            rows.append(test_row(r.name, LITTLE, mine, 0.0, "Little's law", queues.LITTLE))
+            rows.append(test_row(r.name, LITTLE, mine, 0.0, "Little's law", queues.LITTLE,
+                                 batches))
     table = pd.DataFrame([row for row in rows if row is not None],
                          columns=["resource", "quantity", "simulated", "formula", "se", "z",
-                                  "p_value", "groups", "model", "source"])
-    return QueueValidation(table, *verdict(table, reasons))
+                                  "p_value", "groups", "test", "model", "source"])
+    return QueueValidation(table, *verdict(table, reasons, batches))
+
+
+def lag_one(x: np.ndarray) -> float:
+    """The lag-1 autocorrelation of a series (0 for a constant one)."""
+    centred = x - x.mean()
+    spread = float(centred @ centred)
+    return float(centred[:-1] @ centred[1:]) / spread if spread > 0 else 0.0
 
 
 def test_row(resource: str, measure: str, groups: pd.DataFrame, formula: float, model: str,
-             source: str) -> tuple | None:
+             source: str, batches: bool) -> tuple | None:
     x = groups.loc[groups.measure == measure, "value"].to_numpy(float)
     x = x[np.isfinite(x)]
     if x.size < 2:
@@ -157,21 +172,33 @@ def test_row(resource: str, measure: str, groups: pd.DataFrame, formula: float, 
     mean, se = float(x.mean()), float(x.std(ddof=1) / np.sqrt(x.size))
     difference = mean - formula
     tolerance = ROUNDOFF * max(abs(formula), 1.0)
-    if se <= tolerance:  # no spread between groups: equal within round-off, or not
-        z, p = 0.0, float(abs(difference) <= tolerance)
+    r = lag_one(x)
+    if batches and abs(r) > 2 / np.sqrt(x.size):  # Bartlett's bound for white noise
+        z, p, test = np.nan, np.nan, f"untested: batch means correlated (lag-1 r = {r:.2f})"
+    elif se <= tolerance:  # no spread between groups: equal within round-off, or not
+        z, p, test = 0.0, float(abs(difference) <= tolerance), f"equal within {ROUNDOFF:g}"
     else:
         z = difference / se
-        p = float(2 * stats.t.sf(abs(z), x.size - 1))
-    return resource, measure, mean, formula, se, z, p, x.size, model, source
+        p, test = float(2 * stats.t.sf(abs(z), x.size - 1)), "Student t"
+    return resource, measure, mean, formula, se, z, p, x.size, test, model, source
 
 
-def verdict(table: pd.DataFrame, reasons: list[str]) -> tuple[bool | None, str]:
+def verdict(everything: pd.DataFrame, reasons: list[str], batches: bool = False
+            ) -> tuple[bool | None, str]:
     none = ("No exact counterpart for " + "; ".join(reasons) + ".") if reasons else ""
+    table = everything[everything.p_value.notna()]
+    untested = everything[everything.p_value.isna()]
+    if len(untested):
+        none += (f" {len(untested)} figure(s) untested: the batches of the one run are "
+                 "correlated, so their standard error would understate the noise; give more "
+                 "replications or a longer run.")
+        none = none.strip()
     if table.empty:
         return None, none or "Nothing to compare with queueing theory."
     level = FAMILY_ALPHA / len(table)
     worst = table.loc[table.p_value.idxmin()]
-    basis = (f"Bonferroni over {len(table)} comparisons at family-wise level {FAMILY_ALPHA}: "
+    basis = (f"Bonferroni over {len(table)} comparison{'s' if len(table) != 1 else ''} at "
+             f"family-wise level {FAMILY_ALPHA}: "
              f"each Student-t p-value must be at least {level:.2g}")
     models = ", ".join(dict.fromkeys(table.model))
     if worst.p_value >= level:
@@ -182,5 +209,7 @@ def verdict(table: pd.DataFrame, reasons: list[str]) -> tuple[bool | None, str]:
     said = (f"The simulated queues DISAGREE with queueing theory: {worst.resource} "
             f"{worst.quantity} is {worst.simulated:.4g} against {worst.formula:.4g} "
             f"({worst.model}; z = {worst.z:.2f}, p = {worst.p_value:.2g}; {basis}). Check the "
-            "engine, the warm-up or the run length.")
+            "engine, the warm-up or the run length"
+            + ("; batches of one run shorter than the queue's memory understate the noise, "
+               "so try more replications first." if batches else "."))
     return False, f"{said} {none}".strip()
