@@ -22,7 +22,7 @@ from microsim.capacity.run import queue_values, simulate_strategies, windows
 from microsim.capacity.validation import compare_queues, counterpart
 from microsim.markov import queues
 from microsim.scenario import parse_scenario
-from support import (Z, arrivals, attribute, effect, horizon, nested, population, rate,
+from support import (Z, arrivals, attribute, horizon, nested, population, rate,
                      replications, resource, scenario_text, start, state, strategy, table,
                      transition)
 

@@ -102,9 +102,7 @@ def test_outcomes_of_a_capacity_that_never_binds_are_the_independent_models(name
         assert mine[measure] == pytest.approx(theirs[measure].sum(), rel=1e-9), measure
     patient_costs = theirs["costs_discounted"].sum()
     assert mine["patient_costs_discounted"] == pytest.approx(patient_costs, rel=1e-9)
-    delta = math.log(1.01)
-    places = 1000 * 0.0 * (1 - math.exp(-delta * cm.end)) / delta  # the beds cost nothing here
-    assert mine["capacity_costs_discounted"] == pytest.approx(places, abs=1e-9)
+    assert mine["capacity_costs_discounted"] == 0.0  # the beds have no cost of their own here
 
 
 def test_the_cost_of_capacity_by_period():
@@ -183,9 +181,8 @@ def test_run_prints_and_writes_the_service_tables(tmp_path, capsys):
     for name in ("queue_summary", "queue_groups", "queue_over_time", "queue_validation",
                  "service_outcomes", "service_groups", "warm_up", "service_increments",
                  "incremental_analysis", "net_benefit"):
-        assert pd.read_parquet(folder / f"{name}.parquet").equals(
-            pd.read_parquet(folder / f"{name}.parquet")), name
-        assert (folder / f"{name}.csv").exists(), name
+        parquet, csv = pd.read_parquet(folder / f"{name}.parquet"), pd.read_csv(folder / f"{name}.csv")
+        assert list(parquet.columns) == list(csv.columns) and len(parquet) == len(csv) > 0, name
     over_time = pd.read_parquet(folder / "queue_over_time.parquet")
     assert set(over_time.strategy) == {"two", "three", "busier"}
     assert over_time.time.max() == 100

@@ -12,7 +12,7 @@ import numpy as np
 
 from microsim.binding import BoundModel, bind, table_hazard
 from microsim.hazards import ConstantHazard, HazardFamily
-from microsim.scenario.spec import ArrivalsSpec, CapacitySpec, Ref, ResourceSpec, Scenario
+from microsim.scenario.spec import ArrivalsSpec, Ref, ResourceSpec, Scenario
 
 
 @dataclass(frozen=True)
