@@ -93,7 +93,12 @@ def begin(args) -> tuple[float, Path, object]:
 
 
 def cohort_note(scenario) -> str:
-    """Say what the cohort commands' single cohort is when patients differ."""
+    """Say what the cohort commands' single cohort is when patients differ (or share
+    capacity, which a cohort cannot)."""
+    if scenario.capacity is not None:
+        return ("\nNote: the cohort ignores [arrivals] and [[resources]]: it follows one "
+                "patient who never waits; `microsim run` simulates the service with its "
+                "queues.")
     if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events):
         return ("\nNote: one uniform cohort, every patient given the population's mean "
                 "attributes (the 'average patient'); `microsim validate` or `run` simulates "
@@ -144,6 +149,8 @@ def command_summary(args) -> int:
 
 def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
+    from microsim.capacity.present import print_service, service_summary
+    from microsim.capacity.run import ServiceResult
     from microsim.present import print_summary, summary
     from microsim.workflow import run_main
     started = time.perf_counter()
@@ -155,14 +162,17 @@ def command_run(args) -> int:
                "address": args.address, "progress": not args.json}
     result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws)
     tables = dict(result.tables)
-    if args.sensitivity:
-        from microsim.uncertainty.one_way import tornado
-        tables["one_way"] = tornado(result.scenario, args.patients, result.seed)
-    data = summary(result)
+    if isinstance(result, ServiceResult):  # shared capacity: its own summary
+        data, report = service_summary(result), print_service
+    else:
+        data, report = summary(result), print_summary
+        if args.sensitivity:
+            from microsim.uncertainty.one_way import tornado
+            tables["one_way"] = tornado(result.scenario, args.patients, result.seed)
     if args.json:
         print(json.dumps(data, indent=2))
     else:
-        print_summary(result)
+        report(result)
     folder = write(args, path, tables, started, documents={"summary": data},
                    quiet=args.json, seed=result.seed, patients=data["patients"])
     if args.report:
@@ -205,9 +215,17 @@ def command_validate(args) -> int:
 
 
 def validation_report(args, path: Path, started: float, histories: Path | None) -> int:
+    from microsim.capacity.present import VALIDATION_TABLES, print_validation
+    from microsim.capacity.run import ServiceResult
     from microsim.workflow import validate
     check = validate(path, args.patients, args.seed, args.strategy, histories=histories,
                      engine=args.engine)
+    if isinstance(check, ServiceResult):  # shared capacity: queues against queueing theory
+        print_validation(check)
+        write(args, path, {k: check.tables[k] for k in VALIDATION_TABLES}, started,
+              seed=check.seed, verdict=next(iter(check.validations.values())).verdict)
+        print(f"\n{CAUTION}")
+        return 0
     c = check.comparison
     print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
           f"patients, seed {check.simulation.seed}\nCounterpart: {c.counterpart}")
@@ -247,6 +265,9 @@ def command_population(args) -> int:
 def command_sensitivity(args) -> int:
     from microsim.uncertainty.one_way import AS_WRITTEN, tornado
     started, path, scenario = begin(args)
+    if scenario.capacity is not None:
+        raise ScenarioError("sensitivity", "one-way sensitivity of a service with shared "
+                            "capacity ([arrivals], [[resources]]) is not available yet")
     seed = run_seed(args, scenario)
     table = tornado(scenario, args.patients, seed, args.strategy, args.measure)
     first = table.iloc[0]
@@ -324,7 +345,8 @@ def build_parser() -> argparse.ArgumentParser:
         return sub
 
     def population_options(sub):
-        sub.add_argument("--patients", type=COUNT, help="population size (default: the scenario's)")
+        sub.add_argument("--patients", type=COUNT, help="population size (default: the scenario's); "
+                         "with [arrivals], the most arrivals per replication")
         sub.add_argument("--seed", type=SEED, help="run seed (default: the scenario's)")
 
     def engine_option(sub):

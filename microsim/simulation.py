@@ -62,6 +62,11 @@ def choose_engine(model: BoundModel, engine: str):
     event engine for rate models; simpy: the SimPy engine of the model's kind."""
     if engine not in ENGINES:
         raise ScenarioError("--engine", f"must be one of {', '.join(ENGINES)}, got {engine!r}")
+    if model.scenario.capacity is not None:  # patients who share capacity are not independent
+        raise ScenarioError("resources" if model.scenario.capacity.resources else "arrivals",
+                            "patients here share capacity or arrive over time, which the "
+                            "engines of independent patients cannot run; the capacity engine "
+                            "does (microsim.capacity.run.run_service, or `microsim run`)")
     if not model.discrete:
         if engine == "vectorised":
             raise ScenarioError("--engine", "the vectorised engine runs cycle models; this is a "

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from microsim.capacity.run import refuse_options, run_service
 from microsim.cohort.summaries import cohort_trace
 from microsim.binding import bind
 from microsim.results.comparison import Comparison, compare, analytic_counterpart
@@ -29,12 +30,16 @@ class Validation:
 def validate(path: Path, patients: int | None = None, seed: int | None = None,
              strategy: str | None = None, histories: Path | None = None,
              engine: str = "auto") -> Validation:
-    """Simulate the scenario (or one strategy) and compare it with its analytic counterpart."""
+    """Simulate the scenario (or one strategy) and compare it with its analytic counterpart
+    (a service with shared capacity: its queues with queueing theory, a `ServiceResult`)."""
     scenario = read_scenario(path)
     if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
         names = ", ".join(s.name for s in scenario.strategies) or "none"
         raise ScenarioError("--strategy", f"no strategy {strategy!r}; the scenario has: {names}")
     seed = scenario.simulation.seed if seed is None else seed
+    if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
+        refuse_options(engine=engine, histories=histories is not None)
+        return run_service(scenario, seed, patients, [strategy])
     model = bind(scenario, strategy=strategy)
     sim = simulate(model, patients_for(scenario, patients, seed), seed,
                    batch_size=scenario.simulation.batch_size,
@@ -59,13 +64,17 @@ def run_main(path: Path, patients: int | None = None, seed: int | None = None,
              invalid_draws: str | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
     the analytic counterpart, evaluated, and with PSA when `psa` settings are given
-    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws).
+    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws; a service with
+    shared capacity: `microsim.capacity.run.run_service`, a `ServiceResult`).
 
     What can be refused is refused before any work: the engine, the patients, and the PSA
     (its folder of another run, its backend) by running it first; its finished draws stay
     on disk however the rest ends."""
     scenario = read_scenario(path, invalid_draws)
     seed = scenario.simulation.seed if seed is None else seed
+    if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
+        refuse_options(psa=psa is not None, engine=engine)
+        return run_service(scenario, seed, patients)
     choose_engine(bind(scenario), engine)
     people = patients_for(scenario, patients, seed)
     psa_result = None if psa is None else parameter_uncertainty(scenario, seed=seed, **psa)

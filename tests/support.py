@@ -153,6 +153,19 @@ def strategy(name: str, **fields) -> str:
     return _block("strategies", {"name": name, **fields}, array=True)
 
 
+def arrivals(**fields) -> str:
+    return section("arrivals", **fields)
+
+
+def resource(name: str, **fields) -> str:
+    """One [[resources]] entry: a shared resource (capacity, held state, waiting states)."""
+    return _block("resources", {"name": name, **fields}, array=True)
+
+
+def replications(**fields) -> str:
+    return section("replications", **fields)
+
+
 def model_of(text: str):
     """Parse and bind scenario text."""
     return bind(parse_scenario(text))

@@ -215,7 +215,7 @@ def check_population(spec: PopulationSpec) -> None:
     Everything that can be known without reading `spec.file`; the file's columns and
     weights are checked when it is read.
     """
-    if spec.size < 1:
+    if spec.size is not None and spec.size < 1:
         raise ScenarioError("population.size", f"must be at least 1, got {spec.size}")
     taken = {PATIENT}
     for attribute in spec.attributes:
@@ -366,9 +366,10 @@ def scenario_patients(scenario: Scenario, seed: int, ids: np.ndarray) -> pd.Data
 
 
 def patients_for(scenario: Scenario, size: int | None, seed: int) -> pd.DataFrame:
-    """Patients 0..size-1 of a scenario (size: the population's, or DEFAULT_PATIENTS)."""
+    """Patients 0..size-1 of a scenario (size: the population's, or DEFAULT_PATIENTS, also
+    for an open population, which has no size of its own)."""
     spec = scenario.population
-    n = size if size is not None else (spec.size if spec else DEFAULT_PATIENTS)
+    n = size if size is not None else (spec.size if spec and spec.size else DEFAULT_PATIENTS)
     return scenario_patients(scenario, seed, np.arange(n))
 
 

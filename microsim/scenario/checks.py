@@ -335,11 +335,24 @@ def closure(starts: Iterable[str], edges: dict[str, set[str]]) -> set[str]:
     return seen
 
 
-def reachable_from_start(s: Scenario) -> tuple[set[str], list[TransitionSpec]]:
-    moves = [t for t in s.transitions if t.source != t.target and can_happen(s, t)]
+def capacity_moves(s: Scenario) -> list[tuple[str, str]]:
+    """The moves shared resources add: a patient who would enter a state that holds a unit
+    may wait (or be turned away) instead, and waiting patients are admitted (or give up)."""
+    moves = []
+    for r in s.capacity.resources if s.capacity is not None else ():
+        moves += [(r.state, r.waiting[0])] + [(w, r.state) for w in r.waiting]
+        moves += [(r.state, r.turned_away)] if r.turned_away else []
+        moves += [(w, r.leave_to) for w in r.waiting] if r.leave_to else []
+    return moves
+
+
+def reachable_from_start(s: Scenario) -> tuple[set[str], list[tuple[str, str]]]:
+    """The states patients can reach, and the moves (from, to) that can happen."""
+    moves = [(t.source, t.target) for t in s.transitions
+             if t.source != t.target and can_happen(s, t)] + capacity_moves(s)
     forward: dict[str, set[str]] = {}
-    for t in moves:
-        forward.setdefault(t.source, set()).add(t.target)
+    for source, target in moves:
+        forward.setdefault(source, set()).add(target)
     starts = [name for name, share in s.start.shares.items() if share > 0]
     return closure(starts, forward), moves
 
@@ -353,8 +366,8 @@ def check_lifetime(s: Scenario) -> None:
                             "state(s) patients end in as absorbing")
     reachable, moves = reachable_from_start(s)
     backward: dict[str, set[str]] = {}
-    for t in moves:
-        backward.setdefault(t.target, set()).add(t.source)
+    for source, target in moves:
+        backward.setdefault(target, set()).add(source)
     can_end = closure([st.name for st in s.states if st.absorbing], backward)
     for name in s.state_names:
         if name in reachable and name not in can_end:

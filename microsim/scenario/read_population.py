@@ -23,12 +23,15 @@ DERIVED_KEYS = ("name", "from", "edges", "labels")
 MIN_TRUNCATED_MASS = 1e-6  # less than this between lower and upper: nobody can be drawn
 
 
-def read_population(node: Node | None, base: Path) -> PopulationSpec | None:
-    """`base` is the folder a relative `file` is read from (the scenario file's folder)."""
+def read_population(node: Node | None, base: Path, fixed_size: bool = True
+                    ) -> PopulationSpec | None:
+    """`base` is the folder a relative `file` is read from (the scenario file's folder);
+    without a `fixed_size` (an open population, [arrivals]) `size` is optional: the most
+    patients that arrive in one replication."""
     if node is None:
         return None
     node.only(POPULATION_KEYS)
-    size = node.whole("size", minimum=1, maximum=MAX_PATIENTS)
+    size = node.whole("size", REQUIRED if fixed_size else None, minimum=1, maximum=MAX_PATIENTS)
     if node.has("file"):
         for key in ("attributes", "correlation"):
             if node.has(key):

@@ -24,7 +24,8 @@ from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, Eligibil
                    StateSpec, StrategySpec, TableSpec, TimeSpec, TransitionSpec)
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
-                 "discontinuation", "changes", "states", "transitions")
+                 "discontinuation", "changes", "states", "transitions",
+                 "arrivals", "resources")  # the last two: read by read_capacity
 ELIGIBLE_KEYS = ("all", "any")
 NUMBER_TESTS = ("above", "at_least", "below", "at_most")
 LEVEL_TESTS = ("equals", "one_of")
@@ -205,7 +206,7 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
     if not may_be_positive(s, strategy.uptake):
         found.append(f"{prefix}.uptake: is 0, so no one takes the treatment up; the strategy "
                      "runs the model as written")
-    changes = bool(strategy.changes or strategy.transitions)
+    changes = bool(strategy.changes or strategy.transitions or strategy.capacity)
     if strategy.comparator and changes:
         found.append(f"{prefix}: is the comparator but has changes or added transitions; a "
                      "comparator normally runs the model as written (check that this is "

@@ -2,8 +2,8 @@
 
 The first pass walks the document section by section with `Node`s, so every refusal
 carries its field path. Cross-references and whole-model rules (row sums, reachability,
-model kind, attributes) are the second pass, in checks.py (and, for strategies, economics
-and uncertainty, beside their readers).
+model kind, attributes) are the second pass, in checks.py (and, for strategies, economics,
+uncertainty and capacity, beside their readers).
 """
 from __future__ import annotations
 
@@ -17,6 +17,7 @@ from typing import Any
 from .checks import check_scenario, unknown_state
 from .errors import ScenarioError
 from .fields import ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading, show
+from .read_capacity import check_capacity, read_capacity, strategies_with_capacity
 from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
 from .read_population import read_population
@@ -29,7 +30,8 @@ from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, Simulati
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
             "events", "parameters", "tables", "outcomes", "population", "simulation",
-            "strategies", "economics", "uncertainty")
+            "strategies", "economics", "uncertainty",
+            "arrivals", "resources", "replications")  # the last three: microsim.capacity
 TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
@@ -112,17 +114,22 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
         tables=tables,
         events=read_events(doc.nodes("events", None), tables),
         outcomes=read_outcomes(doc.node("outcomes", OUTCOMES_KEYS, default=None)),
-        population=read_population(doc.node("population", None, default=None), base),
+        population=read_population(doc.node("population", None, default=None), base,
+                                   fixed_size=not doc.has("arrivals")),
         simulation=read_simulation(doc.node("simulation", SIMULATION_KEYS, default=None)),
         strategies=read_strategies(doc.nodes("strategies", None), tables, time, read_states),
         economics=read_economics(doc.node("economics", ECONOMICS_KEYS, default=None)),
         uncertainty=read_uncertainty(doc.node("uncertainty", UNCERTAINTY_KEYS, default=None)),
         source=Path(source) if source is not None else None,
     )
+    capacity = read_capacity(doc, base, time)
+    draft = replace(draft, capacity=capacity, strategies=strategies_with_capacity(
+        doc.nodes("strategies", None), draft.strategies, capacity, base))
     if invalid_draws is not None:
         draft = replace(draft, uncertainty=replace(draft.uncertainty, invalid_draws=invalid_draws))
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
+    check_capacity(draft, reading)
     uses = reading.references + check_row_structure(draft)
     check_row_bounds(draft)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))

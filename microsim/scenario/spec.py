@@ -277,6 +277,7 @@ class StrategySpec:
     states: tuple[StateSpec, ...] = ()  # added states
     transitions: tuple[TransitionSpec, ...] = ()  # added transitions
     while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
+    capacity: "CapacitySpec | None" = None  # its arrivals and resources, when it changes them
 
 
 @dataclass(frozen=True)
@@ -323,6 +324,7 @@ class Scenario:
     strategies: tuple[StrategySpec, ...] = ()  # the first with comparator = true compares
     economics: EconomicsSpec = EconomicsSpec()
     uncertainty: UncertaintySpec = UncertaintySpec()
+    capacity: "CapacitySpec | None" = None  # arrivals and shared resources (microsim.capacity)
     source: Path | None = None
     warnings: tuple[str, ...] = ()
     uses: tuple[Reference, ...] = ()  # every parameter or table name in a number slot, with
@@ -339,3 +341,64 @@ class Scenario:
     def discrete(self) -> bool:
         """True for per-cycle probability models, False for rate/hazard models."""
         return any(t.probability is not None for t in self.transitions)
+
+
+# -- capacity: arrivals, shared resources and replications (run by microsim.capacity) --------
+
+@dataclass(frozen=True)
+class ArrivalsSpec:
+    """An open population: patients enter over calendar time, each a new patient drawn from
+    the population section and started by [start]. Either `rate` (patients per time unit: a
+    number, a parameter, or a table by time for a rate by period) or `times` (the arrival
+    times read from `file`, sorted)."""
+    rate: Ref | None = None
+    file: Path | None = None
+    times: tuple[float, ...] = ()
+
+
+@dataclass(frozen=True)
+class PrioritySpec:
+    """Who is served first: patients at earlier `levels` of `attribute`, or in earlier
+    waiting `states`; ties (and everyone without a rule) first come, first served. With
+    `preemptive`, a patient of a higher class takes the unit of the lowest class in service."""
+    attribute: str | None = None
+    levels: tuple[str, ...] = ()
+    states: tuple[str, ...] = ()
+    preemptive: bool = False
+
+
+@dataclass(frozen=True)
+class ResourceSpec:
+    """A shared resource (beds, slots, chairs): each patient in `state` holds one unit; a
+    patient who would enter it while none is free waits in `waiting[0]` (the other waiting
+    states are where waiting patients can move on to)."""
+    name: str
+    label: str
+    capacity: Ref  # units: a whole number, a parameter, or a table by time
+    state: str
+    waiting: tuple[str, ...]
+    cost: Ref = 0.0  # money per unit of capacity per time unit, used or not
+    priority: PrioritySpec | None = None  # None: first come, first served
+    queue_limit: int | None = None  # at most this many waiting; later patients are turned away
+    turned_away: str | None = None  # where they go instead
+    patience: float | None = None  # a patient waiting this long leaves the queue ...
+    leave_to: str | None = None  # ... for this state
+    wait_target: float | None = None  # report the share waiting longer than this
+
+
+@dataclass(frozen=True)
+class ReplicationsSpec:
+    """Independent runs of the service, and the time at their start left out of statistics
+    (None: estimated from the run by MSER-5)."""
+    count: int = 10
+    warm_up: float | None = 0.0
+
+
+@dataclass(frozen=True)
+class CapacitySpec:
+    resources: tuple[ResourceSpec, ...] = ()
+    arrivals: ArrivalsSpec | None = None  # None: a closed cohort, everyone at time 0
+    replications: ReplicationsSpec = ReplicationsSpec()
+
+    def resource(self, name: str) -> ResourceSpec:
+        return next(r for r in self.resources if r.name == name)
