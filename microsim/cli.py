@@ -147,8 +147,16 @@ def command_summary(args) -> int:
     return 0
 
 
+PSA_OPTIONS = ("draws", "psa_patients", "workers", "backend", "address", "invalid_draws")
+
+
 def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
+    if not args.psa:
+        given = next((name for name in PSA_OPTIONS if getattr(args, name) is not None), None)
+        if given is not None:
+            option = "--" + given.replace("_", "-")
+            raise ScenarioError(option, "only acts on the PSA; add --psa, or leave it out")
     from microsim.capacity.present import print_service, service_summary
     from microsim.capacity.run import ServiceResult
     from microsim.present import print_summary, summary
@@ -158,8 +166,9 @@ def command_run(args) -> int:
     psa = None
     if args.psa:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
-               "patients": args.psa_patients, "workers": args.workers, "backend": args.backend,
-               "address": args.address, "progress": not args.json}
+               "patients": args.psa_patients, "workers": args.workers or 1,
+               "backend": args.backend or "processes", "address": args.address,
+               "progress": not args.json}
     result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws)
     tables = dict(result.tables)
     if isinstance(result, ServiceResult):  # shared capacity: its own summary
@@ -386,8 +395,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
     run.add_argument("--draws", type=COUNT, help="PSA outer draws (default: the scenario's)")
     run.add_argument("--psa-patients", type=COUNT, help="PSA inner patients per draw")
-    run.add_argument("--workers", type=COUNT, default=1, help="PSA worker processes (default 1)")
-    run.add_argument("--backend", choices=("processes", "dask"), default="processes",
+    run.add_argument("--workers", type=COUNT, help="PSA worker processes (default 1)")
+    run.add_argument("--backend", choices=("processes", "dask"),
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")
     run.add_argument("--address", help="address of a running Dask scheduler")
     run.add_argument("--invalid-draws", choices=INVALID_DRAWS,

@@ -260,6 +260,10 @@ def test_demo_commands_run_and_write(command, tables, tmp_path, capsys):
 # ------------------------------------------------------- the command line's own refusals
 
 COMMAND_LINES = {  # argv after the command name, the start of the one line on stderr
+    "draws-without-psa": (["run", WARD, "--draws", "5"],
+                          "error: --draws: only acts on the PSA; add --psa, or leave it out"),
+    "workers-without-psa": (["run", WARD, "--workers", "2"],
+                            "error: --workers: only acts on the PSA; add --psa"),
     "patients-not-a-number": (["run", WARD, "--patients", "abc"],
                               "error: --patients: must be a whole number, got 'abc'"),
     "rows-not-whole": (["trace", WARD, "--rows", "1.5"],

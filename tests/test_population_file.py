@@ -87,6 +87,10 @@ DEFECTS = {
         [], [("b,55,", 'b,"12,5",')], "population.file",
         "column 'age' of people.csv holds numbers, but data row 4 has '12,5'; write a finite "
         "number there (with a decimal point, like 12.5)"),
+    "unquoted decimal comma": (
+        [], [("b,55,", "b,55,5,")], "population.file",
+        "cannot read people.csv: data row 4 has 5 values but the header names 4 columns; a "
+        "decimal comma splits a number in two (write 0.77, not 0,77)"),
 }
 
 
@@ -199,9 +203,9 @@ USES = [
     ("an infinite number", [], [("b,65,", "b,inf,")], "population.file",
      "column 'age' of people.csv holds numbers, but data row 2 has 'inf'"),
     ("an unquoted decimal comma", [], [("b,65,", "b,6,5,")], "population.file",
-     "cannot read people.csv: Error tokenizing data"),
+     "cannot read people.csv: data row 2 has 5 values but the header names 4 columns"),
     ("an unquoted decimal comma in the first row", [], [("a,40,", "a,4,0,")], "population.file",
-     "cannot read people.csv: Length of header or names does not match length of data"),
+     "cannot read people.csv: data row 1 has more values than the header names columns"),
     ("no data rows", [], [(PEOPLE[PEOPLE.index("\n") + 1:], "")], "population.file",
      "people.csv has no data rows"),
 ]

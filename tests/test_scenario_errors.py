@@ -322,6 +322,10 @@ CASES = [
     # outcomes
     ("unknown correction", "discrete", [("discount_costs = 0.035", 'correction = "half"')],
      "outcomes.correction", 'must be one of "none", "half-cycle", "trapezoidal", "simpson"'),
+    ("simpson with an odd number of cycles", "discrete",
+     [("discount_costs = 0.035", 'correction = "simpson"'), ("horizon = 10", "horizon = 11")],
+     "outcomes.correction", '"simpson" needs an even number of cycles, but time.horizon gives '
+     '11; make it 12 cycles (12 years) or use "trapezoidal"'),
     ("negative discount rate", "discrete", [("discount_costs = 0.035", "discount_costs = -0.01")],
      "outcomes.discount_costs", "must be at least 0, got -0.01"),
     # rows of per-cycle probabilities and the probability rule

@@ -34,9 +34,21 @@ def check_scenario(s: Scenario, reading: Reading) -> list[str]:
     if s.discrete:
         for state in s.states:
             check_row(s, state.name)
+        check_correction(s)
     if s.time.horizon is None:
         check_lifetime(s)
     return warnings(s, reading)
+
+
+def check_correction(s: Scenario) -> None:
+    """Simpson's 1/3 rule weighs the cycle points in pairs: it needs an even number of
+    cycles (Elbasha & Chhatwal 2016)."""
+    n = s.time.n_cycles
+    if s.outcomes.correction == "simpson" and n % 2:
+        length = "horizon" if s.time.horizon is not None else "lifetime_cap"
+        raise ScenarioError("outcomes.correction", f'"simpson" needs an even number of cycles, '
+                            f"but time.{length} gives {n}; make it {n + 1} cycles "
+                            f'({show((n + 1) * s.time.cycle)} {s.time.unit}) or use "trapezoidal"')
 
 
 def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:

@@ -19,6 +19,8 @@ process and reads it again only when it changes on disk.
 """
 from __future__ import annotations
 
+import re
+
 import warnings
 from dataclasses import dataclass
 from functools import lru_cache
@@ -146,7 +148,24 @@ def raw_table(path: Path) -> pd.DataFrame:
                 return pd.read_csv(path, dtype=str, keep_default_na=False, index_col=False)
             return pd.read_parquet(path)
     except Exception as error:  # any failure of the third-party reader is a bad file
-        raise ScenarioError(FILE, f"cannot read {path.name}: {first_line(error)}") from None
+        raise ScenarioError(FILE, f"cannot read {path.name}: {reading_problem(error)}") from None
+
+
+TOKENIZING = re.compile(r"Expected (\d+) fields in line (\d+), saw (\d+)")
+
+
+def reading_problem(error: Exception) -> str:
+    """What a reader's failure means for the person who wrote the file: a row with more
+    values than the header is named by its data row (a decimal comma splits a number)."""
+    hint = ("a decimal comma splits a number in two (write 0.77, not 0,77) and a text with a "
+            'comma needs quotes ("North, upper")')
+    found = TOKENIZING.search(str(error))
+    if found:
+        expected, line, saw = map(int, found.groups())
+        return f"data row {line - 1} has {saw} values but the header names {expected} columns; {hint}"
+    if "Length of header or names does not match length of data" in str(error):
+        return f"data row 1 has more values than the header names columns; {hint}"
+    return first_line(error)
 
 
 def weight_values(table: pd.DataFrame, column: str, where: str) -> np.ndarray:
