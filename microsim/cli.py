@@ -19,7 +19,7 @@ from pathlib import Path
 from microsim import CAUTION
 from microsim.present import show
 from microsim.scenario import ScenarioError, read_scenario
-from microsim.scenario.fields import MAX_PATIENTS
+from microsim.scenario.fields import did_you_mean, MAX_PATIENTS
 from microsim.store import OutputError
 from microsim.scenario.spec import INVALID_DRAWS
 from microsim.decision.measures import MEASURES
@@ -327,10 +327,20 @@ ARGPARSE_WORDING = (
 )
 
 
+CHOICE = re.compile(r"argument (?P<what>[^:]+): invalid choice: '(?P<given>[^']*)' "
+                    r"\(choose from (?P<choices>.+)\)")
+
+
 class Parser(argparse.ArgumentParser):
     """argparse whose refusals are one line, like every other refusal, not the usage text."""
 
     def error(self, message: str):
+        choice = CHOICE.fullmatch(message)
+        if choice:
+            options = re.findall(r"'([^']*)'", choice["choices"])
+            raise ScenarioError(choice["what"], f"no {choice['given']!r}"
+                                f"{did_you_mean(choice['given'], options)}; choose from "
+                                f"{', '.join(options)}")
         for pattern, problem in ARGPARSE_WORDING:
             match = re.fullmatch(pattern, message)
             if match:

@@ -19,6 +19,7 @@ from microsim.decision.strategies import Decision, decide, run_strategies
 from microsim.patients.population import patients_for
 from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
 from microsim.scenario import Scenario, ScenarioError, read_scenario
+from microsim.scenario.fields import did_you_mean
 from microsim.simulation import Simulation, choose_engine, report_grid, simulate
 
 @dataclass(frozen=True)
@@ -35,7 +36,9 @@ def validate(path: Path, patients: int | None = None, seed: int | None = None,
     scenario = read_scenario(path)
     if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
         names = ", ".join(s.name for s in scenario.strategies) or "none"
-        raise ScenarioError("--strategy", f"no strategy {strategy!r}; the scenario has: {names}")
+        raise ScenarioError("--strategy", f"no strategy {strategy!r}"
+                            f"{did_you_mean(strategy, [s.name for s in scenario.strategies])}; "
+                            f"the scenario has: {names}")
     seed = scenario.simulation.seed if seed is None else seed
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(engine=engine, histories=histories is not None)

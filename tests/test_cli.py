@@ -275,9 +275,10 @@ COMMAND_LINES = {  # argv after the command name, the start of the one line on s
                        "error: --bogus: unknown option or extra argument; see "
                        "`microsim run --help`"),
     "unknown-choice": (["validate", WARD, "--engine", "fast"],
-                       "error: --engine: invalid choice: 'fast'"),
+                       "error: --engine: no 'fast'; choose from auto, simpy, vectorised"),
+    "command-typo": (["runn", WARD], "error: COMMAND: no 'runn' (did you mean 'run'?); choose from"),
     "missing-scenario": (["run"], "error: scenario: missing; see `microsim run --help`"),
-    "unknown-command": (["frobnicate", WARD], "error: COMMAND: invalid choice: 'frobnicate'"),
+    "unknown-command": (["frobnicate", WARD], "error: COMMAND: no 'frobnicate'; choose from check"),
 }
 
 
@@ -486,7 +487,7 @@ def test_a_psa_resumed_with_another_seed_is_refused_before_any_work(tmp_path, ca
     capsys.readouterr()
     before = snapshot(tmp_path)
     assert main([*command, "--seed", "2"]) == 2
-    assert "was written by a different run" in refused(capsys.readouterr(), "error: psa: ")
+    assert "holds draws of a different PSA (seed 1 there, 2 now)" in refused(capsys.readouterr(), "error: psa: ")
     assert snapshot(tmp_path) == before
 
 

@@ -120,7 +120,7 @@ def test_a_folder_of_another_seed_is_refused_and_left_as_it_was(tmp_path):
     assert json.loads((folder / "psa.json").read_text())["fingerprint"]["seed"] == 1
     with pytest.raises(ScenarioError) as caught:
         run(tmp_path, seed=2)
-    assert caught.value.path == "psa" and "different run" in caught.value.message
+    assert caught.value.path == "psa" and "different PSA" in caught.value.message
     assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == before
 
 

@@ -227,7 +227,7 @@ def test_a_folder_from_another_run_is_refused(draws, tmp_path):
                                (FINGERPRINT, parameter_draws(PARAMETERS, SEED + 1, 12))):
         with pytest.raises(ScenarioError) as caught:
             run_draws(counting, table, tmp_path, fingerprint=fingerprint)
-        assert caught.value.path == "psa" and "different run" in caught.value.message
+        assert caught.value.path == "psa" and "different PSA" in caught.value.message
     assert calls(log_dir) == []
 
 

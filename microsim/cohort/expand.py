@@ -187,7 +187,8 @@ def expand(model: BoundModel) -> Expansion:
                                "(continuous in a rate model: no finite expansion)")
         if semi_markov(model, risk):
             reasons.append(f"'{risk.name}' has a {risk.family} hazard on the time since "
-                           f"entering a state that patients can re-enter (semi-Markov)")
+                           f"entering '{model.states[risk.source]}', a state patients enter "
+                           "after the start (semi-Markov)")
     counters = tuple(Counter(after, cap) for after, cap in sorted(caps.items()))
     recencies = tuple(Recency(after, cap) for after, cap in sorted(windows.items()))
     durations = tuple(tunnel_length(model.risks_from(i), model.cycle) if model.discrete else 1

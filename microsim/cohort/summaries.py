@@ -140,7 +140,9 @@ def closed_form_absorption(model: BoundModel, exp: Expansion, matrix: np.ndarray
                "unlimited horizon" + ("; whole cycles counted, the start cycle included, no "
                                       "within-cycle correction)" if model.discrete else ")"))
     try:
-        a = absorption(matrix) if model.discrete else absorption_continuous(matrix)
+        names = [model.states[i] for i, *_ in exp.expanded]  # expanded states by their state
+        a = (absorption(matrix, names) if model.discrete
+             else absorption_continuous(matrix, names))
     except ValueError as why:
         return Part("absorption", heading, None, str(why))
     scale = model.cycle if model.discrete else 1.0

@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .checks import TOLERANCE, as_generator, as_start, as_stochastic
-from .steady import closed_classes
+from .steady import closed_classes, describe_states
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,8 +55,7 @@ def _split_states(matrix: np.ndarray, absorbing_mask: np.ndarray, names) -> tupl
         raise ValueError("the chain has no absorbing state")
     trapped = [c for c in closed_classes(matrix) if not absorbing_mask[c].all()]
     if trapped:
-        label = (lambda i: str(names[i])) if names is not None else str
-        listed = "; ".join("{" + ", ".join(label(i) for i in c) + "}" for c in trapped)
+        listed = "; ".join(describe_states(c, names) for c in trapped)
         raise ValueError(f"states {listed} form a closed class with no absorbing state: "
                          "the time to absorption from them is infinite")
     return np.flatnonzero(~absorbing_mask), np.flatnonzero(absorbing_mask)

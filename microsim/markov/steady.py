@@ -84,8 +84,10 @@ def period(matrix, members) -> int:
     return result
 
 
-def _describe(members: np.ndarray, names) -> str:
-    labels = [str(names[i]) if names is not None else str(i) for i in members]
+def describe_states(members: np.ndarray, names) -> str:
+    """A set of states in words: their names, each once (several expanded states can carry
+    one model state's name), or their indices without names."""
+    labels = dict.fromkeys(str(names[i]) if names is not None else str(i) for i in members)
     return "{" + ", ".join(labels) + "}"
 
 
@@ -103,7 +105,7 @@ def _solve_on(members: np.ndarray, balance: np.ndarray, size: int) -> np.ndarray
 def _single_closed_class(matrix: np.ndarray, names) -> np.ndarray:
     closed = closed_classes(matrix)
     if len(closed) > 1:
-        listed = ", ".join(_describe(c, names) for c in closed)
+        listed = ", ".join(describe_states(c, names) for c in closed)
         raise NoUniqueSteadyState(
             f"no unique steady state: the chain has {len(closed)} closed classes ({listed}); "
             "each has its own steady state and where the cohort ends depends on the start "
@@ -125,7 +127,7 @@ def steady_state(matrix, names=None, periodic_ok: bool = False) -> np.ndarray:
     cycle = period(matrix, members)
     if cycle > 1 and not periodic_ok:
         raise NoUniqueSteadyState(
-            f"the closed class {_describe(members, names)} is periodic with period {cycle}: "
+            f"the closed class {describe_states(members, names)} is periodic with period {cycle}: "
             "the distribution keeps cycling and does not converge. A stationary vector (the "
             "long-run average share) still exists: read it from this error's `stationary` "
             "or pass periodic_ok=True",

@@ -49,9 +49,15 @@ def describe(value: Any) -> str:
 
 
 def closest(word: str, choices: Iterable[str]) -> str | None:
-    """The choice closest to `word` (difflib, ignoring case, so 'B' finds 'b'), if any."""
+    """The choice closest to `word`, ignoring case (so 'B' finds 'b'): the only choice that
+    starts with it or contains it ('West' finds 'West Side', 'inhaler' finds
+    'targeted_inhaler'), else the nearest by difflib, if any is near."""
     folded = {choice.lower(): choice for choice in reversed(list(choices))}  # first wins
-    close = difflib.get_close_matches(word.lower(), list(folded), n=1)
+    key = word.lower()
+    for found in ([c for c in folded if c.startswith(key)], [c for c in folded if key in c]):
+        if key and len(found) == 1:
+            return folded[found[0]]
+    close = difflib.get_close_matches(key, list(folded), n=1)
     return folded[close[0]] if close else None
 
 

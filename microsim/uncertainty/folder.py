@@ -45,9 +45,11 @@ def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> list[Path]:
     path = run_dir / RECORD
     created = missing_folders(run_dir / DRAWS)
     if path.exists():
-        if json.loads(path.read_text()) != record:
-            raise ScenarioError("psa", f"{run_dir} was written by a different run; use a new "
-                                       "output folder or remove it")
+        found = json.loads(path.read_text())
+        if found != record:
+            raise ScenarioError("psa", f"{run_dir} holds draws of a different PSA "
+                                f"({differences(found, record)}); run with the same settings "
+                                "to resume it, or use another --out (or remove the folder)")
     else:
         run_dir.mkdir(parents=True, exist_ok=True)
         write_atomically(path, lambda p: p.write_text(json.dumps(record, indent=2) + "\n"))
@@ -55,6 +57,16 @@ def claim(run_dir: Path, fingerprint: dict, draws: pd.DataFrame) -> list[Path]:
     for leftover in (run_dir / DRAWS).glob(".*.tmp"):  # from a run killed mid-write
         leftover.unlink(missing_ok=True)
     return created
+
+
+def differences(found: dict, wanted: dict) -> str:
+    """Which settings of a PSA folder differ from this run's, in words."""
+    old, new = found.get("fingerprint", {}), wanted["fingerprint"]
+    changed = [f"{key} {old.get(key)!r} there, {new[key]!r} now" for key in new
+               if old.get(key) != new[key]]
+    if not changed and found.get("parameter_draws_sha256") != wanted["parameter_draws_sha256"]:
+        changed = ["the parameters' values or distributions"]
+    return "; ".join(changed) or "its record"
 
 
 def release(run_dir: Path, created: list[Path]) -> None:

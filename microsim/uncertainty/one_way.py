@@ -21,6 +21,7 @@ from microsim.decision.strategies import COST, EFFECT, strategy_names
 from microsim.patients.treatment import patient_multipliers
 from microsim.results.outcomes import outcome_values
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.fields import did_you_mean
 from microsim.scenario.spec import ParameterSpec, Scenario
 from microsim.simulation import simulate
 from microsim.decision.measures import MEASURES, incremental, per_patient
@@ -116,7 +117,8 @@ def tornado_strategies(scenario: Scenario, strategy: str | None,
         return measure, allowed, comparator
     if strategy not in allowed:
         why = (f"{strategy!r} is the comparator; an increment against itself is 0"
-               if strategy == comparator else f"no strategy {strategy!r}")
+               if strategy == comparator else f"no strategy {strategy!r}"
+               f"{did_you_mean(strategy, allowed)}")
         raise ScenarioError("--strategy", f"{why}; choose one of: {', '.join(allowed)}")
     return measure, [strategy], comparator
 
