@@ -136,8 +136,10 @@ def sequence(seed: int, patient_id: int, purpose: str, start: int, n: int) -> np
     patient's draws costs microseconds instead of a vectorised call's fixed overhead."""
     blocks_before, skip = divmod(operator.index(start), 4)
     counter = (operator.index(patient_id) << 64) + blocks_before - 1
+    # the key as uint64 words: numpy reads a tuple of Python ints through float64 when one
+    # of them needs all 64 bits, which rounds the purpose id
     bits = np.random.Philox(counter=counter % 2**256,
-                            key=(int(_as_seed(seed)), purpose_id(purpose)))
+                            key=np.array([_as_seed(seed), purpose_id(purpose)], np.uint64))
     return to_open_unit(bits.random_raw(skip + n)[skip:])
 
 
