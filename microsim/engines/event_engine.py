@@ -124,10 +124,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     """Run one batch of patients through the continuous-time model with SimPy."""
     batch = Batch(model, mult, patient_ids, seed)
     window = mult.window
-    risks = [plan.RiskView(risk, float(batch.slopes[r]),
-                           *((window.on_factor[r], window.off_factor[r]) if batch.windowed(r)
-                             else (None, None)))
-             for r, risk in enumerate(model.risks)]
+    risks = plan.risk_views(model, mult)
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
     targets = [risk.source if risk.target is None else risk.target for risk in model.risks]
