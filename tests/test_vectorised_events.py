@@ -25,7 +25,7 @@ from microsim.patients.treatment import patient_multipliers
 from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulation import simulate
-from support import (after, attribute, effect, event, horizon, model_of, move, nested,
+from support import (after, attribute, effect, event, horizon, move, nested,
                      population, rate, scenario_text, start, state, strategy, table,
                      transition)
 
@@ -172,7 +172,8 @@ def both_engines(model, ids, seed):
     patients = (pd.DataFrame({PATIENT: ids}) if spec is None
                 else draw_population(spec, seed, ids))
     mult = patient_multipliers(model, patients, seed)
-    return simulate_events(model, mult, ids, seed), simulate_events_vectorised(model, mult, ids, seed), mult
+    return (simulate_events(model, mult, ids, seed),
+            simulate_events_vectorised(model, mult, ids, seed), mult)
 
 
 def assert_same_histories(expected, got, rtol):
@@ -236,9 +237,9 @@ def test_long_stays_use_every_window_of_draws():
     expected, got, _ = both_engines(model, IDS[:400], 7)
     assert_same_histories(expected, got, CLOSED)
     assert_every_risk_happens(model, got)
-    # the event engine's 'within' window makes about two rounds a tick: past 4 * DEPTH
-    # rounds the draws come from `uniforms`, before that from `block`
-    assert np.bincount(got.patient).max() > 2 * DEPTH
+    # every record is a round of its own (a tick's 'within' window adds another): past
+    # 4 * DEPTH rounds in a state the draws come from `uniforms`, before that from `block`
+    assert np.bincount(got.patient).max() > 4 * DEPTH
 
 
 def test_a_state_with_no_way_out_keeps_its_patients_to_the_horizon():
@@ -249,6 +250,26 @@ def test_a_state_with_no_way_out_keeps_its_patients_to_the_horizon():
     starts = got.source < 0
     assert np.any(got.target[starts] == stuck)
     assert not np.any(got.source == stuck)
+
+
+@pytest.mark.parametrize("text", [
+    scenario_text(horizon(10), start(a=1), state("a"), state("b"), state("dead", absorbing=True),
+                  rate("a", "b", 0.0), transition("a", "dead", hazard=weibull(1.5, 5)),
+                  rate("b", "dead", 0.1)),
+    scenario_text(horizon("lifetime"), start(a=1, age=70), state("a"),
+                  state("dead", absorbing=True),
+                  transition("a", "dead", hazard=gompertz(0.01, 0.09), clock="age"),
+                  event("visit", ["a"], hazard=weibull(0.5, 1))),
+    scenario_text(horizon(1), start(a=1), state("a"), state("b"), state("dead", absorbing=True),
+                  rate("a", "b", 60.0), rate("b", "a", 90.0), rate("a", "dead", 0.5)),
+], ids=["a-rate-of-zero", "lifetime", "fast-rates"])
+def test_edges(text):
+    model = bound(text)
+    expected, got, _ = both_engines(model, IDS[:500], 15)
+    assert_same_histories(expected, got, CLOSED)
+    if model.risks[0].params.get("rate") == 0.0:
+        assert 0 not in got.risk and 1 in got.risk  # a rate of 0 never happens
+    assert_same_histories(*both_engines(model, IDS[:0], 15)[:2], CLOSED)  # no patients
 
 
 def test_everything_at_once():
