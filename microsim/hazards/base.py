@@ -276,8 +276,10 @@ def _newton(family, target, now, growth, top, origin, certain):
     n = target.size
     low, high, w, value = (np.empty(n) for _ in range(4))
     reached, rough = np.empty(n, bool), np.empty(n, bool)
-    for g, u in {(int(a), int(b)) for a, b in zip(graded, uniform)}:
-        rows = np.flatnonzero((graded == g) & (uniform == u))
+    tier = graded * (_UNIFORM[-1] + 1) + uniform  # one group of elements per pair
+    for key in np.unique(tier).tolist():
+        rows = np.flatnonzero(tier == key)
+        g, u = divmod(key, _UNIFORM[-1] + 1)
         points = _pieces(top[rows], origin[rows], g, u)
         clock = family.time_to_reach_array(points, now[rows, None])
         rough[rows] = np.abs(growth[rows]) * np.diff(clock, axis=1).max(axis=1) > _STEP
