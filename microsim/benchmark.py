@@ -8,6 +8,10 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - cycle engines: the SimPy cycle engine's patient-cycles per second over bare timeouts per
   second, and the vectorised cycle engine's over the SimPy one's (their histories are
   identical, draw for draw);
+- event engines: the SimPy event engine's time over the vectorised event engine's on the
+  same rate model, patients and seed (the same records), for Weibull hazards with
+  covariates and memory, and for the same with attained age acting on the Weibull hazards
+  (a numerical root per draw);
 - common random numbers: the standard error of incremental QALYs on the demo scenario
   with shared draws, over the same with independent draws for the two strategies.
 """
@@ -69,6 +73,101 @@ from = "ill"
 to = "dead"
 rate = 0.05
 """
+
+
+# Weibull progression and recovery by time in state, covariates, count memory, and flares
+# whose effect wears off ('within' memory: change points); mortality by attained age has a
+# closed form (Gompertz and constant bases). AGE_ON_WEIBULL adds attained age to both
+# Weibull hazards, which then need a numerical root for every draw.
+RATE_BENCH_MODEL = """
+title = "benchmark: a relapsing condition with Weibull sojourns, covariates and memory"
+provenance = "All numbers are invented for benchmarking."
+[time]
+unit = "years"
+horizon = 40
+[start]
+shares = { well = 1.0 }
+[[states]]
+name = "well"
+[[states]]
+name = "ill"
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "ill"
+hazard = { family = "weibull", shape = 1.3, scale = 6 }
+effects = [{ attribute = "diabetes", hazard_ratio = 1.5 },
+           { attribute = "sex", level = "male", hazard_ratio = 1.2 }AGE_ON_WEIBULL]
+memory = [{ after = "flare", multipliers = [1, 1.3, 1.8] }]
+[[transitions]]
+from = "ill"
+to = "well"
+hazard = { family = "weibull", shape = 0.8, scale = 2 }
+effects = [{ attribute = "diabetes", hazard_ratio = 0.8 }AGE_ON_WEIBULL]
+memory = [{ after = "ill", multipliers = [1, 1, 0.8, 0.6] }]
+[[transitions]]
+from = "well"
+to = "dead"
+hazard = { family = "gompertz", rate = 0.002, shape = 0.05 }
+clock = "since_start"
+effects = [{ attribute = "age", hazard_ratio = 1.05, centre = 60 }]
+[[transitions]]
+from = "ill"
+to = "dead"
+rate = 0.05
+effects = [{ attribute = "age", hazard_ratio = 1.03, centre = 60 },
+           { attribute = "diabetes", hazard_ratio = 1.4 }]
+[[events]]
+name = "flare"
+states = ["well", "ill"]
+rate = 0.6
+memory = [{ after = "flare", within = 0.5, multiplier = 2 }]
+[population]
+size = 5000
+[[population.attributes]]
+name = "age"
+distribution = "normal"
+mean = 60
+sd = 9
+lower = 35
+upper = 90
+[[population.attributes]]
+name = "sex"
+distribution = "categorical"
+levels = ["female", "male"]
+shares = [0.5, 0.5]
+[[population.attributes]]
+name = "diabetes"
+distribution = "yesno"
+prevalence = 0.3
+"""
+AGE_ON_WEIBULL = ', { attribute = "age", hazard_ratio = 1.03, centre = 60 }'
+
+
+def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict:
+    """Medians over interleaved repeats: the SimPy event engine's time over the vectorised
+    one's, both given the same model, multipliers, patient ids and seed in one batch."""
+    from microsim.engines.vectorised_events import simulate_events_vectorised
+    from microsim.patients.population import draw_population
+    from microsim.patients.treatment import patient_multipliers
+    text = RATE_BENCH_MODEL.replace("AGE_ON_WEIBULL", AGE_ON_WEIBULL if attained_age else "")
+    model = bind(parse_scenario(text))
+    ids = np.arange(patients)
+    mult = patient_multipliers(model, draw_population(model.scenario.population, 1, ids), 1)
+    ratios, vectorised = [], []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        h = event_engine.simulate_events(model, mult, ids, seed=1)
+        middle = time.perf_counter()
+        simulate_events_vectorised(model, mult, ids, seed=1)
+        ended = time.perf_counter()
+        ratios.append((middle - started) / (ended - middle))
+        vectorised.append(ended - middle)
+    records = int(np.sum(h.risk >= 0))
+    return {"ratio": float(np.median(ratios)), "records": records,
+            "vectorised": records / float(np.median(vectorised))}
 
 
 def bare_single(n: int) -> float:
@@ -176,6 +275,13 @@ def main(quick: bool = False) -> int:
           f"bare single-process SimPy {c['vs_single']:.2f}")
     print(f"Vectorised cycle engine (same histories): {c['vectorised']:,.0f} patient-cycles/s;"
           f" {c['speedup']:.1f} x the SimPy cycle engine")
+    for attained_age, patients in ((False, 1000 if quick else 5000), (True, 100 if quick else 400)):
+        v = event_engines_ratio(patients, repeats=1 if quick else 3, attained_age=attained_age)
+        what = ("attained age on the Weibull hazards too (a numerical root per draw)"
+                if attained_age else "Weibull hazards, covariates and memory")
+        print(f"Vectorised event engine (same records), {what}: {v['vectorised']:,.0f} "
+              f"transitions/s over {v['records']:,}; {v['ratio']:.1f} x the SimPy event engine "
+              f"(target >= 20)")
     for name, ratio in crn_ratio(patients=500 if quick else 2000).items():
         print(f"Common random numbers, {name}: SE of incremental QALYs is {ratio:.2f} x that "
               f"with independent streams (variance x {ratio ** 2:.2f})")

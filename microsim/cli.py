@@ -370,9 +370,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     def engine_option(sub):
         sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
-                         help="auto (default): vectorised for cycle models, SimPy events for "
-                              "rate models; simpy: the SimPy engine for either (cycle models: "
-                              "identical histories, about ten times slower)")
+                         help="auto (default) or vectorised: the vectorised engine for either "
+                              "model kind; simpy: the SimPy engine for either, the reference "
+                              "(identical histories for cycle models, the same records for "
+                              "rate models; several times slower)")
 
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")

@@ -20,6 +20,7 @@ from microsim.binding import BoundModel
 from microsim.patients.multipliers import Multipliers
 from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
+from microsim.engines.vectorised_events import simulate_events_vectorised
 from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
 from microsim.results.outcomes import Exposure
 from microsim.patients.population import PATIENT
@@ -57,9 +58,10 @@ ENGINES = ("auto", "simpy", "vectorised")
 
 
 def choose_engine(model: BoundModel, engine: str):
-    """auto: the vectorised cycle engine for cycle models (its histories are identical to
-    the SimPy cycle engine's, draw for draw, and it is about ten times faster), the SimPy
-    event engine for rate models; simpy: the SimPy engine of the model's kind."""
+    """auto (and vectorised): the vectorised engine of the model's kind, simpy: the SimPy
+    engine of the model's kind, the readable reference. For cycle models the two give
+    identical histories, draw for draw; for rate models the same records, with times equal
+    within floating-point tolerance (`microsim.engines.vectorised_events`)."""
     if engine not in ENGINES:
         raise ScenarioError("--engine", f"must be one of {', '.join(ENGINES)}, got {engine!r}")
     if model.scenario.capacity is not None:  # patients who share capacity are not independent
@@ -67,12 +69,9 @@ def choose_engine(model: BoundModel, engine: str):
                             "patients here share capacity or arrive over time, which the "
                             "engines of independent patients cannot run; the capacity engine "
                             "does (microsim.capacity.run.run_service, or `microsim run`)")
-    if not model.discrete:
-        if engine == "vectorised":
-            raise ScenarioError("--engine", "the vectorised engine runs cycle models; this is a "
-                                "rate model (use auto or simpy)")
-        return simulate_events
-    return simulate_cycles if engine == "simpy" else simulate_cycles_vectorised
+    if engine == "simpy":
+        return simulate_cycles if model.discrete else simulate_events
+    return simulate_cycles_vectorised if model.discrete else simulate_events_vectorised
 
 
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,

@@ -491,10 +491,12 @@ def test_a_psa_resumed_with_another_seed_is_refused_before_any_work(tmp_path, ca
     assert snapshot(tmp_path) == before
 
 
-def test_an_engine_the_model_cannot_use_is_refused_before_the_psa(tmp_path, capsys):
-    assert main(["run", str(WARD), "--psa", "--draws", "2", "--engine", "vectorised",
+def test_an_engine_the_model_cannot_use_is_refused_before_any_work(tmp_path, capsys):
+    service = ROOT / "scenarios" / "fenmoor_joint_waiting.toml"
+    assert main(["run", str(service), "--engine", "vectorised",
                  "--out", str(tmp_path / "out")]) == 2
-    refused(capsys.readouterr(), "error: --engine: the vectorised engine runs cycle models")
+    refused(capsys.readouterr(), "error: --engine: patients who share capacity run on the "
+                                 "SimPy capacity engine")
     assert list(tmp_path.iterdir()) == []
 
 

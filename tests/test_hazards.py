@@ -14,6 +14,7 @@ from scipy import integrate, special, stats
 
 from microsim.hazards import (ConstantHazard, GompertzHazard, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard, solve_growing_numerically)
+from microsim.hazards.base import solve_growing_array
 from support import KS_LEVEL
 
 DRAWS = 3000
@@ -254,6 +255,106 @@ def test_log_logistic_growth_agrees_with_ode_solution(growth, now):
     for extra, crossing in zip(extras, solution.t_events):
         assert family.time_to_reach_growing(extra, now, m0, growth) == pytest.approx(
             crossing[0], rel=1e-8)
+
+
+def test_growth_solver_brackets_a_root_far_below_the_answer_without_growth():
+    # without growth this draw needs H to grow by 28 (t ~ e^35); with growth the root is
+    # near 19, and a bracket as wide as e^35 once made Brent's method give up
+    family, extra, now, m0, growth = LogLogisticHazard(0.8, 1.5), 1.42, 1.67, 0.05, 0.27
+    assert family.time_to_reach(extra / m0, now) > 1e14
+    # reference: scipy.integrate.solve_ivp (DOP853) of dG/ds = m0 e^{growth s} h(now + s)
+    rhs = lambda s, g: [m0 * math.exp(growth * s) * family.hazard(now + s)]
+    solution = integrate.solve_ivp(rhs, (0.0, 100.0), [0.0], method="DOP853",
+                                   events=[lambda s, g: g[0] - extra], rtol=1e-12, atol=1e-14)
+    crossing = solution.t_events[0][0]
+    assert family.time_to_reach_growing(extra, now, m0, growth) == pytest.approx(crossing, rel=1e-8)
+    assert family.time_to_reach_growing_array([extra], now, m0, growth)[0] == pytest.approx(
+        crossing, rel=1e-8)
+
+
+# --- the growing multiplier over arrays (solve_growing_array) --------------------------------
+
+def growing_cases(seed, n):
+    """Draws, clock values (a third at the clock's origin), multipliers and growth rates."""
+    rng = np.random.default_rng(seed)
+    extra = -np.log(rng.random(n))
+    now = np.where(rng.random(n) < 1 / 3, 0.0, rng.uniform(0.0, 3.0, n))
+    return extra, now, np.exp(rng.normal(0.0, 1.0, n)), rng.uniform(-0.3, 0.3, n)
+
+
+@pytest.mark.parametrize("shape", [0.5, 1.0, 1.8, 4.0])
+def test_weibull_growth_over_arrays_solves_special_function_cumulative_hazard(shape):
+    family, limit = WeibullHazard(shape, 3.0), 4.0
+    extra, now, m0, growth = growing_cases(17, 300)
+    s = solve_growing_array(family, extra, now, m0, growth, limit)
+    # reference: DLMF 8.5.1 closed form of G (weibull_growing_cumulative_hazard above); the
+    # array solver is held to 1e-11, tighter than the scalar solver's own 1e-9
+    for x, a, m, g, t in zip(extra, now, m0, growth, s):
+        total = weibull_growing_cumulative_hazard(family, a, m, g, limit)
+        if x > total * (1 + 1e-9):  # beyond the limit: reported as never
+            assert t == math.inf
+        elif x < total * (1 - 1e-9):
+            assert weibull_growing_cumulative_hazard(family, a, m, g, t) == pytest.approx(
+                x, rel=1e-11)
+    assert np.isfinite(s).sum() > 100 and np.isinf(s).sum() > 5  # both cases are exercised
+
+
+@pytest.mark.parametrize("shape", [0.8, 2.5])
+def test_log_logistic_growth_over_arrays_agrees_with_ode_solution(shape):
+    family, m0, now = LogLogisticHazard(shape, 2.0), 1.4, 1.5
+    extras = np.array([0.1, 0.5, 0.9, 1.7])
+    for growth in (0.2, -0.2):
+        # reference: scipy.integrate.solve_ivp (DOP853) of dG/ds = m0 e^{growth s} h(now + s)
+        rhs = lambda s, g: [m0 * math.exp(growth * s) * family.hazard(now + s)]
+        events = [lambda s, g, x=x: g[0] - x for x in extras]
+        solution = integrate.solve_ivp(rhs, (0.0, 60.0), [0.0], method="DOP853",
+                                       events=events, rtol=1e-12, atol=1e-14)
+        crossings = [t[0] if len(t) else math.inf for t in solution.t_events]
+        got = solve_growing_array(family, extras, now, m0, growth, 60.0)
+        np.testing.assert_allclose(got, crossings, rtol=1e-8)
+
+
+@pytest.mark.parametrize("family", [WeibullHazard(0.7, 3.0), WeibullHazard(1.8, 3.0),
+                                    LogLogisticHazard(2.5, 2.0), LogLogisticHazard(0.8, 1.5)],
+                         ids=repr)
+def test_growth_over_arrays_agrees_with_the_scalar_solver(family):
+    extra, now, m0, growth = growing_cases(18, 200)
+    scalar = np.array([solve_growing_numerically(family, *args)
+                       for args in zip(extra, now, m0, growth)])
+    # reference: quadrature + Brent (scalar, rtol 1e-12): with no limit, and with a limit,
+    # beyond which the array solver may stop and say inf
+    np.testing.assert_allclose(family.time_to_reach_growing_array(extra, now, m0, growth),
+                               scalar, rtol=1e-10)
+    limited = solve_growing_array(family, extra, now, m0, growth, 4.0)
+    inside = scalar < 4.0 * (1 - 1e-9)
+    np.testing.assert_allclose(limited[inside], scalar[inside], rtol=1e-10)
+    assert np.all((limited[~inside] == math.inf) | (limited[~inside] > 4.0 * (1 - 1e-8)))
+
+
+def test_growth_over_arrays_edges():
+    family = WeibullHazard(1.5, 2.0)
+    # no draw left: now; a zero multiplier: never (the definition of the time to reach)
+    assert solve_growing_array(family, [0.0, 0.5], 1.0, [1.0, 0.0], 0.1).tolist() == [0.0, math.inf]
+    # growth so fast that one piece would span more than e^8: the scalar solver, exactly
+    extra, now = np.array([0.3, 2.0]), np.array([0.0, 1.0])
+    fast = solve_growing_array(family, extra, now, 1e-6, 3.0, 50.0)
+    assert fast.tolist() == [solve_growing_numerically(family, x, a, 1e-6, 3.0)
+                             for x, a in zip(extra, now)]
+    # falling growth with no limit may never be reached: the scalar solver decides
+    slow = solve_growing_array(family, extra, now, 0.2, -0.5)
+    assert slow.tolist() == [solve_growing_numerically(family, x, a, 0.2, -0.5)
+                             for x, a in zip(extra, now)]
+
+
+def test_piecewise_growth_over_arrays_walks_like_the_scalar_path():
+    family = PiecewiseConstantHazard((0.0, 1.0, 3.0, 6.0), (0.2, 0.0, 0.5, 0.1))
+    extra, now, m0, growth = growing_cases(19, 2000)
+    growth[:100] = 0.0
+    expected = [family.time_to_reach_growing(*args) for args in zip(extra, now, m0, growth)]
+    # reference: the scalar walk over the pieces (checked against quadrature above); the
+    # same arithmetic, so equal to the last bits numpy's exp and log1p may differ in
+    np.testing.assert_allclose(family.time_to_reach_growing_array(extra, now, m0, growth),
+                               expected, rtol=1e-14)
 
 
 # --- vectorised and scalar paths -------------------------------------------------------------

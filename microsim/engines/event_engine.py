@@ -77,7 +77,9 @@ class Batch:
         self.rates = (self.statics * rates)  # multiplied rate of each constant risk
         self.from_state = [[r for r, risk in enumerate(model.risks) if risk.source == i]
                            for i in range(model.n_states)]
-        self.simple = [all(self.is_simple(r) for r in rs) for rs in self.from_state]
+        # a state with no way out and no event is not simple: the general path keeps its
+        # patients there to the horizon
+        self.simple = [bool(rs) and all(self.is_simple(r) for r in rs) for rs in self.from_state]
         self.starts = plan.start_states(model, streams.uniforms(seed, self.ids, plan.START_PURPOSE))
         e = -np.log(streams.block(seed, self.ids, self.purposes, DEPTH))  # (B, R, DEPTH)
         self.times, self.winners = self.simple_rounds(e)
@@ -122,10 +124,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     """Run one batch of patients through the continuous-time model with SimPy."""
     batch = Batch(model, mult, patient_ids, seed)
     window = mult.window
-    risks = [plan.RiskView(risk, float(batch.slopes[r]),
-                           *((window.on_factor[r], window.off_factor[r]) if batch.windowed(r)
-                             else (None, None)))
-             for r, risk in enumerate(model.risks)]
+    risks = plan.risk_views(model, mult)
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
     targets = [risk.source if risk.target is None else risk.target for risk in model.risks]

@@ -72,6 +72,20 @@ class RiskView:
             object.__setattr__(self, name, value)
 
 
+def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
+    """Every risk as the event engines read it, with treatment factors where the strategy's
+    window changes it."""
+    window = mult.window
+
+    def factors(r: int):
+        if window is None or window.on_factor[r] == window.off_factor[r]:
+            return None, None
+        return window.on_factor[r], window.off_factor[r]
+
+    return [RiskView(risk, float(mult.age_slope[r]), *factors(r))
+            for r, risk in enumerate(model.risks)]
+
+
 def start_states(model: BoundModel, u: np.ndarray) -> list[int]:
     """Each patient's starting state, from its own 'start' uniform and the start shares."""
     cumulative = np.cumsum(model.start)
@@ -89,6 +103,16 @@ def initial_memory(model: BoundModel, tracked: tuple[str, ...], state: int):
     counts = [int(t == name) for t in tracked]
     last = [0.0 if t == name else None for t in tracked]
     return counts, last
+
+
+def initial_memory_arrays(model: BoundModel, tracked: tuple[str, ...], starts: np.ndarray):
+    """`initial_memory` for patients starting in `starts`, as arrays (tracked name, patient):
+    counts, and last-occurrence times with nan for none."""
+    initial = [initial_memory(model, tracked, s) for s in range(model.n_states)]
+    counts = np.array([c for c, _ in initial], np.int64).reshape(model.n_states, -1)
+    last = np.array([[np.nan if x is None else x for x in t] for _, t in initial],
+                    float).reshape(model.n_states, -1)
+    return counts[starts].T.copy(), last[starts].T.copy()
 
 
 @contextmanager

@@ -26,7 +26,7 @@ from microsim import streams
 from microsim.binding import BoundModel
 from microsim.engines import plan
 from microsim.engines.cycle_engine import MOVE, row_name, state_plans
-from microsim.engines.histories import START, Histories
+from microsim.engines.histories import START, Histories, from_records
 from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
 from microsim.patients.multipliers import Multipliers
 
@@ -164,18 +164,5 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
             batch.duration[who] = np.where(moved, 0, batch.duration[who] + 1)
             state[who[moved]] = target[moved]
         alive = alive[~absorbing[state[alive]]]
-    return _histories(records, len(ids))
+    return from_records(records, len(ids))
 
-
-def _histories(records, n_patients: int) -> Histories:
-    """Records grouped by patient; within a patient they keep the order they were made in
-    (time order, events before the transition at the same time), as the Recorder does."""
-    patients = np.concatenate([who for who, *_ in records]).astype(np.int64)
-
-    def column(k: int, dtype):
-        return np.concatenate([np.broadcast_to(np.asarray(rec[k], dtype), rec[0].shape)
-                               for rec in records])
-
-    order = np.argsort(patients, kind="stable")
-    return Histories(patients[order], column(1, float)[order], column(2, np.int16)[order],
-                     column(3, np.int16)[order], column(4, np.int32)[order], n_patients)

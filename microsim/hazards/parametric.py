@@ -58,7 +58,7 @@ class ConstantHazard(HazardFamily):
         extra, now = float_arrays(extra, now)
         return extra / self.rate if self.rate > 0.0 else np.full(extra.shape, inf)
 
-    def time_to_reach_growing_array(self, extra, now, multiplier, growth):
+    def time_to_reach_growing_array(self, extra, now, multiplier, growth, limit=inf):
         return gompertz_times(extra, np.multiply(multiplier, self.rate), growth)
 
     def mean_time(self):
@@ -149,10 +149,9 @@ class GompertzHazard(HazardFamily):
         extra, now = float_arrays(extra, now)
         return gompertz_times(extra, self.rate * np.exp(self.shape * now), self.shape)
 
-    def time_to_reach_growing_array(self, extra, now, multiplier, growth):
-        extra, now, multiplier, growth = float_arrays(extra, now, multiplier, growth)
-        rate_now = multiplier * self.rate * np.exp(self.shape * now)
-        return gompertz_times(extra, rate_now, self.shape + growth)
+    def time_to_reach_growing_array(self, extra, now, multiplier, growth, limit=inf):
+        rate_now = np.multiply(multiplier, self.rate) * np.exp(self.shape * np.asarray(now, float))
+        return gompertz_times(np.asarray(extra, float), rate_now, np.add(self.shape, growth))
 
     def mean_time(self):
         """(1/shape) e^z E1(z), z = rate/shape (Lenart 2014, "The moments of the Gompertz

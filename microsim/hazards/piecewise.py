@@ -9,7 +9,7 @@ from math import exp, expm1, inf
 import numpy as np
 
 from microsim.hazards.base import (HazardFamily, check, float_arrays, gompertz_time,
-                                   non_negative)
+                                   gompertz_times, non_negative)
 
 
 @dataclass(frozen=True, slots=True)
@@ -99,6 +99,37 @@ class PiecewiseConstantHazard(HazardFamily):
         with np.errstate(divide="ignore", invalid="ignore"):
             s = starts[piece] + (target - cumulative[piece]) / rates[piece] - now
         return np.where(k < 0, 0.0, np.maximum(s, 0.0))
+
+    def time_to_reach_growing_array(self, extra, now, multiplier, growth, limit=inf):
+        """`time_to_reach_growing` over arrays: every element walks the pieces with the same
+        arithmetic, one piece per step (`limit` is not needed: the form is closed)."""
+        starts, rates, _ = self._arrays
+        extra, now, multiplier, growth = (a.copy() for a in float_arrays(extra, now, multiplier,
+                                                                          growth))
+        piece = np.searchsorted(starts, now, side="right") - 1
+        elapsed = np.zeros(extra.shape)
+        out = np.empty(extra.shape)
+        walking = np.ones(extra.shape, bool)
+        last = len(starts) - 1
+        for _ in range(len(starts)):
+            k = piece[walking]
+            ends = np.where(k < last, starts[np.minimum(k + 1, last)], inf)
+            length = ends - now[walking] - elapsed[walking]
+            rate_now = multiplier[walking] * rates[k]
+            s = gompertz_times(extra[walking], rate_now, growth[walking])
+            done = s <= length
+            where = np.flatnonzero(walking)
+            out[where[done]] = elapsed[where[done]] + s[done]
+            on, length, rate_now = where[~done], length[~done], rate_now[~done]
+            g = growth[on]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                used = rate_now * np.where(g != 0.0, np.expm1(g * length) / g, length)
+            extra[on] = np.where(rate_now > 0.0, np.maximum(extra[on] - used, 0.0), extra[on])
+            multiplier[on] *= np.exp(g * length)
+            elapsed[on] += length
+            piece[on] += 1
+            walking[where[done]] = False
+        return out
 
     def mean_time(self):
         """Sum over pieces of the integral of S, which is exponential on each piece."""
