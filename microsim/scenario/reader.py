@@ -32,7 +32,7 @@ TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "tr
             "events", "parameters", "tables", "outcomes", "population", "simulation",
             "strategies", "economics", "uncertainty",
             "arrivals", "resources", "replications")  # the last three: microsim.capacity
-TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule")
+TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule", "years_per_unit")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
 OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
@@ -154,7 +154,24 @@ def read_time(node: Node) -> TimeSpec:
         cap = DEFAULT_LIFETIME_CAP
     rule = node.text("probability_rule", SEPARATE, choices=PROBABILITY_RULES)
     return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap,
-                    probability_rule=rule)
+                    probability_rule=rule, years_per_unit=years_per_unit(node, unit))
+
+
+YEARS_PER_UNIT = {"year": 1.0, "month": 1 / 12, "week": 7 / 365.25, "day": 1 / 365.25,
+                  "hour": 1 / (24 * 365.25), "minute": 1 / (60 * 24 * 365.25)}  # Julian years
+
+
+def years_per_unit(node: Node, unit: str) -> float:
+    """How many years one time unit is: life years and QALYs are counted in years and
+    discount rates are per year whatever the unit, so an unknown unit must say."""
+    known = YEARS_PER_UNIT.get(unit.lower().removesuffix("s"))
+    if node.has("years_per_unit") or known is None:
+        if not node.has("years_per_unit"):
+            known_units = ", ".join(f"{u}s" for u in YEARS_PER_UNIT)
+            node.fail("unit", f"{unit!r} is not a unit microsim knows ({known_units}); give "
+                              "time.years_per_unit, the length of one unit in years")
+        return node.number("years_per_unit", role=POSITIVE)
+    return known
 
 
 def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = "") -> None:

@@ -46,6 +46,7 @@ class TimeSpec:
     horizon: float | None  # None: lifetime (until everyone is absorbed, capped)
     lifetime_cap: float  # always set (default 100); only read when horizon is None
     probability_rule: ProbabilityRule = SEPARATE  # cycle models only
+    years_per_unit: float = 1.0  # life years and QALYs are in years, discount rates per year
 
     @property
     def end(self) -> float:
