@@ -44,6 +44,9 @@ def psa_dir(args) -> Path:
 def check_output(args) -> None:
     """Refuse an --out that cannot take the command's files, before any work."""
     from microsim.store import unwritable
+    if not str(args.out).strip():
+        raise ScenarioError("--out", "is empty; give the folder the run folders go under "
+                                     "(default: outputs)")
     folders = [out_dir(args, Path(args.scenario))]
     if getattr(args, "psa", False):
         folders.append(psa_dir(args))
@@ -67,7 +70,8 @@ def write(args, path: Path, tables: dict, started: float, documents: dict | None
                        files=files, scenario=path)
     if not quiet:
         count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
-        print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {folder}/")
+        others = "".join(f", {name}" for name in (files or {}))
+        print(f"\nwrote {count} (CSV and Parquet){others} and manifest.json to {folder}/")
     return folder
 
 
@@ -236,10 +240,13 @@ def validation_report(args, path: Path, started: float, histories: Path | None) 
         print(f"\n{CAUTION}")
         return 0
     c = check.comparison
-    print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
-          f"patients, seed {check.simulation.seed}\nCounterpart: {c.counterpart}")
-    worst = c.shares.reindex(c.shares.z.abs().sort_values(ascending=False).index)
-    show("State shares with the largest |z| (simulated, analytic, Monte-Carlo SE)", worst, rows=12)
+    subject = "the model as written" if args.strategy is None else f"strategy {args.strategy}"
+    print(f"Validation — {check.simulation.model.scenario.title}, {subject}: "
+          f"{check.simulation.size} patients, seed {check.simulation.seed}\n"
+          f"Counterpart: {c.counterpart}")
+    worst = c.shares.sort_values("p_value", kind="stable")
+    show("State shares furthest from the counterpart, smallest p-value first (simulated, "
+         "analytic, Monte-Carlo SE, z, p-value)", worst, rows=12)
     show("Outcomes per patient", c.outcomes)
     print(f"\n{c.verdict}")
     show("The 'average patient' cohort against the simulated population", c.average_patient)

@@ -142,14 +142,17 @@ def changed_draws(psa, listed: int = 5) -> str:
 
 
 def subgroup_headlines(subgroups: pd.DataFrame) -> list[str]:
-    """One line per strategy: the subgroups where it clearly pays and clearly does not."""
+    """Per strategy, the subgroups where its incremental NMB is clearly positive, clearly
+    negative, and those where the 95% CI spans 0 (each with the estimate and its CI)."""
     lines = []
     for name, rows in subgroups.groupby("strategy", sort=False):
         def listed(rows):
-            return "; ".join(f"{r.attribute} = {r.level} ({r.incremental_nmb:+,.0f} +- "
-                             f"{1.96 * r.se:,.0f})" for r in rows.itertuples()) or "none"
-        pays = rows[rows.verdict.str.startswith("pays")]
-        loses = rows[rows.verdict.str.startswith("does not pay")]
-        lines.append(f"{name} pays for: {listed(pays)}")
-        lines.append(f"{name} does not pay for: {listed(loses)}")
+            return "; ".join(f"{r.attribute} = {r.level} ({r.incremental_nmb:+,.0f}, 95% CI "
+                             f"{r.incremental_nmb - 1.96 * r.se:+,.0f} to "
+                             f"{r.incremental_nmb + 1.96 * r.se:+,.0f})"
+                             for r in rows.itertuples()) or "none"
+        for words, start in (("gains (95% CI above 0) in", "pays"),
+                             ("loses (95% CI below 0) in", "does not pay"),
+                             ("is uncertain (95% CI spans 0) in", "uncertain")):
+            lines.append(f"{name} {words}: {listed(rows[rows.verdict.str.startswith(start)])}")
     return lines

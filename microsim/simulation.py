@@ -95,7 +95,9 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
             transitions += int(np.sum(h.risk >= 0))
             if partial is not None:
-                table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks])
+                table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks],
+                                None if model.treatment is None else model.treatment.strategy,
+                                batch.window)
                 with writing(histories):
                     if writer is None:
                         partial.parent.mkdir(parents=True, exist_ok=True)

@@ -137,3 +137,15 @@ def test_a_psa_stopped_before_its_first_draw_leaves_nothing(failure, tmp_path, m
     with pytest.raises(type(failure)):
         parameter_uncertainty(SCENARIO, tmp_path / "out" / "plain" / "psa", progress=False)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_psa_with_nothing_uncertain_is_refused_before_any_work(tmp_path):
+    certain = parse_scenario(MODEL.replace(
+        'c_day = { value = 100, distribution = { family = "gamma", shape = 100, scale = 1 } }',
+        "c_day = 100").replace(
+        'r_death = { value = 0.1, distribution = { family = "gamma", shape = 25, scale = 0.004 } }',
+        "r_death = 0.1"))
+    with pytest.raises(ScenarioError) as refused:
+        parameter_uncertainty(certain, tmp_path / "psa", progress=False)
+    assert refused.value.path == "parameters" and "would be the base case" in refused.value.message
+    assert not (tmp_path / "psa").exists()

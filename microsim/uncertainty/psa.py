@@ -24,6 +24,7 @@ from microsim import __version__
 from microsim.decision import economics
 from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_strategies, strategy_names
 from microsim.patients.population import scenario_patients
+from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
@@ -95,16 +96,29 @@ def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
         n = int(group["patients"].iloc[0])
         within = float(group["incremental_nmb_within_variance"].mean())
         means = table[name] - table[names[0]]
-        between = max(float(means.var(ddof=1)) - within / n, 0.0)
+        spread = float(means.var(ddof=1)) if len(group) > 1 else np.nan
+        between = max(spread - within / n, 0.0) if np.isfinite(spread) else np.nan
         split = (economics.optimal_sample_split(between, within, n * len(group))
                  if between > 0 else None)
         rows.append((name, len(group), n, float(means.mean()), between, within,
                      None if split is None else split.n_draws,
-                     None if split is None else split.patients_per_draw))
+                     None if split is None else split.patients_per_draw,
+                     split_note(spread, within, n, split)))
     return pd.DataFrame(rows, columns=["strategy", "draws", "patients_per_draw",
                                        "mean_incremental_nmb", "between_draw_variance",
                                        "within_draw_variance", "suggested_draws",
-                                       "suggested_patients_per_draw"])
+                                       "suggested_patients_per_draw", "note"])
+
+
+def split_note(spread: float, within: float, n: int, split) -> str:
+    """Why the split suggests what it does, or nothing, in words."""
+    if not np.isfinite(spread):
+        return "one draw: no spread between draws to split"
+    if split is None:
+        return (f"the spread between draws ({spread:.4g}) is no more than the patients' "
+                f"noise in a draw's mean ({within / n:.4g}): the draws tell parameter "
+                "uncertainty apart from Monte-Carlo noise only with more patients per draw")
+    return "the split of the same number of patients that estimates the between-draw variance best"
 
 
 def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None = None,
@@ -117,6 +131,12 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     if seed is not None:
         scenario = replace(scenario, simulation=replace(scenario.simulation, seed=seed))
     spec = scenario.uncertainty
+    if not spec.dirichlets and not any(
+            p.distribution is not None and p.distribution.family != "fixed"
+            for p in scenario.parameters.values()):
+        raise ScenarioError("parameters", "no parameter has a distribution (nor a Dirichlet "
+                            "group), so every PSA draw would be the base case; give the "
+                            "uncertain parameters a distribution")
     n_draws = spec.draws if draws is None else draws
     n = next(v for v in (patients, spec.patients,
                          scenario.population.size if scenario.population else None, 1000)
