@@ -239,11 +239,11 @@ def validation_report(args, path: Path, started: float, histories: Path | None) 
               seed=check.seed, verdict=next(iter(check.validations.values())).verdict)
         print(f"\n{CAUTION}")
         return 0
-    c = check.comparison
+    c = next(iter(check.validations.values()))
     subject = "the model as written" if args.strategy is None else f"strategy {args.strategy}"
-    print(f"Validation — {check.simulation.model.scenario.title}, {subject}: "
-          f"{check.simulation.size} patients, seed {check.simulation.seed}\n"
-          f"Counterpart: {c.counterpart}")
+    seed = run_seed(args, read_scenario(path))
+    print(f"Validation — {read_scenario(path).title}, {subject}: {check.size} patients, "
+          f"seed {seed}\nCounterpart: {c.counterpart}")
     worst = c.shares.sort_values("p_value", kind="stable")
     show("State shares furthest from the counterpart, smallest p-value first (simulated, "
          "analytic, Monte-Carlo SE, z, p-value)", worst, rows=12)
@@ -252,10 +252,10 @@ def validation_report(args, path: Path, started: float, histories: Path | None) 
     show("The 'average patient' cohort against the simulated population", c.average_patient)
     print(f"\n{c.average_verdict}")
     write(args, path, {"validation_shares": c.shares, "validation_subgroups": c.subgroups,
-                       "validation_outcomes": c.outcomes,
+                       "validation_outcomes": c.outcomes, "validation_survival": c.survival,
                        "average_patient": c.average_patient}, started,
           files={"histories.parquet": histories} if histories else None,
-          seed=check.simulation.seed, verdict=c.verdict)
+          seed=seed, verdict=c.verdict)
     print(f"\n{CAUTION}")
     return 0
 

@@ -25,7 +25,7 @@ def summary(result: MainResult) -> dict:
     """A machine-readable summary (for scripts): what the printed summary says."""
     s, d = result.scenario, result.decision
     out = {"scenario": s.title, "provenance": s.provenance, "seed": result.seed,
-           "patients": len(next(iter(result.simulations.values())).patients),
+           "patients": result.population.size,
            "validation": {n: {"agrees": v.agrees, "verdict": v.verdict,
                               "average_patient": v.average_verdict}
                           for n, v in result.validations.items()},
@@ -63,9 +63,9 @@ def records(table: pd.DataFrame) -> list[dict]:
 
 def print_summary(result: MainResult) -> None:
     s, d = result.scenario, result.decision
-    first = next(iter(result.simulations.values()))
+    size = result.population.size
     print(f"microsim run — {s.title}\n{s.provenance}")
-    print(f"{first.size} patients, seed {result.seed}" + (
+    print(f"{size} patients, seed {result.seed}" + (
         "; every strategy on the same patients with common random numbers." if d is not None
         else "; the model as written (the scenario defines no strategies)."))
     if d is None:
@@ -78,7 +78,7 @@ def print_summary(result: MainResult) -> None:
             if spec.comparator:
                 continue
             count = d.treated[spec.name]
-            print(f"{spec.name}: treats {count} of {first.size} patients ({count / first.size:.1%})"
+            print(f"{spec.name}: treats {count} of {size} patients ({count / size:.1%})"
                   + ("" if count else " — warning: nobody is treated; check its eligibility "
                                       "and uptake"))
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",

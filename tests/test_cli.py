@@ -408,13 +408,13 @@ def test_histories_land_with_the_run(tmp_path, capsys):
 
 def test_histories_of_a_refused_validation_are_not_left_behind(tmp_path, monkeypatch, capsys):
     """The comparison refuses after the simulation streamed every history."""
-    import microsim.workflow
+    from microsim.results.comparison import ComparisonSums
     from microsim.scenario import ScenarioError
 
-    def refuse(sim):
+    def refuse(self):
         raise ScenarioError("simulation.grid", "refused after simulating (test)")
 
-    monkeypatch.setattr(microsim.workflow, "compare", refuse)
+    monkeypatch.setattr(ComparisonSums, "finish", refuse)
     out = tmp_path / "out"
     assert main(["validate", str(WARD), "--patients", "30", "--histories", "--out", str(out)]) == 2
     refused(capsys.readouterr(), "error: simulation.grid: refused after simulating")

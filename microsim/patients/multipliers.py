@@ -165,9 +165,10 @@ def _uses_age(model: BoundModel) -> bool:
         r.clock == "age" for r in model.risks)
 
 
-def average_patient(m: Multipliers) -> Multipliers:
-    """The 'average patient' of a set of patients: one row per patient, every row with the
-    patients' mean attributes, and each with its patient's own treatment window.
+def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
+    """The 'average patient' for these patients: one row per patient, every row with the
+    uniform cohort's mean attributes (`cohort_multipliers`: the population section's
+    expected values), and each with its patient's own treatment window.
 
     The log multiplier is linear in the attributes (0/1 indicators for levels and yes/no),
     so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
@@ -177,7 +178,7 @@ def average_patient(m: Multipliers) -> Multipliers:
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
     it differs from the mean of the patients' own results."""
-    n = m.size
-    log_static = np.repeat(m.log_static.mean(axis=0, keepdims=True), n, axis=0)
-    ages = None if m.entry_age is None else np.full(n, m.entry_age.mean())
-    return Multipliers(log_static, m.age_slope, ages, m.window)
+    n = patients.size
+    ages = None if cohort.entry_age is None else np.repeat(cohort.entry_age[:1], n)
+    return Multipliers(np.repeat(cohort.log_static[:1], n, axis=0), cohort.age_slope, ages,
+                       patients.window)

@@ -34,6 +34,9 @@ class Exposure:
         return cls(*(np.concatenate([getattr(p, f) for p in parts])
                      for f in ("occupancy", "occurrences", "on_treatment")))
 
+    def take(self, rows) -> "Exposure":
+        return Exposure(self.occupancy[rows], self.occurrences[rows], self.on_treatment[rows])
+
     def mean(self) -> "Exposure":
         return Exposure(*(getattr(self, f).mean(axis=0, keepdims=True)
                           for f in ("occupancy", "occurrences", "on_treatment")))

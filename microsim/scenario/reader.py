@@ -36,7 +36,7 @@ TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule", "ye
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
 OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
-SIMULATION_KEYS = ("seed", "batch_size", "grid")
+SIMULATION_KEYS = ("seed", "batch_size", "grid", "validation_patients")
 CORRECTIONS = ("none", "half-cycle", "trapezoidal", "simpson")
 LIFETIME = "lifetime"
 DEFAULT_LIFETIME_CAP = 100.0
@@ -228,4 +228,6 @@ def read_simulation(node: Node | None) -> SimulationSpec:
     return SimulationSpec(
         seed=node.whole("seed", defaults.seed, minimum=0, maximum=2**64 - 1),
         batch_size=node.whole("batch_size", defaults.batch_size, minimum=1),
-        grid=node.number("grid", None, role=POSITIVE))
+        grid=node.number("grid", None, role=POSITIVE),
+        validation_patients=node.whole("validation_patients", defaults.validation_patients,
+                                       minimum=1))

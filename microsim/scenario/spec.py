@@ -228,8 +228,9 @@ class PopulationSpec:
 @dataclass(frozen=True)
 class SimulationSpec:
     seed: int = 20261201
-    batch_size: int = 5000
+    batch_size: int = 20000
     grid: float | None = None  # report grid step in time units; default: the cycle
+    validation_patients: int = 100_000  # the main job compares the first ones with the cohort
 
 
 @dataclass(frozen=True)
