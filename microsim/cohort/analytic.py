@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.cohort.cycle_matrices import cycle_matrices
+from microsim.cohort.cycle_matrices import cycle_arrays
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.exponentials import exponential_rows
 from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
@@ -48,15 +48,17 @@ def discount_rates(model: BoundModel) -> tuple[float, float, float]:
 def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     model = exp.model
     batch = mult.log_static.shape[0]
-    pi = np.broadcast_to(exp.start(), (batch, exp.size)).copy()
+    # state-major with patients last (pi (E, B), matrices (E, E, B)): every product runs
+    # over contiguous patients
+    pi = np.repeat(exp.start()[:, None], batch, axis=1)
     expanded = [pi]
     flows_per_cycle = []
     for n in range(model.n_cycles):
-        P, risk_p = cycle_matrices(exp, n, mult)
-        flows_per_cycle.append(np.einsum("be,ber->br", pi, risk_p))
-        pi = np.einsum("be,bef->bf", pi, P)
+        P, risk_p = cycle_arrays(exp, n, mult)
+        flows_per_cycle.append(np.einsum("eb,erb->br", pi, risk_p))
+        pi = np.einsum("eb,efb->fb", pi, P)
         expanded.append(pi)
-    trace = np.einsum("tbe,es->bts", np.array(expanded), exp.collapse())
+    trace = np.einsum("teb,es->bts", np.array(expanded), exp.collapse())
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
     on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)
     occupancy = np.empty((batch, model.n_states, 3))

@@ -46,6 +46,12 @@ def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: f
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
     """Transition matrices (B, E, E) of cycle n and each risk's probability (B, E, R)."""
+    P, risk_p = cycle_arrays(exp, n, mult)
+    return np.moveaxis(P, 2, 0), np.moveaxis(risk_p, 2, 0)
+
+
+def cycle_arrays(exp: Expansion, n: int, mult: Multipliers):
+    """`cycle_matrices` with the patients last: (E, E, B) and (E, R, B)."""
     model = exp.model
     time = n * model.cycle
     m_all = mult.at(time)
@@ -101,7 +107,6 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
         counting = [(risk, p) for risk, p in events if risk.name in exp.tracked]
         for risk, p in moves:
             j = i if risk is None else risk.target
-            d_next = min(d + 1, exp.durations[i] - 1) if j == i else 0
             for pattern in itertools.product((False, True), repeat=len(counting)):
                 weight = p
                 occurred = [] if risk is None else [risk]
@@ -109,5 +114,5 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
                     weight = weight * (pe if happened else 1.0 - pe)
                     if happened:
                         occurred.append(event)
-                P[e, exp.index(j, d_next, exp.after_move(counts, i, occurred))] += weight
-    return np.moveaxis(P, 2, 0), np.moveaxis(risk_p, 2, 0)
+                P[e, exp.target(i, d, counts, j, tuple(occurred))] += weight
+    return P, risk_p
