@@ -85,11 +85,17 @@ def command_check(args) -> int:
     return 0
 
 
+def scenario_options(args) -> dict:
+    """The options given that override scenario keys, as the keys' values."""
+    from microsim.scenario.options import KEYS, toml_values
+    return toml_values({key: getattr(args, key, None) for key in KEYS})
+
+
 def begin(args) -> tuple[float, Path, object]:
     """Start a command's clock and read its scenario (refusing bad input before any work)."""
     started = time.perf_counter()
     path = Path(args.scenario)
-    return started, path, read_scenario(path)
+    return started, path, read_scenario(path, options=scenario_options(args))
 
 
 def cohort_note(scenario) -> str:
@@ -272,26 +278,16 @@ def command_population(args) -> int:
 
 
 def command_sensitivity(args) -> int:
-    from microsim.uncertainty.one_way import AS_WRITTEN, tornado
+    from microsim.present import print_sensitivity
+    from microsim.uncertainty.deterministic import sensitivity_tables
     started, path, scenario = begin(args)
     if scenario.capacity is not None:
-        raise ScenarioError("sensitivity", "one-way sensitivity of a service with shared "
+        raise ScenarioError("sensitivity", "sensitivity analysis of a service with shared "
                             "capacity ([arrivals], [[resources]]) is not available yet")
     seed = run_seed(args, scenario)
-    table = tornado(scenario, args.patients, seed, args.strategy, args.measure)
-    first = table.iloc[0]
-    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
-    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
-          if first.measure.endswith("nmb") else "")
-    for name, rows in table.groupby("strategy", sort=False):
-        exact = rows.se_base.isna().all()
-        hidden = ["strategy", "measure", "compared_with", "basis",
-                  *(["se_low", "se_high", "se_base"] if exact else [])]
-        subject = "the model as written" if name == AS_WRITTEN else name
-        show(f"One-way sensitivity of {MEASURES[first.measure]} of {subject}{against}{at} "
-             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
-             rows.drop(columns=hidden))
-    write(args, path, {"one_way": table}, started, seed=seed)
+    tables = sensitivity_tables(scenario, args.patients, seed, args.strategy, args.measure)
+    print_sensitivity(scenario, tables)
+    write(args, path, tables, started, seed=seed)
     print(f"\n{CAUTION}")
     return 0
 
@@ -368,6 +364,15 @@ def build_parser() -> argparse.ArgumentParser:
                          "with [arrivals], the most arrivals per replication")
         sub.add_argument("--seed", type=SEED, help="run seed (default: the scenario's)")
 
+    def sensitivity_options(sub):
+        sub.add_argument("--two-way", metavar="A,B", help="also vary these two parameters "
+                         "together over a grid of their ranges (sensitivity.two_way)")
+        sub.add_argument("--break-even", metavar="NAME[,NAME]", help="also find where the "
+                         "measure crosses 0 as each of these parameters runs over its range "
+                         "(sensitivity.break_even)")
+        sub.add_argument("--grid", help="values of each parameter from low to high, the base "
+                         "value added (sensitivity.grid, default 7)")
+
     def engine_option(sub):
         sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
                          help="auto (default) or vectorised: the vectorised engine for either "
@@ -397,6 +402,7 @@ def build_parser() -> argparse.ArgumentParser:
     sensitivity.add_argument("--measure", help=f"what is varied, one of: {', '.join(MEASURES)} "
                              "(default: incremental_nmb against the comparator; nmb for a "
                              "scenario without strategies)")
+    sensitivity_options(sensitivity)
     run = add("run", command_run, "The main job: every strategy on the same simulated patients, "
               "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
               "subgroups, and PSA when asked.")

@@ -120,6 +120,41 @@ def print_summary(result: MainResult) -> None:
         print(f"\n{changed_draws(p)}")
 
 
+def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
+    """The deterministic sensitivity analyses: one-way (tornado data), the two-way grid,
+    the break-even values."""
+    from microsim.decision.measures import MEASURES
+    from microsim.uncertainty.one_way import AS_WRITTEN
+    table = tables["one_way"]
+    first = table.iloc[0]
+    what = MEASURES[first.measure]
+    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
+    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
+          if first.measure.endswith("nmb") else "")
+    for name, rows in table.groupby("strategy", sort=False):
+        exact = rows.se_base.isna().all()
+        hidden = ["strategy", "measure", "compared_with", "basis",
+                  *(["se_low", "se_high", "se_base"] if exact else [])]
+        subject = "the model as written" if name == AS_WRITTEN else name
+        show(f"One-way sensitivity of {what} of {subject}{against}{at} "
+             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
+             rows.drop(columns=hidden))
+    if "two_way" in tables:
+        for name, rows in tables["two_way"].groupby("strategy", sort=False):
+            a, b = rows.first_parameter.iloc[0], rows.second_parameter.iloc[0]
+            grid = rows.pivot(index="first_value", columns="second_value", values="result")
+            subject = "the model as written" if name == AS_WRITTEN else name
+            show(f"Two-way sensitivity of {what} of {subject}{against}{at} ({rows.basis.iloc[0]}): "
+                 f"rows {a}, columns {b}", grid.rename_axis(index=a, columns=b).reset_index())
+    if "break_even" in tables:
+        found = tables["break_even"]
+        show(f"Break-even values: where {what}{against}{at} crosses 0 ({found.basis.iloc[0]}; "
+             "SE by the delta method where simulated)",
+             found[["strategy", "parameter", "low", "high", "value", "se", "lower", "upper"]])
+        for row in found.itertuples():
+            print(f"  {row.strategy}, {row.parameter}: {row.finding}")
+
+
 def changed_draws(psa, listed: int = 5) -> str:
     """One line: which PSA draws were redrawn or truncated, and why (every draw is checked
     against every use of its values and every row before anything is simulated)."""
