@@ -56,6 +56,12 @@ def marginal_basis(x: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
     return design, penalty
 
 
+def minimum_rows(d: int) -> int:
+    """The fewest rows a smoother of d inputs takes: two per coefficient of the smallest
+    (cubic, no interior knot) basis."""
+    return 2 * (DEGREE + 1) ** d
+
+
 def row_kron(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Row-wise Kronecker product: row i is kron(a_i, b_i)."""
     return (a[:, :, None] * b[:, None, :]).reshape(a.shape[0], -1)
@@ -72,12 +78,12 @@ class Smoother:
             raise ValueError(f"a smoother takes 1 to {max(BASIS_SIZE)} inputs, got {d}")
         if np.any(inputs.max(axis=0) == inputs.min(axis=0)):
             raise ValueError("every input must vary")
+        if n < minimum_rows(d):
+            raise ValueError(f"{n} rows are too few for {d} inputs: at least "
+                             f"{minimum_rows(d)} are needed")
         size = BASIS_SIZE[d]
         while size > DEGREE + 1 and size**d > n / 4:  # at least four rows per coefficient
             size -= 1
-        if size**d > n / 2:
-            raise ValueError(f"{n} rows are too few for {d} inputs: at least "
-                             f"{2 * (DEGREE + 1)**d} are needed")
         margins = [marginal_basis(inputs[:, j], size) for j in range(d)]
         design = margins[0][0]
         for basis, _ in margins[1:]:
