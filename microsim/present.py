@@ -155,6 +155,27 @@ def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
             print(f"  {row.strategy}, {row.parameter}: {row.finding}")
 
 
+def print_budget(scenario, tables: dict[str, pd.DataFrame]) -> None:
+    """The budget impact: cost per patient by year since entry, then the payer's yearly
+    cost of each strategy for the stated population."""
+    e, cur = scenario.economics, scenario.economics.currency
+    per_patient, impact = tables["budget_costs_by_year"], tables["budget_impact"]
+    basis = per_patient.basis.iloc[0]
+    show(f"Cost per patient by year since entry ({cur}, undiscounted; {basis})",
+         per_patient.drop(columns=["basis"]) if basis.startswith("simulated")
+         else per_patient.drop(columns=["basis", "se"]))
+    shown = ["year", "strategy", "new_patients", "patients_entered", "cost", "impact"]
+    if impact.se.notna().any():
+        shown[5:5] = ["se"]
+        shown.append("impact_se")
+    show(f"Budget impact ({cur} a year, undiscounted): {e.prevalent_patients:,} patients at "
+         "the start and the new patients of each year, each cohort entering at the start of "
+         "its year; impact against " + (impact.compared_with.iloc[0]
+                                        if isinstance(impact.compared_with.iloc[0], str)
+                                        else "no comparator (no strategies)"),
+         impact[shown])
+
+
 def changed_draws(psa, listed: int = 5) -> str:
     """One line: which PSA draws were redrawn or truncated, and why (every draw is checked
     against every use of its values and every row before anything is simulated)."""
