@@ -50,6 +50,12 @@ def summary(result: MainResult) -> dict:
                 "acceptability_at_threshold": records(at[at.threshold == near]),
                 "evpi_at_threshold": records(p.evpi[p.evpi.threshold == near]),
                 "variance_split": records(p.variance)})
+            if "probability_best_noise_removed" in at:
+                out["psa"]["noise_removed"] = NOISE_REMOVED
+            if p.evppi is not None:
+                out["psa"]["evppi_at_threshold"] = records(p.evppi[p.evppi.threshold == near])
+            if "population_evpi" in p.evpi:
+                out["psa"]["population"] = population_words(s.economics)
         out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
                                        "changed_draws": int(p.changed.draw.nunique()),
                                        "changes": records(p.changed),
@@ -114,8 +120,19 @@ def print_summary(result: MainResult) -> None:
         near = (p.acceptability.threshold - s.economics.threshold).abs()
         at = p.acceptability[near == near.min()]
         show(f"PSA ({len(p.draws)} draws): probability each strategy is best", at)
-        show("Expected value of perfect information per patient",
+        if "probability_best_noise_removed" in at:
+            print(f"probability_best_noise_removed: {NOISE_REMOVED}.")
+        show("Expected value of perfect information per patient"
+             + (f"; population EVPI for {population_words(s.economics)}"
+                if "population_evpi" in p.evpi else ""),
              p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
+        if p.evppi is not None:
+            rows = p.evppi[(p.evppi.threshold - s.economics.threshold).abs() == near.min()]
+            show("Expected value of partial perfect information per patient (regression on "
+                 "the PSA sample, Strong, Oakley & Brennan 2014; SE by wild bootstrap and "
+                 "over the draws)", rows.drop(columns=["method", "edf"]))
+            for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):
+                print(f"  {group}: {method}")
         show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
         print(f"\n{changed_draws(p)}")
 
@@ -174,6 +191,22 @@ def print_budget(scenario, tables: dict[str, pd.DataFrame]) -> None:
                                         if isinstance(impact.compared_with.iloc[0], str)
                                         else "no comparator (no strategies)"),
          impact[shown])
+
+
+NOISE_REMOVED = ("the share of draws in which each strategy is best after each draw's "
+                 "incremental net benefit is moved towards the mean by noise_scale = "
+                 "sqrt(between / (between + within / n)), the inner patients' Monte-Carlo "
+                 "noise taken out by the variance split (O'Hagan, Stevenson & Madan 2007; "
+                 "constrained Bayes, Louis 1984)")
+
+
+def population_words(e) -> str:
+    """Who population EVPI counts, in words."""
+    incidence = (f"{e.incidence[0]:,g} new patients a year" if len(e.incidence) == 1 else
+                 "new patients a year of " + ", ".join(f"{x:,g}" for x in
+                                                      e.incidence_by_year(e.evpi_years)))
+    return (f"{incidence} over {e.evpi_years} years, discounted at {e.evpi_discount:g} a year "
+            "(EVPI x sum of I_t / (1 + r)^t, t = 1..T)")
 
 
 def changed_draws(psa, listed: int = 5) -> str:

@@ -115,4 +115,6 @@ def result_tables(scenario, validations, survival, decision, psa) -> dict[str, p
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
                            "ce_plane": psa.plane, "psa_variance": psa.variance})
+            if psa.evppi is not None:
+                tables["evppi"] = psa.evppi
     return tables
