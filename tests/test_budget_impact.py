@@ -80,11 +80,19 @@ def test_a_cycle_model_costs_its_cycles_by_its_own_rule():
     # without correction each cycle counts at its start: year k costs 1000 (1 - p)^(k - 1)
     per_patient = budget_tables(parse_scenario(cycle_model("none")))["budget_costs_by_year"]
     np.testing.assert_allclose(per_patient.cost_per_patient, [1000.0 * 0.8**k for k in range(4)])
-    # the half-cycle rule moves half of the first cycle out; the years still add up to the
-    # model's own undiscounted total, c (f_0 / 2 + f_1 + f_2 + f_3) (Sonnenberg & Beck 1993)
+    # under the half-cycle correction each year is its trapezoid, c (f_(k-1) + f_k) / 2
+    # (Elbasha & Chhatwal 2016), not the half-cycle's cut, which would leave half of each
+    # year to the next
     half = budget_tables(parse_scenario(cycle_model("half-cycle")))["budget_costs_by_year"]
-    assert half.cost_per_patient.sum() == pytest.approx(1000.0 * (0.5 + 0.8 + 0.64 + 0.512))
-    assert half.cost_per_patient.iloc[0] == pytest.approx(500.0)
+    np.testing.assert_allclose(half.cost_per_patient,
+                               [1000.0 * (0.8**k + 0.8**(k + 1)) / 2 for k in range(4)])
+    # Simpson's rule on two cycles a year: c / 3 (f_(k-1) + 4 f_k + f_(k+1)) over each year
+    simpson = cycle_model("simpson").replace("horizon = 4", "cycle = 0.5\nhorizon = 4")
+    per_year = budget_tables(parse_scenario(simpson))["budget_costs_by_year"]
+    f = 0.8 ** np.arange(9)
+    np.testing.assert_allclose(per_year.cost_per_patient,
+                               [1000.0 * 0.5 / 3 * (f[2 * k] + 4 * f[2 * k + 1] + f[2 * k + 2])
+                                for k in range(4)])
 
 
 def test_without_an_exact_counterpart_the_costs_are_simulated_with_their_error():

@@ -11,10 +11,16 @@ undiscounted, for the eligible population, here the patients already there at th
 Each patient costs what the model says a patient costs in each year since entry, c_k: the
 model's own mean undiscounted cost per patient (state, transition and treatment costs) of
 the scenario's patients, exact where the model has an exact counterpart, else simulated.
-c_k = C(k) - C(k - 1), C(k) the cost accrued by k years with the horizon cut there; the
-within-cycle rule of the model is additive over whole cycles, so the years add up to the
-model's own total, and a patient simulated to k years has the same history as to k - 1
-years and beyond (every draw is a function of patient, purpose and occurrence).
+c_k = C(k) - C(k - 1), C(k) the cost accrued by k years with the horizon cut there, and a
+patient simulated to k years has the same history as to k - 1 years and beyond (every draw
+is a function of patient, purpose and occurrence). In cycle models the within-cycle rule is
+additive over whole cycles, so a year is costed by the model's rule over its own cycle
+points, with one exception: the half-cycle correction leaves out the last point of every
+cut (it assumes the cohort is gone by the horizon), which would move half a cycle of each
+year into the next, so its years are costed by the trapezoidal rule, the same integral
+over each year (the two differ only by that last point; Elbasha & Chhatwal 2016, "Theoretical
+foundations and practical applications of within-cycle correction methods", Med Decis
+Making 36:115-131).
 
 Cohorts enter at the start of each calendar year, the prevalent patients with the first
 (a simplification: they are costed as if they started the model then). The cost in
@@ -58,9 +64,12 @@ def units_per_year(scenario: Scenario) -> float:
 
 
 def cut_at(scenario: Scenario, years: int) -> Scenario:
-    """The scenario with its horizon at `years` budget years and costs undiscounted."""
+    """The scenario with its horizon at `years` budget years, costs undiscounted, and the
+    half-cycle correction costed as the trapezoidal rule (see above)."""
+    correction = scenario.outcomes.correction
     return replace(scenario, time=replace(scenario.time, horizon=years * units_per_year(scenario)),
-                   outcomes=replace(scenario.outcomes, discount_costs=0.0))
+                   outcomes=replace(scenario.outcomes, discount_costs=0.0, correction=(
+                       "trapezoidal" if correction == "half-cycle" else correction)))
 
 
 def check_budget_years(scenario: Scenario, years: int) -> None:
