@@ -28,17 +28,21 @@ def test_every_cell_follows_the_closed_form_and_the_grid_holds_the_base():
     assert (table.at_base == on_base).all()
 
 
-def test_the_lines_through_the_base_case_are_the_one_way_analysis():
-    settings = Settings(EXACT_MODEL, patients=20, measure="incremental_qalys")
-    grid = two_way(settings, "hr", "c_drug", 3)
-    one_way = tornado(EXACT_MODEL, settings=settings).set_index("parameter")
+@pytest.mark.parametrize("measure", ["incremental_qalys", "incremental_nmb"])
+def test_the_lines_through_the_base_case_are_the_one_way_analysis(measure):
+    # two analyses on their own evaluations: the grid's lines through the base case must
+    # give the one-way table's numbers
+    grid = two_way(Settings(EXACT_MODEL, patients=20, measure=measure), "hr", "c_drug", 3)
+    one_way = tornado(EXACT_MODEL, patients=20, measure=measure).set_index("parameter")
     at = grid.set_index(["first_value", "second_value"]).result
     base_hr, base_c = HR["value"], C_DRUG["value"]
-    assert at[(HR["low"], base_c)] == one_way.loc["hr", "result_low"]
-    assert at[(HR["high"], base_c)] == one_way.loc["hr", "result_high"]
-    assert at[(base_hr, C_DRUG["low"])] == one_way.loc["c_drug", "result_low"]
-    assert at[(base_hr, C_DRUG["high"])] == one_way.loc["c_drug", "result_high"]
-    assert at[(base_hr, base_c)] == one_way.loc["hr", "result_base"]
+    pairs = [((HR["low"], base_c), one_way.loc["hr", "result_low"]),
+             ((HR["high"], base_c), one_way.loc["hr", "result_high"]),
+             ((base_hr, C_DRUG["low"]), one_way.loc["c_drug", "result_low"]),
+             ((base_hr, C_DRUG["high"]), one_way.loc["c_drug", "result_high"]),
+             ((base_hr, base_c), one_way.loc["hr", "result_base"])]
+    for setting, expected in pairs:
+        assert at[setting] == pytest.approx(expected, rel=1e-12), setting
 
 
 def test_without_an_exact_counterpart_each_cell_carries_its_monte_carlo_error():
