@@ -106,16 +106,17 @@ class MainResult:
 
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
              psa: dict | None = None, engine: str = "auto",
-             invalid_draws: str | None = None) -> MainResult:
+             invalid_draws: str | None = None, options: dict | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
     the analytic counterpart, evaluated, and with PSA when `psa` settings are given
-    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws; a service with
+    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws, `options` the keys
+    of `microsim.scenario.options`; a service with
     shared capacity: `microsim.capacity.run.run_service`, a `ServiceResult`).
 
     What can be refused is refused before any work: the engine, the patients, and the PSA
     (its folder of another run, its backend) by running it first; its finished draws stay
     on disk however the rest ends."""
-    scenario = read_scenario(path, invalid_draws)
+    scenario = read_scenario(path, invalid_draws, options)
     seed = scenario.simulation.seed if seed is None else seed
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(psa=psa is not None, engine=engine)
@@ -154,4 +155,6 @@ def result_tables(scenario, validations, decision, psa) -> dict[str, pd.DataFram
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
                            "ce_plane": psa.plane, "psa_variance": psa.variance})
+            if psa.evppi is not None:
+                tables["evppi"] = psa.evppi
     return tables

@@ -1,14 +1,15 @@
-"""Reading [uncertainty]: how many PSA draws, and which parameters are drawn together
-(correlated, or as the shares of a Dirichlet group)."""
+"""Reading [uncertainty]: how many PSA draws, which parameters are drawn together
+(correlated, or as the shares of a Dirichlet group), and whose EVPPI is reported."""
 from __future__ import annotations
 
 from .checks import undefined
 from .correlation import read_correlation_matrix
 from .errors import ScenarioError
-from .fields import MAX_PATIENTS, POSITIVE, Node, listing, show
+from .fields import IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
 from .spec import INVALID_DRAWS, Scenario, UncertaintySpec
 
-UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws")
+UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws", "evppi")
+MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
 DIRICHLET_SUM_TOLERANCE = 1e-6
@@ -34,7 +35,35 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         draws=node.whole("draws", defaults.draws, minimum=1, maximum=1_000_000),
         patients=node.whole("patients", None, minimum=1, maximum=MAX_PATIENTS),
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
-        invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS))
+        invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
+        evppi=read_evppi_groups(node))
+
+
+def read_evppi_groups(node: Node) -> tuple[tuple[str, ...], ...]:
+    """`evppi`: a list whose items are a parameter name or a list of names (a group whose
+    values would be learnt together)."""
+    items = node.raw("evppi", [])
+    if not isinstance(items, list) or not items and node.has("evppi"):
+        node.fail("evppi", "must be a non-empty list of parameter names or lists of names "
+                           f"(evppi = [\"p_a\", [\"c_x\", \"c_y\"]]), got {describe(items)}")
+    groups = []
+    for i, item in enumerate(items):
+        path = f"evppi[{i}]"
+        names = item if isinstance(item, list) else [item]
+        if not names:
+            node.fail(path, "is an empty group; name at least one parameter")
+        for j, name in enumerate(names):
+            if not isinstance(name, str) or not IDENTIFIER.fullmatch(name):
+                where = path if item is name else f"{path}[{j}]"
+                node.fail(where, f"must be a parameter name, got {describe(name)}")
+        node.distinct(path, names)
+        if len(names) > MAX_EVPPI_GROUP:
+            node.fail(path, f"has {len(names)} parameters; EVPPI by regression is computed "
+                            f"for groups of at most {MAX_EVPPI_GROUP} (split the group)")
+        if tuple(names) in groups:
+            node.fail(path, f"repeats the group {listing(names)}; give each group once")
+        groups.append(tuple(names))
+    return tuple(groups)
 
 
 def read_parameter_correlation(node: Node | None
@@ -57,6 +86,7 @@ def check_uncertainty(s: Scenario) -> list[str]:
             raise ScenarioError(path, f"{name!r} has no distribution that varies, so the PSA "
                                 "does not draw it; only parameters with a distribution can be "
                                 "correlated")
+    check_evppi_groups(s)
     found = []
     grouped: dict[str, int] = {}
     for i, (names, _) in enumerate(spec.dirichlets):
@@ -81,3 +111,19 @@ def check_uncertainty(s: Scenario) -> list[str]:
 def defined(s: Scenario, name: str, path: str) -> None:
     if name not in s.parameters:
         raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))
+
+
+def check_evppi_groups(s: Scenario) -> None:
+    """Every EVPPI parameter is defined and drawn by the PSA (a distribution that varies,
+    or a Dirichlet group): a parameter that never varies has no value of information."""
+    drawn = {name for names, _ in s.uncertainty.dirichlets for name in names}
+    drawn |= {name for name, p in s.parameters.items()
+              if p.distribution is not None and p.distribution.family != "fixed"}
+    for i, group in enumerate(s.uncertainty.evppi):
+        for j, name in enumerate(group):
+            path = f"uncertainty.evppi[{i}]" + (f"[{j}]" if len(group) > 1 else "")
+            defined(s, name, path)
+            if name not in drawn:
+                raise ScenarioError(path, f"{name!r} is not drawn by the PSA (it has no "
+                                    "distribution that varies), so learning it is worth "
+                                    "nothing; give it a distribution or leave it out")

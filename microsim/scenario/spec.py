@@ -289,6 +289,18 @@ class EconomicsSpec:
     thresholds: tuple[float, float, float] = (0.0, 100000.0, 1000.0)  # from, to, step
     currency: str = "money units"
     precision: float | None = None  # target 95% CI half-width of incremental NMB
+    # the people a decision reaches: new patients a year (one number, or one per year)
+    incidence: tuple[float, ...] = ()
+    evpi_years: int | None = None  # years the decision holds, for population EVPI
+    evpi_discount: float | None = None  # yearly discount rate of population EVPI
+    prevalent_patients: int = 0  # patients already there at the start of budget year 1
+    budget_years: int | None = None  # calendar years of the budget impact
+
+    def incidence_by_year(self, years: int) -> tuple[float, ...]:
+        """New patients in each of `years` years: one number holds for every year."""
+        if len(self.incidence) == 1:
+            return self.incidence * years
+        return self.incidence[:years]
 
 
 INVALID_DRAWS = ("refuse", "redraw", "truncate")
@@ -306,6 +318,16 @@ class UncertaintySpec:
     correlation: tuple[tuple[float, ...], ...] = ()
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
+    evppi: tuple[tuple[str, ...], ...] = ()  # parameter groups whose EVPPI is reported
+
+
+@dataclass(frozen=True)
+class SensitivitySpec:
+    """Deterministic sensitivity beyond one way: a pair of parameters varied together and
+    the parameters whose break-even value is sought, on a grid of `grid` values each."""
+    two_way: tuple[str, ...] = ()  # two parameter names, or none
+    break_even: tuple[str, ...] = ()
+    grid: int = 7  # values from low to high (the base value is added when not among them)
 
 
 @dataclass(frozen=True)
@@ -326,6 +348,7 @@ class Scenario:
     strategies: tuple[StrategySpec, ...] = ()  # the first with comparator = true compares
     economics: EconomicsSpec = EconomicsSpec()
     uncertainty: UncertaintySpec = UncertaintySpec()
+    sensitivity: SensitivitySpec = SensitivitySpec()
     capacity: "CapacitySpec | None" = None  # arrivals and shared resources (microsim.capacity)
     source: Path | None = None
     warnings: tuple[str, ...] = ()

@@ -13,6 +13,7 @@ intervals; acceptability, EVPI and the split compare strategies, so it gets a no
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 from functools import partial
 from pathlib import Path
@@ -31,6 +32,7 @@ from microsim.uncertainty import run_draws, summarise_draws
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
 from microsim.uncertainty.summaries import draw_intervals
+from microsim.uncertainty.value_of_information import check_evppi_draws, information_values
 
 NEEDS_STRATEGIES = ("acceptability curves, the cost-effectiveness plane, EVPI and the "
                     "inner/outer split compare strategies: they need at least two, and this "
@@ -52,13 +54,30 @@ def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.Dat
     threshold = scenario.economics.threshold
     nmb = (threshold * outcomes[EFFECT] - outcomes[COST]).groupby(outcomes.strategy, sort=False)
     base = nmb.get_group(next(iter(sims))).to_numpy()  # the comparator runs first
+    first = outcomes.groupby("strategy", sort=False).get_group(next(iter(sims)))
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
         gain = nmb.get_group(name).to_numpy() - base
+        d_cost = group[COST].to_numpy() - first[COST].to_numpy()
+        d_effect = group[EFFECT].to_numpy() - first[EFFECT].to_numpy()
         rows.append((name, group[COST].mean(), group[EFFECT].mean(), group["life_years"].mean(),
-                     float(gain.var(ddof=1)), len(group)))
-    return pd.DataFrame(rows, columns=["strategy", "cost", "effect", "life_years",
-                                       "incremental_nmb_within_variance", "patients"])
+                     float(gain.var(ddof=1)), *within_moments(d_cost, d_effect), len(group)))
+    return pd.DataFrame(rows, columns=DRAW_COLUMNS)
+
+
+DRAW_COLUMNS = ["strategy", "cost", "effect", "life_years", "incremental_nmb_within_variance",
+                "incremental_cost_within_variance", "incremental_effect_within_variance",
+                "incremental_within_covariance", "patients"]
+
+
+def within_moments(d_cost: np.ndarray, d_effect: np.ndarray) -> tuple[float, float, float]:
+    """Within-draw variances of the paired incremental cost and effect and their
+    covariance, which give the within-draw variance of incremental NMB at any threshold
+    (for the acceptability curve without inner noise)."""
+    if len(d_cost) < 2:
+        return math.nan, math.nan, math.nan
+    matrix = np.cov(d_cost, d_effect)
+    return float(matrix[0, 0]), float(matrix[1, 1]), float(matrix[0, 1])
 
 
 @dataclass(frozen=True)
@@ -73,6 +92,7 @@ class PsaResult:
     plane: pd.DataFrame | None = None
     variance: pd.DataFrame | None = None  # between/within split, suggested inner/outer sizes
     note: str | None = None
+    evppi: pd.DataFrame | None = None  # per threshold, for the groups of uncertainty.evppi
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -144,17 +164,21 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
     sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
     # every draw checked (refused, redrawn or truncated) before anything is simulated
+    check_evppi_draws(scenario, n_draws)
     checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
     table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
-                   "microsim": __version__}
+                   "microsim": __version__, "draw_columns": DRAW_COLUMNS}
     results = run_draws(partial(evaluate_draw, scenario, n), table, Path(run_dir),
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
     if not scenario.strategies:
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES)
-    summary = summarise_draws(results, thresholds(scenario), strategy_names(scenario)[0])
+    comparator = strategy_names(scenario)[0]
+    summary = summarise_draws(results, thresholds(scenario), comparator)
+    evpi, evppi = information_values(scenario, table, results, summary["evpi"],
+                                     thresholds(scenario), comparator)
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
-                     summary["evpi"], summary["plane"], variance_split(scenario, results))
+                     evpi, summary["plane"], variance_split(scenario, results), evppi=evppi)
