@@ -154,7 +154,9 @@ def result_tables(scenario, validations, decision, psa) -> dict[str, pd.DataFram
                        "psa_outcomes": psa.outcomes, "psa_changed_draws": psa.changed})
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
-                           "ce_plane": psa.plane, "psa_variance": psa.variance})
+                           "ce_plane": psa.plane})
+            if psa.variance is not None:
+                tables["psa_variance"] = psa.variance
             if psa.evppi is not None:
                 tables["evppi"] = psa.evppi
     return tables

@@ -6,9 +6,10 @@ from .checks import undefined
 from .correlation import read_correlation_matrix
 from .errors import ScenarioError
 from .fields import IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
-from .spec import INVALID_DRAWS, Scenario, UncertaintySpec
+from .spec import INVALID_DRAWS, PSA_BASES, Scenario, UncertaintySpec
 
-UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws", "evppi")
+UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws", "evppi",
+                    "basis")
 MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
@@ -36,7 +37,8 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         patients=node.whole("patients", None, minimum=1, maximum=MAX_PATIENTS),
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
         invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
-        evppi=read_evppi_groups(node))
+        evppi=read_evppi_groups(node),
+        basis=node.text("basis", defaults.basis, choices=PSA_BASES))
 
 
 def read_evppi_groups(node: Node) -> tuple[tuple[str, ...], ...]:

@@ -308,6 +308,9 @@ INVALID_DRAWS = ("refuse", "redraw", "truncate")
 it again from the next occurrence of its streams, or clip its values to their ranges."""
 
 
+PSA_BASES = ("simulated", "exact")
+
+
 @dataclass(frozen=True)
 class UncertaintySpec:
     """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows, and
@@ -319,6 +322,7 @@ class UncertaintySpec:
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
     evppi: tuple[tuple[str, ...], ...] = ()  # parameter groups whose EVPPI is reported
+    basis: str = "simulated"  # one of PSA_BASES: each draw simulated, or its exact mixture
 
 
 @dataclass(frozen=True)

@@ -79,6 +79,8 @@ class PatientValues(NamedTuple):
     costs: np.ndarray  # discounted, per patient
     qalys: np.ndarray  # discounted, per patient
     exact: bool  # analytic expectations (True) or one simulated history each (False)
+    life_years: np.ndarray  # undiscounted, per patient
+    reasons: tuple[str, ...] = ()  # why there is no exact counterpart, where there is none
 
 
 def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: dict,
@@ -92,7 +94,8 @@ def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: 
                 else simulate(model, people, seed, mult=mult).exposure)
     outcomes = outcome_values(model, exposure)
     return PatientValues(np.asarray(outcomes[COST], float), np.asarray(outcomes[EFFECT], float),
-                         result.exact)
+                         result.exact, np.asarray(outcomes["life_years"], float),
+                         tuple(result.reasons))
 
 
 def tornado_strategies(scenario: Scenario, strategy: str | None,
