@@ -13,6 +13,7 @@ import numpy as np
 from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
+from microsim.scenario.formulas import with_derived
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
@@ -161,6 +162,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     if unknown:
         raise KeyError(f"values for undefined parameters: {sorted(unknown)}")
     resolved.update(values or {})
+    resolved = with_derived(scenario.parameters, resolved)  # always from their inputs
     index = {name: i for i, name in enumerate(scenario.state_names)}
 
     def number(ref: Ref) -> float:

@@ -140,7 +140,7 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
-    check_sensitivity(draft)
+    check_sensitivity(draft, reading.references)
     uses = reading.references + check_row_structure(draft)
     check_row_bounds(draft)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Literal, Mapping
 
 if TYPE_CHECKING:
     from .fields import Reference
+    from .formulas import Formula
 
 Ref = float | str
 """A literal number, or the name of a parameter (or, for transition values, a table)."""
@@ -172,6 +173,7 @@ class ParameterSpec:
     distribution: DistributionSpec | None = None
     low: float | None = None  # one-way sensitivity range
     high: float | None = None
+    formula: "Formula | None" = None  # a derived parameter: value is its base-case result
 
 
 @dataclass(frozen=True)
