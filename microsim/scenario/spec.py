@@ -182,11 +182,17 @@ class StartSpec:
     age: float | None = None  # cohort age at time 0, in time units
 
 
+DISCOUNTINGS = ("annual", "continuous")
+"""How the discount rates are read: effective rates per year, factor (1 + d)^-t, or
+instantaneous rates per year, factor exp(-r t) (t in years)."""
+
+
 @dataclass(frozen=True)
 class OutcomesSpec:
-    discount_costs: float = 0.0  # effective rate per time unit
+    discount_costs: float = 0.0  # per year, read as `discounting` says
     discount_effects: float = 0.0
     correction: Correction = "half-cycle"
+    discounting: str = "annual"  # one of DISCOUNTINGS
 
 
 @dataclass(frozen=True)
