@@ -103,9 +103,7 @@ def with_formulas(parameters: dict[str, ParameterSpec]) -> dict[str, ParameterSp
                     f"parameters ({listing(parameters)})")
     if not derived_order(parameters):
         return parameters
-    _, base = next(settings(parameters))
-    for _ in settings(parameters):
-        pass  # refuses a derived parameter without a value at a one-way setting
+    (_, base), *_ = settings(parameters)  # refuses one without a value at any setting
     return {name: ParameterSpec(name, base[name], formula=p.formula) if p.formula else p
             for name, p in parameters.items()}
 
