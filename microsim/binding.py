@@ -13,6 +13,7 @@ import numpy as np
 from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
+from microsim.scenario.formulas import with_derived
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
@@ -139,9 +140,15 @@ class BoundModel:
         return np.arange(self.n_cycles + 1) * self.cycle
 
 
-def per_unit(yearly: float, years_per_unit: float) -> float:
-    """An effective discount rate per year as the same rate per time unit:
-    (1 + d)^(years per unit) - 1, so the factor at t units is (1 + d)^-(t years)."""
+def per_unit(yearly: float, years_per_unit: float, discounting: str = "annual") -> float:
+    """A yearly discount rate as the effective rate per time unit that every outcome
+    integral reads (the factor at t units is (1 + rate)^-t): an effective yearly rate d
+    gives (1 + d)^(years per unit) - 1, so the factor is (1 + d)^-(t years); an
+    instantaneous ("continuous") yearly rate r gives exp(r years per unit) - 1, so the
+    factor is exp(-r t years) (continuous discounting, e.g. Briggs, Claxton & Sculpher 2006,
+    "Decision Modelling for Health Economic Evaluation"; from memory)."""
+    if discounting == "continuous":
+        return float(np.expm1(yearly * years_per_unit))
     if years_per_unit == 1.0:
         return yearly
     return float(np.expm1(years_per_unit * np.log1p(yearly)))
@@ -161,6 +168,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     if unknown:
         raise KeyError(f"values for undefined parameters: {sorted(unknown)}")
     resolved.update(values or {})
+    resolved = with_derived(scenario.parameters, resolved)  # always from their inputs
     index = {name: i for i, name in enumerate(scenario.state_names)}
 
     def number(ref: Ref) -> float:
@@ -228,8 +236,10 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         cycle=scenario.time.cycle,
         n_cycles=scenario.time.n_cycles,
         lifetime=scenario.time.horizon is None,
-        discount_costs=per_unit(outcomes.discount_costs, scenario.time.years_per_unit),
-        discount_effects=per_unit(outcomes.discount_effects, scenario.time.years_per_unit),
+        discount_costs=per_unit(outcomes.discount_costs, scenario.time.years_per_unit,
+                                outcomes.discounting),
+        discount_effects=per_unit(outcomes.discount_effects, scenario.time.years_per_unit,
+                                  outcomes.discounting),
         years_per_unit=scenario.time.years_per_unit,
         correction=outcomes.correction,
         probability_rule=scenario.time.probability_rule,

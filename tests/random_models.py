@@ -85,6 +85,7 @@ class Draft:
         self.features: set[str] = {kind}
         self.ways: list[Way] = []
         self.values: dict[str, float] = {}
+        self.derived: dict[str, dict] = {}  # derived parameters: {"formula": ...}
         self.exact = True
         self.heterogeneous = False
         self.attributes: list[str] = []
@@ -114,6 +115,17 @@ class Draft:
     def parameter(self, name: str, value: float) -> str:
         self.values[name] = float(value)
         return name
+
+    def state_cost(self, s: str) -> float | str:
+        """A state's cost per time unit: a number, or (in the last living state) a derived
+        parameter, a unit cost times a count of visits; one draw either way, so the rest of
+        the model is drawn as before."""
+        if s == self.alive[-1]:
+            self.features.add("derived parameter")
+            self.derived[f"cost_{s}"] = {"formula": f"{self.uniform(0, 250, 2)} * visits"}
+            self.values.setdefault("visits", 4.0)
+            return f"cost_{s}"
+        return self.uniform(0, 1000, 1)
 
     def hazard_level(self) -> float:
         """A rate such that a few occurrences happen over the horizon."""
@@ -344,7 +356,7 @@ class Draft:
         else:
             time = section("time", unit=self.unit, cycle=self.cycle, horizon=self.end)
         blocks = [time, start(age=self.start_age, **self.shares)]
-        blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.uniform(0, 1000, 1))
+        blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.state_cost(s))
                    for s in self.alive]
         blocks += [state(s, absorbing=True) for s in self.absorbing]
         for way in self.ways:
@@ -356,15 +368,18 @@ class Draft:
             else:
                 blocks.append(transition(way.source, way.target, cost=self.uniform(0, 300, 1),
                                          **self.way_fields(way)))
-        blocks.append(parameters(**self.values))
+        blocks.append(parameters(**self.values, **self.derived))
         tables = {w.table[0]: w.table for w in self.ways if w.table}
         blocks += [table(name, by=by, starts=starts, values=values)
                    for name, by, starts, values in tables.values()]
         corrections = ("half-cycle", "none", "trapezoidal") + (
             ("simpson",) if self.n_cycles % 2 == 0 else ())
-        blocks.append(outcomes(discount_costs=self.pick((0.0, 0.035)),
-                               discount_effects=self.pick((0.0, 0.015)),
-                               correction=self.pick(corrections)))
+        costs, effects = self.pick((0.0, 0.035)), self.pick((0.0, 0.015))
+        discounting = "continuous" if costs and effects else None  # no extra draw
+        if discounting:
+            self.features.add("continuous discounting")
+        blocks.append(outcomes(discount_costs=costs, discount_effects=effects,
+                               correction=self.pick(corrections), discounting=discounting))
         if self.attributes:
             blocks.append(self.population_block(size))
         if self.strategy is not None:

@@ -13,6 +13,7 @@ import numpy as np
 from .errors import ScenarioError
 from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_you_mean,
                      listing, show)
+from .formulas import settings
 from .read_parameters import support
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
@@ -137,6 +138,9 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         raise ScenarioError(ref.path, undefined(what, ref.name, known))
     p = s.parameters[ref.name]
     where = f"parameters.{p.name}"
+    if p.formula is not None:
+        check_derived(s, ref)
+        return
     for key, value in (("", p.value), (".low", p.low), (".high", p.high)):
         problem = None if value is None else role.problem(value)
         if problem:
@@ -152,6 +156,18 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 f"{role.noun} at {ref.path} ({role.rule}); choose a "
                                 "distribution that stays in that range, or set "
                                 'uncertainty.invalid_draws = "redraw" or "truncate"')
+
+
+def check_derived(s: Scenario, ref: Reference) -> None:
+    """A derived parameter's values at the base case and every one-way setting must suit
+    the slot (its PSA draws are checked draw by draw, `uncertainty.draw_checks`)."""
+    for label, values in settings(s.parameters):
+        problem = ref.role.problem(values[ref.name])
+        if problem:
+            raise ScenarioError(f"parameters.{ref.name}.formula",
+                                f"gives {show(values[ref.name])}{label}, but it is used as "
+                                f"{ref.role.noun} at {ref.path}: {problem}; change the "
+                                "formula or the values it reads")
 
 
 def check_kind(s: Scenario) -> None:
@@ -400,6 +416,7 @@ def youngest_age(s: Scenario) -> float | None:
 
 def warnings(s: Scenario, reading: Reading) -> list[str]:
     used = {r.name for r in reading.references}
+    used |= {n.name for p in s.parameters.values() if p.formula for n in p.formula.names}
     found = [f"parameters.{n}: defined but not used" for n in s.parameters if n not in used]
     found += [f"tables.{n}: defined but not used" for n in s.tables if n not in used]
     reachable, _ = reachable_from_start(s)

@@ -99,6 +99,9 @@ def check_uncertainty(s: Scenario) -> list[str]:
                 raise ScenarioError(path, f"{name!r} has its own distribution "
                                     f"(parameters.{name}.distribution); a Dirichlet group "
                                     "draws its members, so remove that distribution")
+            if parameters[name].formula is not None:
+                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
+                                    "Dirichlet group draws parameters that are numbers")
             if name in grouped:
                 raise ScenarioError(path, f"{name!r} is already in uncertainty.dirichlet"
                                     f"[{grouped[name]}]; a parameter can be in one group only")

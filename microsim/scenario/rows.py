@@ -26,6 +26,7 @@ import numpy as np
 from .checks import check_reference, table_at
 from .errors import ScenarioError
 from .fields import AGE, COMPETING_PROBABILITY, TOLERANCE, Reference, listing, show
+from .formulas import settings, with_derived
 from .spec import COMPETING, REMAINDER, SEPARATE, Ref, Scenario, StrategySpec, TransitionSpec
 
 Ranges = Mapping[str, tuple[float, float]]
@@ -205,6 +206,7 @@ def row_bounds(s: Scenario, values: Mapping[str, np.ndarray], ranges: Ranges) ->
         return []
     span = (s.time.n_cycles - 1) * s.time.cycle  # attained age grows until the last cycle
     size = len(next(iter(values.values()))) if values else 1
+    values = with_derived(s.parameters, values)
 
     def value(ref: Ref) -> np.ndarray:
         return np.asarray(values[ref] if isinstance(ref, str) else ref, float)
@@ -285,13 +287,9 @@ def move_multiplier(move: Move, strategy: str | None, value, ranges: Ranges, spa
 def parameter_settings(s: Scenario) -> tuple[dict[str, np.ndarray], list[str]]:
     """The base case and every one-way setting (each ranged parameter at low, then high),
     as (D,) values per parameter, with the words that name each setting."""
-    ranged = [p for p in s.parameters.values() if p.low is not None]
-    labels = [""] + [f" with parameters.{p.name} at its {end} value {show(getattr(p, end))} "
-                     "(one-way range)" for p in ranged for end in ("low", "high")]
-    values = {name: np.full(len(labels), p.value) for name, p in s.parameters.items()}
-    for k, (p, end) in enumerate(((p, end) for p in ranged for end in ("low", "high")), 1):
-        values[p.name][k] = getattr(p, end)
-    return values, labels
+    labels, found = zip(*settings(s.parameters))
+    return {name: np.array([v[name] for v in found], float) for name in s.parameters}, \
+        list(labels)
 
 
 def check_row_bounds(s: Scenario, columns: Ranges | None = None) -> None:

@@ -13,6 +13,7 @@ from typing import TYPE_CHECKING, Literal, Mapping
 
 if TYPE_CHECKING:
     from .fields import Reference
+    from .formulas import Formula
 
 Ref = float | str
 """A literal number, or the name of a parameter (or, for transition values, a table)."""
@@ -172,6 +173,7 @@ class ParameterSpec:
     distribution: DistributionSpec | None = None
     low: float | None = None  # one-way sensitivity range
     high: float | None = None
+    formula: "Formula | None" = None  # a derived parameter: value is its base-case result
 
 
 @dataclass(frozen=True)
@@ -180,11 +182,17 @@ class StartSpec:
     age: float | None = None  # cohort age at time 0, in time units
 
 
+DISCOUNTINGS = ("annual", "continuous")
+"""How the discount rates are read: effective rates per year, factor (1 + d)^-t, or
+instantaneous rates per year, factor exp(-r t) (t in years)."""
+
+
 @dataclass(frozen=True)
 class OutcomesSpec:
-    discount_costs: float = 0.0  # effective rate per time unit
+    discount_costs: float = 0.0  # per year, read as `discounting` says
     discount_effects: float = 0.0
     correction: Correction = "half-cycle"
+    discounting: str = "annual"  # one of DISCOUNTINGS
 
 
 @dataclass(frozen=True)

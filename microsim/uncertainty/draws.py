@@ -17,6 +17,7 @@ import pandas as pd
 from .distributions import Dirichlet, Distribution, correlation_root, draw_parameters, make_distribution
 from .. import streams
 from ..scenario.errors import ScenarioError
+from ..scenario.formulas import with_derived
 from ..scenario.spec import ParameterSpec
 
 Correlation = tuple[Sequence[str], object]
@@ -132,6 +133,7 @@ class ParameterSampler:
         values.update({name: drawn[name] for name in self.uncertain})
         for key, (names, _) in self.groups.items():
             values.update({name: drawn[key][:, k] for k, name in enumerate(names)})
+        values = with_derived(self.parameters, values)  # vectorised over the draws
         return pd.DataFrame({"draw": ids.astype(np.int64), **values})
 
 
