@@ -83,8 +83,11 @@ def structure_graph(scenario: Scenario) -> nx.DiGraph:
         text = risk_label(t, scenario)
         if t.name != t.key:
             text = f"{t.name}\n{text}"
-        graph.add_edge(t.source, t.target, text=text + (f"\n[{added_by}]" if added_by else ""),
-                       added_by=added_by)
+        text += f"\n[{added_by}]" if added_by else ""
+        if graph.has_edge(t.source, t.target):  # a second way between them (another cause)
+            first = graph.edges[t.source, t.target]
+            text, added_by = first["text"] + "\n" + text, first["added_by"]
+        graph.add_edge(t.source, t.target, text=text, added_by=added_by)
 
     for state in scenario.states:
         add_state(state)

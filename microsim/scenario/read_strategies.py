@@ -233,7 +233,7 @@ def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: 
                                 f"the name of {taken[state.name]}; give added states new names")
     merged = replace(s, states=s.states + strategy.states,
                      transitions=s.transitions + strategy.transitions)
-    paths = [f"{prefix}.transitions.{t.key}" for t in strategy.transitions]
+    paths = [f"{prefix}.transitions.{t.where}" for t in strategy.transitions]
     for path, t in zip(paths, strategy.transitions):
         if (t.probability is not None) != s.discrete:
             uses, others = (("a rate or hazard", "per-cycle probabilities") if s.discrete

@@ -26,16 +26,19 @@ MAX_COEFFICIENT = 700.0  # exp(700) is close to the largest float
 
 def read_transitions(nodes: list[Node], tables: Mapping[str, TableSpec]
                      ) -> tuple[TransitionSpec, ...]:
+    pairs = [(node.data.get("from"), node.data.get("to")) for node in nodes]
     transitions = []
-    for node in nodes:
-        ends = (node.data.get("from"), node.data.get("to"))
+    for node, ends in zip(nodes, pairs):
+        parallel = pairs.count(ends) > 1
         if all(isinstance(end, str) and IDENTIFIER.fullmatch(end) for end in ends):
-            node.path = f"transitions.{ends[0]}->{ends[1]}"
+            name = node.data.get("name")
+            named = parallel and isinstance(name, str) and IDENTIFIER.fullmatch(name)
+            node.path = f"transitions.{ends[0]}->{ends[1]}" + (f"[{name}]" if named else "")
         node.only(TRANSITION_KEYS)
         source, target = node.name("from"), node.name("to")
         transitions.append(TransitionSpec(
             source=source, target=target, name=node.name("name", f"{source}->{target}"),
-            **read_occurrence(node, tables, remainder=True)))
+            parallel=parallel, **read_occurrence(node, tables, remainder=True)))
     return tuple(transitions)
 
 

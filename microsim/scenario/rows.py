@@ -75,7 +75,7 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
             if t.source != state.name:
                 continue
             own = k >= len(s.transitions)
-            path = f"{prefix if own else ''}transitions.{t.key}"
+            path = f"{prefix if own else ''}transitions.{t.where}"
             changed = changed or own
             if t.probability == REMAINDER:
                 remainder, remainder_path = t, path

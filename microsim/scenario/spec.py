@@ -122,10 +122,16 @@ class TransitionSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0  # one-off, when the transition happens
     disutility: Ref = 0.0  # one-off QALY loss, when the transition happens
+    parallel: bool = False  # another transition joins the same two states (a second cause)
 
     @property
     def key(self) -> str:
         return f"{self.source}->{self.target}"
+
+    @property
+    def where(self) -> str:
+        """The transition in field paths: its pair, and its name when the pair is shared."""
+        return f"{self.key}[{self.name}]" if self.parallel and self.name != self.key else self.key
 
 
 @dataclass(frozen=True)
