@@ -210,7 +210,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
 
     risks = [risk(t, t.name, index[t.source], index[t.target]) for t in scenario.transitions]
     for event in scenario.events:
-        risks += [risk(event, event.name, index[s], None) for s in event.states]
+        risks += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
 
     states = scenario.states
     outcomes = scenario.outcomes

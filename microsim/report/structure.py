@@ -40,6 +40,10 @@ def value_text(value: Ref, scenario: Scenario) -> str:
 
 def hazard_text(spec, scenario: Scenario) -> str:
     """The probability, rate or hazard family of a transition or event."""
+    if getattr(spec, "by_state", None):
+        kind = "p" if spec.probability is not None else "rate"
+        return f"{kind} by state: " + ", ".join(f"{state} {value_text(value, scenario)}"
+                                                for state, value in spec.by_state.items())
     if spec.probability is not None:
         return "remainder" if spec.probability == REMAINDER else (
             f"p {'from' if spec.probability in scenario.tables else '='} "

@@ -94,8 +94,9 @@ def check_states(s: Scenario) -> None:
                                 "the cause), or merge them")
         seen[t.key] = t
     for e in s.events:
+        kind = "probability" if e.probability is not None else "rate"
         for i, name in enumerate(e.states):
-            path = f"events.{e.name}.states[{i}]"
+            path = f"events.{e.name}." + (f"{kind}.{name}" if e.by_state else f"states[{i}]")
             if name not in s.state_names:
                 raise ScenarioError(path, unknown_state(name, s.state_names))
             if name in absorbing:

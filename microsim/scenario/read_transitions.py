@@ -7,6 +7,7 @@ from typing import Any, Mapping
 
 from .fields import (ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, POSITIVE, PROBABILITY, RATE,
                      Node, Reference, did_you_mean, listing, show)
+from .spec import Ref
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
 SHARED_KEYS = ("probability", "rate", "hazard", "clock", "cost", "disutility", "effects",
@@ -48,9 +49,34 @@ def read_events(nodes: list[Node], tables: Mapping[str, TableSpec]) -> tuple[Eve
         name = node.name("name")
         node.path = f"events.{name}"
         node.only(EVENT_KEYS)
-        events.append(EventSpec(name=name, states=node.names("states"),
-                                **read_occurrence(node, tables, remainder=False)))
+        by_state = read_by_state(node)
+        if by_state is None:
+            events.append(EventSpec(name=name, states=node.names("states"),
+                                    **read_occurrence(node, tables, remainder=False)))
+            continue
+        kind, values = by_state
+        first = dict(node.data, **{kind: next(iter(values.values()))})
+        fields = read_occurrence(Node(first, node.path, node.reading), tables, remainder=False)
+        references = node.reading.references  # the first value is recorded by its state
+        references[:] = [r for r in references if r.path != node.at(kind)]
+        events.append(EventSpec(name=name, states=tuple(values), by_state=values, **fields))
     return tuple(events)
+
+
+def read_by_state(node: Node) -> tuple[str, dict[str, Ref]] | None:
+    """An event's `probability = { state = value }` or `rate = { ... }`: its value in each
+    state it can happen in (numbers or parameters); None for one value everywhere."""
+    kind = next((k for k in ("probability", "rate") if isinstance(node.data.get(k), dict)), None)
+    if kind is None:
+        return None
+    if node.has("states"):
+        node.fail("states", f"the states are the keys of {kind} = {{ state = value }}; "
+                            "remove states, or give one value for all of them")
+    by = Node(node.data[kind], node.at(kind), node.reading)
+    if not by.data:
+        by.fail(None, "must name at least one state, like { mild = 0.1, severe = 0.3 }")
+    role = PROBABILITY if kind == "probability" else RATE
+    return kind, {by._name(state, state): by.ref(state, role) for state in by.data}
 
 
 def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool

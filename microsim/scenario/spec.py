@@ -7,7 +7,7 @@ binding of the same specs, not a new code path.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Literal, Mapping
 
@@ -147,6 +147,17 @@ class EventSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0
     disutility: Ref = 0.0
+    by_state: Mapping[str, Ref] | None = None  # a probability or constant rate per state
+
+    def in_state(self, state: str) -> "EventSpec":
+        """The event as it happens in `state`: with its own value when it differs by state
+        (`probability` and `hazard` then hold the first state's, which fixes the kind)."""
+        if self.by_state is None:
+            return self
+        value = self.by_state[state]
+        if self.probability is not None:
+            return replace(self, probability=value)
+        return replace(self, hazard=HazardSpec("constant", {"rate": value}))
 
 
 @dataclass(frozen=True)
