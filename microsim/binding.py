@@ -121,6 +121,8 @@ class BoundModel:
     values: Mapping[str, float]
     years_per_unit: float  # life years and QALYs are counted in years
     treatment: Treatment | None = None
+    # start effects: (state, effect) multiplying the odds of starting in the state
+    start_effects: tuple[tuple[int, BoundEffect], ...] = ()
 
     @property
     def n_states(self) -> int:
@@ -235,6 +237,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         probability_rule=scenario.time.probability_rule,
         values=resolved,
         treatment=treatment,
+        start_effects=tuple((index[e.state], effect(e)) for e in scenario.start.effects),
     )
 
 

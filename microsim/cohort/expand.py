@@ -134,6 +134,16 @@ class Expansion:
                 p[self.entry(i)] += share
         return p
 
+    def start_rows(self, start: np.ndarray | None, rows: int) -> np.ndarray:
+        """(rows, E) initial distributions: the model's for every row, or each row's own
+        start shares over the model's states (`Multipliers.start`, (rows, S))."""
+        if start is None:
+            return np.broadcast_to(self.start(), (rows, self.size)).copy()
+        entries = np.zeros((self.model.n_states, self.size))
+        entries[np.arange(self.model.n_states),
+                [self.entry(i) for i in range(self.model.n_states)]] = 1.0
+        return start @ entries
+
     def memory_factor(self, risk: BoundRisk, counts: tuple[int, ...]) -> float:
         """The product of a risk's memory multipliers in expanded state `counts`."""
         factor = 1.0

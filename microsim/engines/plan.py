@@ -86,8 +86,13 @@ def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
             for r, risk in enumerate(model.risks)]
 
 
-def start_states(model: BoundModel, u: np.ndarray) -> list[int]:
-    """Each patient's starting state, from its own 'start' uniform and the start shares."""
+def start_states(model: BoundModel, u: np.ndarray, mult: Multipliers) -> list[int]:
+    """Each patient's starting state, from its own 'start' uniform and the start shares
+    (the patient's own when they depend on its attributes)."""
+    if mult.start is not None:
+        cumulative = np.cumsum(mult.start, axis=1)
+        cumulative[:, -1] = 1.0
+        return (cumulative <= np.asarray(u)[:, None]).sum(axis=1).tolist()
     cumulative = np.cumsum(model.start)
     cumulative[-1] = 1.0
     return np.searchsorted(cumulative, u, side="right").tolist()

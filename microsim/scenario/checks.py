@@ -231,8 +231,9 @@ def not_a_level(value, name: str, levels: Sequence, reading: Reading) -> str:
 
 def check_effects(s: Scenario, reading: Reading) -> None:
     kinds = attribute_kinds(s, reading)
-    for path, occurrence in occurrences(s):
-        for i, effect in enumerate(occurrence.effects):
+    for path, effects in [("start", s.start.effects)] + [
+            (path, o.effects) for path, o in occurrences(s)]:
+        for i, effect in enumerate(effects):
             here, name = f"{path}.effects[{i}]", effect.attribute
             if name not in kinds:
                 raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))

@@ -90,6 +90,7 @@ class EffectSpec:
     level: str | None = None
     centre: float = 0.0
     coefficient: bool = False  # True when `hazard_ratio` holds a log-hazard coefficient
+    state: str | None = None  # start effects: the start state whose odds it multiplies
 
 
 @dataclass(frozen=True)
@@ -195,6 +196,8 @@ class ParameterSpec:
 class StartSpec:
     shares: Mapping[str, float]  # every state name in file order (0 if not given); sums to 1
     age: float | None = None  # cohort age at time 0, in time units
+    # odds ratios of starting in a state by attribute (a multinomial logit around `shares`)
+    effects: tuple[EffectSpec, ...] = ()
 
 
 @dataclass(frozen=True)
