@@ -8,6 +8,8 @@ numbers for who is treated as well as for what happens to them.
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 
