@@ -31,7 +31,7 @@ def bumps(model: BoundModel, tracked: tuple[str, ...]) -> list[tuple[int, ...]]:
     for risk in model.risks:
         hit = {risk.name}
         if risk.target is not None and risk.target != risk.source:
-            hit.add(model.states[risk.target])
+            hit.add(model.entered(risk.target))
         out.append(tuple(k for k, name in enumerate(tracked) if name in hit))
     return out
 
@@ -104,7 +104,7 @@ def static_multipliers(mult: Multipliers) -> list[list[float]]:
 
 def initial_memory(model: BoundModel, tracked: tuple[str, ...], state: int):
     """Counts and last-occurrence times at the start: entering the start state counts."""
-    name = model.states[state]
+    name = model.entered(state)
     counts = [int(t == name) for t in tracked]
     last = [0.0 if t == name else None for t in tracked]
     return counts, last

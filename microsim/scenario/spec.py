@@ -284,6 +284,15 @@ class ChangeSpec:
 
 
 @dataclass(frozen=True)
+class LineSpec:
+    """A later treatment of a sequence: it starts when the one before it stops, and acts
+    through its own changes until a patient enters one of `stop_on`."""
+    name: str
+    stop_on: tuple[str, ...] = ()
+    changes: tuple[ChangeSpec, ...] = ()
+
+
+@dataclass(frozen=True)
 class StrategySpec:
     """One decision option: who is treated, when, and what treatment changes; added
     states and transitions extend the model for this strategy only."""
@@ -300,6 +309,15 @@ class StrategySpec:
     transitions: tuple[TransitionSpec, ...] = ()  # added transitions
     while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
     capacity: "CapacitySpec | None" = None  # its arrivals and resources, when it changes them
+    start_on: tuple[str, ...] = ()  # treatment starts on entering one of these states
+    stop_on: tuple[str, ...] = ()  # and stops on entering one of these
+    then: tuple[LineSpec, ...] = ()  # later treatments, each after the one before stops
+
+    @property
+    def phased(self) -> bool:
+        """Whether treatment follows the patient's history (states entered), not the
+        clock alone."""
+        return bool(self.start_on or self.stop_on or self.then)
 
 
 @dataclass(frozen=True)
