@@ -193,3 +193,16 @@ def test_refusals(fields, path, phrase):
     text = scenario_text(*PATHWAY, COMPARATOR,
                          strategy("treat", changes=[nested(cost=10)], **fields))
     assert_refused(text, path, phrase)
+
+
+def test_a_later_treatment_that_could_lift_a_row_above_1_is_refused():
+    # 0.6 under a hazard ratio of 1.5 is 1 - 0.4^1.5 = 0.747, beside 0.3: above 1 (by hand)
+    text = scenario_text(
+        horizon(5), start(a=1), state("a"), state("b"), state("dead", absorbing=True),
+        probability("a", "b", 0.3), probability("a", "a", "remainder"),
+        probability("b", "dead", 0.6, name="die_b"), probability("b", "a", 0.3),
+        probability("b", "b", "remainder"), COMPARATOR,
+        strategy("treat", stop_on="b", changes=[nested(cost=1)],
+                 then=[nested(name="second",
+                              changes=[nested(transition="die_b", hazard_ratio=1.5)])]))
+    assert_refused(text, "strategies.treat.transitions.b->*", "above 1")
