@@ -131,7 +131,7 @@ def command_trace(args) -> int:
     return 0
 
 
-def command_summary(args) -> int:
+def command_chain(args) -> int:
     """Per-cycle probabilities, steady state, absorption (closed form and/or up to the end)
     and expected outcomes of the cohort; each part says which form it takes and why."""
     from microsim.cohort.summaries import chain_summary, expected_outcomes
@@ -158,7 +158,7 @@ def command_summary(args) -> int:
     return 0
 
 
-PSA_OPTIONS = ("draws", "psa_patients", "workers", "backend", "address", "invalid_draws",
+PSA_OPTIONS = ("draws", "patients_per_draw", "workers", "backend", "address", "invalid_draws",
                "evppi", "evpi_years", "evpi_discount", "basis")
 ANALYSIS_OPTIONS = {"psa": ("the PSA", PSA_OPTIONS),
                     "sensitivity": ("the sensitivity analysis", ("two_way", "break_even", "grid")),
@@ -191,7 +191,7 @@ def command_run(args) -> int:
     psa = None
     if args.psa:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
-               "patients": args.psa_patients, "workers": args.workers or 1,
+               "patients": args.patients_per_draw, "workers": args.workers or 1,
                "backend": args.backend or "processes", "address": args.address,
                "progress": not args.json}
     result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws,
@@ -434,8 +434,9 @@ def build_parser() -> argparse.ArgumentParser:
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")
     trace.add_argument("--rows", type=ROWS, default=30, help="rows of the trace to print (default 30)")
-    add("summary", command_summary,
-        "Steady state, absorption times and probabilities, expected outcomes of the cohort.")
+    add("chain", command_chain,
+        "The cohort's Markov chain in figures: per-cycle probabilities, steady state, "
+        "absorption (time in each state, where patients end), expected outcomes.")
     validate = add("validate", command_validate, "Simulate the model and compare it, state by "
                    "state and time by time, with its analytic counterpart; say if they agree.")
     population_options(validate)
@@ -468,7 +469,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--json", action="store_true", help="print a machine-readable JSON summary")
     run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
     run.add_argument("--draws", type=COUNT, help="PSA outer draws (default: the scenario's)")
-    run.add_argument("--psa-patients", type=COUNT, help="PSA inner patients per draw")
+    run.add_argument("--patients-per-draw", type=COUNT, help="PSA: patients per draw "
+                     "(uncertainty.patients_per_draw)")
     run.add_argument("--workers", type=COUNT, help="PSA worker processes (default 1)")
     run.add_argument("--backend", choices=("processes", "dask"),
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")

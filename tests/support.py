@@ -140,7 +140,7 @@ def event(name: str, states, **fields) -> str:
 
 
 def population(size: int, *attributes: Nested, **fields) -> str:
-    return _block("population", {"size": size, "attributes": list(attributes) or None,
+    return _block("population", {"patients": size, "attributes": list(attributes) or None,
                                  **fields}, array=False)
 
 

@@ -38,11 +38,11 @@ def simulated_psa(seed: int, strategies=("usual", "new")) -> pd.DataFrame:
     covariance = np.einsum("dpi,dpj->dij", centred, centred) / (PATIENTS - 1)
     rows = {"draw": np.repeat(np.arange(DRAWS), 2),
             "strategy": np.tile(strategies, DRAWS),
-            "cost": np.column_stack([np.zeros(DRAWS), means[:, 1]]).ravel(),
-            "effect": np.column_stack([np.zeros(DRAWS), means[:, 0]]).ravel(),
-            "incremental_cost_within_variance": np.column_stack(
+            "costs_discounted": np.column_stack([np.zeros(DRAWS), means[:, 1]]).ravel(),
+            "qalys_discounted": np.column_stack([np.zeros(DRAWS), means[:, 0]]).ravel(),
+            "incremental_costs_within_variance": np.column_stack(
                 [np.zeros(DRAWS), covariance[:, 1, 1]]).ravel(),
-            "incremental_effect_within_variance": np.column_stack(
+            "incremental_qalys_within_variance": np.column_stack(
                 [np.zeros(DRAWS), covariance[:, 0, 0]]).ravel(),
             "incremental_within_covariance": np.column_stack(
                 [np.zeros(DRAWS), covariance[:, 0, 1]]).ravel(),
@@ -91,11 +91,11 @@ def test_the_factor_at_the_threshold_is_the_variance_split():
         strategy("new", changes=[{"cost": 1.0}]), section("economics", threshold=16000)))
     draws = simulated_psa(3)
     draws["incremental_nmb_within_variance"] = (
-        16000**2 * draws.incremental_effect_within_variance
-        - 2 * 16000 * draws.incremental_within_covariance + draws.incremental_cost_within_variance)
+        16000**2 * draws.incremental_qalys_within_variance
+        - 2 * 16000 * draws.incremental_within_covariance + draws.incremental_costs_within_variance)
     split = psa_module.variance_split(scenario, draws).set_index("strategy")
     table = economics.acceptability_without_noise(draws, [16000.0]).set_index("strategy")
-    gain = (16000 * draws.effect - draws.cost)[draws.strategy == "new"]
+    gain = (16000 * draws.qalys_discounted - draws.costs_discounted)[draws.strategy == "new"]
     assert table.loc["new", "noise_scale"] ** 2 * gain.var(ddof=1) == pytest.approx(
         split.loc["new", "between_draw_variance"], rel=1e-9)
 
@@ -113,8 +113,8 @@ def test_three_strategies_share_out_the_draws_and_the_summary_carries_the_column
 
 
 def test_one_patient_a_draw_leaves_nothing_to_take_out():
-    draws = simulated_psa(6).assign(patients=1, incremental_cost_within_variance=np.nan,
-                                    incremental_effect_within_variance=np.nan,
+    draws = simulated_psa(6).assign(patients=1, incremental_costs_within_variance=np.nan,
+                                    incremental_qalys_within_variance=np.nan,
                                     incremental_within_covariance=np.nan)
     table = economics.acceptability_without_noise(draws, THRESHOLDS)
     assert table.probability_best.isna().all() and table.noise_scale.isna().all()

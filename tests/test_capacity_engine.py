@@ -73,7 +73,7 @@ def test_a_capacity_that_never_binds_gives_the_event_engines_histories(name, mon
 
 
 def test_arrivals_that_never_wait_live_the_event_engines_lives_on_their_own_clocks():
-    s = parse_scenario(RICH.replace("[population]\nsize = 300\n",
+    s = parse_scenario(RICH.replace("[population]\npatients = 300\n",
                                     "[arrivals]\nrate = 4\n\n[population]\n"))
     cm = bind_capacity(s)
     run = replication(s, cm, SEED, 0, None)

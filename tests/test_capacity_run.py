@@ -142,7 +142,7 @@ def test_strategies_share_patients_and_draws_replication_by_replication():
         shared = min(len(a.arrival), len(c.arrival))
         assert c.arrival[:shared] == pytest.approx(a.arrival[:shared] * 1.5 / 1.8, rel=1e-12)
     increments = result.increments.set_index(["strategy", "measure"])
-    assert increments.loc[("three", "incremental_cost"), "groups"] == 4
+    assert increments.loc[("three", "incremental_costs"), "groups"] == 4
     waits = result.queues.set_index(["strategy", "measure"]).loc[:, "mean"]
     assert waits[("three", "mean_wait")] < waits[("two", "mean_wait")] < waits[("busier", "mean_wait")]
     assert set(result.outcomes.strategy) == {"two", "three", "busier", REFERENCE}

@@ -63,7 +63,7 @@ def test_an_open_population_estimates_its_warm_up_unless_told_and_a_cohort_start
     s = parse_scenario(edited(SERVICE, ("warm_up = 30\n", "")))
     assert s.capacity.replications.warm_up is None  # MSER-5
     closed = parse_scenario(edited(SERVICE, ('[arrivals]\nrate = "referrals"\n', ""),
-                                   ("[population]\n", "[population]\nsize = 50\n"),
+                                   ("[population]\n", "[population]\npatients = 50\n"),
                                    ("warm_up = 30\n", ""), ("[tables.referrals]", "[tables.unused]")))
     assert closed.capacity.arrivals is None and closed.capacity.replications.warm_up == 0.0
     assert closed.population.size == 50
@@ -263,7 +263,7 @@ CASES = [
      [('waiting = ["waiting"]\n', 'waiting = ["waiting"]\n\n[population]\n\n'
                                   '  [[population.attributes]]\n  name = "x"\n'
                                   '  distribution = "normal"\n  mean = 0\n  sd = 1\n')],
-     "population.size", "is required"),
+     "population.patients", "is required"),
     ("capacity in a cycle model", "discrete", [],
      "resources", "capacity runs in continuous time"),
     ("an open population for a lifetime", "service",

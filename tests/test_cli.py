@@ -96,7 +96,7 @@ BAD = {
     "negative_rate": (RATE, "transitions.well->dead.rate"),
     "undefined_parameter": (GOOD.replace("cost = 100", 'cost = "c_well"'), "states.well.cost"),
 }
-WRITING = [["trace"], ["summary"], ["run", "--patients", "10"], ["population", "--patients", "10"],
+WRITING = [["trace"], ["chain"], ["run", "--patients", "10"], ["population", "--patients", "10"],
            ["sensitivity", "--patients", "10"]]
 
 
@@ -223,7 +223,7 @@ def subcommands() -> list[str]:
 
 def test_every_documented_command_exists():
     # the commands of the README's table
-    assert {"check", "trace", "summary", "population", "run", "sensitivity",
+    assert {"check", "trace", "chain", "population", "run", "sensitivity",
             "benchmark"} <= set(subcommands())
 
 
@@ -238,7 +238,7 @@ def test_help_works_for_every_command(command, capsys):
 
 @pytest.mark.parametrize("command, tables", [
     (["population", "--patients", "200"], {"population", "population_summary"}),
-    (["summary"], {"expected_outcomes"}),
+    (["chain"], {"expected_outcomes"}),
     (["sensitivity", "--patients", "100"], {"one_way"}),
 ])
 def test_demo_commands_run_and_write(command, tables, tmp_path, capsys):
@@ -443,7 +443,7 @@ def test_ctrl_c_during_a_psa_keeps_its_draws_and_says_where(tmp_path):
     draws = out / WARD.stem / "psa" / "draws"
     process = subprocess.Popen(
         [ENTRY_POINT, "run", WARD, "--patients", "20", "--psa", "--draws", "5000",
-         "--psa-patients", "100", "--out", out], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+         "--patients-per-draw", "100", "--out", out], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
         text=True)
     try:
         deadline = time.monotonic() + 120
@@ -482,7 +482,7 @@ def test_population_and_sensitivity_use_the_seed_given(tmp_path, capsys):
 
 def test_a_psa_resumed_with_another_seed_is_refused_before_any_work(tmp_path, capsys):
     command = ["run", str(WARD), "--patients", "20", "--psa", "--draws", "2",
-               "--psa-patients", "20", "--out", str(tmp_path)]
+               "--patients-per-draw", "20", "--out", str(tmp_path)]
     assert main([*command, "--seed", "1"]) == 0
     capsys.readouterr()
     before = snapshot(tmp_path)

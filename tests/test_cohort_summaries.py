@@ -1,4 +1,4 @@
-"""The chain summary (`microsim.cohort.summaries.chain_summary`, `microsim summary`) against
+"""The chain summary (`microsim.cohort.summaries.chain_summary`, `microsim chain`) against
 outside references: scipy.integrate.quad for survival integrals of Weibull and Gompertz
 hazards, hand-built numpy products of per-cycle matrices, the fundamental matrix of
 Kemeny & Snell (1960, "Finite Markov Chains", ch. 3) by numpy.linalg.inv, and the
@@ -348,7 +348,7 @@ def test_semi_markov_model_says_it_is_not_exact():
 def test_summary_command_prints_the_time_dependent_table(tmp_path, capsys):
     path = tmp_path / "weibull.toml"
     path.write_text(weibull_text())
-    assert main(["summary", str(path), "--out", str(tmp_path)]) == 0
+    assert main(["chain", str(path), "--out", str(tmp_path)]) == 0
     out = capsys.readouterr()
     assert out.err == ""
     assert "Absorption up to the end of the horizon, 10 years" in out.out
@@ -364,7 +364,7 @@ def test_summary_command_prints_the_time_dependent_table(tmp_path, capsys):
 def test_summary_command_names_both_tables_of_a_homogeneous_model(tmp_path, capsys):
     path = tmp_path / "chain.toml"
     path.write_text(homogeneous_cycle_text(20))
-    assert main(["summary", str(path), "--out", str(tmp_path)]) == 0
+    assert main(["chain", str(path), "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
     assert "Absorption, closed form" in out and "Absorption up to the end of the horizon" in out
     for name in ("absorption", "absorption_to_end", "steady_state", "expected_outcomes"):

@@ -77,7 +77,7 @@ def test_paired_increments_are_numpy_differences_of_the_patients_outcomes(run):
     for name in ("targeted", "everyone"):
         delta_cost = per_patient(d, name, COST) - base_cost
         delta_effect = per_patient(d, name, EFFECT) - base_effect
-        expected = {"incremental_cost": delta_cost, "incremental_effect": delta_effect,
+        expected = {"incremental_costs": delta_cost, "incremental_qalys": delta_effect,
                     "incremental_nmb": lam * delta_effect - delta_cost}
         table = d.increments[d.increments.strategy == name].set_index("measure")
         for measure, x in expected.items():

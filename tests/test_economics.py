@@ -36,10 +36,10 @@ def test_incremental_analysis_with_strong_and_extended_dominance():
     assert r["A"].status == "frontier" and pd.isna(r["A"].icer) and pd.isna(r["A"].compared_with)
     assert (r["B"].status, r["B"].dominated_by) == ("extendedly dominated", "A and C")
     assert (r["C"].status, r["C"].compared_with) == ("frontier", "A")
-    assert (r["C"].incremental_cost, r["C"].incremental_effect, r["C"].icer) == (3000, 1, 3000)
+    assert (r["C"].incremental_costs, r["C"].incremental_qalys, r["C"].icer) == (3000, 1, 3000)
     assert (r["D"].status, r["D"].dominated_by) == ("dominated", "C")
     assert (r["E"].status, r["E"].compared_with) == ("frontier", "C")
-    assert (r["E"].incremental_cost, r["E"].incremental_effect, r["E"].icer) == (5000, 0.5, 10000)
+    assert (r["E"].incremental_costs, r["E"].incremental_qalys, r["E"].icer) == (5000, 0.5, 10000)
     assert all(pd.isna(r[s].icer) for s in "BD")
 
 
@@ -91,7 +91,7 @@ def test_frontier_icers_give_the_net_benefit_decision(points, threshold, seed):
     assert (frontier.icer.iloc[1:].diff().dropna() >= -1e-9 * frontier.icer.abs().max()).all()
     chosen = frontier[~(frontier.icer > threshold)].iloc[-1]
     best = best_strategy(names, costs, effects, threshold).iloc[0]
-    assert best.nmb == pytest.approx(threshold * chosen.effect - chosen.cost, rel=1e-9, abs=1e-6)
+    assert best.nmb == pytest.approx(threshold * chosen.qalys_discounted - chosen.costs_discounted, rel=1e-9, abs=1e-6)
     order = np.random.default_rng(seed).permutation(len(names))
     shuffled = incremental_analysis([names[i] for i in order], [costs[i] for i in order], [effects[i] for i in order])
     pd.testing.assert_frame_equal(shuffled, table)
@@ -127,9 +127,9 @@ def two_strategy_psa(n_draws, seed):
     so its incremental NMB at lambda is N(0.5 lambda - 8000, 0.16 lambda^2 + 6000^2)."""
     rng = np.random.default_rng(seed)
     draws = np.arange(n_draws)
-    new = pd.DataFrame({"draw": draws, "strategy": "new", "cost": rng.normal(8000, 6000, n_draws),
-                        "effect": rng.normal(0.5, 0.4, n_draws)})
-    usual = pd.DataFrame({"draw": draws, "strategy": "usual", "cost": 0.0, "effect": 0.0})
+    new = pd.DataFrame({"draw": draws, "strategy": "new", "costs_discounted": rng.normal(8000, 6000, n_draws),
+                        "qalys_discounted": rng.normal(0.5, 0.4, n_draws)})
+    usual = pd.DataFrame({"draw": draws, "strategy": "usual", "costs_discounted": 0.0, "qalys_discounted": 0.0})
     return pd.concat([usual, new], ignore_index=True)
 
 
@@ -151,7 +151,7 @@ def test_plane_points_are_increments_against_the_comparator(normal_psa):
     plane = cost_effectiveness_plane(normal_psa, "usual")
     new = normal_psa[normal_psa.strategy == "new"].sort_values("draw")
     assert set(plane.strategy) == {"new"} and len(plane) == N_PSA
-    np.testing.assert_array_equal(plane.incremental_cost.to_numpy(), new.cost.to_numpy())
+    np.testing.assert_array_equal(plane.incremental_costs.to_numpy(), new.costs_discounted.to_numpy())
     with pytest.raises(ValueError):
         cost_effectiveness_plane(normal_psa, "nobody")
 
@@ -159,11 +159,11 @@ def test_plane_points_are_increments_against_the_comparator(normal_psa):
 def test_plane_keeps_the_draw_labels_it_was_given():
     # Hand-made table: draws labelled 7 and 3, rows in no particular order.
     psa = pd.DataFrame({"draw": [7, 3, 3, 7], "strategy": ["b", "a", "b", "a"],
-                        "cost": [50.0, 10.0, 40.0, 20.0], "effect": [1.5, 1.0, 1.2, 1.1]})
+                        "costs_discounted": [50.0, 10.0, 40.0, 20.0], "qalys_discounted": [1.5, 1.0, 1.2, 1.1]})
     plane = cost_effectiveness_plane(psa, "a")
     assert list(plane.draw) == [3, 7] and list(plane.strategy) == ["b", "b"]
-    np.testing.assert_allclose(plane.incremental_cost, [30.0, 30.0])
-    np.testing.assert_allclose(plane.incremental_effect, [0.2, 0.4])
+    np.testing.assert_allclose(plane.incremental_costs, [30.0, 30.0])
+    np.testing.assert_allclose(plane.incremental_qalys, [0.2, 0.4])
 
 
 def test_acceptability_against_the_normal_closed_form(normal_psa):
@@ -176,8 +176,8 @@ def test_acceptability_against_the_normal_closed_form(normal_psa):
         p = stats.norm.cdf(mu / sigma)
         row = curve[(curve.threshold == threshold) & (curve.strategy == "new")].iloc[0]
         assert abs(row.probability_best - p) / math.sqrt(p * (1 - p) / N_PSA) < 4
-        assert row.on_frontier == (mu > 0)
-    assert curve.groupby("threshold").on_frontier.sum().eq(1).all()
+        assert row.on_acceptability_frontier == (mu > 0)
+    assert curve.groupby("threshold").on_acceptability_frontier.sum().eq(1).all()
 
 
 def test_evpi_against_the_normal_closed_form(normal_psa):
@@ -190,7 +190,7 @@ def test_evpi_against_the_normal_closed_form(normal_psa):
     for threshold in THRESHOLDS:
         mu, sigma = incremental_nmb_distribution(threshold)
         expected = mu * stats.norm.cdf(mu / sigma) + sigma * stats.norm.pdf(mu / sigma) - max(mu, 0.0)
-        x = threshold * new.effect.to_numpy() - new.cost.to_numpy()
+        x = threshold * new.qalys_discounted.to_numpy() - new.costs_discounted.to_numpy()
         per_draw = np.maximum(x, 0) - x * (mu > 0)
         assert abs(evpi.loc[threshold, "evpi"] - expected) / (per_draw.std(ddof=1) / math.sqrt(N_PSA)) < 4
 
@@ -202,11 +202,11 @@ def test_evpi_is_never_negative_and_zero_when_one_strategy_always_wins():
     n = 2000
     base_cost, base_effect = rng.gamma(2.0, 1000.0, n), rng.normal(1.0, 0.3, n)
     psa = pd.concat([
-        pd.DataFrame({"draw": np.arange(n), "strategy": "winner", "cost": base_cost, "effect": base_effect}),
-        pd.DataFrame({"draw": np.arange(n), "strategy": "loser", "cost": base_cost + rng.gamma(1.0, 100.0, n),
-                      "effect": base_effect - rng.gamma(1.0, 0.05, n)}),
-        pd.DataFrame({"draw": np.arange(n), "strategy": "third", "cost": rng.normal(3000, 1500, n),
-                      "effect": rng.normal(1.1, 0.3, n)}),
+        pd.DataFrame({"draw": np.arange(n), "strategy": "winner", "costs_discounted": base_cost, "qalys_discounted": base_effect}),
+        pd.DataFrame({"draw": np.arange(n), "strategy": "loser", "costs_discounted": base_cost + rng.gamma(1.0, 100.0, n),
+                      "qalys_discounted": base_effect - rng.gamma(1.0, 0.05, n)}),
+        pd.DataFrame({"draw": np.arange(n), "strategy": "third", "costs_discounted": rng.normal(3000, 1500, n),
+                      "qalys_discounted": rng.normal(1.1, 0.3, n)}),
     ])
     thresholds = np.linspace(0, 100_000, 11)
     assert (per_person_evpi(psa, thresholds).evpi >= 0).all()
@@ -251,7 +251,7 @@ def test_paired_difference_matches_scipy_and_covers_the_truth():
     assert row.standard_error == pytest.approx(stats.sem(nmb), rel=1e-10)
     assert (row.lower, row.upper) == pytest.approx(stats.norm.interval(0.9, loc=nmb.mean(), scale=stats.sem(nmb)))
     assert abs(row["mean"] - 500.0) / row.standard_error < 4
-    assert abs(table.loc["incremental_effect", "mean"] - 0.05) / table.loc["incremental_effect", "standard_error"] < 4
+    assert abs(table.loc["incremental_qalys", "mean"] - 0.05) / table.loc["incremental_qalys", "standard_error"] < 4
     assert table.n.eq(n).all()
 
 

@@ -87,8 +87,8 @@ def test_evpi_bounds_evppi_and_every_parameter_together_is_the_evpi():
     costs = np.column_stack([cost[:, 0], 0.4 * cost[:, 0] + 100.0 * theta[:, 2]])
     draws = pd.DataFrame({"draw": np.repeat(np.arange(N_DRAWS), 3),
                           "strategy": np.tile(["usual", "a", "b"], N_DRAWS),
-                          "cost": np.column_stack([np.zeros(N_DRAWS), costs]).ravel(),
-                          "effect": np.column_stack([np.zeros(N_DRAWS), effects]).ravel()})
+                          "costs_discounted": np.column_stack([np.zeros(N_DRAWS), costs]).ravel(),
+                          "qalys_discounted": np.column_stack([np.zeros(N_DRAWS), effects]).ravel()})
     parameters = pd.DataFrame({"draw": np.arange(N_DRAWS), "t1": theta[:, 0],
                                "t2": theta[:, 1], "t3": theta[:, 2]})
     table = evppi_table(parameters, draws, [("t1",), ("t2", "t3"), ("t1", "t2", "t3")],
@@ -109,8 +109,8 @@ def test_noise_inflates_evpi_from_the_draws_but_not_evppi():
     theta, effect, cost = psa_sample(seed=9, noise=3000.0)
     draws = pd.DataFrame({"draw": np.repeat(np.arange(N_DRAWS), 2),
                           "strategy": np.tile(["usual", "new"], N_DRAWS),
-                          "cost": np.column_stack([np.zeros(N_DRAWS), cost]).ravel(),
-                          "effect": np.column_stack([np.zeros(N_DRAWS), effect]).ravel()})
+                          "costs_discounted": np.column_stack([np.zeros(N_DRAWS), cost]).ravel(),
+                          "qalys_discounted": np.column_stack([np.zeros(N_DRAWS), effect]).ravel()})
     truth = closed_form((0, 1, 2), THRESHOLDS[1])
     direct = economics.per_person_evpi(draws, THRESHOLDS[1:2]).evpi.item()
     found = partial_value(theta, effect, cost, THRESHOLDS[1:2], seed=2)

@@ -221,7 +221,7 @@ def psa_scenario(policy="refuse", hr=None) -> str:
         probability("well", "dead", "p_base"), probability("well", "well", "remainder"),
         strategy("usual", comparator=True),
         strategy("new", changes=[{"state": "well", "cost": 100.0}]),
-        section("uncertainty", draws=30, patients=10, invalid_draws=policy),
+        section("uncertainty", draws=30, patients_per_draw=10, invalid_draws=policy),
         section("simulation", seed=9))
 
 

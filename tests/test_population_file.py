@@ -54,7 +54,7 @@ def base_text(**added) -> str:
                                          any=[dict(attribute="smoker", equals=True),
                                               dict(attribute="group", one_of=["a"])]),
                  changes=[nested(transition="well->dead", hazard_ratio="hr_drug")], **added),
-        section("uncertainty", draws=2, patients=20),
+        section("uncertainty", draws=2, patients_per_draw=20),
         title="population file test", provenance=PROVENANCE)
 
 
@@ -361,7 +361,7 @@ def test_a_command_reads_the_file_once(tmp_path, monkeypatch, capsys):
     monkeypatch.setattr(population_file, "raw_table", lambda path: reads.append(path) or
                         original(path))
     path = write(tmp_path)
-    argv = ["run", str(path), "--patients", "50", "--psa", "--draws", "2", "--psa-patients",
+    argv = ["run", str(path), "--patients", "50", "--psa", "--draws", "2", "--patients-per-draw",
             "20", "--out", str(tmp_path / "out")]
     assert main(argv) == 0
     assert len(reads) == 1

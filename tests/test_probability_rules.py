@@ -271,7 +271,7 @@ def file_scenario(tmp_path, markers) -> Path:
     text = covariate_model("separate")
     start_ = text.index("[population]")
     path = tmp_path / "scenario.toml"
-    path.write_text(text[:start_] + '[population]\nsize = 50\nfile = "people.csv"\n')
+    path.write_text(text[:start_] + '[population]\npatients = 50\nfile = "people.csv"\n')
     return path
 
 

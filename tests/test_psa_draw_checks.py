@@ -44,7 +44,7 @@ def two_betas(policy: str | None = None, utility=0.9) -> str:
                    u_well=dict(value=0.9, distribution=utility)),
         strategy("usual", comparator=True),
         strategy("slower", changes=[{"transition": "well->sick", "hazard_ratio": 0.8}]),
-        section("uncertainty", draws=DRAWS, patients=20, invalid_draws=policy),
+        section("uncertainty", draws=DRAWS, patients_per_draw=20, invalid_draws=policy),
         section("simulation", seed=SEED))
 
 
@@ -158,7 +158,7 @@ def test_vectorised_role_checks_agree_with_the_scalar_ones(role):
 def test_the_command_line_refuses_or_redraws(tmp_path, capsys):
     path = tmp_path / "two.toml"
     path.write_text(two_betas(utility=BETA_UTILITY))
-    base = ["run", str(path), "--patients", "40", "--psa", "--draws", "8", "--psa-patients", "10"]
+    base = ["run", str(path), "--patients", "40", "--psa", "--draws", "8", "--patients-per-draw", "10"]
     assert main([*base, "--out", str(tmp_path / "refused")]) == 2
     error = capsys.readouterr().err.strip()
     assert error.startswith("error: transitions.well->*: PSA draw ") and "\n" not in error

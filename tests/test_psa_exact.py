@@ -37,7 +37,7 @@ def model_text(*extra: str, basis: str = "exact", memory=None) -> str:
         strategy("usual", comparator=True),
         strategy("drug", changes=[nested(transition="well->dead", hazard_ratio="hr"),
                                   nested(cost="c_drug")]),
-        section("population", size=PATIENTS),
+        section("population", patients=PATIENTS),
         *extra, section("uncertainty", draws=DRAWS, basis=basis),
         section("economics", threshold=THRESHOLD), section("simulation", seed=3)
     ) + '\n[[population.attributes]]\nname = "diabetes"\ndistribution = "yesno"\nprevalence = 0.3\n'
@@ -59,8 +59,8 @@ def test_each_exact_draw_is_the_patients_closed_form_averaged_by_hand(tmp_path):
         cost = C_WELL + (0.0 if row.strategy == "usual" else row.c_drug)
         years = share * life(R * DIABETES_HR * hr) + (1 - share) * life(R * hr)
         assert row.life_years == pytest.approx(years, rel=1e-9)
-        assert row.effect == pytest.approx(years, rel=1e-9)
-        assert row.cost == pytest.approx(cost * years, rel=1e-9)
+        assert row.qalys_discounted == pytest.approx(years, rel=1e-9)
+        assert row.costs_discounted == pytest.approx(cost * years, rel=1e-9)
     assert (result.results.filter(like="within") == 0).all().all()
     assert result.variance is None  # no inner noise: nothing to split
 
@@ -74,7 +74,7 @@ def test_the_simulated_basis_agrees_with_the_exact_one_draw_by_draw(tmp_path):
     np.testing.assert_array_equal(exact.draws.to_numpy(), simulated.draws.to_numpy())
 
     def incremental_nmb(results):
-        nmb = (THRESHOLD * results.effect - results.cost).to_numpy().reshape(-1, 2)
+        nmb = (THRESHOLD * results.qalys_discounted - results.costs_discounted).to_numpy().reshape(-1, 2)
         return nmb[:, 1] - nmb[:, 0]
 
     # the simulated draws have their own patients, so each differs from the exact value

@@ -24,7 +24,7 @@ MODEL = scenario_text(
     strategy("usual", comparator=True),
     strategy("drug", changes=[nested(transition="well->dead", hazard_ratio="hr"),
                               nested(cost="c_drug")]),
-    section("uncertainty", draws=40, patients=30, evppi=["hr"]),
+    section("uncertainty", draws=40, patients_per_draw=30, evppi=["hr"]),
     section("economics", thresholds={"from": 0, "to": 40000, "step": 20000}))
 
 

@@ -30,7 +30,7 @@ MODEL = scenario_text(
     rate("ill", "dead", "r_death"),
     parameters(c_day=dict(value=100, distribution=dict(family="gamma", shape=100, scale=1)),
                r_death=dict(value=0.1, distribution=dict(family="gamma", shape=25, scale=0.004))),
-    section("uncertainty", draws=DRAWS, patients=PATIENTS), section("simulation", seed=SEED),
+    section("uncertainty", draws=DRAWS, patients_per_draw=PATIENTS), section("simulation", seed=SEED),
     title="psa without strategies")
 SCENARIO = parse_scenario(MODEL)
 
@@ -57,16 +57,15 @@ def test_a_psa_without_strategies_gives_the_model_as_written_per_draw(tmp_path):
         se = np.sqrt(variance / PATIENTS)  # time alive; cost and QALYs scale it
         years = 1 / 365.25  # life years and QALYs are counted in (Julian) years
         assert abs(row.life_years - years * mean) < Z * years * se, row
-        assert abs(row.cost - row.c_day * mean) < Z * row.c_day * se, row
-        assert abs(row.effect - UTILITY * years * mean) < Z * UTILITY * years * se, row
+        assert abs(row.costs_discounted - row.c_day * mean) < Z * row.c_day * se, row
+        assert abs(row.qalys_discounted - UTILITY * years * mean) < Z * UTILITY * years * se, row
 
 
 def test_its_outcomes_are_the_mean_and_95_percent_interval_of_the_draws(tmp_path):
     result = run(tmp_path)
     table = result.outcomes.set_index("measure")
-    for column, measure in (("cost", "costs_discounted"), ("effect", "qalys_discounted"),
-                            ("life_years", "life_years")):
-        values = result.results[column].to_numpy()
+    for measure in ("costs_discounted", "qalys_discounted", "life_years"):
+        values = result.results[measure].to_numpy()
         assert table.loc[measure, "mean"] == pytest.approx(np.mean(values), rel=1e-12)
         low, high = np.percentile(values, [2.5, 97.5])
         assert table.loc[measure, ["lower", "upper"]].tolist() == pytest.approx([low, high])
@@ -84,7 +83,7 @@ def test_run_psa_on_a_scenario_without_strategies_writes_and_says_so(tmp_path, c
     path.write_text(MODEL)
     out = tmp_path / "out"
     assert main(["run", str(path), "--patients", "50", "--psa", "--draws", "3",
-                 "--psa-patients", "40", "--out", str(out)]) == 0
+                 "--patients-per-draw", "40", "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "need at least two" in printed
     folder = out / "plain" / "latest"

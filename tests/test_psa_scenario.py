@@ -71,7 +71,7 @@ def test_the_reference_run_is_complete(reference):
     assert sorted(reference.results.draw.unique()) == list(range(DRAWS))
     assert (reference.results.patients == PATIENTS).all()
     assert set(reference.results.strategy) == {"usual", "rehab"}
-    assert reference.results.cost.nunique() == 2 * DRAWS  # the draws really differ
+    assert reference.results.costs_discounted.nunique() == 2 * DRAWS  # the draws really differ
 
 
 def test_two_worker_processes_give_the_same_tables(reference, tmp_path):

@@ -47,7 +47,7 @@ def folder(tmp_path_factory) -> Path:
     folder, and its report."""
     out = tmp_path_factory.mktemp("runs")
     assert main(["run", str(DEMO), "--patients", "300", "--psa", "--draws", "8",
-                 "--psa-patients", "40", "--evppi", "hr_therapy", "--sensitivity", "--grid",
+                 "--patients-per-draw", "40", "--evppi", "hr_therapy", "--sensitivity", "--grid",
                  "3", "--budget", "--out", str(out), "--report"]) == 0
     return out / DEMO.stem / "latest"
 

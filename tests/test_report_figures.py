@@ -79,11 +79,11 @@ def test_the_plane_shows_every_draw_the_base_case_and_the_threshold():
     rng = np.random.default_rng(3)
     plane = pd.DataFrame([(d, name, rng.normal(500, 200), rng.normal(0.05, 0.02))
                           for d in range(40) for name in STRATEGIES[1:]],
-                         columns=["draw", "strategy", "incremental_cost", "incremental_effect"])
+                         columns=["draw", "strategy", "incremental_costs", "incremental_qalys"])
     increments = pd.DataFrame([(name, m, mean, 1.0, mean - 10, mean + 10, 100)
                                for name in STRATEGIES[1:]
-                               for m, mean in [("incremental_cost", 480.0),
-                                               ("incremental_effect", 0.04),
+                               for m, mean in [("incremental_costs", 480.0),
+                                               ("incremental_qalys", 0.04),
                                                ("incremental_nmb", 320.0)]],
                               columns=["strategy", "measure", "mean", "standard_error", "lower",
                                        "upper", "n"])
@@ -109,7 +109,7 @@ def acceptability() -> pd.DataFrame:
         rows += [(t, "usual", 1 - p_drug, 100.0, best == "usual"),
                  (t, "drug", p_drug, 90.0, best == "drug")]
     return pd.DataFrame(rows, columns=["threshold", "strategy", "probability_best",
-                                       "expected_nmb", "on_frontier"])
+                                       "expected_nmb", "on_acceptability_frontier"])
 
 
 def test_acceptability_has_a_curve_per_strategy_and_the_frontier():
@@ -119,7 +119,7 @@ def test_acceptability_has_a_curve_per_strategy_and_the_frontier():
     frontier = next(line for line in ax.lines if "frontier" in line.get_label())
     curves = [line for line in ax.lines if line.get_label() in LABELS.values()]
     assert len(curves) == 2
-    expected = table[table.on_frontier].sort_values("threshold")
+    expected = table[table.on_acceptability_frontier].sort_values("threshold")
     np.testing.assert_array_equal(frontier.get_ydata(), expected.probability_best)
     assert_written(figure)
 

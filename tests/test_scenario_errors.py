@@ -283,8 +283,8 @@ CASES = [
     ("centre for a yes/no attribute", "discrete",
      [('attribute = "marker"', 'attribute = "smoker"\n  centre = 1')],
      "transitions.well->sick.effects[0].centre", "'smoker' is a yes/no attribute"),
-    ("population size zero", "discrete", [("size = 100", "size = 0")],
-     "population.size", "must be at least 1"),
+    ("population size zero", "discrete", [("patients = 100", "patients = 0")],
+     "population.patients", "must be at least 1"),
     ("attribute sd zero", "discrete", [("sd = 5", "sd = 0")],
      "population.attributes.age.sd", "must be above 0, got 0"),
     ("truncation leaves nobody", "discrete", [("lower = 30\n  upper = 70", "lower = 200\n  upper = 300")],
@@ -317,7 +317,7 @@ CASES = [
      [("[simulation]", '[[population.derived]]\nname = "band"\nfrom = "sex"\nedges = [0]\n'
                        'labels = ["all"]\n\n[simulation]')],
      "population.derived.band.from", "'sex' is not a continuous attribute or column"),
-    ("weights without file", "discrete", [("size = 100", 'size = 100\nweights = "w"')],
+    ("weights without file", "discrete", [("patients = 100", 'patients = 100\nweights = "w"')],
      "population.weights", "only used with file"),
     # outcomes
     ("unknown correction", "discrete", [("discount_costs = 0.035", 'correction = "half"')],
@@ -434,22 +434,22 @@ def file_population(tmp_path, population: str) -> ScenarioError:
 
 
 @pytest.mark.parametrize("population, path, phrase", [
-    ('[population]\nsize = 10\nfile = "absent.csv"', "population.file", "no such file"),
-    ('[population]\nsize = 10\nfile = "patients.txt"', "population.file", ".csv or .parquet"),
-    ('[population]\nsize = 10\nfile = "patients.csv"\nweights = "w"', "population.weights",
+    ('[population]\npatients = 10\nfile = "absent.csv"', "population.file", "no such file"),
+    ('[population]\npatients = 10\nfile = "patients.txt"', "population.file", ".csv or .parquet"),
+    ('[population]\npatients = 10\nfile = "patients.csv"\nweights = "w"', "population.weights",
      "'w' is not a column of patients.csv"),
-    ('[population]\nsize = 10\nfile = "patients.csv"\n[[population.attributes]]\nname = "x"\n'
+    ('[population]\npatients = 10\nfile = "patients.csv"\n[[population.attributes]]\nname = "x"\n'
      'distribution = "yesno"\nprevalence = 0.5', "population.attributes",
      "cannot be combined with file"),
-    ('[population]\nsize = 10\nfile = "empty.csv"', "population.file",
+    ('[population]\npatients = 10\nfile = "empty.csv"', "population.file",
      "cannot read the column names"),
     # the effect in the base reads `marker`, which the file does not have
-    ('[population]\nsize = 10\nfile = "patients.csv"', "transitions.well->sick.effects[0].attribute",
+    ('[population]\npatients = 10\nfile = "patients.csv"', "transitions.well->sick.effects[0].attribute",
      "the population has no attribute 'marker'"),
-    ('[population]\nsize = 10\nfile = "reserved.csv"', "population.file",
+    ('[population]\npatients = 10\nfile = "reserved.csv"', "population.file",
      "reserved.csv has a column named 'patient', which is reserved for the patient id"),
     # the weights column is not an attribute: `marker` holds weights here
-    ('[population]\nsize = 10\nfile = "marker.csv"\nweights = "marker"',
+    ('[population]\npatients = 10\nfile = "marker.csv"\nweights = "marker"',
      "transitions.well->sick.effects[0].attribute",
      "the population has no attribute 'marker'; attributes: age"),
 ])

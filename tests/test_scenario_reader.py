@@ -10,6 +10,7 @@ import pytest
 
 from microsim.scenario import Scenario, ScenarioError, parse_scenario, read_scenario
 from microsim.scenario.spec import REMAINDER, HazardSpec
+from support import assert_refused, horizon, rate, scenario_text, section, start, state
 
 SCENARIOS = Path(__file__).resolve().parent.parent / "scenarios"
 
@@ -275,7 +276,7 @@ def test_file_population_reads_only_the_header(tmp_path):
     pd.DataFrame({"age": [50, 60], "sex": ["m", "f"], "w": [1.0, 2.0]}).to_csv(
         tmp_path / "patients.csv", index=False)
     path = tmp_path / "scenario.toml"
-    path.write_text(population_text('\n[population]\nsize = 10\nfile = "patients.csv"\n'
+    path.write_text(population_text('\n[population]\npatients = 10\nfile = "patients.csv"\n'
                                     'weights = "w"\n[[population.derived]]\nname = "band"\n'
                                     'from = "age"\nedges = [0, 55]\nlabels = ["young", "old"]\n'))
     pop = read_scenario(path).population
@@ -286,13 +287,13 @@ def test_file_population_reads_only_the_header(tmp_path):
 def test_parquet_population(tmp_path):
     pd.DataFrame({"sex": ["m", "f"]}).to_parquet(tmp_path / "people.parquet")
     path = tmp_path / "scenario.toml"
-    path.write_text(population_text('\n[population]\nsize = 3\nfile = "people.parquet"\n'))
+    path.write_text(population_text('\n[population]\npatients = 3\nfile = "people.parquet"\n'))
     assert read_scenario(path).population.file.name == "people.parquet"
 
 
 def test_normal_attribute_without_truncation_gets_infinite_bounds():
     s = parse_scenario(population_text(
-        '\n[population]\nsize = 2\n[[population.attributes]]\nname = "sex"\n'
+        '\n[population]\npatients = 2\n[[population.attributes]]\nname = "sex"\n'
         'distribution = "categorical"\nlevels = ["f", "m"]\nshares = [0.5, 0.5]\n'
         '[[population.attributes]]\nname = "height"\ndistribution = "normal"\nmean = 170\nsd = 10\n'))
     height = s.population.attributes[1]
@@ -301,9 +302,17 @@ def test_normal_attribute_without_truncation_gets_infinite_bounds():
 
 def test_derived_bands_may_open_at_minus_infinity():
     s = parse_scenario(population_text(
-        '\n[population]\nsize = 2\n[[population.attributes]]\nname = "sex"\n'
+        '\n[population]\npatients = 2\n[[population.attributes]]\nname = "sex"\n'
         'distribution = "categorical"\nlevels = ["f", "m"]\nshares = [0.5, 0.5]\n'
         '[[population.attributes]]\nname = "height"\ndistribution = "normal"\nmean = 170\nsd = 10\n'
         '[[population.derived]]\nname = "tall"\nfrom = "height"\nedges = [-inf, 180]\n'
         'labels = ["no", "yes"]\n'))
     assert s.population.derived[0].edges == (-math.inf, 180.0)
+
+
+@pytest.mark.parametrize("section_name, old, new", [("population", "size", "patients"),
+                                                    ("uncertainty", "patients", "patients_per_draw")])
+def test_a_renamed_key_is_refused_with_its_new_name(section_name, old, new):
+    text = scenario_text(horizon(5), start(well=1.0), state("well"), state("dead", absorbing=True),
+                         rate("well", "dead", 0.1), section(section_name, **{old: 10}))
+    assert_refused(text, f"{section_name}.{old}", f"is now called {new!r}")

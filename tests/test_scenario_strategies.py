@@ -62,7 +62,7 @@ def base_text(**added) -> str:
                  **added),
         section("economics", threshold=30000, thresholds={"from": 0, "to": 50000, "step": 500},
                 currency="test dollars", precision=100),
-        section("uncertainty", draws=20, patients=50,
+        section("uncertainty", draws=20, patients_per_draw=50,
                 correlation=nested(parameters=["p_sick", "hr_drug"], matrix=[[1, 0.3], [0.3, 1]])),
         title="Test", provenance=PROVENANCE)
 
@@ -424,8 +424,8 @@ CASES = [
     # uncertainty
     ("draws zero", "base", [("draws = 20", "draws = 0")],
      "uncertainty.draws", "must be at least 1, got 0"),
-    ("patients not whole", "base", [("patients = 50", "patients = 50.5")],
-     "uncertainty.patients", "must be a whole number"),
+    ("patients not whole", "base", [("patients_per_draw = 50", "patients_per_draw = 50.5")],
+     "uncertainty.patients_per_draw", "must be a whole number"),
     ("correlation of an undefined parameter", "base",
      [('parameters = ["p_sick", "hr_drug"]', 'parameters = ["p_sick", "hr_drugs"]')],
      "uncertainty.correlation.parameters[1]", "no parameter named 'hr_drugs' (did you mean "

@@ -48,8 +48,8 @@ def toy_model(draw, values):
     noise = np.random.default_rng(draw).normal(0.0, 10.0, size=2)
     return pd.DataFrame({
         "strategy": ["usual care", "new drug"],
-        "cost": [1000 * values["a"] + noise[0], 1000 * values["a"] + 400 + noise[1]],
-        "effect": [values["b"], values["b"] + 0.3 * values["c"]],
+        "costs_discounted": [1000 * values["a"] + noise[0], 1000 * values["a"] + 400 + noise[1]],
+        "qalys_discounted": [values["b"], values["b"] + 0.3 * values["c"]],
     })
 
 
@@ -175,7 +175,7 @@ def reference_run(draws, tmp_path_factory):
 
 def test_results_are_in_draw_order_and_written_to_disk(reference_run, draws, tmp_path):
     run = run_draws(toy_model, draws, tmp_path, fingerprint=FINGERPRINT, progress=False)
-    assert list(run.columns) == ["draw", "strategy", "cost", "effect"]
+    assert list(run.columns) == ["draw", "strategy", "costs_discounted", "qalys_discounted"]
     assert run["draw"].tolist() == np.repeat(draws["draw"], 2).tolist()
     values = draws.drop(columns="draw").to_dict("records")
     expected = pd.concat([toy_model(d, v) for d, v in zip(draws["draw"], values)], ignore_index=True)

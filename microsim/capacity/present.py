@@ -89,7 +89,7 @@ def print_service(result: ServiceResult) -> None:
     if result.warm_up.note:
         print(f"Note: {result.warm_up.note}.")
     if any(runs.cut for runs in result.strategies.values()):
-        print("Note: arrivals stopped at the limit on patients (--patients or population.size) "
+        print("Note: arrivals stopped at the limit on patients (--patients or population.patients) "
               "before the end of the run; the service then emptied.")
     for resource in next(iter(result.strategies.values())).cm.resources:
         show(f"Waiting for {resource.label} (mean over {len(result.windows)} groups; waits in "

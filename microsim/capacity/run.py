@@ -240,7 +240,7 @@ def paired_increments(groups: pd.DataFrame, comparator: str, threshold: float) -
             continue
         cost = wide[(name, "costs_discounted")] - wide[(comparator, "costs_discounted")]
         effect = wide[(name, "qalys_discounted")] - wide[(comparator, "qalys_discounted")]
-        for measure, values in (("incremental_cost", cost), ("incremental_effect", effect),
+        for measure, values in (("incremental_costs", cost), ("incremental_qalys", effect),
                                 ("incremental_nmb", threshold * effect - cost)):
             rows.append((name, measure, *interval(values)))
     return pd.DataFrame(rows, columns=["strategy", "measure", "mean", "se", "lower", "upper",

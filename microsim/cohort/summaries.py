@@ -1,6 +1,6 @@
 """The analytic side of a scenario as tidy tables: cohort trace, chain summary, outcomes.
 
-These are what `microsim trace` and `microsim summary` print and write; they take a bound
+These are what `microsim trace` and `microsim chain` print and write; they take a bound
 model, so a PSA draw or a strategy is summarised the same way as the base case.
 
 The chain summary answers "where does a patient go, and for how long" in the form the model

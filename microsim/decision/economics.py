@@ -88,10 +88,10 @@ def incremental_analysis(strategies, costs, effects) -> pd.DataFrame:
     for i in order:
         j = previous.get(i)
         rows.append({
-            "strategy": names[i], "cost": cost[i], "effect": effect[i], "status": status[i],
+            "strategy": names[i], "costs_discounted": cost[i], "qalys_discounted": effect[i], "status": status[i],
             "dominated_by": dominated_by.get(i), "compared_with": None if j is None else names[j],
-            "incremental_cost": np.nan if j is None else cost[i] - cost[j],
-            "incremental_effect": np.nan if j is None else effect[i] - effect[j],
+            "incremental_costs": np.nan if j is None else cost[i] - cost[j],
+            "incremental_qalys": np.nan if j is None else effect[i] - effect[j],
             "icer": np.nan if j is None else icer(j, i),
         })
     table = pd.DataFrame(rows)
@@ -119,7 +119,7 @@ def net_benefit(strategies, costs, effects, thresholds) -> pd.DataFrame:
     return pd.DataFrame({
         "threshold": np.repeat(lam, len(names)),
         "strategy": pd.Series(np.tile(names, len(lam)), dtype="string"),
-        "cost": np.tile(cost, len(lam)), "effect": np.tile(effect, len(lam)),
+        "costs_discounted": np.tile(cost, len(lam)), "qalys_discounted": np.tile(effect, len(lam)),
         "nmb": nmb.ravel(), "nhb": nhb.ravel(), "best": best.ravel(),
     })
 
@@ -132,13 +132,13 @@ def best_strategy(strategies, costs, effects, thresholds) -> pd.DataFrame:
 
 def _psa_arrays(psa: pd.DataFrame) -> tuple[list[str], np.ndarray, np.ndarray, np.ndarray]:
     """Strategies (first-appearance order), sorted draw labels, (draws x strategies) cost and effect."""
-    missing = {"draw", "strategy", "cost", "effect"} - set(psa.columns)
+    missing = {"draw", "strategy", "costs_discounted", "qalys_discounted"} - set(psa.columns)
     if missing:
         raise ValueError(f"PSA table lacks columns {sorted(missing)}")
     strategies = list(pd.unique(psa["strategy"]))
-    wide = psa.pivot(index="draw", columns="strategy", values=["cost", "effect"])
-    cost = wide["cost"].reindex(columns=strategies).to_numpy(dtype=float)
-    effect = wide["effect"].reindex(columns=strategies).to_numpy(dtype=float)
+    wide = psa.pivot(index="draw", columns="strategy", values=["costs_discounted", "qalys_discounted"])
+    cost = wide["costs_discounted"].reindex(columns=strategies).to_numpy(dtype=float)
+    effect = wide["qalys_discounted"].reindex(columns=strategies).to_numpy(dtype=float)
     if not (np.all(np.isfinite(cost)) and np.all(np.isfinite(effect))):
         raise ValueError("every draw needs a finite cost and effect for every strategy")
     return [str(s) for s in strategies], wide.index.to_numpy(), cost, effect
@@ -161,8 +161,8 @@ def cost_effectiveness_plane(psa: pd.DataFrame, comparator: str) -> pd.DataFrame
     return pd.DataFrame({
         "draw": np.repeat(draws, len(others)),
         "strategy": pd.Series(np.tile([strategies[i] for i in others], len(draws)), dtype="string"),
-        "incremental_cost": (cost[:, others] - cost[:, [k]]).ravel(),
-        "incremental_effect": (effect[:, others] - effect[:, [k]]).ravel(),
+        "incremental_costs": (cost[:, others] - cost[:, [k]]).ravel(),
+        "incremental_qalys": (effect[:, others] - effect[:, [k]]).ravel(),
     })
 
 
@@ -174,7 +174,7 @@ def acceptability_curve(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
     ties go to the first strategy in table order, so the shares sum to one. The frontier
     (Fenwick, Claxton & Sculpher 2001, "Representing uncertainty: the role of
     cost-effectiveness acceptability curves") is the strategy with the highest expected NMB,
-    marked by `on_frontier`.
+    marked by `on_acceptability_frontier`.
     """
     strategies, lam, nmb = _psa_nmb(psa, thresholds)
     n_strategies = len(strategies)
@@ -187,11 +187,11 @@ def acceptability_curve(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
         "threshold": np.repeat(lam, n_strategies),
         "strategy": pd.Series(np.tile(strategies, len(lam)), dtype="string"),
         "probability_best": probability.ravel(), "expected_nmb": expected.ravel(),
-        "on_frontier": frontier.ravel(),
+        "on_acceptability_frontier": frontier.ravel(),
     })
 
 
-WITHIN = ("incremental_cost_within_variance", "incremental_effect_within_variance",
+WITHIN = ("incremental_costs_within_variance", "incremental_qalys_within_variance",
           "incremental_within_covariance", "patients")
 
 
@@ -301,7 +301,7 @@ def paired_difference(comparator_costs, comparator_effects, costs, effects,
     delta_cost, delta_effect = arrays[2] - arrays[0], arrays[3] - arrays[1]
     z = _normal_quantile(confidence)
     rows = []
-    for measure, values in (("incremental_cost", delta_cost), ("incremental_effect", delta_effect),
+    for measure, values in (("incremental_costs", delta_cost), ("incremental_qalys", delta_effect),
                             ("incremental_nmb", lam * delta_effect - delta_cost)):
         mean, se = values.mean(), values.std(ddof=1) / math.sqrt(values.size)
         rows.append({"measure": measure, "mean": mean, "standard_error": se,

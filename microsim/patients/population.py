@@ -216,7 +216,7 @@ def check_population(spec: PopulationSpec) -> None:
     weights are checked when it is read.
     """
     if spec.size is not None and spec.size < 1:
-        raise ScenarioError("population.size", f"must be at least 1, got {spec.size}")
+        raise ScenarioError("population.patients", f"must be at least 1, got {spec.size}")
     taken = {PATIENT}
     for attribute in spec.attributes:
         if attribute.name in taken:

@@ -243,20 +243,20 @@ class Report:
                 f"Per strategy: mean per patient ({CI95}: ±1.96 Monte-Carlo SE); costs in {cur}"),
             tables.by_strategy(
                 "increments", run.table("increments"),
-                ["incremental_cost", "incremental_effect", "incremental_nmb"],
+                ["incremental_costs", "incremental_qalys", "incremental_nmb"],
                 Column("", ("mean", "lower", "upper"), interval), self.strategy_labels,
                 f"Against {self.comparator} on the same patients: mean "
                 f"per patient ({CI95}, paired); money in {cur}"),
             tables.table("incremental_analysis", run.table("incremental_analysis"), [
                 Column("strategy", ("strategy",), self.label),
-                Column(f"costs, discounted {money}", ("cost",), number),
-                Column("QALYs, discounted", ("effect",), number),
+                Column(f"costs, discounted {money}", ("costs_discounted",), number),
+                Column("QALYs, discounted", ("qalys_discounted",), number),
                 Column("status", ("status", "dominated_by"),
                        lambda s, by: s if tables.missing(by) else f"{s} by {by}"),
                 Column("compared with", ("compared_with",),
                        lambda c: "–" if tables.missing(c) else self.label(c)),
-                Column(f"incremental costs {money}", ("incremental_cost",), number),
-                Column("incremental QALYs", ("incremental_effect",), number),
+                Column(f"incremental costs {money}", ("incremental_costs",), number),
+                Column("incremental QALYs", ("incremental_qalys",), number),
                 Column(f"ICER ({cur} per QALY)", ("icer",), number)],
                 "Incremental analysis: dominance and ICERs along the frontier"),
             tables.table("net_benefit", run.table("net_benefit"), [
@@ -303,7 +303,7 @@ class Report:
                 *([Column("without the inner patients' noise",
                           ("probability_best_noise_removed",), percent)] if noise else []),
                 Column(f"expected NMB ({cur})", ("expected_nmb",), number),
-                Column("on the frontier", ("on_frontier",), lambda b: "yes" if b else "")],
+                Column("on the frontier", ("on_acceptability_frontier",), lambda b: "yes" if b else "")],
                 f"PSA at {number(near)} {cur} per QALY",
                 "Without the inner patients' noise: each draw's incremental net benefit moved "
                 "towards the mean by sqrt(between / (between + within / n)) (O'Hagan, "

@@ -110,20 +110,20 @@ def ce_plane_figure(plane: pd.DataFrame, increments: pd.DataFrame, threshold: fl
         ax = figure.subplots()
         for k, name in enumerate(ordered(plane.strategy)):
             style, part = series_style(k), plane[plane.strategy == name]
-            ax.scatter(part.incremental_effect, part.incremental_cost, s=12,
+            ax.scatter(part.incremental_qalys, part.incremental_costs, s=12,
                        marker=style["marker"], facecolors="none", edgecolors=style["color"],
                        linewidths=0.7, alpha=0.7,
                        label=wrapped(f"{strategies.get(name, name)}: PSA draws", 36))
             if name in base.index:
-                effect = base.loc[name, ("mean", "incremental_effect")]
-                cost = base.loc[name, ("mean", "incremental_cost")]
+                effect = base.loc[name, ("mean", "incremental_qalys")]
+                cost = base.loc[name, ("mean", "incremental_costs")]
                 ax.errorbar(effect, cost, fmt=style["marker"], markersize=8,
                             markerfacecolor=style["color"], markeredgecolor=INK, ecolor=INK,
                             elinewidth=0.9, capsize=3,
-                            xerr=[[effect - base.loc[name, ("lower", "incremental_effect")]],
-                                  [base.loc[name, ("upper", "incremental_effect")] - effect]],
-                            yerr=[[cost - base.loc[name, ("lower", "incremental_cost")]],
-                                  [base.loc[name, ("upper", "incremental_cost")] - cost]],
+                            xerr=[[effect - base.loc[name, ("lower", "incremental_qalys")]],
+                                  [base.loc[name, ("upper", "incremental_qalys")] - effect]],
+                            yerr=[[cost - base.loc[name, ("lower", "incremental_costs")]],
+                                  [base.loc[name, ("upper", "incremental_costs")] - cost]],
                             label=wrapped(f"{strategies.get(name, name)}: base case (95% CI)", 36))
         ax.axhline(0, color=INK, linewidth=0.6)
         ax.axvline(0, color=INK, linewidth=0.6)
@@ -150,7 +150,7 @@ def acceptability_figure(acceptability: pd.DataFrame, threshold: float,
     with house_style():
         figure = new_figure(6.4, 3.8)
         ax = figure.subplots()
-        frontier = acceptability[acceptability.on_frontier].sort_values("threshold")
+        frontier = acceptability[acceptability.on_acceptability_frontier].sort_values("threshold")
         ax.plot(frontier.threshold, frontier[column], color="#bdbdbd", linewidth=7,
                 solid_capstyle="butt", label="acceptability frontier (highest expected NMB)")
         for k, name in enumerate(ordered(acceptability.strategy)):

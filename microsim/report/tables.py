@@ -18,8 +18,8 @@ CI95 = "95% CI"
 MEASURES = {  # column values of the result tables -> what a reader calls them
     "costs_discounted": "costs, discounted", "qalys_discounted": "QALYs, discounted",
     "life_years": "life years", "costs": "costs, undiscounted", "qalys": "QALYs, undiscounted",
-    "incremental_cost": "incremental costs, discounted",
-    "incremental_effect": "incremental QALYs, discounted",
+    "incremental_costs": "incremental costs, discounted",
+    "incremental_qalys": "incremental QALYs, discounted",
     "incremental_nmb": "incremental net monetary benefit",
 }
 

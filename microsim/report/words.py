@@ -86,8 +86,8 @@ def frontier(summary: dict, labels: Mapping[str, str]) -> list:
         if row["status"] == "frontier" and row["compared_with"]:
             other = name(row["compared_with"], row["compared_with"])
             parts += [f"{strategy} against {other} costs ",
-                      key(summary, f"{path}.incremental_cost"),
-                      f" {cur} more for ", key(summary, f"{path}.incremental_effect"),
+                      key(summary, f"{path}.incremental_costs"),
+                      f" {cur} more for ", key(summary, f"{path}.incremental_qalys"),
                       " more QALYs, an ICER of ", key(summary, f"{path}.icer"),
                       f" {cur} per QALY. "]
         elif row["status"] == "frontier":

@@ -61,6 +61,12 @@ def closest(word: str, choices: Iterable[str]) -> str | None:
     return folded[close[0]] if close else None
 
 
+RENAMED = {  # keys of earlier versions -> their names now, so that an old file is told
+    "population.size": "patients",  # --patients
+    "uncertainty.patients": "patients_per_draw",  # --patients-per-draw
+}
+
+
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """' (did you mean 'x'?)' when a choice is close to `word`, else ''."""
     close = closest(word, choices)
@@ -190,9 +196,13 @@ class Node:
         raise ScenarioError(self.at(key), message)
 
     def only(self, allowed: Iterable[str], where: str = "") -> None:
-        """Refuse keys outside `allowed` (typos): say which keys are allowed."""
+        """Refuse keys outside `allowed` (typos): say which keys are allowed, or the new
+        name of a renamed key."""
         allowed = list(allowed)
         for key in self.data:
+            if self.at(key) in RENAMED:
+                self.fail(key, f"is now called {RENAMED[self.at(key)]!r} (the name its "
+                               "command-line option has); rename the key")
             if key not in allowed:
                 self.fail(key, f"unknown key{where}{did_you_mean(key, allowed)}; "
                                f"allowed keys: {listing(allowed)}")

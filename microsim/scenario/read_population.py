@@ -12,7 +12,7 @@ from .fields import (AGE, ANY, MAX_PATIENTS, POSITIVE, PROBABILITY, REQUIRED, SH
 from .population_file import read_header
 from .spec import AttributeSpec, DerivedSpec, PopulationSpec
 
-POPULATION_KEYS = ("size", "attributes", "correlation", "derived", "file", "weights")
+POPULATION_KEYS = ("patients", "attributes", "correlation", "derived", "file", "weights")
 ATTRIBUTE_KEYS = {
     "normal": ("mean", "sd", "lower", "upper"), "lognormal": ("meanlog", "sdlog"),
     "uniform": ("lower", "upper"), "beta": ("alpha", "beta"), "gamma": ("shape", "scale"),
@@ -31,7 +31,7 @@ def read_population(node: Node | None, base: Path, fixed_size: bool = True
     if node is None:
         return None
     node.only(POPULATION_KEYS)
-    size = node.whole("size", REQUIRED if fixed_size else None, minimum=1, maximum=MAX_PATIENTS)
+    size = node.whole("patients", REQUIRED if fixed_size else None, minimum=1, maximum=MAX_PATIENTS)
     if node.has("file"):
         for key in ("attributes", "correlation"):
             if node.has(key):

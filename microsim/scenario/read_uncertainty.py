@@ -8,7 +8,7 @@ from .errors import ScenarioError
 from .fields import IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
 from .spec import INVALID_DRAWS, PSA_BASES, Scenario, UncertaintySpec
 
-UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "invalid_draws", "evppi",
+UNCERTAINTY_KEYS = ("draws", "patients_per_draw", "correlation", "dirichlet", "invalid_draws", "evppi",
                     "basis")
 MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
@@ -34,7 +34,7 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         dirichlets.append((members, alphas))
     return UncertaintySpec(
         draws=node.whole("draws", defaults.draws, minimum=1, maximum=1_000_000),
-        patients=node.whole("patients", None, minimum=1, maximum=MAX_PATIENTS),
+        patients=node.whole("patients_per_draw", None, minimum=1, maximum=MAX_PATIENTS),
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
         invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
         evppi=read_evppi_groups(node),

@@ -95,18 +95,18 @@ def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresho
     same draws: threshold, group, parameters, evppi, se, evpi, edf, method.
 
     `parameters` holds each draw's values (column `draw`, one per parameter), `results`
-    each draw's cost and effect per strategy (the PSA's tables)."""
+    each draw's discounted costs and QALYs per strategy (the PSA's tables)."""
     plane = economics.cost_effectiveness_plane(results, comparator)
     order = list(dict.fromkeys(plane.strategy))
     gains = {m: plane.pivot(index="draw", columns="strategy", values=f"incremental_{m}")
-             .reindex(columns=order) for m in ("effect", "cost")}
-    values = parameters.set_index("draw").loc[gains["effect"].index]
+             .reindex(columns=order) for m in ("qalys", "costs")}
+    values = parameters.set_index("draw").loc[gains["qalys"].index]
     lam = np.asarray(thresholds, dtype=float)
     evpi = economics.per_person_evpi(results, lam)["evpi"].to_numpy()
     frames = []
     for group in groups:
         found = partial_value(values[list(group)].to_numpy(dtype=float),
-                              gains["effect"].to_numpy(), gains["cost"].to_numpy(), lam, seed)
+                              gains["qalys"].to_numpy(), gains["costs"].to_numpy(), lam, seed)
         frames.append(pd.DataFrame({
             "threshold": lam, "group": " + ".join(group), "parameters": len(group),
             "evppi": found.evppi, "se": found.se, "evpi": evpi,

@@ -90,8 +90,8 @@ def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
     return pd.DataFrame(rows, columns=DRAW_COLUMNS)
 
 
-DRAW_COLUMNS = ["strategy", "cost", "effect", "life_years", "incremental_nmb_within_variance",
-                "incremental_cost_within_variance", "incremental_effect_within_variance",
+DRAW_COLUMNS = ["strategy", "costs_discounted", "qalys_discounted", "life_years", "incremental_nmb_within_variance",
+                "incremental_costs_within_variance", "incremental_qalys_within_variance",
                 "incremental_within_covariance", "patients"]
 
 
@@ -134,7 +134,7 @@ def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
     between-draw variance best (O'Hagan, Stevenson & Madan 2007)."""
     threshold = scenario.economics.threshold
     names = strategy_names(scenario)
-    nmb = (threshold * results["effect"] - results["cost"]).to_numpy()
+    nmb = (threshold * results["qalys_discounted"] - results["costs_discounted"]).to_numpy()
     table = results.assign(nmb=nmb).pivot(index="draw", columns="strategy", values="nmb")
     rows = []
     for name in names[1:]:

@@ -31,7 +31,7 @@ def summarise_draws(results: pd.DataFrame, thresholds, comparator: str) -> dict[
     }
 
 
-MEASURES = {"cost": "costs_discounted", "effect": "qalys_discounted", "life_years": "life_years"}
+MEASURES = ("costs_discounted", "qalys_discounted", "life_years")  # columns of the draws
 
 
 def draw_intervals(results: pd.DataFrame) -> pd.DataFrame:
@@ -40,8 +40,8 @@ def draw_intervals(results: pd.DataFrame) -> pd.DataFrame:
     patients' Monte-Carlo noise widens it a little; the variance split says how much."""
     rows = []
     for name, group in results.groupby("strategy", sort=False):
-        for column, measure in MEASURES.items():
-            values = group[column].to_numpy(dtype=float)
+        for measure in MEASURES:
+            values = group[measure].to_numpy(dtype=float)
             lower, upper = np.percentile(values, [2.5, 97.5])
             rows.append((name, measure, float(values.mean()), float(lower), float(upper),
                          len(values)))
