@@ -182,8 +182,8 @@ class _Batch:
         for j, view in enumerate(self.levels[r][0]):
             mine = row == j
             if mine.any():
-                at = (lambda x: x[mine] if np.ndim(x) else x)
-                out[mine] = self.latent_by(view, rows[mine], e[mine], at(m), at(now), at(limit))
+                m_, now_, limit_ = (x[mine] if np.ndim(x) else x for x in (m, now, limit))
+                out[mine] = self.latent_by(view, rows[mine], e[mine], m_, now_, limit_)
         return out
 
     def latent_by(self, view, rows, e, m, now, limit) -> np.ndarray:
