@@ -109,7 +109,8 @@ def cohort_note(scenario) -> str:
         return ("\nNote: the cohort ignores [arrivals] and [[resources]]: it follows one "
                 "patient who never waits; `microsim run` simulates the service with its "
                 "queues.")
-    if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events):
+    if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events) \
+            or scenario.start.effects:
         return ("\nNote: one uniform cohort, every patient given the population's mean "
                 "attributes (the 'average patient'); `microsim validate` or `run` simulates "
                 "the heterogeneous population and shows how far this cohort is from it.")

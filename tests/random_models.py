@@ -297,6 +297,9 @@ class Draft:
             fields["discontinuation"] = self.uniform(0.05, 0.3, 3) / self.cycle
             self.features.add("discontinuation")
             self.heterogeneous = True
+        elif len(self.alive) > 1 and self.chance(0.3):
+            fields["start_on"] = self.pick(self.alive[1:])
+            self.features.add("treatment on entering a state")
         changes = []
         if changeable and (self.chance(0.8) or not addable):
             way = self.pick(changeable)
@@ -356,7 +359,7 @@ class Draft:
                            lifetime_cap=self.end)
         else:
             time = section("time", unit=self.unit, cycle=self.cycle, horizon=self.end)
-        blocks = [time, start(age=self.start_age, **self.shares)]
+        blocks = [time, self.start_block()]
         blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.state_cost(s))
                    for s in self.alive]
         blocks += [state(s, absorbing=True) for s in self.absorbing]
@@ -364,8 +367,17 @@ class Draft:
             if way.added:
                 continue
             if way.target is None:
-                blocks.append(event(EVENT, list(way.states), cost=self.uniform(0, 300, 1),
-                                    disutility=self.uniform(0, 0.05, 3), **self.way_fields(way)))
+                fields = self.way_fields(way)
+                states = list(way.states)
+                if len(states) > 1 and self.chance(0.5):
+                    kind = "probability" if self.cycles else "rate"
+                    value = self.values[way.parameter]
+                    fields[kind] = {states[0]: way.parameter, **{
+                        s: round(value * self.uniform(0.3, 1.0), 6) for s in states[1:]}}
+                    states = None
+                    self.features.add("event by state")
+                blocks.append(event(EVENT, states, cost=self.uniform(0, 300, 1),
+                                    disutility=self.uniform(0, 0.05, 3), **fields))
             else:
                 blocks.append(transition(way.source, way.target, cost=self.uniform(0, 300, 1),
                                          **self.way_fields(way)))
@@ -391,6 +403,19 @@ class Draft:
         return scenario_text(*blocks, title="random calibration model",
                              provenance="invented at random for the calibration test")
 
+    def start_block(self) -> str:
+        """[start], with the odds of starting in the second state depending on an attribute
+        in some models."""
+        effects = []
+        if len(self.shares) == 2 and self.attributes and self.chance(0.4):
+            name, second = self.pick(self.attributes), list(self.shares)[1]
+            fields = dict(centre=60.0) if name == "age" else dict(centre=1.0) \
+                if name == "marker" else dict(level=self.pick(GROUPS)) if name == "group" else {}
+            effects.append(nested(state=second, attribute=name, odds_ratio=self.ratio(0.3, 3.0),
+                                  **fields))
+            self.features.add("start shares by attribute")
+        return section("start", age=self.start_age, shares=self.shares, effects=effects or None)
+
     def finish(self, name: str, size: int, perturbations) -> RandomModel:
         # where the population has groups, drawn tables are by group too (no extra draws,
         # so the other models are unchanged)
@@ -399,7 +424,8 @@ class Draft:
                              if w.table and w.table[0].startswith("table_")}
             if self.by_level:
                 self.features.add("table by level")
-        return RandomModel(name, self.kind, frozenset(self.features), self.text(size),
+        text = self.text(size)  # first: writing the text adds features of its own
+        return RandomModel(name, self.kind, frozenset(self.features), text,
                            self.strategy, size, self.exact, tuple(perturbations),
                            self.heterogeneous)
 

@@ -50,7 +50,7 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     batch = mult.log_static.shape[0]
     # state-major with patients last (pi (E, B), matrices (E, E, B)): every product runs
     # over contiguous patients
-    pi = np.repeat(exp.start()[:, None], batch, axis=1)
+    pi = exp.start_rows(mult.start, batch).T.copy()
     expanded = [pi]
     flows_per_cycle = []
     for n in range(model.n_cycles):

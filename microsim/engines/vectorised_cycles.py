@@ -123,7 +123,8 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
     plans = state_plans(model, names)
     read = sorted({0} | {step[1] for _, _, events, _ in plans for step in events})
     column = {purpose: j for j, purpose in enumerate(read)}  # purpose -> row of the draws
-    starts = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE)),
+    starts = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE),
+                                          mult),
                         np.int64).reshape(-1)
     batch = _Batch(model, mult, starts)
     records = [(np.arange(len(ids)), 0.0, START, starts, START)]  # (patients, time, from, to, risk)

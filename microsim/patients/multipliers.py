@@ -94,6 +94,7 @@ class Multipliers:
     age_slope: np.ndarray  # (risks,) log hazard ratio per time unit of attained age
     entry_age: np.ndarray | None  # (patients,) age at time 0, when known
     window: Window | None = None  # a strategy's treatment window
+    start: np.ndarray | None = None  # (patients, states) own start shares; None: the model's
     tables: tuple[LevelRows, ...] = ()  # the risks' tables by level, each patient's row
 
     def level_rows(self, r: int) -> LevelRows | None:
@@ -114,6 +115,7 @@ class Multipliers:
         return Multipliers(self.log_static[index], self.age_slope,
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index),
+                           None if self.start is None else self.start[index],
                            tuple(t.take(index) for t in self.tables))
 
     def unique(self) -> tuple["Multipliers", np.ndarray]:
@@ -125,6 +127,8 @@ class Multipliers:
             parts.append(self.entry_age[:, None])
         if self.window is not None:
             parts += [self.window.on[:, None], self.window.off[:, None]]
+        if self.start is not None:
+            parts.append(self.start)
         _, first, inverse = np.unique(np.hstack(parts), axis=0, return_index=True,
                                       return_inverse=True)
         return self.take(first), inverse.ravel()
@@ -135,7 +139,8 @@ class Multipliers:
         same = np.all(self.log_static == self.log_static[:1]) and (
             self.entry_age is None or np.all(self.entry_age == self.entry_age[0])) and (
             self.window is None or (np.all(self.window.on == self.window.on[0])
-                                    and np.all(self.window.off == self.window.off[0]))) and all(
+                                    and np.all(self.window.off == self.window.off[0]))) and (
+            self.start is None or np.all(self.start == self.start[:1])) and all(
             np.all(t.row == t.row[0]) for t in self.tables)
         return self.take(slice(0, 1)) if same else self
 
@@ -188,9 +193,26 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
             else:
                 log_static[:, r] += effect.log_hr * (covariate(effect.attribute, effect.level)
                                                       - effect.centre)
+    start = None
+    if model.start_effects:
+        logits = np.tile(np.log(np.where(model.start > 0, model.start, 1.0)), (n, 1))
+        for state, effect in model.start_effects:
+            x = ages if effect.attribute == AGE and effect.level is None else \
+                covariate(effect.attribute, effect.level)
+            logits[:, state] += effect.log_hr * (x - effect.centre)
+        start = start_shares(logits, model.start > 0)
     tables = tuple(level_rows(r, risk, patients, means)
                    for r, risk in enumerate(model.risks) if risk.level_table is not None)
-    return Multipliers(log_static, slope, ages, tables=tables)
+    return Multipliers(log_static, slope, ages, start=start, tables=tables)
+
+
+def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
+    """Each patient's start shares: the multinomial logit softmax(logits) over the states
+    with a start share (McFadden 1974, "Conditional logit analysis of qualitative choice
+    behavior"), shifted by each row's largest logit so that exp cannot overflow."""
+    logits = np.where(possible, logits, -np.inf)
+    weights = np.exp(logits - logits.max(axis=1, keepdims=True))
+    return weights / weights.sum(axis=1, keepdims=True)
 
 
 def level_rows(r: int, risk, patients: pd.DataFrame | None,
@@ -243,7 +265,8 @@ def cohort_multipliers(model: BoundModel) -> Multipliers:
 
 def _uses_age(model: BoundModel) -> bool:
     return any(e.attribute == AGE for r in model.risks for e in r.effects) or any(
-        r.clock == "age" for r in model.risks)
+        r.clock == "age" for r in model.risks) or any(
+        e.attribute == AGE for _, e in model.start_effects)
 
 
 def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
@@ -254,13 +277,17 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     The log multiplier is linear in the attributes (0/1 indicators for levels and yes/no),
     so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
     as its share of "yes", so a hazard ratio HR on it becomes HR ** share, and a table by
-    level gives the share-weighted geometric mean of its levels' hazards (`average_row`). Attained age moves
-    on from the mean entry age. Keeping every patient's window means that under a strategy
+    level gives the share-weighted geometric mean of its levels' hazards (`average_row`).
+    Attained age moves on from the mean entry age. Start shares that depend on attributes
+    take the mean attributes the same way: they enter the log odds linearly. Keeping every
+    patient's window means that under a strategy
     the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
     it differs from the mean of the patients' own results."""
     n = patients.size
     ages = None if cohort.entry_age is None else np.repeat(cohort.entry_age[:1], n)
+    start = None if cohort.start is None else np.repeat(cohort.start[:1], n, axis=0)
     return Multipliers(np.repeat(cohort.log_static[:1], n, axis=0), cohort.age_slope, ages,
-                       patients.window, tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables))
+                       patients.window, start,
+                       tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables))

@@ -56,7 +56,7 @@ def check_correction(s: Scenario) -> None:
 
 def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
     """Every transition and event with its field path."""
-    return ([(f"transitions.{t.key}", t) for t in s.transitions]
+    return ([(f"transitions.{t.where}", t) for t in s.transitions]
             + [(f"events.{e.name}", e) for e in s.events])
 
 
@@ -81,22 +81,25 @@ def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> st
 
 def check_states(s: Scenario) -> None:
     absorbing = {st.name for st in s.states if st.absorbing}
-    seen: set[str] = set()
+    seen: dict[str, TransitionSpec] = {}
     for t in s.transitions:
-        path = f"transitions.{t.key}"
+        path = f"transitions.{t.where}"
         for end, key in ((t.source, "from"), (t.target, "to")):
             if end not in s.state_names:
                 raise ScenarioError(f"{path}.{key}", unknown_state(end, s.state_names))
         if t.source in absorbing:
             raise ScenarioError(f"{path}.from", f"{t.source!r} is absorbing; an absorbing "
                                 "state has no outgoing transitions (patients stay in it)")
-        if t.key in seen:
+        if t.key in seen and t.key in (t.name, seen[t.key].name):
             raise ScenarioError(path, f"a second transition from {t.source!r} to "
-                                f"{t.target!r}; give each pair of states one transition")
-        seen.add(t.key)
+                                f"{t.target!r} without a name of its own; give each way "
+                                'between the same two states a name (name = "...", e.g. '
+                                "the cause), or merge them")
+        seen[t.key] = t
     for e in s.events:
+        kind = "probability" if e.probability is not None else "rate"
         for i, name in enumerate(e.states):
-            path = f"events.{e.name}.states[{i}]"
+            path = f"events.{e.name}." + (f"{kind}.{name}" if e.by_state else f"states[{i}]")
             if name not in s.state_names:
                 raise ScenarioError(path, unknown_state(name, s.state_names))
             if name in absorbing:
@@ -191,7 +194,7 @@ def check_kind(s: Scenario) -> None:
                                 "uses one kind throughout")
     for t in s.transitions:
         if not discrete and t.source == t.target:
-            raise ScenarioError(f"transitions.{t.key}.to", f"a rate from {t.source!r} to "
+            raise ScenarioError(f"transitions.{t.where}.to", f"a rate from {t.source!r} to "
                                 "itself changes nothing; use [[events]] for something that "
                                 "happens without a change of state")
 
@@ -248,8 +251,9 @@ def not_a_level(value, name: str, levels: Sequence, reading: Reading) -> str:
 
 def check_effects(s: Scenario, reading: Reading) -> None:
     kinds = attribute_kinds(s, reading)
-    for path, occurrence in occurrences(s):
-        for i, effect in enumerate(occurrence.effects):
+    for path, effects in [("start", s.start.effects)] + [
+            (path, o.effects) for path, o in occurrences(s)]:
+        for i, effect in enumerate(effects):
             here, name = f"{path}.effects[{i}]", effect.attribute
             if name not in kinds:
                 raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
@@ -349,7 +353,7 @@ def check_row(s: Scenario, state: str) -> None:
     for t in row:
         if t.probability == REMAINDER:
             if remainder is not None:
-                raise ScenarioError(f"transitions.{t.key}.probability", f'a second "remainder" '
+                raise ScenarioError(f"transitions.{t.where}.probability", f'a second "remainder" '
                                     f"from {state!r} (the first is {remainder.key}); at most "
                                     "one transition per state takes the remainder")
             remainder = t

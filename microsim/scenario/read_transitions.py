@@ -3,10 +3,12 @@ covariate effects and memory, and what each occurrence costs."""
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from typing import Any, Mapping
 
-from .fields import (ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, POSITIVE, PROBABILITY, RATE,
-                     Node, Reference, did_you_mean, listing, show)
+from .fields import (ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, ODDS_RATIO, POSITIVE,
+                     PROBABILITY, RATE, Node, Reference, did_you_mean, listing, show)
+from .spec import Ref
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
 SHARED_KEYS = ("probability", "rate", "hazard", "clock", "cost", "disutility", "effects",
@@ -20,22 +22,26 @@ HAZARD_ROLES = {("constant", "rate"): RATE, ("gompertz", "shape"): ANY}  # other
 CLOCKS = ("since_start", "since_entry", "age")
 DEFAULT_CLOCK = "since_entry"
 EFFECT_KEYS = ("attribute", "hazard_ratio", "coefficient", "centre", "level")
+START_EFFECT_KEYS = ("state", "attribute", "odds_ratio", "coefficient", "centre", "level")
 MEMORY_KEYS = ("after", "multipliers", "within", "multiplier")
 MAX_COEFFICIENT = 700.0  # exp(700) is close to the largest float
 
 
 def read_transitions(nodes: list[Node], tables: Mapping[str, TableSpec]
                      ) -> tuple[TransitionSpec, ...]:
+    pairs = [(node.data.get("from"), node.data.get("to")) for node in nodes]
     transitions = []
-    for node in nodes:
-        ends = (node.data.get("from"), node.data.get("to"))
+    for node, ends in zip(nodes, pairs):
+        parallel = pairs.count(ends) > 1
         if all(isinstance(end, str) and IDENTIFIER.fullmatch(end) for end in ends):
-            node.path = f"transitions.{ends[0]}->{ends[1]}"
+            name = node.data.get("name")
+            named = parallel and isinstance(name, str) and IDENTIFIER.fullmatch(name)
+            node.path = f"transitions.{ends[0]}->{ends[1]}" + (f"[{name}]" if named else "")
         node.only(TRANSITION_KEYS)
         source, target = node.name("from"), node.name("to")
         transitions.append(TransitionSpec(
             source=source, target=target, name=node.name("name", f"{source}->{target}"),
-            **read_occurrence(node, tables, remainder=True)))
+            parallel=parallel, **read_occurrence(node, tables, remainder=True)))
     return tuple(transitions)
 
 
@@ -45,9 +51,34 @@ def read_events(nodes: list[Node], tables: Mapping[str, TableSpec]) -> tuple[Eve
         name = node.name("name")
         node.path = f"events.{name}"
         node.only(EVENT_KEYS)
-        events.append(EventSpec(name=name, states=node.names("states"),
-                                **read_occurrence(node, tables, remainder=False)))
+        by_state = read_by_state(node)
+        if by_state is None:
+            events.append(EventSpec(name=name, states=node.names("states"),
+                                    **read_occurrence(node, tables, remainder=False)))
+            continue
+        kind, values = by_state
+        first = dict(node.data, **{kind: next(iter(values.values()))})
+        fields = read_occurrence(Node(first, node.path, node.reading), tables, remainder=False)
+        references = node.reading.references  # the first value is recorded by its state
+        references[:] = [r for r in references if r.path != node.at(kind)]
+        events.append(EventSpec(name=name, states=tuple(values), by_state=values, **fields))
     return tuple(events)
+
+
+def read_by_state(node: Node) -> tuple[str, dict[str, Ref]] | None:
+    """An event's `probability = { state = value }` or `rate = { ... }`: its value in each
+    state it can happen in (numbers or parameters); None for one value everywhere."""
+    kind = next((k for k in ("probability", "rate") if isinstance(node.data.get(k), dict)), None)
+    if kind is None:
+        return None
+    if node.has("states"):
+        node.fail("states", f"the states are the keys of {kind} = {{ state = value }}; "
+                            "remove states, or give one value for all of them")
+    by = Node(node.data[kind], node.at(kind), node.reading)
+    if not by.data:
+        by.fail(None, "must name at least one state, like { mild = 0.1, severe = 0.3 }")
+    role = PROBABILITY if kind == "probability" else RATE
+    return kind, {by._name(state, state): by.ref(state, role) for state in by.data}
 
 
 def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
@@ -70,13 +101,7 @@ def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
         hazard = read_hazard(node.node("hazard", None), tables)
         table = tables[hazard.params["table"]] if hazard.family == "table" else None
     effects = tuple(read_effect(n) for n in node.nodes("effects", EFFECT_KEYS))
-    seen: set[tuple[str, str | None]] = set()
-    for i, effect in enumerate(effects):
-        if (effect.attribute, effect.level) in seen:
-            node.fail(f"effects[{i}]", f"a second effect of {effect.attribute!r}"
-                      + (f" at level {effect.level!r}" if effect.level else "")
-                      + "; give each attribute (and level) one effect")
-        seen.add((effect.attribute, effect.level))
+    refuse_repeated_effects(node, effects)
     return dict(
         probability=probability, hazard=hazard, clock=read_clock(node, table),
         effects=effects,
@@ -110,10 +135,40 @@ def read_clock(node: Node, table: TableSpec | None) -> str:
     return table.clock
 
 
-def read_effect(node: Node) -> EffectSpec:
+def refuse_repeated_effects(node: Node, effects: tuple[EffectSpec, ...]) -> None:
+    seen: set[tuple] = set()
+    for i, effect in enumerate(effects):
+        if (effect.attribute, effect.level, effect.state) in seen:
+            node.fail(f"effects[{i}]", f"a second effect of {effect.attribute!r}"
+                      + (f" at level {effect.level!r}" if effect.level else "")
+                      + (f" on starting in {effect.state!r}" if effect.state else "")
+                      + "; give each attribute (and level) one effect")
+        seen.add((effect.attribute, effect.level, effect.state))
+
+
+def read_start_effects(node: Node, shares: Mapping[str, float]) -> tuple[EffectSpec, ...]:
+    """[[start.effects]]: odds ratios of starting in a state by attribute."""
+    effects = []
+    for effect_node in node.nodes("effects", START_EFFECT_KEYS):
+        state = effect_node.name("state")
+        if state not in shares:
+            effect_node.fail("state", f"no state named {state!r}{did_you_mean(state, shares)}; "
+                                      f"states: {listing(shares)}")
+        if shares[state] == 0:
+            effect_node.fail("state", f"{state!r} has start share 0, which no odds ratio can "
+                                      "raise; give it a share in start.shares (its share at "
+                                      "the reference attributes)")
+        effects.append(replace(read_effect(effect_node, "odds_ratio"), state=state))
+    effects = tuple(effects)
+    refuse_repeated_effects(node, effects)
+    return effects
+
+
+def read_effect(node: Node, ratio_key: str = "hazard_ratio") -> EffectSpec:
     attribute = node.name("attribute")
-    if node.one_of(("hazard_ratio", "coefficient")) == "hazard_ratio":
-        ratio, is_coefficient = node.ref("hazard_ratio", HAZARD_RATIO), False
+    if node.one_of((ratio_key, "coefficient")) == ratio_key:
+        role = HAZARD_RATIO if ratio_key == "hazard_ratio" else ODDS_RATIO
+        ratio, is_coefficient = node.ref(ratio_key, role), False
     else:
         coefficient = node.ref("coefficient", ANY)
         if isinstance(coefficient, str):

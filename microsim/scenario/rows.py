@@ -18,7 +18,7 @@ never exceeds 1, so no bound is needed.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Iterator, Mapping
 
 import numpy as np
@@ -56,11 +56,15 @@ class Row:
 
 
 def rows(s: Scenario) -> Iterator[Row]:
-    """The model's rows, then each strategy's rows that differ from them."""
+    """The model's rows, then each strategy's rows that differ from them (a sequence's
+    later treatments each as the strategy with their changes, its added transitions
+    counted as possibly on: an upper bound)."""
     yield from strategy_rows(s, None)
     for strategy in s.strategies:
         if strategy.changes or strategy.transitions:
             yield from strategy_rows(s, strategy)
+        for line in strategy.then:
+            yield from strategy_rows(s, replace(strategy, changes=line.changes))
 
 
 def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
@@ -76,7 +80,7 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
             if t.source != state.name:
                 continue
             own = k >= len(s.transitions)
-            path = f"{prefix if own else ''}transitions.{t.key}"
+            path = f"{prefix if own else ''}transitions.{t.where}"
             changed = changed or own
             if t.probability == REMAINDER:
                 remainder, remainder_path = t, path

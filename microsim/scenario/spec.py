@@ -7,7 +7,7 @@ binding of the same specs, not a new code path.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Literal, Mapping
 
@@ -91,6 +91,7 @@ class EffectSpec:
     level: str | None = None
     centre: float = 0.0
     coefficient: bool = False  # True when `hazard_ratio` holds a log-hazard coefficient
+    state: str | None = None  # start effects: the start state whose odds it multiplies
 
 
 @dataclass(frozen=True)
@@ -123,10 +124,16 @@ class TransitionSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0  # one-off, when the transition happens
     disutility: Ref = 0.0  # one-off QALY loss, when the transition happens
+    parallel: bool = False  # another transition joins the same two states (a second cause)
 
     @property
     def key(self) -> str:
         return f"{self.source}->{self.target}"
+
+    @property
+    def where(self) -> str:
+        """The transition in field paths: its pair, and its name when the pair is shared."""
+        return f"{self.key}[{self.name}]" if self.parallel and self.name != self.key else self.key
 
 
 @dataclass(frozen=True)
@@ -142,6 +149,17 @@ class EventSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0
     disutility: Ref = 0.0
+    by_state: Mapping[str, Ref] | None = None  # a probability or constant rate per state
+
+    def in_state(self, state: str) -> "EventSpec":
+        """The event as it happens in `state`: with its own value when it differs by state
+        (`probability` and `hazard` then hold the first state's, which fixes the kind)."""
+        if self.by_state is None:
+            return self
+        value = self.by_state[state]
+        if self.probability is not None:
+            return replace(self, probability=value)
+        return replace(self, hazard=HazardSpec("constant", {"rate": value}))
 
 
 @dataclass(frozen=True)
@@ -202,6 +220,8 @@ class ParameterSpec:
 class StartSpec:
     shares: Mapping[str, float]  # every state name in file order (0 if not given); sums to 1
     age: float | None = None  # cohort age at time 0, in time units
+    # odds ratios of starting in a state by attribute (a multinomial logit around `shares`)
+    effects: tuple[EffectSpec, ...] = ()
 
 
 DISCOUNTINGS = ("annual", "continuous")
@@ -294,6 +314,15 @@ class ChangeSpec:
 
 
 @dataclass(frozen=True)
+class LineSpec:
+    """A later treatment of a sequence: it starts when the one before it stops, and acts
+    through its own changes until a patient enters one of `stop_on`."""
+    name: str
+    stop_on: tuple[str, ...] = ()
+    changes: tuple[ChangeSpec, ...] = ()
+
+
+@dataclass(frozen=True)
 class StrategySpec:
     """One decision option: who is treated, when, and what treatment changes; added
     states and transitions extend the model for this strategy only."""
@@ -310,6 +339,15 @@ class StrategySpec:
     transitions: tuple[TransitionSpec, ...] = ()  # added transitions
     while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
     capacity: "CapacitySpec | None" = None  # its arrivals and resources, when it changes them
+    start_on: tuple[str, ...] = ()  # treatment starts on entering one of these states
+    stop_on: tuple[str, ...] = ()  # and stops on entering one of these
+    then: tuple[LineSpec, ...] = ()  # later treatments, each after the one before stops
+
+    @property
+    def phased(self) -> bool:
+        """Whether treatment follows the patient's history (states entered), not the
+        clock alone."""
+        return bool(self.start_on or self.stop_on or self.then)
 
 
 @dataclass(frozen=True)
