@@ -21,10 +21,11 @@ FAMILIES = {"constant": ConstantHazard, "weibull": WeibullHazard, "gompertz": Go
             "loglogistic": LogLogisticHazard}
 
 
-def table_hazard(table: TableSpec) -> PiecewiseConstantHazard:
-    """A table of rates as a hazard on its own clock; below the first start the first
-    value holds (the reader warns when that happens)."""
-    starts, values = list(table.starts), list(table.values)
+def table_hazard(table: TableSpec, row=None) -> PiecewiseConstantHazard:
+    """A table of rates (or one row of band values of it: a level's) as a hazard on its own
+    clock; below the first start the first value holds (the reader warns when that
+    happens)."""
+    starts, values = list(table.starts), list(table.values if row is None else row)
     if starts[0] > 0:
         starts, values = [0.0] + starts, values[:1] + values
     return PiecewiseConstantHazard(tuple(starts), tuple(values))
@@ -60,7 +61,8 @@ class BoundRisk:
     family: str | None  # hazard family (continuous models)
     params: Mapping[str, float]
     table: TableSpec | None  # the table of a "table" hazard
-    hazard: HazardFamily | None  # the family object engines and the cohort evaluate
+    hazard: HazardFamily | None  # the family object engines and the cohort evaluate (None
+    # for a table by level: each patient reads its own row, `multipliers.LevelRows`)
     clock: str
     effects: tuple[BoundEffect, ...]
     memory: tuple[BoundMemory, ...]
@@ -72,6 +74,13 @@ class BoundRisk:
         return self.target is None
 
     @property
+    def level_table(self) -> TableSpec | None:
+        """The risk's table when it is by an attribute's level (each patient reads its
+        level's row), else None."""
+        table = self.table if self.table is not None else self.probability
+        return table if isinstance(table, TableSpec) and table.attribute is not None else None
+
+    @property
     def markov(self) -> bool:
         """True when the risk's hazard is memoryless given state, age and time: a
         constant rate, or a table by age or by time since start."""
@@ -80,9 +89,9 @@ class BoundRisk:
         if self.family == "constant":
             return True
         if self.table is not None:
-            return self.table.by in ("age", "time")
+            return self.table.by in ("age", "time", None)
         if isinstance(self.probability, TableSpec):
-            return self.probability.by in ("age", "time")
+            return self.probability.by in ("age", "time", None)
         return self.probability is not None or self.remainder
 
 
@@ -209,7 +218,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         if hazard is not None:
             if hazard.family == "table":
                 table = scenario.tables[hazard.params["table"]]
-                family = table_hazard(table)
+                family = None if table.attribute is not None else table_hazard(table)
             else:
                 params = {k: number(v) for k, v in hazard.params.items()}
                 family = FAMILIES[hazard.family](**params)

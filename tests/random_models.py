@@ -92,6 +92,7 @@ class Draft:
         self.start_age: float | None = None
         self.strategy: str | None = None
         self.strategy_fields: dict = {}
+        self.by_level: set[str] = set()  # tables by the levels of "group"
 
     # -- random numbers ------------------------------------------------------------------
     def chance(self, p: float) -> bool:
@@ -382,7 +383,9 @@ class Draft:
                                          **self.way_fields(way)))
         blocks.append(parameters(**self.values, **self.derived))
         tables = {w.table[0]: w.table for w in self.ways if w.table}
-        blocks += [table(name, by=by, starts=starts, values=values)
+        blocks += [table(name, by=by, starts=starts, values=values) if name not in self.by_level
+                   else table(name, by=by, starts=starts, attribute="group",
+                              values=level_rows(values))
                    for name, by, starts, values in tables.values()]
         corrections = ("half-cycle", "none", "trapezoidal") + (
             ("simpson",) if self.n_cycles % 2 == 0 else ())
@@ -414,6 +417,13 @@ class Draft:
         return section("start", age=self.start_age, shares=self.shares, effects=effects or None)
 
     def finish(self, name: str, size: int, perturbations) -> RandomModel:
+        # where the population has groups, drawn tables are by group too (no extra draws,
+        # so the other models are unchanged)
+        if "group" in self.attributes:
+            self.by_level = {w.table[0] for w in self.ways
+                             if w.table and w.table[0].startswith("table_")}
+            if self.by_level:
+                self.features.add("table by level")
         text = self.text(size)  # first: writing the text adds features of its own
         return RandomModel(name, self.kind, frozenset(self.features), text,
                            self.strategy, size, self.exact, tuple(perturbations),
@@ -509,6 +519,13 @@ def probability_table(d: Draft, s: str, t: str) -> tuple:
         starts = [0.0, 65.0]
     d.features.add(f"table by {by.replace('_', ' ')}")
     return (f"table_{s}_{t}", by, starts, [d.uniform(0.02, 0.35) for _ in starts])
+
+
+def level_rows(values: list) -> dict:
+    """A table's rows for the levels of "group", none above its highest value (so the
+    bounds drawn for the table hold) and not proportional to each other: as drawn, in
+    reverse order, and halved."""
+    return {GROUPS[0]: values, GROUPS[1]: values[::-1], GROUPS[2]: [v / 2 for v in values]}
 
 
 def row_worst(d: Draft, s: str, changed: dict[str, float] | None = None) -> float:

@@ -100,8 +100,10 @@ def parameters(**values) -> str:
     return section("parameters", **values)
 
 
-def table(name: str, *, by: str, starts, values) -> str:
-    return section(f"tables.{name}", by=by, starts=starts, values=values)
+def table(name: str, *, by: str | None = None, starts=None, values, attribute=None) -> str:
+    """[tables.<name>]; with `attribute`, `values` is {level: values} (a list per level with
+    `by` and `starts`, a number per level without)."""
+    return section(f"tables.{name}", by=by, starts=starts, attribute=attribute, values=values)
 
 
 def state(name: str, **fields) -> str:

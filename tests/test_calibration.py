@@ -85,7 +85,7 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "table by time in state", "attained-age effect", "event", "strategy",
               "eligibility", "uptake", "discontinuation", "hazard ratio", "added transition",
               "semi-Markov", "event by state", "start shares by attribute",
-              "treatment on entering a state"]
+              "treatment on entering a state", "table by level"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 

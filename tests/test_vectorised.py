@@ -67,6 +67,26 @@ TABLES = scenario_text(  # half-year cycles: times and times in state are not wh
     table("checks_by_time", by="time", starts=[0, 2, 7.5], values=[0.5, 0.2, 0.1]),
     population(1000, attribute("age", "normal", mean=62, sd=10, lower=40, upper=95)))
 
+LEVELS = scenario_text(  # tables by level: each patient reads its own sex's or band's row
+    horizon(15, cycle=0.5), start(healthy=1),
+    state("healthy"), state("sick"), state("dead", absorbing=True),
+    probability("healthy", "sick", "onset", effects=[effect("diabetes", 1.5)]),
+    probability("healthy", "dead", "life"), probability("healthy", "healthy", "remainder"),
+    probability("sick", "dead", "sick_death"), probability("sick", "healthy", 0.1),
+    probability("sick", "sick", "remainder"),
+    event("check", ["healthy", "sick"], probability="checks"),
+    table("life", by="age", starts=[0, 60, 70, 80], attribute="sex",
+          values={"female": [0.004, 0.01, 0.03, 0.08], "male": [0.006, 0.02, 0.05, 0.1]}),
+    table("sick_death", by="time_in_state", starts=[0, 1, 2.5], attribute="sex",
+          values={"male": [0.3, 0.1, 0.05], "female": [0.2, 0.15, 0.02]}),
+    table("onset", attribute="sex", values={"female": 0.05, "male": 0.09}),
+    table("checks", by="time", starts=[0, 5], attribute="region",
+          values={"north": [0.3, 0.1], "south": [0.5, 0.0]}),
+    population(1000, attribute("age", "normal", mean=62, sd=10, lower=40, upper=95),
+               attribute("sex", "categorical", levels=["female", "male"], shares=[0.5, 0.5]),
+               attribute("region", "categorical", levels=["north", "south"], shares=[0.3, 0.7]),
+               attribute("diabetes", "yesno", prevalence=0.3)))
+
 MEMORY = scenario_text(
     # cycles of 0.1: differences of cycle times are not whole numbers of cycles in floats
     # (0.6 - 0.3 < 0.3), the case the 'within' tolerance is there for
@@ -146,7 +166,7 @@ def assert_every_risk_happens(model, histories):
 
 
 MODELS = {"homogeneous": HOMOGENEOUS, "covariates": COVARIATES, "tables": TABLES,
-          "memory": MEMORY}
+          "levels": LEVELS, "memory": MEMORY}
 
 
 @pytest.mark.parametrize("rule", RULES)

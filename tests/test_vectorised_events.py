@@ -88,6 +88,23 @@ COVARIATES = scenario_text(  # fixed covariates on every family; attained age on
     table("by_stay", by="time_in_state", starts=[0, 2, 5], values=[0.5, 1.0, 0.3]),
     PEOPLE)
 
+LEVELS = scenario_text(  # tables by level: each patient reads its own sex's row
+    horizon(25), start(well=0.8, sick=0.2),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    rate("well", "sick", "onset", effects=[effect("diabetes", 1.6)]),
+    rate("well", "dead", "life", effects=[effect("age", 1.02, centre=60)]),  # a growing table
+    rate("sick", "dead", "life"),
+    rate("sick", "well", "recovery"),
+    event("visit", ["well", "sick"], rate="visits"),
+    table("life", by="age", starts=[0, 60, 70, 80], attribute="sex",
+          values={"female": [0.005, 0.02, 0.05, 0.15], "male": [0.01, 0.03, 0.08, 0.2]}),
+    table("onset", attribute="sex", values={"female": 0.1, "male": 0.25}),
+    table("recovery", by="time_in_state", starts=[0, 1, 3], attribute="sex",
+          values={"female": [0.5, 0.2, 0.0], "male": [0.3, 0.3, 0.1]}),
+    table("visits", by="time", starts=[0, 5], attribute="sex",
+          values={"female": [1.0, 0.5], "male": [0.4, 0.8]}),
+    PEOPLE)
+
 ATTAINED_AGE = scenario_text(  # attained age on Weibull and log-logistic: numerical roots
     horizon(15), start(well=1),
     state("well"), state("sick"), state("dead", absorbing=True),
@@ -198,7 +215,8 @@ def assert_every_risk_happens(model, histories):
 
 @pytest.mark.parametrize("text, rtol, seed", [
     (CONSTANT, 0, 1), (FAMILIES, CLOSED, 2), (COVARIATES, CLOSED, 3), (MEMORY, CLOSED, 4),
-], ids=["constant", "families-and-clocks", "covariates", "memory"])
+    (LEVELS, CLOSED, 5),
+], ids=["constant", "families-and-clocks", "covariates", "memory", "tables-by-level"])
 def test_histories_equal_the_simpy_event_engine(text, rtol, seed):
     model = bound(text)
     expected, got, _ = both_engines(model, IDS, seed)

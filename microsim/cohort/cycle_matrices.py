@@ -16,13 +16,16 @@ import numpy as np
 
 from microsim.binding import BoundRisk
 from microsim.cohort.expand import Expansion
-from microsim.patients.multipliers import Multipliers
+from microsim.patients.multipliers import LevelRows, Multipliers
 from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
 from microsim.scenario.spec import COMPETING, TableSpec
 
 
 def table_band(table: TableSpec, time: float, age, time_in_state: float):
-    """The band of a table at the point on its own axis (band i holds from starts[i])."""
+    """The band of a table at the point on its own axis (band i holds from starts[i]; a
+    table by level alone has one band)."""
+    if table.by is None:
+        return 0
     x = {"time": time, "age": age, "time_in_state": time_in_state}[table.by]
     return np.maximum(np.searchsorted(np.asarray(table.starts), x, side="right") - 1, 0)
 
@@ -34,13 +37,19 @@ def on_rate_scale(p, log, m):
     return np.where(m == 1.0, p, separate(log, m))
 
 
-def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float):
+def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float,
+                     rows: LevelRows | None = None):
     """Base per-cycle probability of a (non-remainder) risk for a batch of patients, and
-    its L = -ln(1 - p) (the competing rule's weight)."""
+    its L = -ln(1 - p) (the competing rule's weight); `rows`: the patients' rows of the
+    risk's table by level."""
     base = risk.probability
     if not isinstance(base, TableSpec):
         return base, risk.logs[0]
     band = table_band(base, time, ages, duration * cycle)
+    if rows is not None:
+        p = rows.band_values(band)
+        with np.errstate(divide="ignore"):
+            return p, -np.log1p(-p)
     return np.asarray(base.values)[band], np.asarray(risk.logs)[band]
 
 
@@ -85,7 +94,7 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
                 remainder = r
                 continue
             m = m_all[:, r] * exp.memory_factor(risk, counts)
-            p, log = risk_probability(risk, time, ages, d, model.cycle)
+            p, log = risk_probability(risk, time, ages, d, model.cycle, mult.level_rows(r))
             if risk.is_event:
                 risk_p[e, r] = p = on_rate_scale(p, log, m)
                 events.append((risk, p))

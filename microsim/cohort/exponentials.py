@@ -60,7 +60,8 @@ def hazards_on_steps(exp: Expansion, mult: Multipliers, start: np.ndarray) -> np
         out *= np.where(active[..., None], w.on_factor, w.off_factor)
     for r, risk in enumerate(model.risks):
         clock = start + mult.entry_age[:, None] if risk.clock == "age" else start
-        out[:, :, r] *= risk.hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
+        hazard = risk.hazard if (rows := mult.level_rows(r)) is None else rows  # per patient
+        out[:, :, r] *= hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
     return out
 
 

@@ -60,7 +60,8 @@ def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
     out = mult.at(t).copy()
     for r, risk in enumerate(model.risks):
         clock = mult.entry_age + t if risk.clock == "age" else np.full(out.shape[0], t)
-        out[:, r] *= risk.hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
+        hazard = risk.hazard if (rows := mult.level_rows(r)) is None else rows  # per patient
+        out[:, r] *= hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
     return out
 
 

@@ -38,10 +38,11 @@ class TimeDependence:
 
 
 def changes_from(table: TableSpec, start) -> bool:
-    """True when a step table takes more than one value from `start` (scalar or per
-    patient) on; value i holds from starts[i], the first one before starts[0]."""
+    """True when a step table (some level's row, for a table by level) takes more than one
+    value from `start` (scalar or per patient) on; value i holds from starts[i], the first
+    one before starts[0]."""
     first = np.searchsorted(np.asarray(table.starts), np.min(start), side="right") - 1
-    return len(set(table.values[max(int(first), 0):])) > 1
+    return any(len(set(row[max(int(first), 0):])) > 1 for row in table.rows)
 
 
 def clock_words(exp: Expansion, risk: BoundRisk) -> str:

@@ -32,14 +32,16 @@ AXES = {"time": 0, "age": 1, "time_in_state": 2}
 
 def base_values(risk: BoundRisk):
     """(values, logs, bands) of a risk's base probability: the value is values[band], band 0
-    for a number, the band of (axis, starts) for a table (bands None for a number); logs
-    holds L = -ln(1 - p) of each value."""
+    for a number, the band of (axis, starts) for a table (bands None for a number or a table
+    by level alone); logs holds L = -ln(1 - p) of each value. A table by level has each
+    patient's own values and logs (`plan.level_plans`), so None here."""
     probability = risk.probability
-    if isinstance(probability, TableSpec):
-        values, bands = list(probability.values), (AXES[probability.by], list(probability.starts))
-    else:
-        values, bands = [probability], None
-    return values, list(risk.logs), bands
+    if not isinstance(probability, TableSpec):
+        return [probability], list(risk.logs), None
+    bands = None if probability.by is None else (AXES[probability.by], list(probability.starts))
+    if probability.attribute is not None:
+        return None, None, bands
+    return list(probability.values), list(risk.logs), bands
 
 
 def state_plans(model: BoundModel, names: tuple[str, ...]):
@@ -81,6 +83,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     bumps = plan.bumps(model, tracked)
     slopes = mult.age_slope.tolist()
     statics = plan.static_multipliers(mult)
+    levels = plan.level_plans(mult)
     ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
     starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE),
                                mult)
@@ -99,9 +102,12 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
 
-    def weigh(step, static, t, age, duration, counts, last, on, off):
-        """(base probability, L, multiplier) of a risk for one patient now."""
+    def weigh(step, static, t, age, duration, counts, last, on, off, own):
+        """(base probability, L, multiplier) of a risk for one patient now (`own`: the
+        patient's rows of tables by level)."""
         r, _, _, values, logs, bands, memory = step
+        if r in own:
+            values, logs = own[r]
         k = 0
         if bands is not None:
             axis, starts = bands
@@ -131,6 +137,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
 
     def patient(b: int):
         rows, static, age0 = draws[b], statics[b], ages[b]
+        own = {r: (values[row[b]], logs[row[b]]) for r, (values, logs, row) in levels.items()}
         on, off = windows[b]
         state, duration = starts[b], 0
         counts, last = plan.initial_memory(model, tracked, state)
@@ -141,7 +148,8 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             t = n * cycle
             moves, remainder, events, combined = plans[state]
             age = age0 + t
-            row = [weigh(step, static, t, age, duration, counts, last, on, off) for step in moves]
+            row = [weigh(step, static, t, age, duration, counts, last, on, off, own)
+                   for step in moves]
             chances = (competing(row) if combined else
                        [p if m == 1.0 else separate(log, m) for p, log, m in row])
             u = rows[move_purpose][n]
@@ -156,7 +164,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 chosen = remainder
             happened = []
             for step in events:
-                p, log, m = weigh(step, static, t, age, duration, counts, last, on, off)
+                p, log, m = weigh(step, static, t, age, duration, counts, last, on, off, own)
                 if rows[step[1]][n] < (p if m == 1.0 else separate(log, m)):
                     happened.append(step)
             end = t + cycle

@@ -126,6 +126,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     batch = Batch(model, mult, patient_ids, seed)
     window = mult.window
     risks = plan.risk_views(model, mult)
+    levels = plan.level_views(risks, mult)
     windows = ([(np.inf, np.inf)] * mult.size if window is None
                else list(zip(window.on.tolist(), window.off.tolist())))
     targets = [risk.source if risk.target is None else risk.target for risk in model.risks]
@@ -143,6 +144,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         winners = [w[b] if w else None for w in batch.winners]
         draws = {r: d[b] for r, d in batch.draws.items()}
         static = statics[b]
+        views = plan.patient_views(risks, levels, b)
         age0 = 0.0 if mult.entry_age is None else float(mult.entry_age[b])
         rounds = [0] * model.n_states
         state, entered, now = batch.starts[b], 0.0, 0.0
@@ -167,7 +169,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 for r in from_state[state]:
                     if k == len(draws[r]):
                         draws[r] += batch.more_draws(b, r, k)
-                    dt, change = latent_time(risks[r], draws[r][k], static[r], now, entered,
+                    dt, change = latent_time(views[r], draws[r][k], static[r], now, entered,
                                              age0, memory[r], counts, last, change, windows[b])
                     if dt < best:
                         best, winner = dt, r

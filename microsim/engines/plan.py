@@ -13,6 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from microsim.binding import BoundModel
+from microsim.hazards.cycle_probabilities import log_survival
 from microsim.patients.multipliers import Multipliers
 
 CLOCKS = {"since_start": 0, "since_entry": 1, "age": 2}
@@ -63,13 +64,19 @@ class RiskView:
     on_factor: float | None
     off_factor: float | None
     rate: float | None  # a constant rate's value, None for other families
+    risk: object  # the bound risk it views
 
-    def __init__(self, risk, slope: float, on_factor=None, off_factor=None):
+    def __init__(self, risk, slope: float, on_factor=None, off_factor=None, hazard=None):
         rate = risk.params["rate"] if risk.family == "constant" else None
-        for name, value in (("clock", risk.clock), ("hazard", risk.hazard), ("slope", slope),
-                            ("on_factor", on_factor), ("off_factor", off_factor),
-                            ("rate", rate)):
+        for name, value in (("clock", risk.clock), ("hazard", hazard or risk.hazard),
+                            ("slope", slope), ("on_factor", on_factor),
+                            ("off_factor", off_factor), ("rate", rate)):
             object.__setattr__(self, name, value)
+        object.__setattr__(self, "risk", risk)
+
+    def with_hazard(self, hazard) -> "RiskView":
+        """The same view with another hazard (a level's row of a table by level)."""
+        return RiskView(self.risk, self.slope, self.on_factor, self.off_factor, hazard)
 
 
 def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
@@ -84,6 +91,31 @@ def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
 
     return [RiskView(risk, float(mult.age_slope[r]), *factors(r))
             for r, risk in enumerate(model.risks)]
+
+
+def level_plans(mult: Multipliers) -> dict[int, tuple[list, list, list]]:
+    """For each risk with a table by level (cycle models): its rows of band values and of
+    L = -ln(1 - p), as lists, and each patient's row; both cycle engines read these same
+    numbers."""
+    return {t.risk: (t.values.tolist(), [[log_survival(p) for p in row] for row in t.values.tolist()],
+                     t.row.tolist()) for t in mult.tables}
+
+
+def level_views(views: list[RiskView], mult: Multipliers) -> dict[int, tuple[list, list]]:
+    """For each risk with a table by level (rate models): one view per row (its hazard)
+    and each patient's row."""
+    return {t.risk: ([views[t.risk].with_hazard(h) for h in t.hazards], t.row.tolist())
+            for t in mult.tables}
+
+
+def patient_views(views: list[RiskView], levels: dict[int, tuple[list, list]], b: int) -> list:
+    """The views patient row b reads: its own level's hazard where a table is by level."""
+    if not levels:
+        return views
+    mine = list(views)
+    for r, (by_row, row) in levels.items():
+        mine[r] = by_row[row[b]]
+    return mine
 
 
 def start_states(model: BoundModel, u: np.ndarray, mult: Multipliers) -> list[int]:

@@ -45,6 +45,8 @@ class _Batch:
         self.static = np.ascontiguousarray(np.exp(mult.log_static).T)
         self.ones = np.all(mult.log_static == 0.0, axis=0).tolist()  # risks no effect touches
         self.slopes = mult.age_slope.tolist()
+        self.levels = {r: (np.array(values), np.array(logs), np.array(row, np.int64))
+                       for r, (values, logs, row) in plan.level_plans(mult).items()}
         self.age0 = np.zeros(mult.size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
         window = mult.window
         self.window = window
@@ -62,16 +64,17 @@ class _Batch:
         """(base probability, L, multiplier) of a risk for patients `who` at time t, in the
         cycle engine's order of operations (scalars where every patient shares them)."""
         r, _, _, values, logs, bands, memory = step
-        if bands is None:
+        if r in self.levels:  # a table by level: each patient's own row
+            values, logs, row = self.levels[r]
+            k = 0 if bands is None else self.band(bands, who, t)
+            p, log = values[row[who], k], logs[row[who], k]
+        elif bands is None:
             p, log = values[0], logs[0]
         else:
-            axis, starts = bands
-            x = (t, self.age0[who] + t, self.duration[who] * self.cycle)[axis]
-            if np.ndim(x) == 0:
-                k = max(int(np.searchsorted(starts, x, side="right")) - 1, 0)
+            k = self.band(bands, who, t)
+            if np.ndim(k) == 0:
                 p, log = values[k], logs[k]
             else:
-                k = np.maximum(np.searchsorted(starts, x, side="right") - 1, 0)
                 p, log = np.asarray(values, float)[k], np.asarray(logs, float)[k]
         m = 1.0 if self.ones[r] else self.static[r][who]
         if self.slopes[r]:
@@ -88,6 +91,14 @@ class _Batch:
                 recent = t - self.last[who, index] < within - 1e-9 * self.cycle
                 m = np.where(recent, m * multiplier, m)
         return p, log, m
+
+    def band(self, bands, who: np.ndarray, t: float):
+        """The band of a table for patients `who` at time t (one number when they share it)."""
+        axis, starts = bands
+        x = (t, self.age0[who] + t, self.duration[who] * self.cycle)[axis]
+        if np.ndim(x) == 0:
+            return max(int(np.searchsorted(starts, x, side="right")) - 1, 0)
+        return np.maximum(np.searchsorted(starts, x, side="right") - 1, 0)
 
     def chances(self, steps, combined: bool, who: np.ndarray, t: float) -> list:
         """The per-cycle probabilities of `steps` (a row's moves, or events one by one)."""

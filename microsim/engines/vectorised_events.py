@@ -116,9 +116,13 @@ class _Batch:
         self.count_multipliers = {term: np.asarray(term[1], float) for terms in self.memory
                                   for term in terms if term[1] is not None}
         self.views = plan.risk_views(model, mult)
+        self.levels = plan.level_views(self.views, mult)  # risk -> (a view per row, rows)
+        self.level_row = {r: np.asarray(row, np.int64) for r, (_, row) in self.levels.items()}
         # a numerical root (no closed form under a growing multiplier) needs a search limit
-        self.numerical = [bool(v.slope) and type(v.hazard).time_to_reach_growing_array
-                          is HazardFamily.time_to_reach_growing_array for v in self.views]
+        self.numerical = [bool(v.slope) and type(
+            v.hazard if r not in self.levels else self.levels[r][0][0].hazard
+        ).time_to_reach_growing_array is HazardFamily.time_to_reach_growing_array
+                          for r, v in enumerate(self.views)]
         self.targets = np.array([r.source if r.target is None else r.target
                                  for r in model.risks], np.int64)
         self.from_state = [[r for r, risk in enumerate(model.risks) if risk.source == i]
@@ -169,8 +173,20 @@ class _Batch:
         return m, change, off
 
     def latent(self, r: int, rows, e, m, now, limit) -> np.ndarray:
-        """Time from now to risk r for each patient: the event engine's `latent_time`."""
-        view = self.views[r]
+        """Time from now to risk r for each patient: the event engine's `latent_time` (a
+        table by level: each level's patients with their level's hazard)."""
+        if r not in self.levels:
+            return self.latent_by(self.views[r], rows, e, m, now, limit)
+        out = np.empty(rows.size)
+        row = self.level_row[r].take(rows)
+        for j, view in enumerate(self.levels[r][0]):
+            mine = row == j
+            if mine.any():
+                m_, now_, limit_ = (x[mine] if np.ndim(x) else x for x in (m, now, limit))
+                out[mine] = self.latent_by(view, rows[mine], e[mine], m_, now_, limit_)
+        return out
+
+    def latent_by(self, view, rows, e, m, now, limit) -> np.ndarray:
         a = (now if view.clock == "since_start" else
              now - self.entered.take(rows) if view.clock == "since_entry"
              else self.age0.take(rows) + now)
@@ -235,8 +251,9 @@ class _Batch:
             window = (float(self.on[b]), float(self.off[b]))
             t, entered, age0 = float(now[p]), float(self.entered[b]), float(self.age0[b])
             soonest, winner, bound = inf, 0, self.end
+            views = plan.patient_views(self.views, self.levels, b)
             for j, r in enumerate(self.from_state[i]):
-                dt, bound = latent_time(self.views[r], float(draws[j][p]), float(self.static[r, b]),
+                dt, bound = latent_time(views[r], float(draws[j][p]), float(self.static[r, b]),
                                         t, entered, age0, self.memory[r], counts, last, bound,
                                         window)
                 if dt < soonest:

@@ -9,14 +9,15 @@ exactly the same model.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import partial
+from functools import cached_property, partial
 from typing import Callable
 
 import numpy as np
 import pandas as pd
 
-from microsim.binding import BoundModel
+from microsim.binding import BoundModel, table_hazard
 from microsim.patients.population import check_population_file, expected_covariate
+from microsim.scenario.spec import TableSpec
 
 AGE = "age"
 
@@ -57,12 +58,48 @@ class Window:
 
 
 @dataclass(frozen=True)
+class LevelRows:
+    """A risk's table by level as patients read it: rows of band values (one per level, or
+    the average patient's) and each patient's row. Such a table is not proportional (its
+    levels may differ by band), so it is carried beside the multipliers, not in them."""
+    risk: int
+    table: TableSpec
+    values: np.ndarray  # (rows, bands)
+    row: np.ndarray  # (patients,) index into values
+
+    def take(self, index) -> "LevelRows":
+        return LevelRows(self.risk, self.table, self.values, self.row[index])
+
+    def band_values(self, band) -> np.ndarray:
+        """Each patient's value in `band` (a band, or one per patient)."""
+        return self.values[self.row, band]
+
+    @cached_property
+    def hazards(self) -> list:
+        """Each row as a hazard on the table's clock (rate models)."""
+        return [table_hazard(self.table, row) for row in self.values.tolist()]
+
+    def hazard_array(self, clock: np.ndarray) -> np.ndarray:
+        """Each patient's hazard at its clock (patients first, any further axes)."""
+        out = np.empty(np.shape(clock))
+        for j, hazard in enumerate(self.hazards):
+            mine = self.row == j
+            out[mine] = hazard.hazard_array(clock[mine])
+        return out
+
+
+@dataclass(frozen=True)
 class Multipliers:
     log_static: np.ndarray  # (patients, risks)
     age_slope: np.ndarray  # (risks,) log hazard ratio per time unit of attained age
     entry_age: np.ndarray | None  # (patients,) age at time 0, when known
     window: Window | None = None  # a strategy's treatment window
     start: np.ndarray | None = None  # (patients, states) own start shares; None: the model's
+    tables: tuple[LevelRows, ...] = ()  # the risks' tables by level, each patient's row
+
+    def level_rows(self, r: int) -> LevelRows | None:
+        """Risk r's table by level as these patients read it (None: not by level)."""
+        return next((t for t in self.tables if t.risk == r), None)
 
     def at(self, t) -> np.ndarray:
         """Multipliers (patients, risks) at time t since start (t scalar)."""
@@ -78,12 +115,14 @@ class Multipliers:
         return Multipliers(self.log_static[index], self.age_slope,
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index),
-                           None if self.start is None else self.start[index])
+                           None if self.start is None else self.start[index],
+                           tuple(t.take(index) for t in self.tables))
 
     def unique(self) -> tuple["Multipliers", np.ndarray]:
         """The distinct patient rows and, for each patient, the index of its row: patients
-        with the same multipliers, entry age and window share one analytic result."""
-        parts = [self.log_static]
+        with the same multipliers, entry age, window and rows of tables by level share one
+        analytic result."""
+        parts = [self.log_static] + [t.row[:, None] for t in self.tables]
         if self.entry_age is not None:
             parts.append(self.entry_age[:, None])
         if self.window is not None:
@@ -101,7 +140,8 @@ class Multipliers:
             self.entry_age is None or np.all(self.entry_age == self.entry_age[0])) and (
             self.window is None or (np.all(self.window.on == self.window.on[0])
                                     and np.all(self.window.off == self.window.off[0]))) and (
-            self.start is None or np.all(self.start == self.start[:1]))
+            self.start is None or np.all(self.start == self.start[:1])) and all(
+            np.all(t.row == t.row[0]) for t in self.tables)
         return self.take(slice(0, 1)) if same else self
 
     def repeated(self, n: int) -> "Multipliers":
@@ -161,7 +201,9 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
                 covariate(effect.attribute, effect.level)
             logits[:, state] += effect.log_hr * (x - effect.centre)
         start = start_shares(logits, model.start > 0)
-    return Multipliers(log_static, slope, ages, start=start)
+    tables = tuple(level_rows(r, risk, patients, means)
+                   for r, risk in enumerate(model.risks) if risk.level_table is not None)
+    return Multipliers(log_static, slope, ages, start=start, tables=tables)
 
 
 def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
@@ -171,6 +213,45 @@ def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
     logits = np.where(possible, logits, -np.inf)
     weights = np.exp(logits - logits.max(axis=1, keepdims=True))
     return weights / weights.sum(axis=1, keepdims=True)
+
+
+def level_rows(r: int, risk, patients: pd.DataFrame | None,
+               means: Callable[[str, str | None], float] | None) -> LevelRows:
+    """Risk r's table by level for these patients (each its level's row), or for the
+    average patient (`average_row`)."""
+    table = risk.level_table
+    rows = np.array(table.rows, float)
+    if patients is not None:
+        column = patients[table.attribute].astype(str)
+        row = column.map({level: k for k, level in enumerate(table.levels)})
+        if row.isna().any():
+            raise ValueError(f"table {table.name!r} has no row for level "
+                             f"{column[row.isna()].iloc[0]!r} of {table.attribute!r}")
+        return LevelRows(r, table, rows, row.to_numpy(np.int64))
+    if means is None:
+        raise ValueError(f"the cohort needs the shares of attribute {table.attribute!r}")
+    shares = np.array([means(table.attribute, level) for level in table.levels])
+    probability = isinstance(risk.probability, TableSpec)
+    return LevelRows(r, table, average_row(rows, shares, probability), np.zeros(1, np.int64))
+
+
+def average_row(rows: np.ndarray, shares: np.ndarray, probability: bool) -> np.ndarray:
+    """The average patient's row of a table by level: the share-weighted geometric mean of
+    the levels' hazards, band by band, h = prod_l h_l^(s_l) (on the rate scale for
+    probabilities: L = -ln(1 - p) is averaged so, and p = 1 - exp(-L)).
+
+    It is the rule every categorical attribute follows in the average patient: the log
+    hazard is linear in the levels' 0/1 indicators, so at their means (the shares) a level
+    with hazard ratio HR enters as HR^share. A table by level is such an attribute whose
+    hazard ratios h_l / h_ref change from band to band, and prod_l (h_l / h_ref)^(s_l) h_ref
+    is prod_l h_l^(s_l) whatever the reference. (The hazard of the mixed cohort, a mean of
+    the levels' survivors, is not of this form; Jensen's inequality again.) A level with a
+    zero hazard in a band at a positive share makes the average 0 there, as HR = 0 would."""
+    kept = shares > 0
+    hazards = -np.log1p(-rows[kept]) if probability else rows[kept]
+    with np.errstate(divide="ignore"):
+        mean = np.exp(shares[kept] @ np.log(hazards))[None, :]
+    return -np.expm1(-mean) if probability else mean
 
 
 def cohort_multipliers(model: BoundModel) -> Multipliers:
@@ -195,9 +276,11 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
 
     The log multiplier is linear in the attributes (0/1 indicators for levels and yes/no),
     so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
-    as its share of "yes", so a hazard ratio HR on it becomes HR ** share. Attained age moves
-    on from the mean entry age. Start shares that depend on attributes take the mean
-    attributes the same way: they enter the log odds linearly. Keeping every patient's window means that under a strategy
+    as its share of "yes", so a hazard ratio HR on it becomes HR ** share, and a table by
+    level gives the share-weighted geometric mean of its levels' hazards (`average_row`).
+    Attained age moves on from the mean entry age. Start shares that depend on attributes
+    take the mean attributes the same way: they enter the log odds linearly. Keeping every
+    patient's window means that under a strategy
     the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
@@ -206,4 +289,5 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     ages = None if cohort.entry_age is None else np.repeat(cohort.entry_age[:1], n)
     start = None if cohort.start is None else np.repeat(cohort.start[:1], n, axis=0)
     return Multipliers(np.repeat(cohort.log_static[:1], n, axis=0), cohort.age_slope, ages,
-                       patients.window, start)
+                       patients.window, start,
+                       tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables))

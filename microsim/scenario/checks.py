@@ -6,6 +6,7 @@ with a field path. The checks run in an order where each may rely on the ones be
 """
 from __future__ import annotations
 
+import itertools
 from typing import Iterable, Sequence
 
 import numpy as np
@@ -31,6 +32,7 @@ def check_scenario(s: Scenario, reading: Reading) -> list[str]:
     check_kind(s)
     check_memory(s)
     check_effects(s, reading)
+    check_level_tables(s, reading)
     check_age_known(s, reading)
     if s.discrete:
         for state in s.states:
@@ -128,11 +130,13 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         if not ref.tables_allowed:
             raise ScenarioError(ref.path, f"{ref.name!r} is a table; a table can only give "
                                 "the probability or rate of a transition or event")
-        for i, value in enumerate(s.tables[ref.name].values):
-            problem = role.problem(value)
-            if problem:
-                raise ScenarioError(f"tables.{ref.name}.values[{i}]",
-                                    f"{problem} (the table is used at {ref.path})")
+        table = s.tables[ref.name]
+        for k, row in enumerate(table.rows):
+            for i, value in enumerate(row):
+                problem = role.problem(value)
+                if problem:
+                    where = table.row_name(k) + ("" if table.by is None else f"[{i}]")
+                    raise ScenarioError(where, f"{problem} (the table is used at {ref.path})")
         return
     if ref.name not in s.parameters:
         what, known = "parameter", list(s.parameters)
@@ -274,6 +278,43 @@ def check_effects(s: Scenario, reading: Reading) -> None:
                                     "for categorical attributes")
 
 
+def check_level_tables(s: Scenario, reading: Reading) -> None:
+    """A table by an attribute's levels needs a categorical attribute of the population and
+    gives values for exactly its levels."""
+    kinds = population_kinds(s, reading)
+    for table in s.tables.values():
+        name = table.attribute
+        if name is None:
+            continue
+        here = f"tables.{table.name}"
+        if name not in kinds:
+            raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
+        kind, levels = kinds[name]
+        if kind == "column":
+            continue  # a file's column: checked when the file is read
+        if kind != "categorical":
+            what = "yes/no" if kind == "yesno" else kind
+            raise ScenarioError(f"{here}.attribute", f"{name!r} is {what}; a table by level "
+                                "needs a categorical attribute (or a band of a continuous one, "
+                                "[[population.derived]])")
+        for level in table.levels:
+            if level not in levels:
+                raise ScenarioError(f"{here}.values.{level}",
+                                    not_a_level(level, name, levels, reading))
+        missing = [level for level in levels if level not in table.levels]
+        if missing:
+            raise ScenarioError(f"{here}.values", f"gives no values for {level_listing(missing)} "
+                                f"of {name!r}; give values for every level "
+                                f"({level_listing(levels)})")
+
+
+def level_choices(tables: Iterable[TableSpec]) -> list[dict[str, int]]:
+    """Every combination of levels a patient can have, as {attribute: row}, over the
+    attributes by which `tables` are (one empty choice when none is by level)."""
+    levels = {t.attribute: len(t.levels) for t in tables if t.attribute is not None}
+    return [dict(zip(levels, rows)) for rows in itertools.product(*map(range, levels.values()))]
+
+
 def age_known(s: Scenario, reading: Reading) -> bool:
     population = s.population
     return (s.start.age is not None
@@ -292,19 +333,23 @@ def check_age_known(s: Scenario, reading: Reading) -> None:
             raise ScenarioError(f"{path}.clock", f'is "age", but {NO_AGE}')
 
 
-def table_at(table: TableSpec, points: np.ndarray) -> np.ndarray:
-    """The step function at `points`; the first value holds before the first start."""
+def table_at(table: TableSpec, points: np.ndarray, choice: dict[str, int] | None = None
+             ) -> np.ndarray:
+    """The step function at `points` (of the row of the level `choice` picks, for a table
+    by level); the first value holds before the first start."""
     index = np.searchsorted(np.asarray(table.starts), points, side="right") - 1
-    return np.asarray(table.values)[np.clip(index, 0, None)]
+    row = table.rows[(choice or {}).get(table.attribute, 0)]
+    return np.asarray(row)[np.clip(index, 0, None)]
 
 
 def check_row(s: Scenario, state: str) -> None:
     """A non-absorbing state's row has at most one remainder, and without one its
-    probabilities sum to 1 at base-case values, in every band of every table. (Beside a
-    remainder, the largest sum a row can reach is bounded in `rows.check_row_bounds`.)"""
+    probabilities sum to 1 at base-case values, in every band of every table (and for every
+    level of tables by level). (Beside a remainder, the largest sum a row can reach is
+    bounded in `rows.check_row_bounds`.)"""
     row = [t for t in s.transitions if t.source == state]
     constant, remainder = 0.0, None
-    tables_by_axis: dict[str, list[TableSpec]] = {}
+    tables_by_axis: dict[str | None, list[TableSpec]] = {}
     for t in row:
         if t.probability == REMAINDER:
             if remainder is not None:
@@ -326,7 +371,8 @@ def check_row(s: Scenario, state: str) -> None:
     low = high = constant
     for tables in tables_by_axis.values():  # different axes vary independently
         points = np.unique(np.concatenate([t.starts for t in tables]))
-        total = sum(table_at(t, points) for t in tables)
+        total = np.array([sum(table_at(t, points, choice) for t in tables)
+                          for choice in level_choices(tables)])
         low, high = low + float(total.min()), high + float(total.max())
     if abs(low - 1.0) > TOLERANCE or abs(high - 1.0) > TOLERANCE:
         total = show(low) if low == high else \

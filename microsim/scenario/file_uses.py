@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from .checks import check_effects
+from .checks import check_effects, check_level_tables
 from .errors import ScenarioError
 from .fields import AGE, Reading
 from .population_file import FILE, KIND_WORDS, PopulationFile
@@ -20,10 +20,11 @@ from .spec import DerivedSpec, PopulationSpec, Scenario
 
 
 def check_column_uses(s: Scenario, file: PopulationFile) -> None:
-    """Effects and eligibility conditions on the file's columns, by the rules of drawn
-    attributes (a level the column has, a test that suits its kind)."""
+    """Effects, eligibility conditions and tables by level on the file's columns, by the
+    rules of drawn attributes (a level the column has, a test that suits its kind)."""
     reading = Reading(file_columns=file.kinds())
     check_effects(s, reading)
+    check_level_tables(s, reading)
     for strategy in s.strategies:
         prefix = f"strategies.{strategy.name}"
         if strategy.eligible is not None:

@@ -225,11 +225,16 @@ def check_capacity(s: Scenario, reading: Reading) -> None:
 def check_plan(s: Scenario, model: Scenario, capacity: CapacitySpec, prefix: str,
                paths: dict[str, str], reading: Reading) -> None:
     """One set of arrivals and resources against one model (as written, or a strategy's)."""
+    for table in s.tables.values():
+        if table.attribute is not None and table.name in tables_read(model):
+            raise ScenarioError(f"tables.{table.name}.attribute", "a table by level is not "
+                                "available in a service with arrivals or resources; give the "
+                                "levels' rates by effects of the attribute instead")
     if capacity.arrivals is not None and isinstance(capacity.arrivals.rate, str):
         table = s.tables.get(capacity.arrivals.rate)
-        if table is not None and table.by != "time":
+        if table is not None and (table.by != "time" or table.attribute is not None):
             raise ScenarioError(f"{prefix}arrivals.rate", f"table {table.name!r} is by "
-                                f"{table.by}; arrivals over calendar time need a table by time")
+                                f"{table.axis_words}; arrivals over calendar time need a table by time")
     holders: dict[str, str] = {}  # state -> the first resource that names it
     waiters: dict[str, str] = {}
     for r in capacity.resources:
@@ -246,6 +251,17 @@ def check_plan(s: Scenario, model: Scenario, capacity: CapacitySpec, prefix: str
             check_priority(s, reading, resource, f"{path}.priority")
 
 
+def tables_read(model: Scenario) -> set:
+    """The table names the model's transitions and events read."""
+    used = set()
+    for occurrence in (*model.transitions, *model.events):
+        if isinstance(occurrence.probability, str):
+            used.add(occurrence.probability)
+        if occurrence.hazard is not None and occurrence.hazard.family == "table":
+            used.add(occurrence.hazard.params["table"])
+    return used
+
+
 def check_capacity_value(s: Scenario, value, path: str) -> None:
     """A capacity is a whole number of units: at least 1, or a table by time of whole
     numbers (0 closes the resource for a period) that is somewhere at least 1."""
@@ -256,8 +272,8 @@ def check_capacity_value(s: Scenario, value, path: str) -> None:
         return
     if value in s.tables:
         table = s.tables[value]
-        if table.by != "time":
-            raise ScenarioError(path, f"table {value!r} is by {table.by}; a capacity by period "
+        if table.by != "time" or table.attribute is not None:
+            raise ScenarioError(path, f"table {value!r} is by {table.axis_words}; a capacity by period "
                                       "needs a table by time")
         for i, x in enumerate(table.values):
             if not x.is_integer():

@@ -4,7 +4,8 @@ from __future__ import annotations
 import math
 
 from .errors import ScenarioError
-from .fields import ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, did_you_mean, listing, show
+from .fields import (ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, describe, did_you_mean,
+                     listing, show)
 from .formulas import FormulaError, derived_order, parse_formula, settings
 from .spec import REMAINDER, DistributionSpec, ParameterSpec, TableSpec
 
@@ -15,7 +16,7 @@ POSITIVE_DISTRIBUTION_KEYS = {"alpha", "beta", "shape", "scale", "sdlog", "sd"}
 PARAMETER_KEYS = ("value", "distribution", "low", "high", "formula")
 COMPUTED = ("a derived parameter is computed from its formula (in every PSA draw and "
             "sensitivity setting too)")
-TABLE_KEYS = ("by", "starts", "values")
+TABLE_KEYS = ("by", "starts", "values", "attribute")
 TABLE_AXES = ("age", "time", "time_in_state")
 
 
@@ -126,11 +127,50 @@ def read_tables(node: Node | None) -> dict[str, TableSpec]:
     for name in (node.data if node else ()):
         name_key(node, name, "table")
         entry = node.node(name, TABLE_KEYS)
+        attribute = entry.name("attribute", None)
+        if attribute is not None and not entry.has("by"):
+            tables[name] = read_level_table(entry, name, attribute)
+            continue
         by = entry.text("by", choices=TABLE_AXES)
         starts = entry.numbers("starts", role=NON_NEGATIVE, increasing=True)
-        values = entry.numbers("values", role=NON_NEGATIVE)
-        if len(values) != len(starts):
-            entry.fail("values", f"has {len(values)} values but starts has {len(starts)}; "
-                                 "give one value per start")
-        tables[name] = TableSpec(name, by, starts, values)
+        if attribute is None:
+            values = band_values(entry, "values", len(starts))
+            tables[name] = TableSpec(name, by, starts, values)
+            continue
+        levels, rows = level_entries(entry, attribute, "a list of numbers, one per start")
+        values = tuple(v for level in levels for v in band_values(rows, level, len(starts)))
+        tables[name] = TableSpec(name, by, starts, values, attribute, levels)
     return tables
+
+
+def band_values(node: Node, key: str, n_starts: int) -> tuple[float, ...]:
+    """One value per start (rates or probabilities, each >= 0)."""
+    values = node.numbers(key, role=NON_NEGATIVE)
+    if len(values) != n_starts:
+        node.fail(key, f"has {len(values)} values but starts has {n_starts}; "
+                       "give one value per start")
+    return values
+
+
+def level_entries(entry: Node, attribute: str, each: str) -> tuple[tuple[str, ...], Node]:
+    """The levels and the node of `values = { level = ..., ... }` of a table by
+    `attribute`'s levels (which levels the attribute has is checked in the second pass)."""
+    if entry.has("starts") and not entry.has("by"):
+        entry.fail("starts", "needs by; give by and starts for a table by age, time or time "
+                             "in state and level, or leave both out for a table by level alone")
+    if not isinstance(entry.raw("values", expect=f"a table of {each} per level of {attribute!r}"),
+                      dict):
+        entry.fail("values", f"must be a table with {each} per level of {attribute!r} "
+                             "(values = { level = ..., ... }), got "
+                             f"{describe(entry.data['values'])}")
+    values = entry.node("values", None)
+    if not values.data:
+        entry.fail("values", f"gives no level; give {each} per level of {attribute!r}")
+    return tuple(values.data), values
+
+
+def read_level_table(entry: Node, name: str, attribute: str) -> TableSpec:
+    """A table by level alone: one number per level, constant in time."""
+    levels, rows = level_entries(entry, attribute, "a number")
+    values = tuple(rows.number(level, role=NON_NEGATIVE) for level in levels)
+    return TableSpec(name, None, (0.0,), values, attribute, levels)

@@ -125,8 +125,9 @@ def read_hazard(node: Node, tables: Mapping[str, TableSpec]) -> HazardSpec:
 
 
 def read_clock(node: Node, table: TableSpec | None) -> str:
-    """A table fixes the clock through its `by`; otherwise the file's clock or the default."""
-    if table is None:
+    """A table fixes the clock through its `by`; otherwise (no table, or a table by level
+    alone) the file's clock or the default."""
+    if table is None or table.by is None:
         return node.text("clock", DEFAULT_CLOCK, choices=CLOCKS)
     if node.has("clock") and node.text("clock", choices=CLOCKS) != table.clock:
         node.fail("clock", f"table {table.name!r} is by {table.by}, which fixes the clock to "

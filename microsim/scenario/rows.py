@@ -23,7 +23,7 @@ from typing import Iterator, Mapping
 
 import numpy as np
 
-from .checks import check_reference, table_at
+from .checks import check_reference, level_choices, table_at
 from .errors import ScenarioError
 from .fields import AGE, COMPETING_PROBABILITY, TOLERANCE, Reference, listing, show
 from .formulas import settings, with_derived
@@ -239,7 +239,8 @@ def row_bounds(s: Scenario, values: Mapping[str, np.ndarray], ranges: Ranges) ->
 
 def row_sum(s: Scenario, row: Row, value, multipliers) -> np.ndarray:
     """The largest sum of the row's moves, each move's probability taking its multiplier
-    (D,) on the rate scale, tables at their highest band (band by band on one axis)."""
+    (D,) on the rate scale, tables at their highest band (band by band on one axis, level by
+    level for tables by level, the largest over the levels a patient can have)."""
     total, by_axis = 0.0, {}
     for move, m in zip(row.moves, multipliers):
         p = move.spec.probability
@@ -249,8 +250,9 @@ def row_sum(s: Scenario, row: Row, value, multipliers) -> np.ndarray:
             total = total + on_rate_scale(value(p), m)
     for tables in by_axis.values():  # tables on the same axis are read at the same point
         points = np.unique(np.concatenate([t.starts for t, _ in tables]))
-        bands = sum(on_rate_scale(table_at(t, points), m[..., None]) for t, m in tables)
-        total = total + np.max(bands, axis=-1)
+        bands = [sum(on_rate_scale(table_at(t, points, choice), m[..., None]) for t, m in tables)
+                 for choice in level_choices([t for t, _ in tables])]
+        total = total + np.max(bands, axis=(0, -1))
     return total
 
 

@@ -23,7 +23,7 @@ REMAINDER = "remainder"
 
 Correction = Literal["none", "half-cycle", "trapezoidal", "simpson"]
 Clock = Literal["since_start", "since_entry", "age"]
-TableAxis = Literal["age", "time", "time_in_state"]
+TableAxis = Literal["age", "time", "time_in_state"]  # or None: by level alone
 HazardFamily = Literal["constant", "weibull", "gompertz", "loglogistic", "table"]
 
 CLOCK_OF_TABLE_AXIS: Mapping[str, Clock] = {
@@ -166,15 +166,37 @@ class EventSpec:
 class TableSpec:
     """A step function: value[i] holds from starts[i] (inclusive) to starts[i+1].
 
-    Before starts[0] the first value holds (the reader warns when that can happen)."""
+    Before starts[0] the first value holds (the reader warns when that can happen). A table
+    by an attribute's level has one row of values per level (`levels`, in the file's order);
+    `by` None is a table by level alone (one band from 0, so one value per level)."""
     name: str
-    by: TableAxis
+    by: TableAxis | None
     starts: tuple[float, ...]
-    values: tuple[float, ...]
+    values: tuple[float, ...]  # every value: a plain table's row, or the rows level after level
+    attribute: str | None = None  # the categorical attribute whose levels pick a row
+    levels: tuple[str, ...] = ()
 
     @property
-    def clock(self) -> Clock:
-        return CLOCK_OF_TABLE_AXIS[self.by]
+    def clock(self) -> Clock | None:
+        """The clock the table's `by` fixes (None: by level alone, constant in time)."""
+        return None if self.by is None else CLOCK_OF_TABLE_AXIS[self.by]
+
+    @property
+    def rows(self) -> tuple[tuple[float, ...], ...]:
+        """The values band by band, one row per level (a plain table: its one row)."""
+        k = len(self.starts)
+        return tuple(self.values[i:i + k] for i in range(0, len(self.values), k))
+
+    @property
+    def axis_words(self) -> str:
+        """What the table is by, in words ("age", "age and the level of 'sex'")."""
+        level = None if self.attribute is None else f"the level of {self.attribute!r}"
+        return " and ".join(w for w in (self.by, level) if w is not None)
+
+    def row_name(self, i: int) -> str:
+        """The field path of row i's values."""
+        return (f"tables.{self.name}.values" if self.attribute is None
+                else f"tables.{self.name}.values.{self.levels[i]}")
 
 
 @dataclass(frozen=True)
