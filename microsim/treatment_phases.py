@@ -1,11 +1,14 @@
-"""Treatment that starts and stops when patients enter states, and sequences of treatments,
-as a bound model whose states carry the treatment phase.
+"""Treatment that starts and stops when patients enter states or have an event, and sequences
+of treatments, as a bound model whose states carry the treatment phase.
 
 A strategy with `start_on`, `stop_on` or `then` is bound to a model in which every living
 state has one copy per phase: before treatment (when it starts on entering a state), on each
 treatment of the sequence in turn, and after the last has stopped. A move into a state that
 starts or stops the current phase's treatment goes to that state's copy in the next phase;
-every other move keeps the phase. Because the phase changes only with a move, the model stays
+so does an event that starts or stops it (rate models): in the phase it acts on, the event is
+a move from the state's copy to the same state's copy in the next phase, with the event's
+name, cost and disutility, so it is counted and costed once as before. Every other move
+keeps the phase. Because the phase changes only with a move, the model stays
 a plain Markov model (with the same memory, tables and hazards as before): every engine
 simulates it as it is, and its analytic counterpart is exact by the same expanded chain as
 any other model (common practice: a treatment history as states, e.g. tunnel-like copies of
@@ -17,7 +20,8 @@ Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last); t
 the phase before treatment keep the states' own names, absorbing states have one copy,
 copies no patient can reach are left out, and each state's copies follow one another in the
 order of the states.
-Memory counts an entry into a copy as an entry into its state (`BoundModel.entered`).
+Memory counts an entry into a copy of another state as an entry into that state
+(`BoundModel.entered`); a move between copies of the same state is no entry.
 """
 from __future__ import annotations
 
@@ -43,7 +47,7 @@ class Line:
 
 def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line]) -> BoundModel:
     """`model` (bound with the first treatment's window and factors) with a treatment phase
-    in every living state."""
+    in every living state. `start_on` and each line's `stop_on` name states and events."""
     t = model.treatment
     phases: list[Line | None] = ([None] if start_on else []) + list(lines)
     if lines[-1].stop_on:
@@ -73,8 +77,11 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line])
     for k, line in enumerate(phases):
         for r, risk in enumerate(model.risks):
             moves = risk.target is not None and risk.target != risk.source
-            target = None if risk.target is None else copy[
-                phase_after(k, risk.target) if moves else k, risk.target]
+            if risk.is_event and risk.name in triggers[k]:  # the event moves the phase on
+                target = copy[k + 1, risk.source]
+            else:
+                target = None if risk.target is None else copy[
+                    phase_after(k, risk.target) if moves else k, risk.target]
             risks.append(replace(risk, source=copy[k, risk.source], target=target))
             gated = t.off_factor[r] == 0.0  # an added transition of the first treatment
             off.append(t.off_factor[r])

@@ -169,7 +169,8 @@ class Expansion:
         for a move to another state, that state's name (its entries)."""
         hits = [risk.name for risk in occurred] + [
             self.model.entered(risk.target) for risk in occurred
-            if risk.target is not None and risk.target != source]
+            if risk.target is not None
+            and self.model.entered(risk.target) != self.model.entered(source)]
         n = len(self.counters)
         return (tuple(min(k + hits.count(c.after), c.cap) for k, c in zip(counts, self.counters))
                 + tuple(0 if c.after in hits else min(k + 1, c.cap)

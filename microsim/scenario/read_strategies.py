@@ -261,6 +261,7 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
                             "not from the entry that starts treatment; leave it out with "
                             "start_on, and stop treatment with stop_on")
     absorbing = {st.name for st in merged.states if st.absorbing}
+    events = {e.name: e for e in merged.events}
     lines = [(prefix, strategy.start_on, strategy.stop_on)]
     lines += [(f"{prefix}.then.{line.name}", lines_before_stop, line.stop_on)
               for line, lines_before_stop in zip(strategy.then, [strategy.stop_on] + [
@@ -269,8 +270,14 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
         for key, names in (("start_on", starts if path == prefix else ()), ("stop_on", stops)):
             for i, name in enumerate(names):
                 here = f"{path}.{key}" + (f"[{i}]" if len(names) > 1 else "")
+                if name in events:
+                    check_trigger_event(merged, events[name], here)
+                    continue
                 if name not in merged.state_names:
-                    raise ScenarioError(here, unknown_state(name, merged.state_names))
+                    known = list(merged.state_names) + list(events)
+                    raise ScenarioError(here, f"{name!r} is not a state or event"
+                                        f"{did_you_mean(name, known)}; name a state (entering "
+                                        f"it) or an event: {listing(known)}")
                 if name in absorbing:
                     raise ScenarioError(here, f"{name!r} is absorbing, where nothing happens "
                                         "any more; name a state patients can live in")
@@ -284,10 +291,29 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
     for line in strategy.then:
         check_changes(merged, replace(strategy, changes=line.changes),
                       f"{prefix}.then.{line.name}")
-    if strategy.start_on and not set(strategy.start_on) & reachable:
+    reached = reachable | {e for e in events if set(events[e].states) & reachable}
+    if strategy.start_on and not set(strategy.start_on) & reached:
         return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
                 "strategy treats no one"]
     return []
+
+
+def check_trigger_event(merged: Scenario, event, here: str) -> None:
+    """An event that starts or stops treatment moves the patient to the treated copy of the
+    same state: exact in rate models whose clocks do not restart with that move."""
+    if merged.discrete:
+        raise ScenarioError(here, f"{event.name!r} is an event, and in cycle models an event "
+                            "cannot start or stop treatment (it is drawn beside the cycle's "
+                            "move, which the phase change would have to follow); name a state")
+    for risk in (*merged.transitions, *merged.events):
+        states = (risk.source,) if isinstance(risk, TransitionSpec) else risk.states
+        varying = risk.hazard is not None and risk.hazard.family != "constant"
+        if varying and risk.clock == "since_entry" and set(states) & set(event.states):
+            raise ScenarioError(here, f"{event.name!r} happens in {listing(event.states)}, "
+                                f"where {risk.name!r} has a {risk.hazard.family} hazard on the "
+                                "time since entry, which the move to the treated copy would "
+                                "restart; put that hazard on clock = \"since_start\" or "
+                                "\"age\", or start treatment on a state")
 
 
 def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str) -> Scenario:
