@@ -20,7 +20,7 @@ from microsim.scenario import parse_scenario
 from microsim.simulation import simulate
 from support import (after, assert_engines_agree, assert_refused, attribute, event, horizon,
                      model_of, nested, population, probability, rate, scenario_text, start,
-                     state, strategy)
+                     state, strategy, table)
 from test_treatment_phases import COMPARATOR, OUTCOMES, assert_same_results
 
 FLARING = [
@@ -139,6 +139,92 @@ CYCLES = [horizon(5), start(a=1), state("a"), state("dead", absorbing=True),
     (CYCLES, dict(start_on="flare"), "strategies.treat.start_on", "in cycle models an event"),
 ], ids=["typo", "same-event", "clock", "cycle-model"])
 def test_refusals(blocks, fields, path, phrase):
+    assert_refused(scenario_text(*blocks, COMPARATOR,
+                                 strategy("treat", changes=[nested(cost=10)], **fields)),
+                   path, phrase)
+
+
+# -- a delay from the trigger to the start (cycle models) -----------------------------------
+
+def delayed_pathway(die_progressed):
+    return [horizon(10), start(stable=0.8, progressed=0.2), state("stable", cost=100),
+            state("progressed", cost=300), state("dead", absorbing=True),
+            table("dying", by="time_in_state", starts=[0, 1, 3], values=[0.1, 0.2, 0.3]),
+            probability("stable", "progressed", 0.15), probability("stable", "dead", 0.02),
+            probability("stable", "stable", "remainder"),
+            probability("progressed", "dead", die_progressed, name="die_progressed"),
+            probability("progressed", "progressed", "remainder")]
+
+
+DELAYED = strategy("treat", start_on="progressed", start_delay=2.0,
+                   changes=[nested(transition="die_progressed", hazard_ratio=0.5),
+                            nested(state="progressed", cost=400)])
+
+
+def treated(p):  # the hazard ratio on the rate scale, p' = 1 - (1 - p)^HR
+    return 1 - (1 - p) ** 0.5
+
+
+def test_a_delay_of_two_cycles_equals_the_hand_built_countdown():
+    # by hand: two tunnel states count the cycles down to the treated state, as in any
+    # tunnel-state model (common practice); time in 'progressed' runs on through them, so
+    # the time_in_state table reads 0.1 in the first cycle there, 0.2 in the next two, then
+    # 0.3 (the treated state is a tunnel too: its first cycle is the third in progressed)
+    model = bind(parse_scenario(scenario_text(*delayed_pathway("dying"), COMPARATOR, DELAYED)),
+                 strategy="treat")
+    assert model.states == ("stable", "progressed+treat-wait2", "progressed+treat-wait1",
+                            "progressed+treat", "dead")
+    by_hand = scenario_text(
+        horizon(10), start(stable=0.8, wait2=0.2), state("stable", cost=100),
+        state("wait2", cost=300), state("wait1", cost=300), state("treated_early", cost=700),
+        state("treated", cost=700), state("dead", absorbing=True),
+        probability("stable", "wait2", 0.15), probability("stable", "dead", 0.02),
+        probability("stable", "stable", "remainder"),
+        probability("wait2", "dead", 0.1), probability("wait2", "wait1", "remainder"),
+        probability("wait1", "dead", 0.2), probability("wait1", "treated_early", "remainder"),
+        probability("treated_early", "dead", treated(0.2)),
+        probability("treated_early", "treated", "remainder"),
+        probability("treated", "dead", treated(0.3)),
+        probability("treated", "treated", "remainder"))
+    plain = model_of(by_hand)
+    one, two = analytic(model), analytic(plain)
+    merge = np.zeros((plain.n_states, model.n_states))  # the two treated tunnels are one state
+    for j, name in enumerate(plain.states):
+        merge[j, min(j, 3) if j < 4 else j - 1] = 1.0
+    np.testing.assert_allclose(one.trace, two.trace @ merge, rtol=1e-9, atol=1e-12)
+    values, reference = outcome_values(model, one.exposure), outcome_values(plain, two.exposure)
+    for measure in OUTCOMES:
+        assert values[measure][0] == pytest.approx(reference[measure][0], rel=1e-9), measure
+
+
+def test_delayed_treatment_simulated_agrees_and_engines_give_the_same_histories():
+    scenario = parse_scenario(scenario_text(*delayed_pathway("dying"), PEOPLE, COMPARATOR,
+                                            DELAYED.replace('name = "treat"\n',
+                                                            'name = "treat"\nuptake = 0.6\n')))
+    model = bind(scenario, strategy="treat")
+    patients = draw_population(scenario.population, 29, np.arange(3000))
+    result = compare(simulate(model, patients, 29))
+    assert result.exact and result.agrees, result.verdict
+    assert_engines_agree(model, np.arange(900) * 3 + 5, 3)
+
+
+def test_a_delay_of_zero_is_no_delay():
+    plain, zero = (bind(parse_scenario(scenario_text(
+        *delayed_pathway(0.2), COMPARATOR, DELAYED.replace("start_delay = 2.0", f"start_delay = {d}"))),
+        strategy="treat") for d in ("0.0", "0"))
+    assert plain.states == zero.states == ("stable", "progressed+treat", "dead")
+
+
+@pytest.mark.parametrize("blocks, fields, path, phrase", [
+    (None, dict(start_on="progressed", start_delay=1.5), "strategies.treat.start_delay",
+     "not a whole number of cycles"),
+    (None, dict(start_on="progressed", start_delay=-1), "strategies.treat.start_delay", "at least 0"),
+    (None, dict(start_delay=2), "strategies.treat.start_delay", "give start_on"),
+    (FLARING, dict(start_on="progressed", start_delay=1), "strategies.treat.start_delay",
+     "no exact Markov counterpart"),
+], ids=["part-cycle", "negative", "no-trigger", "rate-model"])
+def test_delay_refusals(blocks, fields, path, phrase):
+    blocks = delayed_pathway(0.2) if blocks is None else blocks
     assert_refused(scenario_text(*blocks, COMPARATOR,
                                  strategy("treat", changes=[nested(cost=10)], **fields)),
                    path, phrase)

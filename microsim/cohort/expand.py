@@ -102,7 +102,8 @@ class Expansion:
         key = (state, duration, counts, to, tuple(id(r) for r in occurred))
         found = self._targets.get(key)
         if found is None:
-            after = min(duration + 1, self.durations[state] - 1) if to == state else 0
+            same = self.model.entered(to) == self.model.entered(state)  # or a copy of it
+            after = min(duration + 1, self.durations[to] - 1) if same else 0
             found = self._targets[key] = self.index(to, after,
                                                     self.after_move(counts, state, occurred))
         return found

@@ -26,7 +26,7 @@ from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, Eligibil
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
                  "discontinuation", "changes", "states", "transitions", "start_on", "stop_on",
-                 "then", "arrivals", "resources")  # the last two: read by read_capacity
+                 "start_delay", "then", "arrivals", "resources")  # the last two: read by read_capacity
 LINE_KEYS = ("name", "stop_on", "changes")
 ELIGIBLE_KEYS = ("all", "any")
 NUMBER_TESTS = ("above", "at_least", "below", "at_most")
@@ -128,7 +128,7 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
         changes=tuple(read_change(n) for n in node.nodes("changes", CHANGE_KEYS)),
         states=states, transitions=transitions, while_treated=gated,
         start_on=state_list(node, "start_on"), stop_on=state_list(node, "stop_on"),
-        then=read_lines(node))
+        then=read_lines(node), start_delay=node.number("start_delay", 0.0, role=NON_NEGATIVE))
 
 
 def state_list(node: Node, key: str) -> tuple[str, ...]:
@@ -240,6 +240,7 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
         found.append(f"{prefix}: changes nothing (no changes and no added transitions), so it "
                      "gives the same results as the comparator")
     reachable, _ = reachable_from_start(merged)
+    check_delay(s, strategy, f"{prefix}.start_delay")
     if strategy.phased:
         found += check_phases(s, merged, strategy, prefix, reachable)
     found += [f"{prefix}.states.{st.name}: not reachable from the start (no transition that can "
@@ -296,6 +297,24 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
         return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
                 "strategy treats no one"]
     return []
+
+
+def check_delay(s: Scenario, strategy: StrategySpec, here: str) -> None:
+    """`start_delay`: whole cycles in cycle models, where a countdown of copies of the states
+    makes it exact; a fixed delay in a rate model has no finite Markov form, so it is refused."""
+    delay, cycle, unit = strategy.start_delay, s.time.cycle, s.time.unit
+    if not delay:
+        return
+    if not strategy.start_on:
+        raise ScenarioError(here, "delays the start on start_on, which this strategy does not "
+                            "have; give start_on, or use start for a fixed time")
+    if not s.discrete:
+        raise ScenarioError(here, "a fixed delay in a rate model has no exact Markov "
+                            "counterpart, so it is not available; use a cycle model, or put an "
+                            "intermediate state with a rate between the trigger and treatment")
+    if abs(delay / cycle - round(delay / cycle)) > 1e-9:
+        raise ScenarioError(here, f"{show(delay)} {unit} is not a whole number of cycles "
+                            f"({show(cycle)} {unit} each); give a multiple of the cycle")
 
 
 def check_trigger_event(merged: Scenario, event, here: str) -> None:
