@@ -135,6 +135,9 @@ class BoundModel:
     start_effects: tuple[tuple[int, BoundEffect], ...] = ()
     # with treatment phases (`treatment_phases`): the model state each state is a copy of
     entered_names: tuple[str, ...] | None = None
+    # cycle models with a delay to treatment: the state a patient who stays in its state
+    # passes to at a cycle end (the next copy of the countdown; None: the state itself)
+    stay_to: np.ndarray | None = None
 
     def entered(self, state: int) -> str:
         """The name memory counts an entry into `state` under: its own, or for a copy of
@@ -272,7 +275,8 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
                   treatment.extra_utility)]
     lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
                                                           number)) for line in spec.then]
-    return with_phases(model, spec.start_on, lines)
+    delay = round(spec.start_delay / model.cycle) if model.discrete else 0
+    return with_phases(model, spec.start_on, lines, delay)
 
 
 def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number) -> Treatment | None:

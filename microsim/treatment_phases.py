@@ -1,11 +1,14 @@
-"""Treatment that starts and stops when patients enter states, and sequences of treatments,
-as a bound model whose states carry the treatment phase.
+"""Treatment that starts and stops when patients enter states or have an event, and sequences
+of treatments, as a bound model whose states carry the treatment phase.
 
 A strategy with `start_on`, `stop_on` or `then` is bound to a model in which every living
 state has one copy per phase: before treatment (when it starts on entering a state), on each
 treatment of the sequence in turn, and after the last has stopped. A move into a state that
 starts or stops the current phase's treatment goes to that state's copy in the next phase;
-every other move keeps the phase. Because the phase changes only with a move, the model stays
+so does an event that starts or stops it (rate models): in the phase it acts on, the event is
+a move from the state's copy to the same state's copy in the next phase, with the event's
+name, cost and disutility, so it is counted and costed once as before. Every other move
+keeps the phase. Because the phase changes only with a move, the model stays
 a plain Markov model (with the same memory, tables and hazards as before): every engine
 simulates it as it is, and its analytic counterpart is exact by the same expanded chain as
 any other model (common practice: a treatment history as states, e.g. tunnel-like copies of
@@ -17,7 +20,8 @@ Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last); t
 the phase before treatment keep the states' own names, absorbing states have one copy,
 copies no patient can reach are left out, and each state's copies follow one another in the
 order of the states.
-Memory counts an entry into a copy as an entry into its state (`BoundModel.entered`).
+Memory counts an entry into a copy of another state as an entry into that state
+(`BoundModel.entered`); a move between copies of the same state is no entry.
 """
 from __future__ import annotations
 
@@ -41,16 +45,21 @@ class Line:
     utility: np.ndarray  # (S,)
 
 
-def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line]) -> BoundModel:
+def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
+                delay: int = 0) -> BoundModel:
     """`model` (bound with the first treatment's window and factors) with a treatment phase
-    in every living state."""
+    in every living state. `start_on` and each line's `stop_on` name states and events;
+    `delay` (cycle models) is the whole cycles from the start trigger to the first treatment."""
     t = model.treatment
-    phases: list[Line | None] = ([None] if start_on else []) + list(lines)
+    waits = delay if start_on else 0
+    phases: list[Line | None] = ([None] * (1 + waits) if start_on else []) + list(lines)
     if lines[-1].stop_on:
         phases.append(None)
-    triggers = [start_on] if start_on else []
+    triggers = [start_on] + [()] * waits if start_on else []
     triggers += [line.stop_on for line in lines] + ([()] if lines[-1].stop_on else [])
-    suffix = ([""] if start_on else []) + [f"+{line.name}" for line in lines] + (
+    first = lines[0]
+    suffix = ([""] + [f"+{first.name}-wait{j}" for j in range(waits, 0, -1)] if start_on
+              else []) + [f"+{line.name}" for line in lines] + (
         [f"+{STOPPED}"] if lines[-1].stop_on else [])
 
     names, entered, copy = [], [], {}
@@ -64,17 +73,28 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line])
             entered.append(name)
     base = np.array([model.states.index(n) for n in entered])  # the state of each copy
 
+    def waiting(k: int) -> bool:
+        return 1 <= k <= waits
+
     def phase_after(k: int, state: int) -> int:
-        """The phase a patient in phase k is in after entering `state`."""
+        """The phase a patient in phase k is in after entering `state` at a cycle end (a
+        cycle of the countdown to treatment passes first); entering the start trigger
+        goes to the countdown, or straight to treatment without a delay."""
+        if waiting(k):
+            k += 1
+            if waiting(k):
+                return k
         return k + 1 if model.states[state] in triggers[k] else k
 
     risks, on, off = [], [], []
-    first = lines[0]
     for k, line in enumerate(phases):
         for r, risk in enumerate(model.risks):
-            moves = risk.target is not None and risk.target != risk.source
-            target = None if risk.target is None else copy[
-                phase_after(k, risk.target) if moves else k, risk.target]
+            moves = risk.target is not None and risk.target != risk.source  # staying: no tick
+            if risk.is_event and risk.name in triggers[k]:  # the event moves the phase on
+                target = copy[k + 1, risk.source]
+            else:
+                target = None if risk.target is None else copy[
+                    phase_after(k, risk.target) if moves else k, risk.target]
             risks.append(replace(risk, source=copy[k, risk.source], target=target))
             gated = t.off_factor[r] == 0.0  # an added transition of the first treatment
             off.append(t.off_factor[r])
@@ -92,14 +112,20 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line])
         for i in range(model.n_states):
             if line is not None and not model.absorbing[i]:
                 cost[copy[k, i]], utility[copy[k, i]] = line.cost[i], line.utility[i]
-    # keep the copies patients can reach (from where they start, by any risk)
+    # a cycle of the countdown passes for a patient who stays in its state
+    stay = np.arange(len(names))
+    for k in range(1, waits + 1):
+        for i in range(model.n_states):
+            stay[copy[k, i]] = copy[k + 1, i]
+    # keep the copies patients can reach (from where they start, by any risk or a countdown)
     kept, stack = set(np.flatnonzero(start)), list(np.flatnonzero(start))
     while stack:
         e = stack.pop()
-        for risk in risks:
-            if risk.source == e and risk.target is not None and risk.target not in kept:
-                kept.add(risk.target)
-                stack.append(risk.target)
+        reached = [risk.target for risk in risks if risk.source == e and risk.target is not None]
+        for f in reached + [stay[e]]:
+            if f not in kept:
+                kept.add(f)
+                stack.append(f)
     kept = sorted(kept, key=lambda e: (base[e], e))  # each state's copies together, in order
     new = {e: j for j, e in enumerate(kept)}
     live = [r for r, risk in enumerate(risks) if risk.source in new]
@@ -113,4 +139,5 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line])
                             target=None if risks[r].target is None else new[risks[r].target])
                     for r in live),
         treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
-        entered_names=tuple(entered[e] for e in kept))
+        entered_names=tuple(entered[e] for e in kept),
+        stay_to=None if not waits else np.array([new[stay[e]] for e in kept]))

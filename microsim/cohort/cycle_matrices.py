@@ -127,7 +127,7 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
         # of them happened in the same cycle.
         counting = [(risk, p) for risk, p in events if risk.name in exp.tracked]
         for risk, p in moves:
-            j = i if risk is None else risk.target
+            j = (i if model.stay_to is None else model.stay_to[i]) if risk is None else risk.target
             for pattern in itertools.product((False, True), repeat=len(counting)):
                 weight = p
                 occurred = [] if risk is None else [risk]

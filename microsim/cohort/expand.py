@@ -102,7 +102,8 @@ class Expansion:
         key = (state, duration, counts, to, tuple(id(r) for r in occurred))
         found = self._targets.get(key)
         if found is None:
-            after = min(duration + 1, self.durations[state] - 1) if to == state else 0
+            same = self.model.entered(to) == self.model.entered(state)  # or a copy of it
+            after = min(duration + 1, self.durations[to] - 1) if same else 0
             found = self._targets[key] = self.index(to, after,
                                                     self.after_move(counts, state, occurred))
         return found
@@ -169,7 +170,8 @@ class Expansion:
         for a move to another state, that state's name (its entries)."""
         hits = [risk.name for risk in occurred] + [
             self.model.entered(risk.target) for risk in occurred
-            if risk.target is not None and risk.target != source]
+            if risk.target is not None
+            and self.model.entered(risk.target) != self.model.entered(source)]
         n = len(self.counters)
         return (tuple(min(k + hits.count(c.after), c.cap) for k, c in zip(counts, self.counters))
                 + tuple(0 if c.after in hits else min(k + 1, c.cap)

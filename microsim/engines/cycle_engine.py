@@ -88,6 +88,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE),
                                mult)
     absorbing = model.absorbing.tolist()
+    stay_to = None if model.stay_to is None else model.stay_to.tolist()
     ids = np.asarray(patient_ids).tolist()
     cycle, n_cycles = model.cycle, model.n_cycles
     record = Recorder(mult.size)
@@ -175,6 +176,9 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 state, duration = chosen[1], 0
             else:
                 duration += 1
+                if stay_to is not None and stay_to[state] != state:  # a countdown's cycle
+                    add(b, end, state, stay_to[state], START)
+                    state = stay_to[state]
             yield env.timeout(cycle)
 
     for b in range(len(patient_ids)):

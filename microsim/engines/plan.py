@@ -27,11 +27,11 @@ def tracked_names(model: BoundModel) -> tuple[str, ...]:
 
 def bumps(model: BoundModel, tracked: tuple[str, ...]) -> list[tuple[int, ...]]:
     """For each risk, the tracked names its occurrence advances (its own name, and the
-    state it enters when that is a new state)."""
+    state it enters when that is another state, not a copy of the same one)."""
     out = []
     for risk in model.risks:
         hit = {risk.name}
-        if risk.target is not None and risk.target != risk.source:
+        if risk.target is not None and model.entered(risk.target) != model.entered(risk.source):
             hit.add(model.entered(risk.target))
         out.append(tuple(k for k, name in enumerate(tracked) if name in hit))
     return out

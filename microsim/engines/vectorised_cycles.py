@@ -177,6 +177,9 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
                 batch.occur(who[moved & (risk == r)], r, end)
             batch.duration[who] = np.where(moved, 0, batch.duration[who] + 1)
             state[who[moved]] = target[moved]
+            if model.stay_to is not None and model.stay_to[i] != i:  # a countdown's cycle
+                records.append((who[~moved], end, i, model.stay_to[i], START))
+                state[who[~moved]] = model.stay_to[i]
         alive = alive[~absorbing[state[alive]]]
         on_points[:, n + 1] = state
     return from_records(records, len(ids), on_points)

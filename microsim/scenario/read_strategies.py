@@ -26,7 +26,7 @@ from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, Eligibil
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
                  "discontinuation", "changes", "states", "transitions", "start_on", "stop_on",
-                 "then", "arrivals", "resources")  # the last two: read by read_capacity
+                 "start_delay", "then", "arrivals", "resources")  # the last two: read by read_capacity
 LINE_KEYS = ("name", "stop_on", "changes")
 ELIGIBLE_KEYS = ("all", "any")
 NUMBER_TESTS = ("above", "at_least", "below", "at_most")
@@ -128,7 +128,7 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
         changes=tuple(read_change(n) for n in node.nodes("changes", CHANGE_KEYS)),
         states=states, transitions=transitions, while_treated=gated,
         start_on=state_list(node, "start_on"), stop_on=state_list(node, "stop_on"),
-        then=read_lines(node))
+        then=read_lines(node), start_delay=node.number("start_delay", 0.0, role=NON_NEGATIVE))
 
 
 def state_list(node: Node, key: str) -> tuple[str, ...]:
@@ -240,6 +240,7 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
         found.append(f"{prefix}: changes nothing (no changes and no added transitions), so it "
                      "gives the same results as the comparator")
     reachable, _ = reachable_from_start(merged)
+    check_delay(s, strategy, f"{prefix}.start_delay")
     if strategy.phased:
         found += check_phases(s, merged, strategy, prefix, reachable)
     found += [f"{prefix}.states.{st.name}: not reachable from the start (no transition that can "
@@ -261,6 +262,7 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
                             "not from the entry that starts treatment; leave it out with "
                             "start_on, and stop treatment with stop_on")
     absorbing = {st.name for st in merged.states if st.absorbing}
+    events = {e.name: e for e in merged.events}
     lines = [(prefix, strategy.start_on, strategy.stop_on)]
     lines += [(f"{prefix}.then.{line.name}", lines_before_stop, line.stop_on)
               for line, lines_before_stop in zip(strategy.then, [strategy.stop_on] + [
@@ -269,8 +271,14 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
         for key, names in (("start_on", starts if path == prefix else ()), ("stop_on", stops)):
             for i, name in enumerate(names):
                 here = f"{path}.{key}" + (f"[{i}]" if len(names) > 1 else "")
+                if name in events:
+                    check_trigger_event(merged, events[name], here)
+                    continue
                 if name not in merged.state_names:
-                    raise ScenarioError(here, unknown_state(name, merged.state_names))
+                    known = list(merged.state_names) + list(events)
+                    raise ScenarioError(here, f"{name!r} is not a state or event"
+                                        f"{did_you_mean(name, known)}; name a state (entering "
+                                        f"it) or an event: {listing(known)}")
                 if name in absorbing:
                     raise ScenarioError(here, f"{name!r} is absorbing, where nothing happens "
                                         "any more; name a state patients can live in")
@@ -284,10 +292,47 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
     for line in strategy.then:
         check_changes(merged, replace(strategy, changes=line.changes),
                       f"{prefix}.then.{line.name}")
-    if strategy.start_on and not set(strategy.start_on) & reachable:
+    reached = reachable | {e for e in events if set(events[e].states) & reachable}
+    if strategy.start_on and not set(strategy.start_on) & reached:
         return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
                 "strategy treats no one"]
     return []
+
+
+def check_delay(s: Scenario, strategy: StrategySpec, here: str) -> None:
+    """`start_delay`: whole cycles in cycle models, where a countdown of copies of the states
+    makes it exact; a fixed delay in a rate model has no finite Markov form, so it is refused."""
+    delay, cycle, unit = strategy.start_delay, s.time.cycle, s.time.unit
+    if not delay:
+        return
+    if not strategy.start_on:
+        raise ScenarioError(here, "delays the start on start_on, which this strategy does not "
+                            "have; give start_on, or use start for a fixed time")
+    if not s.discrete:
+        raise ScenarioError(here, "a fixed delay in a rate model has no exact Markov "
+                            "counterpart, so it is not available; use a cycle model, or put an "
+                            "intermediate state with a rate between the trigger and treatment")
+    if abs(delay / cycle - round(delay / cycle)) > 1e-9:
+        raise ScenarioError(here, f"{show(delay)} {unit} is not a whole number of cycles "
+                            f"({show(cycle)} {unit} each); give a multiple of the cycle")
+
+
+def check_trigger_event(merged: Scenario, event, here: str) -> None:
+    """An event that starts or stops treatment moves the patient to the treated copy of the
+    same state: exact in rate models whose clocks do not restart with that move."""
+    if merged.discrete:
+        raise ScenarioError(here, f"{event.name!r} is an event, and in cycle models an event "
+                            "cannot start or stop treatment (it is drawn beside the cycle's "
+                            "move, which the phase change would have to follow); name a state")
+    for risk in (*merged.transitions, *merged.events):
+        states = (risk.source,) if isinstance(risk, TransitionSpec) else risk.states
+        varying = risk.hazard is not None and risk.hazard.family != "constant"
+        if varying and risk.clock == "since_entry" and set(states) & set(event.states):
+            raise ScenarioError(here, f"{event.name!r} happens in {listing(event.states)}, "
+                                f"where {risk.name!r} has a {risk.hazard.family} hazard on the "
+                                "time since entry, which the move to the treated copy would "
+                                "restart; put that hazard on clock = \"since_start\" or "
+                                "\"age\", or start treatment on a state")
 
 
 def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str) -> Scenario:
