@@ -10,14 +10,16 @@ from typing import Mapping
 
 import numpy as np
 
-from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
+from microsim.hazards import (ConstantHazard, GeneralisedGammaHazard, GompertzHazard,
+                              HazardFamily, LogLogisticHazard, LogNormalHazard,
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
 FAMILIES = {"constant": ConstantHazard, "weibull": WeibullHazard, "gompertz": GompertzHazard,
-            "loglogistic": LogLogisticHazard}
+            "loglogistic": LogLogisticHazard, "lognormal": LogNormalHazard,
+            "generalised_gamma": GeneralisedGammaHazard}
 
 
 def table_hazard(table: TableSpec) -> PiecewiseConstantHazard:
@@ -32,11 +34,13 @@ def table_hazard(table: TableSpec) -> PiecewiseConstantHazard:
 @dataclass(frozen=True)
 class BoundEffect:
     """Multiply the hazard by exp(log_hr * (x - centre)) (continuous) or exp(log_hr)
-    when the attribute equals `level` (categorical; yes/no: when true)."""
+    when the attribute equals `level` (categorical; yes/no: when true). With `time_ratio`,
+    log_hr is the log of a time ratio, which divides the hazard's clock instead."""
     attribute: str
     log_hr: float
     level: str | None
     centre: float
+    time_ratio: bool = False
 
 
 @dataclass(frozen=True)
@@ -167,7 +171,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     def effect(e: EffectSpec) -> BoundEffect:
         value = number(e.hazard_ratio)
         log_hr = value if e.coefficient else float(np.log(value))
-        return BoundEffect(e.attribute, log_hr, e.level, e.centre)
+        return BoundEffect(e.attribute, log_hr, e.level, e.centre, e.time_ratio)
 
     def memory(m: MemorySpec) -> BoundMemory:
         return BoundMemory(

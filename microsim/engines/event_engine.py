@@ -138,6 +138,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     tracking = bool(tracked)
 
     def patient(b: int, timeout):
+        views = plan.patient_views(risks, mult, b)  # with the patient's time ratios
         times = [t[b] if t else None for t in batch.times]  # extended when used up
         winners = [w[b] if w else None for w in batch.winners]
         draws = {r: d[b] for r, d in batch.draws.items()}
@@ -166,7 +167,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                 for r in from_state[state]:
                     if k == len(draws[r]):
                         draws[r] += batch.more_draws(b, r, k)
-                    dt, change = latent_time(risks[r], draws[r][k], static[r], now, entered,
+                    dt, change = latent_time(views[r], draws[r][k], static[r], now, entered,
                                              age0, memory[r], counts, last, change, windows[b])
                     if dt < best:
                         best, winner = dt, r

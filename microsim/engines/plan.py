@@ -13,6 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from microsim.binding import BoundModel
+from microsim.hazards import TimeScaledHazard
 from microsim.patients.multipliers import Multipliers
 
 CLOCKS = {"since_start": 0, "since_entry": 1, "age": 2}
@@ -71,6 +72,15 @@ class RiskView:
                             ("rate", rate)):
             object.__setattr__(self, name, value)
 
+    def scaled(self, ratio: float) -> "RiskView":
+        """The same risk under a patient's time ratio (never a constant rate's: the
+        multipliers keep that as a hazard ratio)."""
+        view = object.__new__(RiskView)
+        for name in self.__slots__:
+            object.__setattr__(view, name, getattr(self, name))
+        object.__setattr__(view, "hazard", TimeScaledHazard(self.hazard, ratio))
+        return view
+
 
 def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
     """Every risk as the event engines read it, with treatment factors where the strategy's
@@ -84,6 +94,14 @@ def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
 
     return [RiskView(risk, float(mult.age_slope[r]), *factors(r))
             for r, risk in enumerate(model.risks)]
+
+
+def patient_views(views: list[RiskView], mult: Multipliers, b: int) -> list[RiskView]:
+    """The risk views of patient row b: `views` itself, or with that patient's time ratios."""
+    if mult.log_time_scale is None:
+        return views
+    ratios = np.exp(mult.log_time_scale[b]).tolist()
+    return [view if ratio == 1.0 else view.scaled(ratio) for view, ratio in zip(views, ratios)]
 
 
 def start_states(model: BoundModel, u: np.ndarray) -> list[int]:

@@ -31,7 +31,7 @@ from math import inf
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.hazards import HazardFamily
+from microsim.hazards import HazardFamily, TimeScaledHazard
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
@@ -115,7 +115,9 @@ class _Batch:
         self.memory = plan.memory_terms(model, tracked)
         self.count_multipliers = {term: np.asarray(term[1], float) for terms in self.memory
                                   for term in terms if term[1] is not None}
+        self.mult = mult
         self.views = plan.risk_views(model, mult)
+        self.ratios = [mult.time_ratios(r) for r in range(len(model.risks))]
         # a numerical root (no closed form under a growing multiplier) needs a search limit
         self.numerical = [bool(v.slope) and type(v.hazard).time_to_reach_growing_array
                           is HazardFamily.time_to_reach_growing_array for v in self.views]
@@ -174,12 +176,14 @@ class _Batch:
         a = (now if view.clock == "since_start" else
              now - self.entered.take(rows) if view.clock == "since_entry"
              else self.age0.take(rows) + now)
+        hazard = view.hazard if self.ratios[r] is None else \
+            TimeScaledHazard(view.hazard, self.ratios[r].take(rows))
         if view.slope:
-            return view.hazard.time_to_reach_growing_array(
+            return hazard.time_to_reach_growing_array(
                 e, a, m * np.exp(view.slope * now), view.slope, limit)
         if view.rate is not None:
             return e / (m * view.rate)  # e > 0, so a rate of 0 gives inf, as there
-        return view.hazard.time_to_reach_array(e / m, a)
+        return hazard.time_to_reach_array(e / m, a)
 
     def round(self, i: int, rows: np.ndarray) -> np.ndarray:
         """One round in state i for patient rows `rows`; returns the rows that reached the
@@ -235,8 +239,9 @@ class _Batch:
             window = (float(self.on[b]), float(self.off[b]))
             t, entered, age0 = float(now[p]), float(self.entered[b]), float(self.age0[b])
             soonest, winner, bound = inf, 0, self.end
+            views = plan.patient_views(self.views, self.mult, b)
             for j, r in enumerate(self.from_state[i]):
-                dt, bound = latent_time(self.views[r], float(draws[j][p]), float(self.static[r, b]),
+                dt, bound = latent_time(views[r], float(draws[j][p]), float(self.static[r, b]),
                                         t, entered, age0, self.memory[r], counts, last, bound,
                                         window)
                 if dt < soonest:

@@ -8,6 +8,8 @@ numbers for who is treated as well as for what happens to them.
 """
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 
@@ -79,8 +81,7 @@ def patient_multipliers(model: BoundModel, patients: pd.DataFrame, seed: int) ->
     has_attributes = len(patients.columns) > 1
     mult = multipliers(model, patients) if has_attributes else cohort_multipliers(model).repeated(len(patients))
     window = treatment_window(model, patients, seed)
-    return mult if window is None else Multipliers(mult.log_static, mult.age_slope,
-                                                    mult.entry_age, window)
+    return mult if window is None else replace(mult, window=window)
 
 
 def uniform_multipliers(model: BoundModel) -> Multipliers:
@@ -98,4 +99,4 @@ def uniform_multipliers(model: BoundModel) -> Multipliers:
                             "discontinuation), so it has no single cohort trace; simulate it "
                             "with `microsim run` or `microsim validate --strategy`")
     window = Window(np.array([t.start]), np.array([t.stop]), t.on_factor, t.off_factor)
-    return Multipliers(mult.log_static, mult.age_slope, mult.entry_age, window)
+    return replace(mult, window=window)

@@ -5,8 +5,8 @@ from __future__ import annotations
 import math
 from typing import Any, Mapping
 
-from .fields import (ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, POSITIVE, PROBABILITY, RATE,
-                     Node, Reference, did_you_mean, listing, show)
+from .fields import (AGE, ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, POSITIVE, PROBABILITY,
+                     RATE, TIME_RATIO, Node, Reference, did_you_mean, listing, show)
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
 SHARED_KEYS = ("probability", "rate", "hazard", "clock", "cost", "disutility", "effects",
@@ -15,11 +15,15 @@ TRANSITION_KEYS = ("from", "to", "name") + SHARED_KEYS
 EVENT_KEYS = ("name", "states") + SHARED_KEYS
 HAZARD_KEYS = {"constant": ("rate",), "weibull": ("shape", "scale"),
                "gompertz": ("rate", "shape"), "loglogistic": ("shape", "scale"),
+               "lognormal": ("meanlog", "sdlog"), "generalised_gamma": ("mu", "sigma", "q"),
                "table": ("table",)}
-HAZARD_ROLES = {("constant", "rate"): RATE, ("gompertz", "shape"): ANY}  # others: > 0
+HAZARD_ROLES = {("constant", "rate"): RATE, ("gompertz", "shape"): ANY,
+                ("lognormal", "meanlog"): ANY, ("generalised_gamma", "mu"): ANY,
+                ("generalised_gamma", "q"): ANY}  # others: > 0
 CLOCKS = ("since_start", "since_entry", "age")
 DEFAULT_CLOCK = "since_entry"
-EFFECT_KEYS = ("attribute", "hazard_ratio", "coefficient", "centre", "level")
+RATIO_KEYS = ("hazard_ratio", "coefficient", "time_ratio", "time_coefficient")
+EFFECT_KEYS = ("attribute",) + RATIO_KEYS + ("centre", "level")
 MEMORY_KEYS = ("after", "multipliers", "within", "multiplier")
 MAX_COEFFICIENT = 700.0  # exp(700) is close to the largest float
 
@@ -69,7 +73,9 @@ def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
     else:
         hazard = read_hazard(node.node("hazard", None), tables)
         table = tables[hazard.params["table"]] if hazard.family == "table" else None
-    effects = tuple(read_effect(n) for n in node.nodes("effects", EFFECT_KEYS))
+    stiff = ("a per-cycle probability has no clock to stretch" if kind == "probability" else
+             "a table of rates steps at fixed clock values" if table is not None else None)
+    effects = tuple(read_effect(n, stiff) for n in node.nodes("effects", EFFECT_KEYS))
     seen: set[tuple[str, str | None]] = set()
     for i, effect in enumerate(effects):
         if (effect.attribute, effect.level) in seen:
@@ -109,27 +115,40 @@ def read_clock(node: Node, table: TableSpec | None) -> str:
     return table.clock
 
 
-def read_effect(node: Node) -> EffectSpec:
+def read_effect(node: Node, stiff: str | None) -> EffectSpec:
+    """One effect: a hazard ratio (proportional hazards) or a time ratio (accelerated failure
+    time), or the log of either. `stiff` says why the occurrence cannot take a time ratio."""
     attribute = node.name("attribute")
-    if node.one_of(("hazard_ratio", "coefficient")) == "hazard_ratio":
-        ratio, is_coefficient = node.ref("hazard_ratio", HAZARD_RATIO), False
+    key = node.one_of(RATIO_KEYS)
+    on_time = key.startswith("time")
+    if on_time and stiff is not None:
+        node.fail(key, f"a time ratio stretches the clock of a rate or parametric hazard, and "
+                       f"{stiff}; give a hazard_ratio (or coefficient) instead")
+    if on_time and attribute == AGE:
+        node.fail(key, "attained age moves as the clock runs, and a time ratio that changes "
+                       "with the clock it stretches is not defined here; give age a "
+                       "hazard_ratio, or put the time ratio on an attribute that stays fixed "
+                       "(such as the age at entry under another name)")
+    what = "time ratio" if on_time else "hazard ratio"
+    if key in ("hazard_ratio", "time_ratio"):
+        ratio, is_coefficient = node.ref(key, TIME_RATIO if on_time else HAZARD_RATIO), False
     else:
-        coefficient = node.ref("coefficient", ANY)
+        coefficient = node.ref(key, ANY)
         if isinstance(coefficient, str):
             ratio, is_coefficient = coefficient, True
         elif abs(coefficient) > MAX_COEFFICIENT:
-            node.fail("coefficient", f"{show(coefficient)} is too large: the hazard ratio "
-                                     f"exp({show(coefficient)}) cannot be represented; "
-                                     f"give a log-hazard between -{show(MAX_COEFFICIENT)} "
-                                     f"and {show(MAX_COEFFICIENT)}")
+            node.fail(key, f"{show(coefficient)} is too large: the {what} "
+                           f"exp({show(coefficient)}) cannot be represented; give a log-"
+                           f"{what} between -{show(MAX_COEFFICIENT)} and {show(MAX_COEFFICIENT)}")
         else:
             ratio, is_coefficient = math.exp(coefficient), False
     level = node.text("level", None, nonempty=True)
     if level is not None and node.has("centre"):
-        node.fail("centre", "is only used with continuous attributes; with level the hazard "
-                            "ratio applies to patients at that level")
+        node.fail("centre", f"is only used with continuous attributes; with level the {what} "
+                            "applies to patients at that level")
     return EffectSpec(attribute=attribute, hazard_ratio=ratio, level=level,
-                      centre=node.number("centre", 0.0), coefficient=is_coefficient)
+                      centre=node.number("centre", 0.0), coefficient=is_coefficient,
+                      time_ratio=on_time)
 
 
 def read_memory(node: Node) -> MemorySpec:
