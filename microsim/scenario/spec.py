@@ -302,15 +302,30 @@ it again from the next occurrence of its streams, or clip its values to their ra
 
 
 @dataclass(frozen=True)
+class NormalGroupSpec:
+    """Parameters drawn together from one multivariate normal: `means` and `covariance` on
+    the drawn scale, which is the log for the members named in `on_log_scale`."""
+    parameters: tuple[str, ...]
+    means: tuple[float, ...]
+    covariance: tuple[tuple[float, ...], ...]
+    on_log_scale: tuple[str, ...] = ()
+
+    @property
+    def on_log(self) -> tuple[bool, ...]:
+        return tuple(name in self.on_log_scale for name in self.parameters)
+
+
+@dataclass(frozen=True)
 class UncertaintySpec:
-    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows, and
-    what to do with invalid draws."""
+    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows,
+    multivariate normal groups, and what to do with invalid draws."""
     draws: int = 100
     patients: int | None = None  # default: the population size
     correlation_parameters: tuple[str, ...] = ()
     correlation: tuple[tuple[float, ...], ...] = ()
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
+    normal_groups: tuple[NormalGroupSpec, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -122,7 +122,8 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                          scenario.population.size if scenario.population else None, 1000)
              if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
-    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
+    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets,
+                               spec.normal_groups)
     # every draw checked (refused, redrawn or truncated) before anything is simulated
     checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
     table = checked.table
