@@ -112,17 +112,18 @@ class BoundModel:
     start: np.ndarray  # (S,) initial shares
     start_age: float | None
     state_cost: np.ndarray  # (S,) per time unit
-    state_utility: np.ndarray  # (S,) per time unit
+    state_utility: np.ndarray  # (S,) QALY weight per year lived in the state
     risks: tuple[BoundRisk, ...]
     discrete: bool
     cycle: float
     n_cycles: int
     lifetime: bool
-    discount_costs: float
+    discount_costs: float  # effective rate per time unit (the file's are per year)
     discount_effects: float
     correction: str
     probability_rule: str  # cycle models: how a row's probabilities take the multipliers
     values: Mapping[str, float]
+    years_per_unit: float  # life years and QALYs are counted in years
     treatment: Treatment | None = None
 
     @property
@@ -140,6 +141,14 @@ class BoundModel:
     def times(self) -> np.ndarray:
         """The cycle grid 0, cycle, ..., end."""
         return np.arange(self.n_cycles + 1) * self.cycle
+
+
+def per_unit(yearly: float, years_per_unit: float) -> float:
+    """An effective discount rate per year as the same rate per time unit:
+    (1 + d)^(years per unit) - 1, so the factor at t units is (1 + d)^-(t years)."""
+    if years_per_unit == 1.0:
+        return yearly
+    return float(np.expm1(years_per_unit * np.log1p(yearly)))
 
 
 def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
@@ -223,8 +232,9 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         cycle=scenario.time.cycle,
         n_cycles=scenario.time.n_cycles,
         lifetime=scenario.time.horizon is None,
-        discount_costs=outcomes.discount_costs,
-        discount_effects=outcomes.discount_effects,
+        discount_costs=per_unit(outcomes.discount_costs, scenario.time.years_per_unit),
+        discount_effects=per_unit(outcomes.discount_effects, scenario.time.years_per_unit),
+        years_per_unit=scenario.time.years_per_unit,
         correction=outcomes.correction,
         probability_rule=scenario.time.probability_rule,
         values=resolved,

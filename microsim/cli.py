@@ -44,6 +44,9 @@ def psa_dir(args) -> Path:
 def check_output(args) -> None:
     """Refuse an --out that cannot take the command's files, before any work."""
     from microsim.store import unwritable
+    if not str(args.out).strip():
+        raise ScenarioError("--out", "is empty; give the folder the run folders go under "
+                                     "(default: outputs)")
     folders = [out_dir(args, Path(args.scenario))]
     if getattr(args, "psa", False):
         folders.append(psa_dir(args))
@@ -67,7 +70,8 @@ def write(args, path: Path, tables: dict, started: float, documents: dict | None
                        files=files, scenario=path)
     if not quiet:
         count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
-        print(f"\nwrote {count} (CSV and Parquet) and manifest.json to {folder}/")
+        others = "".join(f", {name}" for name in (files or {}))
+        print(f"\nwrote {count} (CSV and Parquet){others} and manifest.json to {folder}/")
     return folder
 
 
@@ -85,11 +89,17 @@ def command_check(args) -> int:
     return 0
 
 
+def scenario_options(args) -> dict:
+    """The options given that override scenario keys, as the keys' values."""
+    from microsim.scenario.options import KEYS, toml_values
+    return toml_values({key: getattr(args, key, None) for key in KEYS})
+
+
 def begin(args) -> tuple[float, Path, object]:
     """Start a command's clock and read its scenario (refusing bad input before any work)."""
     started = time.perf_counter()
     path = Path(args.scenario)
-    return started, path, read_scenario(path)
+    return started, path, read_scenario(path, options=scenario_options(args))
 
 
 def cohort_note(scenario) -> str:
@@ -147,16 +157,30 @@ def command_summary(args) -> int:
     return 0
 
 
-PSA_OPTIONS = ("draws", "psa_patients", "workers", "backend", "address", "invalid_draws")
+PSA_OPTIONS = ("draws", "psa_patients", "workers", "backend", "address", "invalid_draws",
+               "evppi", "evpi_years", "evpi_discount")
+ANALYSIS_OPTIONS = {"psa": ("the PSA", PSA_OPTIONS),
+                    "sensitivity": ("the sensitivity analysis", ("two_way", "break_even", "grid")),
+                    "budget": ("the budget impact", ("budget_years", "prevalent_patients"))}
+
+
+def refuse_idle_options(args) -> None:
+    """An option of an analysis the run does not do is refused, not ignored."""
+    for flag, (what, names) in ANALYSIS_OPTIONS.items():
+        if getattr(args, flag):
+            continue
+        given = next((name for name in names if getattr(args, name) is not None), None)
+        if given is not None:
+            option = "--" + given.replace("_", "-")
+            raise ScenarioError(option, f"only acts on {what}; add --{flag}, or leave it out")
+    if args.incidence is not None and not (args.psa or args.budget):
+        raise ScenarioError("--incidence", "only acts on population EVPI (--psa) and the "
+                                           "budget impact (--budget); add one, or leave it out")
 
 
 def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
-    if not args.psa:
-        given = next((name for name in PSA_OPTIONS if getattr(args, name) is not None), None)
-        if given is not None:
-            option = "--" + given.replace("_", "-")
-            raise ScenarioError(option, "only acts on the PSA; add --psa, or leave it out")
+    refuse_idle_options(args)
     from microsim.capacity.present import print_service, service_summary
     from microsim.capacity.run import ServiceResult
     from microsim.present import print_summary, summary
@@ -169,15 +193,19 @@ def command_run(args) -> int:
                "patients": args.psa_patients, "workers": args.workers or 1,
                "backend": args.backend or "processes", "address": args.address,
                "progress": not args.json}
-    result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws)
+    result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws,
+                      options=scenario_options(args))
     tables = dict(result.tables)
     if isinstance(result, ServiceResult):  # shared capacity: its own summary
         data, report = service_summary(result), print_service
     else:
         data, report = summary(result), print_summary
         if args.sensitivity:
-            from microsim.uncertainty.one_way import tornado
-            tables["one_way"] = tornado(result.scenario, args.patients, result.seed)
+            from microsim.uncertainty.deterministic import sensitivity_tables
+            tables.update(sensitivity_tables(result.scenario, args.patients, result.seed))
+        if args.budget:
+            from microsim.decision.budget_impact import budget_tables
+            tables.update(budget_tables(result.scenario, args.patients, result.seed))
     if args.json:
         print(json.dumps(data, indent=2))
     else:
@@ -235,20 +263,23 @@ def validation_report(args, path: Path, started: float, histories: Path | None) 
               seed=check.seed, verdict=next(iter(check.validations.values())).verdict)
         print(f"\n{CAUTION}")
         return 0
-    c = check.comparison
-    print(f"Validation — {check.simulation.model.scenario.title}: {check.simulation.size} "
-          f"patients, seed {check.simulation.seed}\nCounterpart: {c.counterpart}")
-    worst = c.shares.reindex(c.shares.z.abs().sort_values(ascending=False).index)
-    show("State shares with the largest |z| (simulated, analytic, Monte-Carlo SE)", worst, rows=12)
+    c = next(iter(check.validations.values()))
+    subject = "the model as written" if args.strategy is None else f"strategy {args.strategy}"
+    seed = run_seed(args, read_scenario(path))
+    print(f"Validation — {read_scenario(path).title}, {subject}: {check.size} patients, "
+          f"seed {seed}\nCounterpart: {c.counterpart}")
+    worst = c.shares.sort_values("p_value", kind="stable")
+    show("State shares furthest from the counterpart, smallest p-value first (simulated, "
+         "analytic, Monte-Carlo SE, z, p-value)", worst, rows=12)
     show("Outcomes per patient", c.outcomes)
     print(f"\n{c.verdict}")
     show("The 'average patient' cohort against the simulated population", c.average_patient)
     print(f"\n{c.average_verdict}")
     write(args, path, {"validation_shares": c.shares, "validation_subgroups": c.subgroups,
-                       "validation_outcomes": c.outcomes,
+                       "validation_outcomes": c.outcomes, "validation_survival": c.survival,
                        "average_patient": c.average_patient}, started,
           files={"histories.parquet": histories} if histories else None,
-          seed=check.simulation.seed, verdict=c.verdict)
+          seed=seed, verdict=c.verdict)
     print(f"\n{CAUTION}")
     return 0
 
@@ -272,26 +303,31 @@ def command_population(args) -> int:
 
 
 def command_sensitivity(args) -> int:
-    from microsim.uncertainty.one_way import AS_WRITTEN, tornado
+    from microsim.present import print_sensitivity
+    from microsim.uncertainty.deterministic import sensitivity_tables
     started, path, scenario = begin(args)
     if scenario.capacity is not None:
-        raise ScenarioError("sensitivity", "one-way sensitivity of a service with shared "
+        raise ScenarioError("sensitivity", "sensitivity analysis of a service with shared "
                             "capacity ([arrivals], [[resources]]) is not available yet")
     seed = run_seed(args, scenario)
-    table = tornado(scenario, args.patients, seed, args.strategy, args.measure)
-    first = table.iloc[0]
-    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
-    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
-          if first.measure.endswith("nmb") else "")
-    for name, rows in table.groupby("strategy", sort=False):
-        exact = rows.se_base.isna().all()
-        hidden = ["strategy", "measure", "compared_with", "basis",
-                  *(["se_low", "se_high", "se_base"] if exact else [])]
-        subject = "the model as written" if name == AS_WRITTEN else name
-        show(f"One-way sensitivity of {MEASURES[first.measure]} of {subject}{against}{at} "
-             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
-             rows.drop(columns=hidden))
-    write(args, path, {"one_way": table}, started, seed=seed)
+    tables = sensitivity_tables(scenario, args.patients, seed, args.strategy, args.measure)
+    print_sensitivity(scenario, tables)
+    write(args, path, tables, started, seed=seed)
+    print(f"\n{CAUTION}")
+    return 0
+
+
+def command_budget(args) -> int:
+    from microsim.decision.budget_impact import budget_tables
+    from microsim.present import print_budget
+    started, path, scenario = begin(args)
+    if scenario.capacity is not None:
+        raise ScenarioError("budget", "the budget impact of a service with shared capacity "
+                            "([arrivals], [[resources]]) is not available yet")
+    seed = run_seed(args, scenario)
+    tables = budget_tables(scenario, args.patients, seed)
+    print_budget(scenario, tables)
+    write(args, path, tables, started, seed=seed)
     print(f"\n{CAUTION}")
     return 0
 
@@ -368,6 +404,25 @@ def build_parser() -> argparse.ArgumentParser:
                          "with [arrivals], the most arrivals per replication")
         sub.add_argument("--seed", type=SEED, help="run seed (default: the scenario's)")
 
+    def sensitivity_options(sub):
+        sub.add_argument("--two-way", metavar="A,B", help="also vary these two parameters "
+                         "together over a grid of their ranges (sensitivity.two_way)")
+        sub.add_argument("--break-even", metavar="NAME[,NAME]", help="also find where the "
+                         "measure crosses 0 as each of these parameters runs over its range "
+                         "(sensitivity.break_even)")
+        sub.add_argument("--grid", help="values of each parameter from low to high, the base "
+                         "value added (sensitivity.grid, default 7)")
+
+    def population_reached(sub):
+        sub.add_argument("--incidence", metavar="N[,N]", help="new patients a year, one "
+                         "number or one per year (economics.incidence)")
+
+    def budget_options(sub):
+        sub.add_argument("--budget-years", help="calendar years of the budget impact "
+                         "(economics.budget_years)")
+        sub.add_argument("--prevalent-patients", help="patients already there at the start "
+                         "of year 1 (economics.prevalent_patients)")
+
     def engine_option(sub):
         sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
                          help="auto (default) or vectorised: the vectorised engine for either "
@@ -397,6 +452,13 @@ def build_parser() -> argparse.ArgumentParser:
     sensitivity.add_argument("--measure", help=f"what is varied, one of: {', '.join(MEASURES)} "
                              "(default: incremental_nmb against the comparator; nmb for a "
                              "scenario without strategies)")
+    sensitivity_options(sensitivity)
+    budget = add("budget", command_budget, "Budget impact: each strategy's yearly cost to a "
+                 "payer for the stated population, undiscounted, and its difference from the "
+                 "comparator.")
+    population_options(budget)
+    population_reached(budget)
+    budget_options(budget)
     run = add("run", command_run, "The main job: every strategy on the same simulated patients, "
               "validated against the analytic cohort, with costs, QALYs, increments, frontier, "
               "subgroups, and PSA when asked.")
@@ -413,9 +475,22 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--invalid-draws", choices=INVALID_DRAWS,
                      help="what the PSA does with a draw whose values or rows are invalid "
                           "(default: the scenario's uncertainty.invalid_draws, else refuse)")
+    run.add_argument("--evppi", action="append", metavar="NAME[,NAME]",
+                     help="PSA: also the EVPPI of this parameter or group (repeat for more; "
+                          "uncertainty.evppi)")
+    run.add_argument("--evpi-years", help="PSA: years the decision holds, for population EVPI "
+                     "(economics.evpi_years)")
+    run.add_argument("--evpi-discount", help="PSA: yearly discount rate of population EVPI "
+                     "(economics.evpi_discount)")
+    population_reached(run)
     run.add_argument("--sensitivity", action="store_true",
-                     help="also run the one-way sensitivity (tornado data, incremental NMB of "
-                          "every strategy) and keep it with the run")
+                     help="also run the deterministic sensitivity (tornado data, incremental "
+                          "NMB of every strategy; two-way and break-even when asked) and keep "
+                          "it with the run")
+    sensitivity_options(run)
+    run.add_argument("--budget", action="store_true",
+                     help="also the budget impact (economics.budget_years) with the run")
+    budget_options(run)
     run.add_argument("--report", action="store_true",
                      help="also write report.html (figures, tables, verdicts) into the run folder")
     report = commands.add_parser(

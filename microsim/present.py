@@ -25,7 +25,7 @@ def summary(result: MainResult) -> dict:
     """A machine-readable summary (for scripts): what the printed summary says."""
     s, d = result.scenario, result.decision
     out = {"scenario": s.title, "provenance": s.provenance, "seed": result.seed,
-           "patients": len(next(iter(result.simulations.values())).patients),
+           "patients": result.population.size,
            "validation": {n: {"agrees": v.agrees, "verdict": v.verdict,
                               "average_patient": v.average_verdict}
                           for n, v in result.validations.items()},
@@ -50,6 +50,12 @@ def summary(result: MainResult) -> dict:
                 "acceptability_at_threshold": records(at[at.threshold == near]),
                 "evpi_at_threshold": records(p.evpi[p.evpi.threshold == near]),
                 "variance_split": records(p.variance)})
+            if "probability_best_noise_removed" in at:
+                out["psa"]["noise_removed"] = NOISE_REMOVED
+            if p.evppi is not None:
+                out["psa"]["evppi_at_threshold"] = records(p.evppi[p.evppi.threshold == near])
+            if "population_evpi" in p.evpi:
+                out["psa"]["population"] = population_words(s.economics)
         out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
                                        "changed_draws": int(p.changed.draw.nunique()),
                                        "changes": records(p.changed),
@@ -63,9 +69,9 @@ def records(table: pd.DataFrame) -> list[dict]:
 
 def print_summary(result: MainResult) -> None:
     s, d = result.scenario, result.decision
-    first = next(iter(result.simulations.values()))
+    size = result.population.size
     print(f"microsim run — {s.title}\n{s.provenance}")
-    print(f"{first.size} patients, seed {result.seed}" + (
+    print(f"{size} patients, seed {result.seed}" + (
         "; every strategy on the same patients with common random numbers." if d is not None
         else "; the model as written (the scenario defines no strategies)."))
     if d is None:
@@ -78,7 +84,7 @@ def print_summary(result: MainResult) -> None:
             if spec.comparator:
                 continue
             count = d.treated[spec.name]
-            print(f"{spec.name}: treats {count} of {first.size} patients ({count / first.size:.1%})"
+            print(f"{spec.name}: treats {count} of {size} patients ({count / size:.1%})"
                   + ("" if count else " — warning: nobody is treated; check its eligibility "
                                       "and uptake"))
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",
@@ -114,10 +120,93 @@ def print_summary(result: MainResult) -> None:
         near = (p.acceptability.threshold - s.economics.threshold).abs()
         at = p.acceptability[near == near.min()]
         show(f"PSA ({len(p.draws)} draws): probability each strategy is best", at)
-        show("Expected value of perfect information per patient",
+        if "probability_best_noise_removed" in at:
+            print(f"probability_best_noise_removed: {NOISE_REMOVED}.")
+        show("Expected value of perfect information per patient"
+             + (f"; population EVPI for {population_words(s.economics)}"
+                if "population_evpi" in p.evpi else ""),
              p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
+        if p.evppi is not None:
+            rows = p.evppi[(p.evppi.threshold - s.economics.threshold).abs() == near.min()]
+            show("Expected value of partial perfect information per patient (regression on "
+                 "the PSA sample, Strong, Oakley & Brennan 2014; SE by wild bootstrap and "
+                 "over the draws)", rows.drop(columns=["method", "edf"]))
+            for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):
+                print(f"  {group}: {method}")
         show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
         print(f"\n{changed_draws(p)}")
+
+
+def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
+    """The deterministic sensitivity analyses: one-way (tornado data), the two-way grid,
+    the break-even values."""
+    from microsim.decision.measures import MEASURES
+    from microsim.uncertainty.one_way import AS_WRITTEN
+    table = tables["one_way"]
+    first = table.iloc[0]
+    what = MEASURES[first.measure]
+    against = f" against {first.compared_with}" if isinstance(first.compared_with, str) else ""
+    at = (f" at {scenario.economics.threshold:g} {scenario.economics.currency} per QALY"
+          if first.measure.endswith("nmb") else "")
+    for name, rows in table.groupby("strategy", sort=False):
+        exact = rows.se_base.isna().all()
+        hidden = ["strategy", "measure", "compared_with", "basis",
+                  *(["se_low", "se_high", "se_base"] if exact else [])]
+        subject = "the model as written" if name == AS_WRITTEN else name
+        show(f"One-way sensitivity of {what} of {subject}{against}{at} "
+             f"({rows.basis.iloc[0]}; tornado data, widest swing first)",
+             rows.drop(columns=hidden))
+    if "two_way" in tables:
+        for name, rows in tables["two_way"].groupby("strategy", sort=False):
+            a, b = rows.first_parameter.iloc[0], rows.second_parameter.iloc[0]
+            grid = rows.pivot(index="first_value", columns="second_value", values="result")
+            subject = "the model as written" if name == AS_WRITTEN else name
+            show(f"Two-way sensitivity of {what} of {subject}{against}{at} ({rows.basis.iloc[0]}): "
+                 f"rows {a}, columns {b}", grid.rename_axis(index=a, columns=b).reset_index())
+    if "break_even" in tables:
+        found = tables["break_even"]
+        show(f"Break-even values: where {what}{against}{at} crosses 0 ({found.basis.iloc[0]}; "
+             "SE by the delta method where simulated)",
+             found[["strategy", "parameter", "low", "high", "value", "se", "lower", "upper"]])
+        for row in found.itertuples():
+            print(f"  {row.strategy}, {row.parameter}: {row.finding}")
+
+
+def print_budget(scenario, tables: dict[str, pd.DataFrame]) -> None:
+    """The budget impact: cost per patient by year since entry, then the payer's yearly
+    cost of each strategy for the stated population."""
+    e, cur = scenario.economics, scenario.economics.currency
+    per_patient, impact = tables["budget_costs_by_year"], tables["budget_impact"]
+    basis = per_patient.basis.iloc[0]
+    show(f"Cost per patient by year since entry ({cur}, undiscounted; {basis})",
+         per_patient.drop(columns=["basis"]) if basis.startswith("simulated")
+         else per_patient.drop(columns=["basis", "se"]))
+    shown = ["year", "strategy", "new_patients", "patients_entered", "cost", "impact"]
+    if impact.se.notna().any():
+        shown[5:5] = ["se"]
+        shown.append("impact_se")
+    show(f"Budget impact ({cur} a year, undiscounted): {e.prevalent_patients:,} patients at "
+         "the start and the new patients of each year, each cohort entering at the start of "
+         "its year; impact against " + (impact.compared_with.iloc[0]
+                                        if isinstance(impact.compared_with.iloc[0], str)
+                                        else "no comparator (no strategies)"),
+         impact[shown])
+
+
+NOISE_REMOVED = ("the share of draws in which each strategy is best after each draw's "
+                 "incremental net benefit is moved towards the mean by noise_scale = "
+                 "sqrt(between / (between + within / n)), the inner patients' Monte-Carlo "
+                 "noise taken out by the variance split (O'Hagan, Stevenson & Madan 2007; "
+                 "constrained Bayes, Louis 1984)")
+
+
+def population_words(e) -> str:
+    """Who population EVPI counts, in words."""
+    incidence = (f"{e.incidence[0]:,g} new patients a year" if len(e.incidence) == 1 else
+                 "new patients a year of " + ", ".join(f"{x:,g}" for x in
+                                                      e.incidence_by_year(e.evpi_years)))
+    return (f"{incidence} over {e.evpi_years} years, discounted at {e.evpi_discount:g} a year "
+            "(EVPI x sum of I_t / (1 + r)^t, t = 1..T)")
 
 
 def changed_draws(psa, listed: int = 5) -> str:
@@ -142,14 +231,17 @@ def changed_draws(psa, listed: int = 5) -> str:
 
 
 def subgroup_headlines(subgroups: pd.DataFrame) -> list[str]:
-    """One line per strategy: the subgroups where it clearly pays and clearly does not."""
+    """Per strategy, the subgroups where its incremental NMB is clearly positive, clearly
+    negative, and those where the 95% CI spans 0 (each with the estimate and its CI)."""
     lines = []
     for name, rows in subgroups.groupby("strategy", sort=False):
         def listed(rows):
-            return "; ".join(f"{r.attribute} = {r.level} ({r.incremental_nmb:+,.0f} +- "
-                             f"{1.96 * r.se:,.0f})" for r in rows.itertuples()) or "none"
-        pays = rows[rows.verdict.str.startswith("pays")]
-        loses = rows[rows.verdict.str.startswith("does not pay")]
-        lines.append(f"{name} pays for: {listed(pays)}")
-        lines.append(f"{name} does not pay for: {listed(loses)}")
+            return "; ".join(f"{r.attribute} = {r.level} ({r.incremental_nmb:+,.0f}, 95% CI "
+                             f"{r.incremental_nmb - 1.96 * r.se:+,.0f} to "
+                             f"{r.incremental_nmb + 1.96 * r.se:+,.0f})"
+                             for r in rows.itertuples()) or "none"
+        for words, start in (("gains (95% CI above 0) in", "pays"),
+                             ("loses (95% CI below 0) in", "does not pay"),
+                             ("is uncertain (95% CI spans 0) in", "uncertain")):
+            lines.append(f"{name} {words}: {listed(rows[rows.verdict.str.startswith(start)])}")
     return lines

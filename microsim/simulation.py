@@ -45,6 +45,15 @@ class Simulation:
     def size(self) -> int:
         return len(self.patients)
 
+    def head(self, n: int) -> "Simulation":
+        """The first n patients (all of them when there are fewer)."""
+        if n >= self.size:
+            return self
+        part = slice(0, n)
+        return Simulation(self.model, self.patients.iloc[part].reset_index(drop=True),
+                          self.seed, self.mult.take(part), self.grid, self.states[part],
+                          self.exposure.take(part), -1)
+
 
 def report_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
     """Time points for traces: the cycle points, or a finer/coarser step in rate models."""
@@ -74,39 +83,61 @@ def choose_engine(model: BoundModel, engine: str):
     return simulate_cycles_vectorised if model.discrete else simulate_events_vectorised
 
 
+class HistoryFile:
+    """Histories streamed to one Parquet file, batch by batch and across calls of
+    `simulate`; the file takes its name only when it is closed complete (a failure or an
+    interrupt leaves only a partial file beside it, which the caller's scratch folder drops)."""
+
+    def __init__(self, path: Path):
+        self.path = Path(path)
+        self.partial = self.path.with_suffix(".parquet.partial")
+        self.writer = None
+
+    def write(self, table) -> None:
+        with writing(self.path):
+            if self.writer is None:
+                self.partial.parent.mkdir(parents=True, exist_ok=True)
+                self.writer = pq.ParquetWriter(self.partial, table.schema)
+            self.writer.write_table(table)
+
+    def __enter__(self) -> "HistoryFile":
+        return self
+
+    def __exit__(self, kind, error, trace) -> None:
+        if self.writer is None:
+            return
+        with writing(self.path):
+            self.writer.close()
+            if kind is None:
+                os.replace(self.partial, self.path)  # complete, so it takes its name
+
+
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,
-             grid: np.ndarray | None = None, histories: Path | None = None,
+             grid: np.ndarray | None = None, histories: Path | HistoryFile | None = None,
              mult: Multipliers | None = None, engine: str = "auto") -> Simulation:
-    """Simulate every patient (rows of `patients`, ids in column 'patient')."""
+    """Simulate every patient (rows of `patients`, ids in column 'patient'); `histories`
+    streams every record to Parquet (a path, or an open `HistoryFile` shared by calls)."""
+    if isinstance(histories, (str, Path)):
+        with HistoryFile(histories) as file:
+            return simulate(model, patients, seed, batch_size=batch_size, grid=grid,
+                            histories=file, mult=mult, engine=engine)
     grid = report_grid(model) if grid is None else grid
     mult = patient_multipliers(model, patients, seed) if mult is None else mult.repeated(len(patients))
     engine = choose_engine(model, engine)
     ids = patients[PATIENT].to_numpy()
     states, exposures, transitions = [], [], 0
-    writer = None
-    partial = None if histories is None else Path(histories).with_suffix(".parquet.partial")
-    try:
-        for lo in range(0, len(ids), batch_size):
-            part = slice(lo, lo + batch_size)
-            batch = mult.take(part)
-            h = engine(model, batch, ids[part], seed)
-            states.append(aggregate.grid_states(h, grid))
-            cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
-            exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
-            transitions += int(np.sum(h.risk >= 0))
-            if partial is not None:
-                table = h.table(patients.iloc[part], model.states, [r.name for r in model.risks])
-                with writing(histories):
-                    if writer is None:
-                        partial.parent.mkdir(parents=True, exist_ok=True)
-                        writer = pq.ParquetWriter(partial, table.schema)
-                    writer.write_table(table)
-    finally:
-        if writer is not None:
-            with writing(histories):
-                writer.close()
-    if writer is not None:
-        with writing(histories):
-            os.replace(partial, histories)  # complete, so it takes its name
+    for lo in range(0, len(ids), batch_size):
+        part = slice(lo, lo + batch_size)
+        batch = mult.take(part)
+        h = engine(model, batch, ids[part], seed)
+        states.append(aggregate.grid_states(h, grid))
+        cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
+        exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
+        transitions += int(np.sum(h.risk >= 0))
+        if histories is not None:
+            histories.write(h.table(patients.iloc[part], model.states,
+                                    [r.name for r in model.risks],
+                                    None if model.treatment is None else model.treatment.strategy,
+                                    batch.window))
     return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)

@@ -5,32 +5,77 @@ Kept apart from the CLI so that scripts and tests run exactly what `microsim run
 """
 from __future__ import annotations
 
+from collections import Counter
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
+from microsim.binding import bind
 from microsim.capacity.run import refuse_options, run_service
 from microsim.cohort.summaries import cohort_trace
-from microsim.binding import bind
-from microsim.results.comparison import Comparison, compare, analytic_counterpart
-from microsim.results.survival import survival_table
-from microsim.decision.strategies import Decision, decide, run_strategies
-from microsim.patients.population import patients_for
-from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
+from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_frame,
+                                          strategy_names, treated_count)
+from microsim.patients.population import (DEFAULT_PATIENTS, PATIENT, scenario_patients,
+                                          subgroup_attributes)
+from microsim.results.comparison import Comparison, ComparisonSums
 from microsim.scenario import Scenario, ScenarioError, read_scenario
 from microsim.scenario.fields import did_you_mean
-from microsim.simulation import Simulation, choose_engine, report_grid, simulate
+from microsim.simulation import HistoryFile, choose_engine, report_grid, simulate
+from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
+
 
 @dataclass(frozen=True)
-class Validation:
-    simulation: Simulation
-    comparison: Comparison
+class PopulationRun:
+    """What a run keeps of its patients. Patients are drawn, simulated and compared batch
+    by batch (`simulation.batch_size`), so a run holds per patient only what paired
+    statistics need: each strategy's outcomes and the patient's subgroups; the comparisons
+    with the analytic counterpart are sums."""
+    size: int
+    outcomes: pd.DataFrame  # patient, strategy, measures
+    patients: pd.DataFrame  # patient and its subgroup attributes
+    treated: dict[str, int]  # patients each strategy puts on treatment
+    validations: dict[str, Comparison]
+
+
+def run_population(scenario: Scenario, size: int | None, seed: int, engine: str = "auto",
+                   strategies: list[str | None] | None = None,
+                   histories: Path | None = None, compare_all: bool = False) -> PopulationRun:
+    """Every strategy (default: all, or the model as written) on the scenario's patients
+    0..size-1, batch by batch, each batch's strategies on the same patients and draws. The
+    first `simulation.validation_patients` are compared with the analytic counterpart (all
+    of them with `compare_all`): an exact per-patient counterpart costs about as many times
+    a simulation as the model has expanded states, so a very large run is validated on a
+    large sample of its own patients."""
+    spec = scenario.population
+    n = size if size is not None else (spec.size if spec else DEFAULT_PATIENTS)
+    chosen = strategies if strategies is not None else (strategy_names(scenario) or [None])
+    models = {name or AS_WRITTEN: bind(scenario, strategy=name) for name in chosen}
+    limit = None if compare_all else scenario.simulation.validation_patients
+    sums = {label: ComparisonSums(model, report_grid(model, scenario.simulation.grid), limit)
+            for label, model in models.items()}
+    outcomes, people, treated = [], [], Counter()
+    batch = scenario.simulation.batch_size
+    with HistoryFile(histories) if histories is not None else nullcontext() as file:
+        for lo in range(0, n, batch):
+            patients = scenario_patients(scenario, seed, np.arange(lo, min(n, lo + batch)))
+            for label, model in models.items():
+                sim = simulate(model, patients, seed, batch_size=batch, grid=sums[label].grid,
+                               histories=file, engine=engine)
+                sums[label].add(sim)
+                outcomes.append(outcome_frame(label, sim))
+                treated[label] += treated_count(sim)
+            people.append(patients[[PATIENT, *subgroup_attributes(patients)]])
+    return PopulationRun(n, pd.concat(outcomes, ignore_index=True),
+                         pd.concat(people, ignore_index=True), dict(treated),
+                         {label: s.finish() for label, s in sums.items()})
 
 
 def validate(path: Path, patients: int | None = None, seed: int | None = None,
              strategy: str | None = None, histories: Path | None = None,
-             engine: str = "auto") -> Validation:
+             engine: str = "auto") -> PopulationRun:
     """Simulate the scenario (or one strategy) and compare it with its analytic counterpart
     (a service with shared capacity: its queues with queueing theory, a `ServiceResult`)."""
     scenario = read_scenario(path)
@@ -43,19 +88,16 @@ def validate(path: Path, patients: int | None = None, seed: int | None = None,
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(engine=engine, histories=histories is not None)
         return run_service(scenario, seed, patients, [strategy])
-    model = bind(scenario, strategy=strategy)
-    sim = simulate(model, patients_for(scenario, patients, seed), seed,
-                   batch_size=scenario.simulation.batch_size,
-                   grid=report_grid(model, scenario.simulation.grid), histories=histories,
-                   engine=engine)
-    return Validation(sim, compare(sim))
+    choose_engine(bind(scenario), engine)
+    return run_population(scenario, patients, seed, engine, [strategy], histories,
+                          compare_all=True)
 
 
 @dataclass(frozen=True)
 class MainResult:
     scenario: Scenario
     seed: int
-    simulations: dict[str, Simulation]
+    population: PopulationRun
     validations: dict[str, Comparison]
     decision: Decision | None
     psa: PsaResult | None = None
@@ -64,38 +106,37 @@ class MainResult:
 
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
              psa: dict | None = None, engine: str = "auto",
-             invalid_draws: str | None = None) -> MainResult:
+             invalid_draws: str | None = None, options: dict | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
     the analytic counterpart, evaluated, and with PSA when `psa` settings are given
-    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws; a service with
+    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws, `options` the keys
+    of `microsim.scenario.options`; a service with
     shared capacity: `microsim.capacity.run.run_service`, a `ServiceResult`).
 
     What can be refused is refused before any work: the engine, the patients, and the PSA
     (its folder of another run, its backend) by running it first; its finished draws stay
     on disk however the rest ends."""
-    scenario = read_scenario(path, invalid_draws)
+    scenario = read_scenario(path, invalid_draws, options)
     seed = scenario.simulation.seed if seed is None else seed
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(psa=psa is not None, engine=engine)
         return run_service(scenario, seed, patients)
     choose_engine(bind(scenario), engine)
-    people = patients_for(scenario, patients, seed)
+    scenario_patients(scenario, seed, np.arange(1))  # a population file is checked first
     psa_result = None if psa is None else parameter_uncertainty(scenario, seed=seed, **psa)
-    sims = run_strategies(scenario, people, seed, engine=engine)
-    decision = decide(scenario, sims) if scenario.strategies else None
-    counterparts = {name: analytic_counterpart(sim) for name, sim in sims.items()}
-    validations = {name: compare(sim, counterparts[name]) for name, sim in sims.items()}
-    survival = {name: survival_table(sim, counterparts[name]) for name, sim in sims.items()}
-    return MainResult(scenario, seed, sims, validations, decision, psa_result,
-                      result_tables(scenario, validations, survival, decision, psa_result))
+    run = run_population(scenario, patients, seed, engine)
+    decision = (decide(scenario, run.outcomes, run.patients, run.treated)
+                if scenario.strategies else None)
+    return MainResult(scenario, seed, run, run.validations, decision, psa_result,
+                      result_tables(scenario, run.validations, decision, psa_result))
 
 
-def result_tables(scenario, validations, survival, decision, psa) -> dict[str, pd.DataFrame]:
+def result_tables(scenario, validations, decision, psa) -> dict[str, pd.DataFrame]:
     tables = {"cohort_trace": cohort_trace(bind(scenario))}
     tables["validation_shares"] = pd.concat(
         [v.shares.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_survival"] = pd.concat(
-        [table.assign(strategy=n) for n, table in survival.items()], ignore_index=True)
+        [v.survival.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_subgroups"] = pd.concat(
         [v.subgroups.assign(strategy=n) for n, v in validations.items()], ignore_index=True)
     tables["validation_outcomes"] = pd.concat(
@@ -114,4 +155,6 @@ def result_tables(scenario, validations, survival, decision, psa) -> dict[str, p
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
                            "ce_plane": psa.plane, "psa_variance": psa.variance})
+            if psa.evppi is not None:
+                tables["evppi"] = psa.evppi
     return tables

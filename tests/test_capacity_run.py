@@ -110,7 +110,7 @@ def test_the_cost_of_capacity_by_period():
                        + "\n[tables.chairs]\nby = \"time\"\nstarts = [0, 40]\nvalues = [2, 3]\n"
                        + outcomes(discount_costs=0.05))
     cm = bind_capacity(s)
-    delta = math.log(1.05)
+    delta = math.log(1.05) / 365.25  # 5% a year, continuously per day (the unit)
 
     def discounted(a, b):
         return (math.exp(-delta * a) - math.exp(-delta * b)) / delta

@@ -408,13 +408,13 @@ def test_histories_land_with_the_run(tmp_path, capsys):
 
 def test_histories_of_a_refused_validation_are_not_left_behind(tmp_path, monkeypatch, capsys):
     """The comparison refuses after the simulation streamed every history."""
-    import microsim.workflow
+    from microsim.results.comparison import ComparisonSums
     from microsim.scenario import ScenarioError
 
-    def refuse(sim):
+    def refuse(self):
         raise ScenarioError("simulation.grid", "refused after simulating (test)")
 
-    monkeypatch.setattr(microsim.workflow, "compare", refuse)
+    monkeypatch.setattr(ComparisonSums, "finish", refuse)
     out = tmp_path / "out"
     assert main(["validate", str(WARD), "--patients", "30", "--histories", "--out", str(out)]) == 2
     refused(capsys.readouterr(), "error: simulation.grid: refused after simulating")
@@ -510,3 +510,17 @@ def test_a_reader_that_closes_the_pipe_ends_the_command_quietly(tmp_path):
     assert "Traceback" not in done.stderr and done.stderr.split()[-1] == "141", done.stderr
     written = list(tmp_path.rglob("*.csv"))
     assert not written or (written[0].parent / "manifest.json").is_file()
+
+
+def test_a_strategys_validation_names_it_and_its_histories_carry_the_treatment(tmp_path, capsys):
+    assert main(["validate", str(DEMO), "--strategy", "protein_lowering", "--patients", "200",
+                 "--histories", "--out", str(tmp_path)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("Validation — Chronic kidney disease progression in Lakemoor, "
+                          "strategy protein_lowering: 200 patients")
+    assert "histories.parquet and manifest.json" in out
+    histories = pd.read_parquet(tmp_path / DEMO.stem / "latest" / "histories.parquet")
+    assert set(histories.strategy) == {"protein_lowering"}
+    treated = histories.dropna(subset=["treatment_start"])
+    # the eligibility rule of the demo's strategy: biomarker at least 1.0 and age below 80
+    assert len(treated) and (treated.biomarker >= 1.0).all() and (treated.age < 80).all()

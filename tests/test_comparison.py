@@ -171,9 +171,9 @@ def test_the_average_patient_gets_the_strategy_too():
     result = compare(sim)
     assert result.agrees is True, result.verdict
     row = result.average_patient.set_index("measure").loc["life_years"]
-    # the average patient: death rate 0.2 * 5^share, halved for the treated share of the
-    # simulated patients (each patient's own window), closed form
-    share = people.risk_factor.mean()
+    # the average patient: death rate 0.2 * 5^prevalence (the population section's mean
+    # attribute), halved for the treated share of the patients (each patient's own window)
+    share = 0.4
     treated = np.isfinite(sim.mult.window.on).mean()
     assert 0.5 < treated < 0.7
     base = 0.2 * 5.0 ** share
@@ -185,16 +185,24 @@ def test_the_average_patient_gets_the_strategy_too():
     assert row.population == pytest.approx(life_years(own).mean(), rel=1e-9)
 
 
-def test_the_average_patient_has_mean_attributes_and_keeps_each_window():
+def test_the_average_patient_has_the_cohorts_attributes_and_keeps_each_window():
+    from microsim.patients.multipliers import Multipliers
     log_static = np.array([[0.0, 1.0], [2.0, 3.0], [4.0, 8.0]])
     window = Window(np.array([0.0, np.inf, 1.0]), np.array([5.0, np.inf, 2.0]),
                     np.array([0.5, 1.0]), np.array([1.0, 1.0]))
-    from microsim.patients.multipliers import Multipliers
-    average = average_patient(Multipliers(log_static, np.zeros(2), np.array([50.0, 60.0, 70.0]),
-                                          window))
-    np.testing.assert_array_equal(average.log_static, [[2.0, 4.0]] * 3)
-    np.testing.assert_array_equal(average.entry_age, [60.0] * 3)
+    patients = Multipliers(log_static, np.zeros(2), np.array([50.0, 60.0, 70.0]), window)
+    cohort = Multipliers(np.array([[2.5, 4.5]]), np.zeros(2), np.array([61.0]))
+    average = average_patient(cohort, patients)
+    np.testing.assert_array_equal(average.log_static, [[2.5, 4.5]] * 3)
+    np.testing.assert_array_equal(average.entry_age, [61.0] * 3)
     assert average.window is window
+
+
+def test_the_cohorts_mean_attributes_come_from_the_population_section():
+    # HR^prevalence for a yes/no attribute (the log multiplier is linear in the indicator)
+    from microsim.patients.multipliers import cohort_multipliers
+    model = bind(parse_scenario(TREATED))
+    assert cohort_multipliers(model).log_static[0, 0] == pytest.approx(0.4 * np.log(5.0))
 
 
 def test_snapping_windows_to_the_cycle_grid_changes_nothing_on_the_grid():

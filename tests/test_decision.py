@@ -21,7 +21,7 @@ from scipy import stats
 
 from microsim.decision import economics
 from microsim.binding import bind
-from microsim.decision.strategies import COST, EFFECT, decide, run_strategies
+from microsim.decision.strategies import decision_of, COST, EFFECT, decide, run_strategies
 from microsim.results.outcomes import outcome_values
 from microsim.patients.population import draw_population
 from microsim.scenario import parse_scenario
@@ -60,7 +60,7 @@ def run():
     s = scenario_with(TARGETED, EVERYONE)
     people = draw_population(s.population, SEED)
     sims = run_strategies(s, people, SEED)
-    return s, people, sims, decide(s, sims)
+    return s, people, sims, decision_of(s, sims)
 
 
 def per_patient(decision, strategy, measure):
@@ -189,7 +189,7 @@ def test_patients_needed_is_the_normal_sample_size(target):
     reports, n = (z sd / h)^2 rounded up, z = norm.ppf(0.975) (common practice)."""
     s = scenario_with(EVERYONE, precision=target)
     people = draw_population(s.population, SEED, np.arange(500))
-    d = decide(s, run_strategies(s, people, SEED))
+    d = decision_of(s, run_strategies(s, people, SEED))
     lam = s.economics.threshold
     gain = (lam * per_patient(d, "everyone", EFFECT) - per_patient(d, "everyone", COST)) - (
         lam * per_patient(d, "usual", EFFECT) - per_patient(d, "usual", COST))

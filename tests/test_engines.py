@@ -198,9 +198,9 @@ def test_average_patient_misrepresents_a_strongly_heterogeneous_population():
     result = compare(sim)
     assert result.agrees is True, result.verdict
     row = result.average_patient.set_index("measure").loc["life_years"]
-    # the average patient has the mean log hazard ratio: rate 0.2 * 5^share, and expected
+    # the average patient has the mean log hazard ratio: rate 0.2 * 5^prevalence, and expected
     # life years (1 - e^{-10 r}) / r (closed form, common practice)
-    rate = 0.2 * 5.0 ** people.risk_factor.mean()
+    rate = 0.2 * 5.0 ** 0.5  # the population section's prevalence
     assert row.average_patient == pytest.approx((1 - math.exp(-10 * rate)) / rate, rel=1e-9)
     # both sides are exact, so the gap is a number: the population's own mean of
     # (1 - e^{-10 r_b}) / r_b with r_b = 0.2 * 5^{x_b} (closed form, common practice)

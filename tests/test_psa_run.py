@@ -53,11 +53,12 @@ def test_a_psa_without_strategies_gives_the_model_as_written_per_draw(tmp_path):
     assert len(rows) == DRAWS and set(rows.strategy) == {AS_WRITTEN}
     assert (rows.patients == PATIENTS).all()
     for row in rows.itertuples():
-        mean, variance = sojourn_moments(row.r_death)
+        mean, variance = sojourn_moments(row.r_death)  # in days
         se = np.sqrt(variance / PATIENTS)  # time alive; cost and QALYs scale it
-        assert abs(row.life_years - mean) < Z * se, row
+        years = 1 / 365.25  # life years and QALYs are counted in (Julian) years
+        assert abs(row.life_years - years * mean) < Z * years * se, row
         assert abs(row.cost - row.c_day * mean) < Z * row.c_day * se, row
-        assert abs(row.effect - UTILITY * mean) < Z * UTILITY * se, row
+        assert abs(row.effect - UTILITY * years * mean) < Z * UTILITY * years * se, row
 
 
 def test_its_outcomes_are_the_mean_and_95_percent_interval_of_the_draws(tmp_path):
@@ -136,3 +137,15 @@ def test_a_psa_stopped_before_its_first_draw_leaves_nothing(failure, tmp_path, m
     with pytest.raises(type(failure)):
         parameter_uncertainty(SCENARIO, tmp_path / "out" / "plain" / "psa", progress=False)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_psa_with_nothing_uncertain_is_refused_before_any_work(tmp_path):
+    certain = parse_scenario(MODEL.replace(
+        'c_day = { value = 100, distribution = { family = "gamma", shape = 100, scale = 1 } }',
+        "c_day = 100").replace(
+        'r_death = { value = 0.1, distribution = { family = "gamma", shape = 25, scale = 0.004 } }',
+        "r_death = 0.1"))
+    with pytest.raises(ScenarioError) as refused:
+        parameter_uncertainty(certain, tmp_path / "psa", progress=False)
+    assert refused.value.path == "parameters" and "would be the base case" in refused.value.message
+    assert not (tmp_path / "psa").exists()

@@ -34,17 +34,21 @@ from support import horizon, rate, scenario_text, start, state
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "scenarios" / "lakemoor_kidney.toml"
-FIGURES = ["subgroups", "ce_plane", "acceptability", "evpi", "tornado", "trace", "survival",
+FIGURES = ["subgroups", "ce_plane", "acceptability", "acceptability_noise_removed", "evpi",
+           "evppi", "tornado", "two_way", "break_even", "budget", "trace", "survival",
            "structure"]  # in the order of the page
 CHROMIUM, CHROMEDRIVER = Path("/usr/bin/chromium"), Path("/usr/bin/chromedriver")
 
 
 @pytest.fixture(scope="module")
 def folder(tmp_path_factory) -> Path:
-    """The demo with PSA and a one-way sensitivity in one run folder, and its report."""
+    """The demo with PSA (EVPPI of one parameter: 8 draws are too few for the demo's pair),
+    the sensitivity analyses (a 3 x 3 two-way grid) and the budget impact in one run
+    folder, and its report."""
     out = tmp_path_factory.mktemp("runs")
     assert main(["run", str(DEMO), "--patients", "300", "--psa", "--draws", "8",
-                 "--psa-patients", "40", "--sensitivity", "--out", str(out), "--report"]) == 0
+                 "--psa-patients", "40", "--evppi", "hr_therapy", "--sensitivity", "--grid",
+                 "3", "--budget", "--out", str(out), "--report"]) == 0
     return out / DEMO.stem / "latest"
 
 
@@ -108,10 +112,12 @@ def test_every_number_in_a_table_equals_the_run_table_it_comes_from(folder):
         for column, shown in cell["values"].items():
             assert equal(shown, table.iloc[cell["row"]][column]), (cell, column)
     assert {"strategies", "increments", "incremental_analysis", "net_benefit", "subgroups",
-            "precision", "acceptability", "evpi", "psa_variance", "one_way",
-            "validation_outcomes", "average_patient"} <= set(tables)
+            "precision", "acceptability", "evpi", "evppi", "psa_variance", "one_way",
+            "two_way", "break_even", "budget_impact", "validation_outcomes",
+            "average_patient"} <= set(tables)
     # every row of the decision tables is shown
-    for name in ("incremental_analysis", "net_benefit", "subgroups", "precision", "one_way"):
+    for name in ("incremental_analysis", "net_benefit", "subgroups", "precision", "one_way",
+                 "two_way", "break_even", "budget_impact"):
         assert {c["row"] for c in page.cells if c["table"] == name} == set(range(len(tables[name])))
 
 
@@ -160,8 +166,11 @@ def test_figures_without_data_are_left_out_with_a_reason(bare, capsys):
     assert capsys.readouterr().out.strip() == f"wrote {bare / 'report.html'}"
     html, page = page_of(bare)
     assert page.figures == ["trace", "survival", "structure"]
-    assert page.absent == ["subgroups", "ce_plane", "acceptability", "evpi", "tornado"]
+    assert page.absent == ["subgroups", "ce_plane", "acceptability",
+                           "acceptability_noise_removed", "evpi", "evppi", "tornado", "two_way",
+                           "break_even", "budget"]
     assert "no strategies" in html and "microsim run FILE --sensitivity" in html
+    assert "microsim run FILE --budget" in html
     assert sorted(p.stem for p in (bare / "figures").glob("*.svg")) == sorted(page.figures)
 
 

@@ -241,3 +241,117 @@ def test_intervals_and_percentages_say_what_they_are():
     assert normal_interval(1000.0, 100.0) == "1,000 (804 to 1,196)"  # 1000 -+ 1.96 x 100
     assert normal_interval(5.0, float("nan")) == "5.00"
     assert percent(0.367) == "36.7%" and whole(1234.0) == "1,234"
+
+
+def test_acceptability_without_noise_draws_its_own_column():
+    table = acceptability().assign(probability_best_noise_removed=lambda t: t.probability_best ** 2)
+    figure = figures.acceptability_figure(table, 20000, LABELS, "test dollars",
+                                          column="probability_best_noise_removed")
+    [ax] = figure.axes
+    drug = next(line for line in ax.lines if line.get_label() == "A drug")
+    expected = table[table.strategy == "drug"].sort_values("threshold")
+    np.testing.assert_array_equal(drug.get_ydata(), expected.probability_best_noise_removed)
+    assert_written(figure)
+
+
+def test_evpi_takes_a_population_scale_when_the_population_is_given():
+    evpi = pd.DataFrame({"threshold": [0.0, 1e4, 2e4], "nmb_current_information": 0.0,
+                         "nmb_perfect_information": 0.0, "evpi": [5.0, 20.0, 8.0]})
+    figure = figures.evpi_figure(evpi.assign(population_evpi=evpi.evpi * 2e6), 10000, "test dollars")
+    [ax] = figure.axes
+    assert_written(figure)  # drawing sets the secondary axis's limits
+    [right] = ax.child_axes  # the secondary axis: EVPI x 2e6 people, in millions
+    assert "population EVPI" in right.get_ylabel()
+    assert right.get_ylim()[1] == pytest.approx(ax.get_ylim()[1] * 2.0)
+
+
+def evppi() -> pd.DataFrame:
+    thresholds = np.arange(0, 40001, 10000.0)
+    evpi = np.array([10.0, 40.0, 60.0, 30.0, 20.0])
+    return pd.concat([pd.DataFrame({"threshold": thresholds, "group": group, "parameters": size,
+                                    "evppi": evpi * share, "se": 1.0, "evpi": evpi,
+                                    "edf": "3 4", "method": "a cubic spline"})
+                      for group, size, share in [("hr", 1, 0.5), ("c_drug + hr", 2, 0.8)]],
+                     ignore_index=True)
+
+
+def test_evppi_has_a_curve_per_group_under_the_evpi():
+    figure = figures.evppi_figure(evppi(), 20000, "test dollars")
+    [ax] = figure.axes
+    labels = [line.get_label() for line in ax.lines]
+    assert labels[:3] == ["EVPI (all parameters, from the draws)", "hr", "c_drug + hr"]
+    np.testing.assert_array_equal(ax.lines[0].get_ydata(), [10.0, 40.0, 60.0, 30.0, 20.0])
+    np.testing.assert_array_equal(ax.lines[2].get_ydata(), 0.8 * ax.lines[0].get_ydata())
+    assert ax.lines[1].get_color() != ax.lines[2].get_color()  # tones of another lightness
+    assert_written(figure)
+
+
+def two_way(simulated: bool = False) -> pd.DataFrame:
+    """A grid of hr x price with the base (0.6, 500) inside; the result crosses 0."""
+    rows = []
+    for name in ["drug", "both"]:
+        for hr in [0.4, 0.6, 0.8]:
+            for price in [300.0, 500.0, 600.0, 900.0]:
+                rows.append((name, "incremental_nmb", "usual", "hr", hr, "c_drug", price,
+                             1000.0 - 1500.0 * hr - price, 5.0 if simulated else np.nan,
+                             hr == 0.6 or price == 500.0, "basis"))
+    return pd.DataFrame(rows, columns=["strategy", "measure", "compared_with",
+                                       "first_parameter", "first_value", "second_parameter",
+                                       "second_value", "result", "se", "at_base", "basis"])
+
+
+def test_the_two_way_grid_has_a_map_a_zero_line_and_the_base_case():
+    from matplotlib.contour import ContourSet
+    figure = figures.two_way_figure(two_way(), LABELS, "incremental NMB", "test dollars")
+    panels_ = [ax for ax in figure.axes if ax.get_title()]
+    assert [ax.get_title() for ax in panels_] == ["A drug against Usual care",
+                                                  "A drug and a visit against Usual care"]
+    for ax in panels_:
+        contours = [c for c in ax.collections if isinstance(c, ContourSet)] or [
+            c for c in ax.get_children() if isinstance(c, ContourSet)]
+        assert any(list(c.levels) == [0.0] for c in contours)  # the break-even line
+        [base] = [line for line in ax.lines if line.get_label() == "base case"]
+        assert tuple(base.get_xydata()[0]) == (0.6, 500.0)
+        assert ax.get_xlabel() == "hr" and ax.get_ylabel() == "c_drug"
+    assert_written(figure)
+
+
+def test_break_even_marks_each_crossing_with_its_interval():
+    values = np.array([0.0, 500.0, 1000.0, 2000.0])
+    curve = pd.DataFrame({"strategy": "drug", "measure": "incremental_nmb",
+                          "compared_with": "usual", "parameter": "c_drug", "value": values,
+                          "result": 1000.0 - values, "se": 20.0, "basis": "simulated"})
+    found = pd.DataFrame([{"strategy": "drug", "measure": "incremental_nmb",
+                           "compared_with": "usual", "parameter": "c_drug", "low": 0.0,
+                           "high": 2000.0, "base": 500.0, "crossing": 1, "value": 1000.0,
+                           "se": 20.0, "lower": 960.8, "upper": 1039.2,
+                           "result_at_value": 0.0, "slope": -1.0, "basis": "simulated",
+                           "finding": "crosses 0"}])
+    figure = figures.break_even_figure(curve, found, LABELS, "incremental NMB", "test dollars")
+    [ax] = figure.axes
+    [root] = [line for line in ax.lines if line.get_label().startswith("break-even")]
+    assert tuple(root.get_xydata()[0]) == (1000.0, 0.0)
+    spans = [p for p in ax.patches]
+    assert len(spans) == 1 and spans[0].get_x() == pytest.approx(960.8)
+    assert sum(isinstance(c, PolyCollection) for c in ax.collections) == 1  # the SE band
+    assert_written(figure)
+
+
+def test_the_budget_has_bars_per_year_and_strategy_and_the_impact_below():
+    years = [1, 2, 3]
+    budget = pd.concat([pd.DataFrame({"year": years, "strategy": name, "new_patients": 100.0,
+                                      "patients_entered": [1100.0, 1200.0, 1300.0],
+                                      "cost": np.array([1.0, 2.0, 3.0]) * 1e6 * (k + 1),
+                                      "se": np.nan, "impact": np.array([1.0, 2.0, 3.0]) * 1e6 * k,
+                                      "impact_se": np.nan, "compared_with": "usual",
+                                      "basis": "exact"})
+                        for k, name in enumerate(STRATEGIES)], ignore_index=True)
+    figure = figures.budget_figure(budget, LABELS, "test dollars")
+    costs, impact = figure.axes
+    bars = [c for c in costs.containers if isinstance(c, BarContainer)]
+    assert [len(b) for b in bars] == [3, 3, 3]
+    assert bars[2][2].get_height() == pytest.approx(9.0)  # millions
+    assert bars[0][0].get_hatch() != bars[1][0].get_hatch()  # apart in greyscale
+    impacts = [c for c in impact.containers if isinstance(c, BarContainer)]
+    assert len(impacts) == 2 and impacts[1][1].get_height() == pytest.approx(4.0)
+    assert_written(figure)

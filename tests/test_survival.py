@@ -4,8 +4,7 @@ import numpy as np
 import pytest
 
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import analytic_counterpart
-from microsim.results.survival import survival_table
+from microsim.results.comparison import compare
 from microsim.simulation import simulate
 from support import (Z, attribute, effect, horizon, model_of, population, rate, scenario_text,
                      start, state)
@@ -24,7 +23,7 @@ TWO_KINDS = scenario_text(
 
 def survival_of(text: str, people, seed: int):
     sim = simulate(model_of(text), people, seed)
-    return survival_table(sim, analytic_counterpart(sim)), sim
+    return compare(sim).survival, sim
 
 
 @pytest.mark.parametrize("seed, size", [(1, 4000), (7, 1500)])

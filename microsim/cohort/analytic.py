@@ -18,14 +18,14 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.cohort.cycle_matrices import cycle_matrices
+from microsim.cohort.cycle_matrices import cycle_arrays
 from microsim.cohort.expand import Expansion, expand
+from microsim.cohort.exponentials import exponential_rows
 from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
 from microsim.cohort.time_dependence import time_dependence
 from microsim.patients.multipliers import Multipliers, multipliers
 from microsim.patients.treatment import uniform_multipliers
-from microsim.markov import continuous_outcomes, discrete_outcomes
-from microsim.markov.continuous import transient_piecewise
+from microsim.markov import discrete_outcomes
 from microsim.results.outcomes import Exposure
 from microsim.scenario.errors import ScenarioError
 
@@ -48,15 +48,17 @@ def discount_rates(model: BoundModel) -> tuple[float, float, float]:
 def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     model = exp.model
     batch = mult.log_static.shape[0]
-    pi = np.broadcast_to(exp.start(), (batch, exp.size)).copy()
+    # state-major with patients last (pi (E, B), matrices (E, E, B)): every product runs
+    # over contiguous patients
+    pi = np.repeat(exp.start()[:, None], batch, axis=1)
     expanded = [pi]
     flows_per_cycle = []
     for n in range(model.n_cycles):
-        P, risk_p = cycle_matrices(exp, n, mult)
-        flows_per_cycle.append(np.einsum("be,ber->br", pi, risk_p))
-        pi = np.einsum("be,bef->bf", pi, P)
+        P, risk_p = cycle_arrays(exp, n, mult)
+        flows_per_cycle.append(np.einsum("eb,erb->br", pi, risk_p))
+        pi = np.einsum("eb,efb->fb", pi, P)
         expanded.append(pi)
-    trace = np.einsum("tbe,es->bts", np.array(expanded), exp.collapse())
+    trace = np.einsum("teb,es->bts", np.array(expanded), exp.collapse())
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
     on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)
     occupancy = np.empty((batch, model.n_states, 3))
@@ -99,25 +101,6 @@ def generators(exp: Expansion, mult: Multipliers, breaks: np.ndarray) -> np.ndar
     return Q, rates
 
 
-def exponential_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple:
-    breaks = piece_breaks(exp, mult)
-    Q, rates = generators(exp, mult, breaks)
-    collapse = exp.collapse()
-    start = exp.start()
-    trace = transient_piecewise(start, Q, breaks, times) @ collapse
-    occupancy = np.empty((1, exp.model.n_states, 3))
-    on_treatment = np.zeros((1, exp.model.n_states, 3))
-    occurrences = np.empty((1, len(exp.model.risks), 3))
-    on = (np.zeros(len(breaks) - 1, bool) if mult.window is None
-          else mult.window.on_grid(breaks[:-1])[0])
-    for w, rate in enumerate(discount_rates(exp.model)):
-        per_piece = continuous_outcomes.occupancy(start, Q, breaks, rate)  # (K, E)
-        occupancy[0, :, w] = per_piece.sum(axis=0) @ collapse
-        on_treatment[0, :, w] = per_piece[on].sum(axis=0) @ collapse
-        occurrences[0, :, w] = np.einsum("ke,ker->r", per_piece, rates)
-    return trace[None], Exposure(occupancy, occurrences, on_treatment)
-
-
 def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
     """True when every hazard is constant between table and window breaks (exact
     exponentials apply)."""
@@ -128,12 +111,12 @@ ODE_CHUNK = 64  # patients solved together: each one's table breaks slow the oth
 
 
 def rows_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple:
-    """The rate-model result for distinct patient rows: exact exponentials row by row when
-    hazards are piecewise constant, else the forward equations in chunks of rows."""
+    """The rate-model result for distinct patient rows: exact exponentials for all rows at
+    once when hazards are piecewise constant, else the forward equations in chunks of rows."""
     if piecewise_constant(exp, mult):
-        parts = [exponential_result(exp, mult.take(slice(b, b + 1)), times)
-                 for b in range(mult.size)]
-        method = "matrix exponential of the rate matrix"
+        rates = tuple(np.log1p(discount_rates(exp.model)))
+        trace, exposure = exponential_rows(exp, mult, times, rates)
+        return trace, exposure, "matrix exponential of the rate matrix"
     else:
         parts = [solve_rates(exp, mult.take(slice(lo, lo + ODE_CHUNK)), times)
                  for lo in range(0, mult.size, ODE_CHUNK)]

@@ -46,16 +46,23 @@ def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: f
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
     """Transition matrices (B, E, E) of cycle n and each risk's probability (B, E, R)."""
+    P, risk_p = cycle_arrays(exp, n, mult)
+    return np.moveaxis(P, 2, 0), np.moveaxis(risk_p, 2, 0)
+
+
+def cycle_arrays(exp: Expansion, n: int, mult: Multipliers):
+    """`cycle_matrices` with the patients last: (E, E, B) and (E, R, B)."""
     model = exp.model
     time = n * model.cycle
     m_all = mult.at(time)
     batch = m_all.shape[0]
     ages = None if mult.entry_age is None else mult.entry_age + time
-    P = np.zeros((batch, exp.size, exp.size))
-    risk_p = np.zeros((batch, exp.size, len(model.risks)))
+    # built state-major, patients last, so each entry is one contiguous run of patients
+    P = np.zeros((exp.size, exp.size, batch))
+    risk_p = np.zeros((exp.size, len(model.risks), batch))
     for e, (i, d, counts) in enumerate(exp.expanded):
         if model.absorbing[i]:
-            P[:, e, e] = 1.0
+            P[e, e] = 1.0
             continue
         row = [(r, risk) for r, risk in enumerate(model.risks) if risk.source == i]
         combined = model.probability_rule == COMPETING and sum(
@@ -68,7 +75,7 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
             m = m_all[:, r] * exp.memory_factor(risk, counts)
             p, log = risk_probability(risk, time, ages, d, model.cycle)
             if risk.is_event:
-                risk_p[:, e, r] = p = on_rate_scale(p, log, m)
+                risk_p[e, r] = p = on_rate_scale(p, log, m)
                 events.append((risk, p))
             else:
                 weighed.append((r, risk, (p, log, m)))
@@ -76,7 +83,7 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
                    else [on_rate_scale(p, log, m) for *_, (p, log, m) in weighed])
         total = 0.0
         for (r, risk, _), p in zip(weighed, chances):
-            risk_p[:, e, r] = p
+            risk_p[e, r] = p
             moves.append((risk, p))
             total = total + p
         stay = 1.0 - total
@@ -86,7 +93,7 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
                            f"the cohort's patient row {k}", n)
         stay = np.maximum(stay, 0.0)
         if remainder is not None:
-            risk_p[:, e, remainder] = stay
+            risk_p[e, remainder] = stay
             moves.append((model.risks[remainder], stay))
         elif np.max(stay) > 0:
             moves.append((None, stay))  # a state with no way out keeps its patients
@@ -94,13 +101,12 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
         moves = [(None if risk is not None and risk.target == i else risk, p) for risk, p in moves]
         for r, risk in enumerate(model.risks):
             if risk.source == i and risk.target == i:
-                risk_p[:, e, r] = 0.0
+                risk_p[e, r] = 0.0
         # Events that move no count are summed over; the others split each move by which
         # of them happened in the same cycle.
         counting = [(risk, p) for risk, p in events if risk.name in exp.tracked]
         for risk, p in moves:
             j = i if risk is None else risk.target
-            d_next = min(d + 1, exp.durations[i] - 1) if j == i else 0
             for pattern in itertools.product((False, True), repeat=len(counting)):
                 weight = p
                 occurred = [] if risk is None else [risk]
@@ -108,5 +114,5 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
                     weight = weight * (pe if happened else 1.0 - pe)
                     if happened:
                         occurred.append(event)
-                P[:, e, exp.index(j, d_next, exp.after_move(counts, i, occurred))] += weight
+                P[e, exp.target(i, d, counts, j, tuple(occurred))] += weight
     return P, risk_p

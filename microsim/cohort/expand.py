@@ -94,6 +94,23 @@ class Expansion:
     def _lookup(self) -> dict:
         return {key: e for e, key in enumerate(self.expanded)}
 
+    def target(self, state: int, duration: int, counts: tuple[int, ...], to: int,
+               occurred: tuple) -> int:
+        """The expanded state a cycle leads to from (state, duration, counts) when it ends
+        in model state `to` with the risks `occurred` (remembered: the cycle matrices ask
+        the same question every cycle)."""
+        key = (state, duration, counts, to, tuple(id(r) for r in occurred))
+        found = self._targets.get(key)
+        if found is None:
+            after = min(duration + 1, self.durations[state] - 1) if to == state else 0
+            found = self._targets[key] = self.index(to, after,
+                                                    self.after_move(counts, state, occurred))
+        return found
+
+    @cached_property
+    def _targets(self) -> dict:
+        return {}
+
     def collapse(self) -> np.ndarray:
         """(E, S) 0/1 matrix: expanded trace @ collapse() -> trace over model states."""
         out = np.zeros((self.size, self.model.n_states))

@@ -191,6 +191,62 @@ def acceptability_curve(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
     })
 
 
+WITHIN = ("incremental_cost_within_variance", "incremental_effect_within_variance",
+          "incremental_within_covariance", "patients")
+
+
+def acceptability_without_noise(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
+    """The acceptability curve with the inner patients' Monte-Carlo noise taken out.
+
+    Each draw's incremental NMB against the comparator (the table's first strategy) is its
+    true value plus the noise of its n inner patients, so the spread of the draws is the
+    between-draw variance sigma^2 plus tau^2 / n (O'Hagan, Stevenson & Madan 2007, the split
+    of `variance_components`), and the curve is pulled towards the middle. tau^2 at each
+    threshold lambda is the mean within-draw variance lambda^2 var(dE) - 2 lambda cov(dE, dC)
+    + var(dC) of the paired increments, sigma^2 = s^2 - tau^2 / n (0 if negative). Each
+    strategy's increments are moved towards their mean by sqrt(sigma^2 / s^2), so that they
+    spread as the true values do: the constrained Bayes estimate of an ensemble (Louis 1984,
+    "Estimating a population of parameter values using Bayes and empirical Bayes methods",
+    JASA 79:393-398; Ghosh 1992, "Constrained Bayes estimation with applications", JASA
+    87:533-540). The posterior means (factor sigma^2 / s^2) would spread too little, by that
+    factor again. For normal true values and noise the moved increments have exactly the
+    true values' distribution; otherwise their mean and variance. Each strategy is moved by
+    its own factor, so with three or more strategies the noise's correlation between them is
+    not taken out. Means, and so the frontier, do not change.
+
+    `psa` needs, per draw and strategy, the columns of WITHIN besides cost and effect.
+    Rows: threshold, strategy, probability_best, noise_scale (the factor; nan for the
+    comparator); both nan where the draws had one inner patient each (no within-draw
+    variance to take out)."""
+    missing = set(WITHIN) - set(psa.columns)
+    if missing:
+        raise ValueError(f"PSA table lacks columns {sorted(missing)}")
+    strategies, _, cost, effect = _psa_arrays(psa)
+    lam = _thresholds(thresholds)
+    wide = psa.pivot(index="draw", columns="strategy", values=list(WITHIN))
+    var_c, var_e, cov = (wide[c].reindex(columns=strategies).to_numpy(float)[:, 1:]
+                         for c in WITHIN[:3])
+    n = float(psa["patients"].iloc[0])
+    gain = lam[:, None, None] * (effect[:, 1:] - effect[:, :1]) - (cost[:, 1:] - cost[:, :1])
+    within = (lam[:, None] ** 2 * var_e.mean(axis=0) - 2 * lam[:, None] * cov.mean(axis=0)
+              + var_c.mean(axis=0))
+    spread = gain.var(axis=1, ddof=1) if gain.shape[1] > 1 else np.zeros(within.shape)
+    between = np.maximum(spread - within / n, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scale = np.where(spread > 0, np.sqrt(between / spread), 1.0)
+    centre = gain.mean(axis=1, keepdims=True)
+    moved = centre + scale[:, None, :] * (gain - centre)
+    winners = np.concatenate([np.zeros(moved.shape[:2] + (1,)), moved], axis=2).argmax(axis=2)
+    probability = np.stack([(winners == s).mean(axis=1) for s in range(len(strategies))], axis=1)
+    scales = np.concatenate([np.full((len(lam), 1), np.nan), scale], axis=1)
+    unknown = ~np.isfinite(within).all(axis=1)  # one inner patient: no within-draw variance
+    probability[unknown], scales[unknown] = np.nan, np.nan
+    return pd.DataFrame({
+        "threshold": np.repeat(lam, len(strategies)),
+        "strategy": pd.Series(np.tile(strategies, len(lam)), dtype="string"),
+        "probability_best": probability.ravel(), "noise_scale": scales.ravel()})
+
+
 def per_person_evpi(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
     """Per-person expected value of perfect information, EVPI = E[max_s NMB] - max_s E[NMB].
 

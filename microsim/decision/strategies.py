@@ -45,16 +45,18 @@ def run_strategies(scenario: Scenario, patients: pd.DataFrame, seed: int,
     return sims
 
 
+def outcome_frame(name: str, sim: Simulation) -> pd.DataFrame:
+    """One strategy's per-patient outcomes: patient, strategy, then one column per measure."""
+    values = outcome_values(sim.model, sim.exposure)
+    frame = pd.DataFrame({m: values[m] for m in REPORTED})
+    frame.insert(0, "strategy", name)
+    frame.insert(0, "patient", sim.patients["patient"].to_numpy())
+    return frame
+
+
 def patient_outcomes(sims: dict[str, Simulation]) -> pd.DataFrame:
-    """Tidy per-patient outcomes: patient, strategy, then one column per measure."""
-    frames = []
-    for name, sim in sims.items():
-        values = outcome_values(sim.model, sim.exposure)
-        frame = pd.DataFrame({m: values[m] for m in REPORTED})
-        frame.insert(0, "strategy", name)
-        frame.insert(0, "patient", sim.patients["patient"].to_numpy())
-        frames.append(frame)
-    return pd.concat(frames, ignore_index=True)
+    """Tidy per-patient outcomes of every strategy: patient, strategy, measures."""
+    return pd.concat([outcome_frame(name, sim) for name, sim in sims.items()], ignore_index=True)
 
 
 def standard_error(x: np.ndarray) -> float:
@@ -157,10 +159,9 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
 
 
 
-def treated_counts(sims: dict[str, Simulation]) -> dict[str, int]:
-    """How many patients each strategy puts on treatment at some time."""
-    return {name: 0 if sim.mult.window is None else int(np.isfinite(sim.mult.window.on).sum())
-            for name, sim in sims.items()}
+def treated_count(sim: Simulation) -> int:
+    """How many of a simulation's patients its strategy puts on treatment at some time."""
+    return 0 if sim.mult.window is None else int(np.isfinite(sim.mult.window.on).sum())
 
 
 @dataclass(frozen=True)
@@ -177,14 +178,22 @@ class Decision:
     precision: pd.DataFrame
 
 
-def decide(scenario: Scenario, sims: dict[str, Simulation]) -> Decision:
+def decide(scenario: Scenario, outcomes: pd.DataFrame, patients: pd.DataFrame,
+           treated: dict[str, int]) -> Decision:
+    """The decision tables from every strategy's per-patient outcomes (`patient_outcomes`),
+    the patients' subgroup attributes and how many each strategy treats."""
     comparator = strategy_names(scenario)[0]
     threshold = scenario.economics.threshold
-    outcomes = patient_outcomes(sims)
-    patients = next(iter(sims.values())).patients
     analysis, benefit = frontier(outcomes, threshold)
-    return Decision(comparator, threshold, treated_counts(sims), outcomes, strategy_table(outcomes),
+    return Decision(comparator, threshold, treated, outcomes, strategy_table(outcomes),
                     paired_increments(outcomes, comparator, threshold), analysis, benefit,
                     subgroups(outcomes, patients, comparator, threshold),
                     precision_needed(outcomes, comparator, threshold,
                                      scenario.economics.precision))
+
+
+def decision_of(scenario: Scenario, sims: dict[str, Simulation]) -> Decision:
+    """The decision of simulations held in memory (`run_strategies` on one set of patients)."""
+    patients = next(iter(sims.values())).patients
+    return decide(scenario, patient_outcomes(sims), patients,
+                  {name: treated_count(sim) for name, sim in sims.items()})

@@ -43,10 +43,13 @@ class Histories:
     risk: np.ndarray
     n_patients: int
 
-    def table(self, patients, state_names, risk_names) -> pa.Table:
+    def table(self, patients, state_names, risk_names, strategy: str | None = None,
+              window=None) -> pa.Table:
         """The records as a typed Arrow table: patient id, time, from state, to state,
         event, then the patient's attributes (`patients`: the batch's rows, with ids in
-        column 'patient')."""
+        column 'patient'); under a strategy, its name and each patient's time on treatment
+        (`treatment_start`, `treatment_stop`: empty for a patient never treated, or never
+        stopped)."""
         patient_ids = patients["patient"].to_numpy()
         states = pa.array(list(state_names))
         names = list(dict.fromkeys(risk_names))  # an event in several states has one name
@@ -61,6 +64,14 @@ class Histories:
             "event": pa.DictionaryArray.from_arrays(
                 pa.array(np.where(self.risk < 0, None, name_of[self.risk]), pa.int32()), risks),
         })
+        if strategy is not None:
+            table = table.append_column("strategy", pa.DictionaryArray.from_arrays(
+                pa.array(np.zeros(len(self.time), np.int32)), pa.array([strategy])))
+        if window is not None:
+            for name, times in (("treatment_start", window.on), ("treatment_stop", window.off)):
+                at = np.asarray(times, float)[self.patient]
+                table = table.append_column(name, pa.array(np.where(np.isinf(at), None, at),
+                                                           pa.float64()))
         attributes = patients.drop(columns="patient").iloc[self.patient].reset_index(drop=True)
         for name in attributes.columns:
             table = table.append_column(name, pa.Array.from_pandas(attributes[name]))

@@ -194,22 +194,25 @@ def _uses_age(model: BoundModel) -> bool:
         r.clock == "age" for r in model.risks)
 
 
-def average_patient(m: Multipliers) -> Multipliers:
-    """The 'average patient' of a set of patients: one row per patient, every row with the
-    patients' mean attributes, and each with its patient's own treatment window.
+def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
+    """The 'average patient' for these patients: one row per patient, every row with the
+    uniform cohort's mean attributes (`cohort_multipliers`: the population section's
+    expected values), and each with its patient's own treatment window.
 
-    The log multiplier (and the log time ratio) is linear in the attributes (0/1 indicators for levels and yes/no),
-    so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
-    as its share of "yes", so a hazard ratio HR on it becomes HR ** share. Attained age moves
+    The log multiplier (and the log time ratio) is linear in the attributes (0/1 indicators
+    for levels and yes/no), so the mean attributes give the mean of the log multipliers: a
+    yes/no attribute enters as its share of "yes", so a hazard ratio HR on it becomes
+    HR ** share. Attained age moves
     on from the mean entry age. Keeping every patient's window means that under a strategy
     the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
     it differs from the mean of the patients' own results."""
-    n = m.size
+    n = patients.size
 
-    def mean(part):
-        return None if part is None else np.repeat(part.mean(axis=0, keepdims=True), n, axis=0)
+    def first(part):
+        return None if part is None else np.repeat(part[:1], n, axis=0)
 
-    ages = None if m.entry_age is None else np.full(n, m.entry_age.mean())
-    return Multipliers(mean(m.log_static), m.age_slope, ages, m.window, mean(m.log_time_scale))
+    ages = None if cohort.entry_age is None else first(cohort.entry_age)
+    return Multipliers(first(cohort.log_static), cohort.age_slope, ages, patients.window,
+                       first(cohort.log_time_scale))

@@ -131,10 +131,38 @@ class Report:
                     (lambda: figures.acceptability_figure(
                         run.table("acceptability"), self.threshold, self.strategy_labels,
                         self.currency)) if has_psa else None, psa_reason)
+        acceptability = run.table("acceptability") if has_psa else None
+        self.figure("acceptability_noise_removed",
+                    "Acceptability curves without the inner patients' noise",
+                    "As above, after each draw's incremental net benefit is moved towards the "
+                    "mean by sqrt(between / (between + within / n)), the variance split of "
+                    "O'Hagan, Stevenson & Madan (2007): the curve the parameters' uncertainty "
+                    "alone would give (constrained Bayes, Louis 1984).",
+                    (lambda: figures.acceptability_figure(
+                        acceptability, self.threshold, self.strategy_labels, self.currency,
+                        column="probability_best_noise_removed"))
+                    if acceptability is not None
+                    and "probability_best_noise_removed" in acceptability
+                    and acceptability.probability_best_noise_removed.notna().any() else None,
+                    psa_reason if not has_psa else "The PSA's draws carry no within-draw "
+                    "variances (one inner patient each, or written by an older microsim).")
+        evpi = run.table("evpi") if has_psa else None
         self.figure("evpi", "Expected value of perfect information",
-                    "EVPI per patient over the threshold range.",
-                    (lambda: figures.evpi_figure(run.table("evpi"), self.threshold,
-                                                 self.currency)) if has_psa else None, psa_reason)
+                    "EVPI per patient over the threshold range" + (
+                        "; the right-hand scale is the population EVPI (EVPI times the "
+                        "discounted number of patients the decision reaches)."
+                        if evpi is not None and "population_evpi" in evpi else "."),
+                    (lambda: figures.evpi_figure(evpi, self.threshold, self.currency))
+                    if has_psa else None, psa_reason)
+        evppi = run.table("evppi") if has_psa else None
+        self.figure("evppi", "Expected value of partial perfect information",
+                    "EVPPI per patient of each group of parameters (regression on the PSA "
+                    "sample, Strong, Oakley & Brennan 2014) under the EVPI of the same draws, "
+                    "its upper bound.",
+                    (lambda: figures.evppi_figure(evppi, self.threshold, self.currency))
+                    if evppi is not None else None,
+                    psa_reason if not has_psa else "No parameter groups were named; "
+                    "uncertainty.evppi (or --evppi) names them.")
         one_way = self.one_way()
         self.figure("tornado", "One-way sensitivity (tornado)",
                     "Each parameter from its low to its high value, the others at base, widest "
@@ -144,6 +172,35 @@ class Report:
                         self.sensitivity_unit(one_way)),
                     "No one-way sensitivity in this run; \u201cmicrosim run FILE "
                     "--sensitivity\u201d includes it.")
+        two_way = run.table("two_way")
+        self.figure("two_way", "Two-way sensitivity",
+                    "Two parameters varied together over their ranges, the others at base: "
+                    "the measure in shades (lighter is higher) with labelled contours; the "
+                    "heavy line is 0, where the strategy breaks even; the circle is the base "
+                    "case.",
+                    None if two_way is None else lambda: figures.two_way_figure(
+                        two_way, self.strategy_labels, self.sensitivity_label(two_way),
+                        self.sensitivity_unit(two_way)),
+                    "No two-way sensitivity in this run; sensitivity.two_way (or --two-way) "
+                    "with \u201cmicrosim run FILE --sensitivity\u201d includes it.")
+        curve, found = run.table("break_even_curve"), run.table("break_even")
+        self.figure("break_even", "Break-even values",
+                    "The measure as one parameter runs over its range, the others at base; "
+                    "each diamond is where it crosses 0 (with its 95% Monte-Carlo interval "
+                    "shaded where simulated); the dotted line is the base value.",
+                    None if curve is None or found is None else lambda: figures.break_even_figure(
+                        curve, found, self.strategy_labels, self.sensitivity_label(found),
+                        self.sensitivity_unit(found)),
+                    "No break-even analysis in this run; sensitivity.break_even (or "
+                    "--break-even) with \u201cmicrosim run FILE --sensitivity\u201d includes it.")
+        budget = run.table("budget_impact")
+        self.figure("budget", "Budget impact",
+                    "The payer's cost of each strategy in each calendar year for the stated "
+                    "population, undiscounted, and below it the difference from the comparator.",
+                    None if budget is None else lambda: figures.budget_figure(
+                        budget, self.strategy_labels, self.currency),
+                    "No budget impact in this run; economics.budget_years with "
+                    "\u201cmicrosim run FILE --budget\u201d includes it.")
         subgroups = run.table("subgroups")
         self.figure("subgroups", "Incremental net monetary benefit by subgroup",
                     f"Per subgroup level and strategy against {self.comparator}, "
@@ -239,17 +296,39 @@ class Report:
         if "psa" in self.summary and "comparator" in self.summary:
             at = run.table("acceptability")
             near = at.loc[(at.threshold - self.threshold).abs().idxmin(), "threshold"]
+            noise = "probability_best_noise_removed" in at
             found.append(tables.table("acceptability", at[at.threshold == near], [
                 Column("strategy", ("strategy",), self.label),
                 Column("probability highest NMB", ("probability_best",), percent),
+                *([Column("without the inner patients' noise",
+                          ("probability_best_noise_removed",), percent)] if noise else []),
                 Column(f"expected NMB ({cur})", ("expected_nmb",), number),
                 Column("on the frontier", ("on_frontier",), lambda b: "yes" if b else "")],
-                f"PSA at {number(near)} {cur} per QALY"))
+                f"PSA at {number(near)} {cur} per QALY",
+                "Without the inner patients' noise: each draw's incremental net benefit moved "
+                "towards the mean by sqrt(between / (between + within / n)) (O'Hagan, "
+                "Stevenson & Madan 2007; Louis 1984)." if noise else ""))
             evpi = run.table("evpi")
+            population = "population_evpi" in evpi
             found.append(tables.table("evpi", evpi[evpi.threshold == near], [
                 Column(f"threshold ({cur} per QALY)", ("threshold",), number),
-                Column(f"EVPI per patient ({cur})", ("evpi",), number)],
-                "Expected value of perfect information"))
+                Column(f"EVPI per patient ({cur})", ("evpi",), number),
+                *([Column(f"population EVPI ({cur})", ("population_evpi",), number)]
+                  if population else [])],
+                "Expected value of perfect information",
+                f"Population: {self.summary['psa'].get('population', '')}." if population else ""))
+            evppi = run.table("evppi")
+            if evppi is not None:
+                found.append(tables.table("evppi", evppi[evppi.threshold == near], [
+                    Column("parameters", ("group",)),
+                    Column(f"EVPPI per patient ({cur}), {CI95}", ("evppi", "se"),
+                           normal_interval),
+                    Column(f"EVPI per patient ({cur})", ("evpi",), number),
+                    *([Column(f"population EVPPI ({cur})", ("population_evppi",), number)]
+                      if "population_evppi" in evppi else []),
+                    Column("regression", ("method",))],
+                    f"Expected value of partial perfect information at {number(near)} {cur} "
+                    "per QALY (Strong, Oakley & Brennan 2014)"))
             found.append(tables.table("psa_variance", run.table("psa_variance"), [
                 Column("strategy", ("strategy",), self.label),
                 Column("draws", ("draws",), whole),
@@ -272,7 +351,47 @@ class Report:
                 Column("swing", ("swing",), number)],
                 f"One-way sensitivity of {self.sensitivity_label(one_way)} "
                 f"({self.sensitivity_unit(one_way)}; {CI95} where simulated)"))
+        two_way = run.table("two_way")
+        if two_way is not None:
+            for name in dict.fromkeys(two_way.strategy):
+                part = two_way[two_way.strategy == name]
+                first, second = part.first_parameter.iloc[0], part.second_parameter.iloc[0]
+                found.append(tables.grid(
+                    "two_way", part, "first_value", "second_value",
+                    Column("", ("result", "se"), normal_interval),
+                    f"Two-way sensitivity of {self.sensitivity_label(two_way)} of "
+                    f"{self.label(name)} ({self.sensitivity_unit(two_way)}; {CI95} where "
+                    f"simulated): rows {first}, columns {second}", f"{first} \\ {second}"))
+        found_even = run.table("break_even")
+        if found_even is not None:
+            found.append(tables.table("break_even", found_even, [
+                Column("strategy", ("strategy",), self.label),
+                Column("parameter", ("parameter",)),
+                Column("range", ("low", "high"), lambda lo, hi: f"{lo:g} to {hi:g}"),
+                Column(f"break-even value ({CI95} where simulated)", ("value", "se"),
+                       normal_interval),
+                Column("finding", ("finding",))],
+                f"Break-even values: where {self.sensitivity_label(found_even)} crosses 0"))
         return found
+
+    def budget_tables(self) -> list[tables.Table]:
+        run, cur = self.run, self.currency
+        impact = run.table("budget_impact")
+        if impact is None:
+            return []
+        return [tables.table("budget_impact", impact, [
+            Column("year", ("year",), whole),
+            Column("strategy", ("strategy",), self.label),
+            Column("new patients", ("new_patients",), number),
+            Column("patients entered", ("patients_entered",), number),
+            Column(f"cost ({cur}, {CI95} where simulated)", ("cost", "se"), normal_interval),
+            Column(f"impact against the comparator ({cur})", ("impact", "impact_se"),
+                   normal_interval)],
+            f"Budget impact: each strategy's cost to the payer by calendar year, "
+            f"undiscounted ({cur})",
+            "The patients already there and each year's new patients enter at the start of "
+            "their year; each costs the model's own cost by year since entry "
+            f"({impact.basis.iloc[0]}). Sullivan et al. 2014.")]
 
     def validation_tables(self) -> list[tables.Table]:
         run = self.run
@@ -313,6 +432,7 @@ class Report:
             "decision_tables": self.decision_tables(),
             "subgroup_tables": self.subgroup_tables(),
             "uncertainty_tables": self.uncertainty_tables(),
+            "budget_tables": self.budget_tables(),
             "validation_tables": self.validation_tables(),
             "placed": self.placed, "libraries": library_versions(),
         }

@@ -12,6 +12,8 @@ from typing import Mapping
 
 import numpy as np
 import pandas as pd
+from matplotlib import colormaps
+from matplotlib.colors import ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
@@ -139,20 +141,22 @@ def ce_plane_figure(plane: pd.DataFrame, increments: pd.DataFrame, threshold: fl
 
 
 def acceptability_figure(acceptability: pd.DataFrame, threshold: float,
-                         strategies: Labels, currency: str) -> Figure:
+                         strategies: Labels, currency: str,
+                         column: str = "probability_best") -> Figure:
     """The probability that each strategy has the highest net monetary benefit over the
-    threshold range (table `acceptability`), with the acceptability frontier: at each
+    threshold range (table `acceptability`; `column` probability_best_noise_removed for
+    the curve without the inner patients' noise), with the acceptability frontier: at each
     threshold, the strategy with the highest expected net monetary benefit."""
     with house_style():
         figure = new_figure(6.4, 3.8)
         ax = figure.subplots()
         frontier = acceptability[acceptability.on_frontier].sort_values("threshold")
-        ax.plot(frontier.threshold, frontier.probability_best, color="#bdbdbd", linewidth=7,
+        ax.plot(frontier.threshold, frontier[column], color="#bdbdbd", linewidth=7,
                 solid_capstyle="butt", label="acceptability frontier (highest expected NMB)")
         for k, name in enumerate(ordered(acceptability.strategy)):
             style = series_style(k)
             rows = acceptability[acceptability.strategy == name].sort_values("threshold")
-            ax.plot(rows.threshold, rows.probability_best, color=style["color"],
+            ax.plot(rows.threshold, rows[column], color=style["color"],
                     linestyle=style["linestyle"], linewidth=1.5,
                     label=wrapped(strategies.get(name, name), 40))
         ax.axvline(threshold, color=INK, linestyle=(0, (4, 3)), linewidth=0.8,
@@ -167,7 +171,8 @@ def acceptability_figure(acceptability: pd.DataFrame, threshold: float,
 
 def evpi_figure(evpi: pd.DataFrame, threshold: float, currency: str) -> Figure:
     """The expected value of perfect information per patient over the threshold range
-    (table `evpi`)."""
+    (table `evpi`); with its population_evpi, the population's scale on the right (the
+    same curve: population EVPI is EVPI times the discounted patients reached)."""
     with house_style():
         figure = new_figure(6.4, 3.2)
         ax = figure.subplots()
@@ -180,7 +185,165 @@ def evpi_figure(evpi: pd.DataFrame, threshold: float, currency: str) -> Figure:
         ax.set_ylabel(f"EVPI per patient ({currency})")
         thousands(ax.xaxis)
         thousands(ax.yaxis)
+        population_axis(ax, rows, "evpi", f"population EVPI (millions of {currency})")
         ax.legend(loc="best")
+    return figure
+
+
+def population_axis(ax, rows: pd.DataFrame, column: str, label: str) -> None:
+    """A right-hand axis in population terms when the table has population_<column>."""
+    if f"population_{column}" not in rows or not (rows[column] > 0).any():
+        return
+    positive = rows[rows[column] > 0]
+    people = float((positive[f"population_{column}"] / positive[column]).iloc[0])
+    right = ax.secondary_yaxis("right", functions=(lambda y: y * people / 1e6,
+                                                   lambda y: y * 1e6 / people))
+    right.set_ylabel(label)
+
+
+def evppi_figure(evppi: pd.DataFrame, threshold: float, currency: str) -> Figure:
+    """EVPPI per patient of each parameter group over the threshold range (table `evppi`),
+    under the EVPI of the same draws (their upper bound), with the threshold marked."""
+    with house_style():
+        figure = new_figure(6.4, 3.6)
+        ax = figure.subplots()
+        groups = ordered(evppi.group)
+        first = evppi[evppi.group == groups[0]].sort_values("threshold")
+        ax.plot(first.threshold, first.evpi, color=INK, linewidth=2.2,
+                label="EVPI (all parameters, from the draws)")
+        for k, group in enumerate(groups):
+            style, rows = series_style(k + 1), evppi[evppi.group == group].sort_values("threshold")
+            ax.plot(rows.threshold, rows.evppi, color=style["color"],
+                    linestyle=style["linestyle"], linewidth=1.5, label=wrapped(group, 40))
+        ax.axvline(threshold, color=INK, linestyle=(0, (4, 3)), linewidth=0.8,
+                   label=f"threshold {threshold:,.0f}")
+        ax.set_ylim(bottom=0)
+        ax.set_xlabel(f"willingness to pay ({currency} per QALY)")
+        ax.set_ylabel(f"value per patient ({currency})")
+        thousands(ax.xaxis)
+        thousands(ax.yaxis)
+        population_axis(ax, first, "evppi", f"population value (millions of {currency})")
+        figure.legend(loc="outside lower center", ncols=2)
+    return figure
+
+
+def two_way_figure(two_way: pd.DataFrame, strategies: Labels, measure_label: str,
+                   unit: str) -> Figure:
+    """The two-way grid (table `two_way`), one panel per strategy: the measure as filled
+    contours in light greys (lighter is higher, so the order survives greyscale printing and
+    the ink stays readable) with labelled contour lines (negative ones dashed), the zero
+    line drawn heavy (where the strategy breaks even), the base case marked."""
+    shades = ListedColormap(colormaps["Greys"](np.linspace(0.55, 0.05, 256)))
+    names = ordered(two_way.strategy)
+    with house_style():
+        figure = new_figure(6.6, 4.2 * len(names) + 0.4)
+        axes = panels(figure, len(names), columns=1)
+        for ax, name in zip(axes, names):
+            rows = two_way[two_way.strategy == name]
+            grid = rows.pivot(index="second_value", columns="first_value", values="result")
+            x, y, z = grid.columns.to_numpy(), grid.index.to_numpy(), grid.to_numpy()
+            filled = ax.contourf(x, y, z, levels=10, cmap=shades)
+            lines = ax.contour(x, y, z, levels=filled.levels, colors=INK, linewidths=0.5)
+            ax.clabel(lines, fontsize=6.5, fmt=lambda v: f"{v:,.0f}" if unit != "QALYs" else f"{v:.3g}")
+            if z.min() < 0 < z.max():
+                ax.contour(x, y, z, levels=[0.0], colors=INK, linewidths=2.2)
+            # the base value of a parameter: the one whose whole line is at base
+            at = [next(v for v, line in rows.groupby(column) if line.at_base.all())
+                  for column in ("first_value", "second_value")]
+            ax.plot(*at, marker="o", markersize=7, markerfacecolor="white",
+                    markeredgecolor=INK, linestyle="none", label="base case")
+            ax.set_xlabel(rows.first_parameter.iloc[0])
+            ax.set_ylabel(rows.second_parameter.iloc[0])
+            ax.grid(False)
+            against = rows.compared_with.iloc[0]
+            title = strategies.get(name, name) + (
+                f" against {strategies.get(against, against)}" if isinstance(against, str) else "")
+            ax.set_title(wrapped(title, 70))
+            bar = figure.colorbar(filled, ax=ax)
+            bar.set_label(f"{measure_label} ({unit})")
+            if unit != "QALYs":
+                thousands(bar.ax.yaxis)
+        handles = [Line2D([], [], color=INK, linewidth=2.2, label="0: break-even"),
+                   *axes[0].get_legend_handles_labels()[0]]
+        figure.legend(handles=handles, loc="outside lower center", ncols=2)
+    return figure
+
+
+def break_even_figure(curve: pd.DataFrame, found: pd.DataFrame, strategies: Labels,
+                      measure_label: str, unit: str) -> Figure:
+    """Break-even values (tables `break_even_curve` and `break_even`), one panel per
+    strategy and parameter: the measure over the parameter's range (with ±1.96 SE where
+    simulated), the zero line, each crossing with its 95% interval, the base value dotted."""
+    keys = ordered(zip(curve.strategy, curve.parameter))
+    with house_style():
+        figure = new_figure(6.4, 2.9 * len(keys) + 0.6)
+        axes = panels(figure, len(keys), columns=1)
+        for ax, (name, parameter) in zip(axes, keys):
+            rows = curve[(curve.strategy == name) & (curve.parameter == parameter)]
+            roots = found[(found.strategy == name) & (found.parameter == parameter)]
+            banded(ax, rows.value, rows.result, rows.result, rows.se.fillna(0.0),
+                   series_style(0), measure_label)
+            ax.axhline(0, color=INK, linewidth=0.8)
+            ax.axvline(float(roots.base.iloc[0]), color=INK, linestyle=(0, (1, 2)),
+                       linewidth=0.9, label="base value")
+            for row in roots[roots.crossing > 0].itertuples():
+                if np.isfinite(row.se):
+                    ax.axvspan(row.lower, row.upper, color=TONES[1], alpha=BAND_ALPHA,
+                               linewidth=0)
+                ax.plot([row.value], [0.0], marker="D", markersize=7, color=TONES[1],
+                        markeredgecolor=INK, linestyle="none",
+                        label=f"break-even {row.value:,.4g}")
+            against = roots.compared_with.iloc[0]
+            title = f"{strategies.get(name, name)}" + (
+                f" against {strategies.get(against, against)}" if isinstance(against, str) else "")
+            ax.set_title(wrapped(f"{title}: {parameter}", 70))
+            ax.set_xlabel(parameter)
+            ax.set_ylabel(f"{measure_label}\n({unit})")
+            if unit != "QALYs":
+                thousands(ax.yaxis)
+            ax.legend(loc="best")
+    return figure
+
+
+def budget_figure(budget: pd.DataFrame, strategies: Labels, currency: str) -> Figure:
+    """The payer's yearly cost of each strategy (table `budget_impact`), as bars by calendar
+    year told apart by hatching as well as tone, and below it each strategy's difference
+    from the comparator (with 95% Monte-Carlo intervals where simulated)."""
+    names = ordered(budget.strategy)
+    years = np.array(sorted(set(budget.year)))
+    width = 0.8 / len(names)
+    hatches = ("", "///", "...", "xx", "\\\\", "++")
+    others = [n for n in names if (budget[budget.strategy == n].impact.abs() > 0).any()]
+    with house_style():
+        figure = new_figure(6.6, 6.4 if others else 3.6)
+        axes = figure.subplots(2 if others else 1, 1, squeeze=False)[:, 0]
+        for k, name in enumerate(names):
+            rows = budget[budget.strategy == name].sort_values("year")
+            style = series_style(k)
+            axes[0].bar(years + (k - (len(names) - 1) / 2) * width, rows.cost / 1e6, width,
+                        color=style["color"], edgecolor=INK, linewidth=0.5,
+                        hatch=hatches[k % len(hatches)], label=wrapped(strategies.get(name, name), 40))
+        axes[0].set_ylabel(f"cost to the payer\n(millions of {currency}, undiscounted)")
+        axes[0].set_xticks(years)
+        axes[0].set_xlabel("calendar year")
+        if others:
+            step = 0.8 / len(others)
+            for k, name in enumerate(others):
+                rows = budget[budget.strategy == name].sort_values("year")
+                style = series_style(names.index(name))
+                errors = Z95 * rows.impact_se.to_numpy() / 1e6 if rows.impact_se.notna().any() else None
+                axes[1].bar(years + (k - (len(others) - 1) / 2) * step, rows.impact / 1e6, step,
+                            yerr=errors, capsize=2, color=style["color"], edgecolor=INK,
+                            linewidth=0.5, hatch=hatches[names.index(name) % len(hatches)],
+                            ecolor=INK)
+            against = budget.compared_with.dropna().iloc[0]
+            axes[1].axhline(0, color=INK, linewidth=0.8)
+            axes[1].set_ylabel(f"budget impact against\n{wrapped(strategies.get(against, against), 30)}\n"
+                               f"(millions of {currency})")
+            axes[1].set_xticks(years)
+            axes[1].set_xlabel("calendar year")
+        figure.legend(handles=axes[0].get_legend_handles_labels()[0], loc="outside lower center",
+                      ncols=min(3, len(names)))
     return figure
 
 

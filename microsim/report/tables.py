@@ -126,3 +126,18 @@ def by_strategy(name: str, frame: pd.DataFrame, measures: Sequence[str], value: 
             cells.append(cell(name, frame, found[0], value) if len(found) else Cell("–"))
         rows.append(cells)
     return Table(caption, [first, *(MEASURES.get(m, m) for m in measures)], rows, note)
+
+
+def grid(name: str, frame: pd.DataFrame, rows: str, columns: str, value: Column,
+         caption: str, corner: str, note: str = "") -> Table:
+    """A long table shown as a grid: one row per value of `rows`, one column per value of
+    `columns`, each cell read from its own row of `frame` (a two-way analysis)."""
+    across = sorted(set(frame[columns]))
+    shown = []
+    for down in sorted(set(frame[rows])):
+        cells = [Cell(number(down))]
+        for x in across:
+            found = frame.index[(frame[rows] == down) & (frame[columns] == x)]
+            cells.append(cell(name, frame, found[0], value) if len(found) else Cell("–"))
+        shown.append(cells)
+    return Table(caption, [corner, *(number(x) for x in across)], shown, note)

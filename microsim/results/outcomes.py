@@ -34,6 +34,9 @@ class Exposure:
         return cls(*(np.concatenate([getattr(p, f) for p in parts])
                      for f in ("occupancy", "occurrences", "on_treatment")))
 
+    def take(self, rows) -> "Exposure":
+        return Exposure(self.occupancy[rows], self.occurrences[rows], self.on_treatment[rows])
+
     def mean(self) -> "Exposure":
         return Exposure(*(getattr(self, f).mean(axis=0, keepdims=True)
                           for f in ("occupancy", "occurrences", "on_treatment")))
@@ -41,7 +44,9 @@ class Exposure:
 
 def outcome_values(model: BoundModel, exposure: Exposure) -> dict[str, np.ndarray]:
     """Per row: life years (time in non-absorbing states, undiscounted), QALYs and costs,
-    undiscounted and discounted, including a strategy's costs and utility on treatment."""
+    undiscounted and discounted, including a strategy's costs and utility on treatment.
+    Life years and QALYs are in years whatever the time unit (a utility is a weight per
+    year lived); costs are the model's, per time unit in a state and once per occurrence."""
     alive = (~model.absorbing).astype(float)
     risk_cost = np.array([r.cost for r in model.risks])
     risk_loss = np.array([r.disutility for r in model.risks])
@@ -50,15 +55,17 @@ def outcome_values(model: BoundModel, exposure: Exposure) -> dict[str, np.ndarra
     extra_utility = np.zeros(model.n_states) if t is None else t.extra_utility
     occ, on, count = exposure.occupancy, exposure.on_treatment, exposure.occurrences
 
+    years = model.years_per_unit
+
     def qalys(w):
-        return occ[:, :, w] @ model.state_utility + on[:, :, w] @ extra_utility \
+        return years * (occ[:, :, w] @ model.state_utility + on[:, :, w] @ extra_utility) \
             - count[:, :, w] @ risk_loss
 
     def costs(w):
         return occ[:, :, w] @ model.state_cost + on[:, :, w] @ extra_cost \
             + count[:, :, w] @ risk_cost
 
-    return {"life_years": occ[:, :, 0] @ alive, "qalys": qalys(0), "costs": costs(0),
+    return {"life_years": years * (occ[:, :, 0] @ alive), "qalys": qalys(0), "costs": costs(0),
             "qalys_discounted": qalys(2), "costs_discounted": costs(1)}
 
 

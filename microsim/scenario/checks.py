@@ -405,6 +405,11 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
     reachable, _ = reachable_from_start(s)
     found += [f"states.{n}: not reachable from the start (no start share, and no transition "
               "that can happen leads to it)" for n in s.state_names if n not in reachable]
+    for key in ("discount_costs", "discount_effects"):
+        rate = getattr(s.outcomes, key)
+        if rate > 0.2:
+            found.append(f"outcomes.{key}: {show(rate)} a year is {show(100 * rate)}%; discount "
+                         f"rates are fractions (0.035 for 3.5%)")
     youngest = youngest_age(s)
     for table in s.tables.values():
         first = table.starts[0]

@@ -1,15 +1,17 @@
-"""Reading [uncertainty]: how many PSA draws, and which parameters are drawn together
-(correlated, as the shares of a Dirichlet group, or from a multivariate normal)."""
+"""Reading [uncertainty]: how many PSA draws, which parameters are drawn together
+(correlated, as the shares of a Dirichlet group, or from a multivariate normal), and whose
+EVPPI is reported."""
 from __future__ import annotations
 
 from .checks import undefined
 from .correlation import covariance_problem, read_correlation_matrix
 from .errors import ScenarioError
-from .fields import ANY, MAX_PATIENTS, POSITIVE, Node, listing, show
+from .fields import ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
 from .spec import INVALID_DRAWS, NormalGroupSpec, Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "multivariate_normal",
-                    "invalid_draws")
+                    "invalid_draws", "evppi")
+MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
 NORMAL_KEYS = ("parameters", "means", "covariance", "on_log_scale")
@@ -38,7 +40,8 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
         invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
         normal_groups=tuple(read_normal_group(n)
-                            for n in node.nodes("multivariate_normal", NORMAL_KEYS)))
+                            for n in node.nodes("multivariate_normal", NORMAL_KEYS)),
+        evppi=read_evppi_groups(node))
 
 
 def read_normal_group(node: Node) -> NormalGroupSpec:
@@ -61,6 +64,33 @@ def read_normal_group(node: Node) -> NormalGroupSpec:
     return NormalGroupSpec(members, means, covariance, logged)
 
 
+def read_evppi_groups(node: Node) -> tuple[tuple[str, ...], ...]:
+    """`evppi`: a list whose items are a parameter name or a list of names (a group whose
+    values would be learnt together)."""
+    items = node.raw("evppi", [])
+    if not isinstance(items, list) or not items and node.has("evppi"):
+        node.fail("evppi", "must be a non-empty list of parameter names or lists of names "
+                           f"(evppi = [\"p_a\", [\"c_x\", \"c_y\"]]), got {describe(items)}")
+    groups = []
+    for i, item in enumerate(items):
+        path = f"evppi[{i}]"
+        names = item if isinstance(item, list) else [item]
+        if not names:
+            node.fail(path, "is an empty group; name at least one parameter")
+        for j, name in enumerate(names):
+            if not isinstance(name, str) or not IDENTIFIER.fullmatch(name):
+                where = path if item is name else f"{path}[{j}]"
+                node.fail(where, f"must be a parameter name, got {describe(name)}")
+        node.distinct(path, names)
+        if len(names) > MAX_EVPPI_GROUP:
+            node.fail(path, f"has {len(names)} parameters; EVPPI by regression is computed "
+                            f"for groups of at most {MAX_EVPPI_GROUP} (split the group)")
+        if tuple(names) in groups:
+            node.fail(path, f"repeats the group {listing(names)}; give each group once")
+        groups.append(tuple(names))
+    return tuple(groups)
+
+
 def read_parameter_correlation(node: Node | None
                                ) -> tuple[tuple[str, ...], tuple[tuple[float, ...], ...]]:
     if node is None:
@@ -81,6 +111,7 @@ def check_uncertainty(s: Scenario) -> list[str]:
             raise ScenarioError(path, f"{name!r} has no distribution that varies, so the PSA "
                                 "does not draw it; only parameters with a distribution can be "
                                 "correlated")
+    check_evppi_groups(s)
     found = []
     grouped: dict[str, str] = {}
     for i, group in enumerate(spec.normal_groups):
@@ -122,3 +153,21 @@ def check_uncertainty(s: Scenario) -> list[str]:
 def defined(s: Scenario, name: str, path: str) -> None:
     if name not in s.parameters:
         raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))
+
+
+def check_evppi_groups(s: Scenario) -> None:
+    """Every EVPPI parameter is defined and drawn by the PSA (a distribution that varies,
+    a Dirichlet or a multivariate normal group): a parameter that never varies has no value
+    of information."""
+    drawn = {name for names, _ in s.uncertainty.dirichlets for name in names}
+    drawn |= {name for group in s.uncertainty.normal_groups for name in group.parameters}
+    drawn |= {name for name, p in s.parameters.items()
+              if p.distribution is not None and p.distribution.family != "fixed"}
+    for i, group in enumerate(s.uncertainty.evppi):
+        for j, name in enumerate(group):
+            path = f"uncertainty.evppi[{i}]" + (f"[{j}]" if len(group) > 1 else "")
+            defined(s, name, path)
+            if name not in drawn:
+                raise ScenarioError(path, f"{name!r} is not drawn by the PSA (it has no "
+                                    "distribution that varies), so learning it is worth "
+                                    "nothing; give it a distribution or leave it out")

@@ -12,7 +12,7 @@ import re
 import tomllib
 from dataclasses import replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 from .checks import check_scenario, unknown_state
 from .errors import ScenarioError
@@ -20,7 +20,9 @@ from .fields import ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node
 from .read_capacity import check_capacity, read_capacity, strategies_with_capacity
 from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
+from .options import named_by_option, with_options
 from .read_population import read_population
+from .read_sensitivity import SENSITIVITY_KEYS, check_sensitivity, read_sensitivity
 from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
@@ -30,13 +32,13 @@ from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, Simulati
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
             "events", "parameters", "tables", "outcomes", "population", "simulation",
-            "strategies", "economics", "uncertainty",
+            "strategies", "economics", "uncertainty", "sensitivity",
             "arrivals", "resources", "replications")  # the last three: microsim.capacity
-TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule")
+TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule", "years_per_unit")
 START_KEYS = ("age", "shares")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
 OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
-SIMULATION_KEYS = ("seed", "batch_size", "grid")
+SIMULATION_KEYS = ("seed", "batch_size", "grid", "validation_patients")
 CORRECTIONS = ("none", "half-cycle", "trapezoidal", "simpson")
 LIFETIME = "lifetime"
 DEFAULT_LIFETIME_CAP = 100.0
@@ -45,9 +47,11 @@ UNIT_WORD = re.compile(r"[A-Za-z]+")
 TOML_POSITION = re.compile(r"\s*\(at (?:line (\d+), column (\d+)|end of document)\)\s*$")
 
 
-def read_scenario(path: str | Path, invalid_draws: str | None = None) -> Scenario:
+def read_scenario(path: str | Path, invalid_draws: str | None = None,
+                  options: Mapping[str, Any] | None = None) -> Scenario:
     """Read and check a scenario file; refuse bad input with a `ScenarioError`.
-    `invalid_draws` overrides uncertainty.invalid_draws (the CLI's --invalid-draws)."""
+    `invalid_draws` overrides uncertainty.invalid_draws (the CLI's --invalid-draws);
+    `options` {key: value} override the keys of `microsim.scenario.options`."""
     path = Path(path)
     try:
         data = path.read_bytes()
@@ -59,14 +63,19 @@ def read_scenario(path: str | Path, invalid_draws: str | None = None) -> Scenari
     except UnicodeDecodeError as error:
         raise ScenarioError(path.name, f"is not UTF-8 text (bad byte at offset {error.start})") \
             from None
-    return parse_scenario(text, source=path, invalid_draws=invalid_draws)
+    return parse_scenario(text, source=path, invalid_draws=invalid_draws, options=options)
 
 
 def parse_scenario(text: str, source: str | Path | None = None,
-                   invalid_draws: str | None = None) -> Scenario:
+                   invalid_draws: str | None = None,
+                   options: Mapping[str, Any] | None = None) -> Scenario:
     """Check scenario text; `source` names it in errors and anchors relative file paths."""
     label = Path(source).name if source is not None else "scenario"
-    return scenario_from_data(load_toml(text, label), source, invalid_draws)
+    data = load_toml(text, label)
+    try:
+        return scenario_from_data(with_options(data, options or {}), source, invalid_draws)
+    except ScenarioError as error:
+        raise named_by_option(error, options or {}) from None
 
 
 def load_toml(text: str, label: str) -> dict[str, Any]:
@@ -120,6 +129,7 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
         strategies=read_strategies(doc.nodes("strategies", None), tables, time, read_states),
         economics=read_economics(doc.node("economics", ECONOMICS_KEYS, default=None)),
         uncertainty=read_uncertainty(doc.node("uncertainty", UNCERTAINTY_KEYS, default=None)),
+        sensitivity=read_sensitivity(doc.node("sensitivity", SENSITIVITY_KEYS, default=None)),
         source=Path(source) if source is not None else None,
     )
     capacity = read_capacity(doc, base, time)
@@ -130,6 +140,7 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
+    check_sensitivity(draft)
     uses = reading.references + check_row_structure(draft)
     check_row_bounds(draft)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))
@@ -154,7 +165,24 @@ def read_time(node: Node) -> TimeSpec:
         cap = DEFAULT_LIFETIME_CAP
     rule = node.text("probability_rule", SEPARATE, choices=PROBABILITY_RULES)
     return TimeSpec(unit=unit, cycle=cycle, horizon=horizon, lifetime_cap=cap,
-                    probability_rule=rule)
+                    probability_rule=rule, years_per_unit=years_per_unit(node, unit))
+
+
+YEARS_PER_UNIT = {"year": 1.0, "month": 1 / 12, "week": 7 / 365.25, "day": 1 / 365.25,
+                  "hour": 1 / (24 * 365.25), "minute": 1 / (60 * 24 * 365.25)}  # Julian years
+
+
+def years_per_unit(node: Node, unit: str) -> float:
+    """How many years one time unit is: life years and QALYs are counted in years and
+    discount rates are per year whatever the unit, so an unknown unit must say."""
+    known = YEARS_PER_UNIT.get(unit.lower().removesuffix("s"))
+    if node.has("years_per_unit") or known is None:
+        if not node.has("years_per_unit"):
+            known_units = ", ".join(f"{u}s" for u in YEARS_PER_UNIT)
+            node.fail("unit", f"{unit!r} is not a unit microsim knows ({known_units}); give "
+                              "time.years_per_unit, the length of one unit in years")
+        return node.number("years_per_unit", role=POSITIVE)
+    return known
 
 
 def whole_cycles(node: Node, key: str, length: float, cycle: float, note: str = "") -> None:
@@ -211,4 +239,6 @@ def read_simulation(node: Node | None) -> SimulationSpec:
     return SimulationSpec(
         seed=node.whole("seed", defaults.seed, minimum=0, maximum=2**64 - 1),
         batch_size=node.whole("batch_size", defaults.batch_size, minimum=1),
-        grid=node.number("grid", None, role=POSITIVE))
+        grid=node.number("grid", None, role=POSITIVE),
+        validation_patients=node.whole("validation_patients", defaults.validation_patients,
+                                       minimum=1))

@@ -47,6 +47,7 @@ class TimeSpec:
     horizon: float | None  # None: lifetime (until everyone is absorbed, capped)
     lifetime_cap: float  # always set (default 100); only read when horizon is None
     probability_rule: ProbabilityRule = SEPARATE  # cycle models only
+    years_per_unit: float = 1.0  # life years and QALYs are in years, discount rates per year
 
     @property
     def end(self) -> float:
@@ -234,8 +235,9 @@ class PopulationSpec:
 @dataclass(frozen=True)
 class SimulationSpec:
     seed: int = 20261201
-    batch_size: int = 5000
+    batch_size: int = 20000
     grid: float | None = None  # report grid step in time units; default: the cycle
+    validation_patients: int = 100_000  # the main job compares the first ones with the cohort
 
 
 @dataclass(frozen=True)
@@ -294,6 +296,18 @@ class EconomicsSpec:
     thresholds: tuple[float, float, float] = (0.0, 100000.0, 1000.0)  # from, to, step
     currency: str = "money units"
     precision: float | None = None  # target 95% CI half-width of incremental NMB
+    # the people a decision reaches: new patients a year (one number, or one per year)
+    incidence: tuple[float, ...] = ()
+    evpi_years: int | None = None  # years the decision holds, for population EVPI
+    evpi_discount: float | None = None  # yearly discount rate of population EVPI
+    prevalent_patients: int = 0  # patients already there at the start of budget year 1
+    budget_years: int | None = None  # calendar years of the budget impact
+
+    def incidence_by_year(self, years: int) -> tuple[float, ...]:
+        """New patients in each of `years` years: one number holds for every year."""
+        if len(self.incidence) == 1:
+            return self.incidence * years
+        return self.incidence[:years]
 
 
 INVALID_DRAWS = ("refuse", "redraw", "truncate")
@@ -326,6 +340,16 @@ class UncertaintySpec:
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
     normal_groups: tuple[NormalGroupSpec, ...] = ()
+    evppi: tuple[tuple[str, ...], ...] = ()  # parameter groups whose EVPPI is reported
+
+
+@dataclass(frozen=True)
+class SensitivitySpec:
+    """Deterministic sensitivity beyond one way: a pair of parameters varied together and
+    the parameters whose break-even value is sought, on a grid of `grid` values each."""
+    two_way: tuple[str, ...] = ()  # two parameter names, or none
+    break_even: tuple[str, ...] = ()
+    grid: int = 7  # values from low to high (the base value is added when not among them)
 
 
 @dataclass(frozen=True)
@@ -346,6 +370,7 @@ class Scenario:
     strategies: tuple[StrategySpec, ...] = ()  # the first with comparator = true compares
     economics: EconomicsSpec = EconomicsSpec()
     uncertainty: UncertaintySpec = UncertaintySpec()
+    sensitivity: SensitivitySpec = SensitivitySpec()
     capacity: "CapacitySpec | None" = None  # arrivals and shared resources (microsim.capacity)
     source: Path | None = None
     warnings: tuple[str, ...] = ()

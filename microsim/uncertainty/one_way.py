@@ -2,7 +2,8 @@
 
 `one_way` varies each ranged parameter on its own around any model evaluation; `tornado`
 applies it to a scenario's decision, for a chosen measure (`microsim.decision.measures`)
-and each chosen strategy. Each setting is evaluated on the same generated patients. Where
+and each chosen strategy, through `Settings`, which the two-way and break-even analyses
+share. Each setting is evaluated on the same generated patients. Where
 the model has an exact counterpart, the patients' analytic expectations are used, so the
 tornado carries no Monte-Carlo noise at all; otherwise every strategy is simulated with
 common random numbers and each result carries its Monte-Carlo standard error.
@@ -10,6 +11,7 @@ common random numbers and each result carries its Monte-Carlo standard error.
 from __future__ import annotations
 
 import math
+from functools import partial
 from typing import Callable, Mapping, NamedTuple
 
 import numpy as np
@@ -123,44 +125,79 @@ def tornado_strategies(scenario: Scenario, strategy: str | None,
     return measure, [strategy], comparator
 
 
+class Settings:
+    """The chosen measure of each chosen strategy (see `tornado_strategies`) at any setting
+    of the parameters, on one set of generated patients: exact where the model has an exact
+    counterpart, else simulated with common random numbers (the same seed for every
+    strategy and setting). Each setting is evaluated once, whichever analysis asks for it,
+    so the one-way, two-way and break-even analyses share their evaluations."""
+
+    def __init__(self, scenario: Scenario, patients: int | None = None,
+                 seed: int | None = None, strategy: str | None = None,
+                 measure: str | None = None):
+        from microsim.patients.population import patients_for
+        self.scenario = scenario
+        self.measure, self.chosen, self.comparator = tornado_strategies(scenario, strategy,
+                                                                        measure)
+        self.seed = scenario.simulation.seed if seed is None else seed
+        self.people = patients_for(scenario, patients, self.seed)
+        self.base = {name: float(spec.value) for name, spec in scenario.parameters.items()}
+        self.needed = list(dict.fromkeys([*([self.comparator] if self.comparator else []),
+                                          *self.chosen]))
+        self.evaluated: dict[tuple, dict] = {}
+
+    def evaluate(self, values: dict) -> dict[str | None, PatientValues]:
+        key = tuple(sorted(values.items()))
+        if key not in self.evaluated:
+            self.evaluated[key] = {name: patient_values(self.scenario, self.people, self.seed,
+                                                        values, name) for name in self.needed}
+        return self.evaluated[key]
+
+    def per_patient(self, name: str | None, result: dict) -> tuple[np.ndarray, bool]:
+        """Each patient's value of the measure for strategy `name` (against the comparator
+        for an incremental measure), and whether it is exact."""
+        threshold = self.scenario.economics.threshold
+        own = result[name]
+        value = per_patient(self.measure, own.costs, own.qalys, threshold)
+        if self.comparator is None:
+            return value, own.exact
+        base = result[self.comparator]
+        return (value - per_patient(self.measure, base.costs, base.qalys, threshold),
+                own.exact and base.exact)
+
+    def estimate(self, name: str | None, result: dict) -> Estimate:
+        value, exact = self.per_patient(name, result)
+        se = math.nan if exact else float(np.std(value, ddof=1) / np.sqrt(len(value)))
+        return Estimate(float(np.mean(value)), se)
+
+    def at(self, name: str | None, changes: dict[str, float]) -> Estimate:
+        """The measure for `name` with `changes` to the base case."""
+        return self.estimate(name, self.evaluate({**self.base, **changes}))
+
+    def labelled(self, table: pd.DataFrame, name: str | None) -> pd.DataFrame:
+        """A table of one strategy's results with the columns that say whose they are."""
+        return table.assign(strategy=AS_WRITTEN if name is None else name,
+                            measure=self.measure, compared_with=self.comparator)
+
+
+def as_text(table: pd.DataFrame, *columns: str) -> pd.DataFrame:
+    for column in columns:
+        table[column] = table[column].astype("string")
+    return table
+
+
 def tornado(scenario: Scenario, patients: int | None = None, seed: int | None = None,
-            strategy: str | None = None, measure: str | None = None) -> pd.DataFrame:
+            strategy: str | None = None, measure: str | None = None,
+            settings: Settings | None = None) -> pd.DataFrame:
     """The one-way table of `measure` for each chosen strategy (see `tornado_strategies`):
     strategy, measure, compared_with, the `one_way` columns (widest swing first within each
-    strategy) and basis (exact, or simulated with its standard errors)."""
-    from microsim.patients.population import patients_for
-    measure, chosen, comparator = tornado_strategies(scenario, strategy, measure)
-    seed = scenario.simulation.seed if seed is None else seed
-    people = patients_for(scenario, patients, seed)
-    needed = list(dict.fromkeys([*([comparator] if comparator else []), *chosen]))
-    threshold = scenario.economics.threshold
-    evaluated: dict[tuple, dict] = {}  # each setting once, whichever strategy reads it
-
-    def evaluate(values: dict) -> dict[str | None, PatientValues]:
-        key = tuple(sorted(values.items()))
-        if key not in evaluated:
-            evaluated[key] = {name: patient_values(scenario, people, seed, values, name)
-                              for name in needed}
-        return evaluated[key]
-
-    def estimate_for(name: str | None) -> Callable[[dict], Estimate]:
-        def estimate(result: dict) -> Estimate:
-            own = result[name]
-            value = per_patient(measure, own.costs, own.qalys, threshold)
-            exact = own.exact
-            if comparator is not None:
-                base = result[comparator]
-                value = value - per_patient(measure, base.costs, base.qalys, threshold)
-                exact = exact and base.exact
-            se = math.nan if exact else float(np.std(value, ddof=1) / np.sqrt(len(value)))
-            return Estimate(float(np.mean(value)), se)
-        return estimate
-
-    frames = [one_way(evaluate, scenario.parameters, estimate_for(name))
-              .assign(strategy=AS_WRITTEN if name is None else name, measure=measure,
-                      compared_with=comparator) for name in chosen]
+    strategy) and basis (exact, or simulated with its standard errors). `settings` shares
+    the evaluations with other analyses of the same choices."""
+    settings = settings or Settings(scenario, patients, seed, strategy, measure)
+    frames = [settings.labelled(one_way(settings.evaluate, scenario.parameters,
+                                        partial(settings.estimate, name)), name)
+              for name in settings.chosen]
     table = pd.concat(frames, ignore_index=True)
     table["basis"] = np.where(table.se_base.isna(), EXACT, SIMULATED)
-    for column in ("strategy", "measure", "compared_with", "basis"):
-        table[column] = table[column].astype("string")
+    as_text(table, "strategy", "measure", "compared_with", "basis")
     return table[["strategy", "measure", "compared_with", *COLUMNS, "basis"]]

@@ -13,6 +13,7 @@ intervals; acceptability, EVPI and the split compare strategies, so it gets a no
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 from functools import partial
 from pathlib import Path
@@ -24,12 +25,14 @@ from microsim import __version__
 from microsim.decision import economics
 from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_strategies, strategy_names
 from microsim.patients.population import scenario_patients
+from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
 from microsim.uncertainty.summaries import draw_intervals
+from microsim.uncertainty.value_of_information import check_evppi_draws, information_values
 
 NEEDS_STRATEGIES = ("acceptability curves, the cost-effectiveness plane, EVPI and the "
                     "inner/outer split compare strategies: they need at least two, and this "
@@ -51,13 +54,30 @@ def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.Dat
     threshold = scenario.economics.threshold
     nmb = (threshold * outcomes[EFFECT] - outcomes[COST]).groupby(outcomes.strategy, sort=False)
     base = nmb.get_group(next(iter(sims))).to_numpy()  # the comparator runs first
+    first = outcomes.groupby("strategy", sort=False).get_group(next(iter(sims)))
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
         gain = nmb.get_group(name).to_numpy() - base
+        d_cost = group[COST].to_numpy() - first[COST].to_numpy()
+        d_effect = group[EFFECT].to_numpy() - first[EFFECT].to_numpy()
         rows.append((name, group[COST].mean(), group[EFFECT].mean(), group["life_years"].mean(),
-                     float(gain.var(ddof=1)), len(group)))
-    return pd.DataFrame(rows, columns=["strategy", "cost", "effect", "life_years",
-                                       "incremental_nmb_within_variance", "patients"])
+                     float(gain.var(ddof=1)), *within_moments(d_cost, d_effect), len(group)))
+    return pd.DataFrame(rows, columns=DRAW_COLUMNS)
+
+
+DRAW_COLUMNS = ["strategy", "cost", "effect", "life_years", "incremental_nmb_within_variance",
+                "incremental_cost_within_variance", "incremental_effect_within_variance",
+                "incremental_within_covariance", "patients"]
+
+
+def within_moments(d_cost: np.ndarray, d_effect: np.ndarray) -> tuple[float, float, float]:
+    """Within-draw variances of the paired incremental cost and effect and their
+    covariance, which give the within-draw variance of incremental NMB at any threshold
+    (for the acceptability curve without inner noise)."""
+    if len(d_cost) < 2:
+        return math.nan, math.nan, math.nan
+    matrix = np.cov(d_cost, d_effect)
+    return float(matrix[0, 0]), float(matrix[1, 1]), float(matrix[0, 1])
 
 
 @dataclass(frozen=True)
@@ -72,6 +92,7 @@ class PsaResult:
     plane: pd.DataFrame | None = None
     variance: pd.DataFrame | None = None  # between/within split, suggested inner/outer sizes
     note: str | None = None
+    evppi: pd.DataFrame | None = None  # per threshold, for the groups of uncertainty.evppi
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -95,16 +116,29 @@ def variance_split(scenario: Scenario, results: pd.DataFrame) -> pd.DataFrame:
         n = int(group["patients"].iloc[0])
         within = float(group["incremental_nmb_within_variance"].mean())
         means = table[name] - table[names[0]]
-        between = max(float(means.var(ddof=1)) - within / n, 0.0)
+        spread = float(means.var(ddof=1)) if len(group) > 1 else np.nan
+        between = max(spread - within / n, 0.0) if np.isfinite(spread) else np.nan
         split = (economics.optimal_sample_split(between, within, n * len(group))
                  if between > 0 else None)
         rows.append((name, len(group), n, float(means.mean()), between, within,
                      None if split is None else split.n_draws,
-                     None if split is None else split.patients_per_draw))
+                     None if split is None else split.patients_per_draw,
+                     split_note(spread, within, n, split)))
     return pd.DataFrame(rows, columns=["strategy", "draws", "patients_per_draw",
                                        "mean_incremental_nmb", "between_draw_variance",
                                        "within_draw_variance", "suggested_draws",
-                                       "suggested_patients_per_draw"])
+                                       "suggested_patients_per_draw", "note"])
+
+
+def split_note(spread: float, within: float, n: int, split) -> str:
+    """Why the split suggests what it does, or nothing, in words."""
+    if not np.isfinite(spread):
+        return "one draw: no spread between draws to split"
+    if split is None:
+        return (f"the spread between draws ({spread:.4g}) is no more than the patients' "
+                f"noise in a draw's mean ({within / n:.4g}): the draws tell parameter "
+                "uncertainty apart from Monte-Carlo noise only with more patients per draw")
+    return "the split of the same number of patients that estimates the between-draw variance best"
 
 
 def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None = None,
@@ -117,6 +151,12 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     if seed is not None:
         scenario = replace(scenario, simulation=replace(scenario.simulation, seed=seed))
     spec = scenario.uncertainty
+    if not spec.dirichlets and not any(
+            p.distribution is not None and p.distribution.family != "fixed"
+            for p in scenario.parameters.values()):
+        raise ScenarioError("parameters", "no parameter has a distribution (nor a Dirichlet "
+                            "group), so every PSA draw would be the base case; give the "
+                            "uncertain parameters a distribution")
     n_draws = spec.draws if draws is None else draws
     n = next(v for v in (patients, spec.patients,
                          scenario.population.size if scenario.population else None, 1000)
@@ -125,17 +165,21 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets,
                                spec.normal_groups)
     # every draw checked (refused, redrawn or truncated) before anything is simulated
+    check_evppi_draws(scenario, n_draws)
     checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
     table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
-                   "microsim": __version__}
+                   "microsim": __version__, "draw_columns": DRAW_COLUMNS}
     results = run_draws(partial(evaluate_draw, scenario, n), table, Path(run_dir),
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
     if not scenario.strategies:
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES)
-    summary = summarise_draws(results, thresholds(scenario), strategy_names(scenario)[0])
+    comparator = strategy_names(scenario)[0]
+    summary = summarise_draws(results, thresholds(scenario), comparator)
+    evpi, evppi = information_values(scenario, table, results, summary["evpi"],
+                                     thresholds(scenario), comparator)
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
-                     summary["evpi"], summary["plane"], variance_split(scenario, results))
+                     evpi, summary["plane"], variance_split(scenario, results), evppi=evppi)

@@ -11,13 +11,21 @@ from ..scenario.errors import ScenarioError
 
 
 def summarise_draws(results: pd.DataFrame, thresholds, comparator: str) -> dict[str, pd.DataFrame]:
-    """Acceptability curves, per-person EVPI and the cost-effectiveness plane (vs comparator)."""
+    """Acceptability curves (also with the inner patients' noise taken out, where the
+    draws carry their within-draw variances), per-person EVPI and the cost-effectiveness
+    plane (vs comparator)."""
     strategies = [str(s) for s in pd.unique(results["strategy"])]
     if comparator not in strategies:
         raise ScenarioError("comparator", f"{comparator!r} is not a strategy; choose one of "
                                           f"{', '.join(strategies)}")
+    acceptability = economics.acceptability_curve(results, thresholds)
+    if set(economics.WITHIN) <= set(results.columns):
+        without = economics.acceptability_without_noise(results, thresholds)
+        acceptability = acceptability.merge(
+            without.rename(columns={"probability_best": "probability_best_noise_removed"}),
+            on=["threshold", "strategy"], how="left", sort=False)
     return {
-        "acceptability": economics.acceptability_curve(results, thresholds),
+        "acceptability": acceptability,
         "evpi": economics.per_person_evpi(results, thresholds),
         "plane": economics.cost_effectiveness_plane(results, comparator),
     }
