@@ -36,9 +36,9 @@ class TimeScaledHazard(HazardFamily):
     scale: float | np.ndarray
 
     def __post_init__(self):
-        scale = self.scale
-        check(bool(np.all(np.isfinite(scale) & (np.asarray(scale) > 0.0))),
-              f"scale (a time ratio) must be finite and > 0, got {scale!r}")
+        scale = np.asarray(self.scale)
+        if not np.all(np.isfinite(scale) & (scale > 0.0)):
+            check(False, f"scale (a time ratio) must be finite and > 0, got {self.scale!r}")
 
     def hazard(self, t):
         return self.base.hazard(t / self.scale) / self.scale
