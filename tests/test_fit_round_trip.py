@@ -1,0 +1,204 @@
+"""Fit -> scenario -> simulation: the written scenario reads back what was fitted, its
+simulated survival follows the fitted model's (|z| < 4 with the binomial standard error:
+common practice), and data drawn from known parameters give them back within their
+standard errors as often as a 95% interval should (coverage, with fixed seeds)."""
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from lifelines.datasets import load_rossi
+
+from microsim.fitting import scenario_text
+from microsim.fitting.check import simulated_check
+from microsim.fitting.data import read_survival_data
+from microsim.fitting.estimate import fit_all
+from microsim.fitting.families import AFT, BY_NAME, PH
+from microsim.fitting.run import fit_and_write
+from microsim.scenario import read_scenario
+from microsim.uncertainty.draw_checks import check_draws
+from microsim.uncertainty.draws import ParameterSampler
+from support import Z
+
+COVARIATES = ("fin", "prio")
+
+
+@lru_cache(maxsize=None)
+def rossi(tmp: str):
+    """The Rossi data of lifelines.datasets (load_rossi), as a CSV, and our fits of it."""
+    path = Path(tmp) / "rossi.csv"
+    load_rossi().to_csv(path, index=False)
+    data = read_survival_data(path, "week", "arrest", COVARIATES)
+    return data, {fit.key: fit for fit in fit_all(data)}
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory):
+    return rossi(str(tmp_path_factory.mktemp("rossi")))
+
+
+def written(tmp_path, fit, data, horizon=150.0, seed=3):
+    path = tmp_path / "fitted_scenario.toml"
+    path.write_text(scenario_text.scenario(fit, data, "rearrest", "weeks", horizon, seed))
+    data.frame().to_csv(tmp_path / scenario_text.PATIENTS_FILE, index=False)
+    return path
+
+
+@pytest.mark.parametrize("key", [("weibull", PH), ("lognormal", AFT), ("generalised_gamma", AFT),
+                                 ("gompertz", AFT), ("exponential", PH)])
+def test_the_written_scenario_simulates_the_fitted_survival(fitted, tmp_path, key):
+    data, fits = fitted
+    fit = fits[key]
+    check = simulated_check(written(tmp_path, fit, data), fit, data, 4000, 11)
+    assert (np.abs(check.z_fitted) < Z).all(), check
+    assert (np.abs(check.z) < Z).all(), check  # and its own analytic counterpart
+    assert check.simulated.iloc[-1] < 0.7  # beyond the data, where families part
+
+
+def test_the_written_scenario_reads_back_the_fit_bit_for_bit(fitted, tmp_path):
+    data, fits = fitted
+    fit = fits[("loglogistic", AFT)]
+    scenario = read_scenario(written(tmp_path, fit, data))
+    names = scenario_text.parameter_names(fit, "rearrest")
+    values = [scenario.parameters[n].value for n in names]
+    assert values == fit.family.natural(fit.estimate[:2]).tolist() + fit.coefficients.tolist()
+    group = scenario.uncertainty.normal_groups[0]
+    assert list(group.parameters) == names and list(group.means) == fit.estimate.tolist()
+    assert np.array_equal(np.array(group.covariance), fit.covariance)
+    assert group.on_log_scale == tuple(names[:2])
+    effects = scenario.transitions[0].effects
+    assert [(e.attribute, e.time_ratio, e.centre) for e in effects] == [
+        (c, True, float(m)) for c, m in zip(COVARIATES, data.centres)]
+
+
+def test_psa_draws_of_the_written_scenario_carry_the_fit_covariance(fitted, tmp_path):
+    # reference: the sample covariance of the PSA draws on the fit's scale against the fit's
+    # covariance, |z| < 4 with the standard error of a sample covariance (fourth moments)
+    data, fits = fitted
+    fit = fits[("weibull", PH)]
+    scenario = read_scenario(written(tmp_path, fit, data))
+    u = scenario.uncertainty
+    sampler = ParameterSampler(scenario.parameters, None, u.dirichlets, u.normal_groups)
+    table = check_draws(scenario, sampler, 4000, 5).table  # every draw valid as it stands
+    names = scenario_text.parameter_names(fit, "rearrest")
+    x = np.column_stack([np.log(table[names[0]]), np.log(table[names[1]]),
+                         *(table[n] for n in names[2:])])
+    centred = x - x.mean(axis=0)
+    for i in range(x.shape[1]):
+        for j in range(i + 1):
+            products = centred[:, i] * centred[:, j]
+            se = products.std(ddof=1) / math.sqrt(len(x))
+            assert abs(products.mean() - fit.covariance[i, j]) < Z * se, (i, j)
+
+
+def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
+    path = tmp_path / "rossi.csv"
+    load_rossi().to_csv(path, index=False)
+    run = fit_and_write(path, "week", "arrest", ("fin",), None, "weeks", tmp_path,
+                        family="lognormal", patients=1500, seed=4)
+    assert run.chosen.key == ("lognormal", AFT)
+    assert run.summary["check"]["agrees"]
+    assert set(run.files) == {"fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv"}
+    block = run.files["fitted_block.toml"].read_text()
+    assert run.data.sha256 in block and "log-normal" in block
+    # the block alone is TOML of the scenario's keys: the transition, parameters, the group
+    assert "[[transitions]]" in block and "[[uncertainty.multivariate_normal]]" in block
+    models = run.tables["fit_models"]
+    assert models.chosen.sum() == 1 and models.loc[models.chosen, "family"].item() == "lognormal"
+
+
+# --- known parameters recovered ------------------------------------------------------------
+
+def weibull_ph_data(rng, n, shape, scale, betas):
+    """T with H(t | x) = exp(x'b) (t / scale)^shape, by inverting it (closed form), x a
+    yes/no and a normal covariate, censored uniformly on (0, 30) and at 25."""
+    x = np.column_stack([rng.random(n) < 0.4, rng.normal(0, 1, n)]).astype(float)
+    eta = (x - x.mean(axis=0)) @ betas
+    t = scale * (-np.log(rng.random(n)) / np.exp(eta)) ** (1 / shape)
+    censor = np.minimum(rng.uniform(0, 30, n), 25.0)
+    return x, np.minimum(t, censor), (t <= censor).astype(float)
+
+
+def lognormal_aft_data(rng, n, meanlog, sdlog, betas):
+    """log T = meanlog + x'b + sdlog Z (closed form), with delayed entry: a patient is in
+    the data only if T exceeds its entry time, drawn on (0, 3)."""
+    rows = []
+    while sum(len(r[0]) for r in rows) < n:
+        x = np.column_stack([rng.random(n) < 0.5, rng.normal(0, 1, n)]).astype(float)
+        t = np.exp(meanlog + x @ betas + sdlog * rng.normal(size=n))
+        entry = rng.uniform(0, 3, n)
+        censor = entry + rng.uniform(0, 20, n)
+        seen = t > entry
+        rows.append((x[seen], entry[seen], np.minimum(t, censor)[seen], (t <= censor)[seen]))
+    x, entry, time, event = (np.concatenate([r[k] for r in rows])[:n] for k in range(4))
+    return x, entry, time, event.astype(float)
+
+
+def to_file(tmp_path, name, x, time, event, entry=None) -> Path:
+    frame = pd.DataFrame({"time": time, "event": event, "a": x[:, 0], "b": x[:, 1]})
+    if entry is not None:
+        frame["entry"] = entry
+    path = tmp_path / f"{name}.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def coverage(tmp_path, family, form, draw, truth_at, replicates, seed, entry=False):
+    """How many of the replicates' 95% intervals (estimate +- 1.96 SE) cover the truth,
+    over all parameters, and how many intervals there were; each replicate fitted as
+    `fit_all` fits it, from the exponential up."""
+    rng = np.random.default_rng(seed)
+    covered = total = 0
+    for r in range(replicates):
+        x, *rest = draw(rng)
+        if entry:
+            start, time, event = rest
+            path = to_file(tmp_path, f"d{r}", x, time, event, start)
+        else:
+            time, event = rest
+            path = to_file(tmp_path, f"d{r}", x, time, event)
+        data = read_survival_data(path, "time", "event", ("a", "b"), "entry" if entry else None)
+        chain = [BY_NAME[name] for name in ("exponential", "weibull", family.name)]
+        fit = next(f for f in fit_all(data, tuple(dict.fromkeys(chain)))
+                   if f.key == (family.name, form))
+        assert fit.converged, fit.note
+        truth = truth_at(data)
+        covered += int(np.sum(np.abs(fit.estimate - truth) <= 1.959963984540054 * fit.se))
+        total += fit.size
+    return covered, total
+
+
+def assert_coverage(covered, total):
+    # reference: the count of covering 95% intervals is binomial(total, 0.95) for a
+    # correct estimator and standard error (counted over parameters that are not
+    # independent: a conservative check), |z| < 4
+    z = (covered - 0.95 * total) / math.sqrt(total * 0.95 * 0.05)
+    assert abs(z) < Z, (covered, total, z)
+
+
+def test_known_weibull_ph_parameters_are_recovered_within_their_standard_errors(tmp_path):
+    shape, scale, betas = 1.4, 12.0, np.array([0.5, -0.3])
+
+    def truth(data):  # the centred model's parameters: the truth does not depend on centres
+        return np.array([math.log(shape), math.log(scale), *betas])
+
+    covered, total = coverage(tmp_path, BY_NAME["weibull"], PH,
+                              lambda rng: weibull_ph_data(rng, 300, shape, scale, betas),
+                              truth, 40, 21)
+    assert_coverage(covered, total)
+
+
+def test_known_lognormal_aft_parameters_are_recovered_under_delayed_entry(tmp_path):
+    meanlog, sdlog, betas = 1.5, 0.8, np.array([0.4, 0.25])
+
+    def truth(data):  # centring moves meanlog to the covariates' means
+        return np.array([meanlog + data.centres @ betas, math.log(sdlog), *betas])
+
+    covered, total = coverage(tmp_path, BY_NAME["lognormal"], AFT,
+                              lambda rng: lognormal_aft_data(rng, 300, meanlog, sdlog, betas),
+                              truth, 30, 22, entry=True)
+    assert_coverage(covered, total)
