@@ -1,7 +1,7 @@
 """Fit -> scenario -> simulation: the written scenario reads back what was fitted, its
 simulated survival follows the fitted model's (|z| < 4 with the binomial standard error:
 common practice), and data drawn from known parameters give them back within their
-standard errors as often as a 95% interval should (coverage, with fixed seeds)."""
+standard errors: the Wald statistics of replicates against the chi-squared (fixed seeds)."""
 from __future__ import annotations
 
 import math
@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 from lifelines.datasets import load_rossi
 
 from microsim.fitting import scenario_text
@@ -147,58 +148,75 @@ def to_file(tmp_path, name, x, time, event, entry=None) -> Path:
     return path
 
 
-def coverage(tmp_path, family, form, draw, truth_at, replicates, seed, entry=False):
-    """How many of the replicates' 95% intervals (estimate +- 1.96 SE) cover the truth,
-    over all parameters, and how many intervals there were; each replicate fitted as
-    `fit_all` fits it, from the exponential up."""
+def replicate_fits(folder, family, form, draw, replicates, seed, entry=False):
+    """The fits of `replicates` data sets drawn by `draw`, each fitted as `fit_all` fits it,
+    from the exponential up, with the data it was fitted to."""
     rng = np.random.default_rng(seed)
-    covered = total = 0
+    fits = []
     for r in range(replicates):
         x, *rest = draw(rng)
         if entry:
             start, time, event = rest
-            path = to_file(tmp_path, f"d{r}", x, time, event, start)
+            path = to_file(folder, f"d{r}", x, time, event, start)
         else:
             time, event = rest
-            path = to_file(tmp_path, f"d{r}", x, time, event)
+            path = to_file(folder, f"d{r}", x, time, event)
         data = read_survival_data(path, "time", "event", ("a", "b"), "entry" if entry else None)
         chain = [BY_NAME[name] for name in ("exponential", "weibull", family.name)]
         fit = next(f for f in fit_all(data, tuple(dict.fromkeys(chain)))
                    if f.key == (family.name, form))
         assert fit.converged, fit.note
-        truth = truth_at(data)
-        covered += int(np.sum(np.abs(fit.estimate - truth) <= 1.959963984540054 * fit.se))
-        total += fit.size
-    return covered, total
+        fits.append((fit, data))
+    return fits
 
 
-def assert_coverage(covered, total):
-    # reference: the count of covering 95% intervals is binomial(total, 0.95) for a
-    # correct estimator and standard error (counted over parameters that are not
-    # independent: a conservative check), |z| < 4
-    z = (covered - 0.95 * total) / math.sqrt(total * 0.95 * 0.05)
-    assert abs(z) < Z, (covered, total, z)
+def assert_recovered(fits, truth_at):
+    # reference: for a consistent estimator with the right covariance V, each replicate's
+    # Wald statistic (estimate - truth)' V^-1 (estimate - truth) is chi-squared with as many
+    # degrees of freedom as parameters (asymptotically; Wald 1943), and the replicates are
+    # independent, so their sum is chi-squared with the sum of those (scipy.stats.chi2);
+    # both tails at the two-sided level of |z| < 4
+    total = dof = 0
+    for fit, data in fits:
+        gap = fit.estimate - truth_at(data)
+        total += float(gap @ np.linalg.solve(fit.covariance, gap))
+        dof += fit.size
+    level = 2 * stats.norm.sf(Z)
+    assert level / 2 < stats.chi2.cdf(total, dof) < 1 - level / 2, (total, dof)
 
 
-def test_known_weibull_ph_parameters_are_recovered_within_their_standard_errors(tmp_path):
-    shape, scale, betas = 1.4, 12.0, np.array([0.5, -0.3])
+WEIBULL_TRUTH = 1.4, 12.0, np.array([0.5, -0.3])  # shape, scale, PH coefficients
 
-    def truth(data):  # the centred model's parameters: the truth does not depend on centres
-        return np.array([math.log(shape), math.log(scale), *betas])
 
-    covered, total = coverage(tmp_path, BY_NAME["weibull"], PH,
-                              lambda rng: weibull_ph_data(rng, 300, shape, scale, betas),
-                              truth, 40, 21)
-    assert_coverage(covered, total)
+@pytest.fixture(scope="module")
+def weibull_replicates(tmp_path_factory):
+    shape, scale, betas = WEIBULL_TRUTH
+    return replicate_fits(tmp_path_factory.mktemp("weibull"), BY_NAME["weibull"], PH,
+                          lambda rng: weibull_ph_data(rng, 300, shape, scale, betas), 40, 21)
+
+
+def test_known_weibull_ph_parameters_are_recovered_within_their_standard_errors(
+        weibull_replicates):
+    shape, scale, betas = WEIBULL_TRUTH
+    # the data are drawn centred at their own means, as the fit centres them
+    assert_recovered(weibull_replicates,
+                     lambda data: np.array([math.log(shape), math.log(scale), *betas]))
+
+
+def test_a_truth_three_standard_errors_away_is_not_recovered(weibull_replicates):
+    # the same check fails when the Weibull log shape it is given is 3 of its SEs off
+    shape, scale, betas = WEIBULL_TRUTH
+    off = 3 * np.mean([fit.se[0] for fit, _ in weibull_replicates])
+    with pytest.raises(AssertionError):
+        assert_recovered(weibull_replicates,
+                         lambda data: np.array([math.log(shape) + off, math.log(scale), *betas]))
 
 
 def test_known_lognormal_aft_parameters_are_recovered_under_delayed_entry(tmp_path):
     meanlog, sdlog, betas = 1.5, 0.8, np.array([0.4, 0.25])
-
-    def truth(data):  # centring moves meanlog to the covariates' means
-        return np.array([meanlog + data.centres @ betas, math.log(sdlog), *betas])
-
-    covered, total = coverage(tmp_path, BY_NAME["lognormal"], AFT,
-                              lambda rng: lognormal_aft_data(rng, 300, meanlog, sdlog, betas),
-                              truth, 30, 22, entry=True)
-    assert_coverage(covered, total)
+    fits = replicate_fits(tmp_path, BY_NAME["lognormal"], AFT,
+                          lambda rng: lognormal_aft_data(rng, 300, meanlog, sdlog, betas),
+                          30, 22, entry=True)
+    # centring moves meanlog to the covariates' means
+    assert_recovered(fits, lambda data: np.array([meanlog + data.centres @ betas,
+                                                  math.log(sdlog), *betas]))
