@@ -107,6 +107,7 @@ REFUSALS = [  # (rows of the data file, options, the option named, what the mess
      "attained age"),
     ("time,event,Sex\n1,1,0\n2,0,1\n", ("--covariates", "Sex"), "--covariates",
      "cannot name an attribute"),
+    ("time,event\n1,1\n2,0\n", ("--covariates", "fin,prio"), "--covariates", "no column 'fin'"),
     ("time,event\n1,1\n2,0\n", ("--covariates", "time"), "--covariates",
      "already given to --time"),
     ("time,event\n1,1\n2,0\n", ("--form", "ph"), "--form", "give --covariates too"),
@@ -135,6 +136,28 @@ def test_bad_data_and_options_are_refused_in_one_line(tmp_path, capsys, rows, op
     lines = captured.err.splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"error: {option}: "), captured.err
     assert phrase in lines[0], lines[0]
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.csv"))
+
+
+def test_a_parquet_file_fits_as_its_csv_does(rossi, tmp_path, capsys):
+    # reference: the same data written by pandas as CSV and as Parquet (pyarrow)
+    parquet = tmp_path / "rossi.parquet"
+    load_rossi().to_parquet(parquet)
+    for path in (rossi, parquet):
+        assert fit(path, tmp_path / path.suffix[1:], "--covariates", "fin", "--family",
+                   "loglogistic") == 0
+    tables = [pd.read_csv(tmp_path / kind / "rossi" / "latest" / "fit_models.csv")
+              for kind in ("csv", "parquet")]
+    pd.testing.assert_frame_equal(*tables)
+
+
+def test_a_parquet_file_with_a_missing_time_is_refused(tmp_path, capsys):
+    frame = pd.DataFrame({"time": [1.0, None, 3.0], "event": [1, 0, 1]})
+    frame.to_parquet(tmp_path / "gaps.parquet")
+    assert main(["fit", str(tmp_path / "gaps.parquet"), "--time", "time", "--event", "event",
+                 "--out", str(tmp_path / "out")]) == EXIT_BAD_INPUT
+    line = capsys.readouterr().err.strip()
+    assert line.startswith("error: --time: ") and "data row 2" in line and "\n" not in line
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.csv"))
 
 

@@ -194,6 +194,39 @@ class GompertzPH(ParametricRegressionFitter):
         return rate * anp.expm1(shape * T) / shape
 
 
+class GompertzAFT(ParametricRegressionFitter):
+    """H(t | x) = H0(t exp(-x'b)) with H0 the Gompertz; the Intercept of `log_time_` is 0
+    (the base scale is the Gompertz's own), so the covariates carry no intercept there.
+    Names and regressors are given in sorted order: lifelines orders the parameters by
+    name in some places and by the regressors' order in others, and its standard errors
+    come out scaled by the wrong covariates' spreads when the two differ."""
+    _fitted_parameter_names = ["log_rate_", "log_time_", "shape_"]
+
+    def _cumulative_hazard(self, params, T, Xs):
+        rate = anp.exp(anp.dot(Xs["log_rate_"], params["log_rate_"]))
+        shape = anp.dot(Xs["shape_"], params["shape_"])
+        scaled = T * anp.exp(-anp.dot(Xs["log_time_"], params["log_time_"]))
+        return rate * anp.expm1(shape * scaled) / shape
+
+
+def test_gompertz_aft_equals_a_lifelines_custom_model(folder):
+    # the time ratio of the base cannot be told from its rate and shape, so the reference
+    # has no intercept on it and is given the covariates centred, as we centre them
+    frame = load_rossi()[["week", "arrest", *COVARIATES]]
+    frame[list(COVARIATES)] -= frame[list(COVARIATES)].mean()
+    _, fits = our_fits(rossi_file(folder), COVARIATES)
+    fit = fits[("gompertz", "aft")]
+    reference = quiet(GompertzAFT(), frame, "week", "arrest",
+                      regressors={"log_rate_": "1",
+                                  "log_time_": " + ".join(COVARIATES) + " - 1", "shape_": "1"},
+                      initial_point=np.array([-5.6, 0.0, 0.0, 0.0, 0.016]))  # names sorted
+    pairs = [(("log_rate_", "Intercept"), fit.estimate[0], fit.se[0]),
+             (("shape_", "Intercept"), fit.estimate[1], fit.se[1])]
+    pairs += [(("log_time_", name), fit.estimate[2 + k], fit.se[2 + k])
+              for k, name in enumerate(COVARIATES)]
+    assert_same_fit(reference, fit, pairs)
+
+
 def test_proportional_hazards_equal_lifelines_custom_models(folder):
     frame = load_rossi()[["week", "arrest", *COVARIATES]]
     _, fits = our_fits(rossi_file(folder), COVARIATES)
