@@ -14,6 +14,7 @@ import pytest
 from scipy import stats
 from lifelines.datasets import load_rossi
 
+from microsim.cli import main
 from microsim.fitting import scenario_text
 from microsim.fitting.check import simulated_check
 from microsim.fitting.data import read_survival_data
@@ -94,6 +95,19 @@ def test_psa_draws_of_the_written_scenario_carry_the_fit_covariance(fitted, tmp_
             products = centred[:, i] * centred[:, j]
             se = products.std(ddof=1) / math.sqrt(len(x))
             assert abs(products.mean() - fit.covariance[i, j]) < Z * se, (i, j)
+
+
+def test_the_written_scenario_runs_a_psa_from_its_multivariate_normal(fitted, tmp_path):
+    # `microsim run --psa` on the written scenario: its only uncertainty is the group
+    data, fits = fitted
+    fit = fits[("weibull", PH)]
+    path = written(tmp_path, fit, data)
+    assert main(["run", str(path), "--patients", "100", "--psa", "--draws", "3",
+                 "--psa-patients", "20", "--out", str(tmp_path / "out")]) == 0
+    drawn = pd.read_csv(tmp_path / "out" / path.stem / "latest" / "psa_parameters.csv")
+    names = scenario_text.parameter_names(fit, "rearrest")
+    assert len(drawn) == 3 and (drawn[names[:2]] > 0).all().all()
+    assert drawn[names].nunique().eq(3).all()  # every member drawn, none left at its base
 
 
 def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
