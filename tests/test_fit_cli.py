@@ -112,6 +112,7 @@ REFUSALS = [  # (rows of the data file, options, the option named, what the mess
      "already given to --time"),
     ("time,event\n1,1\n2,0\n", ("--form", "ph"), "--form", "give --covariates too"),
     ("time,event\n1,1\n2,0\n", ("--unit", "person years"), "--unit", "a single word"),
+    ("time,event\n1,1\n2,0\n", ("--unit", "fortnights"), "--unit", "not a unit microsim knows"),
     ("time,event\n1,1\n2,0\n", ("--name", "Death"), "--name", "must be a name"),
     ("time,event\n1,1\n2,0\n", ("--horizon", "0"), "--horizon", "above 0"),
     ("time,event\n1,1\n2,0\n", ("--family", "weibul"), "--family", "did you mean 'weibull'"),

@@ -24,7 +24,7 @@ from microsim.fitting.kaplan_meier import kaplan_meier
 from microsim.fitting.tables import covariance_table, models_table, parameters_table
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import IDENTIFIER, did_you_mean
-from microsim.scenario.reader import UNIT_WORD
+from microsim.scenario.reader import UNIT_WORD, YEARS_PER_UNIT
 
 SCENARIO, BLOCK = "fitted_scenario.toml", "fitted_block.toml"
 CHECK_PATIENTS = 5000
@@ -47,6 +47,10 @@ def check_options(unit: str, name: str, family: str | None, form: str | None,
     if not UNIT_WORD.fullmatch(unit):
         raise ScenarioError("--unit", f"must be a single word such as 'years' or 'days', "
                                       f"got {unit!r}")
+    if unit.lower().removesuffix("s") not in YEARS_PER_UNIT:
+        known = ", ".join(f"{u}s" for u in YEARS_PER_UNIT)
+        raise ScenarioError("--unit", f"{unit!r} is not a unit microsim knows ({known}); give "
+                                      "the times in one of them")
     if not IDENTIFIER.fullmatch(name):
         raise ScenarioError("--name", f"must be a name (lowercase letters, digits and "
                                       f"underscores, starting with a letter), got {name!r}")
