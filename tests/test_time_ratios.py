@@ -9,8 +9,7 @@ from scipy import stats
 
 from microsim.patients.multipliers import multipliers
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import analytic_counterpart
-from microsim.results.survival import survival_table
+from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario
 from microsim.simulation import simulate
 from support import (KS_LEVEL, Z, assert_refused, attribute, effect, horizon, model_of,
@@ -181,7 +180,7 @@ def test_simulated_survival_agrees_with_the_forward_equations(hazard):
     model = model_of(text)
     people = draw_population(model.scenario.population, 13)
     sim = simulate(model, people, 13)
-    table = survival_table(sim, analytic_counterpart(sim))
+    table = compare(sim).survival
     assert (table.z.abs() < Z).all(), table
     assert table.simulated.iloc[-1] < 0.9  # events happen
 
