@@ -8,12 +8,14 @@ import hashlib
 import json
 import re
 
+import numpy as np
 import pandas as pd
 import pytest
 from lifelines.datasets import load_rossi
 
 from microsim import CAUTION
 from microsim.cli import main
+from microsim.fitting.data import read_survival_data
 from microsim.scenario import read_scenario
 
 EXIT_BAD_INPUT = 2
@@ -140,16 +142,16 @@ def test_bad_data_and_options_are_refused_in_one_line(tmp_path, capsys, rows, op
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.csv"))
 
 
-def test_a_parquet_file_fits_as_its_csv_does(rossi, tmp_path, capsys):
+def test_a_parquet_file_reads_as_its_csv_does_and_fits(rossi, tmp_path, capsys):
     # reference: the same data written by pandas as CSV and as Parquet (pyarrow)
     parquet = tmp_path / "rossi.parquet"
     load_rossi().to_parquet(parquet)
-    for path in (rossi, parquet):
-        assert fit(path, tmp_path / path.suffix[1:], "--covariates", "fin", "--family",
-                   "loglogistic") == 0
-    tables = [pd.read_csv(tmp_path / kind / "rossi" / "latest" / "fit_models.csv")
-              for kind in ("csv", "parquet")]
-    pd.testing.assert_frame_equal(*tables)
+    columns = ("week", "arrest", ("fin", "prio"), None)
+    csv_data, parquet_data = (read_survival_data(p, *columns) for p in (rossi, parquet))
+    for name in ("time", "event", "entry", "values"):
+        assert np.array_equal(getattr(csv_data, name), getattr(parquet_data, name)), name
+    assert fit(parquet, tmp_path / "out", "--family", "weibull") == 0
+    assert (tmp_path / "out" / "rossi" / "latest" / "fitted_scenario.toml").is_file()
 
 
 def test_a_parquet_file_with_a_missing_time_is_refused(tmp_path, capsys):
