@@ -5,6 +5,7 @@ written scenario back, the Rossi data of lifelines.datasets (load_rossi)."""
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import re
 
@@ -17,6 +18,7 @@ from microsim import CAUTION
 from microsim.cli import main
 from microsim.fitting.data import read_survival_data
 from microsim.scenario import read_scenario
+from test_report import browser  # noqa: F401 (the report's headless Chromium fixture)
 
 EXIT_BAD_INPUT = 2
 
@@ -78,6 +80,36 @@ def test_the_page_is_self_contained_and_shows_the_tables(rossi, tmp_path, capsys
     assert len(mine) == 9  # the written fit's 3 x 3 matrix, each cell tied to its row
     for row in mine.index:
         assert f'data-table="fit_covariance" data-row="{row}"' in page
+
+
+def test_the_page_renders_in_chromium(rossi, tmp_path, browser, capsys):
+    # the report's own check of a page (tests/test_report.py): every figure drawn and not
+    # blank, no console error, the numbers with a data-key equal to fit_summary.json
+    from PIL import Image
+    from selenium.webdriver.common.by import By
+    assert fit(rossi, tmp_path, "--covariates", "fin", "--family", "lognormal") == 0
+    folder = (tmp_path / "rossi" / "latest").resolve()
+    browser.get((folder / "fit.html").as_uri())
+    assert [e for e in browser.get_log("browser") if e["level"] == "SEVERE"] == []
+    figures = browser.find_elements(By.CSS_SELECTOR, "figure[data-figure]")
+    assert [f.get_attribute("data-figure") for f in figures] == ["fit_survival", "fit_hazards",
+                                                                 "fit_check"]
+    for figure in figures:
+        image = figure.find_element(By.TAG_NAME, "img")
+        assert browser.execute_script(
+            "return arguments[0].complete && arguments[0].naturalWidth > 0", image)
+        assert image.rect["width"] > 300 and image.rect["height"] > 150
+        pixels = np.asarray(Image.open(io.BytesIO(image.screenshot_as_png)).convert("L"), float)
+        assert pixels.std() > 10 and 0.005 < (pixels < 200).mean() < 0.6
+    summary = json.loads((folder / "fit_summary.json").read_text())
+    keys = browser.find_elements(By.CSS_SELECTOR, "[data-key]")
+    assert [k.get_attribute("data-key") for k in keys] == ["chosen.label", "check.words"]
+    for element in keys:
+        path = element.get_attribute("data-key").split(".")
+        value = summary
+        for part in path:
+            value = value[part]
+        assert value in element.text
 
 
 def test_a_fit_without_covariates_writes_a_cohort_scenario(rossi, tmp_path, capsys):
