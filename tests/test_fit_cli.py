@@ -121,6 +121,7 @@ def test_a_fit_without_covariates_writes_a_cohort_scenario(rossi, tmp_path, caps
     assert set(scenario.parameters) == {"rearrest_rate", "rearrest_shape"}
 
 
+TINY = "time,event\n1,1\n2,0\n3,1\n4,0\n5,0\n"  # 2 events: too few for 3 parameters
 REFUSALS = [  # (rows of the data file, options, the option named, what the message says)
     ("time,event\n1,1\n2,0\n", ("--time", "tme"), "--time", "no column 'tme'"),
     ("time,event\n1,1\n2,0\n", ("--time", "time", "--event", "Event"), "--event",
@@ -150,6 +151,7 @@ REFUSALS = [  # (rows of the data file, options, the option named, what the mess
     ("time,event\n1,1\n2,0\n", ("--name", "Death"), "--name", "must be a name"),
     ("time,event\n1,1\n2,0\n", ("--horizon", "0"), "--horizon", "above 0"),
     ("time,event\n1,1\n2,0\n", ("--family", "weibul"), "--family", "did you mean 'weibull'"),
+    (TINY, ("--family", "generalised_gamma"), "--family", "no fit converged"),
     ("time,event,x\n1,1,0\n2,0,1\n3,1,1\n", ("--covariates", "x", "--family", "lognormal",
                                              "--form", "ph"), "--form", "choose --form aft"),
 ]
@@ -194,6 +196,20 @@ def test_a_parquet_file_with_a_missing_time_is_refused(tmp_path, capsys):
     line = capsys.readouterr().err.strip()
     assert line.startswith("error: --time: ") and "data row 2" in line and "\n" not in line
     assert not (tmp_path / "out").exists() or not any((tmp_path / "out").rglob("*.csv"))
+
+
+def test_a_model_without_a_maximum_is_ranked_last_and_never_written(tmp_path, capsys):
+    # 2 events cannot pin down the generalised gamma's 3 parameters: its estimates run off
+    # (q to about -4e4); the written fit is the best converged one
+    data = tmp_path / "tiny.csv"
+    data.write_text(TINY)
+    assert main(["fit", str(data), "--time", "time", "--event", "event", "--patients", "300",
+                 "--out", str(tmp_path / "out")]) == 0
+    models = pd.read_csv(tmp_path / "out" / "tiny" / "latest" / "fit_models.csv")
+    last = models.iloc[-1]
+    assert last.family == "generalised_gamma" and not last.converged
+    assert "no maximum found" in last.note and not last.chosen
+    assert models.converged.iloc[:-1].all() and models.chosen.iloc[0]
 
 
 def test_a_missing_file_and_a_file_of_another_kind_are_refused(tmp_path, capsys):

@@ -26,6 +26,9 @@ from microsim.hazards import HazardFamily, TimeScaledHazard
 
 DECREMENT = 1e-8  # converged when the Newton decrement (log-likelihood left to gain) is below
 POLISH_STEPS = 30
+NO_MAXIMUM = ("no maximum found: the estimates ran off towards the edge of the parameter "
+              "space, where the likelihood cannot be differentiated (often too few events for "
+              "the family)")
 NOT_DEFINITE = ("the observed information is not positive definite at the optimum (a flat "
                 "likelihood or an estimate at a boundary): no standard errors")
 
@@ -130,8 +133,8 @@ def fit_model(family: FitFamily, form: str, data: SurvivalData, starts) -> Fit:
         g = gradient(negative, best)
         decrement = float(g @ covariance @ g)
         converged = math.isfinite(value) and decrement < DECREMENT
-        note = "" if converged else (f"the optimiser stopped {decrement:.3g} short in "
-                                     "log-likelihood of the optimum")
+        note = ("" if converged else NO_MAXIMUM if not math.isfinite(decrement) else
+                f"the optimiser stopped {decrement:.3g} short in log-likelihood of the optimum")
     except np.linalg.LinAlgError:
         covariance, converged, note = None, False, NOT_DEFINITE
     return Fit(family, form, covariates, data.centres if covariates else np.zeros(0), best,
