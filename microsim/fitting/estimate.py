@@ -13,7 +13,7 @@ BIC = k log n - 2 log L with n the number of patients (Schwarz 1978).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import optimize
@@ -141,6 +141,19 @@ def fit_model(family: FitFamily, form: str, data: SurvivalData, starts) -> Fit:
                covariance, value, converged, note, data.size, data.events)
 
 
+def in_data_units(fit: Fit, unit: float) -> Fit:
+    """A fit made on time / unit, in the data's own time: the family's parameters move by
+    `FitFamily.in_time_units` (coefficients stay: hazard and time ratios have no unit), the
+    covariance by the same linear map, and log L by -events log(unit) (each event's density
+    is per unit of time; survival probabilities do not change)."""
+    factor, shift = fit.family.in_time_units(unit)
+    k = len(fit.covariates)
+    factor, shift = np.concatenate([factor, np.ones(k)]), np.concatenate([shift, np.zeros(k)])
+    covariance = None if fit.covariance is None else fit.covariance * np.outer(factor, factor)
+    return replace(fit, estimate=factor * fit.estimate + shift, covariance=covariance,
+                   log_likelihood=fit.log_likelihood - fit.events * math.log(unit))
+
+
 def polished(negative, x: np.ndarray) -> np.ndarray:
     """Newton's method on central-difference derivatives, with step halving, from x."""
     current = negative(x)
@@ -166,16 +179,22 @@ def polished(negative, x: np.ndarray) -> np.ndarray:
 def fit_all(data: SurvivalData, families=FIT_FAMILIES) -> list[Fit]:
     """Every family, in every form its covariates allow, ranked: converged fits first, by
     AIC; ties (the exponential and Weibull are the same model in either form) in the order
-    of `families`, proportional hazards first."""
-    rate = crude_rate(data)
+    of `families`, proportional hazards first.
+
+    The fits are made with time in units of the longest follow-up, where every parameter
+    is of order one (a Gompertz shape per day is not), and taken back to the data's unit
+    exactly (`in_data_units`)."""
+    unit = float(data.time.max())
+    scaled = replace(data, time=data.time / unit, entry=data.entry / unit)
+    rate = crude_rate(scaled)
     earlier: dict[tuple[str, str], np.ndarray] = {}
     fits = []
     for family in families:
         for form in family.forms(bool(data.covariates)):
             starts = starting_points(family, form, rate, earlier, len(data.covariates))
-            fit = fit_model(family, form, data, starts)
+            fit = fit_model(family, form, scaled, starts)
             earlier[fit.key] = fit.estimate
-            fits.append(fit)
+            fits.append(in_data_units(fit, unit))
     order = {f.name: i for i, f in enumerate(families)}
     return sorted(fits, key=lambda f: (not f.converged, round(f.aic, 6), order[f.family.name],
                                        f.form != PH))

@@ -23,6 +23,7 @@ from microsim.binding import FAMILIES
 from microsim.hazards import HazardFamily
 
 PH, AFT, NONE = "ph", "aft", "none"  # covariate forms; NONE: a fit without covariates
+LOG_TIME, LOG_RATE, RATE = "log time", "log rate", "rate"  # FitFamily.time_roles
 FORM_WORDS = {PH: "proportional hazards", AFT: "accelerated failure time", NONE: ""}
 
 
@@ -33,6 +34,10 @@ class FitFamily:
     parameters: tuple[str, ...]  # the scenario's keys, in the fit's order
     on_log: tuple[bool, ...]  # estimated on the log scale
     proportional: bool  # admits proportional-hazards covariates
+    # how each fit-scale parameter changes when time is measured in units c times longer:
+    # LOG_TIME gains log c (log scale, meanlog, mu), LOG_RATE loses it (log rate), RATE is
+    # divided by c (the Gompertz shape), "" stays
+    time_roles: tuple[str, ...]
 
     @property
     def name(self) -> str:
@@ -53,19 +58,31 @@ class FitFamily:
         values = self.natural(theta)
         return FAMILIES[self.scenario](**dict(zip(self.parameters, values.tolist())))
 
+    def in_time_units(self, c: float) -> tuple[np.ndarray, np.ndarray]:
+        """(factor, shift) taking fit-scale parameters estimated on time / c to time:
+        theta = factor theta' + shift."""
+        factor = np.array([1.0 / c if role == RATE else 1.0 for role in self.time_roles])
+        shift = np.array([math.log(c) if role == LOG_TIME else -math.log(c) if role == LOG_RATE
+                          else 0.0 for role in self.time_roles])
+        return factor, shift
+
     def forms(self, with_covariates: bool) -> tuple[str, ...]:
         if not with_covariates:
             return (NONE,)
         return (PH, AFT) if self.proportional else (AFT,)
 
 
-EXPONENTIAL = FitFamily("exponential", "constant", ("rate",), (True,), True)
-WEIBULL = FitFamily("Weibull", "weibull", ("shape", "scale"), (True, True), True)
-GOMPERTZ = FitFamily("Gompertz", "gompertz", ("rate", "shape"), (True, False), True)
-LOG_LOGISTIC = FitFamily("log-logistic", "loglogistic", ("shape", "scale"), (True, True), False)
-LOG_NORMAL = FitFamily("log-normal", "lognormal", ("meanlog", "sdlog"), (False, True), False)
+EXPONENTIAL = FitFamily("exponential", "constant", ("rate",), (True,), True, (LOG_RATE,))
+WEIBULL = FitFamily("Weibull", "weibull", ("shape", "scale"), (True, True), True,
+                    ("", LOG_TIME))
+GOMPERTZ = FitFamily("Gompertz", "gompertz", ("rate", "shape"), (True, False), True,
+                     (LOG_RATE, RATE))
+LOG_LOGISTIC = FitFamily("log-logistic", "loglogistic", ("shape", "scale"), (True, True), False,
+                         ("", LOG_TIME))
+LOG_NORMAL = FitFamily("log-normal", "lognormal", ("meanlog", "sdlog"), (False, True), False,
+                       (LOG_TIME, ""))
 GENERALISED_GAMMA = FitFamily("generalised gamma", "generalised_gamma", ("mu", "sigma", "q"),
-                              (False, True, False), False)
+                              (False, True, False), False, (LOG_TIME, "", ""))
 FIT_FAMILIES = (EXPONENTIAL, WEIBULL, GOMPERTZ, LOG_NORMAL, LOG_LOGISTIC, GENERALISED_GAMMA)
 BY_NAME = {f.name: f for f in FIT_FAMILIES}
 
