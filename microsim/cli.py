@@ -566,8 +566,10 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("data", metavar="DATA", help="a CSV or Parquet file, one row per patient")
     fit.add_argument("--time", required=True, help="the column of follow-up times (> 0)")
     fit.add_argument("--event", required=True,
-                     help="the column of events: 1 (the event at that time) or 0 (censored)")
-    fit.add_argument("--covariates", help="columns of numbers, comma-separated (A,B,...)")
+                     help="the column of events: 1 (the event at that time) or 0 (censored); "
+                          "yes/no reads as 1/0")
+    fit.add_argument("--covariates", help="columns of numbers (yes/no reads as 1/0), "
+                     "comma-separated (A,B,...)")
     fit.add_argument("--entry", help="the column of entry times (delayed entry, in [0, time))")
     fit.add_argument("--unit", default="years", help="the unit of the times (default years)")
     fit.add_argument("--family", choices=("exponential", "weibull", "gompertz", "lognormal",

@@ -132,7 +132,7 @@ REFUSALS = [  # (rows of the data file, options, the option named, what the mess
     ("time,event\n1,1\nn/a,0\n3,1\n", (), "--time", "data row 2"),
     ("time,event\n1,1\n0,0\n", (), "--time", "must be above 0"),
     ("time,event\n1,1\n2,2\n", (), "--event", "must be 0 (censored) or 1"),
-    ("time,event\n1,yes\n2,no\n", (), "--event", "holds text"),
+    ("time,event\n1,died\n2,alive\n", (), "--event", "holds text (alive, died)"),
     ("time,event,start\n1,1,0\n2,0,2\n", ("--entry", "start"), "--entry",
      "below the time in column 'time'"),
     ("time,event,x\n1,1,a\n2,0,b\n", ("--covariates", "x"), "--covariates", "holds text"),
@@ -186,6 +186,20 @@ def test_a_parquet_file_reads_as_its_csv_does_and_fits(rossi, tmp_path, capsys):
         assert np.array_equal(getattr(csv_data, name), getattr(parquet_data, name)), name
     assert fit(parquet, tmp_path / "out", "--family", "weibull") == 0
     assert (tmp_path / "out" / "rossi" / "latest" / "fitted_scenario.toml").is_file()
+
+
+def test_yes_no_columns_read_as_one_and_zero(tmp_path):
+    # reference: the population file's typing rule (docs/scenario-format.md): yes/true is
+    # yes; a Parquet boolean column keeps its type
+    text = tmp_path / "words.csv"
+    text.write_text("time,event,treated\n1,yes,TRUE\n2,no,false\n3,Yes,true\n")
+    booleans = tmp_path / "booleans.parquet"
+    pd.DataFrame({"time": [1.0, 2.0, 3.0], "event": [True, False, True],
+                  "treated": [True, False, True]}).to_parquet(booleans)
+    for path in (text, booleans):
+        data = read_survival_data(path, "time", "event", ("treated",))
+        assert data.event.tolist() == [1.0, 0.0, 1.0]
+        assert data.values[:, 0].tolist() == [1.0, 0.0, 1.0]
 
 
 def test_a_parquet_file_with_a_missing_time_is_refused(tmp_path, capsys):

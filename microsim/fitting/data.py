@@ -1,8 +1,8 @@
 """Patient-level time-to-event data for a fit: times, events, delayed entry, covariates.
 
 Read from a CSV or Parquet file with the population file's own reader and typing rules
-(`microsim.scenario.population_file`), and refused in one line naming the option, the
-column and the first data row: an unknown column, a missing value, a time that is not a
+(`microsim.scenario.population_file`; yes/no columns read as 1/0), and refused in one line
+naming the option, the column and the first data row: an unknown column, a missing value, a time that is not a
 number above 0, an event other than 0 or 1, an entry time not in [0, time), no events at
 all, a covariate that is not numbers or takes one value only. Covariates become attributes
 of the scenario a fit writes, so their names must be attribute names (and not `age`, which
@@ -88,11 +88,13 @@ def read_survival_data(path: str | Path, time: str, event: str,
         seen[name] = option
 
     def numbers(option: str, name: str) -> np.ndarray:
+        """A column of numbers; yes/no (true/false, booleans) as 1/0."""
         values, kind = typed_column(name, table[name], where, option)
-        if kind.kind != "continuous":
-            raise ScenarioError(option, f"column {name!r} of {where} holds text; it must hold "
-                                "numbers (a yes/no covariate as 0/1, one 0/1 column per level "
-                                "of a categorical one)")
+        if kind.kind == "categorical":
+            raise ScenarioError(option, f"column {name!r} of {where} holds text "
+                                f"({listing(list(kind.levels)[:4])}); it must hold numbers "
+                                "(yes/no is read as 1/0; give a categorical covariate one 0/1 "
+                                "column per level but one)")
         return values.to_numpy(dtype=float)
 
     times = numbers("--time", time)
