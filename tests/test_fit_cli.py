@@ -214,7 +214,7 @@ def test_a_parquet_file_with_a_missing_time_is_refused(tmp_path, capsys):
 
 def test_a_model_without_a_maximum_is_ranked_last_and_never_written(tmp_path, capsys):
     # 2 events cannot pin down the generalised gamma's 3 parameters: its estimates run off
-    # (q to about -4e4); the written fit is the best converged one
+    # (q to thousands below 0); the written fit is the best converged one
     data = tmp_path / "tiny.csv"
     data.write_text(TINY)
     assert main(["fit", str(data), "--time", "time", "--event", "event", "--patients", "300",

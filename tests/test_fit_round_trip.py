@@ -5,6 +5,7 @@ standard errors: the Wald statistics of replicates against the chi-squared (fixe
 from __future__ import annotations
 
 import math
+from datetime import datetime, timezone
 from functools import lru_cache
 from pathlib import Path
 
@@ -120,6 +121,8 @@ def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
     assert set(run.files) == {"fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv"}
     block = run.files["fitted_block.toml"].read_text()
     assert run.data.sha256 in block and "log-normal" in block
+    assert datetime.now(timezone.utc).date().isoformat() in block  # the date (UTC)
+    assert block in run.files["fitted_scenario.toml"].read_text()  # the scenario read back
     # the block alone is TOML of the scenario's keys: the transition, parameters, the group
     assert "[[transitions]]" in block and "[[uncertainty.multivariate_normal]]" in block
     models = run.tables["fit_models"]
@@ -206,7 +209,7 @@ WEIBULL_TRUTH = 1.4, 12.0, np.array([0.5, -0.3])  # shape, scale, PH coefficient
 def weibull_replicates(tmp_path_factory):
     shape, scale, betas = WEIBULL_TRUTH
     return replicate_fits(tmp_path_factory.mktemp("weibull"), BY_NAME["weibull"], PH,
-                          lambda rng: weibull_ph_data(rng, 300, shape, scale, betas), 40, 21)
+                          lambda rng: weibull_ph_data(rng, 300, shape, scale, betas), 30, 21)
 
 
 def test_known_weibull_ph_parameters_are_recovered_within_their_standard_errors(
@@ -230,7 +233,7 @@ def test_known_lognormal_aft_parameters_are_recovered_under_delayed_entry(tmp_pa
     meanlog, sdlog, betas = 1.5, 0.8, np.array([0.4, 0.25])
     fits = replicate_fits(tmp_path, BY_NAME["lognormal"], AFT,
                           lambda rng: lognormal_aft_data(rng, 300, meanlog, sdlog, betas),
-                          30, 22, entry=True)
+                          20, 22, entry=True)
     # centring moves meanlog to the covariates' means
     assert_recovered(fits, lambda data: np.array([meanlog + data.centres @ betas,
                                                   math.log(sdlog), *betas]))

@@ -26,6 +26,7 @@ from microsim.hazards import HazardFamily, TimeScaledHazard
 
 DECREMENT = 1e-8  # converged when the Newton decrement (log-likelihood left to gain) is below
 POLISH_STEPS = 30
+ITERATIONS = 200  # BFGS steps from a start: fits of real data take under 30; more is a runaway
 NO_MAXIMUM = ("no maximum found: the estimates ran off towards the edge of the parameter "
               "space, where the likelihood cannot be differentiated (often too few events for "
               "the family)")
@@ -119,7 +120,7 @@ def fit_model(family: FitFamily, form: str, data: SurvivalData, starts) -> Fit:
     for start in starts:
         with np.errstate(all="ignore"):
             found = optimize.minimize(negative, start, jac=lambda x: gradient(negative, x),
-                                      method="BFGS", options={"gtol": 1e-7, "maxiter": 2000})
+                                      method="BFGS", options={"gtol": 1e-7, "maxiter": ITERATIONS})
         x = polished(negative, found.x)
         if best is None or negative(x) < negative(best):
             best = x

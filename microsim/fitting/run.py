@@ -8,6 +8,7 @@ simulated survival has been set beside the fitted one.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
@@ -90,8 +91,10 @@ def fit_and_write(path: Path, time: str, event: str, covariates: tuple[str, ...]
     horizon = horizon_for(data) if horizon is None else float(horizon)
     times = grid(horizon)
     files = {SCENARIO: scratch / SCENARIO, BLOCK: scratch / BLOCK}
-    files[BLOCK].write_text(scenario_text.block(chosen, data, name, unit))
-    files[SCENARIO].write_text(scenario_text.scenario(chosen, data, name, unit, horizon, seed))
+    day = datetime.now(timezone.utc).date().isoformat()  # one date for both files
+    files[BLOCK].write_text(scenario_text.block(chosen, data, name, unit, day))
+    files[SCENARIO].write_text(scenario_text.scenario(chosen, data, name, unit, horizon, seed,
+                                                      day))
     if chosen.covariates:
         files[scenario_text.PATIENTS_FILE] = scratch / scenario_text.PATIENTS_FILE
         data.frame().to_csv(files[scenario_text.PATIENTS_FILE], index=False)
