@@ -12,13 +12,30 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
   same rate model, patients and seed (the same records), for Weibull hazards with
   covariates and memory, and for the same with attained age acting on the Weibull hazards
   (a numerical root per draw);
+- the cycle engine against numpy: the demo's patient-cycles per second as the main job
+  simulates them (engine, aggregation, batches of simulation.batch_size), over the
+  uniform numbers per second numpy's default generator fills in the same process;
+- exact against simulated PSA: time per draw of the demo's PSA on the exact basis over
+  the simulated one at the same patients per draw, and the inner noise the exact basis
+  removes (the simulated draw means' noise variance over the between-draw variance);
+- PSA workers: the same PSA's time on one worker process over its time on two;
+- memory: peak resident memory of the main job (no histories) in a fresh process at two
+  population sizes; the growth per patient per strategy is the slope between them;
 - common random numbers: the standard error of incremental QALYs on the demo scenario
   with shared draws, over the same with independent draws for the two strategies.
+
+Targets (issue 8) are printed beside each figure with "met" or "missed".
 """
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
+import tempfile
 import time
+from dataclasses import replace
 from importlib import resources
+from pathlib import Path
 
 import numpy as np
 import simpy
@@ -262,8 +279,100 @@ def crn_ratio(patients: int) -> dict:
     return rows
 
 
+def uniform_rate(repeats: int = 5) -> float:
+    """Uniform numbers per second of numpy's default generator filling a 1M buffer (the
+    median of `repeats`)."""
+    rng, out, rates = np.random.default_rng(1), np.empty(1_000_000), []
+    rng.random(out=out)
+    for _ in range(repeats):
+        started = time.perf_counter()
+        for _ in range(10):
+            rng.random(out=out)
+        rates.append(10 * out.size / (time.perf_counter() - started))
+    return float(np.median(rates))
+
+
+def cycle_against_numpy(patients: int) -> dict:
+    """The demo's patient-cycles per second through `simulate` (the main job's path, in
+    batches of simulation.batch_size) over numpy's uniform rate, measured before and after."""
+    from microsim.patients.population import patients_for
+    scenario = demo_scenario()
+    model = bind(scenario, strategy=strategy_of(scenario))
+    people = patients_for(scenario, patients, 1)
+    before = uniform_rate()
+    started = time.perf_counter()
+    sim = simulate(model, people, seed=1, engine="vectorised",
+                   batch_size=scenario.simulation.batch_size)
+    elapsed = time.perf_counter() - started
+    uniform = (before + uniform_rate()) / 2
+    cycles = int((~model.absorbing[sim.states[:, :-1]]).sum())
+    return {"rate": cycles / elapsed, "uniform": uniform, "ratio": cycles / elapsed / uniform,
+            "seconds": elapsed}
+
+
+def strategy_of(scenario: Scenario) -> str | None:
+    """The demo's last strategy (the one that changes the most), or the model as written."""
+    return scenario.strategies[-1].name if scenario.strategies else None
+
+
+def psa_timings(draws: int, patients: int) -> dict:
+    """Seconds of the demo's PSA: simulated basis on one worker and on two, and the exact
+    basis on one, with the same draws and patients per draw; and the simulated draws'
+    inner noise variance over their between-draw variance (the first strategy against the
+    comparator)."""
+    from microsim.uncertainty.psa import parameter_uncertainty
+    scenario = demo_scenario()
+    scenario = replace(scenario, uncertainty=replace(scenario.uncertainty, evppi=()))
+    exact = replace(scenario, uncertainty=replace(scenario.uncertainty, basis="exact"))
+    seconds, results = {}, {}
+    with tempfile.TemporaryDirectory() as folder:
+        for name, model, workers in (("one", scenario, 1), ("two", scenario, 2),
+                                     ("exact", exact, 1)):
+            started = time.perf_counter()
+            results[name] = parameter_uncertainty(model, Path(folder) / name, draws=draws,
+                                                  patients=patients, workers=workers,
+                                                  progress=False)
+            seconds[name] = time.perf_counter() - started
+    split = results["one"].variance.iloc[0]
+    noise = split.within_draw_variance / split.patients_per_draw
+    return {**seconds, "noise_share": noise / (split.between_draw_variance + noise)}
+
+
+MEMORY_SCRIPT = """
+import resource, sys
+from microsim.benchmark import demo_path
+from microsim.workflow import run_main
+with demo_path() as path:
+    run_main(path, patients=int(sys.argv[1]))
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024)
+"""
+
+
+def demo_path():
+    """The installed demo scenario's path (a context manager)."""
+    return resources.as_file(resources.files("microsim.examples") / DEMO)
+
+
+def peak_memory(patients: int) -> int:
+    """Peak resident bytes of the main job on the demo in a fresh process."""
+    done = subprocess.run([sys.executable, "-c", MEMORY_SCRIPT, str(patients)],
+                          capture_output=True, text=True, check=True)
+    return int(done.stdout.split()[-1])
+
+
+def verdict(value: float, target: float, larger_is_better: bool = True) -> str:
+    met = value >= target if larger_is_better else value <= target
+    return "met" if met else "missed"
+
+
 def main(quick: bool = False) -> int:
     print("microsim benchmark (ratios of timings interleaved in one run)")
+    n = 50_000 if quick else 1_000_000
+    c = cycle_against_numpy(n)
+    print(f"Vectorised cycle engine, demo scenario, {n:,} patients (the main job's path): "
+          f"{c['rate']:,.0f} patient-cycles/s against numpy's {c['uniform']:,.0f} uniforms/s: "
+          f"ratio {c['ratio']:.3f} (target >= 0.03, aim 0.1: "
+          f"{verdict(c['ratio'], 0.03)}; {c['seconds']:.1f} s)")
     e = engine_ratio(patients=1000 if quick else 4000, repeats=1 if quick else 5)
     print(f"SimPy event engine: {e['engine']:,.0f} transitions/s over {e['transitions']:,} "
           f"transitions")
@@ -274,14 +383,31 @@ def main(quick: bool = False) -> int:
     print(f"SimPy cycle engine (demo scenario): {c['simpy']:,.0f} patient-cycles/s; ratio to "
           f"bare single-process SimPy {c['vs_single']:.2f}")
     print(f"Vectorised cycle engine (same histories): {c['vectorised']:,.0f} patient-cycles/s;"
-          f" {c['speedup']:.1f} x the SimPy cycle engine")
+          f" {c['speedup']:.1f} x the SimPy cycle engine (target >= 100: "
+          f"{verdict(c['speedup'], 100)}; at {500 if quick else 2000:,} patients, where the "
+          "vectorised engine's fixed costs weigh most)")
     for attained_age, patients in ((False, 1000 if quick else 5000), (True, 100 if quick else 400)):
         v = event_engines_ratio(patients, repeats=1 if quick else 3, attained_age=attained_age)
         what = ("attained age on the Weibull hazards too (a numerical root per draw)"
                 if attained_age else "Weibull hazards, covariates and memory")
         print(f"Vectorised event engine (same records), {what}: {v['vectorised']:,.0f} "
               f"transitions/s over {v['records']:,}; {v['ratio']:.1f} x the SimPy event engine "
-              f"(target >= 20)")
+              f"(target >= 20: {verdict(v['ratio'], 20)})")
+    draws, per_draw = (4, 300) if quick else (16, 2000)
+    p = psa_timings(draws, per_draw)
+    print(f"PSA of the demo, {draws} draws of {per_draw:,} patients: exact basis "
+          f"{p['one'] / p['exact']:.2f} x as fast as simulated ({p['exact']:.1f} s against "
+          f"{p['one']:.1f} s), and free of the inner noise that is "
+          f"{100 * p['noise_share']:.1f}% of the simulated draws' spread")
+    print(f"PSA with 2 workers: {p['one'] / p['two']:.2f} x as fast as with 1 (target >= 1.8: "
+          f"{verdict(p['one'] / p['two'], 1.8)})")
+    small, large = (20_000, 60_000) if quick else (100_000, 400_000)
+    low, high = peak_memory(small), peak_memory(large)
+    strategies = max(len(demo_scenario().strategies), 1)
+    slope = (high - low) / (large - small) / strategies
+    print(f"Peak memory of the main job (no histories): {low / 2**20:,.0f} MB at {small:,} "
+          f"patients, {high / 2**20:,.0f} MB at {large:,}: {slope:,.0f} bytes per patient per "
+          f"strategy (target <= 200: {verdict(slope, 200, larger_is_better=False)})")
     for name, ratio in crn_ratio(patients=500 if quick else 2000).items():
         print(f"Common random numbers, {name}: SE of incremental QALYs is {ratio:.2f} x that "
               f"with independent streams (variance x {ratio ** 2:.2f})")

@@ -14,6 +14,7 @@ from microsim.hazards import (ConstantHazard, GeneralisedGammaHazard, GompertzHa
                               HazardFamily, LogLogisticHazard, LogNormalHazard,
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
+from microsim.scenario.formulas import with_derived
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
@@ -125,6 +126,15 @@ class BoundModel:
     values: Mapping[str, float]
     years_per_unit: float  # life years and QALYs are counted in years
     treatment: Treatment | None = None
+    # start effects: (state, effect) multiplying the odds of starting in the state
+    start_effects: tuple[tuple[int, BoundEffect], ...] = ()
+    # with treatment phases (`treatment_phases`): the model state each state is a copy of
+    entered_names: tuple[str, ...] | None = None
+
+    def entered(self, state: int) -> str:
+        """The name memory counts an entry into `state` under: its own, or for a copy of
+        a state in a treatment phase, the state's."""
+        return self.states[state] if self.entered_names is None else self.entered_names[state]
 
     @property
     def n_states(self) -> int:
@@ -143,9 +153,15 @@ class BoundModel:
         return np.arange(self.n_cycles + 1) * self.cycle
 
 
-def per_unit(yearly: float, years_per_unit: float) -> float:
-    """An effective discount rate per year as the same rate per time unit:
-    (1 + d)^(years per unit) - 1, so the factor at t units is (1 + d)^-(t years)."""
+def per_unit(yearly: float, years_per_unit: float, discounting: str = "annual") -> float:
+    """A yearly discount rate as the effective rate per time unit that every outcome
+    integral reads (the factor at t units is (1 + rate)^-t): an effective yearly rate d
+    gives (1 + d)^(years per unit) - 1, so the factor is (1 + d)^-(t years); an
+    instantaneous ("continuous") yearly rate r gives exp(r years per unit) - 1, so the
+    factor is exp(-r t years) (continuous discounting, e.g. Briggs, Claxton & Sculpher 2006,
+    "Decision Modelling for Health Economic Evaluation"; from memory)."""
+    if discounting == "continuous":
+        return float(np.expm1(yearly * years_per_unit))
     if years_per_unit == 1.0:
         return yearly
     return float(np.expm1(years_per_unit * np.log1p(yearly)))
@@ -165,6 +181,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     if unknown:
         raise KeyError(f"values for undefined parameters: {sorted(unknown)}")
     resolved.update(values or {})
+    resolved = with_derived(scenario.parameters, resolved)  # always from their inputs
     index = {name: i for i, name in enumerate(scenario.state_names)}
 
     def number(ref: Ref) -> float:
@@ -214,12 +231,12 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
 
     risks = [risk(t, t.name, index[t.source], index[t.target]) for t in scenario.transitions]
     for event in scenario.events:
-        risks += [risk(event, event.name, index[s], None) for s in event.states]
+        risks += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
 
     states = scenario.states
     outcomes = scenario.outcomes
     treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, number)
-    return BoundModel(
+    model = BoundModel(
         scenario=scenario,
         states=scenario.state_names,
         absorbing=np.array([s.absorbing for s in states]),
@@ -232,26 +249,50 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         cycle=scenario.time.cycle,
         n_cycles=scenario.time.n_cycles,
         lifetime=scenario.time.horizon is None,
-        discount_costs=per_unit(outcomes.discount_costs, scenario.time.years_per_unit),
-        discount_effects=per_unit(outcomes.discount_effects, scenario.time.years_per_unit),
+        discount_costs=per_unit(outcomes.discount_costs, scenario.time.years_per_unit,
+                                outcomes.discounting),
+        discount_effects=per_unit(outcomes.discount_effects, scenario.time.years_per_unit,
+                                  outcomes.discounting),
         years_per_unit=scenario.time.years_per_unit,
         correction=outcomes.correction,
         probability_rule=scenario.time.probability_rule,
         values=resolved,
         treatment=treatment,
+        start_effects=tuple((index[e.state], effect(e)) for e in scenario.start.effects),
     )
+    if spec is None or not spec.phased:
+        return model
+    from microsim.treatment_phases import Line, with_phases
+    lines = [Line(spec.name, spec.stop_on, treatment.on_factor, treatment.extra_cost,
+                  treatment.extra_utility)]
+    lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
+                                                          number)) for line in spec.then]
+    return with_phases(model, spec.start_on, lines)
 
 
 def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number) -> Treatment | None:
     """The numbers of a strategy's treatment; None when it changes nothing."""
-    if not (spec.changes or spec.transitions):
+    if not (spec.changes or spec.transitions or spec.phased):
         return None
-    on = np.ones(len(risks))
+    on, cost, utility = bind_changes(spec.changes, risks, scenario, index, number)
     off = np.ones(len(risks))
+    added = {t.name for t, gated in zip(spec.transitions, spec.while_treated) if gated}
+    for r, risk in enumerate(risks):
+        if risk.name in added:
+            off[r] = 0.0
+    return Treatment(spec.name, spec.eligible, number(spec.uptake), spec.start,
+                     np.inf if spec.stop is None else spec.stop, number(spec.discontinuation),
+                     on, off, cost, utility)
+
+
+def bind_changes(changes, risks, scenario: Scenario, index, number) -> tuple[np.ndarray, ...]:
+    """What a treatment's changes do in numbers: each risk's hazard multiplier, and the
+    cost and utility added in each state."""
+    on = np.ones(len(risks))
     cost = np.zeros(len(scenario.states))
     utility = np.zeros(len(scenario.states))
     alive = np.array([not s.absorbing for s in scenario.states])
-    for change in spec.changes:
+    for change in changes:
         if change.risk is not None:
             hit = [r for r, risk in enumerate(risks)
                    if change.risk in (risk.name, f"{scenario.states[risk.source].name}->"
@@ -261,10 +302,4 @@ def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number)
             where = alive if change.state is None else np.arange(len(alive)) == index[change.state]
             cost[where] += number(change.cost)
             utility[where] += number(change.utility)
-    added = {t.name for t, gated in zip(spec.transitions, spec.while_treated) if gated}
-    for r, risk in enumerate(risks):
-        if risk.name in added:
-            off[r] = 0.0
-    return Treatment(spec.name, spec.eligible, number(spec.uptake), spec.start,
-                     np.inf if spec.stop is None else spec.stop, number(spec.discontinuation),
-                     on, off, cost, utility)
+    return on, cost, utility

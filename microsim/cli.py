@@ -114,7 +114,8 @@ def cohort_note(scenario) -> str:
         return ("\nNote: the cohort ignores [arrivals] and [[resources]]: it follows one "
                 "patient who never waits; `microsim run` simulates the service with its "
                 "queues.")
-    if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events):
+    if any(t.effects for t in scenario.transitions) or any(e.effects for e in scenario.events) \
+            or scenario.start.effects:
         return ("\nNote: one uniform cohort, every patient given the population's mean "
                 "attributes (the 'average patient'); `microsim validate` or `run` simulates "
                 "the heterogeneous population and shows how far this cohort is from it.")
@@ -163,7 +164,7 @@ def command_summary(args) -> int:
 
 
 PSA_OPTIONS = ("draws", "psa_patients", "workers", "backend", "address", "invalid_draws",
-               "evppi", "evpi_years", "evpi_discount")
+               "evppi", "evpi_years", "evpi_discount", "basis")
 ANALYSIS_OPTIONS = {"psa": ("the PSA", PSA_OPTIONS),
                     "sensitivity": ("the sensitivity analysis", ("two_way", "break_even", "grid")),
                     "budget": ("the budget impact", ("budget_years", "prevalent_patients"))}
@@ -537,6 +538,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--invalid-draws", choices=INVALID_DRAWS,
                      help="what the PSA does with a draw whose values or rows are invalid "
                           "(default: the scenario's uncertainty.invalid_draws, else refuse)")
+    run.add_argument("--basis", help="PSA: 'exact' evaluates each draw on the patients' "
+                     "analytic expectations (no inner noise; models with an exact "
+                     "counterpart), 'simulated' simulates it (uncertainty.basis)")
     run.add_argument("--evppi", action="append", metavar="NAME[,NAME]",
                      help="PSA: also the EVPPI of this parameter or group (repeat for more; "
                           "uncertainty.evppi)")

@@ -40,7 +40,8 @@ def summary(result: MainResult) -> dict:
             "subgroups": records(d.subgroups), "precision": records(d.precision)})
     if result.psa is not None:
         p = result.psa
-        out["psa"] = {"draws": int(p.draws.shape[0]), "outcomes": records(p.outcomes)}
+        out["psa"] = {"draws": int(p.draws.shape[0]), "basis": p.basis,
+                      "outcomes": records(p.outcomes)}
         if p.note is not None:
             out["psa"]["note"] = p.note
         else:
@@ -49,7 +50,7 @@ def summary(result: MainResult) -> dict:
             out["psa"].update({
                 "acceptability_at_threshold": records(at[at.threshold == near]),
                 "evpi_at_threshold": records(p.evpi[p.evpi.threshold == near]),
-                "variance_split": records(p.variance)})
+                "variance_split": None if p.variance is None else records(p.variance)})
             if "probability_best_noise_removed" in at:
                 out["psa"]["noise_removed"] = NOISE_REMOVED
             if p.evppi is not None:
@@ -112,8 +113,9 @@ def print_summary(result: MainResult) -> None:
         print(f"\nAverage patient ({name}): {v.average_verdict}")
     if result.psa is not None:
         p = result.psa
-        show(f"PSA ({len(p.draws)} draws): mean per patient over the draws and the 95% interval "
-             "of the draws (2.5th to 97.5th percentile); costs discounted", p.outcomes)
+        show(f"PSA ({len(p.draws)} draws; {p.basis}): mean per patient over the draws and the "
+             "95% interval of the draws (2.5th to 97.5th percentile); costs discounted",
+             p.outcomes)
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -133,7 +135,8 @@ def print_summary(result: MainResult) -> None:
                  "over the draws)", rows.drop(columns=["method", "edf"]))
             for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):
                 print(f"  {group}: {method}")
-        show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
+        if p.variance is not None:
+            show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
         print(f"\n{changed_draws(p)}")
 
 

@@ -130,7 +130,8 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         part = slice(lo, lo + batch_size)
         batch = mult.take(part)
         h = engine(model, batch, ids[part], seed)
-        states.append(aggregate.grid_states(h, grid))
+        on_points = h.cycle_states is not None and np.array_equal(grid, model.times)
+        states.append(h.cycle_states if on_points else aggregate.grid_states(h, grid))
         cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
         exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
         transitions += int(np.sum(h.risk >= 0))

@@ -18,6 +18,7 @@ from microsim.capacity.run import refuse_options, run_service
 from microsim.cohort.summaries import cohort_trace
 from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_frame,
                                           strategy_names, treated_count)
+from microsim.progress import progress
 from microsim.patients.population import (DEFAULT_PATIENTS, PATIENT, scenario_patients,
                                           subgroup_attributes)
 from microsim.results.comparison import Comparison, ComparisonSums
@@ -58,7 +59,8 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
             for label, model in models.items()}
     outcomes, people, treated = [], [], Counter()
     batch = scenario.simulation.batch_size
-    with HistoryFile(histories) if histories is not None else nullcontext() as file:
+    with (HistoryFile(histories) if histories is not None else nullcontext()) as file, \
+            progress(n * len(models), "Patients simulated", "patient") as bar:
         for lo in range(0, n, batch):
             patients = scenario_patients(scenario, seed, np.arange(lo, min(n, lo + batch)))
             for label, model in models.items():
@@ -67,6 +69,7 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
                 sums[label].add(sim)
                 outcomes.append(outcome_frame(label, sim))
                 treated[label] += treated_count(sim)
+                bar.update(len(patients))
             people.append(patients[[PATIENT, *subgroup_attributes(patients)]])
     return PopulationRun(n, pd.concat(outcomes, ignore_index=True),
                          pd.concat(people, ignore_index=True), dict(treated),
@@ -154,7 +157,9 @@ def result_tables(scenario, validations, decision, psa) -> dict[str, pd.DataFram
                        "psa_outcomes": psa.outcomes, "psa_changed_draws": psa.changed})
         if psa.note is None:
             tables.update({"acceptability": psa.acceptability, "evpi": psa.evpi,
-                           "ce_plane": psa.plane, "psa_variance": psa.variance})
+                           "ce_plane": psa.plane})
+            if psa.variance is not None:
+                tables["psa_variance"] = psa.variance
             if psa.evppi is not None:
                 tables["evppi"] = psa.evppi
     return tables

@@ -88,6 +88,7 @@ class Draft:
         self.features: set[str] = {kind}
         self.ways: list[Way] = []
         self.values: dict[str, float] = {}
+        self.derived: dict[str, dict] = {}  # derived parameters: {"formula": ...}
         self.exact = True
         self.heterogeneous = False
         self.attributes: list[str] = []
@@ -117,6 +118,17 @@ class Draft:
     def parameter(self, name: str, value: float) -> str:
         self.values[name] = float(value)
         return name
+
+    def state_cost(self, s: str) -> float | str:
+        """A state's cost per time unit: a number, or (in the last living state) a derived
+        parameter, a unit cost times a count of visits; one draw either way, so the rest of
+        the model is drawn as before."""
+        if s == self.alive[-1]:
+            self.features.add("derived parameter")
+            self.derived[f"cost_{s}"] = {"formula": f"{self.uniform(0, 250, 2)} * visits"}
+            self.values.setdefault("visits", 4.0)
+            return f"cost_{s}"
+        return self.uniform(0, 1000, 1)
 
     def hazard_level(self) -> float:
         """A rate such that a few occurrences happen over the horizon."""
@@ -303,6 +315,9 @@ class Draft:
             fields["discontinuation"] = self.uniform(0.05, 0.3, 3) / self.cycle
             self.features.add("discontinuation")
             self.heterogeneous = True
+        elif len(self.alive) > 1 and self.chance(0.3):
+            fields["start_on"] = self.pick(self.alive[1:])
+            self.features.add("treatment on entering a state")
         changes = []
         if changeable and (self.chance(0.8) or not addable):
             way = self.pick(changeable)
@@ -362,28 +377,40 @@ class Draft:
                            lifetime_cap=self.end)
         else:
             time = section("time", unit=self.unit, cycle=self.cycle, horizon=self.end)
-        blocks = [time, start(age=self.start_age, **self.shares)]
-        blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.uniform(0, 1000, 1))
+        blocks = [time, self.start_block()]
+        blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.state_cost(s))
                    for s in self.alive]
         blocks += [state(s, absorbing=True) for s in self.absorbing]
         for way in self.ways:
             if way.added:
                 continue
             if way.target is None:
-                blocks.append(event(EVENT, list(way.states), cost=self.uniform(0, 300, 1),
-                                    disutility=self.uniform(0, 0.05, 3), **self.way_fields(way)))
+                fields = self.way_fields(way)
+                states = list(way.states)
+                if len(states) > 1 and self.chance(0.5):
+                    kind = "probability" if self.cycles else "rate"
+                    value = self.values[way.parameter]
+                    fields[kind] = {states[0]: way.parameter, **{
+                        s: round(value * self.uniform(0.3, 1.0), 6) for s in states[1:]}}
+                    states = None
+                    self.features.add("event by state")
+                blocks.append(event(EVENT, states, cost=self.uniform(0, 300, 1),
+                                    disutility=self.uniform(0, 0.05, 3), **fields))
             else:
                 blocks.append(transition(way.source, way.target, cost=self.uniform(0, 300, 1),
                                          **self.way_fields(way)))
-        blocks.append(parameters(**self.values))
+        blocks.append(parameters(**self.values, **self.derived))
         tables = {w.table[0]: w.table for w in self.ways if w.table}
         blocks += [table(name, by=by, starts=starts, values=values)
                    for name, by, starts, values in tables.values()]
         corrections = ("half-cycle", "none", "trapezoidal") + (
             ("simpson",) if self.n_cycles % 2 == 0 else ())
-        blocks.append(outcomes(discount_costs=self.pick((0.0, 0.035)),
-                               discount_effects=self.pick((0.0, 0.015)),
-                               correction=self.pick(corrections)))
+        costs, effects = self.pick((0.0, 0.035)), self.pick((0.0, 0.015))
+        discounting = "continuous" if costs and effects else None  # no extra draw
+        if discounting:
+            self.features.add("continuous discounting")
+        blocks.append(outcomes(discount_costs=costs, discount_effects=effects,
+                               correction=self.pick(corrections), discounting=discounting))
         if self.attributes:
             blocks.append(self.population_block(size))
         if self.strategy is not None:
@@ -392,8 +419,22 @@ class Draft:
         return scenario_text(*blocks, title="random calibration model",
                              provenance="invented at random for the calibration test")
 
+    def start_block(self) -> str:
+        """[start], with the odds of starting in the second state depending on an attribute
+        in some models."""
+        effects = []
+        if len(self.shares) == 2 and self.attributes and self.chance(0.4):
+            name, second = self.pick(self.attributes), list(self.shares)[1]
+            fields = dict(centre=60.0) if name == "age" else dict(centre=1.0) \
+                if name == "marker" else dict(level=self.pick(GROUPS)) if name == "group" else {}
+            effects.append(nested(state=second, attribute=name, odds_ratio=self.ratio(0.3, 3.0),
+                                  **fields))
+            self.features.add("start shares by attribute")
+        return section("start", age=self.start_age, shares=self.shares, effects=effects or None)
+
     def finish(self, name: str, size: int, perturbations) -> RandomModel:
-        return RandomModel(name, self.kind, frozenset(self.features), self.text(size),
+        text = self.text(size)  # first: writing the text adds features of its own
+        return RandomModel(name, self.kind, frozenset(self.features), text,
                            self.strategy, size, self.exact, tuple(perturbations),
                            self.heterogeneous)
 

@@ -226,3 +226,31 @@ def assert_moments_match(sample: np.ndarray, mean: float, variance: float):
     z_variance = (sample_variance - variance) / math.sqrt(((centred**4).mean() - sample_variance**2) / n)
     assert abs(z_mean) < Z, z_mean
     assert abs(z_variance) < Z, z_variance
+
+
+# ------------------------------------------------------------------ engine identity
+
+def assert_engines_agree(model, ids, seed, rtol: float = 0.0):
+    """The vectorised engine gives the SimPy engine's histories for `model` (cycle or rate
+    model): records equal, times equal (or within `rtol`, for rate models), and every risk
+    that is recorded (staying put is not) happens at least once, so an equality of empty histories cannot pass."""
+    import pandas as pd
+    from microsim.engines.cycle_engine import simulate_cycles
+    from microsim.engines.event_engine import simulate_events
+    from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
+    from microsim.engines.vectorised_events import simulate_events_vectorised
+    from microsim.patients.population import PATIENT, draw_population
+    from microsim.patients.treatment import patient_multipliers
+    spec = model.scenario.population
+    patients = (pd.DataFrame({PATIENT: ids}) if spec is None
+                else draw_population(spec, seed, ids))
+    mult = patient_multipliers(model, patients, seed)
+    pair = ((simulate_cycles, simulate_cycles_vectorised) if model.discrete
+            else (simulate_events, simulate_events_vectorised))
+    expected, got = (engine(model, mult, ids, seed) for engine in pair)
+    for name in ("patient", "source", "target", "risk"):
+        assert np.array_equal(getattr(expected, name), getattr(got, name)), name
+    np.testing.assert_allclose(got.time, expected.time, rtol=rtol, atol=0)
+    recorded = {r for r, risk in enumerate(model.risks) if risk.target != risk.source}
+    assert recorded <= set(got.risk.tolist()), "some risk never happens"
+    return expected

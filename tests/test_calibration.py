@@ -86,8 +86,9 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "gompertz on since start", "gompertz on age", "table by age", "table by time",
               "table by time in state", "attained-age effect", "event", "strategy",
               "eligibility", "uptake", "discontinuation", "hazard ratio", "added transition",
-              "semi-Markov", "lognormal on since start", "generalised_gamma on since start",
-              "time ratio"]
+              "semi-Markov", "event by state", "start shares by attribute",
+              "treatment on entering a state", "lognormal on since start",
+              "generalised_gamma on since start", "time ratio"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 

@@ -37,3 +37,18 @@ def test_the_demo_runs_for_a_large_population(tmp_path):
                  "--out", str(tmp_path)]) == 0
     manifest = json.loads((tmp_path / "lakemoor_kidney" / "latest" / "manifest.json").read_text())
     assert manifest["verdict"].startswith("The simulation agrees")
+
+
+LUNG = Path(__file__).parents[1] / "scenarios" / "marshdale_lung_pathway.toml"
+
+
+def test_the_lung_pathway_demo_runs_and_agrees(tmp_path):
+    # two causes of death, exacerbations by state, start shares by a score and treatment
+    # on entering a state (with a sequence): every strategy's simulation against its exact
+    # per-patient counterpart, at the comparison's own family-wise level
+    assert main(["run", str(LUNG), "--patients", "600", "--seed", "5",
+                 "--out", str(tmp_path)]) == 0
+    summary = json.loads((tmp_path / "marshdale_lung_pathway" / "latest" / "summary.json")
+                         .read_text())
+    assert {name: v["agrees"] for name, v in summary["validation"].items()} == {
+        "usual_care": True, "maintenance": True, "sequence": True}

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.cohort.cycle_matrices import cycle_arrays
+from microsim.cohort.cycle_matrices import cycle_moves
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.exponentials import exponential_rows
 from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
@@ -50,15 +50,18 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     batch = mult.log_static.shape[0]
     # state-major with patients last (pi (E, B), matrices (E, E, B)): every product runs
     # over contiguous patients
-    pi = np.repeat(exp.start()[:, None], batch, axis=1)
+    pi = exp.start_rows(mult.start, batch).T.copy()
     expanded = [pi]
     flows_per_cycle = []
     for n in range(model.n_cycles):
-        P, risk_p = cycle_arrays(exp, n, mult)
-        flows_per_cycle.append(np.einsum("eb,erb->br", pi, risk_p))
-        pi = np.einsum("eb,efb->fb", pi, P)
+        moves, risk_p = cycle_moves(exp, n, mult)
+        flows_per_cycle.append((pi[:, None, :] * risk_p).sum(axis=0).T)
+        following = np.zeros_like(pi)
+        for e, f, weight in moves:  # the product with the sparse matrix, entry by entry
+            following[f] += pi[e] * weight
+        pi = following
         expanded.append(pi)
-    trace = np.einsum("teb,es->bts", np.array(expanded), exp.collapse())
+    trace = (np.array(expanded).transpose(0, 2, 1) @ exp.collapse()).transpose(1, 0, 2)
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
     on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)
     occupancy = np.empty((batch, model.n_states, 3))

@@ -52,17 +52,29 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
 
 def cycle_arrays(exp: Expansion, n: int, mult: Multipliers):
     """`cycle_matrices` with the patients last: (E, E, B) and (E, R, B)."""
+    moves, risk_p = cycle_moves(exp, n, mult)
+    P = np.zeros((exp.size, exp.size, risk_p.shape[2]))
+    for e, f, weight in moves:
+        P[e, f] += weight
+    return P, risk_p
+
+
+def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
+    """The nonzero entries of cycle n's transition matrices, as (from, to, weight per
+    patient) with repeats summed by the user, and each risk's probability (E, R, B): a
+    sparse form, since a row reaches few expanded states and a product with it then costs
+    its entries only. Absorbing states keep their patients (weight 1.0)."""
     model = exp.model
     time = n * model.cycle
     m_all = mult.at(time)
     batch = m_all.shape[0]
     ages = None if mult.entry_age is None else mult.entry_age + time
-    # built state-major, patients last, so each entry is one contiguous run of patients
-    P = np.zeros((exp.size, exp.size, batch))
+    # state-major, patients last, so each entry is one contiguous run of patients
+    entries = []
     risk_p = np.zeros((exp.size, len(model.risks), batch))
     for e, (i, d, counts) in enumerate(exp.expanded):
         if model.absorbing[i]:
-            P[e, e] = 1.0
+            entries.append((e, e, 1.0))
             continue
         row = [(r, risk) for r, risk in enumerate(model.risks) if risk.source == i]
         combined = model.probability_rule == COMPETING and sum(
@@ -114,5 +126,5 @@ def cycle_arrays(exp: Expansion, n: int, mult: Multipliers):
                     weight = weight * (pe if happened else 1.0 - pe)
                     if happened:
                         occurred.append(event)
-                P[e, exp.target(i, d, counts, j, tuple(occurred))] += weight
-    return P, risk_p
+                entries.append((e, exp.target(i, d, counts, j, tuple(occurred)), weight))
+    return entries, risk_p

@@ -121,7 +121,7 @@ class Expansion:
     def entry(self, state: int) -> int:
         """The expanded state of a patient who starts in `state`: duration 0, and starting
         there counts as an entry at time 0 (count 1, 0 cycles since)."""
-        name = self.model.states[state]
+        name = self.model.entered(state)
         counts = tuple(min(int(c.after == name), c.cap) for c in self.counters)
         since = tuple(0 if c.after == name else c.cap for c in self.recencies)
         return self.index(state, 0, counts + since)
@@ -133,6 +133,16 @@ class Expansion:
             if share > 0:
                 p[self.entry(i)] += share
         return p
+
+    def start_rows(self, start: np.ndarray | None, rows: int) -> np.ndarray:
+        """(rows, E) initial distributions: the model's for every row, or each row's own
+        start shares over the model's states (`Multipliers.start`, (rows, S))."""
+        if start is None:
+            return np.broadcast_to(self.start(), (rows, self.size)).copy()
+        entries = np.zeros((self.model.n_states, self.size))
+        entries[np.arange(self.model.n_states),
+                [self.entry(i) for i in range(self.model.n_states)]] = 1.0
+        return start @ entries
 
     def memory_factor(self, risk: BoundRisk, counts: tuple[int, ...]) -> float:
         """The product of a risk's memory multipliers in expanded state `counts`."""
@@ -157,9 +167,8 @@ class Expansion:
         models) or one jump (rate models): a counter adds its hits; a recency restarts
         at 0 on a hit and otherwise ages by a cycle. An occurrence hits its own name and,
         for a move to another state, that state's name (its entries)."""
-        states = self.model.states
         hits = [risk.name for risk in occurred] + [
-            states[risk.target] for risk in occurred
+            self.model.entered(risk.target) for risk in occurred
             if risk.target is not None and risk.target != source]
         n = len(self.counters)
         return (tuple(min(k + hits.count(c.after), c.cap) for k, c in zip(counts, self.counters))

@@ -99,7 +99,7 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     blocks = {delta: van_loan(Q, delta, dt) for delta in distinct}
     propagate = blocks[0.0][0] if 0.0 in blocks else van_loan(Q, 0.0, dt)[0]
     collapse = exp.collapse()
-    pi = np.broadcast_to(exp.start(), (B, E)).copy()
+    pi = exp.start_rows(mult.start, B)
     history = np.empty((B, nodes.shape[1], E))
     history[:, 0] = pi
     occupancy = np.zeros((B, E, 3))

@@ -94,7 +94,7 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
                                d_count.reshape(batch, -1)], axis=1).ravel()
 
     y0 = np.zeros((batch, sum(sizes)))
-    y0[:, :E] = exp.start()
+    y0[:, :E] = exp.start_rows(mult.start, batch)
     solution = solve_ivp(derivative, (times[0], times[-1]), y0.ravel(), method="DOP853",
                          t_eval=times, rtol=RTOL, atol=ATOL)
     if not solution.success:

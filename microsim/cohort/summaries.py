@@ -107,7 +107,7 @@ def chain_matrix(exp: Expansion, mult: Multipliers) -> np.ndarray:
 
 def entered_afresh(model: BoundModel, state: int) -> BoundModel:
     """The model with everyone in `state` at time 0, its memory as on entering it."""
-    return replace(model, start=np.eye(model.n_states)[state])
+    return replace(model, start=np.eye(model.n_states)[state], start_effects=())
 
 
 def transient_states(model: BoundModel) -> list[int]:

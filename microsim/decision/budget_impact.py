@@ -42,7 +42,6 @@ from microsim.scenario.spec import Scenario
 
 EXACT = "exact: the patients' analytic expectations"
 SIMULATED = "simulated with common random numbers, with Monte-Carlo SE"
-YEAR_UNITS = ("year", "years")
 
 
 def cohort_weights(prevalent: float, incidence) -> np.ndarray:
@@ -56,11 +55,8 @@ def cohort_weights(prevalent: float, incidence) -> np.ndarray:
 
 
 def units_per_year(scenario: Scenario) -> float:
-    """A budget year in the scenario's time unit (only years for now)."""
-    if scenario.time.unit.lower() not in YEAR_UNITS:
-        raise ScenarioError("time.unit", f"budget impact counts calendar years, and the "
-                            f"model's unit is {scenario.time.unit!r}; give the model in years")
-    return 1.0
+    """A budget year in the scenario's time unit (time.years_per_unit is a unit in years)."""
+    return 1.0 / scenario.time.years_per_unit
 
 
 def cut_at(scenario: Scenario, years: int) -> Scenario:

@@ -82,7 +82,8 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     slopes = mult.age_slope.tolist()
     statics = plan.static_multipliers(mult)
     ages = [0.0] * len(patient_ids) if mult.entry_age is None else mult.entry_age.tolist()
-    starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE))
+    starts = plan.start_states(model, streams.uniforms(seed, patient_ids, plan.START_PURPOSE),
+                               mult)
     absorbing = model.absorbing.tolist()
     ids = np.asarray(patient_ids).tolist()
     cycle, n_cycles = model.cycle, model.n_cycles

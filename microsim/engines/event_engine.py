@@ -80,7 +80,8 @@ class Batch:
         # a state with no way out and no event is not simple: the general path keeps its
         # patients there to the horizon
         self.simple = [bool(rs) and all(self.is_simple(r) for r in rs) for rs in self.from_state]
-        self.starts = plan.start_states(model, streams.uniforms(seed, self.ids, plan.START_PURPOSE))
+        self.starts = plan.start_states(model, streams.uniforms(seed, self.ids, plan.START_PURPOSE),
+                                        mult)
         e = -np.log(streams.block(seed, self.ids, self.purposes, DEPTH))  # (B, R, DEPTH)
         self.times, self.winners = self.simple_rounds(e)
         self.draws = {r: e[:, r].tolist() for rs, simple in zip(self.from_state, self.simple)

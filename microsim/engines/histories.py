@@ -42,6 +42,9 @@ class Histories:
     target: np.ndarray
     risk: np.ndarray
     n_patients: int
+    # (n_patients, cycles + 1) state at each cycle point, from an engine that has it at
+    # hand (the vectorised cycle engine), so it need not be rebuilt from the records
+    cycle_states: np.ndarray | None = None
 
     def table(self, patients, state_names, risk_names, strategy: str | None = None,
               window=None) -> pa.Table:
@@ -78,7 +81,7 @@ class Histories:
         return table
 
 
-def from_records(records, n_patients: int) -> Histories:
+def from_records(records, n_patients: int, cycle_states: np.ndarray | None = None) -> Histories:
     """Histories from the vectorised engines' records, each (patient rows, time, from state,
     to state, risk) with scalars or arrays over those rows: grouped by patient, and within a
     patient in the order they were made in (time order, events before the transition at the
@@ -93,4 +96,5 @@ def from_records(records, n_patients: int) -> Histories:
     keys = patients.astype(np.uint16) if n_patients <= 2**16 else patients
     order = np.argsort(keys, kind="stable")
     return Histories(patients[order], column(1, float)[order], column(2, np.int16)[order],
-                     column(3, np.int16)[order], column(4, np.int32)[order], n_patients)
+                     column(3, np.int16)[order], column(4, np.int32)[order], n_patients,
+                     cycle_states)

@@ -32,7 +32,7 @@ def bumps(model: BoundModel, tracked: tuple[str, ...]) -> list[tuple[int, ...]]:
     for risk in model.risks:
         hit = {risk.name}
         if risk.target is not None and risk.target != risk.source:
-            hit.add(model.states[risk.target])
+            hit.add(model.entered(risk.target))
         out.append(tuple(k for k, name in enumerate(tracked) if name in hit))
     return out
 
@@ -104,8 +104,13 @@ def patient_views(views: list[RiskView], mult: Multipliers, b: int) -> list[Risk
     return [view if ratio == 1.0 else view.scaled(ratio) for view, ratio in zip(views, ratios)]
 
 
-def start_states(model: BoundModel, u: np.ndarray) -> list[int]:
-    """Each patient's starting state, from its own 'start' uniform and the start shares."""
+def start_states(model: BoundModel, u: np.ndarray, mult: Multipliers) -> list[int]:
+    """Each patient's starting state, from its own 'start' uniform and the start shares
+    (the patient's own when they depend on its attributes)."""
+    if mult.start is not None:
+        cumulative = np.cumsum(mult.start, axis=1)
+        cumulative[:, -1] = 1.0
+        return (cumulative <= np.asarray(u)[:, None]).sum(axis=1).tolist()
     cumulative = np.cumsum(model.start)
     cumulative[-1] = 1.0
     return np.searchsorted(cumulative, u, side="right").tolist()
@@ -117,7 +122,7 @@ def static_multipliers(mult: Multipliers) -> list[list[float]]:
 
 def initial_memory(model: BoundModel, tracked: tuple[str, ...], state: int):
     """Counts and last-occurrence times at the start: entering the start state counts."""
-    name = model.states[state]
+    name = model.entered(state)
     counts = [int(t == name) for t in tracked]
     last = [0.0 if t == name else None for t in tracked]
     return counts, last

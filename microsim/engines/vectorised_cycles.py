@@ -41,7 +41,8 @@ class _Batch:
         tracked = plan.tracked_names(model)
         self.cycle = model.cycle
         self.bumps = plan.bumps(model, tracked)
-        self.static = np.exp(mult.log_static)  # the values of plan.static_multipliers
+        # the values of plan.static_multipliers, risk-major so a risk's are contiguous
+        self.static = np.ascontiguousarray(np.exp(mult.log_static).T)
         self.ones = np.all(mult.log_static == 0.0, axis=0).tolist()  # risks no effect touches
         self.slopes = mult.age_slope.tolist()
         self.age0 = np.zeros(mult.size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
@@ -72,7 +73,7 @@ class _Batch:
             else:
                 k = np.maximum(np.searchsorted(starts, x, side="right") - 1, 0)
                 p, log = np.asarray(values, float)[k], np.asarray(logs, float)[k]
-        m = 1.0 if self.ones[r] else self.static[who, r]
+        m = 1.0 if self.ones[r] else self.static[r][who]
         if self.slopes[r]:
             m = m * exp(self.slopes[r] * t)
         if self.windowed[r]:
@@ -111,7 +112,8 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
     plans = state_plans(model, names)
     read = sorted({0} | {step[1] for _, _, events, _ in plans for step in events})
     column = {purpose: j for j, purpose in enumerate(read)}  # purpose -> row of the draws
-    starts = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE)),
+    starts = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE),
+                                          mult),
                         np.int64).reshape(-1)
     batch = _Batch(model, mult, starts)
     records = [(np.arange(len(ids)), 0.0, START, starts, START)]  # (patients, time, from, to, risk)
@@ -120,13 +122,14 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
     alive = np.flatnonzero(~absorbing[starts])
     cycle = model.cycle
     draws = None
+    on_points = np.empty((len(ids), model.n_cycles + 1), np.int16)  # the state at each point
+    on_points[:, 0] = starts
     for n in range(model.n_cycles):
         if alive.size == 0:
+            on_points[:, n:] = batch.state[:, None]  # everyone stays where they are
             break
         if n % BLOCK == 0:  # (purposes, cycles, patients) of the next block of cycles
-            draws = np.ascontiguousarray(streams.block(
-                seed, ids, [names[j] for j in read], min(BLOCK, model.n_cycles - n),
-                first=n).transpose(1, 2, 0))
+            draws = streams.lanes(seed, ids, [names[j] for j in read], n // BLOCK)
         lane = n % BLOCK
         t = n * cycle
         end = t + cycle
@@ -164,5 +167,6 @@ def simulate_cycles_vectorised(model: BoundModel, mult: Multipliers, patient_ids
             batch.duration[who] = np.where(moved, 0, batch.duration[who] + 1)
             state[who[moved]] = target[moved]
         alive = alive[~absorbing[state[alive]]]
-    return from_records(records, len(ids))
+        on_points[:, n + 1] = state
+    return from_records(records, len(ids), on_points)
 

@@ -139,7 +139,7 @@ class _Batch:
         self.draws = [_Draws(seed, ids, [purposes[r] for r in risks])
                       for risks in self.from_state]
         starts = np.asarray(plan.start_states(
-            model, streams.uniforms(seed, ids, plan.START_PURPOSE)), np.int64).reshape(-1)
+            model, streams.uniforms(seed, ids, plan.START_PURPOSE), mult), np.int64).reshape(-1)
         self.state = starts
         self.counts, self.last = plan.initial_memory_arrays(model, tracked, starts)
         self.now, self.entered = np.zeros(n), np.zeros(n)

@@ -67,6 +67,7 @@ class Multipliers:
     entry_age: np.ndarray | None  # (patients,) age at time 0, when known
     window: Window | None = None  # a strategy's treatment window
     log_time_scale: np.ndarray | None = None  # (patients, risks) log time ratios, if any
+    start: np.ndarray | None = None  # (patients, states) own start shares; None: the model's
 
     def at(self, t) -> np.ndarray:
         """Multipliers (patients, risks) at time t since start (t scalar)."""
@@ -94,10 +95,12 @@ class Multipliers:
         return Multipliers(self.log_static[index], self.age_slope,
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index),
-                           None if self.log_time_scale is None else self.log_time_scale[index])
+                           None if self.log_time_scale is None else self.log_time_scale[index],
+                           None if self.start is None else self.start[index])
 
     def rows(self) -> list[np.ndarray]:
-        """What makes a patient's row: multipliers, time ratios, entry age, window."""
+        """What makes a patient's row: multipliers, time ratios, entry age, window, start
+        shares."""
         parts = [self.log_static]
         if self.log_time_scale is not None:
             parts.append(self.log_time_scale)
@@ -105,12 +108,14 @@ class Multipliers:
             parts.append(self.entry_age[:, None])
         if self.window is not None:
             parts += [self.window.on[:, None], self.window.off[:, None]]
+        if self.start is not None:
+            parts.append(self.start)
         return parts
 
     def unique(self) -> tuple["Multipliers", np.ndarray]:
         """The distinct patient rows and, for each patient, the index of its row: patients
-        with the same multipliers, time ratios, entry age and window share one analytic
-        result."""
+        with the same multipliers, time ratios, entry age, window and start shares share
+        one analytic result."""
         _, first, inverse = np.unique(np.hstack(self.rows()), axis=0, return_index=True,
                                       return_inverse=True)
         return self.take(first), inverse.ravel()
@@ -176,8 +181,25 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
                 log_static[:, r] -= term
             else:
                 log_scale[:, r] += term
-    return Multipliers(log_static, slope, ages, log_time_scale=log_scale if log_scale.any()
-                       else None)
+    start = None
+    if model.start_effects:
+        logits = np.tile(np.log(np.where(model.start > 0, model.start, 1.0)), (n, 1))
+        for state, effect in model.start_effects:
+            x = ages if effect.attribute == AGE and effect.level is None else \
+                covariate(effect.attribute, effect.level)
+            logits[:, state] += effect.log_hr * (x - effect.centre)
+        start = start_shares(logits, model.start > 0)
+    return Multipliers(log_static, slope, ages,
+                       log_time_scale=log_scale if log_scale.any() else None, start=start)
+
+
+def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
+    """Each patient's start shares: the multinomial logit softmax(logits) over the states
+    with a start share (McFadden 1974, "Conditional logit analysis of qualitative choice
+    behavior"), shifted by each row's largest logit so that exp cannot overflow."""
+    logits = np.where(possible, logits, -np.inf)
+    weights = np.exp(logits - logits.max(axis=1, keepdims=True))
+    return weights / weights.sum(axis=1, keepdims=True)
 
 
 def cohort_multipliers(model: BoundModel) -> Multipliers:
@@ -191,7 +213,8 @@ def cohort_multipliers(model: BoundModel) -> Multipliers:
 
 def _uses_age(model: BoundModel) -> bool:
     return any(e.attribute == AGE for r in model.risks for e in r.effects) or any(
-        r.clock == "age" for r in model.risks)
+        r.clock == "age" for r in model.risks) or any(
+        e.attribute == AGE for _, e in model.start_effects)
 
 
 def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
@@ -202,8 +225,9 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     The log multiplier (and the log time ratio) is linear in the attributes (0/1 indicators
     for levels and yes/no), so the mean attributes give the mean of the log multipliers: a
     yes/no attribute enters as its share of "yes", so a hazard ratio HR on it becomes
-    HR ** share. Attained age moves
-    on from the mean entry age. Keeping every patient's window means that under a strategy
+    HR ** share. Attained age moves on from the mean entry age. Start shares that depend on
+    attributes take the mean attributes the same way: they enter the log odds linearly.
+    Keeping every patient's window means that under a strategy
     the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
@@ -215,4 +239,4 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
 
     ages = None if cohort.entry_age is None else first(cohort.entry_age)
     return Multipliers(first(cohort.log_static), cohort.age_slope, ages, patients.window,
-                       first(cohort.log_time_scale))
+                       first(cohort.log_time_scale), first(cohort.start))

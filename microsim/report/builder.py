@@ -329,16 +329,18 @@ class Report:
                     Column("regression", ("method",))],
                     f"Expected value of partial perfect information at {number(near)} {cur} "
                     "per QALY (Strong, Oakley & Brennan 2014)"))
-            found.append(tables.table("psa_variance", run.table("psa_variance"), [
-                Column("strategy", ("strategy",), self.label),
-                Column("draws", ("draws",), whole),
-                Column("patients per draw", ("patients_per_draw",), whole),
-                Column(f"mean incremental NMB ({cur})", ("mean_incremental_nmb",), number),
-                Column("between-draw variance", ("between_draw_variance",), number),
-                Column("within-draw variance", ("within_draw_variance",), number),
-                Column("suggested draws", ("suggested_draws",), whole),
-                Column("suggested patients per draw", ("suggested_patients_per_draw",), whole)],
-                "Inner and outer samples (O'Hagan, Stevenson & Madan 2007)"))
+            variance = run.table("psa_variance")
+            if variance is not None:
+                found.append(tables.table("psa_variance", variance, [
+                    Column("strategy", ("strategy",), self.label),
+                    Column("draws", ("draws",), whole),
+                    Column("patients per draw", ("patients_per_draw",), whole),
+                    Column(f"mean incremental NMB ({cur})", ("mean_incremental_nmb",), number),
+                    Column("between-draw variance", ("between_draw_variance",), number),
+                    Column("within-draw variance", ("within_draw_variance",), number),
+                    Column("suggested draws", ("suggested_draws",), whole),
+                    Column("suggested patients per draw", ("suggested_patients_per_draw",), whole)],
+                    "Inner and outer samples (O'Hagan, Stevenson & Madan 2007)"))
         one_way = self.one_way()
         if one_way is not None:
             found.append(tables.table("one_way", one_way, [

@@ -40,6 +40,10 @@ def value_text(value: Ref, scenario: Scenario) -> str:
 
 def hazard_text(spec, scenario: Scenario) -> str:
     """The probability, rate or hazard family of a transition or event."""
+    if getattr(spec, "by_state", None):
+        kind = "p" if spec.probability is not None else "rate"
+        return f"{kind} by state: " + ", ".join(f"{state} {value_text(value, scenario)}"
+                                                for state, value in spec.by_state.items())
     if spec.probability is not None:
         return "remainder" if spec.probability == REMAINDER else (
             f"p {'from' if spec.probability in scenario.tables else '='} "
@@ -83,8 +87,11 @@ def structure_graph(scenario: Scenario) -> nx.DiGraph:
         text = risk_label(t, scenario)
         if t.name != t.key:
             text = f"{t.name}\n{text}"
-        graph.add_edge(t.source, t.target, text=text + (f"\n[{added_by}]" if added_by else ""),
-                       added_by=added_by)
+        text += f"\n[{added_by}]" if added_by else ""
+        if graph.has_edge(t.source, t.target):  # a second way between them (another cause)
+            first = graph.edges[t.source, t.target]
+            text, added_by = first["text"] + "\n" + text, first["added_by"]
+        graph.add_edge(t.source, t.target, text=text, added_by=added_by)
 
     for state in scenario.states:
         add_state(state)

@@ -66,18 +66,20 @@ def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.nda
 def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
     `on` (B, T) holds, when given). Each patient's sum runs over its own cycle points in
-    time order (`np.bincount` adds in input order), so it does not depend on the batch."""
+    time order, one point at a time for the whole batch, so it does not depend on the
+    batch (a point not counted adds nothing)."""
     B, S = states.shape[0], model.n_states
-    out = np.zeros((B, S, 3))
-    counted = states >= 0 if on is None else (states >= 0) & on
-    rows, cols = np.nonzero(counted)  # row by row, in time order within a row
-    cell = rows * S + states[rows, cols]
-    rates = (0.0, model.discount_costs, model.discount_effects)
-    for w, rate in enumerate(rates):
-        weights = cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
-                                               correction=model.correction)
-        out[:, :, w] = np.bincount(cell, weights=weights[cols], minlength=B * S).reshape(B, S)
-    return out
+    weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                                     correction=model.correction)
+                        for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
+    out = np.zeros((3, B * S))
+    rows = np.arange(B) * S
+    for t in range(states.shape[1]):
+        counted = states[:, t] >= 0 if on is None else (states[:, t] >= 0) & on[:, t]
+        cell = (rows + states[:, t])[counted]  # one cell per patient: no repeats
+        for w in range(3):
+            out[w, cell] += weights[t, w]
+    return np.moveaxis(out.reshape(3, B, S), 0, -1)
 
 
 def exposure(model: BoundModel, h: Histories, window: Window | None = None,

@@ -13,6 +13,7 @@ import numpy as np
 from .errors import ScenarioError
 from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_you_mean,
                      listing, show)
+from .formulas import settings
 from .read_parameters import support
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
@@ -53,7 +54,7 @@ def check_correction(s: Scenario) -> None:
 
 def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
     """Every transition and event with its field path."""
-    return ([(f"transitions.{t.key}", t) for t in s.transitions]
+    return ([(f"transitions.{t.where}", t) for t in s.transitions]
             + [(f"events.{e.name}", e) for e in s.events])
 
 
@@ -78,22 +79,25 @@ def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> st
 
 def check_states(s: Scenario) -> None:
     absorbing = {st.name for st in s.states if st.absorbing}
-    seen: set[str] = set()
+    seen: dict[str, TransitionSpec] = {}
     for t in s.transitions:
-        path = f"transitions.{t.key}"
+        path = f"transitions.{t.where}"
         for end, key in ((t.source, "from"), (t.target, "to")):
             if end not in s.state_names:
                 raise ScenarioError(f"{path}.{key}", unknown_state(end, s.state_names))
         if t.source in absorbing:
             raise ScenarioError(f"{path}.from", f"{t.source!r} is absorbing; an absorbing "
                                 "state has no outgoing transitions (patients stay in it)")
-        if t.key in seen:
+        if t.key in seen and t.key in (t.name, seen[t.key].name):
             raise ScenarioError(path, f"a second transition from {t.source!r} to "
-                                f"{t.target!r}; give each pair of states one transition")
-        seen.add(t.key)
+                                f"{t.target!r} without a name of its own; give each way "
+                                'between the same two states a name (name = "...", e.g. '
+                                "the cause), or merge them")
+        seen[t.key] = t
     for e in s.events:
+        kind = "probability" if e.probability is not None else "rate"
         for i, name in enumerate(e.states):
-            path = f"events.{e.name}.states[{i}]"
+            path = f"events.{e.name}." + (f"{kind}.{name}" if e.by_state else f"states[{i}]")
             if name not in s.state_names:
                 raise ScenarioError(path, unknown_state(name, s.state_names))
             if name in absorbing:
@@ -137,6 +141,9 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         raise ScenarioError(ref.path, undefined(what, ref.name, known))
     p = s.parameters[ref.name]
     where = f"parameters.{p.name}"
+    if p.formula is not None:
+        check_derived(s, ref)
+        return
     for key, value in (("", p.value), (".low", p.low), (".high", p.high)):
         problem = None if value is None else role.problem(value)
         if problem:
@@ -152,6 +159,18 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 f"{role.noun} at {ref.path} ({role.rule}); choose a "
                                 "distribution that stays in that range, or set "
                                 'uncertainty.invalid_draws = "redraw" or "truncate"')
+
+
+def check_derived(s: Scenario, ref: Reference) -> None:
+    """A derived parameter's values at the base case and every one-way setting must suit
+    the slot (its PSA draws are checked draw by draw, `uncertainty.draw_checks`)."""
+    for label, values in settings(s.parameters):
+        problem = ref.role.problem(values[ref.name])
+        if problem:
+            raise ScenarioError(f"parameters.{ref.name}.formula",
+                                f"gives {show(values[ref.name])}{label}, but it is used as "
+                                f"{ref.role.noun} at {ref.path}: {problem}; change the "
+                                "formula or the values it reads")
 
 
 def check_kind(s: Scenario) -> None:
@@ -171,7 +190,7 @@ def check_kind(s: Scenario) -> None:
                                 "uses one kind throughout")
     for t in s.transitions:
         if not discrete and t.source == t.target:
-            raise ScenarioError(f"transitions.{t.key}.to", f"a rate from {t.source!r} to "
+            raise ScenarioError(f"transitions.{t.where}.to", f"a rate from {t.source!r} to "
                                 "itself changes nothing; use [[events]] for something that "
                                 "happens without a change of state")
 
@@ -228,8 +247,9 @@ def not_a_level(value, name: str, levels: Sequence, reading: Reading) -> str:
 
 def check_effects(s: Scenario, reading: Reading) -> None:
     kinds = attribute_kinds(s, reading)
-    for path, occurrence in occurrences(s):
-        for i, effect in enumerate(occurrence.effects):
+    for path, effects in [("start", s.start.effects)] + [
+            (path, o.effects) for path, o in occurrences(s)]:
+        for i, effect in enumerate(effects):
             here, name = f"{path}.effects[{i}]", effect.attribute
             if name not in kinds:
                 raise ScenarioError(f"{here}.attribute", unknown_attribute(s, name, kinds))
@@ -288,7 +308,7 @@ def check_row(s: Scenario, state: str) -> None:
     for t in row:
         if t.probability == REMAINDER:
             if remainder is not None:
-                raise ScenarioError(f"transitions.{t.key}.probability", f'a second "remainder" '
+                raise ScenarioError(f"transitions.{t.where}.probability", f'a second "remainder" '
                                     f"from {state!r} (the first is {remainder.key}); at most "
                                     "one transition per state takes the remainder")
             remainder = t
@@ -400,6 +420,7 @@ def youngest_age(s: Scenario) -> float | None:
 
 def warnings(s: Scenario, reading: Reading) -> list[str]:
     used = {r.name for r in reading.references}
+    used |= {n.name for p in s.parameters.values() if p.formula for n in p.formula.names}
     found = [f"parameters.{n}: defined but not used" for n in s.parameters if n not in used]
     found += [f"tables.{n}: defined but not used" for n in s.tables if n not in used]
     reachable, _ = reachable_from_start(s)

@@ -211,13 +211,13 @@ def check_capacity(s: Scenario, reading: Reading) -> None:
     if s.capacity.arrivals is not None and s.time.horizon is None:
         raise ScenarioError("time.horizon", f'is "lifetime", but an open population ([arrivals]) '
                                             f"runs for a stated time; give a number of {s.time.unit}")
-    paths = {t.key: f"transitions.{t.key}" for t in s.transitions}
+    paths = {t.where: f"transitions.{t.where}" for t in s.transitions}
     check_plan(s, s, s.capacity, "", paths, reading)
     for strategy in s.strategies:
         prefix = f"strategies.{strategy.name}"
         merged = replace(s, states=s.states + strategy.states,
                          transitions=s.transitions + strategy.transitions)
-        added = {t.key: f"{prefix}.transitions.{t.key}" for t in strategy.transitions}
+        added = {t.where: f"{prefix}.transitions.{t.where}" for t in strategy.transitions}
         check_plan(s, merged, strategy.capacity or s.capacity,
                    f"{prefix}." if strategy.capacity else "", {**paths, **added}, reading)
 
@@ -312,12 +312,12 @@ def check_waiting_states(model: Scenario, resource: ResourceSpec, path: str,
     queue = set(resource.waiting)
     for t in model.transitions:
         if t.target in queue and t.source not in queue:
-            raise ScenarioError(f"{paths[t.key]}.to", f"{t.target!r} is a waiting state of "
+            raise ScenarioError(f"{paths[t.where]}.to", f"{t.target!r} is a waiting state of "
                                 f"{resource.name!r}: patients enter it only when no unit is free "
                                 f"as they would enter {resource.state!r}; send this transition to "
                                 f"{resource.state!r} instead")
         if t.source in queue and t.target == resource.state:
-            raise ScenarioError(paths[t.key], f"patients leave the waiting state {t.source!r} for "
+            raise ScenarioError(paths[t.where], f"patients leave the waiting state {t.source!r} for "
                                 f"{resource.state!r} when {resource.name!r} has a free unit; remove "
                                 "this transition")
 

@@ -3,14 +3,18 @@ from __future__ import annotations
 
 import math
 
-from .fields import ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, show
+from .errors import ScenarioError
+from .fields import ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, did_you_mean, listing, show
+from .formulas import FormulaError, derived_order, parse_formula, settings
 from .spec import REMAINDER, DistributionSpec, ParameterSpec, TableSpec
 
 DISTRIBUTION_KEYS = {
     "beta": ("alpha", "beta"), "gamma": ("shape", "scale"), "lognormal": ("meanlog", "sdlog"),
     "normal": ("mean", "sd"), "uniform": ("lower", "upper"), "fixed": ()}
 POSITIVE_DISTRIBUTION_KEYS = {"alpha", "beta", "shape", "scale", "sdlog", "sd"}
-PARAMETER_KEYS = ("value", "distribution", "low", "high")
+PARAMETER_KEYS = ("value", "distribution", "low", "high", "formula")
+COMPUTED = ("a derived parameter is computed from its formula (in every PSA draw and "
+            "sensitivity setting too)")
 TABLE_KEYS = ("by", "starts", "values")
 TABLE_AXES = ("age", "time", "time_in_state")
 
@@ -40,9 +44,13 @@ def read_parameters(node: Node | None) -> dict[str, ParameterSpec]:
     parameters: dict[str, ParameterSpec] = {}
     for name, raw in (node.data.items() if node else ()):
         name_key(node, name, "parameter")
+        if isinstance(raw, dict) and "formula" in raw:
+            parameters[name] = read_formula(node, name)
+            continue
         if not isinstance(raw, dict):
             parameters[name] = ParameterSpec(name, node.number(
-                name, expect="a number or a table {value = ..., distribution = {...}}"))
+                name, expect="a number, a table {value = ..., distribution = {...}} or a "
+                             'formula {formula = "rate * hazard_ratio"}'))
             continue
         entry = node.node(name, PARAMETER_KEYS)
         value = entry.number("value")
@@ -60,7 +68,44 @@ def read_parameters(node: Node | None) -> dict[str, ParameterSpec]:
                                     f"{distribution.family} distribution can take "
                                     f"({show(lowest)} to {show(highest)})")
         parameters[name] = ParameterSpec(name, value, distribution, low, high)
-    return parameters
+    return with_formulas(parameters)
+
+
+def read_formula(node: Node, name: str) -> ParameterSpec:
+    """A derived parameter: `name = { formula = "<formula>" }`."""
+    entry = node.node(name, None)
+    for key in entry.data:
+        if key != "formula":
+            entry.fail(key, f"{COMPUTED}; it takes no {key} (give "
+                            f"{'distributions' if key == 'distribution' else key} to the "
+                            "parameters it is computed from)" if key in PARAMETER_KEYS
+                       else f"unknown key{did_you_mean(key, ['formula'])}; a derived "
+                            "parameter has only a formula")
+    text = entry.text("formula", nonempty=True)
+    try:
+        formula = parse_formula(text)
+    except FormulaError as error:
+        entry.fail("formula", f"column {error.column} of {text!r}: {error.message}")
+    return ParameterSpec(name, math.nan, formula=formula)
+
+
+def with_formulas(parameters: dict[str, ParameterSpec]) -> dict[str, ParameterSpec]:
+    """Every name a formula reads is a parameter, no derived parameters form a cycle, and
+    each has a finite value at the base case and every one-way setting; the base values of
+    derived parameters filled in."""
+    for p in parameters.values():
+        for used in p.formula.names if p.formula else ():
+            if used.name not in parameters:
+                raise ScenarioError(
+                    f"parameters.{p.name}.formula",
+                    f"column {used.column} of {p.formula.text!r}: unknown name "
+                    f"{used.name!r}{did_you_mean(used.name, parameters)}; a formula reads "
+                    f"parameters ({listing(parameters)})")
+    if not derived_order(parameters):
+        return parameters
+    (_, base), *_ = settings(parameters)  # refuses one without a value at any setting
+    return {name: ParameterSpec(name, base[name], formula=p.formula) if p.formula else p
+            for name, p in parameters.items()}
 
 
 def read_distribution(node: Node | None) -> DistributionSpec | None:

@@ -6,7 +6,8 @@ import numpy as np
 
 from .checks import undefined
 from .errors import ScenarioError
-from .fields import TOLERANCE, Node, show
+from .fields import TOLERANCE, Node, Reference, show
+from .formulas import derived_order, explain, with_derived
 from .rows import attribute_ranges, row_bounds, too_high
 from .spec import ParameterSpec, Scenario, SensitivitySpec
 
@@ -39,10 +40,11 @@ def grid_values(p: ParameterSpec, points: int) -> np.ndarray:
     return np.sort(np.append(values, p.value))
 
 
-def check_sensitivity(s: Scenario) -> None:
-    """Every parameter named is defined and has a low..high range wider than a point, and
-    under the separate rule no row can sum above 1 anywhere on the two-way grid (the
-    one-way settings are checked with the rows)."""
+def check_sensitivity(s: Scenario, references: tuple[Reference, ...] | list = ()) -> None:
+    """Every parameter named is defined and has a low..high range wider than a point; on
+    every grid, derived parameters suit their uses (`references`), and under the separate
+    rule no row can sum above 1 anywhere on the two-way grid (the one-way settings are
+    checked with the rows)."""
     spec = s.sensitivity
     for key, names in (("two_way", spec.two_way), ("break_even", spec.break_even)):
         for i, name in enumerate(names):
@@ -50,25 +52,55 @@ def check_sensitivity(s: Scenario) -> None:
             if name not in s.parameters:
                 raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))
             p = s.parameters[name]
+            if p.formula is not None:
+                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); "
+                                    "vary the parameters it is computed from")
             if p.low is None or p.high is None:
                 raise ScenarioError(path, f"{name!r} has no low..high range; give "
                                     f"parameters.{name} a low and a high")
             if p.low == p.high:
                 raise ScenarioError(path, f"{name!r} has low = high = {show(p.low)}: there "
                                     f"is nothing to vary; widen parameters.{name}")
+    base = {name: np.asarray(p.value) for name, p in s.parameters.items()}
+    for i, name in enumerate(spec.break_even):
+        grid = grid_values(s.parameters[name], spec.grid)
+        check_derived_grid(s, {**base, name: grid}, references, f"sensitivity.break_even[{i}]",
+                           lambda k: f" with parameters.{name} = {show(grid[k])} (the "
+                                     "break-even scan)")
     if spec.two_way:
-        check_grid_rows(s, *(s.parameters[name] for name in spec.two_way))
+        check_grid_rows(s, *(s.parameters[name] for name in spec.two_way), references)
 
 
-def check_grid_rows(s: Scenario, first: ParameterSpec, second: ParameterSpec) -> None:
+def check_derived_grid(s: Scenario, values: dict, references, path: str, setting) -> None:
+    """Refuse a grid on which a derived parameter has no value or one its uses cannot take;
+    `setting(k)` names grid point k."""
+    values = with_derived(s.parameters, values)
+    for name in derived_order(s.parameters):
+        x = np.broadcast_to(values[name], np.shape(values[name]) or (1,))
+        for use in [None] + [r for r in references if r.name == name]:
+            bad = ~np.isfinite(x) if use is None else use.role.outside(x)
+            if bad.any():
+                k = int(np.argmax(bad))
+                point = {n: float(np.ravel(v)[k if np.size(v) > 1 else 0])
+                         for n, v in values.items()}
+                why = (f"has no value ({explain(s.parameters, name, point)})" if use is None
+                       else f"gives {show(x[k])}{setting(k)}, but it is used as "
+                            f"{use.role.noun} at {use.path}: {use.role.problem(x[k])}")
+                raise ScenarioError(path, f"parameters.{name} {why}; narrow the range or "
+                                          "change the formula")
+
+
+def check_grid_rows(s: Scenario, first: ParameterSpec, second: ParameterSpec,
+                    references=()) -> None:
     x, y = (grid_values(p, s.sensitivity.grid) for p in (first, second))
     a, b = (v.ravel() for v in np.meshgrid(x, y, indexing="ij"))
     values = {name: np.full(a.size, p.value) for name, p in s.parameters.items()}
     values[first.name], values[second.name] = a, b
+    setting = (lambda k: f" with parameters.{first.name} = {show(a[k])} and parameters."
+                         f"{second.name} = {show(b[k])} (the two-way grid)")
+    check_derived_grid(s, values, references, "sensitivity.two_way", setting)
     for found in row_bounds(s, values, attribute_ranges(s)):
         above = np.flatnonzero(found.bound > 1.0 + TOLERANCE)
         if above.size:
             k = above[0]
-            setting = (f" with parameters.{first.name} = {show(a[k])} and parameters."
-                       f"{second.name} = {show(b[k])} (the two-way grid)")
-            raise ScenarioError("sensitivity.two_way", too_high(found, k, setting))
+            raise ScenarioError("sensitivity.two_way", too_high(found, k, setting(k)))

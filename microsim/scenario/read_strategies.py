@@ -20,12 +20,14 @@ from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, Node, Reading, Role,
                      describe, did_you_mean, listing, show)
 from .read_transitions import read_transitions
-from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec, Scenario,
-                   StateSpec, StrategySpec, TableSpec, TimeSpec, TransitionSpec)
+from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec,
+                   LineSpec, Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec,
+                   TransitionSpec)
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
-                 "discontinuation", "changes", "states", "transitions",
-                 "arrivals", "resources")  # the last two: read by read_capacity
+                 "discontinuation", "changes", "states", "transitions", "start_on", "stop_on",
+                 "then", "arrivals", "resources")  # the last two: read by read_capacity
+LINE_KEYS = ("name", "stop_on", "changes")
 ELIGIBLE_KEYS = ("all", "any")
 NUMBER_TESTS = ("above", "at_least", "below", "at_most")
 LEVEL_TESTS = ("equals", "one_of")
@@ -124,7 +126,30 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
         uptake=node.ref("uptake", UPTAKE, 1.0), start=start, stop=stop,
         discontinuation=node.ref("discontinuation", RATE, 0.0),
         changes=tuple(read_change(n) for n in node.nodes("changes", CHANGE_KEYS)),
-        states=states, transitions=transitions, while_treated=gated)
+        states=states, transitions=transitions, while_treated=gated,
+        start_on=state_list(node, "start_on"), stop_on=state_list(node, "stop_on"),
+        then=read_lines(node))
+
+
+def state_list(node: Node, key: str) -> tuple[str, ...]:
+    """A state name or a list of them (`start_on`, `stop_on`); () when not given."""
+    if not node.has(key):
+        return ()
+    return (node.name(key),) if isinstance(node.raw(key), str) else node.names(key)
+
+
+def read_lines(node: Node) -> tuple[LineSpec, ...]:
+    """[[strategies.then]]: the later treatments of a sequence, in order."""
+    lines: list[LineSpec] = []
+    for entry in node.nodes("then", LINE_KEYS):
+        name = entry.name("name")
+        if name in (node.data.get("name"), *(line.name for line in lines)):
+            entry.fail("name", f"{name!r} already names this strategy or one of its "
+                               "treatments; give each treatment of a sequence its own name")
+        entry.path = f"{node.path}.then.{name}"
+        lines.append(LineSpec(name, state_list(entry, "stop_on"), tuple(
+            read_change(n) for n in entry.nodes("changes", CHANGE_KEYS))))
+    return tuple(lines)
 
 
 def read_added_transitions(node: Node, tables: dict[str, TableSpec]
@@ -215,9 +240,54 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
         found.append(f"{prefix}: changes nothing (no changes and no added transitions), so it "
                      "gives the same results as the comparator")
     reachable, _ = reachable_from_start(merged)
+    if strategy.phased:
+        found += check_phases(s, merged, strategy, prefix, reachable)
     found += [f"{prefix}.states.{st.name}: not reachable from the start (no transition that can "
               "happen leads to it)" for st in strategy.states if st.name not in reachable]
     return found
+
+
+def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: str,
+                 reachable) -> list[str]:
+    """Treatment that starts and stops on entering states, and sequences: known states
+    that are not absorbing, each treatment after the first following one that stops, and
+    no treatment stopped by the very entry that starts it. Returns the warnings."""
+    if s.capacity is not None:
+        raise ScenarioError(f"{prefix}.{'start_on' if strategy.start_on else 'stop_on'}",
+                            "treatment on entering states is not available with [arrivals] "
+                            "or [[resources]]; give the strategy a start and stop time instead")
+    if strategy.start_on and strategy.discontinuation != 0.0:
+        raise ScenarioError(f"{prefix}.discontinuation", "runs from the strategy's start time, "
+                            "not from the entry that starts treatment; leave it out with "
+                            "start_on, and stop treatment with stop_on")
+    absorbing = {st.name for st in merged.states if st.absorbing}
+    lines = [(prefix, strategy.start_on, strategy.stop_on)]
+    lines += [(f"{prefix}.then.{line.name}", lines_before_stop, line.stop_on)
+              for line, lines_before_stop in zip(strategy.then, [strategy.stop_on] + [
+                  line.stop_on for line in strategy.then])]
+    for path, starts, stops in lines:
+        for key, names in (("start_on", starts if path == prefix else ()), ("stop_on", stops)):
+            for i, name in enumerate(names):
+                here = f"{path}.{key}" + (f"[{i}]" if len(names) > 1 else "")
+                if name not in merged.state_names:
+                    raise ScenarioError(here, unknown_state(name, merged.state_names))
+                if name in absorbing:
+                    raise ScenarioError(here, f"{name!r} is absorbing, where nothing happens "
+                                        "any more; name a state patients can live in")
+        if path != prefix and not starts:
+            raise ScenarioError(f"{path}", "follows a treatment without stop_on, which never "
+                                "stops; give the treatment before it a stop_on")
+        both = sorted(set(starts) & set(stops))
+        if both:
+            raise ScenarioError(f"{path}.stop_on", f"{both[0]!r} also starts this treatment; "
+                                "a treatment cannot stop on the entry that starts it")
+    for line in strategy.then:
+        check_changes(merged, replace(strategy, changes=line.changes),
+                      f"{prefix}.then.{line.name}")
+    if strategy.start_on and not set(strategy.start_on) & reachable:
+        return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
+                "strategy treats no one"]
+    return []
 
 
 def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str) -> Scenario:
@@ -233,7 +303,7 @@ def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: 
                                 f"the name of {taken[state.name]}; give added states new names")
     merged = replace(s, states=s.states + strategy.states,
                      transitions=s.transitions + strategy.transitions)
-    paths = [f"{prefix}.transitions.{t.key}" for t in strategy.transitions]
+    paths = [f"{prefix}.transitions.{t.where}" for t in strategy.transitions]
     for path, t in zip(paths, strategy.transitions):
         if (t.probability is not None) != s.discrete:
             uses, others = (("a rate or hazard", "per-cycle probabilities") if s.discrete

@@ -3,10 +3,13 @@ covariate effects and memory, and what each occurrence costs."""
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from typing import Any, Mapping
 
-from .fields import (AGE, ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, POSITIVE, PROBABILITY,
-                     RATE, TIME_RATIO, Node, Reference, did_you_mean, listing, show)
+from .fields import (AGE, ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, ODDS_RATIO, POSITIVE,
+                     PROBABILITY, RATE, TIME_RATIO, Node, Reference, did_you_mean, listing,
+                     show)
+from .spec import Ref
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
 SHARED_KEYS = ("probability", "rate", "hazard", "clock", "cost", "disutility", "effects",
@@ -24,22 +27,26 @@ CLOCKS = ("since_start", "since_entry", "age")
 DEFAULT_CLOCK = "since_entry"
 RATIO_KEYS = ("hazard_ratio", "coefficient", "time_ratio", "time_coefficient")
 EFFECT_KEYS = ("attribute",) + RATIO_KEYS + ("centre", "level")
+START_EFFECT_KEYS = ("state", "attribute", "odds_ratio", "coefficient", "centre", "level")
 MEMORY_KEYS = ("after", "multipliers", "within", "multiplier")
 MAX_COEFFICIENT = 700.0  # exp(700) is close to the largest float
 
 
 def read_transitions(nodes: list[Node], tables: Mapping[str, TableSpec]
                      ) -> tuple[TransitionSpec, ...]:
+    pairs = [(node.data.get("from"), node.data.get("to")) for node in nodes]
     transitions = []
-    for node in nodes:
-        ends = (node.data.get("from"), node.data.get("to"))
+    for node, ends in zip(nodes, pairs):
+        parallel = pairs.count(ends) > 1
         if all(isinstance(end, str) and IDENTIFIER.fullmatch(end) for end in ends):
-            node.path = f"transitions.{ends[0]}->{ends[1]}"
+            name = node.data.get("name")
+            named = parallel and isinstance(name, str) and IDENTIFIER.fullmatch(name)
+            node.path = f"transitions.{ends[0]}->{ends[1]}" + (f"[{name}]" if named else "")
         node.only(TRANSITION_KEYS)
         source, target = node.name("from"), node.name("to")
         transitions.append(TransitionSpec(
             source=source, target=target, name=node.name("name", f"{source}->{target}"),
-            **read_occurrence(node, tables, remainder=True)))
+            parallel=parallel, **read_occurrence(node, tables, remainder=True)))
     return tuple(transitions)
 
 
@@ -49,9 +56,34 @@ def read_events(nodes: list[Node], tables: Mapping[str, TableSpec]) -> tuple[Eve
         name = node.name("name")
         node.path = f"events.{name}"
         node.only(EVENT_KEYS)
-        events.append(EventSpec(name=name, states=node.names("states"),
-                                **read_occurrence(node, tables, remainder=False)))
+        by_state = read_by_state(node)
+        if by_state is None:
+            events.append(EventSpec(name=name, states=node.names("states"),
+                                    **read_occurrence(node, tables, remainder=False)))
+            continue
+        kind, values = by_state
+        first = dict(node.data, **{kind: next(iter(values.values()))})
+        fields = read_occurrence(Node(first, node.path, node.reading), tables, remainder=False)
+        references = node.reading.references  # the first value is recorded by its state
+        references[:] = [r for r in references if r.path != node.at(kind)]
+        events.append(EventSpec(name=name, states=tuple(values), by_state=values, **fields))
     return tuple(events)
+
+
+def read_by_state(node: Node) -> tuple[str, dict[str, Ref]] | None:
+    """An event's `probability = { state = value }` or `rate = { ... }`: its value in each
+    state it can happen in (numbers or parameters); None for one value everywhere."""
+    kind = next((k for k in ("probability", "rate") if isinstance(node.data.get(k), dict)), None)
+    if kind is None:
+        return None
+    if node.has("states"):
+        node.fail("states", f"the states are the keys of {kind} = {{ state = value }}; "
+                            "remove states, or give one value for all of them")
+    by = Node(node.data[kind], node.at(kind), node.reading)
+    if not by.data:
+        by.fail(None, "must name at least one state, like { mild = 0.1, severe = 0.3 }")
+    role = PROBABILITY if kind == "probability" else RATE
+    return kind, {by._name(state, state): by.ref(state, role) for state in by.data}
 
 
 def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
@@ -76,13 +108,7 @@ def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
     stiff = ("a per-cycle probability has no clock to stretch" if kind == "probability" else
              "a table of rates steps at fixed clock values" if table is not None else None)
     effects = tuple(read_effect(n, stiff) for n in node.nodes("effects", EFFECT_KEYS))
-    seen: set[tuple[str, str | None]] = set()
-    for i, effect in enumerate(effects):
-        if (effect.attribute, effect.level) in seen:
-            node.fail(f"effects[{i}]", f"a second effect of {effect.attribute!r}"
-                      + (f" at level {effect.level!r}" if effect.level else "")
-                      + "; give each attribute (and level) one effect")
-        seen.add((effect.attribute, effect.level))
+    refuse_repeated_effects(node, effects)
     return dict(
         probability=probability, hazard=hazard, clock=read_clock(node, table),
         effects=effects,
@@ -115,11 +141,41 @@ def read_clock(node: Node, table: TableSpec | None) -> str:
     return table.clock
 
 
-def read_effect(node: Node, stiff: str | None) -> EffectSpec:
+def refuse_repeated_effects(node: Node, effects: tuple[EffectSpec, ...]) -> None:
+    seen: set[tuple] = set()
+    for i, effect in enumerate(effects):
+        if (effect.attribute, effect.level, effect.state) in seen:
+            node.fail(f"effects[{i}]", f"a second effect of {effect.attribute!r}"
+                      + (f" at level {effect.level!r}" if effect.level else "")
+                      + (f" on starting in {effect.state!r}" if effect.state else "")
+                      + "; give each attribute (and level) one effect")
+        seen.add((effect.attribute, effect.level, effect.state))
+
+
+def read_start_effects(node: Node, shares: Mapping[str, float]) -> tuple[EffectSpec, ...]:
+    """[[start.effects]]: odds ratios of starting in a state by attribute."""
+    effects = []
+    for effect_node in node.nodes("effects", START_EFFECT_KEYS):
+        state = effect_node.name("state")
+        if state not in shares:
+            effect_node.fail("state", f"no state named {state!r}{did_you_mean(state, shares)}; "
+                                      f"states: {listing(shares)}")
+        if shares[state] == 0:
+            effect_node.fail("state", f"{state!r} has start share 0, which no odds ratio can "
+                                      "raise; give it a share in start.shares (its share at "
+                                      "the reference attributes)")
+        effects.append(replace(read_effect(effect_node, start=True), state=state))
+    effects = tuple(effects)
+    refuse_repeated_effects(node, effects)
+    return effects
+
+
+def read_effect(node: Node, stiff: str | None = None, start: bool = False) -> EffectSpec:
     """One effect: a hazard ratio (proportional hazards) or a time ratio (accelerated failure
-    time), or the log of either. `stiff` says why the occurrence cannot take a time ratio."""
+    time), or the log of either; of a start effect, an odds ratio or its log. `stiff` says
+    why the occurrence cannot take a time ratio."""
     attribute = node.name("attribute")
-    key = node.one_of(RATIO_KEYS)
+    key = node.one_of(("odds_ratio", "coefficient") if start else RATIO_KEYS)
     on_time = key.startswith("time")
     if on_time and stiff is not None:
         node.fail(key, f"a time ratio stretches the clock of a rate or parametric hazard, and "
@@ -129,9 +185,10 @@ def read_effect(node: Node, stiff: str | None) -> EffectSpec:
                        "with the clock it stretches is not defined here; give age a "
                        "hazard_ratio, or put the time ratio on an attribute that stays fixed "
                        "(such as the age at entry under another name)")
-    what = "time ratio" if on_time else "hazard ratio"
-    if key in ("hazard_ratio", "time_ratio"):
-        ratio, is_coefficient = node.ref(key, TIME_RATIO if on_time else HAZARD_RATIO), False
+    what = "odds ratio" if start else "time ratio" if on_time else "hazard ratio"
+    if key in ("hazard_ratio", "time_ratio", "odds_ratio"):
+        role = ODDS_RATIO if start else TIME_RATIO if on_time else HAZARD_RATIO
+        ratio, is_coefficient = node.ref(key, role), False
     else:
         coefficient = node.ref(key, ANY)
         if isinstance(coefficient, str):

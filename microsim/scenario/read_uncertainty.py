@@ -7,10 +7,10 @@ from .checks import undefined
 from .correlation import covariance_problem, read_correlation_matrix
 from .errors import ScenarioError
 from .fields import ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
-from .spec import INVALID_DRAWS, NormalGroupSpec, Scenario, UncertaintySpec
+from .spec import INVALID_DRAWS, PSA_BASES, NormalGroupSpec, Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients", "correlation", "dirichlet", "multivariate_normal",
-                    "invalid_draws", "evppi")
+                    "invalid_draws", "evppi", "basis")
 MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
@@ -41,7 +41,8 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
         normal_groups=tuple(read_normal_group(n)
                             for n in node.nodes("multivariate_normal", NORMAL_KEYS)),
-        evppi=read_evppi_groups(node))
+        evppi=read_evppi_groups(node),
+        basis=node.text("basis", defaults.basis, choices=PSA_BASES))
 
 
 def read_normal_group(node: Node) -> NormalGroupSpec:
@@ -122,6 +123,10 @@ def check_uncertainty(s: Scenario) -> list[str]:
                 raise ScenarioError(path, f"{name!r} has its own distribution "
                                     f"(parameters.{name}.distribution); a multivariate normal "
                                     "group draws its members, so remove that distribution")
+            if parameters[name].formula is not None:
+                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
+                                    "multivariate normal group draws parameters that are "
+                                    "numbers")
             if name in grouped:
                 raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
                                     "parameter can be in one group only")
@@ -139,6 +144,9 @@ def check_uncertainty(s: Scenario) -> list[str]:
                 raise ScenarioError(path, f"{name!r} has its own distribution "
                                     f"(parameters.{name}.distribution); a Dirichlet group "
                                     "draws its members, so remove that distribution")
+            if parameters[name].formula is not None:
+                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
+                                    "Dirichlet group draws parameters that are numbers")
             if name in grouped:
                 raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
                                     "parameter can be in one group only")

@@ -24,10 +24,10 @@ from .options import named_by_option, with_options
 from .read_population import read_population
 from .read_sensitivity import SENSITIVITY_KEYS, check_sensitivity, read_sensitivity
 from .read_strategies import check_strategies, read_strategies
-from .read_transitions import read_events, read_transitions
+from .read_transitions import read_events, read_start_effects, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .rows import check_row_bounds, check_row_structure
-from .spec import (PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
+from .spec import (DISCOUNTINGS, PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
                    StartSpec, StateSpec, TimeSpec)
 
 TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "transitions",
@@ -35,9 +35,9 @@ TOP_KEYS = ("title", "description", "provenance", "time", "start", "states", "tr
             "strategies", "economics", "uncertainty", "sensitivity",
             "arrivals", "resources", "replications")  # the last three: microsim.capacity
 TIME_KEYS = ("unit", "cycle", "horizon", "lifetime_cap", "probability_rule", "years_per_unit")
-START_KEYS = ("age", "shares")
+START_KEYS = ("age", "shares", "effects")
 STATE_KEYS = ("name", "label", "absorbing", "cost", "utility")
-OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction")
+OUTCOMES_KEYS = ("discount_costs", "discount_effects", "correction", "discounting")
 SIMULATION_KEYS = ("seed", "batch_size", "grid", "validation_patients")
 CORRECTIONS = ("none", "half-cycle", "trapezoidal", "simpson")
 LIFETIME = "lifetime"
@@ -140,7 +140,7 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
-    check_sensitivity(draft)
+    check_sensitivity(draft, reading.references)
     uses = reading.references + check_row_structure(draft)
     check_row_bounds(draft)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))
@@ -220,7 +220,8 @@ def read_start(node: Node, state_names: list[str]) -> StartSpec:
     if abs(total - 1.0) > TOLERANCE:
         node.fail("shares", f"shares sum to {show(total)}, not 1; states not listed start "
                             "with share 0")
-    return StartSpec(shares={s: given.get(s, 0.0) for s in state_names}, age=age)
+    shares = {s: given.get(s, 0.0) for s in state_names}
+    return StartSpec(shares=shares, age=age, effects=read_start_effects(node, shares))
 
 
 def read_outcomes(node: Node | None) -> OutcomesSpec:
@@ -229,7 +230,8 @@ def read_outcomes(node: Node | None) -> OutcomesSpec:
     return OutcomesSpec(
         discount_costs=node.number("discount_costs", 0.0, role=NON_NEGATIVE),
         discount_effects=node.number("discount_effects", 0.0, role=NON_NEGATIVE),
-        correction=node.text("correction", "half-cycle", choices=CORRECTIONS))
+        correction=node.text("correction", "half-cycle", choices=CORRECTIONS),
+        discounting=node.text("discounting", "annual", choices=DISCOUNTINGS))
 
 
 def read_simulation(node: Node | None) -> SimulationSpec:

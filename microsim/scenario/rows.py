@@ -18,7 +18,7 @@ never exceeds 1, so no bound is needed.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Iterator, Mapping
 
 import numpy as np
@@ -26,6 +26,7 @@ import numpy as np
 from .checks import check_reference, table_at
 from .errors import ScenarioError
 from .fields import AGE, COMPETING_PROBABILITY, TOLERANCE, Reference, listing, show
+from .formulas import settings, with_derived
 from .spec import COMPETING, REMAINDER, SEPARATE, Ref, Scenario, StrategySpec, TransitionSpec
 
 Ranges = Mapping[str, tuple[float, float]]
@@ -55,11 +56,15 @@ class Row:
 
 
 def rows(s: Scenario) -> Iterator[Row]:
-    """The model's rows, then each strategy's rows that differ from them."""
+    """The model's rows, then each strategy's rows that differ from them (a sequence's
+    later treatments each as the strategy with their changes, its added transitions
+    counted as possibly on: an upper bound)."""
     yield from strategy_rows(s, None)
     for strategy in s.strategies:
         if strategy.changes or strategy.transitions:
             yield from strategy_rows(s, strategy)
+        for line in strategy.then:
+            yield from strategy_rows(s, replace(strategy, changes=line.changes))
 
 
 def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
@@ -75,7 +80,7 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
             if t.source != state.name:
                 continue
             own = k >= len(s.transitions)
-            path = f"{prefix if own else ''}transitions.{t.key}"
+            path = f"{prefix if own else ''}transitions.{t.where}"
             changed = changed or own
             if t.probability == REMAINDER:
                 remainder, remainder_path = t, path
@@ -205,6 +210,7 @@ def row_bounds(s: Scenario, values: Mapping[str, np.ndarray], ranges: Ranges) ->
         return []
     span = (s.time.n_cycles - 1) * s.time.cycle  # attained age grows until the last cycle
     size = len(next(iter(values.values()))) if values else 1
+    values = with_derived(s.parameters, values)
 
     def value(ref: Ref) -> np.ndarray:
         return np.asarray(values[ref] if isinstance(ref, str) else ref, float)
@@ -285,13 +291,9 @@ def move_multiplier(move: Move, strategy: str | None, value, ranges: Ranges, spa
 def parameter_settings(s: Scenario) -> tuple[dict[str, np.ndarray], list[str]]:
     """The base case and every one-way setting (each ranged parameter at low, then high),
     as (D,) values per parameter, with the words that name each setting."""
-    ranged = [p for p in s.parameters.values() if p.low is not None]
-    labels = [""] + [f" with parameters.{p.name} at its {end} value {show(getattr(p, end))} "
-                     "(one-way range)" for p in ranged for end in ("low", "high")]
-    values = {name: np.full(len(labels), p.value) for name, p in s.parameters.items()}
-    for k, (p, end) in enumerate(((p, end) for p in ranged for end in ("low", "high")), 1):
-        values[p.name][k] = getattr(p, end)
-    return values, labels
+    labels, found = zip(*settings(s.parameters))
+    return {name: np.array([v[name] for v in found], float) for name in s.parameters}, \
+        list(labels)
 
 
 def check_row_bounds(s: Scenario, columns: Ranges | None = None) -> None:

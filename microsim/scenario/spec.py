@@ -7,12 +7,13 @@ binding of the same specs, not a new code path.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Literal, Mapping
 
 if TYPE_CHECKING:
     from .fields import Reference
+    from .formulas import Formula
 
 Ref = float | str
 """A literal number, or the name of a parameter (or, for transition values, a table)."""
@@ -97,6 +98,7 @@ class EffectSpec:
     centre: float = 0.0
     coefficient: bool = False  # True when `hazard_ratio` holds the log of the ratio
     time_ratio: bool = False  # True: the ratio is a time ratio (time_ratio, time_coefficient)
+    state: str | None = None  # start effects: the start state whose odds it multiplies
 
 
 @dataclass(frozen=True)
@@ -129,10 +131,16 @@ class TransitionSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0  # one-off, when the transition happens
     disutility: Ref = 0.0  # one-off QALY loss, when the transition happens
+    parallel: bool = False  # another transition joins the same two states (a second cause)
 
     @property
     def key(self) -> str:
         return f"{self.source}->{self.target}"
+
+    @property
+    def where(self) -> str:
+        """The transition in field paths: its pair, and its name when the pair is shared."""
+        return f"{self.key}[{self.name}]" if self.parallel and self.name != self.key else self.key
 
 
 @dataclass(frozen=True)
@@ -148,6 +156,17 @@ class EventSpec:
     memory: tuple[MemorySpec, ...] = ()
     cost: Ref = 0.0
     disutility: Ref = 0.0
+    by_state: Mapping[str, Ref] | None = None  # a probability or constant rate per state
+
+    def in_state(self, state: str) -> "EventSpec":
+        """The event as it happens in `state`: with its own value when it differs by state
+        (`probability` and `hazard` then hold the first state's, which fixes the kind)."""
+        if self.by_state is None:
+            return self
+        value = self.by_state[state]
+        if self.probability is not None:
+            return replace(self, probability=value)
+        return replace(self, hazard=HazardSpec("constant", {"rate": value}))
 
 
 @dataclass(frozen=True)
@@ -179,19 +198,28 @@ class ParameterSpec:
     distribution: DistributionSpec | None = None
     low: float | None = None  # one-way sensitivity range
     high: float | None = None
+    formula: "Formula | None" = None  # a derived parameter: value is its base-case result
 
 
 @dataclass(frozen=True)
 class StartSpec:
     shares: Mapping[str, float]  # every state name in file order (0 if not given); sums to 1
     age: float | None = None  # cohort age at time 0, in time units
+    # odds ratios of starting in a state by attribute (a multinomial logit around `shares`)
+    effects: tuple[EffectSpec, ...] = ()
+
+
+DISCOUNTINGS = ("annual", "continuous")
+"""How the discount rates are read: effective rates per year, factor (1 + d)^-t, or
+instantaneous rates per year, factor exp(-r t) (t in years)."""
 
 
 @dataclass(frozen=True)
 class OutcomesSpec:
-    discount_costs: float = 0.0  # effective rate per time unit
+    discount_costs: float = 0.0  # per year, read as `discounting` says
     discount_effects: float = 0.0
     correction: Correction = "half-cycle"
+    discounting: str = "annual"  # one of DISCOUNTINGS
 
 
 @dataclass(frozen=True)
@@ -271,6 +299,15 @@ class ChangeSpec:
 
 
 @dataclass(frozen=True)
+class LineSpec:
+    """A later treatment of a sequence: it starts when the one before it stops, and acts
+    through its own changes until a patient enters one of `stop_on`."""
+    name: str
+    stop_on: tuple[str, ...] = ()
+    changes: tuple[ChangeSpec, ...] = ()
+
+
+@dataclass(frozen=True)
 class StrategySpec:
     """One decision option: who is treated, when, and what treatment changes; added
     states and transitions extend the model for this strategy only."""
@@ -287,6 +324,15 @@ class StrategySpec:
     transitions: tuple[TransitionSpec, ...] = ()  # added transitions
     while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
     capacity: "CapacitySpec | None" = None  # its arrivals and resources, when it changes them
+    start_on: tuple[str, ...] = ()  # treatment starts on entering one of these states
+    stop_on: tuple[str, ...] = ()  # and stops on entering one of these
+    then: tuple[LineSpec, ...] = ()  # later treatments, each after the one before stops
+
+    @property
+    def phased(self) -> bool:
+        """Whether treatment follows the patient's history (states entered), not the
+        clock alone."""
+        return bool(self.start_on or self.stop_on or self.then)
 
 
 @dataclass(frozen=True)
@@ -315,6 +361,9 @@ INVALID_DRAWS = ("refuse", "redraw", "truncate")
 it again from the next occurrence of its streams, or clip its values to their ranges."""
 
 
+PSA_BASES = ("simulated", "exact")
+
+
 @dataclass(frozen=True)
 class NormalGroupSpec:
     """Parameters drawn together from one multivariate normal: `means` and `covariance` on
@@ -341,6 +390,7 @@ class UncertaintySpec:
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
     normal_groups: tuple[NormalGroupSpec, ...] = ()
     evppi: tuple[tuple[str, ...], ...] = ()  # parameter groups whose EVPPI is reported
+    basis: str = "simulated"  # one of PSA_BASES: each draw simulated, or its exact mixture
 
 
 @dataclass(frozen=True)

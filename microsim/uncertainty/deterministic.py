@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import pandas as pd
 
+from microsim.progress import progress
 from microsim.scenario.spec import Scenario
 from microsim.uncertainty.break_even import break_even
 from microsim.uncertainty.one_way import Settings, tornado
@@ -20,13 +21,14 @@ def sensitivity_tables(scenario: Scenario, patients: int | None = None,
                        measure: str | None = None) -> dict[str, pd.DataFrame]:
     """one_way always; two_way with a pair; break_even and break_even_curve with
     break-even parameters."""
-    settings = Settings(scenario, patients, seed, strategy, measure)
     spec = scenario.sensitivity
-    tables = {"one_way": tornado(scenario, settings=settings)}
-    if spec.two_way:
-        tables["two_way"] = two_way(settings, *spec.two_way, spec.grid)
-    if spec.break_even:
-        found = [break_even(settings, name, spec.grid) for name in spec.break_even]
-        tables["break_even"] = pd.concat([f[0] for f in found], ignore_index=True)
-        tables["break_even_curve"] = pd.concat([f[1] for f in found], ignore_index=True)
+    with progress(None, "Sensitivity settings evaluated", "setting") as bar:
+        settings = Settings(scenario, patients, seed, strategy, measure, bar=bar)
+        tables = {"one_way": tornado(scenario, settings=settings)}
+        if spec.two_way:
+            tables["two_way"] = two_way(settings, *spec.two_way, spec.grid)
+        if spec.break_even:
+            found = [break_even(settings, name, spec.grid) for name in spec.break_even]
+            tables["break_even"] = pd.concat([f[0] for f in found], ignore_index=True)
+            tables["break_even_curve"] = pd.concat([f[1] for f in found], ignore_index=True)
     return tables

@@ -13,6 +13,11 @@ draw is `uncertainty.invalid_draws`:
 - "truncate": each value is clipped to the range of its uses; a row that still exceeds 1
   is refused (redrawing can help there).
 
+A derived parameter is recomputed from each draw (`ParameterSampler.draws`), so it is
+checked like any other value, and a draw in which its formula has no finite value (a
+division by zero, the log of 0) is invalid too. Truncation clips only the values drawn;
+the derived values are computed again from the clipped ones.
+
 The changes come back as a table naming every value not used as first drawn.
 """
 from __future__ import annotations
@@ -26,6 +31,7 @@ import pandas as pd
 from microsim.patients.population import file_ranges
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import TOLERANCE, Reference, show
+from microsim.scenario.formulas import derived_order, explain, inputs, with_derived
 from microsim.scenario.rows import RowBound, attribute_ranges, row_bounds, row_names
 from microsim.scenario.spec import Scenario
 from .draws import ParameterSampler
@@ -79,13 +85,14 @@ def check_draws(s: Scenario, sampler: ParameterSampler, n_draws: int, seed: int)
 
 def problems(s: Scenario, table: pd.DataFrame, ranges) -> list[Problem]:
     """What is invalid in which rows of a table of draws."""
-    found = []
+    found = [formula_problem(s, name, table) for name in derived_order(s.parameters)]
+    found = [problem for problem in found if problem.bad.any()]
     for use in s.uses:
         if use.name in table.columns:
             x = table[use.name].to_numpy()
             bad = use.role.outside(x)
             if bad.any():
-                found.append(value_problem(use, x, table["draw"].to_numpy(), bad))
+                found.append(value_problem(s, use, x, table["draw"].to_numpy(), bad))
     values = {c: table[c].to_numpy() for c in table.columns if c != "draw"}
     for bound in row_bounds(s, values, ranges):
         bad = ~(bound.bound <= 1.0 + TOLERANCE)
@@ -94,13 +101,33 @@ def problems(s: Scenario, table: pd.DataFrame, ranges) -> list[Problem]:
     return found
 
 
-def value_problem(use: Reference, x: np.ndarray, draws: np.ndarray, bad: np.ndarray) -> Problem:
+def value_problem(s: Scenario, use: Reference, x: np.ndarray, draws: np.ndarray,
+                  bad: np.ndarray) -> Problem:
     role = use.role
+    derived = s.parameters[use.name].formula is not None
     return Problem(
-        f"parameters.{use.name}.distribution", f"{use.path}: {role.rule}", (use.name,), bad,
+        f"parameters.{use.name}.{'formula' if derived else 'distribution'}",
+        f"{use.path}: {role.rule}",
+        tuple(inputs(s.parameters, use.name)) if derived else (use.name,), bad,
         lambda k: (f"PSA draw {draws[k]} gives {use.name} = {show(x[k])}, used as {role.noun} "
                    f"at {use.path}: {role.problem(x[k])}"),
-        "choose a distribution that stays in that range")
+        "choose distributions of the parameters it is computed from that keep it in that "
+        "range" if derived else "choose a distribution that stays in that range")
+
+
+def formula_problem(s: Scenario, name: str, table: pd.DataFrame) -> Problem:
+    """The draws in which a derived parameter's formula has no finite value."""
+    bad = ~np.isfinite(table[name].to_numpy())
+
+    def why(k: int) -> str:
+        row = {c: float(table[c].iloc[k]) for c in s.parameters}
+        return (f"PSA draw {table['draw'].iloc[k]}: parameters.{name} has no value: "
+                f"{explain(s.parameters, name, row)}")
+
+    return Problem(f"parameters.{name}.formula", f"parameters.{name}: its formula has no value",
+                   tuple(inputs(s.parameters, name)), bad, why,
+                   "choose distributions of the parameters it is computed from that keep "
+                   "the formula defined")
 
 
 def row_problem(bound: RowBound, table: pd.DataFrame, bad: np.ndarray) -> Problem:
@@ -160,13 +187,16 @@ def truncated(s: Scenario, first: pd.DataFrame, ranges) -> CheckedDraws:
     """Each value clipped to the range of its uses; rows that still exceed 1 are refused."""
     table, rows = first.copy(), []
     for use in s.uses:
-        if use.name in table.columns:
+        if use.name in table.columns and s.parameters[use.name].formula is None:
             x = table[use.name].to_numpy()
             clipped = use.role.clip(x)
             for k in np.flatnonzero(clipped != x):
                 rows.append((int(table["draw"].iloc[k]), "truncate", 0, use.name, float(x[k]),
                              float(clipped[k]), f"{use.path}: {use.role.rule}"))
             table[use.name] = clipped
+    values = with_derived(s.parameters, {c: table[c].to_numpy() for c in s.parameters})
+    for name in derived_order(s.parameters):
+        table[name] = values[name]
     left = problems(s, table, ranges)
     bad = flagged(left, len(table))
     if bad.any():

@@ -18,6 +18,7 @@ from .distributions import Dirichlet, Distribution, correlation_root, draw_param
 from .multivariate_normal import MultivariateNormal
 from .. import streams
 from ..scenario.errors import ScenarioError
+from ..scenario.formulas import with_derived
 from ..scenario.spec import NormalGroupSpec, ParameterSpec
 
 Correlation = tuple[Sequence[str], object]
@@ -159,6 +160,7 @@ class ParameterSampler:
         for names, normal in self.normals.values():
             joint = normal.ppf(uniforms[:, [self.columns.index(name) for name in names]])
             values.update({name: joint[:, k] for k, name in enumerate(names)})
+        values = with_derived(self.parameters, values)  # vectorised over the draws
         return pd.DataFrame({"draw": ids.astype(np.int64), **values})
 
 

@@ -7,12 +7,11 @@ many times the run was interrupted and resumed.
 """
 from __future__ import annotations
 
-import sys
 from contextlib import closing
 from pathlib import Path
 
 import pandas as pd
-from tqdm import tqdm
+from microsim.progress import progress as progress_bar
 
 from . import folder
 from .backends import Evaluate, choose
@@ -46,9 +45,8 @@ def run_draws(evaluate: Evaluate, draws: pd.DataFrame, run_dir: Path, *, workers
     run_dir = Path(run_dir)
     created = folder.claim(run_dir, fingerprint, draws)
     pending = [job for job in jobs if not folder.draw_path(run_dir, job[0]).exists()]
-    hidden = not progress or not sys.stderr.isatty()
-    with tqdm(total=len(jobs), initial=len(jobs) - len(pending), unit="draw", desc="PSA draws",
-              disable=hidden) as bar:
+    with progress_bar(len(jobs), "PSA draws", "draw", shown=progress,
+                      initial=len(jobs) - len(pending)) as bar:
         if pending:
             try:
                 with closing(run(evaluate, pending)) as finished:

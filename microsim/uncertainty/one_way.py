@@ -79,6 +79,8 @@ class PatientValues(NamedTuple):
     costs: np.ndarray  # discounted, per patient
     qalys: np.ndarray  # discounted, per patient
     exact: bool  # analytic expectations (True) or one simulated history each (False)
+    life_years: np.ndarray  # undiscounted, per patient
+    reasons: tuple[str, ...] = ()  # why there is no exact counterpart, where there is none
 
 
 def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: dict,
@@ -92,7 +94,8 @@ def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: 
                 else simulate(model, people, seed, mult=mult).exposure)
     outcomes = outcome_values(model, exposure)
     return PatientValues(np.asarray(outcomes[COST], float), np.asarray(outcomes[EFFECT], float),
-                         result.exact)
+                         result.exact, np.asarray(outcomes["life_years"], float),
+                         tuple(result.reasons))
 
 
 def tornado_strategies(scenario: Scenario, strategy: str | None,
@@ -134,7 +137,7 @@ class Settings:
 
     def __init__(self, scenario: Scenario, patients: int | None = None,
                  seed: int | None = None, strategy: str | None = None,
-                 measure: str | None = None):
+                 measure: str | None = None, bar=None):
         from microsim.patients.population import patients_for
         self.scenario = scenario
         self.measure, self.chosen, self.comparator = tornado_strategies(scenario, strategy,
@@ -145,12 +148,15 @@ class Settings:
         self.needed = list(dict.fromkeys([*([self.comparator] if self.comparator else []),
                                           *self.chosen]))
         self.evaluated: dict[tuple, dict] = {}
+        self.bar = bar  # a progress bar counting evaluations, or None
 
     def evaluate(self, values: dict) -> dict[str | None, PatientValues]:
         key = tuple(sorted(values.items()))
         if key not in self.evaluated:
             self.evaluated[key] = {name: patient_values(self.scenario, self.people, self.seed,
                                                         values, name) for name in self.needed}
+            if self.bar is not None:
+                self.bar.update()
         return self.evaluated[key]
 
     def per_patient(self, name: str | None, result: dict) -> tuple[np.ndarray, bool]:

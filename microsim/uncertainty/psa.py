@@ -10,6 +10,12 @@ Inner Monte-Carlo noise inflates the spread of per-draw means, and with it EVPI 
 acceptability curve's extremes; the split tells how many inner patients make that small.
 A scenario without strategies gets the per-draw outcomes of the model as written and their
 intervals; acceptability, EVPI and the split compare strategies, so it gets a note instead.
+
+With `uncertainty.basis = "exact"` (for models with an exact counterpart) no draw is
+simulated: each draw is the mean of the patients' analytic expectations, on one set of
+patients (ids 0..n-1) shared by every draw, so the draws differ by their parameters alone
+and carry no inner Monte-Carlo noise (their within-draw variances are 0, the split has
+nothing to split). The base case is still simulated and validated by `microsim run`.
 """
 from __future__ import annotations
 
@@ -23,14 +29,16 @@ import pandas as pd
 
 from microsim import __version__
 from microsim.decision import economics
-from microsim.decision.strategies import COST, EFFECT, patient_outcomes, run_strategies, strategy_names
-from microsim.patients.population import scenario_patients
+from microsim.decision.strategies import (AS_WRITTEN, COST, EFFECT, patient_outcomes,
+                                         run_strategies, strategy_names)
+from microsim.patients.population import patients_for, scenario_patients
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
+from microsim.uncertainty.one_way import patient_values
 from microsim.uncertainty.summaries import draw_intervals
 from microsim.uncertainty.value_of_information import check_evppi_draws, information_values
 
@@ -65,6 +73,23 @@ def evaluate_draw(scenario: Scenario, n: int, draw: int, values: dict) -> pd.Dat
     return pd.DataFrame(rows, columns=DRAW_COLUMNS)
 
 
+def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
+                        values: dict) -> pd.DataFrame:
+    """One outer draw on the exact basis: every strategy's mean analytic cost, QALYs and
+    life years over the shared patients; no inner noise, so the within-draw moments are 0."""
+    rows = []
+    for name in strategy_names(scenario) or [None]:
+        exact = patient_values(scenario, people, scenario.simulation.seed, values, name)
+        if not exact.exact:
+            which = "the base case" if draw < 0 else f"draw {draw}"
+            raise ScenarioError("uncertainty.basis", f"{which} has no exact counterpart "
+                                f"({'; '.join(exact.reasons)}); use basis = \"simulated\"")
+        rows.append((AS_WRITTEN if name is None else name, exact.costs.mean(),
+                     exact.qalys.mean(), exact.life_years.mean(), 0.0, 0.0, 0.0, 0.0,
+                     len(people)))
+    return pd.DataFrame(rows, columns=DRAW_COLUMNS)
+
+
 DRAW_COLUMNS = ["strategy", "cost", "effect", "life_years", "incremental_nmb_within_variance",
                 "incremental_cost_within_variance", "incremental_effect_within_variance",
                 "incremental_within_covariance", "patients"]
@@ -93,6 +118,7 @@ class PsaResult:
     variance: pd.DataFrame | None = None  # between/within split, suggested inner/outer sizes
     note: str | None = None
     evppi: pd.DataFrame | None = None  # per threshold, for the groups of uncertainty.evppi
+    basis: str = ""  # how each draw was evaluated, in words (BASES)
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -170,16 +196,37 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
-                   "microsim": __version__, "draw_columns": DRAW_COLUMNS}
-    results = run_draws(partial(evaluate_draw, scenario, n), table, Path(run_dir),
+                   "microsim": __version__, "draw_columns": DRAW_COLUMNS, "basis": spec.basis}
+    results = run_draws(draw_evaluation(scenario, n), table, Path(run_dir),
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
+    basis = BASES[spec.basis]
     if not scenario.strategies:
-        return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES)
+        return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES,
+                         basis=basis)
     comparator = strategy_names(scenario)[0]
     summary = summarise_draws(results, thresholds(scenario), comparator)
     evpi, evppi = information_values(scenario, table, results, summary["evpi"],
                                      thresholds(scenario), comparator)
+    variance = variance_split(scenario, results) if spec.basis == "simulated" else None
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
-                     evpi, summary["plane"], variance_split(scenario, results), evppi=evppi)
+                     evpi, summary["plane"], variance, evppi=evppi, basis=basis)
+
+
+BASES = {"simulated": "simulated: each draw's own inner patients, with common random numbers "
+                      "across strategies",
+         "exact": "exact: each draw the mean of the patients' analytic expectations, the same "
+                  "patients in every draw (no inner Monte-Carlo noise)"}
+
+
+def draw_evaluation(scenario: Scenario, n: int):
+    """The function of (draw, values) that evaluates one draw on the scenario's basis; on
+    the exact basis the base case is tried first, so a model without an exact counterpart
+    is refused before any draw."""
+    if scenario.uncertainty.basis == "simulated":
+        return partial(evaluate_draw, scenario, n)
+    people = patients_for(scenario, n, scenario.simulation.seed)
+    base = {name: float(p.value) for name, p in scenario.parameters.items()}
+    evaluate_exact_draw(scenario, people.head(1), -1, base)
+    return partial(evaluate_exact_draw, scenario, people)

@@ -1,0 +1,116 @@
+"""Treatment that starts and stops when patients enter states, and sequences of treatments,
+as a bound model whose states carry the treatment phase.
+
+A strategy with `start_on`, `stop_on` or `then` is bound to a model in which every living
+state has one copy per phase: before treatment (when it starts on entering a state), on each
+treatment of the sequence in turn, and after the last has stopped. A move into a state that
+starts or stops the current phase's treatment goes to that state's copy in the next phase;
+every other move keeps the phase. Because the phase changes only with a move, the model stays
+a plain Markov model (with the same memory, tables and hazards as before): every engine
+simulates it as it is, and its analytic counterpart is exact by the same expanded chain as
+any other model (common practice: a treatment history as states, e.g. tunnel-like copies of
+health states by line of therapy). The strategy's time window (start, stop, eligibility,
+uptake) still applies on top: a treatment acts while the patient is in its phase and inside
+the window.
+
+Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last); the copies of
+the phase before treatment keep the states' own names, absorbing states have one copy,
+copies no patient can reach are left out, and each state's copies follow one another in the
+order of the states.
+Memory counts an entry into a copy as an entry into its state (`BoundModel.entered`).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from microsim.binding import BoundModel
+
+STOPPED = "stopped"
+
+
+@dataclass(frozen=True)
+class Line:
+    """One treatment of a sequence in numbers: what stops it, its hazard multipliers per
+    risk of the model, and its cost and utility per state."""
+    name: str
+    stop_on: tuple[str, ...]
+    on_factor: np.ndarray  # (R,)
+    cost: np.ndarray  # (S,)
+    utility: np.ndarray  # (S,)
+
+
+def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line]) -> BoundModel:
+    """`model` (bound with the first treatment's window and factors) with a treatment phase
+    in every living state."""
+    t = model.treatment
+    phases: list[Line | None] = ([None] if start_on else []) + list(lines)
+    if lines[-1].stop_on:
+        phases.append(None)
+    triggers = [start_on] if start_on else []
+    triggers += [line.stop_on for line in lines] + ([()] if lines[-1].stop_on else [])
+    suffix = ([""] if start_on else []) + [f"+{line.name}" for line in lines] + (
+        [f"+{STOPPED}"] if lines[-1].stop_on else [])
+
+    names, entered, copy = [], [], {}
+    for k in range(len(phases)):
+        for i, name in enumerate(model.states):
+            if model.absorbing[i] and k > 0:
+                copy[k, i] = copy[0, i]
+                continue
+            copy[k, i] = len(names)
+            names.append(name + ("" if model.absorbing[i] else suffix[k]))
+            entered.append(name)
+    base = np.array([model.states.index(n) for n in entered])  # the state of each copy
+
+    def phase_after(k: int, state: int) -> int:
+        """The phase a patient in phase k is in after entering `state`."""
+        return k + 1 if model.states[state] in triggers[k] else k
+
+    risks, on, off = [], [], []
+    first = lines[0]
+    for k, line in enumerate(phases):
+        for r, risk in enumerate(model.risks):
+            moves = risk.target is not None and risk.target != risk.source
+            target = None if risk.target is None else copy[
+                phase_after(k, risk.target) if moves else k, risk.target]
+            risks.append(replace(risk, source=copy[k, risk.source], target=target))
+            gated = t.off_factor[r] == 0.0  # an added transition of the first treatment
+            off.append(t.off_factor[r])
+            if line is None:
+                on.append(t.off_factor[r])
+            else:
+                on.append(line.on_factor[r] * (0.0 if gated and line is not first else 1.0))
+    start = np.zeros(len(names))
+    for i, share in enumerate(model.start):
+        start[copy[phase_after(0, i), i]] += share
+    start_effects = tuple((copy[phase_after(0, i), i], effect)
+                          for i, effect in model.start_effects)
+    cost, utility = np.zeros(len(names)), np.zeros(len(names))
+    for k, line in enumerate(phases):
+        for i in range(model.n_states):
+            if line is not None and not model.absorbing[i]:
+                cost[copy[k, i]], utility[copy[k, i]] = line.cost[i], line.utility[i]
+    # keep the copies patients can reach (from where they start, by any risk)
+    kept, stack = set(np.flatnonzero(start)), list(np.flatnonzero(start))
+    while stack:
+        e = stack.pop()
+        for risk in risks:
+            if risk.source == e and risk.target is not None and risk.target not in kept:
+                kept.add(risk.target)
+                stack.append(risk.target)
+    kept = sorted(kept, key=lambda e: (base[e], e))  # each state's copies together, in order
+    new = {e: j for j, e in enumerate(kept)}
+    live = [r for r, risk in enumerate(risks) if risk.source in new]
+    treatment = replace(t, on_factor=np.array(on)[live], off_factor=np.array(off)[live],
+                        extra_cost=cost[kept], extra_utility=utility[kept])
+    return replace(
+        model, states=tuple(names[e] for e in kept), absorbing=model.absorbing[base[kept]],
+        start=start[kept], state_cost=model.state_cost[base[kept]],
+        state_utility=model.state_utility[base[kept]],
+        risks=tuple(replace(risks[r], source=new[risks[r].source],
+                            target=None if risks[r].target is None else new[risks[r].target])
+                    for r in live),
+        treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
+        entered_names=tuple(entered[e] for e in kept))

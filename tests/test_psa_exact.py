@@ -1,0 +1,116 @@
+"""The PSA on the exact basis (`uncertainty.basis = "exact"`): each draw the mean of the
+patients' analytic expectations on one set of patients shared by every draw.
+
+References outside the project: the closed form of the expected time alive under a
+constant death rate r cut at the horizon H, L(r) = (1 - exp(-r H)) / r (common practice),
+per patient with a proportional-hazards multiplier, averaged by hand over the patients the
+population section generates; and, for the simulated basis, the same draws simulated,
+each within |z| < 4 of the exact value by its own within-draw standard error.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import replace
+
+import numpy as np
+import pytest
+
+from microsim.cli import main
+from microsim.patients.population import patients_for
+from microsim.scenario import ScenarioError, parse_scenario
+from microsim.uncertainty.psa import BASES, parameter_uncertainty
+from support import (Z, after, assert_refused, event, horizon, nested, parameters, rate,
+                     scenario_text, section, start, state, strategy)
+
+R, H, C_WELL, THRESHOLD, DIABETES_HR, PATIENTS, DRAWS = 0.1, 10.0, 1000.0, 20000.0, 1.5, 300, 12
+
+
+def model_text(*extra: str, basis: str = "exact", memory=None) -> str:
+    return scenario_text(
+        horizon(H), start(well=1.0), state("well", utility=1, cost=C_WELL),
+        state("dead", absorbing=True),
+        rate("well", "dead", R, effects=[dict(attribute="diabetes", hazard_ratio=DIABETES_HR)],
+             memory=memory),
+        parameters(hr=dict(value=0.6, distribution=dict(family="gamma", shape=36, scale=0.6 / 36)),
+                   c_drug=dict(value=500.0,
+                               distribution=dict(family="gamma", shape=25, scale=20.0))),
+        strategy("usual", comparator=True),
+        strategy("drug", changes=[nested(transition="well->dead", hazard_ratio="hr"),
+                                  nested(cost="c_drug")]),
+        section("population", size=PATIENTS),
+        *extra, section("uncertainty", draws=DRAWS, basis=basis),
+        section("economics", threshold=THRESHOLD), section("simulation", seed=3)
+    ) + '\n[[population.attributes]]\nname = "diabetes"\ndistribution = "yesno"\nprevalence = 0.3\n'
+
+
+def life(r: float) -> float:
+    return (1.0 - math.exp(-r * H)) / r
+
+
+def test_each_exact_draw_is_the_patients_closed_form_averaged_by_hand(tmp_path):
+    scenario = parse_scenario(model_text())
+    result = parameter_uncertainty(scenario, tmp_path / "psa", progress=False)
+    assert result.basis == BASES["exact"]
+    share = patients_for(scenario, PATIENTS, 3)["diabetes"].mean()  # the shared patients
+    rows = result.results.merge(result.draws, on="draw")
+    assert len(rows) == 2 * DRAWS and (rows.patients == PATIENTS).all()
+    for row in rows.itertuples():
+        hr = 1.0 if row.strategy == "usual" else row.hr
+        cost = C_WELL + (0.0 if row.strategy == "usual" else row.c_drug)
+        years = share * life(R * DIABETES_HR * hr) + (1 - share) * life(R * hr)
+        assert row.life_years == pytest.approx(years, rel=1e-9)
+        assert row.effect == pytest.approx(years, rel=1e-9)
+        assert row.cost == pytest.approx(cost * years, rel=1e-9)
+    assert (result.results.filter(like="within") == 0).all().all()
+    assert result.variance is None  # no inner noise: nothing to split
+
+
+def test_the_simulated_basis_agrees_with_the_exact_one_draw_by_draw(tmp_path):
+    exact = parameter_uncertainty(parse_scenario(model_text()),
+                                  tmp_path / "exact", progress=False)
+    simulated = parameter_uncertainty(parse_scenario(model_text(basis="simulated")),
+                                      tmp_path / "simulated", patients=2000, progress=False)
+    assert simulated.basis == BASES["simulated"]
+    np.testing.assert_array_equal(exact.draws.to_numpy(), simulated.draws.to_numpy())
+
+    def incremental_nmb(results):
+        nmb = (THRESHOLD * results.effect - results.cost).to_numpy().reshape(-1, 2)
+        return nmb[:, 1] - nmb[:, 0]
+
+    # the simulated draws have their own patients, so each differs from the exact value
+    # on the shared patients by both draws' patient sampling and the histories' noise;
+    # the within-draw variance holds both (the exact draw's own sampling error is that of
+    # the shared patients' mean, of the same size at most: counted twice to be safe)
+    within = simulated.results.incremental_nmb_within_variance.to_numpy()[1::2]
+    n = simulated.results.patients.to_numpy()[1::2]
+    z = (incremental_nmb(simulated.results) - incremental_nmb(exact.results)) / np.sqrt(
+        within / n + within / PATIENTS)
+    assert np.all(np.abs(z) < Z), z
+
+
+def test_a_model_without_an_exact_counterpart_is_refused_before_any_draw(tmp_path):
+    text = model_text(event("fall", ["well"], rate=0.2),
+                      memory=[after("fall", within=2.0, multiplier=2.0)])
+    with pytest.raises(ScenarioError) as refused:
+        parameter_uncertainty(parse_scenario(text), tmp_path / "psa", progress=False)
+    assert refused.value.path == "uncertainty.basis"
+    assert "no exact counterpart" in refused.value.message and "simulated" in refused.value.message
+    assert not (tmp_path / "psa").exists()
+
+
+def test_a_misspelt_basis_is_refused_with_the_choices():
+    assert_refused(model_text(basis="exakt"), "uncertainty.basis", "exact")
+
+
+def test_the_basis_option_overrides_the_key_and_needs_the_psa(tmp_path, capsys):
+    path = tmp_path / "drug.toml"
+    path.write_text(model_text(basis="simulated"))
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--basis", "exact", "--out", str(out)]) == 2
+    assert capsys.readouterr().err.startswith("error: --basis: only acts on the PSA")
+    assert main(["run", str(path), "--psa", "--draws", "4", "--basis", "exact",
+                 "--patients", "200", "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "PSA (4 draws; exact:" in printed
+    assert main(["run", str(path), "--psa", "--basis", "exactly", "--out", str(out)]) == 2
+    assert capsys.readouterr().err.startswith("error: --basis:")
