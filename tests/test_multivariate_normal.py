@@ -122,6 +122,8 @@ PATH = "uncertainty.multivariate_normal[0]"
     ((("coef = 0.3", "coef = -0.3"), ('["shape", "scale"]', '["shape", "scale", "coef"]')),
      f"{PATH}.parameters[2]", "drawn on the log scale"),
     (("covariance =", "covariances ="), f"{PATH}.covariances", "did you mean 'covariance'"),
+    (("coef = 0.3", 'coef = { formula = "shape - 1.7" }'), f"{PATH}.parameters[2]",
+     "is derived"),
 ])
 def test_refusals(edit, path, phrase):
     edits = edit if isinstance(edit[0], tuple) else (edit,)
