@@ -10,7 +10,8 @@ from typing import Mapping
 
 import numpy as np
 
-from microsim.hazards import (ConstantHazard, GompertzHazard, HazardFamily, LogLogisticHazard,
+from microsim.hazards import (ConstantHazard, GeneralisedGammaHazard, GompertzHazard,
+                              HazardFamily, LogLogisticHazard, LogNormalHazard,
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
 from microsim.scenario.formulas import with_derived
@@ -18,7 +19,8 @@ from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, Memo
                                     Scenario, StrategySpec, TableSpec)
 
 FAMILIES = {"constant": ConstantHazard, "weibull": WeibullHazard, "gompertz": GompertzHazard,
-            "loglogistic": LogLogisticHazard}
+            "loglogistic": LogLogisticHazard, "lognormal": LogNormalHazard,
+            "generalised_gamma": GeneralisedGammaHazard}
 
 
 def table_hazard(table: TableSpec, row=None) -> PiecewiseConstantHazard:
@@ -34,11 +36,13 @@ def table_hazard(table: TableSpec, row=None) -> PiecewiseConstantHazard:
 @dataclass(frozen=True)
 class BoundEffect:
     """Multiply the hazard by exp(log_hr * (x - centre)) (continuous) or exp(log_hr)
-    when the attribute equals `level` (categorical; yes/no: when true)."""
+    when the attribute equals `level` (categorical; yes/no: when true). With `time_ratio`,
+    log_hr is the log of a time ratio, which divides the hazard's clock instead."""
     attribute: str
     log_hr: float
     level: str | None
     centre: float
+    time_ratio: bool = False
 
 
 @dataclass(frozen=True)
@@ -205,7 +209,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     def effect(e: EffectSpec) -> BoundEffect:
         value = number(e.hazard_ratio)
         log_hr = value if e.coefficient else float(np.log(value))
-        return BoundEffect(e.attribute, log_hr, e.level, e.centre)
+        return BoundEffect(e.attribute, log_hr, e.level, e.centre, e.time_ratio)
 
     def memory(m: MemorySpec) -> BoundMemory:
         return BoundMemory(

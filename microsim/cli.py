@@ -47,7 +47,7 @@ def check_output(args) -> None:
     if not str(args.out).strip():
         raise ScenarioError("--out", "is empty; give the folder the run folders go under "
                                      "(default: outputs)")
-    folders = [out_dir(args, Path(args.scenario))]
+    folders = [out_dir(args, Path(args.data if args.command == "fit" else args.scenario))]
     if getattr(args, "psa", False):
         folders.append(psa_dir(args))
     for folder in folders:
@@ -61,13 +61,18 @@ def run_seed(args, scenario) -> int:
 
 
 def write(args, path: Path, tables: dict, started: float, documents: dict | None = None,
-          quiet: bool = False, files: dict | None = None, **extra) -> Path:
+          quiet: bool = False, files: dict | None = None, data_file: bool = False,
+          **extra) -> Path:
     """A new run folder under `<out>/<scenario>/` with the command's tables, documents and
-    files, a copy of the scenario and the manifest; `latest` points at it."""
-    from microsim.store import manifest, write_run
+    files, a copy of the scenario and the manifest; `latest` points at it. With
+    `data_file`, `path` is a data file: the manifest names it and its hash, and it is not
+    copied."""
+    from microsim.store import file_hash, manifest, write_run
+    if data_file:
+        extra = {"data": str(path), "data_sha256": file_hash(path), **extra}
     folder = write_run(out_dir(args, path), args.command, tables,
-                       manifest(path, started, args.argv, **extra), documents=documents,
-                       files=files, scenario=path)
+                       manifest(None if data_file else path, started, args.argv, **extra),
+                       documents=documents, files=files, scenario=None if data_file else path)
     if not quiet:
         count = f"{len(tables)} table{'s' if len(tables) != 1 else ''}"
         others = "".join(f", {name}" for name in (files or {}))
@@ -333,6 +338,63 @@ def command_budget(args) -> int:
     return 0
 
 
+def command_fit(args) -> int:
+    """Fit every family to time-to-event data; write the chosen fit as a scenario, with its
+    tables, figures and page."""
+    from microsim.fitting.run import CHECK_PATIENTS, fit_and_write
+    from microsim.report.fit_page import write_fit_page
+    from microsim.scenario.spec import SimulationSpec
+    from microsim.store import scratch_folder
+    started = time.perf_counter()
+    path = Path(args.data)
+    covariates = tuple(c.strip() for c in (args.covariates or "").split(",") if c.strip())
+    seed = SimulationSpec().seed if args.seed is None else args.seed
+    with scratch_folder(out_dir(args, path)) as scratch:
+        run = fit_and_write(path, args.time, args.event, covariates, args.entry, args.unit,
+                            scratch, family=args.family, form=args.form, name=args.name,
+                            horizon=args.horizon, patients=args.patients or CHECK_PATIENTS,
+                            seed=seed)
+        print_fit(run)
+        block = run.files["fitted_block.toml"].read_text()
+        page, figures = write_fit_page(scratch, run.tables, run.summary, block)
+        folder = write(args, path, run.tables, started, documents={"fit_summary": run.summary},
+                       files={**run.files, page.name: page, figures.name: figures},
+                       data_file=True, seed=seed)
+    print(f"wrote {folder / 'fitted_scenario.toml'} and {folder / page.name}")
+    print(f"\n{CAUTION}")
+    return 0
+
+
+def print_fit(run) -> None:
+    """The models ranked, a table of parameters per model, the written fit's covariance."""
+    s = run.summary
+    print(f"Fit — {s['data']}: {s['patients']} patients, {s['events']} events "
+          f"(times in {s['unit']})")
+    models = run.tables["fit_models"]
+    show("Models by AIC (log-likelihood, AIC, BIC; converged fits first)",
+         models[["rank", "label", "parameters", "log_likelihood", "aic", "bic", "delta_aic",
+                 "converged"]])
+    table = run.tables["fit_parameters"]
+    for model in models.itertuples():
+        mine = table[(table.family == model.family) & (table.form == model.form)]
+        written = "; written to the scenario" if model.chosen else ""
+        show(f"{model.rank}. {model.label}: log-likelihood {model.log_likelihood:.4f}, "
+             f"AIC {model.aic:.2f}, BIC {model.bic:.2f}{written}",
+             mine[["parameter", "estimate", "se", "lower", "upper", "natural",
+                   "natural_value"]])
+    chosen = run.chosen
+    covariance = run.tables["fit_covariance"]
+    mine = covariance[(covariance.family == chosen.family.name) & (covariance.form == chosen.form)]
+    if len(mine):
+        wide = mine.pivot(index="row", columns="column", values="covariance")
+        show("Covariance of the written fit's estimates (inverse observed information; the "
+             "PSA's multivariate normal)", wide.loc[list(chosen.names), list(chosen.names)]
+             .rename_axis(None, axis=1).reset_index().rename(columns={"row": ""}))
+    print("\nEstimates on the fit's scale with their standard errors (observed information) "
+          "and 95% Wald intervals; natural: the value as the scenario reads it.")
+    print(f"\nCheck: {s['check']['words']}.")
+
+
 def command_benchmark(args) -> int:
     from microsim.benchmark import main as benchmark
     return benchmark(quick=args.quick)
@@ -499,6 +561,38 @@ def build_parser() -> argparse.ArgumentParser:
     budget_options(run)
     run.add_argument("--report", action="store_true",
                      help="also write report.html (figures, tables, verdicts) into the run folder")
+    fit = commands.add_parser(
+        "fit", help="Fit hazards to time-to-event data and write them as a scenario.",
+        description="Fit the exponential, Weibull, Gompertz, log-normal, log-logistic and "
+                    "generalised gamma families by maximum likelihood (right censoring, "
+                    "delayed entry), covariates as proportional hazards where the family "
+                    "allows it and as accelerated failure time for all; rank them by AIC and "
+                    "write the chosen one as a scenario, with its covariance for the PSA. "
+                    + CAUTION)
+    fit.add_argument("data", metavar="DATA", help="a CSV or Parquet file, one row per patient")
+    fit.add_argument("--time", required=True, help="the column of follow-up times (> 0)")
+    fit.add_argument("--event", required=True,
+                     help="the column of events: 1 (the event at that time) or 0 (censored); "
+                          "yes/no reads as 1/0")
+    fit.add_argument("--covariates", help="columns of numbers (yes/no reads as 1/0), "
+                     "comma-separated (A,B,...)")
+    fit.add_argument("--entry", help="the column of entry times (delayed entry, in [0, time))")
+    fit.add_argument("--unit", default="years", help="the unit of the times (default years)")
+    fit.add_argument("--family", choices=("exponential", "weibull", "gompertz", "lognormal",
+                                          "loglogistic", "generalised_gamma"),
+                     help="the family to write (default: the best by AIC)")
+    fit.add_argument("--form", choices=("ph", "aft"), help="how the written fit's covariates "
+                     "act: proportional hazards or accelerated failure time (default: the "
+                     "better by AIC)")
+    fit.add_argument("--name", default="event", help="the written transition's name, and the "
+                     "prefix of its parameters (default event)")
+    fit.add_argument("--horizon", type=float, help="the horizon of the curves and of the "
+                     "written scenario (default: twice the longest follow-up, rounded up)")
+    fit.add_argument("--patients", type=COUNT, help="patients simulated to check the written "
+                     "scenario (default 5000)")
+    fit.add_argument("--seed", type=SEED, help="seed of that simulation (and of the scenario)")
+    fit.add_argument("--out", default="outputs", help="output folder (default: outputs)")
+    fit.set_defaults(function=command_fit)
     report = commands.add_parser(
         "report", help="Write report.html for an existing run folder.",
         description="Write report.html (and figures/) for an existing run folder: the "

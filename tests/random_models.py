@@ -32,6 +32,8 @@ SCALE = 1.1  # a perturbation scales one hazard (or one per-cycle probability) b
 AGE = dict(mean=60.0, sd=8.0, lower=40.0, upper=80.0)
 MARKER = dict(lower=0.0, upper=2.0)
 GROUPS = ("a", "b", "c")
+LOG_LOCATION = ("lognormal", "generalised_gamma")  # families with a location on log time
+SLOW_UNDER_AGE = ("weibull", *LOG_LOCATION)  # latent times under attained age need roots
 
 
 @dataclass(frozen=True)
@@ -61,7 +63,7 @@ class Way:
     target: str | None
     parameter: str | None = None  # its probability or rate (None: a remainder or a table)
     table: tuple | None = None  # (name, by, starts, values)
-    hazard: dict | None = None  # a rate model's Weibull or Gompertz hazard
+    hazard: dict | None = None  # a rate model's parametric hazard
     clock: str | None = None
     remainder: bool = False
     effects: list = field(default_factory=list)
@@ -78,8 +80,9 @@ class Way:
 class Draft:
     """One model being drawn: states, ways out, population, strategy, and what it covers."""
 
-    def __init__(self, rng: np.random.Generator, kind: str):
+    def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False):
         self.rng = rng
+        self.log_location = log_location  # rate models of log-location families
         self.kind = kind
         self.cycles = kind == "cycle"
         self.features: set[str] = {kind}
@@ -185,11 +188,16 @@ class Draft:
 
     def add_effects(self, way: Way):
         """Proportional-hazards effects of some attributes and of attained age (not on a
-        Weibull hazard, whose latent times under a growing multiplier take a numerical
-        root search per draw: correct, but too slow for a test of this size)."""
+        Weibull, log-normal or generalised gamma hazard, whose latent times under a growing
+        multiplier take a numerical root search per draw: correct, but too slow for a test
+        of this size); on a log-normal or generalised gamma hazard, time ratios of the
+        attributes instead (accelerated failure time)."""
+        family = way.hazard["family"] if way.hazard is not None else None
+        if family in LOG_LOCATION:
+            self.add_time_ratios(way)
+            return
         choices = list(self.attributes)
-        weibull = way.hazard is not None and way.hazard["family"] == "weibull"
-        if self.start_age is not None and not weibull:
+        if self.start_age is not None and family not in SLOW_UNDER_AGE:
             choices.append("age")
         for name in choices:
             if not self.chance(0.35):
@@ -213,6 +221,17 @@ class Draft:
                 way.effects.append(effect("smoker", hr))
                 way.worst *= max(hr, 1.0)
             self.features.add("effects")
+
+    def add_time_ratios(self, way: Way):
+        """Time ratios of some attributes: the hazard's clock divided per patient."""
+        for name in self.attributes:
+            if not self.chance(0.5):
+                continue
+            tr = self.ratio(0.6, 1.7)
+            level = self.pick(GROUPS) if name == "group" else None
+            way.effects.append(nested(attribute=name, time_ratio=tr,
+                                      **({"level": level} if level else {})))
+            self.features.add("time ratio")
 
     # -- ways out ------------------------------------------------------------------------
     def way(self, source, target, **fields) -> Way:
@@ -569,8 +588,8 @@ def cycle_perturbations(d: Draft, rows: dict[str, bool]) -> list[Perturbation]:
 
 # -------------------------------------------------------------------------- rate models
 
-def rate_model(rng: np.random.Generator, name: str) -> RandomModel:
-    d = Draft(rng, "rate")
+def rate_model(rng: np.random.Generator, name: str, log_location: bool = False) -> RandomModel:
+    d = Draft(rng, "rate", log_location)
     recipe = d.pick(["closed start"] * 2 + ["time since"] + ["semi-Markov"] * 2 + ["plain"] * 15)
     d.draw_frame()
     if recipe != "plain" and len(d.alive) < 2:
@@ -616,6 +635,9 @@ def draw_rate_way(d: Draft, s: str, t: str, entered_source: bool):
     hazard on the time-since-start or age clock (Weibull also on the time since entry
     when nothing enters the state, where that clock is the time since start)."""
     key = f"{s}_{t}"
+    if d.log_location:
+        draw_log_location_way(d, s, t, entered_source)
+        return
     aged = d.start_age is not None  # age clocks are possible: draw them more often
     kind = d.pick(["constant"] * (8 if aged else 11) + ["table"] * 3
                   + ["weibull", "gompertz"] * (5 if aged else 3))
@@ -654,6 +676,26 @@ def draw_rate_way(d: Draft, s: str, t: str, entered_source: bool):
     d.way(s, t, hazard=hazard, clock=clock)
 
 
+def draw_log_location_way(d: Draft, s: str, t: str, entered_source: bool):
+    """A constant rate, or a log-normal or generalised gamma hazard on the time since start
+    (or since entry when nothing enters the state), its median between 0.3 and 2 horizons."""
+    key = f"{s}_{t}"
+    kind = d.pick(["constant", *LOG_LOCATION, *LOG_LOCATION])
+    if kind == "constant":
+        d.way(s, t, parameter=d.parameter(f"r_{key}", d.hazard_level()))
+        return
+    clock = d.pick(["since_start"] + (["since_entry"] if not entered_source else []))
+    d.features.add(f"{kind} on {clock.replace('_', ' ')}")
+    location = math.log(d.end * d.uniform(0.3, 2.0))
+    if kind == "lognormal":
+        hazard = dict(family=kind, meanlog=d.parameter(f"m_{key}", location),
+                      sdlog=d.uniform(0.5, 1.5, 3))
+    else:
+        hazard = dict(family=kind, mu=d.parameter(f"m_{key}", location),
+                      sigma=d.uniform(0.5, 1.2, 3), q=d.uniform(-1.0, 1.5, 3))
+    d.way(s, t, hazard=hazard, clock=clock)
+
+
 def semi_markov(d: Draft):
     """Make the way out of a state that patients enter a Weibull hazard on the time since
     entry: a semi-Markov model, which has no exact counterpart here."""
@@ -675,10 +717,17 @@ def semi_markov(d: Draft):
 
 def rate_perturbations(d: Draft) -> list[Perturbation]:
     """Each named hazard scaled by 1.1: a constant or Gompertz rate times 1.1, a Weibull
-    scale times 1.1^(-1/shape) (its cumulative hazard (t / scale)^shape then grows by 1.1)."""
+    scale times 1.1^(-1/shape) (its cumulative hazard (t / scale)^shape then grows by 1.1);
+    a log-normal or generalised gamma on a clock 1.1 times faster (its location on log time
+    less log 1.1: the time ratio 1 / 1.1)."""
     out = []
     for w in d.ways:
-        if w.hazard is not None and w.hazard["family"] == "weibull":
+        if w.hazard is not None and w.hazard["family"] in LOG_LOCATION:
+            key = "meanlog" if w.hazard["family"] == "lognormal" else "mu"
+            name = w.hazard[key]
+            out.append(Perturbation(name, d.values[name] - math.log(SCALE),
+                                    f"{w.hazard['family']} clock of {w.name} x {SCALE}"))
+        elif w.hazard is not None and w.hazard["family"] == "weibull":
             name, shape = w.hazard["scale"], w.hazard["shape"]
             out.append(Perturbation(name, d.values[name] * SCALE ** (-1 / shape),
                                     f"Weibull hazard of {w.name} x {SCALE}"))
@@ -694,7 +743,13 @@ def rate_perturbations(d: Draft) -> list[Perturbation]:
 
 # ---------------------------------------------------------------------- all the models
 
-def random_models(seed: int, cycle_models: int, rate_models: int) -> list[RandomModel]:
+def random_models(seed: int, cycle_models: int, rate_models: int,
+                  log_location_models: int = 0) -> list[RandomModel]:
+    """The models of one seed; the log-location rate models come from a stream of their
+    own, so adding them leaves the others as they were."""
     rng = np.random.default_rng(seed)
-    return ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
-            + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
+    models = ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
+              + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
+    rng = np.random.default_rng([seed, 1])
+    return models + [rate_model(rng, f"log-location-{i}", log_location=True)
+                     for i in range(log_location_models)]

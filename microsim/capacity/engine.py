@@ -140,7 +140,7 @@ class Draws:
         if c not in self.batches:
             part = slice(c * CHUNK, (c + 1) * CHUNK)
             self.batches[c] = Batch(self.model, self.mult.take(part), self.ids[part], self.seed)
-        return PatientDraws(self.batches[c], row, self.mult, b)
+        return PatientDraws(self.batches[c], row, self.mult, b, self.risks)
 
     def next_round(self, p: "PatientDraws", state: int, k: int, now: float, entered: float,
                    counts, last, end: float) -> tuple[float, int | None, float]:
@@ -160,7 +160,7 @@ class Draws:
             draws = p.draws[r]
             if k == len(draws):
                 draws += batch.more_draws(p.row, r, k)
-            dt, change = latent_time(self.risks[r], draws[k], p.static[r], now, entered, p.age0,
+            dt, change = latent_time(p.views[r], draws[k], p.static[r], now, entered, p.age0,
                                      batch.memory[r], counts, last, change, p.window)
             if dt < best:
                 best, winner = dt, r
@@ -169,10 +169,11 @@ class Draws:
 
 class PatientDraws:
     __slots__ = ("batch", "row", "times", "winners", "draws", "static", "window", "age0",
-                 "start")
+                 "start", "views")
 
-    def __init__(self, batch: Batch, row: int, mult: Multipliers, b: int):
+    def __init__(self, batch: Batch, row: int, mult: Multipliers, b: int, views):
         self.batch, self.row = batch, row
+        self.views = plan.patient_views(views, {}, mult, b)  # with the patient's time ratios
         self.times = [t[row] if t else None for t in batch.times]
         self.winners = [w[row] if w else None for w in batch.winners]
         self.draws = {r: d[row] for r, d in batch.draws.items()}

@@ -51,7 +51,7 @@ CLOCK_FLOOR = 1e-12  # time units: where a falling hazard (Weibull shape < 1) is
 
 
 def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
-    """Each patient's hazard of each risk at time t since start: (B, R).
+    """Each patient's hazard of each risk at time t since start: (B, R), time ratios included.
 
     A clock at exactly 0 is read at CLOCK_FLOOR, so that a hazard that is infinite at 0
     but integrable (Weibull or log-logistic with shape < 1) stays finite for the solver;
@@ -60,8 +60,7 @@ def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
     out = mult.at(t).copy()
     for r, risk in enumerate(model.risks):
         clock = mult.entry_age + t if risk.clock == "age" else np.full(out.shape[0], t)
-        hazard = risk.hazard if (rows := mult.level_rows(r)) is None else rows  # per patient
-        out[:, r] *= hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
+        out[:, r] *= mult.hazard_for(r, risk.hazard).hazard_array(np.maximum(clock, CLOCK_FLOOR))
     return out
 
 

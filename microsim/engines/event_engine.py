@@ -144,7 +144,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         winners = [w[b] if w else None for w in batch.winners]
         draws = {r: d[b] for r, d in batch.draws.items()}
         static = statics[b]
-        views = plan.patient_views(risks, levels, b)
+        views = plan.patient_views(risks, levels, mult, b)  # own level rows and time ratios
         age0 = 0.0 if mult.entry_age is None else float(mult.entry_age[b])
         rounds = [0] * model.n_states
         state, entered, now = batch.starts[b], 0.0, 0.0

@@ -14,6 +14,7 @@ import numpy as np
 
 from microsim.binding import BoundModel
 from microsim.hazards.cycle_probabilities import log_survival
+from microsim.hazards import TimeScaledHazard
 from microsim.patients.multipliers import Multipliers
 
 CLOCKS = {"since_start": 0, "since_entry": 1, "age": 2}
@@ -78,6 +79,15 @@ class RiskView:
         """The same view with another hazard (a level's row of a table by level)."""
         return RiskView(self.risk, self.slope, self.on_factor, self.off_factor, hazard)
 
+    def scaled(self, ratio: float) -> "RiskView":
+        """The same risk under a patient's time ratio (never a constant rate's: the
+        multipliers keep that as a hazard ratio)."""
+        view = object.__new__(RiskView)
+        for name in self.__slots__:
+            object.__setattr__(view, name, getattr(self, name))
+        object.__setattr__(view, "hazard", TimeScaledHazard(self.hazard, ratio))
+        return view
+
 
 def risk_views(model: BoundModel, mult: Multipliers) -> list[RiskView]:
     """Every risk as the event engines read it, with treatment factors where the strategy's
@@ -108,14 +118,19 @@ def level_views(views: list[RiskView], mult: Multipliers) -> dict[int, tuple[lis
             for t in mult.tables}
 
 
-def patient_views(views: list[RiskView], levels: dict[int, tuple[list, list]], b: int) -> list:
-    """The views patient row b reads: its own level's hazard where a table is by level."""
-    if not levels:
-        return views
-    mine = list(views)
-    for r, (by_row, row) in levels.items():
-        mine[r] = by_row[row[b]]
-    return mine
+def patient_views(views: list[RiskView], levels: dict[int, tuple[list, list]],
+                  mult: Multipliers, b: int) -> list[RiskView]:
+    """The risk views of patient row b: its own level's hazard where a table is by level,
+    on its own clock where a time ratio acts (never both on one risk: refused when read)."""
+    mine = views
+    if levels:
+        mine = list(views)
+        for r, (by_row, row) in levels.items():
+            mine[r] = by_row[row[b]]
+    if mult.log_time_scale is None:
+        return mine
+    ratios = np.exp(mult.log_time_scale[b]).tolist()
+    return [view if ratio == 1.0 else view.scaled(ratio) for view, ratio in zip(mine, ratios)]
 
 
 def start_states(model: BoundModel, u: np.ndarray, mult: Multipliers) -> list[int]:

@@ -31,7 +31,7 @@ from math import inf
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.hazards import HazardFamily
+from microsim.hazards import HazardFamily, TimeScaledHazard
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
@@ -115,9 +115,11 @@ class _Batch:
         self.memory = plan.memory_terms(model, tracked)
         self.count_multipliers = {term: np.asarray(term[1], float) for terms in self.memory
                                   for term in terms if term[1] is not None}
+        self.mult = mult
         self.views = plan.risk_views(model, mult)
         self.levels = plan.level_views(self.views, mult)  # risk -> (a view per row, rows)
         self.level_row = {r: np.asarray(row, np.int64) for r, (_, row) in self.levels.items()}
+        self.ratios = [mult.time_ratios(r) for r in range(len(model.risks))]
         # a numerical root (no closed form under a growing multiplier) needs a search limit
         self.numerical = [bool(v.slope) and type(
             v.hazard if r not in self.levels else self.levels[r][0][0].hazard
@@ -176,26 +178,29 @@ class _Batch:
         """Time from now to risk r for each patient: the event engine's `latent_time` (a
         table by level: each level's patients with their level's hazard)."""
         if r not in self.levels:
-            return self.latent_by(self.views[r], rows, e, m, now, limit)
+            return self.latent_by(r, self.views[r], rows, e, m, now, limit)
         out = np.empty(rows.size)
         row = self.level_row[r].take(rows)
         for j, view in enumerate(self.levels[r][0]):
             mine = row == j
             if mine.any():
                 m_, now_, limit_ = (x[mine] if np.ndim(x) else x for x in (m, now, limit))
-                out[mine] = self.latent_by(view, rows[mine], e[mine], m_, now_, limit_)
+                out[mine] = self.latent_by(r, view, rows[mine], e[mine], m_, now_, limit_)
         return out
 
-    def latent_by(self, view, rows, e, m, now, limit) -> np.ndarray:
+    def latent_by(self, r: int, view, rows, e, m, now, limit) -> np.ndarray:
+        """`latent` for the patients `rows` that share the view of risk r."""
         a = (now if view.clock == "since_start" else
              now - self.entered.take(rows) if view.clock == "since_entry"
              else self.age0.take(rows) + now)
+        hazard = view.hazard if self.ratios[r] is None else \
+            TimeScaledHazard(view.hazard, self.ratios[r].take(rows))
         if view.slope:
-            return view.hazard.time_to_reach_growing_array(
+            return hazard.time_to_reach_growing_array(
                 e, a, m * np.exp(view.slope * now), view.slope, limit)
         if view.rate is not None:
             return e / (m * view.rate)  # e > 0, so a rate of 0 gives inf, as there
-        return view.hazard.time_to_reach_array(e / m, a)
+        return hazard.time_to_reach_array(e / m, a)
 
     def round(self, i: int, rows: np.ndarray) -> np.ndarray:
         """One round in state i for patient rows `rows`; returns the rows that reached the
@@ -251,7 +256,7 @@ class _Batch:
             window = (float(self.on[b]), float(self.off[b]))
             t, entered, age0 = float(now[p]), float(self.entered[b]), float(self.age0[b])
             soonest, winner, bound = inf, 0, self.end
-            views = plan.patient_views(self.views, self.levels, b)
+            views = plan.patient_views(self.views, self.levels, self.mult, b)
             for j, r in enumerate(self.from_state[i]):
                 dt, bound = latent_time(views[r], float(draws[j][p]), float(self.static[r, b]),
                                         t, entered, age0, self.memory[r], counts, last, bound,

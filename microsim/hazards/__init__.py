@@ -2,7 +2,9 @@
 
 Each family gives the hazard h(t), the cumulative hazard H(t), the survival S(t) = exp(-H(t))
 and the inverse of H on its own clock t (time since entry, time since start or attained age).
-A time to event is drawn by inverting the cumulative hazard (Bender, Augustin & Blettner 2005,
+The log-normal and the generalised gamma (`log_location`) are families of the distribution
+of log T; `TimeScaledHazard` is any family under an accelerated-failure-time effect (a
+patient's time ratio). A time to event is drawn by inverting the cumulative hazard (Bender, Augustin & Blettner 2005,
 "Generating survival times to simulate Cox proportional hazards models"): given u in (0, 1), a
 proportional-hazards multiplier m > 0 and the clock value now = a, the patient having survived
 to a (left truncation: the conditional survival is S(a + s) / S(a)), the time from now is the
@@ -25,7 +27,10 @@ construction (ValueError).
 from microsim.hazards.base import HazardFamily, solve_growing_numerically
 from microsim.hazards.parametric import (ConstantHazard, GompertzHazard, LogLogisticHazard,
                                          WeibullHazard)
+from microsim.hazards.log_location import GeneralisedGammaHazard, LogNormalHazard
 from microsim.hazards.piecewise import PiecewiseConstantHazard
+from microsim.hazards.time_scaled import TimeScaledHazard
 
 __all__ = ["HazardFamily", "ConstantHazard", "WeibullHazard", "GompertzHazard",
-           "LogLogisticHazard", "PiecewiseConstantHazard", "solve_growing_numerically"]
+           "LogLogisticHazard", "LogNormalHazard", "GeneralisedGammaHazard",
+           "PiecewiseConstantHazard", "TimeScaledHazard", "solve_growing_numerically"]

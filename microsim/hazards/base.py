@@ -93,6 +93,11 @@ class HazardFamily(ABC):
         h = self.hazard(t)
         return log(h) if h > 0.0 else -inf
 
+    def log_hazard_array(self, t) -> np.ndarray:
+        """`log_hazard` over an array (what a likelihood reads)."""
+        with np.errstate(divide="ignore"):
+            return np.log(self.hazard_array(t))
+
     def survival(self, t: float) -> float:
         """S(t) = exp(-H(t))."""
         return exp(-self.cumulative_hazard(t))

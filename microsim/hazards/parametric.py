@@ -139,6 +139,10 @@ class GompertzHazard(HazardFamily):
     def hazard_array(self, t):
         return self.rate * np.exp(self.shape * np.asarray(t, dtype=float))
 
+    def log_hazard_array(self, t):
+        with np.errstate(divide="ignore"):
+            return np.log(self.rate) + self.shape * np.asarray(t, dtype=float)
+
     def cumulative_hazard_array(self, t):
         t = np.asarray(t, dtype=float)
         if self.shape == 0.0:

@@ -1,10 +1,13 @@
-"""Proportional-hazards multipliers of each risk for each patient.
+"""Proportional-hazards multipliers and time ratios of each risk for each patient.
 
 Every risk's multiplier for a patient factorises as exp(log_static + age_slope * t):
 a fixed part from the patient's attributes, and a part that moves with time because
 attained age = age at entry + time since start (Cox 1972, "Regression models and
-life-tables"). Engines and the analytic cohort read the same two arrays, so both apply
-exactly the same model.
+life-tables"). Effects given as time ratios (accelerated failure time) make a fixed time
+ratio a = exp(log_time_scale) per patient and risk, by which the risk's clock is divided:
+h(t) = m(t) h0(t / a) / a (`microsim.hazards.time_scaled`). For a constant rate that is the
+hazard ratio 1 / a, and it is kept as one. Engines and the analytic cohort read the same
+arrays, so both apply exactly the same model.
 """
 from __future__ import annotations
 
@@ -16,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel, table_hazard
+from microsim.hazards import HazardFamily, TimeScaledHazard
 from microsim.patients.population import check_population_file, expected_covariate
 from microsim.scenario.spec import TableSpec
 
@@ -94,6 +98,7 @@ class Multipliers:
     age_slope: np.ndarray  # (risks,) log hazard ratio per time unit of attained age
     entry_age: np.ndarray | None  # (patients,) age at time 0, when known
     window: Window | None = None  # a strategy's treatment window
+    log_time_scale: np.ndarray | None = None  # (patients, risks) log time ratios, if any
     start: np.ndarray | None = None  # (patients, states) own start shares; None: the model's
     tables: tuple[LevelRows, ...] = ()  # the risks' tables by level, each patient's row
 
@@ -110,38 +115,57 @@ class Multipliers:
     def size(self) -> int:
         return self.log_static.shape[0]
 
+    def time_ratios(self, r: int) -> np.ndarray | None:
+        """Risk r's time ratio per patient, or None when no time ratio acts on it."""
+        if self.log_time_scale is None or not self.log_time_scale[:, r].any():
+            return None
+        return np.exp(self.log_time_scale[:, r])
+
+    def hazard_for(self, r: int, hazard: HazardFamily | None) -> HazardFamily:
+        """Risk r's hazard as these patients have it: each patient's own row of a table
+        by level, on their own clocks under a time ratio (one per patient, for the array
+        methods), else `hazard` itself. (A time ratio on a table is refused when read.)"""
+        rows = self.level_rows(r)
+        if rows is not None:
+            return rows
+        ratios = self.time_ratios(r)
+        return hazard if ratios is None else TimeScaledHazard(hazard, ratios)
+
     def take(self, index) -> "Multipliers":
         """The rows of some patients (an index array or slice)."""
         return Multipliers(self.log_static[index], self.age_slope,
                            None if self.entry_age is None else self.entry_age[index],
                            None if self.window is None else self.window.take(index),
+                           None if self.log_time_scale is None else self.log_time_scale[index],
                            None if self.start is None else self.start[index],
                            tuple(t.take(index) for t in self.tables))
 
-    def unique(self) -> tuple["Multipliers", np.ndarray]:
-        """The distinct patient rows and, for each patient, the index of its row: patients
-        with the same multipliers, entry age, window and rows of tables by level share one
-        analytic result."""
+    def rows(self) -> list[np.ndarray]:
+        """What makes a patient's row: multipliers, time ratios, entry age, window, start
+        shares, rows of tables by level."""
         parts = [self.log_static] + [t.row[:, None] for t in self.tables]
+        if self.log_time_scale is not None:
+            parts.append(self.log_time_scale)
         if self.entry_age is not None:
             parts.append(self.entry_age[:, None])
         if self.window is not None:
             parts += [self.window.on[:, None], self.window.off[:, None]]
         if self.start is not None:
             parts.append(self.start)
-        _, first, inverse = np.unique(np.hstack(parts), axis=0, return_index=True,
+        return parts
+
+    def unique(self) -> tuple["Multipliers", np.ndarray]:
+        """The distinct patient rows and, for each patient, the index of its row: patients
+        with the same multipliers, time ratios, entry age, window and start shares share
+        one analytic result."""
+        _, first, inverse = np.unique(np.hstack(self.rows()), axis=0, return_index=True,
                                       return_inverse=True)
         return self.take(first), inverse.ravel()
 
     def distinct(self) -> "Multipliers":
         """One row when every patient has the same multipliers and window (a uniform
         cohort), else self: the analytic side then needs one trace, not N."""
-        same = np.all(self.log_static == self.log_static[:1]) and (
-            self.entry_age is None or np.all(self.entry_age == self.entry_age[0])) and (
-            self.window is None or (np.all(self.window.on == self.window.on[0])
-                                    and np.all(self.window.off == self.window.off[0]))) and (
-            self.start is None or np.all(self.start == self.start[:1])) and all(
-            np.all(t.row == t.row[0]) for t in self.tables)
+        same = all(np.all(part == part[:1]) for part in self.rows())
         return self.take(slice(0, 1)) if same else self
 
     def repeated(self, n: int) -> "Multipliers":
@@ -182,17 +206,23 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
     else:
         ages = None
     log_static = np.zeros((n, len(model.risks)))
+    log_scale = np.zeros((n, len(model.risks)))
     slope = np.zeros(len(model.risks))
     for r, risk in enumerate(model.risks):
         for effect in risk.effects:
-            if effect.attribute == AGE and effect.level is None:
+            if effect.attribute == AGE and effect.level is None:  # never a time ratio
                 if ages is None:
                     raise ValueError(f"risk {risk.name!r} has an age effect but no age is known")
                 log_static[:, r] += effect.log_hr * (ages - effect.centre)
                 slope[r] += effect.log_hr
+                continue
+            term = effect.log_hr * (covariate(effect.attribute, effect.level) - effect.centre)
+            if not effect.time_ratio:
+                log_static[:, r] += term
+            elif risk.family == "constant":  # rate / a: the hazard ratio 1 / a
+                log_static[:, r] -= term
             else:
-                log_static[:, r] += effect.log_hr * (covariate(effect.attribute, effect.level)
-                                                      - effect.centre)
+                log_scale[:, r] += term
     start = None
     if model.start_effects:
         logits = np.tile(np.log(np.where(model.start > 0, model.start, 1.0)), (n, 1))
@@ -203,7 +233,9 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
         start = start_shares(logits, model.start > 0)
     tables = tuple(level_rows(r, risk, patients, means)
                    for r, risk in enumerate(model.risks) if risk.level_table is not None)
-    return Multipliers(log_static, slope, ages, start=start, tables=tables)
+    return Multipliers(log_static, slope, ages,
+                       log_time_scale=log_scale if log_scale.any() else None, start=start,
+                       tables=tables)
 
 
 def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
@@ -274,20 +306,23 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     uniform cohort's mean attributes (`cohort_multipliers`: the population section's
     expected values), and each with its patient's own treatment window.
 
-    The log multiplier is linear in the attributes (0/1 indicators for levels and yes/no),
-    so the mean attributes give the mean of the log multipliers: a yes/no attribute enters
-    as its share of "yes", so a hazard ratio HR on it becomes HR ** share, and a table by
-    level gives the share-weighted geometric mean of its levels' hazards (`average_row`).
-    Attained age moves on from the mean entry age. Start shares that depend on attributes
-    take the mean attributes the same way: they enter the log odds linearly. Keeping every
-    patient's window means that under a strategy
+    The log multiplier (and the log time ratio) is linear in the attributes (0/1 indicators
+    for levels and yes/no), so the mean attributes give the mean of the log multipliers: a
+    yes/no attribute enters as its share of "yes", so a hazard ratio HR on it becomes
+    HR ** share, and a table by level gives the share-weighted geometric mean of its
+    levels' hazards (`average_row`). Attained age moves on from the mean entry age. Start
+    shares that depend on attributes take the mean attributes the same way: they enter the
+    log odds linearly. Keeping every patient's window means that under a strategy
     the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
     it differs from the mean of the patients' own results."""
     n = patients.size
-    ages = None if cohort.entry_age is None else np.repeat(cohort.entry_age[:1], n)
-    start = None if cohort.start is None else np.repeat(cohort.start[:1], n, axis=0)
-    return Multipliers(np.repeat(cohort.log_static[:1], n, axis=0), cohort.age_slope, ages,
-                       patients.window, start,
+
+    def first(part):
+        return None if part is None else np.repeat(part[:1], n, axis=0)
+
+    ages = None if cohort.entry_age is None else first(cohort.entry_age)
+    return Multipliers(first(cohort.log_static), cohort.age_slope, ages, patients.window,
+                       first(cohort.log_time_scale), first(cohort.start),
                        tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables))

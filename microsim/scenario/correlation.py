@@ -1,5 +1,5 @@
 """The checks every correlation matrix of a scenario passes, whether it correlates
-population attributes or PSA parameters."""
+population attributes or PSA parameters, and those of a covariance matrix."""
 from __future__ import annotations
 
 import numpy as np
@@ -30,3 +30,30 @@ def read_correlation_matrix(node: Node, key: str, names: tuple[str, ...], *,
         node.fail("matrix", f"is not positive semi-definite: its smallest eigenvalue is "
                             f"{show(smallest)}; no set of {key} can have these correlations")
     return matrix
+
+
+COVARIANCE_TOLERANCE = 1e-9  # relative to the largest variance: symmetry, smallest eigenvalue
+
+
+def covariance_problem(covariance) -> tuple[str, str] | None:
+    """What is wrong with a covariance matrix, as (where, message), or None: finite, square,
+    variances >= 0, symmetric and positive semi-definite within COVARIANCE_TOLERANCE
+    (relative to the largest variance; the smallest eigenvalue from numpy.linalg.eigvalsh)."""
+    matrix = np.asarray(covariance, dtype=float)
+    if matrix.ndim != 2 or matrix.shape[0] != matrix.shape[1] or not np.all(np.isfinite(matrix)):
+        return "", f"must be a finite square matrix, got shape {matrix.shape}"
+    diagonal = np.diag(matrix)
+    if np.any(diagonal < 0):
+        i = int(np.argmax(diagonal < 0))
+        return f"[{i}][{i}]", f"is a variance and must be at least 0, got {diagonal[i]:.12g}"
+    scale = max(float(diagonal.max(initial=0.0)), np.finfo(float).tiny)
+    for i, j in zip(*np.nonzero(np.abs(matrix - matrix.T) > COVARIANCE_TOLERANCE * scale)):
+        if i > j:
+            return (f"[{i}][{j}]", f"{matrix[i, j]:.12g} differs from the entry across the "
+                                   f"diagonal ([{j}][{i}] = {matrix[j, i]:.12g}); a covariance "
+                                   "matrix is symmetric")
+    smallest = float(np.linalg.eigvalsh((matrix + matrix.T) / 2).min(initial=0.0))
+    if smallest < -COVARIANCE_TOLERANCE * scale:
+        return "", (f"is not positive semi-definite: its smallest eigenvalue is {smallest:.6g}; "
+                    "no set of parameters can have these covariances")
+    return None

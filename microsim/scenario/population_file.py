@@ -137,9 +137,9 @@ def read_unchanged(path: Path, weights: str | None, modified: int, size: int, in
     return PopulationFile(path, pd.DataFrame(rows), sampling, columns)
 
 
-def raw_table(path: Path) -> pd.DataFrame:
+def raw_table(path: Path, field: str = FILE) -> pd.DataFrame:
     """The file as pandas reads it: a CSV all as text (typed here, by the rule above),
-    Parquet with its own column types."""
+    Parquet with its own column types; `field` is what a refusal names."""
     try:
         with warnings.catch_warnings():
             # a first data row longer than the header would silently lose values
@@ -148,7 +148,7 @@ def raw_table(path: Path) -> pd.DataFrame:
                 return pd.read_csv(path, dtype=str, keep_default_na=False, index_col=False)
             return pd.read_parquet(path)
     except Exception as error:  # any failure of the third-party reader is a bad file
-        raise ScenarioError(FILE, f"cannot read {path.name}: {reading_problem(error)}") from None
+        raise ScenarioError(field, f"cannot read {path.name}: {reading_problem(error)}") from None
 
 
 TOKENIZING = re.compile(r"Expected (\d+) fields in line (\d+), saw (\d+)")

@@ -6,8 +6,9 @@ import math
 from dataclasses import replace
 from typing import Any, Mapping
 
-from .fields import (ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, ODDS_RATIO, POSITIVE,
-                     PROBABILITY, RATE, Node, Reference, did_you_mean, listing, show)
+from .fields import (AGE, ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, ODDS_RATIO, POSITIVE,
+                     PROBABILITY, RATE, TIME_RATIO, Node, Reference, did_you_mean, listing,
+                     show)
 from .spec import Ref
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
@@ -17,11 +18,15 @@ TRANSITION_KEYS = ("from", "to", "name") + SHARED_KEYS
 EVENT_KEYS = ("name", "states") + SHARED_KEYS
 HAZARD_KEYS = {"constant": ("rate",), "weibull": ("shape", "scale"),
                "gompertz": ("rate", "shape"), "loglogistic": ("shape", "scale"),
+               "lognormal": ("meanlog", "sdlog"), "generalised_gamma": ("mu", "sigma", "q"),
                "table": ("table",)}
-HAZARD_ROLES = {("constant", "rate"): RATE, ("gompertz", "shape"): ANY}  # others: > 0
+HAZARD_ROLES = {("constant", "rate"): RATE, ("gompertz", "shape"): ANY,
+                ("lognormal", "meanlog"): ANY, ("generalised_gamma", "mu"): ANY,
+                ("generalised_gamma", "q"): ANY}  # others: > 0
 CLOCKS = ("since_start", "since_entry", "age")
 DEFAULT_CLOCK = "since_entry"
-EFFECT_KEYS = ("attribute", "hazard_ratio", "coefficient", "centre", "level")
+RATIO_KEYS = ("hazard_ratio", "coefficient", "time_ratio", "time_coefficient")
+EFFECT_KEYS = ("attribute",) + RATIO_KEYS + ("centre", "level")
 START_EFFECT_KEYS = ("state", "attribute", "odds_ratio", "coefficient", "centre", "level")
 MEMORY_KEYS = ("after", "multipliers", "within", "multiplier")
 MAX_COEFFICIENT = 700.0  # exp(700) is close to the largest float
@@ -100,7 +105,9 @@ def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
     else:
         hazard = read_hazard(node.node("hazard", None), tables)
         table = tables[hazard.params["table"]] if hazard.family == "table" else None
-    effects = tuple(read_effect(n) for n in node.nodes("effects", EFFECT_KEYS))
+    stiff = ("a per-cycle probability has no clock to stretch" if kind == "probability" else
+             "a table of rates steps at fixed clock values" if table is not None else None)
+    effects = tuple(read_effect(n, stiff) for n in node.nodes("effects", EFFECT_KEYS))
     refuse_repeated_effects(node, effects)
     return dict(
         probability=probability, hazard=hazard, clock=read_clock(node, table),
@@ -158,34 +165,48 @@ def read_start_effects(node: Node, shares: Mapping[str, float]) -> tuple[EffectS
             effect_node.fail("state", f"{state!r} has start share 0, which no odds ratio can "
                                       "raise; give it a share in start.shares (its share at "
                                       "the reference attributes)")
-        effects.append(replace(read_effect(effect_node, "odds_ratio"), state=state))
+        effects.append(replace(read_effect(effect_node, start=True), state=state))
     effects = tuple(effects)
     refuse_repeated_effects(node, effects)
     return effects
 
 
-def read_effect(node: Node, ratio_key: str = "hazard_ratio") -> EffectSpec:
+def read_effect(node: Node, stiff: str | None = None, start: bool = False) -> EffectSpec:
+    """One effect: a hazard ratio (proportional hazards) or a time ratio (accelerated failure
+    time), or the log of either; of a start effect, an odds ratio or its log. `stiff` says
+    why the occurrence cannot take a time ratio."""
     attribute = node.name("attribute")
-    if node.one_of((ratio_key, "coefficient")) == ratio_key:
-        role = HAZARD_RATIO if ratio_key == "hazard_ratio" else ODDS_RATIO
-        ratio, is_coefficient = node.ref(ratio_key, role), False
+    key = node.one_of(("odds_ratio", "coefficient") if start else RATIO_KEYS)
+    on_time = key.startswith("time")
+    if on_time and stiff is not None:
+        node.fail(key, f"a time ratio stretches the clock of a rate or parametric hazard, and "
+                       f"{stiff}; give a hazard_ratio (or coefficient) instead")
+    if on_time and attribute == AGE:
+        node.fail(key, "attained age moves as the clock runs, and a time ratio that changes "
+                       "with the clock it stretches is not defined here; give age a "
+                       "hazard_ratio, or put the time ratio on an attribute that stays fixed "
+                       "(such as the age at entry under another name)")
+    what = "odds ratio" if start else "time ratio" if on_time else "hazard ratio"
+    if key in ("hazard_ratio", "time_ratio", "odds_ratio"):
+        role = ODDS_RATIO if start else TIME_RATIO if on_time else HAZARD_RATIO
+        ratio, is_coefficient = node.ref(key, role), False
     else:
-        coefficient = node.ref("coefficient", ANY)
+        coefficient = node.ref(key, ANY)
         if isinstance(coefficient, str):
             ratio, is_coefficient = coefficient, True
         elif abs(coefficient) > MAX_COEFFICIENT:
-            node.fail("coefficient", f"{show(coefficient)} is too large: the hazard ratio "
-                                     f"exp({show(coefficient)}) cannot be represented; "
-                                     f"give a log-hazard between -{show(MAX_COEFFICIENT)} "
-                                     f"and {show(MAX_COEFFICIENT)}")
+            node.fail(key, f"{show(coefficient)} is too large: the {what} "
+                           f"exp({show(coefficient)}) cannot be represented; give a log-"
+                           f"{what} between -{show(MAX_COEFFICIENT)} and {show(MAX_COEFFICIENT)}")
         else:
             ratio, is_coefficient = math.exp(coefficient), False
     level = node.text("level", None, nonempty=True)
     if level is not None and node.has("centre"):
-        node.fail("centre", "is only used with continuous attributes; with level the hazard "
-                            "ratio applies to patients at that level")
+        node.fail("centre", f"is only used with continuous attributes; with level the {what} "
+                            "applies to patients at that level")
     return EffectSpec(attribute=attribute, hazard_ratio=ratio, level=level,
-                      centre=node.number("centre", 0.0), coefficient=is_coefficient)
+                      centre=node.number("centre", 0.0), coefficient=is_coefficient,
+                      time_ratio=on_time)
 
 
 def read_memory(node: Node) -> MemorySpec:

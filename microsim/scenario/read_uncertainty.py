@@ -1,18 +1,20 @@
 """Reading [uncertainty]: how many PSA draws, which parameters are drawn together
-(correlated, or as the shares of a Dirichlet group), and whose EVPPI is reported."""
+(correlated, as the shares of a Dirichlet group, or from a multivariate normal), and whose
+EVPPI is reported."""
 from __future__ import annotations
 
 from .checks import undefined
-from .correlation import read_correlation_matrix
+from .correlation import covariance_problem, read_correlation_matrix
 from .errors import ScenarioError
-from .fields import IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
-from .spec import INVALID_DRAWS, PSA_BASES, Scenario, UncertaintySpec
+from .fields import ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
+from .spec import INVALID_DRAWS, PSA_BASES, NormalGroupSpec, Scenario, UncertaintySpec
 
-UNCERTAINTY_KEYS = ("draws", "patients_per_draw", "correlation", "dirichlet", "invalid_draws", "evppi",
-                    "basis")
+UNCERTAINTY_KEYS = ("draws", "patients_per_draw", "correlation", "dirichlet",
+                    "multivariate_normal", "invalid_draws", "evppi", "basis")
 MAX_EVPPI_GROUP = 4  # parameters in one group: the tensor-product smoother's limit
 CORRELATION_KEYS = ("parameters", "matrix")
 DIRICHLET_KEYS = ("parameters", "alphas")
+NORMAL_KEYS = ("parameters", "means", "covariance", "on_log_scale")
 DIRICHLET_SUM_TOLERANCE = 1e-6
 
 
@@ -37,8 +39,30 @@ def read_uncertainty(node: Node | None) -> UncertaintySpec:
         patients=node.whole("patients_per_draw", None, minimum=1, maximum=MAX_PATIENTS),
         correlation_parameters=names, correlation=matrix, dirichlets=tuple(dirichlets),
         invalid_draws=node.text("invalid_draws", defaults.invalid_draws, choices=INVALID_DRAWS),
+        normal_groups=tuple(read_normal_group(n)
+                            for n in node.nodes("multivariate_normal", NORMAL_KEYS)),
         evppi=read_evppi_groups(node),
         basis=node.text("basis", defaults.basis, choices=PSA_BASES))
+
+
+def read_normal_group(node: Node) -> NormalGroupSpec:
+    """One [[uncertainty.multivariate_normal]]: names, means, a covariance that is
+    symmetric and positive semi-definite, and the members drawn on the log scale."""
+    members = node.names("parameters")
+    means = node.numbers("means", role=ANY)
+    if len(means) != len(members):
+        node.fail("means", f"has {len(means)} means for {len(members)} parameters; give one "
+                           "mean per parameter, in the same order")
+    covariance = node.matrix("covariance", len(members), ANY, per="parameter")
+    problem = covariance_problem(covariance)
+    if problem is not None:
+        node.fail(f"covariance{problem[0]}", problem[1])
+    logged = node.names("on_log_scale") if node.has("on_log_scale") else ()
+    for i, name in enumerate(logged):
+        if name not in members:
+            node.fail(f"on_log_scale[{i}]", f"{name!r} is not one of this group's parameters "
+                                            f"({listing(members)})")
+    return NormalGroupSpec(members, means, covariance, logged)
 
 
 def read_evppi_groups(node: Node) -> tuple[tuple[str, ...], ...]:
@@ -90,7 +114,28 @@ def check_uncertainty(s: Scenario) -> list[str]:
                                 "correlated")
     check_evppi_groups(s)
     found = []
-    grouped: dict[str, int] = {}
+    grouped: dict[str, str] = {}
+    for i, group in enumerate(spec.normal_groups):
+        for j, name in enumerate(group.parameters):
+            path = f"uncertainty.multivariate_normal[{i}].parameters[{j}]"
+            defined(s, name, path)
+            if parameters[name].distribution is not None:
+                raise ScenarioError(path, f"{name!r} has its own distribution "
+                                    f"(parameters.{name}.distribution); a multivariate normal "
+                                    "group draws its members, so remove that distribution")
+            if parameters[name].formula is not None:
+                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
+                                    "multivariate normal group draws parameters that are "
+                                    "numbers")
+            if name in grouped:
+                raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
+                                    "parameter can be in one group only")
+            grouped[name] = f"uncertainty.multivariate_normal[{i}]"
+            if name in group.on_log_scale and not parameters[name].value > 0:
+                raise ScenarioError(path, f"{name!r} is drawn on the log scale (on_log_scale), "
+                                    "so every draw is above 0, but its value is "
+                                    f"{show(parameters[name].value)}; give a value above 0 or "
+                                    "draw it on its own scale")
     for i, (names, _) in enumerate(spec.dirichlets):
         for j, name in enumerate(names):
             path = f"uncertainty.dirichlet[{i}].parameters[{j}]"
@@ -103,9 +148,9 @@ def check_uncertainty(s: Scenario) -> list[str]:
                 raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
                                     "Dirichlet group draws parameters that are numbers")
             if name in grouped:
-                raise ScenarioError(path, f"{name!r} is already in uncertainty.dirichlet"
-                                    f"[{grouped[name]}]; a parameter can be in one group only")
-            grouped[name] = i
+                raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
+                                    "parameter can be in one group only")
+            grouped[name] = f"uncertainty.dirichlet[{i}]"
         total = sum(parameters[name].value for name in names)
         if abs(total - 1.0) > DIRICHLET_SUM_TOLERANCE:
             found.append(f"uncertainty.dirichlet[{i}]: the base values of {listing(names)} sum "
@@ -120,8 +165,10 @@ def defined(s: Scenario, name: str, path: str) -> None:
 
 def check_evppi_groups(s: Scenario) -> None:
     """Every EVPPI parameter is defined and drawn by the PSA (a distribution that varies,
-    or a Dirichlet group): a parameter that never varies has no value of information."""
+    a Dirichlet or a multivariate normal group): a parameter that never varies has no value
+    of information."""
     drawn = {name for names, _ in s.uncertainty.dirichlets for name in names}
+    drawn |= {name for group in s.uncertainty.normal_groups for name in group.parameters}
     drawn |= {name for name, p in s.parameters.items()
               if p.distribution is not None and p.distribution.family != "fixed"}
     for i, group in enumerate(s.uncertainty.evppi):

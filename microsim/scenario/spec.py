@@ -24,7 +24,8 @@ REMAINDER = "remainder"
 Correction = Literal["none", "half-cycle", "trapezoidal", "simpson"]
 Clock = Literal["since_start", "since_entry", "age"]
 TableAxis = Literal["age", "time", "time_in_state"]  # or None: by level alone
-HazardFamily = Literal["constant", "weibull", "gompertz", "loglogistic", "table"]
+HazardFamily = Literal["constant", "weibull", "gompertz", "loglogistic", "lognormal",
+                       "generalised_gamma", "table"]
 
 CLOCK_OF_TABLE_AXIS: Mapping[str, Clock] = {
     "age": "age", "time": "since_start", "time_in_state": "since_entry"}
@@ -75,7 +76,10 @@ class HazardSpec:
     Parameters by family (time in the scenario's unit):
       constant: rate; weibull: shape, scale (H = (t/scale)^shape);
       gompertz: rate, shape (h = rate * exp(shape * t));
-      loglogistic: shape, scale (H = log(1 + (t/scale)^shape)); table: table (a name).
+      loglogistic: shape, scale (H = log(1 + (t/scale)^shape));
+      lognormal: meanlog, sdlog (log T ~ Normal(meanlog, sdlog));
+      generalised_gamma: mu, sigma, q (Prentice 1974; see microsim.hazards.log_location);
+      table: table (a name).
     """
     family: HazardFamily
     params: Mapping[str, Ref]
@@ -83,14 +87,17 @@ class HazardSpec:
 
 @dataclass(frozen=True)
 class EffectSpec:
-    """Proportional-hazards effect of one attribute: the hazard is multiplied by
+    """Effect of one attribute. Proportional hazards: the hazard is multiplied by
     hazard_ratio ** (x - centre) for a continuous attribute, or by hazard_ratio when a
-    categorical attribute equals `level` (yes/no attributes: when yes)."""
+    categorical attribute equals `level` (yes/no attributes: when yes). With `time_ratio`
+    (accelerated failure time) the same power of the ratio divides the clock of the hazard
+    instead: S(t) = S0(t / ratio)."""
     attribute: str
-    hazard_ratio: Ref  # a coefficient c in the file is stored here as exp(c) when literal
+    hazard_ratio: Ref  # the ratio; a coefficient c in the file is stored as exp(c) when literal
     level: str | None = None
     centre: float = 0.0
-    coefficient: bool = False  # True when `hazard_ratio` holds a log-hazard coefficient
+    coefficient: bool = False  # True when `hazard_ratio` holds the log of the ratio
+    time_ratio: bool = False  # True: the ratio is a time ratio (time_ratio, time_coefficient)
     state: str | None = None  # start effects: the start state whose odds it multiplies
 
 
@@ -381,15 +388,30 @@ PSA_BASES = ("simulated", "exact")
 
 
 @dataclass(frozen=True)
+class NormalGroupSpec:
+    """Parameters drawn together from one multivariate normal: `means` and `covariance` on
+    the drawn scale, which is the log for the members named in `on_log_scale`."""
+    parameters: tuple[str, ...]
+    means: tuple[float, ...]
+    covariance: tuple[tuple[float, ...], ...]
+    on_log_scale: tuple[str, ...] = ()
+
+    @property
+    def on_log(self) -> tuple[bool, ...]:
+        return tuple(name in self.on_log_scale for name in self.parameters)
+
+
+@dataclass(frozen=True)
 class UncertaintySpec:
-    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows, and
-    what to do with invalid draws."""
+    """PSA settings: outer draws, inner patients per draw, correlation, Dirichlet rows,
+    multivariate normal groups, and what to do with invalid draws."""
     draws: int = 100
     patients: int | None = None  # default: the population size
     correlation_parameters: tuple[str, ...] = ()
     correlation: tuple[tuple[float, ...], ...] = ()
     dirichlets: tuple[tuple[tuple[str, ...], tuple[float, ...]], ...] = ()  # (names, alphas)
     invalid_draws: str = "refuse"  # one of INVALID_DRAWS
+    normal_groups: tuple[NormalGroupSpec, ...] = ()
     evppi: tuple[tuple[str, ...], ...] = ()  # parameter groups whose EVPPI is reported
     basis: str = "simulated"  # one of PSA_BASES: each draw simulated, or its exact mixture
 

@@ -15,10 +15,11 @@ import numpy as np
 import pandas as pd
 
 from .distributions import Dirichlet, Distribution, correlation_root, draw_parameters, make_distribution
+from .multivariate_normal import MultivariateNormal
 from .. import streams
 from ..scenario.errors import ScenarioError
 from ..scenario.formulas import with_derived
-from ..scenario.spec import ParameterSpec
+from ..scenario.spec import NormalGroupSpec, ParameterSpec
 
 Correlation = tuple[Sequence[str], object]
 """Parameter names and their correlation matrix (rows and columns in that order)."""
@@ -101,24 +102,46 @@ def _copula_matrix(scalars: Sequence[str], correlation: Correlation | None,
     return full
 
 
+def _normal_groups(parameters: Mapping[str, ParameterSpec], groups: Sequence[NormalGroupSpec],
+                   taken: set[str]) -> dict[str, tuple[list[str], MultivariateNormal]]:
+    """Checked multivariate normal groups keyed "multivariate_normal[i]"."""
+    out: dict[str, tuple[list[str], MultivariateNormal]] = {}
+    for i, group in enumerate(groups):
+        path = f"multivariate_normal[{i}]"
+        names = _known(group.parameters, parameters, path)
+        if taken & set(names):
+            raise ScenarioError(path, f"{sorted(taken & set(names))[0]!r} is already in another group")
+        try:
+            out[path] = names, MultivariateNormal(group.means, group.covariance, group.on_log)
+        except ValueError as error:
+            raise ScenarioError(path, str(error)) from None
+        taken |= set(names)
+    return out
+
+
 class ParameterSampler:
     """The scenario's PSA distributions, checked once, ready to draw any draws.
 
     `correlation` (names, matrix) correlates named parameters through a Gaussian copula,
     keeping each marginal. Each Dirichlet group (names, alphas) fills its parameters from
-    one Dirichlet draw, component k from the uniforms of parameter k. Parameters without a
+    one Dirichlet draw, and each multivariate normal group (`NormalGroupSpec`) from one
+    draw of its normal, component k from the uniforms of parameter k. Parameters without a
     distribution keep their value in every draw."""
 
     def __init__(self, parameters: Mapping[str, ParameterSpec], correlation: Correlation | None = None,
-                 dirichlets: Sequence[DirichletGroup] = ()):
+                 dirichlets: Sequence[DirichletGroup] = (),
+                 normal_groups: Sequence[NormalGroupSpec] = ()):
         if "draw" in parameters:
             raise ScenarioError("parameters.draw", "'draw' names the draw column of PSA tables; rename the parameter")
         self.parameters = parameters
         self.groups = _dirichlet_groups(parameters, dirichlets)
+        taken = {name for names, _ in self.groups.values() for name in names}
+        self.normals = _normal_groups(parameters, normal_groups, taken)
         self.uncertain: dict[str, Distribution] = {
             name: _distribution(spec) for name, spec in parameters.items() if spec.distribution is not None}
         self.matrix = _copula_matrix(list(self.uncertain), correlation, parameters)
-        self.columns = [*self.uncertain, *(name for names, _ in self.groups.values() for name in names)]
+        self.columns = [*self.uncertain, *(name for groups in (self.groups, self.normals)
+                                           for names, _ in groups.values() for name in names)]
 
     def draws(self, seed: int, ids: np.ndarray, attempts=0) -> pd.DataFrame:
         """Draws `ids` (column `draw`), then one float column per parameter; draw d reads
@@ -127,21 +150,27 @@ class ParameterSampler:
         uniforms = np.empty((len(ids), len(self.columns)))
         for j, name in enumerate(self.columns):
             uniforms[:, j] = streams.uniforms(seed, ids, purpose(name), attempts)
+        own = len(self.columns) - sum(len(names) for names, _ in self.normals.values())
         drawn = draw_parameters({**self.uncertain, **{key: d for key, (_, d) in self.groups.items()}},
-                                uniforms, self.matrix)
+                                uniforms[:, :own], self.matrix)
         values = {name: np.full(len(ids), spec.value, dtype=float) for name, spec in self.parameters.items()}
         values.update({name: drawn[name] for name in self.uncertain})
         for key, (names, _) in self.groups.items():
             values.update({name: drawn[key][:, k] for k, name in enumerate(names)})
+        for names, normal in self.normals.values():
+            joint = normal.ppf(uniforms[:, [self.columns.index(name) for name in names]])
+            values.update({name: joint[:, k] for k, name in enumerate(names)})
         values = with_derived(self.parameters, values)  # vectorised over the draws
         return pd.DataFrame({"draw": ids.astype(np.int64), **values})
 
 
 def parameter_draws(parameters: Mapping[str, ParameterSpec], seed: int, n_draws: int,
                     correlation: Correlation | None = None,
-                    dirichlets: Sequence[DirichletGroup] = ()) -> pd.DataFrame:
+                    dirichlets: Sequence[DirichletGroup] = (),
+                    normal_groups: Sequence[NormalGroupSpec] = ()) -> pd.DataFrame:
     """PSA draws, wide: column `draw` (0..n_draws-1), then one float column per parameter
     (see `ParameterSampler`)."""
     if isinstance(n_draws, bool) or not isinstance(n_draws, (int, np.integer)) or n_draws < 1:
         raise ScenarioError("n_draws", f"must be a whole number >= 1, got {n_draws!r}")
-    return ParameterSampler(parameters, correlation, dirichlets).draws(seed, np.arange(n_draws))
+    return ParameterSampler(parameters, correlation, dirichlets,
+                            normal_groups).draws(seed, np.arange(n_draws))

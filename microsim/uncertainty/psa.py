@@ -177,18 +177,19 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     if seed is not None:
         scenario = replace(scenario, simulation=replace(scenario.simulation, seed=seed))
     spec = scenario.uncertainty
-    if not spec.dirichlets and not any(
+    if not spec.dirichlets and not spec.normal_groups and not any(
             p.distribution is not None and p.distribution.family != "fixed"
             for p in scenario.parameters.values()):
         raise ScenarioError("parameters", "no parameter has a distribution (nor a Dirichlet "
-                            "group), so every PSA draw would be the base case; give the "
-                            "uncertain parameters a distribution")
+                            "or multivariate normal group), so every PSA draw would be the "
+                            "base case; give the uncertain parameters a distribution")
     n_draws = spec.draws if draws is None else draws
     n = next(v for v in (patients, spec.patients,
                          scenario.population.size if scenario.population else None, 1000)
              if v is not None)
     correlation = (spec.correlation_parameters, spec.correlation) if spec.correlation else None
-    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets)
+    sampler = ParameterSampler(scenario.parameters, correlation, spec.dirichlets,
+                               spec.normal_groups)
     # every draw checked (refused, redrawn or truncated) before anything is simulated
     check_evppi_draws(scenario, n_draws)
     checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)

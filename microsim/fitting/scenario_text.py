@@ -1,0 +1,117 @@
+"""A fit written as scenario text: a transition's hazard with its covariate effects, its
+parameters, and their joint uncertainty, with where the numbers come from.
+
+The block names its parameters `<name>_<key>` (`event_shape`, `event_fin`): values on the
+scenario's scale, so the hazard reads them as they are; the 95% interval of each as `low`
+and `high` (for one-way sensitivity); and one `[[uncertainty.multivariate_normal]]` over
+all of them on the fit's own scale (log scale, log shape, coefficients) with the fit's
+covariance, the log-scale members named in `on_log_scale`. A proportional-hazards fit
+writes `coefficient` (a log hazard ratio), an accelerated-failure-time fit
+`time_coefficient` (a log time ratio), each at the covariate's centre (the data's mean),
+as the fit estimated them. Numbers are written with repr, so they read back bit for bit.
+"""
+from __future__ import annotations
+
+import json
+from datetime import datetime, timezone
+
+import numpy as np
+
+from microsim.fitting.data import SurvivalData
+from microsim.fitting.estimate import Fit
+from microsim.fitting.families import AFT
+from microsim.fitting.kaplan_meier import Z95
+
+FROM, TO = "at_risk", "after_event"  # the states of the scenario around the block
+PATIENTS_FILE = "fit_patients.csv"
+
+
+def number(x: float) -> str:
+    return repr(float(x))
+
+
+def parameter_names(fit: Fit, name: str) -> list[str]:
+    return [f"{name}_{key}" for key in fit.family.parameters] + [
+        f"{name}_{c}" for c in fit.covariates]
+
+
+def provenance(fit: Fit, data: SurvivalData, unit: str, day: str) -> str:
+    entry = f", entry from column {data.entry_column!r}" if data.entry_column else ""
+    return (f"Fitted by `microsim fit` on {day} from {data.path.name} (SHA-256 "
+            f"{data.sha256}): the {fit.label} model, by maximum likelihood; {data.size} "
+            f"patients, {data.events} events, times in {unit} from column "
+            f"{data.time_column!r}, events from {data.event_column!r}{entry}; "
+            f"log-likelihood {fit.log_likelihood:.4f}, AIC {fit.aic:.2f}.")
+
+
+def comment(text: str, width: int = 88) -> str:
+    lines, line = [], "#"
+    for word in text.split():
+        if len(line) + 1 + len(word) > width:
+            lines.append(line)
+            line = "#"
+        line += " " + word
+    return "\n".join(lines + [line])
+
+
+def block(fit: Fit, data: SurvivalData, name: str, unit: str, day: str | None = None) -> str:
+    """The transition, [parameters] and the multivariate normal of a fit, with a comment
+    that says where they come from."""
+    day = day or datetime.now(timezone.utc).date().isoformat()
+    names = parameter_names(fit, name)
+    p = len(fit.family.parameters)
+    hazard = ", ".join(f'{key} = "{n}"' for key, n in zip(fit.family.parameters, names))
+    lines = [comment(provenance(fit, data, unit, day) + (
+                 " Covariates are centred at the data's means, so the hazard's parameters "
+                 "describe a patient at those values." if fit.covariates else "")),
+             "[[transitions]]", f'from = "{FROM}"', f'to = "{TO}"', f'name = "{name}"',
+             f'hazard = {{ family = "{fit.family.scenario}", {hazard} }}',
+             'clock = "since_entry"']
+    key = "time_coefficient" if fit.form == AFT else "coefficient"
+    for covariate, centre, parameter in zip(fit.covariates, fit.centres, names[p:]):
+        lines += ["", "  [[transitions.effects]]", f'  attribute = "{covariate}"',
+                  f'  {key} = "{parameter}"', f"  centre = {number(centre)}"]
+    lines += ["", comment("Values on the scenario's scale; low and high: the 95% Wald interval "
+                          "of the fit (on its own scale, mapped back)."), "[parameters]"]
+    logged = list(fit.family.on_log) + [False] * len(fit.covariates)
+    se = fit.se
+    for n, estimate, error, log in zip(names, fit.estimate, se, logged):
+        back = np.exp if log else float
+        low, high = back(estimate - Z95 * error), back(estimate + Z95 * error)
+        ranged = f", low = {number(low)}, high = {number(high)}" if np.isfinite(error) else ""
+        lines.append(f"{n} = {{ value = {number(back(estimate))}{ranged} }}")
+    if fit.covariance is not None:
+        rows = ",\n  ".join("[" + ", ".join(number(c) for c in row) + "]"
+                            for row in fit.covariance)
+        lines += ["", comment("The fit's estimates and covariance (the inverse observed "
+                              "information) on the scale it estimated them: the PSA draws "
+                              "them together."),
+                  "[[uncertainty.multivariate_normal]]", f"parameters = {json.dumps(names)}",
+                  f"means = [{', '.join(number(x) for x in fit.estimate)}]",
+                  f"covariance = [\n  {rows}]",
+                  f"on_log_scale = {json.dumps([n for n, log in zip(names, logged) if log])}"]
+    return "\n".join(lines) + "\n"
+
+
+def nice_cycle(horizon: float) -> float:
+    """A report step: the horizon over 50, which divides it exactly in decimal."""
+    return horizon / 50.0
+
+
+def scenario(fit: Fit, data: SurvivalData, name: str, unit: str, horizon: float, seed: int,
+             day: str | None = None) -> str:
+    """A whole scenario around the block: at risk -> after the event, the data's patients as
+    the population (their covariates, `fit_patients.csv` beside it), over `horizon`."""
+    day = day or datetime.now(timezone.utc).date().isoformat()
+    title = f"Time to event fitted to {data.path.name}: {fit.label}"
+    population = (f"\n[population]\npatients = {data.size}\nfile = \"{PATIENTS_FILE}\"\n"
+                  if fit.covariates else "")
+    text = "\n".join([
+        f"title = {json.dumps(title)}",
+        f"description = {json.dumps('One way out of ' + FROM + ', fitted to patient-level data; the data file is described in the comment above the transition.')}",
+        f"provenance = {json.dumps(provenance(fit, data, unit, day))}",
+        "", "[time]", f'unit = "{unit}"', f"cycle = {number(nice_cycle(horizon))}",
+        f"horizon = {number(horizon)}", "", "[start]", f"shares = {{ {FROM} = 1 }}", "",
+        "[[states]]", f'name = "{FROM}"', "", "[[states]]", f'name = "{TO}"', "absorbing = true",
+        population, "[simulation]", f"seed = {seed}", "", block(fit, data, name, unit, day)])
+    return text
