@@ -142,7 +142,7 @@ states = ["well", "ill"]
 rate = 0.6
 memory = [{ after = "flare", within = 0.5, multiplier = 2 }]
 [population]
-size = 5000
+patients = 5000
 [[population.attributes]]
 name = "age"
 distribution = "normal"
