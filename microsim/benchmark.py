@@ -335,16 +335,30 @@ def psa_timings(draws: int, patients: int) -> dict:
             seconds[name] = time.perf_counter() - started
     split = results["one"].variance.iloc[0]
     noise = split.within_draw_variance / split.patients_per_draw
-    return {**seconds, "noise_share": noise / (split.between_draw_variance + noise)}
+    between = split.between_draw_variance
+    if not between > 0:  # the draws' spread is all inner noise at this size
+        return {**seconds, "noise_share": 1.0, "needed": None, "equal": None}
+    # patients a simulated draw needs for its noise to be EQUAL_NOISE of the spread, and
+    # the simulated PSA's time then (taken as proportional to the patients per draw)
+    needed = patients * noise / (EQUAL_NOISE / (1 - EQUAL_NOISE) * between)
+    return {**seconds, "noise_share": noise / (between + noise), "needed": needed,
+            "equal": seconds["one"] * max(needed / patients, 1.0) / seconds["exact"]}
 
 
+EQUAL_NOISE = 0.05  # the simulated draws' inner noise as a share of their spread
+
+
+# The peak is the process's own high-water mark (VmHWM, reset by exec), not getrusage's
+# ru_maxrss, which Linux carries over from the parent through fork and exec.
 MEMORY_SCRIPT = """
-import resource, sys
+import sys
 from microsim.benchmark import demo_path
 from microsim.workflow import run_main
 with demo_path() as path:
     run_main(path, patients=int(sys.argv[1]))
-print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024)
+with open("/proc/self/status") as status:
+    kb = next(int(line.split()[1]) for line in status if line.startswith("VmHWM:"))
+print(kb * 1024)
 """
 
 
@@ -398,7 +412,11 @@ def main(quick: bool = False) -> int:
     print(f"PSA of the demo, {draws} draws of {per_draw:,} patients: exact basis "
           f"{p['one'] / p['exact']:.2f} x as fast as simulated ({p['exact']:.1f} s against "
           f"{p['one']:.1f} s), and free of the inner noise that is "
-          f"{100 * p['noise_share']:.1f}% of the simulated draws' spread")
+          f"{100 * p['noise_share']:.1f}% of the simulated draws' spread" + (
+              "" if p["needed"] is None else
+              f"; for that noise to be {100 * EQUAL_NOISE:.0f}% a simulated draw needs about "
+              f"{p['needed']:,.0f} patients, and the exact basis is then {p['equal']:.1f} x as "
+              "fast (time taken as proportional to the patients per draw)"))
     print(f"PSA with 2 workers: {p['one'] / p['two']:.2f} x as fast as with 1 (target >= 1.8: "
           f"{verdict(p['one'] / p['two'], 1.8)})")
     small, large = (20_000, 60_000) if quick else (100_000, 400_000)
