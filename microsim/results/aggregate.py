@@ -79,7 +79,7 @@ def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None
         cell = (rows + states[:, t])[counted]  # one cell per patient: no repeats
         for w in range(3):
             out[w, cell] += weights[t, w]
-    return np.moveaxis(out.reshape(3, B, S), 0, -1)
+    return np.ascontiguousarray(np.moveaxis(out.reshape(3, B, S), 0, -1))
 
 
 def exposure(model: BoundModel, h: Histories, window: Window | None = None,
