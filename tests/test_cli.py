@@ -503,12 +503,19 @@ def test_an_engine_the_model_cannot_use_is_refused_before_any_work(tmp_path, cap
 def test_a_reader_that_closes_the_pipe_ends_the_command_quietly(tmp_path):
     # `microsim trace ... | head -2`: no traceback, the shell's code for a closed pipe,
     # and nothing half-written: the run's files are all there (with their manifest) or none
-    scenario = ROOT / "scenarios" / "ward_recovery.toml"
-    command = f"'{ENTRY_POINT}' trace '{scenario}' --out '{tmp_path}' --rows 1000 | head -2"
+    # a trace of some 200 kB, far more than a pipe holds, so the write that follows
+    # head's exit fails whatever the timing (a short one may be written whole before)
+    scenario = tmp_path / "long.toml"
+    scenario.write_text(scenario_text(horizon(8000), start(well=1.0), state("well"),
+                                      state("dead", absorbing=True),
+                                      probability("well", "dead", 1e-5),
+                                      probability("well", "well", "remainder")))
+    command = (f"'{ENTRY_POINT}' trace '{scenario}' --out '{tmp_path / 'out'}' --rows 8000 "
+               "| head -2")
     done = subprocess.run(["bash", "-c", f"{command}; echo ${{PIPESTATUS[0]}} >&2"],
                           capture_output=True, text=True, timeout=120)
     assert "Traceback" not in done.stderr and done.stderr.split()[-1] == "141", done.stderr
-    written = list(tmp_path.rglob("*.csv"))
+    written = list((tmp_path / "out").rglob("*.csv"))
     assert not written or (written[0].parent / "manifest.json").is_file()
 
 
