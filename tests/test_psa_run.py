@@ -113,15 +113,16 @@ def test_the_seed_given_keys_the_draws_and_the_inner_patients(tmp_path):
     assert not psa.evaluate_draw(seeded(2), PATIENTS, 0, values).equals(mine)
 
 
-def test_a_folder_of_another_seed_is_refused_and_left_as_it_was(tmp_path):
-    run(tmp_path, seed=1)
-    folder = tmp_path / "psa"
+def test_a_psa_with_another_seed_gets_its_own_folder_and_leaves_the_first_as_it_was(tmp_path):
+    first = run(tmp_path, seed=1)
+    root = tmp_path / "psa"
+    (folder,) = list(root.iterdir())
     before = {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()}
     assert json.loads((folder / "psa.json").read_text())["fingerprint"]["seed"] == 1
-    with pytest.raises(ScenarioError) as caught:
-        run(tmp_path, seed=2)
-    assert caught.value.path == "psa" and "different PSA" in caught.value.message
+    run(tmp_path, seed=2)
+    assert len(list(root.iterdir())) == 2
     assert {p: p.read_bytes() for p in folder.rglob("*") if p.is_file()} == before
+    pd.testing.assert_frame_equal(run(tmp_path, seed=1).results, first.results)  # reused
 
 
 # ------------------------------------------------------------- nothing half-written

@@ -19,6 +19,8 @@ nothing to split). The base case is still simulated and validated by `microsim r
 """
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 from dataclasses import dataclass, replace
 from functools import partial
@@ -37,6 +39,7 @@ from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
 from microsim.uncertainty.draw_checks import check_draws
+from microsim.uncertainty.folder import draws_hash
 from microsim.uncertainty.draws import ParameterSampler
 from microsim.uncertainty.one_way import patient_values
 from microsim.uncertainty.summaries import draw_intervals
@@ -197,7 +200,7 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
                    "microsim": __version__, "draw_columns": DRAW_COLUMNS, "basis": spec.basis}
-    results = run_draws(draw_evaluation(scenario, n), table, Path(run_dir),
+    results = run_draws(draw_evaluation(scenario, n), table, own_folder(run_dir, fingerprint, table),
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
@@ -212,6 +215,15 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     variance = variance_split(scenario, results) if spec.basis == "simulated" else None
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
                      evpi, summary["plane"], variance, evppi=evppi, basis=basis)
+
+
+def own_folder(root: Path, fingerprint: dict, draws: pd.DataFrame) -> Path:
+    """The folder of this PSA under `root`, named by a hash of its settings and its
+    parameter draws: the same PSA resumes (or reuses) its own draws, and a PSA with other
+    settings (a seed, a basis, more patients) gets a folder of its own beside it."""
+    settings = json.dumps({"fingerprint": fingerprint, "draws": draws_hash(draws)},
+                          sort_keys=True, default=str)
+    return Path(root) / hashlib.sha256(settings.encode()).hexdigest()[:12]
 
 
 BASES = {"simulated": "simulated: each draw's own inner patients, with common random numbers "
