@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from collections import Counter
 from contextlib import nullcontext
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -107,6 +107,17 @@ class MainResult:
     tables: dict[str, pd.DataFrame] = field(default_factory=dict)
 
 
+def refuse_too_few(scenario: Scenario, patients: int | None) -> None:
+    """Strategies are compared on paired per-patient differences, whose standard errors
+    need two patients at least."""
+    spec = scenario.population
+    n = patients if patients is not None else (spec.size if spec else DEFAULT_PATIENTS)
+    if scenario.strategies and n < 2:
+        where = "--patients" if patients is not None else "population.patients"
+        raise ScenarioError(where, f"is {n}; comparing strategies needs at least 2 patients "
+                                   "(their paired differences have a standard error)")
+
+
 def run_main(path: Path, patients: int | None = None, seed: int | None = None,
              psa: dict | None = None, engine: str = "auto",
              invalid_draws: str | None = None, options: dict | None = None) -> MainResult:
@@ -126,6 +137,9 @@ def run_main(path: Path, patients: int | None = None, seed: int | None = None,
         return run_service(scenario, seed, patients)
     choose_engine(bind(scenario), engine)
     scenario_patients(scenario, seed, np.arange(1))  # a population file is checked first
+    if patients is not None and scenario.population is not None:  # --patients is the key
+        scenario = replace(scenario, population=replace(scenario.population, size=patients))
+    refuse_too_few(scenario, patients)
     psa_result = None if psa is None else parameter_uncertainty(scenario, seed=seed, **psa)
     run = run_population(scenario, patients, seed, engine)
     decision = (decide(scenario, run.outcomes, run.patients, run.treated)

@@ -13,6 +13,7 @@ import math
 from dataclasses import replace
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from microsim.cli import main
@@ -114,3 +115,16 @@ def test_the_basis_option_overrides_the_key_and_needs_the_psa(tmp_path, capsys):
     assert "PSA (4 draws; exact:" in printed
     assert main(["run", str(path), "--psa", "--basis", "exactly", "--out", str(out)]) == 2
     assert capsys.readouterr().err.startswith("error: --basis:")
+
+
+def test_patients_given_on_the_command_line_are_the_psa_s_per_draw_default(tmp_path, capsys):
+    path = tmp_path / "drug.toml"
+    path.write_text(model_text(basis="simulated"))
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--psa", "--draws", "2", "--patients", "150",
+                 "--out", str(out)]) == 0
+    draws = pd.read_parquet(out / "drug" / "latest" / "psa_draws.parquet")
+    assert (draws.patients == 150).all()  # population.patients, as --patients set it
+    assert main(["run", str(path), "--patients", "1", "--out", str(out)]) == 2
+    assert capsys.readouterr().err.startswith("error: --patients: is 1; comparing strategies "
+                                              "needs at least 2 patients")
