@@ -131,7 +131,8 @@ class Report:
                     (lambda: figures.acceptability_figure(
                         run.table("acceptability"), self.threshold, self.strategy_labels,
                         self.currency)) if has_psa else None, psa_reason)
-        acceptability = run.table("acceptability") if has_psa else None
+        exact = has_psa and str(s["psa"].get("basis", "")).startswith("exact")
+        acceptability = run.table("acceptability") if has_psa and not exact else None
         self.figure("acceptability_noise_removed",
                     "Acceptability curves without the inner patients' noise",
                     "As above, after each draw's incremental net benefit is moved towards the "
@@ -144,7 +145,8 @@ class Report:
                     if acceptability is not None
                     and "probability_best_noise_removed" in acceptability
                     and acceptability.probability_best_noise_removed.notna().any() else None,
-                    psa_reason if not has_psa else "The PSA's draws carry no within-draw "
+                    psa_reason if not has_psa else "The PSA is on the exact basis: its draws "
+                    "carry no inner noise to take out." if exact else "The PSA's draws carry no within-draw "
                     "variances (one inner patient each, or written by an older microsim).")
         evpi = run.table("evpi") if has_psa else None
         self.figure("evpi", "Expected value of perfect information",
@@ -296,7 +298,8 @@ class Report:
         if "psa" in self.summary and "comparator" in self.summary:
             at = run.table("acceptability")
             near = at.loc[(at.threshold - self.threshold).abs().idxmin(), "threshold"]
-            noise = "probability_best_noise_removed" in at
+            noise = "probability_best_noise_removed" in at and not str(
+                self.summary["psa"].get("basis", "")).startswith("exact")
             found.append(tables.table("acceptability", at[at.threshold == near], [
                 Column("strategy", ("strategy",), self.label),
                 Column("probability highest NMB", ("probability_best",), percent),
@@ -429,6 +432,7 @@ class Report:
             "provenance": s.get("provenance", ""), "caution": CAUTION,
             "scenario_note": self.scenario_note, "manifest": self.run.manifest,
             "summary": s, "currency": self.currency, "time_unit": self.time_unit,
+            "psa_basis": s.get("psa", {}).get("basis"),
             "strategy_labels": self.strategy_labels,
             "decision": decision(s, self.strategy_labels),
             "decision_tables": self.decision_tables(),
