@@ -155,9 +155,10 @@ def command_chain(args) -> int:
         if part.note:
             print(part.note)
     outcomes = expected_outcomes(model)
-    show(f"Expected outcomes per patient (discount rates per time unit, {scenario.time.unit}: "
-         f"costs {model.discount_costs:g}, effects {model.discount_effects:g}; within-cycle "
-         f"correction {model.correction})", outcomes)
+    rule = f"; within-cycle correction {model.correction}" if model.discrete else ""
+    show(f"Expected outcomes per patient (discounted as [outcomes] says: effective rates per "
+         f"{scenario.time.unit.rstrip('s')} of {model.discount_costs:g} for costs and "
+         f"{model.discount_effects:g} for effects{rule})", outcomes)
     write(args, path, {**summary.tables(), "expected_outcomes": outcomes}, started)
     print(f"{cohort_note(scenario)}\n{CAUTION}")
     return 0
@@ -216,6 +217,12 @@ def command_run(args) -> int:
         print(json.dumps(data, indent=2))
     else:
         report(result)
+        if not isinstance(result, ServiceResult):  # what --sensitivity and --budget added
+            from microsim.present import print_budget, print_sensitivity
+            if args.sensitivity:
+                print_sensitivity(result.scenario, tables)
+            if args.budget:
+                print_budget(result.scenario, tables)
     folder = write(args, path, tables, started, documents={"summary": data},
                    quiet=args.json, seed=result.seed, patients=data["patients"])
     if args.report:

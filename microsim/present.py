@@ -18,6 +18,9 @@ if TYPE_CHECKING:
 
 def show(title: str, table: pd.DataFrame, rows: int = 40) -> None:
     print(f"\n{title}")
+    if table.empty:
+        print("(none)")
+        return
     print(table.to_string(index=False, max_rows=rows, float_format=lambda x: f"{x:.6g}"))
 
 

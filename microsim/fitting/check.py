@@ -34,6 +34,7 @@ def simulated_check(scenario_path: Path, fit: Fit, data: SurvivalData, patients:
     sim = simulate(model, people, seed)
     table = compare(sim).survival
     fitted, _ = average_curves(fit, data, table.time.to_numpy())
+    fitted = np.clip(fitted, 0.0, 1.0)  # round-off can put a survival a hair outside
     se_fitted = np.sqrt(fitted * (1.0 - fitted) / sim.size)
     return pd.DataFrame({"time": table.time, "fitted": fitted, "simulated": table.simulated,
                          "se_fitted": se_fitted,
