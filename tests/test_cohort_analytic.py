@@ -74,9 +74,19 @@ def test_cycle_occurrences_counted_at_cycle_end_with_discount():
 def test_cycle_occupancy_half_cycle_rule():
     # the scenario format's half-cycle rule: cycle * (pi_0 / 2 + pi_1 + ... + pi_{n-1})
     # (docs/scenario-format.md; Sonnenberg & Beck 1993, from memory)
-    result = analytic(model_of(CYCLE_MODEL))
+    half = CYCLE_MODEL.replace("discount_costs = 0.05", 'discount_costs = 0.05\ncorrection = "half-cycle"')
+    result = analytic(model_of(half))
     trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
     expected = trace[0] / 2 + trace[1:-1].sum(axis=0)
+    np.testing.assert_allclose(result.exposure.occupancy[0, :, 0], expected, rtol=1e-12)
+
+
+def test_cycle_occupancy_by_default_is_the_trapezoidal_rule():
+    # the default: cycle * (pi_0 / 2 + pi_1 + ... + pi_{n-1} + pi_n / 2), the trapezoidal
+    # rule (Elbasha & Chhatwal 2016), which counts the patients still alive at the horizon
+    result = analytic(model_of(CYCLE_MODEL))
+    trace = hand_recursion(CYCLE_START, CYCLE_P, 20)
+    expected = trace[0] / 2 + trace[1:-1].sum(axis=0) + trace[-1] / 2
     np.testing.assert_allclose(result.exposure.occupancy[0, :, 0], expected, rtol=1e-12)
 
 

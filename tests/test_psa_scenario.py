@@ -103,15 +103,16 @@ def test_an_interrupted_run_resumes_to_the_same_tables(reference, tmp_path, monk
     monkeypatch.setattr(sys.modules[__name__], "MARKER", tmp_path / "interrupted")
     monkeypatch.setattr(psa, "evaluate_draw", interrupting_evaluate)
     EVALUATED.clear()
-    run_dir = tmp_path / "run"
+    root = tmp_path / "run"
     with pytest.raises(KeyboardInterrupt):
-        parameter_uncertainty(SCENARIO, run_dir, workers=1, progress=False)
+        parameter_uncertainty(SCENARIO, root, workers=1, progress=False)
+    (run_dir,) = root.iterdir()  # the PSA's own folder, named by its settings
     # finished draws stay on disk, the interrupted one and the total do not
     kept = sorted(p.name for p in (run_dir / folder.DRAWS).iterdir())
     assert kept == [folder.draw_path(run_dir, d).name for d in (0, 1, 2)]
     assert not (run_dir / folder.RESULTS).exists()
     EVALUATED.clear()
-    resumed = parameter_uncertainty(SCENARIO, run_dir, workers=1, progress=False)
+    resumed = parameter_uncertainty(SCENARIO, root, workers=1, progress=False)
     assert EVALUATED == [3, 4, 5]  # only the draws not yet on disk
     assert_same(resumed, reference)
 

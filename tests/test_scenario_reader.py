@@ -92,7 +92,7 @@ def test_lakemoor_values_land_in_their_fields():
     assert table.starts[:3] == (0.0, 60.0, 65.0) and table.values[-1] == 0.28
 
     assert (s.outcomes.discount_costs, s.outcomes.discount_effects, s.outcomes.correction) == \
-        (0.035, 0.035, "half-cycle")
+        (0.035, 0.035, "trapezoidal")
     pop = s.population
     assert pop.size == 5000 and pop.file is None
     attributes = {a.name: a for a in pop.attributes}
@@ -137,7 +137,7 @@ def test_defaults():
     assert (t.name, t.clock, t.cost, t.disutility, t.effects, t.memory) == \
         ("a->b", "since_entry", 0.0, 0.0, (), ())
     assert s.start.age is None and s.start.shares == {"a": 1.0, "b": 0.0}
-    assert s.outcomes.correction == "half-cycle" and s.outcomes.discount_costs == 0.0
+    assert s.outcomes.correction == "trapezoidal" and s.outcomes.discount_costs == 0.0
     assert s.population is None and s.events == () and s.parameters == {}
     assert s.simulation.batch_size == 20000 and s.simulation.validation_patients == 100_000
 

@@ -230,7 +230,7 @@ def read_outcomes(node: Node | None) -> OutcomesSpec:
     return OutcomesSpec(
         discount_costs=node.number("discount_costs", 0.0, role=NON_NEGATIVE),
         discount_effects=node.number("discount_effects", 0.0, role=NON_NEGATIVE),
-        correction=node.text("correction", "half-cycle", choices=CORRECTIONS),
+        correction=node.text("correction", "trapezoidal", choices=CORRECTIONS),
         discounting=node.text("discounting", "annual", choices=DISCOUNTINGS))
 
 

@@ -240,7 +240,7 @@ instantaneous rates per year, factor exp(-r t) (t in years)."""
 class OutcomesSpec:
     discount_costs: float = 0.0  # per year, read as `discounting` says
     discount_effects: float = 0.0
-    correction: Correction = "half-cycle"
+    correction: Correction = "trapezoidal"
     discounting: str = "annual"  # one of DISCOUNTINGS
 
 
