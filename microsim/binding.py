@@ -142,6 +142,8 @@ class BoundModel:
     # cycle models with a delay to treatment: the state a patient who stays in its state
     # passes to at a cycle end (the next copy of the countdown; None: the state itself)
     stay_to: np.ndarray | None = None
+    # with treatment phases: which states are copies on a treatment (None: no phases)
+    treated_states: np.ndarray | None = None
 
     def entered(self, state: int) -> str:
         """The name memory counts an entry into `state` under: its own, or for a copy of

@@ -108,6 +108,10 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
     start_effects = tuple((copy[phase_after(0, i), i], effect)
                           for i, effect in model.start_effects)
     cost, utility = np.zeros(len(names)), np.zeros(len(names))
+    treated = np.zeros(len(names), bool)
+    for k, line in enumerate(phases):
+        for i in range(model.n_states):
+            treated[copy[k, i]] |= line is not None and not model.absorbing[i]
     for k, line in enumerate(phases):
         for i in range(model.n_states):
             if line is not None and not model.absorbing[i]:
@@ -140,4 +144,5 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                     for r in live),
         treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
         entered_names=tuple(entered[e] for e in kept),
-        stay_to=None if not waits else np.array([new[stay[e]] for e in kept]))
+        stay_to=None if not waits else np.array([new[stay[e]] for e in kept]),
+        treated_states=treated[kept])

@@ -206,3 +206,17 @@ def test_a_later_treatment_that_could_lift_a_row_above_1_is_refused():
                  then=[nested(name="second",
                               changes=[nested(transition="die_b", hazard_ratio=1.5)])]))
     assert_refused(text, "strategies.treat.transitions.b->*", "above 1")
+
+
+def test_the_patients_treated_are_those_who_reach_the_trigger():
+    # start 0.1 in progressed, the rest stable: a patient reaches progressed by the horizon
+    # with probability 0.1 + 0.9 * r / (r + mu) * (1 - exp(-(r + mu) H)) (competing
+    # exponentials, common practice); the count treated is binomial around it
+    from microsim.decision.strategies import treated_count
+    scenario = parse_scenario(scenario_text(*PATHWAY, COMPARATOR, SEQUENCE))
+    n = 4000
+    sim = simulate(bind(scenario, strategy="treat"), cohort_patients(n), seed=5)
+    r, mu, h = 0.2, 0.02, 12.0
+    p = 0.1 + 0.9 * r / (r + mu) * (1 - np.exp(-(r + mu) * h))
+    z = (treated_count(sim) - n * p) / np.sqrt(n * p * (1 - p))
+    assert abs(z) < 4, (treated_count(sim), n * p)

@@ -160,8 +160,15 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
 
 
 def treated_count(sim: Simulation) -> int:
-    """How many of a simulation's patients its strategy puts on treatment at some time."""
-    return 0 if sim.mult.window is None else int(np.isfinite(sim.mult.window.on).sum())
+    """How many of a simulation's patients its strategy puts on treatment at some time:
+    with a window, those whose window opens; where treatment starts on entering a state
+    (treatment phases), those who spent time in a treated copy of a state while eligible."""
+    if sim.mult.window is None:
+        return 0
+    treated = sim.model.treated_states
+    if treated is None:
+        return int(np.isfinite(sim.mult.window.on).sum())
+    return int((sim.exposure.on_treatment[:, treated, 0].sum(axis=1) > 0).sum())
 
 
 @dataclass(frozen=True)
