@@ -202,8 +202,9 @@ def read_effect(node: Node, stiff: str | None = None, start: bool = False) -> Ef
             ratio, is_coefficient = math.exp(coefficient), False
     level = node.text("level", None, nonempty=True)
     if level is not None and node.has("centre"):
-        node.fail("centre", f"is only used with continuous attributes; with level the {what} "
-                            "applies to patients at that level")
+        node.fail("level", f"cannot be combined with centre: level is for a categorical or "
+                           f"yes/no attribute (the {what} applies to patients at that level), "
+                           f"centre for a continuous one; keep the one that fits {attribute!r}")
     return EffectSpec(attribute=attribute, hazard_ratio=ratio, level=level,
                       centre=node.number("centre", 0.0), coefficient=is_coefficient,
                       time_ratio=on_time)
