@@ -279,7 +279,7 @@ CASES = [
      "transitions.well->sick.effects[0].level", "is required: 'sex' is categorical"),
     ("centre with level", "discrete",
      [('attribute = "marker"', 'attribute = "sex"\n  level = "male"\n  centre = 1')],
-     "transitions.well->sick.effects[0].centre", "only used with continuous attributes"),
+     "transitions.well->sick.effects[0].level", "cannot be combined with centre"),
     ("centre for a yes/no attribute", "discrete",
      [('attribute = "marker"', 'attribute = "smoker"\n  centre = 1')],
      "transitions.well->sick.effects[0].centre", "'smoker' is a yes/no attribute"),
