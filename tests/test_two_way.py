@@ -149,3 +149,15 @@ def test_the_option_overrides_the_key_and_a_bad_value_names_the_option(tmp_path,
     lines = capsys.readouterr().err.splitlines()
     assert len(lines) == 1 and lines[0].startswith("error: --two-way: no parameter named 'nothing'")
     assert not (tmp_path / "o2").exists()
+
+
+def test_a_row_above_1_at_the_base_case_is_refused_at_its_row_not_at_the_grid():
+    from support import horizon, parameters, probability, scenario_text, start, state
+    text = scenario_text(
+        horizon(5), start(well=1.0), state("well"), state("dead", absorbing=True),
+        state("ill"), probability("well", "dead", "p_a"), probability("well", "ill", "p_b"),
+        probability("well", "well", "remainder"), probability("ill", "dead", 0.1),
+        probability("ill", "ill", "remainder"),
+        parameters(p_a=dict(value=0.6, low=0.5, high=0.7), p_b=dict(value=0.5, low=0.4, high=0.6)),
+        section("sensitivity", two_way=["p_a", "p_b"]))
+    assert_refused(text, "transitions.well->*", "1.1")

@@ -140,9 +140,9 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
-    check_sensitivity(draft, reading.references)
     uses = reading.references + check_row_structure(draft)
-    check_row_bounds(draft)
+    check_row_bounds(draft)  # the base case first, so its refusal names the rows themselves
+    check_sensitivity(draft, reading.references)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))
 
 
