@@ -433,7 +433,7 @@ def _number_rows(name: str, column: pd.Series) -> list[tuple]:
     statistics = {"mean": column.mean(), "sd": column.std(), "min": column.min()}
     statistics |= {label: column.quantile(q) for label, q in _QUANTILES.items()}
     statistics["max"] = column.max()
-    return [(name, statistic, None, float(value)) for statistic, value in statistics.items()]
+    return [(name, statistic, "", float(value)) for statistic, value in statistics.items()]
 
 
 def _share_rows(name: str, column: pd.Series) -> list[tuple]:
