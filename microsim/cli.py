@@ -635,7 +635,9 @@ def main(argv: list[str] | None = None) -> int:
             check_output(args)
         return args.function(args)
     except ScenarioError as error:
-        print(f"error: {error}", file=sys.stderr)
+        from microsim.scenario.options import named_by_option  # a key an option gave
+        given = {} if args is None else scenario_options(args)
+        print(f"error: {named_by_option(error, given)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except OutputError as error:
         print(f"error: --out: could not write {error.filename} ({error.strerror}); free some "
