@@ -84,7 +84,7 @@ def test_too_few_draws_for_a_group_are_refused_before_any_draw(tmp_path, capsys)
     code, _ = run(tmp_path, "--draws", "20", "--evppi", "hr,c_drug")
     assert code == 2
     assert capsys.readouterr().err.startswith(
-        "error: uncertainty.evppi[0]: EVPPI of 2 parameter(s) needs at least 32 PSA draws")
+        "error: --evppi: EVPPI of 2 parameter(s) needs at least 32 PSA draws")
     assert not (tmp_path / "out").exists()
 
 

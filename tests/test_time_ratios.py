@@ -70,7 +70,7 @@ BASE = one_way_out(dict(family="weibull", shape=1.2, scale=5.0), [time_effect("f
     (("time_ratio = 1.5", "time_coefficient = 900"),
      "transitions.well->dead.effects[0].time_coefficient", "too large: the time ratio"),
     (("time_ratio = 1.5", "time_ratio = 1.5\n  level = \"x\"\n  centre = 1"),
-     "transitions.well->dead.effects[0].centre", "with level the time ratio"),
+     "transitions.well->dead.effects[0].level", "cannot be combined with centre"),
     (('attribute = "frail"', 'attribute = "age"'),
      "transitions.well->dead.effects[0].time_ratio", "attained age moves"),
     (('family = "weibull", shape = 1.2, scale = 5.0', 'family = "lognormal", meanlog = 1'),
