@@ -112,6 +112,14 @@ class HistoryFile:
                 os.replace(self.partial, self.path)  # complete, so it takes its name
 
 
+def phase_codes(model: BoundModel) -> np.ndarray | None:
+    """Under treatment phases, each state's code for the histories: 1 on a treatment, 0
+    off it, -1 absorbing (dying on treatment stops nothing); None without phases."""
+    if model.treated_states is None:
+        return None
+    return np.where(model.absorbing, -1, model.treated_states.astype(np.int8))
+
+
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,
              grid: np.ndarray | None = None, histories: Path | HistoryFile | None = None,
              mult: Multipliers | None = None, engine: str = "auto") -> Simulation:
@@ -139,6 +147,6 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             histories.write(h.table(patients.iloc[part], model.states,
                                     [r.name for r in model.risks],
                                     None if model.treatment is None else model.treatment.strategy,
-                                    batch.window))
+                                    batch.window, phase_codes(model)))
     return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
                       Exposure.join(exposures), transitions)

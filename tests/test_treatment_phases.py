@@ -220,3 +220,19 @@ def test_the_patients_treated_are_those_who_reach_the_trigger():
     p = 0.1 + 0.9 * r / (r + mu) * (1 - np.exp(-(r + mu) * h))
     z = (treated_count(sim) - n * p) / np.sqrt(n * p * (1 - p))
     assert abs(z) < 4, (treated_count(sim), n * p)
+
+
+def test_histories_give_the_time_treatment_starts_not_the_strategy_s_window(tmp_path):
+    # by hand from the same records: a patient's treatment starts at its first entry into
+    # a treated copy (a name with "+treat" or "+second"); the sequence never stops
+    import pandas as pd
+    scenario = parse_scenario(scenario_text(*PATHWAY, COMPARATOR, SEQUENCE))
+    path = tmp_path / "histories.parquet"
+    simulate(bind(scenario, strategy="treat"), cohort_patients(300), seed=3, histories=path)
+    h = pd.read_parquet(path)
+    treated = h[h.to_state.astype(str).str.contains(r"\+(treat|second)$")]
+    by_hand = treated.groupby("patient").time.min()
+    given = h.groupby("patient").treatment_start.first()
+    pd.testing.assert_series_equal(given.dropna(), by_hand, check_names=False)
+    assert 0 < len(by_hand) < 300 and (by_hand > 0).any()
+    assert h.treatment_stop.isna().all()

@@ -46,8 +46,23 @@ class Histories:
     # hand (the vectorised cycle engine), so it need not be rebuilt from the records
     cycle_states: np.ndarray | None = None
 
+    def treatment_times(self, window, phases: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+        """Each patient's start and stop of treatment: the window's, or under treatment
+        phases (`phases`: per state 1 on a treatment, 0 off, -1 absorbing) the first entry
+        into a treated state inside the window and the first entry after it into an
+        untreated living state (or the window's end)."""
+        on, off = np.asarray(window.on, float), np.asarray(window.off, float)
+        if phases is None:
+            return on, off
+        p, t, code = self.patient, self.time, phases[self.target]
+        start = np.full(self.n_patients, np.inf)
+        np.minimum.at(start, p, np.where((code == 1) & (on[p] <= t) & (t < off[p]), t, np.inf))
+        stop = off.copy()
+        np.minimum.at(stop, p, np.where((code == 0) & (t > start[p]), t, np.inf))
+        return start, np.where(np.isinf(start), np.inf, stop)
+
     def table(self, patients, state_names, risk_names, strategy: str | None = None,
-              window=None) -> pa.Table:
+              window=None, phases: np.ndarray | None = None) -> pa.Table:
         """The records as a typed Arrow table: patient id, time, from state, to state,
         event, then the patient's attributes (`patients`: the batch's rows, with ids in
         column 'patient'); under a strategy, its name and each patient's time on treatment
@@ -71,8 +86,9 @@ class Histories:
             table = table.append_column("strategy", pa.DictionaryArray.from_arrays(
                 pa.array(np.zeros(len(self.time), np.int32)), pa.array([strategy])))
         if window is not None:
-            for name, times in (("treatment_start", window.on), ("treatment_stop", window.off)):
-                at = np.asarray(times, float)[self.patient]
+            for name, times in zip(("treatment_start", "treatment_stop"),
+                                   self.treatment_times(window, phases)):
+                at = times[self.patient]
                 table = table.append_column(name, pa.array(np.where(np.isinf(at), None, at),
                                                            pa.float64()))
         attributes = patients.drop(columns="patient").iloc[self.patient].reset_index(drop=True)
