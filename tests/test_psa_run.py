@@ -149,3 +149,16 @@ def test_a_psa_with_nothing_uncertain_is_refused_before_any_work(tmp_path):
         parameter_uncertainty(certain, tmp_path / "psa", progress=False)
     assert refused.value.path == "parameters" and "would be the base case" in refused.value.message
     assert not (tmp_path / "psa").exists()
+
+
+def test_the_split_says_why_when_there_is_nothing_to_split():
+    assert "one patient per draw" in psa.split_note(1.0, float("nan"), 1, None)
+    assert "nothing to split" in psa.split_note(0.0, 0.0, 100, None)
+    # the note's figure is the noise variance of a draw's mean: within / n, and says so
+    assert "over 100 patients: 0.05" in psa.split_note(0.01, 5.0, 100, None)
+
+
+def test_a_value_of_information_interval_stops_at_0():
+    from microsim.report.tables import nonnegative_interval, normal_interval
+    assert nonnegative_interval(10.0, 80.0).split("(")[1].startswith("0 ")
+    assert normal_interval(10.0, 80.0).split("(")[1].startswith("-")

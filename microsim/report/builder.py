@@ -24,7 +24,8 @@ from microsim.report import figures, tables
 from microsim.report.folder import RunFolder
 from microsim.report.structure import structure_figure
 from microsim.report.style import rendered
-from microsim.report.tables import CI95, Column, interval, normal_interval, number, percent, whole
+from microsim.report.tables import (CI95, Column, interval, nonnegative_interval,
+                                    normal_interval, number, percent, whole)
 from microsim.report.words import decision
 
 REPORT = "report.html"
@@ -325,7 +326,7 @@ class Report:
                 found.append(tables.table("evppi", evppi[evppi.threshold == near], [
                     Column("parameters", ("group",)),
                     Column(f"EVPPI per patient ({cur}), {CI95}", ("evppi", "se"),
-                           normal_interval),
+                           nonnegative_interval),
                     Column(f"EVPI per patient ({cur})", ("evpi",), number),
                     *([Column(f"population EVPPI ({cur})", ("population_evppi",), number)]
                       if "population_evppi" in evppi else []),

@@ -64,6 +64,14 @@ def normal_interval(mean, se) -> str:
     return interval(mean, mean - Z95 * se, mean + Z95 * se)
 
 
+def nonnegative_interval(mean, se) -> str:
+    """`normal_interval` of a quantity that cannot be below 0 (a value of information):
+    its lower end at 0 at least."""
+    if missing(se):
+        return number(mean)
+    return interval(mean, max(mean - Z95 * se, 0.0), mean + Z95 * se)
+
+
 def plain(x) -> str:
     return "–" if missing(x) else str(x)
 

@@ -163,10 +163,16 @@ def split_note(spread: float, within: float, n: int, split) -> str:
     """Why the split suggests what it does, or nothing, in words."""
     if not np.isfinite(spread):
         return "one draw: no spread between draws to split"
+    if not np.isfinite(within):
+        return ("one patient per draw: no within-draw variance to split by; give more "
+                "patients per draw")
+    if spread <= 0 and within <= 0:
+        return "the draws do not differ and nor do their patients: nothing to split"
     if split is None:
-        return (f"the spread between draws ({spread:.4g}) is no more than the patients' "
-                f"noise in a draw's mean ({within / n:.4g}): the draws tell parameter "
-                "uncertainty apart from Monte-Carlo noise only with more patients per draw")
+        return (f"the spread between draws ({spread:.4g}) is no more than the noise variance "
+                f"of a draw's mean (the within-draw variance over {n} patients: "
+                f"{within / n:.4g}): the draws tell parameter uncertainty apart from "
+                "Monte-Carlo noise only with more patients per draw")
     return "the split of the same number of patients that estimates the between-draw variance best"
 
 
