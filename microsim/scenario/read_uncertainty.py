@@ -118,18 +118,7 @@ def check_uncertainty(s: Scenario) -> list[str]:
     for i, group in enumerate(spec.normal_groups):
         for j, name in enumerate(group.parameters):
             path = f"uncertainty.multivariate_normal[{i}].parameters[{j}]"
-            defined(s, name, path)
-            if parameters[name].distribution is not None:
-                raise ScenarioError(path, f"{name!r} has its own distribution "
-                                    f"(parameters.{name}.distribution); a multivariate normal "
-                                    "group draws its members, so remove that distribution")
-            if parameters[name].formula is not None:
-                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
-                                    "multivariate normal group draws parameters that are "
-                                    "numbers")
-            if name in grouped:
-                raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
-                                    "parameter can be in one group only")
+            drawn_by_group(s, name, path, "a multivariate normal group", grouped)
             grouped[name] = f"uncertainty.multivariate_normal[{i}]"
             if name in group.on_log_scale and not parameters[name].value > 0:
                 raise ScenarioError(path, f"{name!r} is drawn on the log scale (on_log_scale), "
@@ -139,23 +128,31 @@ def check_uncertainty(s: Scenario) -> list[str]:
     for i, (names, _) in enumerate(spec.dirichlets):
         for j, name in enumerate(names):
             path = f"uncertainty.dirichlet[{i}].parameters[{j}]"
-            defined(s, name, path)
-            if parameters[name].distribution is not None:
-                raise ScenarioError(path, f"{name!r} has its own distribution "
-                                    f"(parameters.{name}.distribution); a Dirichlet group "
-                                    "draws its members, so remove that distribution")
-            if parameters[name].formula is not None:
-                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); a "
-                                    "Dirichlet group draws parameters that are numbers")
-            if name in grouped:
-                raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a "
-                                    "parameter can be in one group only")
+            drawn_by_group(s, name, path, "a Dirichlet group", grouped)
             grouped[name] = f"uncertainty.dirichlet[{i}]"
         total = sum(parameters[name].value for name in names)
         if abs(total - 1.0) > DIRICHLET_SUM_TOLERANCE:
             found.append(f"uncertainty.dirichlet[{i}]: the base values of {listing(names)} sum "
                          f"to {show(total)}, not 1; every PSA draw of the group sums to 1")
     return found
+
+
+def drawn_by_group(s: Scenario, name: str, path: str, group: str,
+                   grouped: dict[str, str]) -> None:
+    """A member of a group that draws its parameters together (`group`, in words) must be
+    a defined number, with no distribution of its own, in no other group."""
+    defined(s, name, path)
+    parameter = s.parameters[name]
+    if parameter.distribution is not None:
+        raise ScenarioError(path, f"{name!r} has its own distribution (parameters.{name}."
+                                  f"distribution); {group} draws its members, so remove that "
+                                  "distribution")
+    if parameter.formula is not None:
+        raise ScenarioError(path, f"{name!r} is derived (computed by its formula); {group} "
+                                  "draws parameters that are numbers")
+    if name in grouped:
+        raise ScenarioError(path, f"{name!r} is already in {grouped[name]}; a parameter can "
+                                  "be in one group only")
 
 
 def defined(s: Scenario, name: str, path: str) -> None:
