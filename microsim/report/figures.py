@@ -178,16 +178,22 @@ def evpi_figure(evpi: pd.DataFrame, threshold: float, currency: str) -> Figure:
         ax = figure.subplots()
         rows = evpi.sort_values("threshold")
         ax.plot(rows.threshold, rows.evpi, color=TONES[0], linewidth=1.6, label="EVPI per patient")
-        ax.axvline(threshold, color=INK, linestyle=(0, (4, 3)), linewidth=0.8,
-                   label=f"threshold {threshold:,.0f}")
-        ax.set_ylim(bottom=0)
-        ax.set_xlabel(f"willingness to pay ({currency} per QALY)")
-        ax.set_ylabel(f"EVPI per patient ({currency})")
-        thousands(ax.xaxis)
-        thousands(ax.yaxis)
+        value_axes(ax, threshold, currency, f"EVPI per patient ({currency})")
         population_axis(ax, rows, "evpi", f"population EVPI (millions of {currency})")
         ax.legend(loc="best")
     return figure
+
+
+def value_axes(ax, threshold: float, currency: str, label: str) -> None:
+    """The axes of a value of information over the threshold range: the threshold
+    marked, values from 0, both axes in thousands."""
+    ax.axvline(threshold, color=INK, linestyle=(0, (4, 3)), linewidth=0.8,
+               label=f"threshold {threshold:,.0f}")
+    ax.set_ylim(bottom=0)
+    ax.set_xlabel(f"willingness to pay ({currency} per QALY)")
+    ax.set_ylabel(label)
+    thousands(ax.xaxis)
+    thousands(ax.yaxis)
 
 
 def population_axis(ax, rows: pd.DataFrame, column: str, label: str) -> None:
@@ -215,13 +221,7 @@ def evppi_figure(evppi: pd.DataFrame, threshold: float, currency: str) -> Figure
             style, rows = series_style(k + 1), evppi[evppi.group == group].sort_values("threshold")
             ax.plot(rows.threshold, rows.evppi, color=style["color"],
                     linestyle=style["linestyle"], linewidth=1.5, label=wrapped(group, 40))
-        ax.axvline(threshold, color=INK, linestyle=(0, (4, 3)), linewidth=0.8,
-                   label=f"threshold {threshold:,.0f}")
-        ax.set_ylim(bottom=0)
-        ax.set_xlabel(f"willingness to pay ({currency} per QALY)")
-        ax.set_ylabel(f"value per patient ({currency})")
-        thousands(ax.xaxis)
-        thousands(ax.yaxis)
+        value_axes(ax, threshold, currency, f"value per patient ({currency})")
         population_axis(ax, first, "evppi", f"population value (millions of {currency})")
         figure.legend(loc="outside lower center", ncols=2)
     return figure
