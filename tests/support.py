@@ -232,10 +232,9 @@ def assert_moments_match(sample: np.ndarray, mean: float, variance: float):
 
 # ------------------------------------------------------------------ engine identity
 
-def assert_engines_agree(model, ids, seed, rtol: float = 0.0):
-    """The vectorised engine gives the SimPy engine's histories for `model` (cycle or rate
-    model): records equal, times equal (or within `rtol`, for rate models), and every risk
-    that is recorded (staying put is not) happens at least once, so an equality of empty histories cannot pass."""
+def both_engines(model, ids, seed):
+    """Histories of the SimPy engine and of the vectorised one of the model's kind (cycle
+    or rate) for patients `ids` in one batch, and the multipliers both read."""
     import pandas as pd
     from microsim.engines.cycle_engine import simulate_cycles
     from microsim.engines.event_engine import simulate_events
@@ -249,7 +248,14 @@ def assert_engines_agree(model, ids, seed, rtol: float = 0.0):
     mult = patient_multipliers(model, patients, seed)
     pair = ((simulate_cycles, simulate_cycles_vectorised) if model.discrete
             else (simulate_events, simulate_events_vectorised))
-    expected, got = (engine(model, mult, ids, seed) for engine in pair)
+    return (*(engine(model, mult, ids, seed) for engine in pair), mult)
+
+
+def assert_engines_agree(model, ids, seed, rtol: float = 0.0):
+    """The vectorised engine gives the SimPy engine's histories for `model` (cycle or rate
+    model): records equal, times equal (or within `rtol`, for rate models), and every risk
+    that is recorded (staying put is not) happens at least once, so an equality of empty histories cannot pass."""
+    expected, got, _ = both_engines(model, ids, seed)
     for name in ("patient", "source", "target", "risk"):
         assert np.array_equal(getattr(expected, name), getattr(got, name)), name
     np.testing.assert_allclose(got.time, expected.time, rtol=rtol, atol=0)

@@ -8,18 +8,13 @@ import math
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from microsim.binding import bind
-from microsim.engines.cycle_engine import simulate_cycles
-from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
-from microsim.patients.population import PATIENT, draw_population
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, StrategySpec,
                                     TransitionSpec)
-from microsim.patients.treatment import patient_multipliers
-from support import (after, attribute, effect, event, horizon, population, probability, start,
+from support import (both_engines, after, attribute, effect, event, horizon, population, probability, start,
                      state, scenario_text, table)
 
 COLUMNS = ("patient", "time", "source", "target", "risk")
@@ -137,16 +132,6 @@ def treated_model(rule: str = "separate"):
     scenario = dataclasses.replace(parse_scenario(under(rule, TREATED)),
                                    strategies=(USUAL_CARE, TREATMENT))
     return bind(scenario, strategy="treat")
-
-
-def both_engines(model, ids, seed):
-    """Histories of the SimPy and the vectorised engine, and the multipliers they read."""
-    spec = model.scenario.population
-    patients = (pd.DataFrame({PATIENT: ids}) if spec is None
-                else draw_population(spec, seed, ids))
-    mult = patient_multipliers(model, patients, seed)
-    return (simulate_cycles(model, mult, ids, seed),
-            simulate_cycles_vectorised(model, mult, ids, seed), mult)
 
 
 def assert_identical(expected, got):

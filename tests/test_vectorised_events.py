@@ -13,19 +13,18 @@ checks that every one of its risks happens, so an equality of empty histories ca
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from microsim.binding import bind
 from microsim.engines import vectorised_events
-from microsim.engines.event_engine import DEPTH, simulate_events
+from microsim.engines.event_engine import DEPTH
 from microsim.engines.vectorised_events import simulate_events_vectorised
-from microsim.patients.population import PATIENT, cohort_patients, draw_population
+from microsim.patients.population import cohort_patients, draw_population
 from microsim.patients.treatment import patient_multipliers
 from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulation import simulate
-from support import (after, attribute, effect, event, horizon, move, nested,
+from support import (both_engines, after, attribute, effect, event, horizon, move, nested,
                      population, rate, scenario_text, start, state, strategy, table,
                      transition)
 
@@ -211,16 +210,6 @@ EVERYTHING = scenario_text(
 
 def bound(text, strategy_name=None):
     return bind(parse_scenario(text), strategy=strategy_name)
-
-
-def both_engines(model, ids, seed):
-    """Histories of the SimPy and the vectorised event engine, and the multipliers."""
-    spec = model.scenario.population
-    patients = (pd.DataFrame({PATIENT: ids}) if spec is None
-                else draw_population(spec, seed, ids))
-    mult = patient_multipliers(model, patients, seed)
-    return (simulate_events(model, mult, ids, seed),
-            simulate_events_vectorised(model, mult, ids, seed), mult)
 
 
 def assert_same_histories(expected, got, rtol):
