@@ -232,6 +232,16 @@ def assert_moments_match(sample: np.ndarray, mean: float, variance: float):
 
 # ------------------------------------------------------------------ engine identity
 
+def records_by_patient(h, ids) -> dict:
+    """{patient id: its records (time, from, to, risk)} of one batch's histories."""
+    out = {}
+    for b, pid in enumerate(ids):
+        mine = h.patient == b
+        out[int(pid)] = np.column_stack([h.time[mine], h.source[mine], h.target[mine],
+                                         h.risk[mine]])
+    return out
+
+
 def both_engines(model, ids, seed):
     """Histories of the SimPy engine and of the vectorised one of the model's kind (cycle
     or rate) for patients `ids` in one batch, and the multipliers both read."""

@@ -13,7 +13,7 @@ from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
 from microsim.patients.population import draw_population
 from microsim.simulation import simulate
-from support import (after, attribute, effect, event, horizon, model_of, outcomes, population,
+from support import (after, records_by_patient, attribute, effect, event, horizon, model_of, outcomes, population,
                      probability, rate, scenario_text, start, state, table, transition)
 
 DISCOUNTS = outcomes(discount_costs=0.035, discount_effects=0.015)
@@ -66,13 +66,8 @@ def people(model, ids):
 def histories_by_patient(model, engine, ids, seed=SEED):
     """Run the engine on patients `ids` in one batch: {patient id: its records}."""
     patients = people(model, ids)
-    h = engine(model, multipliers(model, patients), np.asarray(ids), seed)
-    out = {}
-    for b, pid in enumerate(ids):
-        mine = h.patient == b
-        out[int(pid)] = np.column_stack([h.time[mine], h.source[mine], h.target[mine],
-                                         h.risk[mine]])
-    return out
+    return records_by_patient(engine(model, multipliers(model, patients), np.asarray(ids), seed),
+                              ids)
 
 
 def rows(sim, ids, part="states"):

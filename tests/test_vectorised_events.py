@@ -24,7 +24,7 @@ from microsim.patients.treatment import patient_multipliers
 from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulation import simulate
-from support import (both_engines, after, attribute, effect, event, horizon, move, nested,
+from support import (both_engines, records_by_patient, after, attribute, effect, event, horizon, move, nested,
                      population, rate, scenario_text, start, state, strategy, table,
                      transition)
 
@@ -343,15 +343,6 @@ def test_near_ties_decided_by_the_event_engine_code_give_its_very_histories(monk
         model = bound(text, name)
         expected, got, _ = both_engines(model, ids, 11)
         assert_same_histories(expected, got, 0)
-
-
-def records_by_patient(h, ids):
-    out = {}
-    for b, pid in enumerate(ids):
-        mine = h.patient == b
-        out[int(pid)] = np.column_stack([h.time[mine], h.source[mine], h.target[mine],
-                                         h.risk[mine]])
-    return out
 
 
 @pytest.mark.parametrize("text, name", [(EVERYTHING, "treat"), (ATTAINED_AGE, None)],
