@@ -8,6 +8,7 @@ the scenario's within-cycle rule on the cycle points in cycle models.
 from __future__ import annotations
 
 import numpy as np
+from numba import njit
 
 from microsim.binding import BoundModel
 from microsim.patients.multipliers import Window
@@ -45,12 +46,21 @@ def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
 
 
 def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
-    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates."""
+    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates (each
+    patient's in record order)."""
     out = np.zeros((h.n_patients, len(model.risks), 3))
-    happened = h.risk >= 0
+    happened = np.flatnonzero(h.risk >= 0)
     weights = np.exp(-np.outer(h.time[happened], discount_rates(model)))
-    np.add.at(out, (h.patient[happened], h.risk[happened]), weights)
+    _add_rows(out, h.patient[happened], h.risk[happened], weights)
     return out
+
+
+@njit(cache=True)
+def _add_rows(out, first, second, weights):
+    """out[first[q], second[q]] += weights[q] for each q in order (numpy's add.at)."""
+    for q in range(first.size):
+        for w in range(weights.shape[1]):
+            out[first[q], second[q], w] += weights[q, w]
 
 
 def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -63,23 +73,32 @@ def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.nda
     return np.where((b > a)[:, None], value, 0.0)
 
 
-def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None) -> np.ndarray:
+def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    `on` (B, T) holds, when given). Each patient's sum runs over its own cycle points in
-    time order, one point at a time for the whole batch, so it does not depend on the
-    batch (a point not counted adds nothing)."""
-    B, S = states.shape[0], model.n_states
+    a patient is on treatment, when a `window` is given). Each patient's sum runs over its
+    own cycle points in time order, so it does not depend on the batch."""
     weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                                      correction=model.correction)
                         for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
-    out = np.zeros((3, B * S))
-    rows = np.arange(B) * S
-    for t in range(states.shape[1]):
-        counted = states[:, t] >= 0 if on is None else (states[:, t] >= 0) & on[:, t]
-        cell = (rows + states[:, t])[counted]  # one cell per patient: no repeats
-        for w in range(3):
-            out[w, cell] += weights[t, w]
-    return np.ascontiguousarray(np.moveaxis(out.reshape(3, B, S), 0, -1))
+    B = states.shape[0]
+    on = np.full(B, -np.inf) if window is None else np.asarray(window.on, float)
+    off = np.full(B, np.inf) if window is None else np.asarray(window.off, float)
+    return _occupancy(states, weights, model.n_states, np.asarray(model.times, float), on, off)
+
+
+@njit(cache=True)
+def _occupancy(states, weights, n_states, times, on, off):
+    """out[b, s] = sum over the points t where patient b is in s and on[b] <= t < off[b]
+    of weights[t], added in time order; a point with state -1 adds nothing."""
+    B, T = states.shape
+    out = np.zeros((B, n_states, weights.shape[1]))
+    for b in range(B):
+        for t in range(T):
+            s = states[b, t]
+            if s >= 0 and on[b] <= times[t] < off[b]:
+                for w in range(weights.shape[1]):
+                    out[b, s, w] += weights[t, w]
+    return out
 
 
 def exposure(model: BoundModel, h: Histories, window: Window | None = None,
@@ -89,8 +108,7 @@ def exposure(model: BoundModel, h: Histories, window: Window | None = None,
     if model.discrete:
         states = grid_states(h, model.times) if states is None else states
         occupancy = cycle_occupancy(model, states)
-        on = (np.zeros_like(occupancy) if window is None
-              else cycle_occupancy(model, states, window.on_grid(model.times)))
+        on = np.zeros_like(occupancy) if window is None else cycle_occupancy(model, states, window)
         return Exposure(occupancy, occurrences(model, h), on)
     end = model.n_cycles * model.cycle
     a, b = h.time, next_times(h, end)

@@ -29,17 +29,27 @@ class Exposure:
     occurrences: np.ndarray
     on_treatment: np.ndarray
 
+    FIELDS = ("occupancy", "occurrences", "on_treatment")
+
+    @classmethod
+    def empty(cls, rows: int, n_states: int, n_risks: int) -> "Exposure":
+        """Room for `rows` patients, to be filled part by part (`put`)."""
+        return cls(np.empty((rows, n_states, 3)), np.empty((rows, n_risks, 3)),
+                   np.empty((rows, n_states, 3)))
+
+    def put(self, rows, part: "Exposure") -> None:
+        for f in self.FIELDS:
+            getattr(self, f)[rows] = getattr(part, f)
+
     @classmethod
     def join(cls, parts: list["Exposure"]) -> "Exposure":
-        return cls(*(np.concatenate([getattr(p, f) for p in parts])
-                     for f in ("occupancy", "occurrences", "on_treatment")))
+        return cls(*(np.concatenate([getattr(p, f) for p in parts]) for f in cls.FIELDS))
 
     def take(self, rows) -> "Exposure":
         return Exposure(self.occupancy[rows], self.occurrences[rows], self.on_treatment[rows])
 
     def mean(self) -> "Exposure":
-        return Exposure(*(getattr(self, f).mean(axis=0, keepdims=True)
-                          for f in ("occupancy", "occurrences", "on_treatment")))
+        return Exposure(*(getattr(self, f).mean(axis=0, keepdims=True) for f in self.FIELDS))
 
 
 def outcome_values(model: BoundModel, exposure: Exposure) -> dict[str, np.ndarray]:
