@@ -37,7 +37,8 @@ class Simulation:
     seed: int
     mult: Multipliers  # the hazard multipliers (and treatment windows) the engine used
     grid: np.ndarray  # (T,) time points of `states`
-    states: np.ndarray  # (N, T) state index of each patient at each grid time
+    states: np.ndarray  # (N, T) state index of each patient at each grid time (int8 for
+    # fewer than 128 states, else int16; -1 before a patient's first record)
     values: dict[str, np.ndarray]  # each patient's outcomes (`outcomes.MEASURES`)
     treated: np.ndarray  # (N,) whether each patient spent time on treatment (in a treated
     # copy of a state, under treatment phases)
@@ -146,7 +147,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     engine = choose_engine(model, engine)
     ids = patients[PATIENT].to_numpy()
     # filled batch by batch: joining per-batch arrays at the end would copy them all again
-    states = np.empty((len(ids), len(grid)), np.int16)
+    states = np.empty((len(ids), len(grid)), np.int8 if model.n_states < 128 else np.int16)
     values = {m: np.empty(len(ids)) for m in MEASURES}
     treated = np.zeros(len(ids), bool)
     on_a_treatment = (slice(None) if model.treated_states is None
