@@ -278,7 +278,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         return model
     from microsim.treatment_phases import Line, with_phases
     lines = [Line(spec.name, spec.stop_on, treatment.on_factor, treatment.extra_cost,
-                  treatment.extra_utility)]
+                  treatment.extra_utility, tuple(np.flatnonzero(treatment.off_factor == 0.0)))]
     lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
                                                           number)) for line in spec.then]
     delay = round(spec.start_delay / model.cycle) if model.discrete else 0
