@@ -250,7 +250,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
 
     risks = risks_of(scenario.transitions, scenario.events)
     later: list[tuple[int, ...]] = []  # the risks each later treatment adds, by index
-    for line in spec.then if spec is not None and spec.phased else ():
+    for line in () if spec is None else spec.then:
         own = risks_of(line.transitions, line.events)
         later.append(tuple(range(len(risks), len(risks) + len(own))))
         risks += own

@@ -11,11 +11,10 @@ name, cost and disutility, so it is counted and costed once as before. Every oth
 keeps the phase. A transition or event a treatment adds for its time on treatment exists
 in the copies of that treatment's phase only (elsewhere it is left out, not given a hazard
 of 0, which an engine would read as a treatment that changes nothing). Because the phase
-changes only with a move, the model stays
-a plain Markov model (with the same memory, tables and hazards as before): every engine
-simulates it as it is, and its analytic counterpart is exact by the same expanded chain as
-any other model (common practice: a treatment history as states, e.g. tunnel-like copies of
-health states by line of therapy). The strategy's time window (start, stop, eligibility,
+changes only with a move, the model stays a plain Markov model (with the same memory,
+tables and hazards as before): every engine simulates it as it is, and its analytic
+counterpart is exact by the same expanded chain as any other model (common practice: a
+treatment history as states, e.g. tunnel-like copies of health states by line of therapy). The strategy's time window (start, stop, eligibility,
 uptake) still applies on top: a treatment acts while the patient is in its phase and inside
 the window.
 

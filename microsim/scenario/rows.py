@@ -18,7 +18,7 @@ never exceeds 1, so no bound is needed.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Iterator, Mapping
 
 import numpy as np
