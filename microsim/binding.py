@@ -5,7 +5,7 @@ different bindings of the same scenario; no engine ever sees a parameter name.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
@@ -187,9 +187,8 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     overridden by `values` (a PSA draw or a sensitivity setting), for one strategy (None:
     the model as written, which is what the comparator runs)."""
     spec = None if strategy is None else scenario.strategy(strategy)
-    if spec is not None and (spec.states or spec.transitions):
-        scenario = replace(scenario, states=scenario.states + spec.states,
-                           transitions=scenario.transitions + spec.transitions)
+    if spec is not None:
+        scenario = scenario.with_added(spec)
     resolved = {name: p.value for name, p in scenario.parameters.items()}
     unknown = set(values or ()) - set(resolved)
     if unknown:
@@ -243,13 +242,23 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
             memory=tuple(memory(m) for m in spec.memory),
             cost=number(spec.cost), disutility=number(spec.disutility))
 
-    risks = [risk(t, t.name, index[t.source], index[t.target]) for t in scenario.transitions]
-    for event in scenario.events:
-        risks += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
+    def risks_of(transitions, events) -> list[BoundRisk]:
+        found = [risk(t, t.name, index[t.source], index[t.target]) for t in transitions]
+        for event in events:
+            found += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
+        return found
+
+    risks = risks_of(scenario.transitions, scenario.events)
+    later: list[tuple[int, ...]] = []  # the risks each later treatment adds, by index
+    for line in () if spec is None else spec.then:
+        own = risks_of(line.transitions, line.events)
+        later.append(tuple(range(len(risks), len(risks) + len(own))))
+        risks += own
 
     states = scenario.states
     outcomes = scenario.outcomes
-    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, number)
+    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, number,
+                                                         sum(later, ()))
     model = BoundModel(
         scenario=scenario,
         states=scenario.state_names,
@@ -277,24 +286,27 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     if spec is None or not spec.phased:
         return model
     from microsim.treatment_phases import Line, with_phases
+    first = tuple(r for r, risk in enumerate(risks) if risk.name in spec.on_treatment_only)
     lines = [Line(spec.name, spec.stop_on, treatment.on_factor, treatment.extra_cost,
-                  treatment.extra_utility)]
+                  treatment.extra_utility, first)]
     lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
-                                                          number)) for line in spec.then]
+                                                          number), adds)
+              for line, adds in zip(spec.then, later)]
     delay = round(spec.start_delay / model.cycle) if model.discrete else 0
     return with_phases(model, spec.start_on, lines, delay)
 
 
-def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number) -> Treatment | None:
-    """The numbers of a strategy's treatment; None when it changes nothing."""
-    if not (spec.changes or spec.transitions or spec.phased):
+def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number,
+                   later: tuple[int, ...] = ()) -> Treatment | None:
+    """The numbers of a strategy's treatment; None when it changes nothing. Off
+    treatment, the risks added for a time on treatment (the first treatment's with
+    while_treated, and every one of the `later` treatments') have a hazard of 0."""
+    if not (spec.changes or spec.transitions or spec.events or spec.phased):
         return None
     on, cost, utility = bind_changes(spec.changes, risks, scenario, index, number)
-    off = np.ones(len(risks))
-    added = {t.name for t, gated in zip(spec.transitions, spec.while_treated) if gated}
-    for r, risk in enumerate(risks):
-        if risk.name in added:
-            off[r] = 0.0
+    gated = spec.on_treatment_only
+    off = np.array([0.0 if risk.name in gated or r in later else 1.0
+                    for r, risk in enumerate(risks)])
     return Treatment(spec.name, spec.eligible, number(spec.uptake), spec.start,
                      np.inf if spec.stop is None else spec.stop, number(spec.discontinuation),
                      on, off, cost, utility)
