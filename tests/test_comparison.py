@@ -11,7 +11,7 @@ from microsim.cohort import analytic as analytic_module
 from microsim.cohort.analytic import analytic, cleaned
 from microsim.patients.multipliers import Window, average_patient
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import EXACT, compare, share_p_values
+from microsim.results.comparison import EXACT, ComparisonSums, compare, share_p_values
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.simulation import simulate
 from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
@@ -40,6 +40,34 @@ def test_an_outcome_equal_for_every_patient_agrees_within_round_off():
     assert "without Monte-Carlo error agree within numerical error" in result.verdict
     # the other outcomes vary between patients and are tested as usual
     assert (result.outcomes.set_index("measure").drop("life_years").test != EXACT).all()
+
+
+# Patients leave 'start' for 'b' or 'c' at a rate that differs by age, and 'b' and 'c'
+# cost and weigh the same: every outcome is the same for every patient, but each patient's
+# analytic value mixes the two by its own shares, with round-off of about 1e-16.
+SAME_OUTCOMES = scenario_text(
+    horizon(7), start(age=60, first=1),
+    state("first", utility=0.8, cost=120.3), state("b", utility=0.61, cost=77.7),
+    state("c", utility=0.61, cost=77.7),
+    transition("first", "b", probability=0.3, effects=[effect("age", 1.01)]),
+    transition("first", "c", probability="remainder"),
+    transition("b", "b", probability=1), transition("c", "c", probability=1),
+    population(3000, attribute("age", "normal", mean=60, sd=5)))
+
+
+def test_a_standard_error_of_round_off_is_shown_as_0_and_a_real_one_is_kept():
+    sim = simulate(model_of(SAME_OUTCOMES), draw_population(
+        parse_scenario(SAME_OUTCOMES).population, 4, np.arange(3000)), 4)
+    sums = ComparisonSums(sim.model, sim.grid)
+    sums.add(sim)
+    raw = {m: moments.se for m, moments in sums.deviations.items()}
+    assert 0 < max(raw.values()) < 1e-12  # round-off, not Monte-Carlo error (measured)
+    outcomes = sums.finish().outcomes
+    assert (outcomes.test == EXACT).all() and (outcomes.se == 0.0).all()
+    # where patients differ, the standard error stays what the patients give
+    kept = compare(simulate(model_of(NEVER_ABSORBED), cohort_patients(500), 3)).outcomes
+    varied = kept[kept.test != EXACT]
+    assert len(varied) == 4 and (varied.se > 0).all()
 
 
 def test_a_wrong_deterministic_outcome_still_disagrees():

@@ -270,8 +270,11 @@ class ComparisonSums:
         table = pd.DataFrame(rows, columns=["measure", "simulated", "analytic", "se", "difference"])
         p, certain = mean_p_values(table.difference, table.se, table.analytic)
         z = np.where(certain, 0.0, z_scores(table.difference.to_numpy(), table.se.to_numpy()))
+        # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
+        # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
-            z=z, p_value=p, test=np.where(certain, EXACT, MONTE_CARLO))
+            se=np.where(certain, 0.0, table.se), z=z, p_value=p,
+            test=np.where(certain, EXACT, MONTE_CARLO))
 
     def subgroup_table(self) -> pd.DataFrame:
         frames = [share_table(s, self.grid, self.model.states).assign(attribute=a, level=lv)
