@@ -362,12 +362,13 @@ def command_fit(args) -> int:
                             horizon=args.horizon, patients=args.patients or CHECK_PATIENTS,
                             seed=seed)
         print_fit(run)
-        block = run.files["fitted_block.toml"].read_text()
+        written = run.summary["files"]
+        block = run.files[written["block"]].read_text()
         page, figures = write_fit_page(scratch, run.tables, run.summary, block)
         folder = write(args, path, run.tables, started, documents={"fit_summary": run.summary},
                        files={**run.files, page.name: page, figures.name: figures},
                        data_file=True, seed=seed)
-    print(f"wrote {folder / 'fitted_scenario.toml'} and {folder / page.name}")
+    print(f"wrote {folder / written['scenario']} and {folder / page.name}")
     print(f"\n{CAUTION}")
     return 0
 

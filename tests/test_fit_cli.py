@@ -46,17 +46,39 @@ def test_the_run_folder_holds_the_fit_the_scenario_and_its_page(rossi, tmp_path,
     for name in ("fit_models", "fit_parameters", "fit_covariance", "kaplan_meier",
                  "fit_curves", "fit_check"):
         assert name + ".csv" in manifest["files"] and name + ".parquet" in manifest["files"]
-    for name in ("fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv", "fit.html",
-                 "fit_summary.json", "figures/fit_survival.svg", "figures/fit_hazards.png",
-                 "figures/fit_check.svg"):
-        assert name in manifest["files"], name
-    scenario = read_scenario(folder / "fitted_scenario.toml")  # a scenario that reads as it is
     summary = json.loads((folder / "fit_summary.json").read_text())
+    base = f"rossi_{summary['chosen']['family']}_{summary['chosen']['form']}"
+    assert summary["files"] == {"scenario": f"{base}.toml", "block": f"{base}_block.toml",
+                                "patients": f"{base}_patients.csv"}
+    for name in (*summary["files"].values(), "fit.html", "fit_summary.json",
+                 "figures/fit_survival.svg", "figures/fit_hazards.png", "figures/fit_check.svg"):
+        assert name in manifest["files"], name
+    scenario = read_scenario(folder / f"{base}.toml")  # a scenario that reads as it is
     assert summary["chosen"]["label"] in scenario.provenance
-    assert manifest["data_sha256"] in (folder / "fitted_block.toml").read_text()
+    assert manifest["data_sha256"] in (folder / f"{base}_block.toml").read_text()
     models = pd.read_csv(folder / "fit_models.csv")
     assert len(models) == 9 and models.chosen.sum() == 1  # 6 families, 3 of them in two forms
-    assert main(["check", str(folder / "fitted_scenario.toml")]) == 0
+    assert main(["check", str(folder / f"{base}.toml")]) == 0
+
+
+def test_two_fits_write_scenarios_whose_runs_do_not_share_a_folder(rossi, tmp_path, capsys):
+    # the run folder of a scenario is named after it (<out>/<scenario>/), so fits of two
+    # data files, or of two families, must not both write one name
+    other = tmp_path / "rossi_copy.csv"
+    other.write_bytes(rossi.read_bytes())
+    written = []
+    for data, family in [(rossi, "weibull"), (other, "weibull"), (rossi, "lognormal")]:
+        assert fit(data, tmp_path / "out", "--family", family) == 0
+        folder = (tmp_path / "out" / data.stem / "latest").resolve()
+        written.append(folder / json.loads((folder / "fit_summary.json").read_text())[
+            "files"]["scenario"])
+    assert [p.name for p in written] == ["rossi_weibull.toml", "rossi_copy_weibull.toml",
+                                         "rossi_lognormal.toml"]
+    for path in written:
+        assert main(["validate", str(path), "--patients", "50", "--out",
+                     str(tmp_path / "runs")]) == 0
+    assert sorted(p.name for p in (tmp_path / "runs").iterdir()) == sorted(
+        p.stem for p in written)
 
 
 def test_the_page_is_self_contained_and_shows_the_tables(rossi, tmp_path, capsys):
@@ -115,8 +137,9 @@ def test_the_page_renders_in_chromium(rossi, tmp_path, browser, capsys):
 def test_a_fit_without_covariates_writes_a_cohort_scenario(rossi, tmp_path, capsys):
     assert fit(rossi, tmp_path, "--family", "gompertz", "--name", "rearrest") == 0
     folder = (tmp_path / "rossi" / "latest").resolve()
-    scenario = read_scenario(folder / "fitted_scenario.toml")
-    assert scenario.population is None and not (folder / "fit_patients.csv").exists()
+    scenario = read_scenario(folder / "rossi_gompertz.toml")
+    assert scenario.population is None and not list(folder.glob("*_patients.csv"))
+    assert json.loads((folder / "fit_summary.json").read_text())["files"]["patients"] is None
     assert scenario.transitions[0].name == "rearrest"
     assert set(scenario.parameters) == {"rearrest_rate", "rearrest_shape"}
 
@@ -185,7 +208,7 @@ def test_a_parquet_file_reads_as_its_csv_does_and_fits(rossi, tmp_path, capsys):
     for name in ("time", "event", "entry", "values"):
         assert np.array_equal(getattr(csv_data, name), getattr(parquet_data, name)), name
     assert fit(parquet, tmp_path / "out", "--family", "weibull") == 0
-    assert (tmp_path / "out" / "rossi" / "latest" / "fitted_scenario.toml").is_file()
+    assert (tmp_path / "out" / "rossi" / "latest" / "rossi_weibull.toml").is_file()
 
 
 def test_yes_no_columns_read_as_one_and_zero(tmp_path):

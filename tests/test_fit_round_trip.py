@@ -46,8 +46,9 @@ def fitted(tmp_path_factory):
 
 def written(tmp_path, fit, data, horizon=150.0, seed=3):
     path = tmp_path / "fitted_scenario.toml"
-    path.write_text(scenario_text.scenario(fit, data, "rearrest", "weeks", horizon, seed))
-    data.frame().to_csv(tmp_path / scenario_text.PATIENTS_FILE, index=False)
+    path.write_text(scenario_text.scenario(fit, data, "rearrest", "weeks", horizon, seed,
+                                           "fit_patients.csv"))
+    data.frame().to_csv(tmp_path / "fit_patients.csv", index=False)
     return path
 
 
@@ -118,11 +119,15 @@ def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
                         family="lognormal", patients=1500, seed=4)
     assert run.chosen.key == ("lognormal", AFT)
     assert run.summary["check"]["agrees"]
-    assert set(run.files) == {"fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv"}
-    block = run.files["fitted_block.toml"].read_text()
+    # named after the data file and the fit, so that two fits' files never share a name
+    names = {"scenario": "rossi_lognormal_aft.toml", "block": "rossi_lognormal_aft_block.toml",
+             "patients": "rossi_lognormal_aft_patients.csv"}
+    assert run.summary["files"] == names and set(run.files) == set(names.values())
+    block = run.files[names["block"]].read_text()
     assert run.data.sha256 in block and "log-normal" in block
     assert re.search(r"by `microsim fit` on \d{4}-\d{2}-\d{2} from rossi.csv", block)  # dated
-    assert block in run.files["fitted_scenario.toml"].read_text()  # the scenario read back
+    scenario = run.files[names["scenario"]].read_text()
+    assert block in scenario and 'file = "rossi_lognormal_aft_patients.csv"' in scenario
     # the block alone is TOML of the scenario's keys: the transition, parameters, the group
     assert "[[transitions]]" in block and "[[uncertainty.multivariate_normal]]" in block
     models = run.tables["fit_models"]

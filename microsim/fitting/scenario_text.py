@@ -23,7 +23,6 @@ from microsim.fitting.families import AFT
 from microsim.fitting.kaplan_meier import Z95
 
 FROM, TO = "at_risk", "after_event"  # the states of the scenario around the block
-PATIENTS_FILE = "fit_patients.csv"
 
 
 def number(x: float) -> str:
@@ -99,12 +98,13 @@ def nice_cycle(horizon: float) -> float:
 
 
 def scenario(fit: Fit, data: SurvivalData, name: str, unit: str, horizon: float, seed: int,
-             day: str | None = None) -> str:
+             patients_file: str | None = None, day: str | None = None) -> str:
     """A whole scenario around the block: at risk -> after the event, the data's patients as
-    the population (their covariates, `fit_patients.csv` beside it), over `horizon`."""
+    the population (their covariates, in `patients_file` beside it: needed with
+    covariates), over `horizon`."""
     day = day or datetime.now(timezone.utc).date().isoformat()
     title = f"Time to event fitted to {data.path.name}: {fit.label}"
-    population = (f"\n[population]\npatients = {data.size}\nfile = \"{PATIENTS_FILE}\"\n"
+    population = (f"\n[population]\npatients = {data.size}\nfile = {json.dumps(patients_file)}\n"
                   if fit.covariates else "")
     text = "\n".join([
         f"title = {json.dumps(title)}",
