@@ -348,6 +348,7 @@ def command_budget(args) -> int:
 def command_fit(args) -> int:
     """Fit every family to time-to-event data; write the chosen fit as a scenario, with its
     tables, figures and page."""
+    from microsim.fitting.data import parse_references
     from microsim.fitting.run import CHECK_PATIENTS, fit_and_write
     from microsim.report.fit_page import write_fit_page
     from microsim.scenario.spec import SimulationSpec
@@ -360,7 +361,7 @@ def command_fit(args) -> int:
         run = fit_and_write(path, args.time, args.event, covariates, args.entry, args.unit,
                             scratch, family=args.family, form=args.form, name=args.name,
                             horizon=args.horizon, patients=args.patients or CHECK_PATIENTS,
-                            seed=seed)
+                            seed=seed, references=parse_references(args.reference))
         print_fit(run)
         written = run.summary["files"]
         block = run.files[written["block"]].read_text()
@@ -400,6 +401,9 @@ def print_fit(run) -> None:
              .rename_axis(None, axis=1).reset_index().rename(columns={"row": ""}))
     print("\nEstimates on the fit's scale with their standard errors (observed information) "
           "and 95% Wald intervals; natural: the value as the scenario reads it.")
+    for c in s["categorical"]:
+        print(f"\n{c['attribute']}: levels {', '.join(c['levels'])}; each level's coefficient "
+              f"against the reference level {c['reference']!r} (--reference to choose another)")
     print(f"\nCheck: {s['check']['words']}.")
 
 
@@ -582,8 +586,12 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--event", required=True,
                      help="the column of events: 1 (the event at that time) or 0 (censored); "
                           "yes/no reads as 1/0")
-    fit.add_argument("--covariates", help="columns of numbers (yes/no reads as 1/0), "
-                     "comma-separated (A,B,...)")
+    fit.add_argument("--covariates", help="columns, comma-separated (A,B,...): numbers "
+                     "(yes/no reads as 1/0), or text, one coefficient per level against a "
+                     "reference level")
+    fit.add_argument("--reference", metavar="COL=LEVEL,...",
+                     help="the reference level of a text covariate (default: its first level "
+                          "in sorted order)")
     fit.add_argument("--entry", help="the column of entry times (delayed entry, in [0, time))")
     fit.add_argument("--unit", default="years", help="the unit of the times (default years)")
     fit.add_argument("--family", choices=("exponential", "weibull", "gompertz", "lognormal",

@@ -22,9 +22,10 @@ from microsim.fitting.data import read_survival_data
 from microsim.fitting.estimate import fit_all
 from microsim.fitting.families import AFT, BY_NAME, PH
 from microsim.fitting.run import fit_and_write
-from microsim.scenario import read_scenario
+from microsim.scenario import parse_scenario, read_scenario
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
+import support
 from support import Z
 
 COVARIATES = ("fin", "prio")
@@ -298,3 +299,41 @@ def test_nested_families_fit_at_least_as_well_on_data_in_days(tmp_path):
     gamma = fits[("generalised_gamma", AFT)].log_likelihood
     for smaller in ("weibull", "lognormal"):
         assert gamma >= fits[(smaller, AFT)].log_likelihood - slack, smaller
+
+
+def test_text_covariates_are_written_as_level_effects_that_simulate_the_fit(tmp_path):
+    # the German breast cancer data (lifelines.datasets, load_gbsg2) with its text columns
+    # tgrade (I, II, III) and menostat (Post, Pre) and its tumour size: the scenario's
+    # effects at each level, against the reference level, must reproduce the fitted
+    # survival when simulated (|z| < 4, binomial SE), and the commented attributes must
+    # read as categorical attributes with the shares of the data (pandas value_counts)
+    frame = load_gbsg2()
+    path = tmp_path / "gbsg2.csv"
+    frame.to_csv(path, index=False)
+    run = fit_and_write(path, "time", "cens", ("tgrade", "menostat", "tsize"), None, "days",
+                        tmp_path, family="weibull", form="ph", patients=3000, seed=5,
+                        references={"tgrade": "II"})
+    assert run.summary["check"]["agrees"], run.tables["fit_check"]
+    scenario = read_scenario(run.files[run.summary["files"]["scenario"]])
+    effects = [(e.attribute, e.level) for e in scenario.transitions[0].effects]
+    assert effects == [("tgrade", "I"), ("tgrade", "III"), ("menostat", "Pre"),
+                       ("tsize", None)]
+    assert set(scenario.parameters) >= {"event_tgrade_i", "event_tgrade_iii",
+                                        "event_menostat_pre", "event_tsize"}
+    block = run.files[run.summary["files"]["block"]].read_text()
+    drawn = "\n".join(line.removeprefix("# ") for line in block.splitlines()
+                      if line.startswith("# [[population") or line.startswith("# name")
+                      or line.startswith("# distribution") or line.startswith("# levels")
+                      or line.startswith("# shares"))
+    around = support.scenario_text(support.horizon(10, unit="days"), support.start(a=1),
+                                   support.state("a"), support.state("b", absorbing=True),
+                                   support.rate("a", "b", 0.1))
+    attributes = {a.name: a for a in parse_scenario(
+        f"{around}\n[population]\npatients = 10\n{drawn}\n").population.attributes}
+    for name in ("tgrade", "menostat"):
+        counts = frame[name].value_counts(normalize=True).sort_index()
+        assert attributes[name].distribution == "categorical"
+        assert attributes[name].params["levels"] == tuple(counts.index)
+        np.testing.assert_allclose(attributes[name].params["shares"], counts.to_numpy(),
+                                   rtol=1e-15)
+

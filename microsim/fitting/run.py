@@ -90,10 +90,12 @@ def choose(fits: list[Fit], family: str | None, form: str | None) -> Fit:
 def fit_and_write(path: Path, time: str, event: str, covariates: tuple[str, ...],
                   entry: str | None, unit: str, scratch: Path, *, family: str | None = None,
                   form: str | None = None, name: str = "event", horizon: float | None = None,
-                  patients: int = CHECK_PATIENTS, seed: int = 20261201) -> FitRun:
-    """Everything `microsim fit` keeps; the written files are made in `scratch`."""
+                  patients: int = CHECK_PATIENTS, seed: int = 20261201,
+                  references: dict[str, str] | None = None) -> FitRun:
+    """Everything `microsim fit` keeps; the written files are made in `scratch`.
+    `references`: the reference level of categorical covariates ({column: level})."""
     check_options(unit, name, family, form, covariates, horizon)
-    data = read_survival_data(path, time, event, covariates, entry)
+    data = read_survival_data(path, time, event, covariates, entry, references)
     fits = fit_all(data)
     chosen = choose(fits, family, form)
     horizon = horizon_for(data) if horizon is None else float(horizon)
@@ -127,7 +129,11 @@ def summary(data: SurvivalData, fits: list[Fit], chosen: Fit, check: pd.DataFram
     return {
         "data": str(data.path), "data_sha256": data.sha256, "patients": data.size,
         "events": data.events, "time": data.time_column, "event": data.event_column,
-        "entry": data.entry_column, "covariates": list(data.covariates), "unit": unit,
+        "entry": data.entry_column, "covariates": list(data.covariates),
+        "attributes": {t.name: {"attribute": t.attribute, "level": t.level} for t in data.terms},
+        "categorical": [{"attribute": c.attribute, "levels": list(c.levels),
+                         "shares": list(c.shares), "reference": c.reference}
+                        for c in data.categorical], "unit": unit,
         "horizon": horizon, "longest_follow_up": float(data.time.max()),
         "chosen": {"family": chosen.family.name, "form": chosen.form, "label": chosen.label,
                    "aic": chosen.aic, "log_likelihood": chosen.log_likelihood},
