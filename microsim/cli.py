@@ -404,6 +404,9 @@ def print_fit(run) -> None:
     for c in s["categorical"]:
         print(f"\n{c['attribute']}: levels {', '.join(c['levels'])}; each level's coefficient "
               f"against the reference level {c['reference']!r} (--reference to choose another)")
+    if run.data.age_at_entry:
+        print("\nThe column 'age' (fixed at entry) is written as the attribute 'age_at_entry': "
+              "a scenario's age is the attained age, which moves with time.")
     print(f"\nCheck: {s['check']['words']}.")
 
 

@@ -287,7 +287,7 @@ def test_generalised_gamma_regression_equals_lifelines_and_scipy_curvature(folde
 
 # --- text covariates ------------------------------------------------------------------------
 
-GBSG2 = ("tsize", "tgrade", "menostat")  # numbers, text of levels I, II, III, text Post, Pre
+GBSG2 = ("age", "tgrade", "menostat")  # numbers, text of levels I, II, III, text Post, Pre
 
 
 @lru_cache(maxsize=None)
@@ -302,9 +302,9 @@ def gbsg2_fits(tmp: str, references: tuple[tuple[str, str], ...] = ()):
 
 def by_hand(references: dict[str, str]):
     """The same data with indicators made by hand (pandas.get_dummies, the reference level's
-    column dropped)."""
+    column dropped) and `age` renamed as the written scenario names it."""
     frame = load_gbsg2()
-    columns = [frame[["time", "cens", "tsize"]]]
+    columns = [frame[["time", "cens", "age"]].rename(columns={"age": "age_at_entry"})]
     for name in ("tgrade", "menostat"):
         dummies = pd.get_dummies(frame[name], prefix=name, dtype=float)
         reference = references.get(name, sorted(frame[name].unique())[0])

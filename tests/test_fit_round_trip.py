@@ -303,23 +303,23 @@ def test_nested_families_fit_at_least_as_well_on_data_in_days(tmp_path):
 
 def test_text_covariates_are_written_as_level_effects_that_simulate_the_fit(tmp_path):
     # the German breast cancer data (lifelines.datasets, load_gbsg2) with its text columns
-    # tgrade (I, II, III) and menostat (Post, Pre) and its tumour size: the scenario's
+    # tgrade (I, II, III) and menostat (Post, Pre) and its age at entry: the scenario's
     # effects at each level, against the reference level, must reproduce the fitted
     # survival when simulated (|z| < 4, binomial SE), and the commented attributes must
     # read as categorical attributes with the shares of the data (pandas value_counts)
     frame = load_gbsg2()
     path = tmp_path / "gbsg2.csv"
     frame.to_csv(path, index=False)
-    run = fit_and_write(path, "time", "cens", ("tgrade", "menostat", "tsize"), None, "days",
+    run = fit_and_write(path, "time", "cens", ("tgrade", "menostat", "age"), None, "days",
                         tmp_path, family="weibull", form="ph", patients=3000, seed=5,
                         references={"tgrade": "II"})
     assert run.summary["check"]["agrees"], run.tables["fit_check"]
     scenario = read_scenario(run.files[run.summary["files"]["scenario"]])
     effects = [(e.attribute, e.level) for e in scenario.transitions[0].effects]
     assert effects == [("tgrade", "I"), ("tgrade", "III"), ("menostat", "Pre"),
-                       ("tsize", None)]
+                       ("age_at_entry", None)]
     assert set(scenario.parameters) >= {"event_tgrade_i", "event_tgrade_iii",
-                                        "event_menostat_pre", "event_tsize"}
+                                        "event_menostat_pre", "event_age_at_entry"}
     block = run.files[run.summary["files"]["block"]].read_text()
     drawn = "\n".join(line.removeprefix("# ") for line in block.splitlines()
                       if line.startswith("# [[population") or line.startswith("# name")

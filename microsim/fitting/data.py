@@ -10,8 +10,8 @@ Covariates become attributes of the scenario a fit writes. A column of numbers (
 is one covariate; a column of text is categorical and becomes one 0/1 indicator per level
 but the reference (the first level in sorted order, or the one given), whose coefficient
 the scenario reads as the effect of that level (`{ attribute = "tgrade", level = "II" }`).
-Their names must be attribute names (and not `age`, which a scenario reads as the attained
-age, moving with time).
+A column `age` is the age at entry, fixed, while a scenario's `age` is the attained age,
+moving with time: it is written as the attribute `age_at_entry`.
 """
 from __future__ import annotations
 
@@ -27,6 +27,7 @@ from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import AGE, IDENTIFIER, did_you_mean, listing
 from microsim.scenario.population_file import RESERVED, SUFFIXES, raw_table, typed_column
 
+ENTRY_AGE = "age_at_entry"  # the attribute a data column `age` is written as
 MAX_LEVELS = 20  # levels of a categorical covariate; more is likelier an id than a covariate
 
 
@@ -69,6 +70,12 @@ class SurvivalData:
     values: np.ndarray  # (patients, k)
     population: pd.DataFrame  # one column per attribute
     categorical: tuple[Levels, ...] = ()
+    columns: tuple[str, ...] = ()  # the data's covariate columns, as given
+
+    @property
+    def age_at_entry(self) -> bool:
+        """Whether the data's column `age` is written as the attribute `age_at_entry`."""
+        return AGE in self.columns
 
     @property
     def covariates(self) -> tuple[str, ...]:
@@ -169,7 +176,11 @@ def read_survival_data(path: str | Path, time: str, event: str,
     references = dict(references or {})
     for name in covariates:
         check_covariate_name(name)
-        attribute = name
+        attribute = ENTRY_AGE if name == AGE else name
+        if attribute in population:  # a column `age_at_entry` beside `age`
+            raise ScenarioError("--covariates", f"columns 'age' and {ENTRY_AGE!r} would both "
+                                f"be the attribute {ENTRY_AGE!r} ('age' is written so: a "
+                                "scenario's age is the attained age); rename one of them")
         values, kind = typed_column(name, table[name], where, "--covariates")
         if kind.kind == "categorical":
             levels = category(name, attribute, values, kind.levels, references.pop(name, None),
@@ -199,7 +210,8 @@ def read_survival_data(path: str | Path, time: str, event: str,
     values = np.column_stack(columns) if columns else np.zeros((len(times), 0))
     return SurvivalData(path, hashlib.sha256(path.read_bytes()).hexdigest(), time, event, entry,
                         times, events, starts, tuple(terms), values,
-                        pd.DataFrame(population, columns=list(population)), tuple(categorical))
+                        pd.DataFrame(population, columns=list(population)), tuple(categorical),
+                        tuple(covariates))
 
 
 def category(name: str, attribute: str, values: pd.Series, levels: tuple[str, ...],
@@ -266,10 +278,6 @@ def check_covariate_name(name: str) -> None:
         raise ScenarioError("--covariates", f"column {name!r} cannot name an attribute of a "
                             "scenario (lowercase letters, digits and underscores, starting "
                             "with a letter); rename the column")
-    if name in (AGE, RESERVED):
-        why = ("a scenario reads `age` as the attained age, which moves with time, while the "
-               "data's column is fixed at entry" if name == AGE else
-               "`patient` holds the patient id in every population")
-        raise ScenarioError("--covariates", f"column {name!r}: {why}; rename the column "
-                            "(for example age_at_entry)" if name == AGE else
-                            f"column {name!r}: {why}; rename the column")
+    if name == RESERVED:
+        raise ScenarioError("--covariates", f"column {name!r}: `patient` holds the patient id "
+                            "in every population; rename the column")

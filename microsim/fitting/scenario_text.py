@@ -19,7 +19,7 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from microsim.fitting.data import SurvivalData
+from microsim.fitting.data import ENTRY_AGE, SurvivalData
 from microsim.fitting.estimate import Fit
 from microsim.fitting.families import AFT
 from microsim.fitting.kaplan_meier import Z95
@@ -107,8 +107,8 @@ def block(fit: Fit, data: SurvivalData, name: str, unit: str, day: str | None = 
 
 
 def covariate_words(fit: Fit, data: SurvivalData) -> str:
-    """What the block's covariates stand for: where the base parameters are, and which
-    level each categorical covariate is compared with."""
+    """What the block's covariates stand for: where the base parameters are, which level
+    each categorical covariate is compared with, and the age at entry."""
     if not fit.covariates:
         return ""
     words = (" Covariates are centred at the data's means, so the hazard's parameters "
@@ -118,6 +118,9 @@ def covariate_words(fit: Fit, data: SurvivalData) -> str:
                                                  for c in data.categorical)
              + "), so the hazard's parameters describe a patient at those values and each "
              "level's coefficient compares it with its reference.")
+    if data.age_at_entry:
+        words += (f" The data's column 'age' (fixed at entry) is the attribute '{ENTRY_AGE}': "
+                  "a scenario's `age` is the attained age, which moves with time.")
     return words
 
 
