@@ -235,20 +235,22 @@ def command_run(args) -> int:
 
 
 def make_report(folder: Path) -> Path:
-    """report.html (and figures/) in a run folder, whose manifest then lists them too."""
+    """report.html (and figures/) in a run folder, or fit.html again in a fit's; the
+    manifest then lists them too."""
     from microsim.report.builder import build_report
+    from microsim.report.fit_page import SUMMARY, rebuild_fit_page
     from microsim.store import add_to_manifest
-    report = build_report(folder)
+    report = rebuild_fit_page(folder) if (folder / SUMMARY).is_file() else build_report(folder)
     add_to_manifest(folder)
     return report
 
 
 def command_report(args) -> int:
-    """The HTML report of an existing run folder (a scenario's output folder means its
-    newest `run`)."""
+    """The HTML page of an existing run folder: report.html of a run, fit.html of a fit (an
+    output folder means its newest run, else its newest fit)."""
     from microsim.store import latest_run
     folder = Path(args.folder)
-    print(f"wrote {make_report(latest_run(folder, 'run') or folder)}")
+    print(f"wrote {make_report(latest_run(folder, 'run') or latest_run(folder, 'fit') or folder)}")
     return 0
 
 
@@ -613,10 +615,13 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--out", default="outputs", help="output folder (default: outputs)")
     fit.set_defaults(function=command_fit)
     report = commands.add_parser(
-        "report", help="Write report.html for an existing run folder.",
+        "report", help="Write report.html for an existing run folder (fit.html for a fit's).",
         description="Write report.html (and figures/) for an existing run folder: the "
-                    "decision, the figures, the tables, the verdicts and the manifest.")
-    report.add_argument("folder", help="a folder `microsim run` wrote (e.g. outputs/<scenario>)")
+                    "decision, the figures, the tables, the verdicts and the manifest. For "
+                    "a folder `microsim fit` wrote, make its fit.html (and figures/) again "
+                    "from the fit's tables.")
+    report.add_argument("folder", help="a folder `microsim run` or `microsim fit` wrote (e.g. "
+                        "outputs/<scenario>, outputs/<data file>; its newest run, else fit)")
     report.set_defaults(function=command_report)
     bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
     bench.add_argument("--quick", action="store_true", help="a shorter run")

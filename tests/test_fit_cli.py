@@ -8,6 +8,7 @@ import hashlib
 import io
 import json
 import re
+import shutil
 
 import numpy as np
 import pandas as pd
@@ -132,6 +133,38 @@ def test_the_page_renders_in_chromium(rossi, tmp_path, browser, capsys):
         for part in path:
             value = value[part]
         assert value in element.text
+
+
+def pages(folder):
+    """fit.html and every figure's bytes."""
+    return {p.relative_to(folder).as_posix(): p.read_bytes()
+            for p in [folder / "fit.html", *(folder / "figures").iterdir()]}
+
+
+def test_report_makes_the_page_of_a_fit_again(rossi, tmp_path, capsys):
+    # the page made again from the run folder's tables is the page the fit made (byte for
+    # byte: figures carry no dates), and the manifest hashes it (hashlib.sha256)
+    assert fit(rossi, tmp_path, "--covariates", "fin", "--family", "weibull") == 0
+    folder = (tmp_path / "rossi" / "latest").resolve()
+    made = pages(folder)
+    (folder / "fit.html").unlink()
+    shutil.rmtree(folder / "figures")
+    assert main(["report", str(tmp_path / "rossi")]) == 0
+    assert pages(folder) == made
+    files = json.loads((folder / "manifest.json").read_text())["files"]
+    assert files["fit.html"] == hashlib.sha256(made["fit.html"]).hexdigest()
+    # a fit folder written before its files were named after the data file
+    summary = json.loads((folder / "fit_summary.json").read_text())
+    for name, old in (("block", "fitted_block.toml"), ("scenario", "fitted_scenario.toml"),
+                      ("patients", "fit_patients.csv")):
+        (folder / summary["files"][name]).rename(folder / old)
+    del summary["files"]
+    (folder / "fit_summary.json").write_text(json.dumps(summary))
+    assert main(["report", str(folder)]) == 0
+    assert "fitted_block.toml" in (folder / "fit.html").read_text()
+    (folder / "fitted_block.toml").unlink()
+    assert main(["report", str(folder)]) == EXIT_BAD_INPUT
+    assert "the fit's run folder has no fitted_block.toml" in capsys.readouterr().err
 
 
 def test_a_fit_without_covariates_writes_a_cohort_scenario(rossi, tmp_path, capsys):
