@@ -11,11 +11,13 @@ from microsim.cohort import analytic as analytic_module
 from microsim.cohort.analytic import analytic, cleaned
 from microsim.patients.multipliers import Window, average_patient
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import EXACT, ComparisonSums, compare, share_p_values
+from microsim.results.comparison import (EXACT, ComparisonSums, compare, comparison_grid,
+                                         share_p_values)
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.simulation import simulate
-from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
-                     section, start, state, strategy, transition)
+from microsim.workflow import run_population
+from support import (attribute, effect, horizon, model_of, population, probability, rate,
+                     scenario_text, section, start, state, strategy, transition)
 
 # Two states and no way out of the model: everyone is alive at every time, so life years
 # equal the horizon for every patient (no Monte-Carlo error), while the trace comes from
@@ -286,3 +288,56 @@ def test_a_discounted_lifetime_rate_model_is_not_refused_for_drift():
     assert trace.min() >= 0.0 and np.allclose(trace.sum(axis=2), 1.0, atol=1e-7)
     result = compare(simulate(model, cohort_patients(1000), 4))
     assert result.agrees is True, result.verdict
+
+
+def long_model(cycles: int, *, unit_rate: bool = False, grid=None):
+    """well -> sick -> dead over `cycles` cycles of a day (per-cycle probabilities, or rates)."""
+    move = rate if unit_rate else probability
+    return model_of(scenario_text(
+        horizon(cycles, unit="days"), start(well=1), state("well", utility=1),
+        state("sick", utility=0.5), state("dead", absorbing=True),
+        move("well", "sick", 0.002), move("sick", "dead", 0.003),
+        *([] if unit_rate else [probability("well", "well", "remainder"),
+                                probability("sick", "sick", "remainder")]),
+        *([] if grid is None else [section("simulation", grid=grid)])))
+
+
+def test_a_long_horizon_is_compared_on_at_most_500_steps_and_the_end():
+    # every k-th cycle point, k the fewest that leaves at most 500 steps, and the end
+    # (reference: numpy.arange / linspace); up to 500 cycles, every cycle point
+    np.testing.assert_array_equal(comparison_grid(long_model(20000)),
+                                  np.linspace(0, 20000, 501))
+    np.testing.assert_array_equal(comparison_grid(long_model(1001)),
+                                  np.append(np.arange(0, 1000, 3.0), 1001))
+    np.testing.assert_array_equal(comparison_grid(long_model(500)), np.arange(501.0))
+    np.testing.assert_array_equal(comparison_grid(long_model(20000, unit_rate=True)),
+                                  np.linspace(0, 20000, 501))
+    given = long_model(20000, unit_rate=True, grid=10)  # a grid the scenario gives is kept
+    np.testing.assert_array_equal(comparison_grid(given, 10.0), np.linspace(0, 20000, 2001))
+
+
+def test_the_thinned_grid_compares_the_shares_of_the_full_one_and_counts_what_it_compares():
+    model = long_model(1001)
+    patients = cohort_patients(400)
+    grid = comparison_grid(model)
+    thinned = compare(simulate(model, patients, 5, grid=grid))
+    full = simulate(model, patients, 5)  # every cycle point, the same patients and draws
+    trace = analytic(model).trace[0]
+    at = np.searchsorted(model.times, grid)
+    shares = thinned.shares.pivot(index="time", columns="state", values="simulated")
+    for s, name in enumerate(model.states):
+        np.testing.assert_array_equal(shares[name], (full.states[:, at] == s).mean(axis=0))
+    expected = thinned.shares.pivot(index="time", columns="state", values="analytic")
+    np.testing.assert_allclose(expected[list(model.states)], trace[at], rtol=0, atol=1e-15)
+    n = len(grid) * model.n_states + len(thinned.outcomes)  # Bonferroni over what is compared
+    assert f"Bonferroni over {n} comparisons" in thinned.verdict and thinned.agrees
+    assert thinned.level == pytest.approx(0.001 / n)
+    # outcomes are the whole horizon's, whatever the grid
+    np.testing.assert_allclose(thinned.outcomes.simulated, compare(full).outcomes.simulated,
+                               rtol=1e-12)
+
+
+def test_a_run_compares_a_long_horizon_on_the_thinned_grid():
+    model = long_model(1001)
+    [check] = run_population(model.scenario, 50, 3).validations.values()
+    np.testing.assert_array_equal(np.unique(check.shares.time), comparison_grid(model))
