@@ -60,26 +60,10 @@ def test_the_run_folder_holds_the_fit_the_scenario_and_its_page(rossi, tmp_path,
     models = pd.read_csv(folder / "fit_models.csv")
     assert len(models) == 9 and models.chosen.sum() == 1  # 6 families, 3 of them in two forms
     assert main(["check", str(folder / f"{base}.toml")]) == 0
-
-
-def test_two_fits_write_scenarios_whose_runs_do_not_share_a_folder(rossi, tmp_path, capsys):
-    # the run folder of a scenario is named after it (<out>/<scenario>/), so fits of two
-    # data files, or of two families, must not both write one name
-    other = tmp_path / "rossi_copy.csv"
-    other.write_bytes(rossi.read_bytes())
-    written = []
-    for data, family in [(rossi, "weibull"), (other, "weibull"), (rossi, "lognormal")]:
-        assert fit(data, tmp_path / "out", "--family", family) == 0
-        folder = (tmp_path / "out" / data.stem / "latest").resolve()
-        written.append(folder / json.loads((folder / "fit_summary.json").read_text())[
-            "files"]["scenario"])
-    assert [p.name for p in written] == ["rossi_weibull.toml", "rossi_copy_weibull.toml",
-                                         "rossi_lognormal.toml"]
-    for path in written:
-        assert main(["validate", str(path), "--patients", "50", "--out",
-                     str(tmp_path / "runs")]) == 0
-    assert sorted(p.name for p in (tmp_path / "runs").iterdir()) == sorted(
-        p.stem for p in written)
+    # its runs go under the scenario's own name (<out>/<scenario>/), the data's and the fit's
+    assert main(["validate", str(folder / f"{base}.toml"), "--patients", "50",
+                 "--out", str(tmp_path / "runs")]) == 0
+    assert [p.name for p in (tmp_path / "runs").iterdir()] == [base]
 
 
 def test_the_page_is_self_contained_and_shows_the_tables(rossi, tmp_path, capsys):

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import math
 import re
+from dataclasses import replace
 from functools import lru_cache
 from pathlib import Path
 
@@ -21,7 +22,7 @@ from microsim.fitting.check import simulated_check
 from microsim.fitting.data import read_survival_data
 from microsim.fitting.estimate import fit_all
 from microsim.fitting.families import AFT, BY_NAME, PH
-from microsim.fitting.run import fit_and_write
+from microsim.fitting.run import fit_and_write, output_names
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
@@ -133,6 +134,17 @@ def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
     assert "[[transitions]]" in block and "[[uncertainty.multivariate_normal]]" in block
     models = run.tables["fit_models"]
     assert models.chosen.sum() == 1 and models.loc[models.chosen, "family"].item() == "lognormal"
+
+
+def test_the_written_files_are_named_after_the_data_file_and_the_fit(fitted):
+    # two fits never share a scenario's name, so their runs never share a folder: another
+    # data file, another family, another form each give another name
+    data, fits = fitted
+    names = {output_names(d, fits[key])["scenario"] for d, key in [
+        (data, ("weibull", PH)), (replace(data, path=Path("trial.csv")), ("weibull", PH)),
+        (data, ("lognormal", AFT)), (data, ("weibull", AFT))]}
+    assert names == {"rossi_weibull_ph.toml", "trial_weibull_ph.toml",
+                     "rossi_lognormal_aft.toml", "rossi_weibull_aft.toml"}
 
 
 # --- known parameters recovered ------------------------------------------------------------

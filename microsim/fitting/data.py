@@ -172,8 +172,19 @@ def read_survival_data(path: str | Path, time: str, event: str,
         first_bad((starts < 0) | (starts >= times), "--entry", entry, where, starts,
                   f"must be at least 0 and below the time in column {time!r} (the patient is "
                   "seen from entry to time)")
+    terms, values, population, categorical = design(table, covariates, dict(references or {}),
+                                                    where, len(times))
+    return SurvivalData(path, hashlib.sha256(path.read_bytes()).hexdigest(), time, event, entry,
+                        times, events, starts, terms, values, population, categorical,
+                        tuple(covariates))
+
+
+def design(table: pd.DataFrame, covariates: tuple[str, ...], references: dict[str, str],
+           where: str, size: int):
+    """The fit's design (terms and their values, patients x k), the covariates as the
+    scenario's attributes (a table), and each categorical one's levels: a column of numbers
+    (yes/no as 1/0) is one term, a column of text one indicator per level but the reference."""
     terms, columns, population, categorical = [], [], {}, []
-    references = dict(references or {})
     for name in covariates:
         check_covariate_name(name)
         attribute = ENTRY_AGE if name == AGE else name
@@ -205,13 +216,11 @@ def read_survival_data(path: str | Path, time: str, event: str,
         column = next(iter(references))
         raise ScenarioError("--reference", f"column {column!r} is not a categorical covariate "
                             "(a column of text given to --covariates)"
-                            f"{did_you_mean(column, [l.attribute for l in categorical])}")
+                            f"{did_you_mean(column, [c.attribute for c in categorical])}")
     check_distinct(terms)
-    values = np.column_stack(columns) if columns else np.zeros((len(times), 0))
-    return SurvivalData(path, hashlib.sha256(path.read_bytes()).hexdigest(), time, event, entry,
-                        times, events, starts, tuple(terms), values,
-                        pd.DataFrame(population, columns=list(population)), tuple(categorical),
-                        tuple(covariates))
+    values = np.column_stack(columns) if columns else np.zeros((size, 0))
+    return (tuple(terms), values, pd.DataFrame(population, columns=list(population)),
+            tuple(categorical))
 
 
 def category(name: str, attribute: str, values: pd.Series, levels: tuple[str, ...],
