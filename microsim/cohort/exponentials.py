@@ -12,18 +12,18 @@ Control):
     exp([[A, I], [0, 0]] dt) = [[exp(A dt), integral_0^dt exp(A u) du], [0, I]],  A = Q - delta I.
 
 Steps that share a row's generator and length (the grid steps within a piece) share one
-exponential, and the exponentials of all rows are computed together (scipy.linalg.expm on a
-stack), so a heterogeneous population costs a few small exponentials per patient rather
-than a Python loop over patients. Expected occurrences of each risk are the time in each
-expanded state times its rate there.
+exponential, and the exponentials of all rows are computed together, by stacked matrix
+products (`microsim.cohort.uniformised`), so a heterogeneous population costs a few small
+exponentials per patient and no Python loop over patients. Expected occurrences of each
+risk are the time in each expanded state times its rate there.
 """
 from __future__ import annotations
 
 import numpy as np
-import scipy.linalg
 
 from microsim.cohort.expand import Expansion
 from microsim.cohort.forward_equations import CLOCK_FLOOR, flows
+from microsim.cohort.uniformised import exponential_and_integral
 from microsim.patients.multipliers import Multipliers
 from microsim.results.outcomes import Exposure
 
@@ -127,10 +127,5 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
 def van_loan(Q: np.ndarray, delta: float, dt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """For each (E, E) generator and step length: exp(Q dt) (undiscounted propagation; with
     delta > 0 this block is exp((Q - delta I) dt)) and the discounted integral
-    integral_0^dt exp((Q - delta I) u) du, from one block exponential each."""
-    U, E, _ = Q.shape
-    block = np.zeros((U, 2 * E, 2 * E))
-    block[:, :E, :E] = Q - delta * np.eye(E)
-    block[:, :E, E:] = np.eye(E)
-    moved = scipy.linalg.expm(block * dt[:, None, None])
-    return moved[:, :E, :E], moved[:, :E, E:]
+    integral_0^dt exp((Q - delta I) u) du: the two blocks of Van Loan's exponential."""
+    return exponential_and_integral(Q - delta * np.eye(Q.shape[1]), dt)
