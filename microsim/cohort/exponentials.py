@@ -75,6 +75,18 @@ def exponential_rows(exp: Expansion, mult: Multipliers, times: np.ndarray,
             Exposure.join([exposure for _, exposure in parts]))
 
 
+def shared_steps(hazards: np.ndarray, length: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Which exponential each (row, step) uses, (B, K), and the (flattened) step that
+    computes each: a step shares its predecessor's when it has the same hazards and length,
+    as the grid steps within a piece do. (A step whose twin is not next to it gets an
+    exponential of its own: the same numbers, computed twice.)"""
+    same = np.zeros(length.shape, bool)
+    same[:, 1:] = ((length[:, 1:] == length[:, :-1])
+                   & (hazards[:, 1:] == hazards[:, :-1]).all(axis=2))
+    computed = ~same.ravel()
+    return (np.cumsum(computed) - 1).reshape(length.shape), np.flatnonzero(computed)
+
+
 def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
                       rates: tuple[float, ...]) -> tuple[np.ndarray, Exposure]:
     model = exp.model
@@ -83,18 +95,14 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     nodes = row_nodes(exp, mult, times)
     start, length = nodes[:, :-1], np.diff(nodes, axis=1)  # (B, K)
     hazards = hazards_on_steps(exp, mult, start)
-    # one exponential per distinct (row, hazards, step length)
-    keys = np.concatenate([np.arange(B)[:, None, None].repeat(start.shape[1], 1).astype(float),
-                           hazards, length[..., None]], axis=2).reshape(-1, R + 2)
-    unique, inverse = np.unique(keys, axis=0, return_inverse=True)
-    inverse = inverse.reshape(B, -1)
-    h, dt = unique[:, 1:R + 1], unique[:, R + 1]
-    Q = np.zeros((len(unique), E, E))
+    inverse, first = shared_steps(hazards, length)
+    h, dt = hazards.reshape(-1, R)[first], length.ravel()[first]
+    Q = np.zeros((len(first), E, E))
     flow = h[:, f.risk] * f.factor  # (U, flows)
     for k in range(len(f.source)):
         Q[:, f.source[k], f.target[k]] += flow[:, k]
     Q -= np.eye(E) * Q.sum(axis=2)[:, :, None]  # moves to itself (events) cancel
-    by_risk = np.zeros((len(unique), E, R))  # the rate of each risk from each expanded state
+    by_risk = np.zeros((len(first), E, R))  # the rate of each risk from each expanded state
     np.add.at(by_risk, (slice(None), f.source, f.risk), flow)
     distinct = sorted(set(rates))
     blocks = {delta: van_loan(Q, delta, dt) for delta in distinct}
