@@ -23,20 +23,21 @@ import numpy as np
 
 from microsim.cohort.expand import Expansion
 from microsim.cohort.forward_equations import CLOCK_FLOOR, flows
-from microsim.cohort.uniformised import exponential_and_integral
+from microsim.cohort.uniformised import exponential_and_integrals
 from microsim.patients.multipliers import Multipliers
 from microsim.results.outcomes import Exposure
 
 CHUNK = 4096  # rows marched together: the per-step arrays are (rows, expanded states, ...)
 
 
-def row_nodes(exp: Expansion, mult: Multipliers, times: np.ndarray) -> np.ndarray:
-    """(B, K) sorted times of each row: the grid, its tables' breaks and its window's ends,
-    all within [0, end] (points outside the horizon become the end: empty steps)."""
+def row_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
+    """(B, J) the times at which each row's hazards may change besides the grid: its tables'
+    breaks and its window's ends, within [0, end] (points outside the horizon become 0 or
+    the end: empty steps)."""
     model = exp.model
     end = model.n_cycles * model.cycle
     B = mult.size
-    columns = [np.broadcast_to(times, (B, len(times)))]
+    columns = [np.zeros((B, 0))]
     for risk in model.risks:
         if risk.table is not None:
             starts = np.asarray(risk.table.starts, float)
@@ -44,9 +45,8 @@ def row_nodes(exp: Expansion, mult: Multipliers, times: np.ndarray) -> np.ndarra
             columns.append(starts[None, :] - shift)
     if mult.window is not None:
         columns += [mult.window.on[:, None], mult.window.off[:, None]]
-    nodes = np.concatenate(columns, axis=1)
-    nodes = np.where((nodes > 0) & (nodes < end), nodes, np.where(nodes <= 0, 0.0, end))
-    return np.sort(nodes, axis=1)
+    breaks = np.concatenate(columns, axis=1)
+    return np.where((breaks > 0) & (breaks < end), breaks, np.where(breaks <= 0, 0.0, end))
 
 
 def hazards_on_steps(exp: Expansion, mult: Multipliers, start: np.ndarray) -> np.ndarray:
@@ -92,7 +92,9 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     model = exp.model
     f = flows(exp)
     B, E, R = mult.size, exp.size, len(model.risks)
-    nodes = row_nodes(exp, mult, times)
+    breaks = row_breaks(exp, mult)
+    nodes = np.sort(np.concatenate([np.broadcast_to(times, (B, len(times))), breaks], axis=1),
+                    axis=1)
     start, length = nodes[:, :-1], np.diff(nodes, axis=1)  # (B, K)
     hazards = hazards_on_steps(exp, mult, start)
     inverse, first = shared_steps(hazards, length)
@@ -105,35 +107,40 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     by_risk = np.zeros((len(first), E, R))  # the rate of each risk from each expanded state
     np.add.at(by_risk, (slice(None), f.source, f.risk), flow)
     distinct = sorted(set(rates))
-    blocks = {delta: van_loan(Q, delta, dt) for delta in distinct}
-    propagate = blocks[0.0][0] if 0.0 in blocks else van_loan(Q, 0.0, dt)[0]
-    collapse = exp.collapse()
-    pi = exp.start_rows(mult.start, B)
-    history = np.empty((B, nodes.shape[1], E))
-    history[:, 0] = pi
-    occupancy = np.zeros((B, E, 3))
-    on_treatment = np.zeros((B, E, 3))
-    occurrences = np.zeros((B, R, 3))
-    active = (np.zeros_like(start, bool) if mult.window is None else
-              (mult.window.on[:, None] <= start) & (start < mult.window.off[:, None]))
+    propagate, integrals = exponential_and_integrals(Q, dt, tuple(distinct))
+    history = np.empty((B, nodes.shape[1], E))  # the distribution at each node
+    history[:, 0] = exp.start_rows(mult.start, B)
     for k in range(start.shape[1]):
-        step = inverse[:, k]
-        for w, delta in enumerate(rates):
-            time_in = np.exp(-delta * start[:, k])[:, None] * np.einsum(
-                "be,bef->bf", pi, blocks[delta][1][step])
-            occupancy[:, :, w] += time_in
-            on_treatment[:, :, w] += np.where(active[:, k, None], time_in, 0.0)
-            occurrences[:, :, w] += np.einsum("be,ber->br", time_in, by_risk[step])
-        pi = np.einsum("be,bef->bf", pi, propagate[step])
-        history[:, k + 1] = pi
-    at = np.stack([np.searchsorted(row, times, side="left") for row in nodes])  # (B, T)
+        history[:, k + 1] = np.matmul(history[:, k, None, :], propagate[inverse[:, k]])[:, 0]
+    # each grid time's node: the grid times before it and the breaks before it
+    at = np.searchsorted(times, times)[None, :] + (breaks[:, :, None] < times).sum(axis=1)
+    collapse = exp.collapse()
     trace = np.take_along_axis(history, at[:, :, None], axis=1) @ collapse
+    active = (None if mult.window is None else
+              (mult.window.on[:, None] <= start) & (start < mult.window.off[:, None]))
+    exposure = {delta: step_exposure(history[:, :-1] * np.exp(-delta * start)[..., None],
+                                     active, first, inverse[:, 0], integral, by_risk)
+                for delta, integral in zip(distinct, integrals)}
+    occupancy, occurrences, on_treatment = (np.stack([exposure[d][i] for d in rates], axis=-1)
+                                            for i in range(3))
     return trace, Exposure(np.einsum("bew,es->bsw", occupancy, collapse), occurrences,
                            np.einsum("bew,es->bsw", on_treatment, collapse))
 
 
-def van_loan(Q: np.ndarray, delta: float, dt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """For each (E, E) generator and step length: exp(Q dt) (undiscounted propagation; with
-    delta > 0 this block is exp((Q - delta I) dt)) and the discounted integral
-    integral_0^dt exp((Q - delta I) u) du: the two blocks of Van Loan's exponential."""
-    return exponential_and_integral(Q - delta * np.eye(Q.shape[1]), dt)
+def step_exposure(weighted: np.ndarray, active: np.ndarray | None, first: np.ndarray,
+                  row_first: np.ndarray, integrals: np.ndarray, by_risk: np.ndarray) -> tuple:
+    """Each row's discounted time in each expanded state (B, E), expected occurrences of
+    each risk (B, R) and time on treatment (B, E), from the distribution at each step's
+    start discounted to time 0 (B, K, E): the steps that share an exponential (runs from
+    `first`; each row's from `row_first`) share its integral, so their distributions are
+    summed first, and one product per exponential gives the time in each state."""
+    def time_in(weights):
+        summed = np.add.reduceat(weights.reshape(-1, weights.shape[-1]), first, axis=0)
+        return np.matmul(summed[:, None, :], integrals)[:, 0]  # (U, E)
+
+    per_step = time_in(weighted)
+    occupancy = np.add.reduceat(per_step, row_first, axis=0)
+    occurrences = np.add.reduceat(np.einsum("ue,uer->ur", per_step, by_risk), row_first, axis=0)
+    on = (np.zeros_like(occupancy) if active is None else
+          np.add.reduceat(time_in(weighted * active[..., None]), row_first, axis=0))
+    return occupancy, occurrences, on
