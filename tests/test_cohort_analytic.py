@@ -469,6 +469,19 @@ def test_continuous_hazard_ratios_per_patient_match_expm_patient_by_patient():
         np.testing.assert_allclose(result.trace[b, -1], moved[0], rtol=1e-10, atol=1e-15)
 
 
+def test_patients_get_the_same_numbers_in_chunks_of_any_size(monkeypatch):
+    # memory is bounded by marching a few rows at a time; no row depends on the others
+    from microsim.cohort import exponentials
+    model = model_of(MARKER_MODEL)
+    people = draw_population(model.scenario.population, 5)
+    whole = analytic(model, patients=people)
+    monkeypatch.setattr(exponentials, "CHUNK", 7)
+    chunked = analytic(model, patients=people)
+    np.testing.assert_array_equal(chunked.trace, whole.trace)
+    np.testing.assert_array_equal(chunked.exposure.occupancy, whole.exposure.occupancy)
+    np.testing.assert_array_equal(chunked.exposure.occurrences, whole.exposure.occurrences)
+
+
 def test_continuous_hazard_ratio_on_one_exit_gives_the_closed_form_life_expectancy():
     # one exit at rate r m, m = HR^(x - centre): the discounted time alive to the horizon
     # is (1 - exp(-(r m + delta) H)) / (r m + delta) (common practice), per patient

@@ -27,7 +27,8 @@ from microsim.cohort.uniformised import exponential_and_integrals
 from microsim.patients.multipliers import Multipliers
 from microsim.results.outcomes import Exposure
 
-CHUNK = 4096  # rows marched together: the per-step arrays are (rows, expanded states, ...)
+CHUNK = 4096  # the most rows marched together
+CELLS = 2 ** 24  # the most numbers a chunk's arrays hold at once (128 MB of doubles)
 
 
 def row_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
@@ -69,10 +70,21 @@ def exponential_rows(exp: Expansion, mult: Multipliers, times: np.ndarray,
                      rates: tuple[float, ...]) -> tuple[np.ndarray, Exposure]:
     """The trace (B, T, S) and the expected exposure of every row, exactly; `rates` are the
     continuous discount rates delta of the three weightings (none, costs, effects)."""
-    parts = [exponential_chunk(exp, mult.take(slice(lo, lo + CHUNK)), times, rates)
-             for lo in range(0, mult.size, CHUNK)]
+    rows = chunk_rows(exp, mult, times)
+    parts = [exponential_chunk(exp, mult.take(slice(lo, lo + rows)), times, rates)
+             for lo in range(0, mult.size, rows)]
     return (np.concatenate([trace for trace, _ in parts]),
             Exposure.join([exposure for _, exposure in parts]))
+
+
+def chunk_rows(exp: Expansion, mult: Multipliers, times: np.ndarray) -> int:
+    """Rows per chunk, so that a chunk's arrays stay within CELLS numbers: per row, three of
+    (nodes, expanded states) and some eight of (exponentials, E, E), with at most three
+    exponentials per break and three more (a row's steps share theirs between breaks)."""
+    breaks = row_breaks(exp, mult.take(slice(0, 1))).shape[1]
+    E = exp.size
+    per_row = 3 * (len(times) + breaks) * E + 8 * (3 * breaks + 3) * E * E
+    return int(np.clip(CELLS // per_row, 1, CHUNK))
 
 
 def shared_steps(hazards: np.ndarray, length: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
