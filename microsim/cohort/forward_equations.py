@@ -7,7 +7,7 @@ e.g. Ross 2014, "Introduction to Probability Models", ch. 6). We integrate it fo
 batch of patients at once, with the integrals the outcomes need carried along: time in
 each state and the expected number of each risk's occurrences, undiscounted and discounted
 continuously at the cost and effect rates. When Q is piecewise constant the exact matrix
-exponential path in `microsim.markov` is used instead (see `microsim.cohort.analytic`).
+exponential path in `microsim.cohort.exponentials` is used instead (see `microsim.cohort.analytic`).
 """
 from __future__ import annotations
 
