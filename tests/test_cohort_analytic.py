@@ -482,6 +482,16 @@ def test_patients_get_the_same_numbers_in_chunks_of_any_size(monkeypatch):
     np.testing.assert_array_equal(chunked.exposure.occurrences, whole.exposure.occurrences)
 
 
+def test_rate_trace_on_a_grid_that_does_not_start_at_0_is_still_from_time_0():
+    # edge: the grid [3, 12] (or a single time) still starts every patient at time 0;
+    # reference: scipy.linalg.expm, pi(t) = pi(0) exp(Q t)
+    model = model_of(RATE_MODEL)
+    for times in ([3.0, 10.0], [4.5]):
+        result = analytic(model, times=np.array(times))
+        expected = np.array([RATE_START @ expm(RATE_Q * t) for t in times])
+        np.testing.assert_allclose(result.trace[0], expected, rtol=0, atol=1e-12)
+
+
 def test_continuous_hazard_ratio_on_one_exit_gives_the_closed_form_life_expectancy():
     # one exit at rate r m, m = HR^(x - centre): the discounted time alive to the horizon
     # is (1 - exp(-(r m + delta) H)) / (r m + delta) (common practice), per patient

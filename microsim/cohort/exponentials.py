@@ -34,11 +34,11 @@ CELLS = 2 ** 24  # the most numbers a chunk's arrays hold at once (128 MB of dou
 def row_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
     """(B, J) the times at which each row's hazards may change besides the grid: its tables'
     breaks and its window's ends, within [0, end] (points outside the horizon become 0 or
-    the end: empty steps)."""
+    the end: empty steps); and time 0, where every row starts, whatever the grid."""
     model = exp.model
     end = model.n_cycles * model.cycle
     B = mult.size
-    columns = [np.zeros((B, 0))]
+    columns = [np.zeros((B, 1))]
     for risk in model.risks:
         if risk.table is not None:
             starts = np.asarray(risk.table.starts, float)
@@ -150,9 +150,10 @@ def step_exposure(weighted: np.ndarray, active: np.ndarray | None, first: np.nda
         summed = np.add.reduceat(weights.reshape(-1, weights.shape[-1]), first, axis=0)
         return np.matmul(summed[:, None, :], integrals)[:, 0]  # (U, E)
 
-    per_step = time_in(weighted)
-    occupancy = np.add.reduceat(per_step, row_first, axis=0)
-    occurrences = np.add.reduceat(np.einsum("ue,uer->ur", per_step, by_risk), row_first, axis=0)
+    per_exponential = time_in(weighted)
+    occupancy = np.add.reduceat(per_exponential, row_first, axis=0)
+    occurrences = np.add.reduceat(np.einsum("ue,uer->ur", per_exponential, by_risk), row_first,
+                                  axis=0)
     on = (np.zeros_like(occupancy) if active is None else
           np.add.reduceat(time_in(weighted * active[..., None]), row_first, axis=0))
     return occupancy, occurrences, on

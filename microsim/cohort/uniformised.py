@@ -63,6 +63,7 @@ def exponential_and_integrals(Q: np.ndarray, h: np.ndarray,
 
 
 def moving_steps(Q: np.ndarray, h: np.ndarray, deltas: tuple[float, ...]) -> tuple:
+    """exponential_and_integrals for steps h > 0: scale, sum the series, square back."""
     eye = np.eye(Q.shape[1], dtype=bool)
     X = Q * h[:, None, None]
     if (X[:, ~eye] < 0).any() or min(deltas, default=0.0) < 0:
@@ -73,7 +74,7 @@ def moving_steps(Q: np.ndarray, h: np.ndarray, deltas: tuple[float, ...]) -> tup
     halvings = np.zeros(len(h), int)
     big = size > RATE_PER_STEP
     halvings[big] = np.ceil(np.log2(size[big] / RATE_PER_STEP)).astype(int)
-    step = h * np.exp2(-halvings)  # L
+    step = h * np.exp2(-halvings)  # L, the step the blocks are for so far
     Y *= (step / h)[:, None, None]
     shift *= step / h
     last = terms(size * step / h)
