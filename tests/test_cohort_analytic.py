@@ -196,6 +196,14 @@ def test_parametric_hazard_from_time_zero_matches_survival(family, clock):
     np.testing.assert_allclose(result.trace[0, :, 1], second, rtol=0, atol=1e-7)
 
 
+def test_forward_equations_on_a_grid_that_does_not_start_at_0_start_at_time_0():
+    # edge: the grid [3, 12] still starts every patient at time 0 (same reference)
+    text, cumulative, _ = WEIBULL
+    result = analytic(model_of(varying_model(text, "since_start")), times=np.array([3.0, 12.0]))
+    survival = [math.exp(-cumulative(t) - 0.05 * t) for t in (3.0, 12.0)]
+    np.testing.assert_allclose(result.trace[0, :, 0], survival, rtol=0, atol=1e-7)
+
+
 @pytest.mark.parametrize("family", [
     (dict(family="weibull", shape=0.7, scale=4), lambda t: (t / 4.0) ** 0.7),
     (dict(family="loglogistic", shape=0.8, scale=4), lambda t: math.log1p((t / 4.0) ** 0.8)),

@@ -95,7 +95,7 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
 
     y0 = np.zeros((batch, sum(sizes)))
     y0[:, :E] = exp.start_rows(mult.start, batch)
-    solution = solve_ivp(derivative, (times[0], times[-1]), y0.ravel(), method="DOP853",
+    solution = solve_ivp(derivative, (0.0, times[-1]), y0.ravel(), method="DOP853",
                          t_eval=times, rtol=RTOL, atol=ATOL, max_step=model.cycle)
     if not solution.success:
         raise RuntimeError(f"forward equations did not solve: {solution.message}")
