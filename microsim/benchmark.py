@@ -165,7 +165,9 @@ AGE_ON_WEIBULL = ', { attribute = "age", hazard_ratio = 1.03, centre = 60 }'
 
 def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict:
     """Medians over interleaved repeats: the SimPy event engine's time over the vectorised
-    one's, both given the same model, multipliers, patient ids and seed in one batch."""
+    one's, both given the same model, multipliers, patient ids and seed in one batch, after
+    one warm-up run of each on a few patients (numba compiles the vectorised engine's loops,
+    or loads them from its cache, once per process)."""
     from microsim.engines.vectorised_events import simulate_events_vectorised
     from microsim.patients.population import draw_population
     from microsim.patients.treatment import patient_multipliers
@@ -174,6 +176,8 @@ def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict
     ids = np.arange(patients)
     mult = patient_multipliers(model, draw_population(model.scenario.population, 1, ids), 1)
     ratios, vectorised = [], []
+    for engine in (event_engine.simulate_events, simulate_events_vectorised):
+        engine(model, mult.take(ids[:10]), ids[:10], seed=1)
     for _ in range(repeats):
         started = time.perf_counter()
         h = event_engine.simulate_events(model, mult, ids, seed=1)
