@@ -11,7 +11,7 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - event engines: the SimPy event engine's time over the vectorised event engine's on the
   same rate model, patients and seed (the same records), for Weibull hazards with
   covariates and memory, and for the same with attained age acting on the Weibull hazards
-  (a numerical root per draw);
+  (a numerical root per draw), after a first tiny run of each that loads the compiled code;
 - the cycle engine against numpy: the demo's patient-cycles per second as the main job
   simulates them (engine, aggregation, batches of simulation.batch_size), over the
   uniform numbers per second numpy's default generator fills in the same process;
