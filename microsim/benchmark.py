@@ -11,7 +11,7 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - event engines: the SimPy event engine's time over the vectorised event engine's on the
   same rate model, patients and seed (the same records), for Weibull hazards with
   covariates and memory, and for the same with attained age acting on the Weibull hazards
-  (a numerical root per draw);
+  (a numerical root per draw), after a first tiny run of each that loads the compiled code;
 - the cycle engine against numpy: the demo's patient-cycles per second as the main job
   simulates them (engine, aggregation, batches of simulation.batch_size), over the
   uniform numbers per second numpy's default generator fills in the same process;
@@ -252,7 +252,9 @@ seed = 5
 
 def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict:
     """Medians over interleaved repeats: the SimPy event engine's time over the vectorised
-    one's, both given the same model, multipliers, patient ids and seed in one batch."""
+    one's, both given the same model, multipliers, patient ids and seed in one batch, after
+    one warm-up run of each on a few patients (numba compiles the vectorised engine's loops,
+    or loads them from its cache, once per process)."""
     from microsim.engines.vectorised_events import simulate_events_vectorised
     from microsim.patients.population import draw_population
     from microsim.patients.treatment import patient_multipliers
@@ -261,6 +263,8 @@ def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict
     ids = np.arange(patients)
     mult = patient_multipliers(model, draw_population(model.scenario.population, 1, ids), 1)
     ratios, vectorised = [], []
+    for engine in (event_engine.simulate_events, simulate_events_vectorised):
+        engine(model, mult.take(ids[:10]), ids[:10], seed=1)
     for _ in range(repeats):
         started = time.perf_counter()
         h = event_engine.simulate_events(model, mult, ids, seed=1)
