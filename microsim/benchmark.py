@@ -31,7 +31,6 @@ Targets (issue 8) are printed beside each figure with "met" or "missed".
 """
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 import tempfile
