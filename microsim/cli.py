@@ -104,7 +104,10 @@ def begin(args) -> tuple[float, Path, object]:
     """Start a command's clock and read its scenario (refusing bad input before any work)."""
     started = time.perf_counter()
     path = Path(args.scenario)
-    return started, path, read_scenario(path, options=scenario_options(args))
+    scenario = read_scenario(path, options=scenario_options(args))
+    for warning in scenario.warnings:  # what `check` warns of, said before the work too
+        print(f"warning: {warning}", file=sys.stderr)
+    return started, path, scenario
 
 
 def cohort_note(scenario) -> str:

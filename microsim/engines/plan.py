@@ -47,8 +47,16 @@ def memory_terms(model: BoundModel, tracked: tuple[str, ...]) -> list[tuple]:
 def risk_purpose(model: BoundModel, risk) -> str:
     """The draw purpose of a risk: its name and the state it leaves, so an event that can
     happen in several states has an independent stream in each, and a strategy that adds
-    a risk shifts no other risk's draws."""
-    return f"{risk.name}@{model.states[risk.source]}"
+    a risk shifts no other risk's draws.
+
+    In cycle models a copy of a state in a treatment phase reads the stream of the state
+    it is a copy of (`BoundModel.entered`): occurrences there are cycle numbers, which a
+    patient never repeats, so the copies share the streams safely and a patient whom a
+    phase never treats keeps the draws of every other strategy (common random numbers).
+    In rate models occurrences count the rounds in each state (copy), so copies keep
+    streams of their own."""
+    state = model.entered(risk.source) if model.discrete else model.states[risk.source]
+    return f"{risk.name}@{state}"
 
 
 def risk_purposes(model: BoundModel) -> tuple[str, ...]:
