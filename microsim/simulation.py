@@ -141,7 +141,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         on_points = h.cycle_states is not None and np.array_equal(grid, model.times)
         states.append(h.cycle_states if on_points else aggregate.grid_states(h, grid))
         cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
-        exposures.append(aggregate.exposure(model, h, batch.window, cycle_points))
+        exposures.append(aggregate.exposure(model, h, batch, cycle_points))
         transitions += int(np.sum(h.risk >= 0))
         if histories is not None:
             histories.write(h.table(patients.iloc[part], model.states,

@@ -25,18 +25,23 @@ import scipy.linalg
 from microsim.cohort.expand import Expansion
 from microsim.cohort.forward_equations import CLOCK_FLOOR, flows
 from microsim.patients.multipliers import Multipliers
+from microsim.results.bands import Bands, band_edges, band_of, entry_ages
 from microsim.results.outcomes import Exposure
 
 CHUNK = 4096  # rows marched together: the per-step arrays are (rows, expanded states, ...)
 
 
-def row_nodes(exp: Expansion, mult: Multipliers, times: np.ndarray) -> np.ndarray:
-    """(B, K) sorted times of each row: the grid, its tables' breaks and its window's ends,
-    all within [0, end] (points outside the horizon become the end: empty steps)."""
+def row_nodes(exp: Expansion, mult: Multipliers, times: np.ndarray,
+              edges: np.ndarray | None = None) -> np.ndarray:
+    """(B, K) sorted times of each row: the grid, its tables' breaks, its window's ends
+    and its band `edges` of costs and utilities, all within [0, end] (points outside the
+    horizon become the end: empty steps)."""
     model = exp.model
     end = model.n_cycles * model.cycle
     B = mult.size
     columns = [np.broadcast_to(times, (B, len(times)))]
+    if edges is not None:
+        columns.append(edges)
     for risk in model.risks:
         if risk.table is not None:
             starts = np.asarray(risk.table.starts, float)
@@ -80,7 +85,8 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     model = exp.model
     f = flows(exp)
     B, E, R = mult.size, exp.size, len(model.risks)
-    nodes = row_nodes(exp, mult, times)
+    edges = band_edges(model, mult.entry_age, mult.size)
+    nodes = row_nodes(exp, mult, times, edges)
     start, length = nodes[:, :-1], np.diff(nodes, axis=1)  # (B, K)
     hazards = hazards_on_steps(exp, mult, start)
     # one exponential per distinct (row, hazards, step length)
@@ -103,25 +109,33 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     pi = exp.start_rows(mult.start, B)
     history = np.empty((B, nodes.shape[1], E))
     history[:, 0] = pi
-    occupancy = np.zeros((B, E, 3))
-    on_treatment = np.zeros((B, E, 3))
-    occurrences = np.zeros((B, R, 3))
+    n_bands = 1 if edges is None else edges.shape[1] - 1
+    occupancy = np.zeros((B, E, n_bands, 3))
+    on_treatment = np.zeros((B, E, n_bands, 3))
+    occurrences = np.zeros((B, R, n_bands, 3))
     active = (np.zeros_like(start, bool) if mult.window is None else
               (mult.window.on[:, None] <= start) & (start < mult.window.off[:, None]))
+    band = np.zeros(start.shape, int) if edges is None else band_of(edges, start)
+    rows = np.arange(B)
     for k in range(start.shape[1]):
         step = inverse[:, k]
         for w, delta in enumerate(rates):
             time_in = np.exp(-delta * start[:, k])[:, None] * np.einsum(
                 "be,bef->bf", pi, blocks[delta][1][step])
-            occupancy[:, :, w] += time_in
-            on_treatment[:, :, w] += np.where(active[:, k, None], time_in, 0.0)
-            occurrences[:, :, w] += np.einsum("be,ber->br", time_in, by_risk[step])
+            occupancy[rows, :, band[:, k], w] += time_in
+            on_treatment[rows, :, band[:, k], w] += np.where(active[:, k, None], time_in, 0.0)
+            occurrences[rows, :, band[:, k], w] += np.einsum("be,ber->br", time_in,
+                                                             by_risk[step])
         pi = np.einsum("be,bef->bf", pi, propagate[step])
         history[:, k + 1] = pi
     at = np.stack([np.searchsorted(row, times, side="left") for row in nodes])  # (B, T)
     trace = np.take_along_axis(history, at[:, :, None], axis=1) @ collapse
-    return trace, Exposure(np.einsum("bew,es->bsw", occupancy, collapse), occurrences,
-                           np.einsum("bew,es->bsw", on_treatment, collapse))
+    occupancy = np.einsum("bekw,es->bskw", occupancy, collapse)
+    on_treatment = np.einsum("bekw,es->bskw", on_treatment, collapse)
+    bands = None if edges is None else Bands(edges, entry_ages(mult.entry_age, B), occupancy,
+                                             on_treatment, occurrences)
+    return trace, Exposure(occupancy.sum(axis=2), occurrences.sum(axis=2),
+                           on_treatment.sum(axis=2), bands=bands)
 
 
 def van_loan(Q: np.ndarray, delta: float, dt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

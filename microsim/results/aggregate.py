@@ -10,9 +10,10 @@ from __future__ import annotations
 import numpy as np
 
 from microsim.binding import BoundModel
-from microsim.patients.multipliers import Window
+from microsim.patients.multipliers import Multipliers
 from microsim.engines.histories import Histories
 from microsim.markov import discrete_outcomes as cycle_outcomes
+from microsim.results.bands import Bands, band_edges, band_of, entry_ages
 from microsim.results.outcomes import Exposure
 
 
@@ -44,12 +45,18 @@ def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
     return states.astype(np.int16)
 
 
-def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
-    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates."""
-    out = np.zeros((h.n_patients, len(model.risks), 3))
+def occurrences(model: BoundModel, h: Histories, edges: np.ndarray | None = None) -> np.ndarray:
+    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates; with
+    band `edges` (B, K + 1), (B, R, K, 3) by the band each happened in."""
     happened = h.risk >= 0
-    weights = np.exp(-np.outer(h.time[happened], discount_rates(model)))
-    np.add.at(out, (h.patient[happened], h.risk[happened]), weights)
+    patient, risk, time = h.patient[happened], h.risk[happened], h.time[happened]
+    weights = np.exp(-np.outer(time, discount_rates(model)))
+    if edges is None:
+        out = np.zeros((h.n_patients, len(model.risks), 3))
+        np.add.at(out, (patient, risk), weights)
+        return out
+    out = np.zeros((h.n_patients, len(model.risks), edges.shape[1] - 1, 3))
+    np.add.at(out, (patient, risk, band_of(edges[patient], time)), weights)
     return out
 
 
@@ -63,35 +70,67 @@ def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.nda
     return np.where((b > a)[:, None], value, 0.0)
 
 
-def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None) -> np.ndarray:
+def banded_sojourns(model: BoundModel, h: Histories, a: np.ndarray, b: np.ndarray,
+                    edges: np.ndarray) -> np.ndarray:
+    """(B, S, K, 3) the sojourns [a, b) of the records in their states, split at each
+    patient's band edges (B, K + 1)."""
+    out = np.zeros((h.n_patients, model.n_states, edges.shape[1] - 1, 3))
+    lows, highs = edges[h.patient, :-1], edges[h.patient, 1:]
+    for k in range(edges.shape[1] - 1):
+        np.add.at(out, (h.patient, h.target, k), sojourn_integrals(
+            model, np.maximum(a, lows[:, k]), np.minimum(b, highs[:, k])))
+    return out
+
+
+def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None,
+                    band: np.ndarray | None = None, n_bands: int = 1) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    `on` (B, T) holds, when given). Each patient's sum runs over its own cycle points in
+    `on` (B, T) holds, when given); with `band` (B, T), the band of each point,
+    (B, S, n_bands, 3) by band. Each patient's sum runs over its own cycle points in
     time order, one point at a time for the whole batch, so it does not depend on the
     batch (a point not counted adds nothing)."""
-    B, S = states.shape[0], model.n_states
+    B, S, K = states.shape[0], model.n_states, n_bands
     weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                                      correction=model.correction)
                         for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
-    out = np.zeros((3, B * S))
+    out = np.zeros((3, B * S * K))
     rows = np.arange(B) * S
     for t in range(states.shape[1]):
         counted = states[:, t] >= 0 if on is None else (states[:, t] >= 0) & on[:, t]
-        cell = (rows + states[:, t])[counted]  # one cell per patient: no repeats
+        cell = rows + states[:, t] if band is None else (rows + states[:, t]) * K + band[:, t]
+        cell = cell[counted]  # one cell per patient: no repeats
         for w in range(3):
             out[w, cell] += weights[t, w]
-    return np.ascontiguousarray(np.moveaxis(out.reshape(3, B, S), 0, -1))
+    shape = (3, B, S) if band is None else (3, B, S, K)
+    return np.ascontiguousarray(np.moveaxis(out.reshape(shape), 0, -1))
 
 
-def exposure(model: BoundModel, h: Histories, window: Window | None = None,
+def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
              states: np.ndarray | None = None) -> Exposure:
-    """Per-patient time in state (and on treatment) and occurrences from histories (cycle
-    models: `states` on the cycle points, when the caller has them already)."""
+    """Per-patient time in state (and on treatment, under `mult`'s window) and occurrences
+    from histories (cycle models: `states` on the cycle points, when the caller has them
+    already), with `mult`'s weights on the levels of the tables of costs and utilities,
+    and split by their bands of time where they are by age or time."""
+    window = None if mult is None else mult.window
+    entry_age = None if mult is None else mult.entry_age
+    edges = band_edges(model, entry_age, h.n_patients)
+    levels = {} if mult is None else mult.levels
     if model.discrete:
         states = grid_states(h, model.times) if states is None else states
         occupancy = cycle_occupancy(model, states)
+        on_grid = None if window is None else window.on_grid(model.times)
         on = (np.zeros_like(occupancy) if window is None
-              else cycle_occupancy(model, states, window.on_grid(model.times)))
-        return Exposure(occupancy, occurrences(model, h), on)
+              else cycle_occupancy(model, states, on_grid))
+        bands = None
+        if edges is not None:
+            K = edges.shape[1] - 1
+            band = band_of(edges, np.broadcast_to(model.times, states.shape))
+            split = cycle_occupancy(model, states, band=band, n_bands=K)
+            bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
+                          np.zeros_like(split) if window is None
+                          else cycle_occupancy(model, states, on_grid, band, K),
+                          occurrences(model, h, edges))
+        return Exposure(occupancy, occurrences(model, h), on, levels, bands)
     end = model.n_cycles * model.cycle
     a, b = h.time, next_times(h, end)
     occupancy = np.zeros((h.n_patients, model.n_states, 3))
@@ -99,6 +138,13 @@ def exposure(model: BoundModel, h: Histories, window: Window | None = None,
     on = np.zeros_like(occupancy)
     if window is not None:
         start, stop = window.on[h.patient], window.off[h.patient]
-        np.add.at(on, (h.patient, h.target),
-                  sojourn_integrals(model, np.maximum(a, start), np.minimum(b, stop)))
-    return Exposure(occupancy, occurrences(model, h), on)
+        on_from, on_to = np.maximum(a, start), np.minimum(b, stop)
+        np.add.at(on, (h.patient, h.target), sojourn_integrals(model, on_from, on_to))
+    bands = None
+    if edges is not None:
+        split = banded_sojourns(model, h, a, b, edges)
+        bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
+                      np.zeros_like(split) if window is None
+                      else banded_sojourns(model, h, on_from, on_to, edges),
+                      occurrences(model, h, edges))
+    return Exposure(occupancy, occurrences(model, h), on, levels, bands)
