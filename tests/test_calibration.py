@@ -88,7 +88,8 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "eligibility", "uptake", "discontinuation", "hazard ratio", "added transition",
               "semi-Markov", "event by state", "start shares by attribute",
               "treatment on entering a state", "table by level", "lognormal on since start",
-              "generalised_gamma on since start", "time ratio"]
+              "generalised_gamma on since start", "time ratio", "utility by level",
+              "utility by age"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 
