@@ -29,8 +29,8 @@ from microsim.cli import main
 from microsim.cohort.analytic import analytic
 from microsim.engines.event_engine import simulate_events
 from microsim.patients.population import draw_population, patients_for, scenario_patients
-from microsim.results import aggregate
 from microsim.patients.treatment import patient_multipliers
+from microsim.results import aggregate
 from microsim.results.outcomes import outcome_values
 from microsim.scenario import ScenarioError, parse_scenario, read_scenario
 from microsim.simulation import simulate
@@ -79,35 +79,32 @@ def exact_values(model, patients) -> dict:
 
 # ------------------------------------------------------------------------------- by level
 
-# (where the table is read, keyword arguments of `three_states` with the value `V` in it)
-SLOTS = {
-    "state utility": lambda v: dict(well=dict(utility=v, cost=100)),
-    "state cost": lambda v: dict(well=dict(utility=0.8, cost=v)),
-    "transition cost": lambda v: dict(well=dict(utility=0.8), to_sick=dict(cost=v)),
-    "transition disutility": lambda v: dict(well=dict(utility=0.8), to_sick=dict(disutility=v)),
-    "event cost": lambda v: dict(well=dict(utility=0.8), flare=dict(cost=v)),
-    "event disutility": lambda v: dict(well=dict(utility=0.8), flare=dict(disutility=v)),
-}
 COSTS_BY_SEX = {"female": 1200.0, "male": 700.0}
 DISUTILITIES_BY_SEX = {"female": 0.02, "male": 0.05}
-
-
-def by_sex_values(slot: str) -> dict:
-    if "utility" in slot and "dis" not in slot:
-        return BY_SEX
-    return DISUTILITIES_BY_SEX if "disutility" in slot else COSTS_BY_SEX
+# where the table is read: the keys `three_states` adds for a value v there, and the values
+SLOTS = {
+    "state utility": (lambda v: dict(well=dict(utility=v, cost=100)), BY_SEX),
+    "state cost": (lambda v: dict(well=dict(utility=0.8, cost=v)), COSTS_BY_SEX),
+    "transition cost": (lambda v: dict(well=dict(utility=0.8), to_sick=dict(cost=v)),
+                        COSTS_BY_SEX),
+    "transition disutility": (lambda v: dict(well=dict(utility=0.8), to_sick=dict(disutility=v)),
+                              DISUTILITIES_BY_SEX),
+    "event cost": (lambda v: dict(well=dict(utility=0.8), flare=dict(cost=v)), COSTS_BY_SEX),
+    "event disutility": (lambda v: dict(well=dict(utility=0.8), flare=dict(disutility=v)),
+                         DISUTILITIES_BY_SEX),
+}
 
 
 @pytest.mark.parametrize("kind", ["rate", "cycle"])
 @pytest.mark.parametrize("slot", SLOTS)
 def test_a_value_by_sex_is_each_sexs_number_typed_in(kind, slot):
-    values = by_sex_values(slot)
-    tabled = model_of(three_states(kind, **SLOTS[slot]("v"),
+    keys, values = SLOTS[slot]
+    tabled = model_of(three_states(kind, **keys("v"),
                                    extra=[table("v", attribute="sex", values=values)]))
     patients = draw_population(tabled.scenario.population, 5, np.arange(60))
     mixed = exact_values(tabled, patients)
     for sex, number in values.items():
-        typed = model_of(three_states(kind, **SLOTS[slot](number)))
+        typed = model_of(three_states(kind, **keys(number)))
         mine = (patients.sex == sex).to_numpy()
         assert 5 < mine.sum() < 55
         own = exact_values(typed, patients[mine].reset_index(drop=True))
@@ -407,7 +404,7 @@ def test_the_command_line_refuses_a_bad_value_table_in_one_line_with_exit_2(tmp_
     assert not (tmp_path / "out").exists()
 
 
-def test_a_value_by_level_or_age_is_not_available_in_a_service(tmp_path):
+def test_a_value_by_age_is_not_available_in_a_service():
     text = alive_dead("rate", {"alive": dict(utility="u")},
                       table("u", by="age", starts=[0, 70], values=[0.8, 0.7]), age=60)
     text += '\n[arrivals]\nrate = 2.0\n'
