@@ -6,8 +6,8 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
   but timeouts (the cheapest SimPy can be), and the same timeouts replayed by one bare
   process per patient in the engine's grouping (SimPy's own cost for this workload);
 - cycle engines: the SimPy cycle engine's patient-cycles per second over bare timeouts per
-  second, and the vectorised cycle engine's over the SimPy one's (their histories are
-  identical, draw for draw);
+  second, and the compiled cycle engine's over the SimPy one's (their histories are
+  identical, draw for draw), after a first tiny run that loads the compiled code;
 - event engines: the SimPy event engine's time over the vectorised event engine's on the
   same rate model, patients and seed (the same records), for Weibull hazards with
   covariates and memory, and for the same with attained age acting on the Weibull hazards
@@ -248,6 +248,7 @@ def cycle_ratio(patients: int) -> dict:
     model = bind(demo_scenario())
     people = cohort_patients(patients)
     rates = {}
+    simulate(model, people.head(10), seed=1, engine="vectorised")  # loads the compiled code
     for engine in ("simpy", "vectorised"):
         started = time.perf_counter()
         sim = simulate(model, people, seed=1, engine=engine)
@@ -299,6 +300,7 @@ def cycle_against_numpy(patients: int) -> dict:
     scenario = demo_scenario()
     model = bind(scenario, strategy=strategy_of(scenario))
     people = patients_for(scenario, patients, 1)
+    simulate(model, people.head(10), seed=1, engine="vectorised")  # loads the compiled code
     before = uniform_rate()
     started = time.perf_counter()
     sim = simulate(model, people, seed=1, engine="vectorised",
@@ -383,7 +385,7 @@ def main(quick: bool = False) -> int:
     print("microsim benchmark (ratios of timings interleaved in one run)")
     n = 50_000 if quick else 1_000_000
     c = cycle_against_numpy(n)
-    print(f"Vectorised cycle engine, demo scenario, {n:,} patients (the main job's path): "
+    print(f"Compiled cycle engine, demo scenario, {n:,} patients (the main job's path): "
           f"{c['rate']:,.0f} patient-cycles/s against numpy's {c['uniform']:,.0f} uniforms/s: "
           f"ratio {c['ratio']:.3f} (target >= 0.03, aim 0.1: "
           f"{verdict(c['ratio'], 0.03)}; {c['seconds']:.1f} s)")
@@ -396,10 +398,10 @@ def main(quick: bool = False) -> int:
     c = cycle_ratio(patients=500 if quick else 2000)
     print(f"SimPy cycle engine (demo scenario): {c['simpy']:,.0f} patient-cycles/s; ratio to "
           f"bare single-process SimPy {c['vs_single']:.2f}")
-    print(f"Vectorised cycle engine (same histories): {c['vectorised']:,.0f} patient-cycles/s;"
+    print(f"Compiled cycle engine (same histories): {c['vectorised']:,.0f} patient-cycles/s;"
           f" {c['speedup']:.1f} x the SimPy cycle engine (target >= 100: "
           f"{verdict(c['speedup'], 100)}; at {500 if quick else 2000:,} patients, where the "
-          "vectorised engine's fixed costs weigh most)")
+          "compiled engine's fixed costs weigh most)")
     for attained_age, patients in ((False, 1000 if quick else 5000), (True, 100 if quick else 400)):
         v = event_engines_ratio(patients, repeats=1 if quick else 3, attained_age=attained_age)
         what = ("attained age on the Weibull hazards too (a numerical root per draw)"

@@ -5,7 +5,7 @@ different bindings of the same scenario; no engine ever sees a parameter name.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
@@ -208,9 +208,8 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     overridden by `values` (a PSA draw or a sensitivity setting), for one strategy (None:
     the model as written, which is what the comparator runs)."""
     spec = None if strategy is None else scenario.strategy(strategy)
-    if spec is not None and (spec.states or spec.transitions):
-        scenario = replace(scenario, states=scenario.states + spec.states,
-                           transitions=scenario.transitions + spec.transitions)
+    if spec is not None:
+        scenario = scenario.with_added(spec)
     resolved = {name: p.value for name, p in scenario.parameters.items()}
     unknown = set(values or ()) - set(resolved)
     if unknown:
@@ -269,13 +268,23 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
             memory=tuple(memory(m) for m in spec.memory),
             cost=resolve(spec.cost), disutility=resolve(spec.disutility))
 
-    risks = [risk(t, t.name, index[t.source], index[t.target]) for t in scenario.transitions]
-    for event in scenario.events:
-        risks += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
+    def risks_of(transitions, events) -> list[BoundRisk]:
+        found = [risk(t, t.name, index[t.source], index[t.target]) for t in transitions]
+        for event in events:
+            found += [risk(event.in_state(s), event.name, index[s], None) for s in event.states]
+        return found
+
+    risks = risks_of(scenario.transitions, scenario.events)
+    later: list[tuple[int, ...]] = []  # the risks each later treatment adds, by index
+    for line in () if spec is None else spec.then:
+        own = risks_of(line.transitions, line.events)
+        later.append(tuple(range(len(risks), len(risks) + len(own))))
+        risks += own
 
     states = scenario.states
     outcomes = scenario.outcomes
-    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, resolve)
+    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, resolve,
+                                                         sum(later, ()))
     state_cost, cost_tables = by_state("cost", [resolve(s.cost) for s in states])
     state_utility, utility_tables = by_state("utility", [resolve(s.utility) for s in states])
     model = BoundModel(
@@ -306,10 +315,12 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     if spec is None or not spec.phased:
         return model
     from microsim.treatment_phases import Line, with_phases
+    first = tuple(r for r, risk in enumerate(risks) if risk.name in spec.on_treatment_only)
     lines = [Line(spec.name, spec.stop_on, treatment.on_factor, treatment.extra_cost,
-                  treatment.extra_utility, treatment.tables)]
-    lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
-                                                          resolve)) for line in spec.then]
+                  treatment.extra_utility, first, treatment.tables)]
+    for line, adds in zip(spec.then, later):
+        on, cost, utility, tables = bind_changes(line.changes, risks, scenario, index, resolve)
+        lines.append(Line(line.name, line.stop_on, on, cost, utility, adds, tables))
     delay = round(spec.start_delay / model.cycle) if model.discrete else 0
     return with_phases(model, spec.start_on, lines, delay)
 
@@ -322,18 +333,18 @@ def by_state(measure: str, values: list) -> tuple[np.ndarray, tuple[ValueTable, 
     return np.array([0.0 if isinstance(v, TableSpec) else v for v in values]), tables
 
 
-def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, resolve
-                   ) -> Treatment | None:
+def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, resolve,
+                   later: tuple[int, ...] = ()) -> Treatment | None:
     """The numbers of a strategy's treatment (`resolve` gives a reference's number, or its
-    table); None when it changes nothing."""
-    if not (spec.changes or spec.transitions or spec.phased):
+    table); None when it changes nothing. Off treatment, the risks added for a time on
+    treatment (the first treatment's with while_treated, and every one of the `later`
+    treatments') have a hazard of 0."""
+    if not (spec.changes or spec.transitions or spec.events or spec.phased):
         return None
     on, cost, utility, tables = bind_changes(spec.changes, risks, scenario, index, resolve)
-    off = np.ones(len(risks))
-    added = {t.name for t, gated in zip(spec.transitions, spec.while_treated) if gated}
-    for r, risk in enumerate(risks):
-        if risk.name in added:
-            off[r] = 0.0
+    gated = spec.on_treatment_only
+    off = np.array([0.0 if risk.name in gated or r in later else 1.0
+                    for r, risk in enumerate(risks)])
     return Treatment(spec.name, spec.eligible, resolve(spec.uptake), spec.start,
                      np.inf if spec.stop is None else spec.stop, resolve(spec.discontinuation),
                      on, off, cost, utility, tables)

@@ -21,8 +21,8 @@ from microsim.patients.multipliers import Multipliers
 from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
 from microsim.engines.vectorised_events import simulate_events_vectorised
-from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
-from microsim.results.outcomes import Exposure
+from microsim.engines.compiled_cycles import simulate_cycles_compiled
+from microsim.results.outcomes import MEASURES, Exposure, outcome_values
 from microsim.patients.population import PATIENT
 from microsim.scenario.errors import ScenarioError
 from microsim.store import writing
@@ -37,9 +37,14 @@ class Simulation:
     seed: int
     mult: Multipliers  # the hazard multipliers (and treatment windows) the engine used
     grid: np.ndarray  # (T,) time points of `states`
-    states: np.ndarray  # (N, T) state index of each patient at each grid time
-    exposure: Exposure  # time in state, on treatment, occurrences, per patient
+    states: np.ndarray  # (N, T) state index of each patient at each grid time (int8 for
+    # fewer than 128 states, else int16; -1 before a patient's first record)
+    values: dict[str, np.ndarray]  # each patient's outcomes (`outcomes.MEASURES`)
+    treated: np.ndarray  # (N,) whether each patient spent time on treatment (in a treated
+    # copy of a state, under treatment phases)
     transitions: int  # records other than starts: transitions and events simulated
+    # time in state, on treatment and occurrences per patient, when asked for (`simulate`)
+    exposure: Exposure | None = None
 
     @property
     def size(self) -> int:
@@ -52,7 +57,8 @@ class Simulation:
         part = slice(0, n)
         return Simulation(self.model, self.patients.iloc[part].reset_index(drop=True),
                           self.seed, self.mult.take(part), self.grid, self.states[part],
-                          self.exposure.take(part), -1)
+                          {m: v[part] for m, v in self.values.items()}, self.treated[part], -1,
+                          None if self.exposure is None else self.exposure.take(part))
 
 
 def report_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
@@ -80,7 +86,7 @@ def choose_engine(model: BoundModel, engine: str):
                             "does (microsim.capacity.run.run_service, or `microsim run`)")
     if engine == "simpy":
         return simulate_cycles if model.discrete else simulate_events
-    return simulate_cycles_vectorised if model.discrete else simulate_events_vectorised
+    return simulate_cycles_compiled if model.discrete else simulate_events_vectorised
 
 
 class HistoryFile:
@@ -122,31 +128,50 @@ def phase_codes(model: BoundModel) -> np.ndarray | None:
 
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,
              grid: np.ndarray | None = None, histories: Path | HistoryFile | None = None,
-             mult: Multipliers | None = None, engine: str = "auto") -> Simulation:
+             mult: Multipliers | None = None, engine: str = "auto",
+             keep_exposure: bool = False) -> Simulation:
     """Simulate every patient (rows of `patients`, ids in column 'patient'); `histories`
-    streams every record to Parquet (a path, or an open `HistoryFile` shared by calls)."""
+    streams every record to Parquet (a path, or an open `HistoryFile` shared by calls).
+
+    Each batch's histories are valued as they come (`Simulation.values`), so a run holds
+    its states on the grid and a few numbers per patient; `keep_exposure` also keeps each
+    patient's time in state and occurrences (`Simulation.exposure`, 24 bytes a state and
+    a risk)."""
     if isinstance(histories, (str, Path)):
         with HistoryFile(histories) as file:
             return simulate(model, patients, seed, batch_size=batch_size, grid=grid,
-                            histories=file, mult=mult, engine=engine)
+                            histories=file, mult=mult, engine=engine,
+                            keep_exposure=keep_exposure)
     grid = report_grid(model) if grid is None else grid
     mult = patient_multipliers(model, patients, seed) if mult is None else mult.repeated(len(patients))
     engine = choose_engine(model, engine)
     ids = patients[PATIENT].to_numpy()
-    states, exposures, transitions = [], [], 0
+    # filled batch by batch: joining per-batch arrays at the end would copy them all again
+    states = np.empty((len(ids), len(grid)), np.int8 if model.n_states < 128 else np.int16)
+    values = {m: np.empty(len(ids)) for m in MEASURES}
+    treated = np.zeros(len(ids), bool)
+    on_a_treatment = (slice(None) if model.treated_states is None
+                      else np.asarray(model.treated_states, bool))
+    exposure = Exposure.empty(len(ids), model) if keep_exposure else None
+    transitions = 0
     for lo in range(0, len(ids), batch_size):
         part = slice(lo, lo + batch_size)
         batch = mult.take(part)
         h = engine(model, batch, ids[part], seed)
         on_points = h.cycle_states is not None and np.array_equal(grid, model.times)
-        states.append(h.cycle_states if on_points else aggregate.grid_states(h, grid))
-        cycle_points = states[-1] if model.discrete and np.array_equal(grid, model.times) else None
-        exposures.append(aggregate.exposure(model, h, batch, cycle_points))
+        states[part] = h.cycle_states if on_points else aggregate.grid_states(h, grid)
+        cycle_points = states[part] if model.discrete and np.array_equal(grid, model.times) else None
+        mine = aggregate.exposure(model, h, batch, cycle_points)
+        for m, v in outcome_values(model, mine).items():
+            values[m][part] = v
+        treated[part] = mine.on_treatment[:, on_a_treatment, 0].sum(axis=1) > 0
+        if exposure is not None:
+            exposure.put(part, mine)
         transitions += int(np.sum(h.risk >= 0))
         if histories is not None:
             histories.write(h.table(patients.iloc[part], model.states,
                                     [r.name for r in model.risks],
                                     None if model.treatment is None else model.treatment.strategy,
                                     batch.window, phase_codes(model)))
-    return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, np.concatenate(states),
-                      Exposure.join(exposures), transitions)
+    return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, states,
+                      values, treated, transitions, exposure)

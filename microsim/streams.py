@@ -171,20 +171,6 @@ def normals(seed: int, patient_ids, purpose: str, occurrences=0) -> np.ndarray:
     return ndtri(uniforms(seed, patient_ids, purpose, occurrences))
 
 
-def lanes(seed: int, patient_ids, purposes: Sequence[str], block_number: int) -> np.ndarray:
-    """Occurrences 4k .. 4k + 3 (k = block_number) of each purpose for each patient, laid
-    out as the vectorised cycle engine reads them: shape (n_purposes, 4, n_patients), each
-    row contiguous over patients. Equal element by element to `uniforms`."""
-    patients = _as_indices(patient_ids, "patient ids").reshape(-1)
-    if not _contiguous(patients):
-        return np.ascontiguousarray(
-            block(seed, patients, purposes, 4, first=4 * block_number).transpose(1, 2, 0))
-    out = np.empty((len(purposes), 4, patients.size), np.uint64)
-    for j, purpose in enumerate(purposes):
-        out[j] = _run(seed, int(patients[0]), patients.size, purpose_id(purpose), block_number).T
-    return to_open_unit(out)
-
-
 def block(seed: int, patient_ids, purposes: Sequence[str], n_occurrences: int,
           first: int = 0) -> np.ndarray:
     """All draws of occurrences first .. first + n_occurrences - 1 for each patient and

@@ -8,11 +8,13 @@ starts or stops the current phase's treatment goes to that state's copy in the n
 so does an event that starts or stops it (rate models): in the phase it acts on, the event is
 a move from the state's copy to the same state's copy in the next phase, with the event's
 name, cost and disutility, so it is counted and costed once as before. Every other move
-keeps the phase. Because the phase changes only with a move, the model stays
-a plain Markov model (with the same memory, tables and hazards as before): every engine
-simulates it as it is, and its analytic counterpart is exact by the same expanded chain as
-any other model (common practice: a treatment history as states, e.g. tunnel-like copies of
-health states by line of therapy). The strategy's time window (start, stop, eligibility,
+keeps the phase. A transition or event a treatment adds for its time on treatment exists
+in the copies of that treatment's phase only (elsewhere it is left out, not given a hazard
+of 0, which an engine would read as a treatment that changes nothing). Because the phase
+changes only with a move, the model stays a plain Markov model (with the same memory,
+tables and hazards as before): every engine simulates it as it is, and its analytic
+counterpart is exact by the same expanded chain as any other model (common practice: a
+treatment history as states, e.g. tunnel-like copies of health states by line of therapy). The strategy's time window (start, stop, eligibility,
 uptake) still applies on top: a treatment acts while the patient is in its phase and inside
 the window.
 
@@ -37,12 +39,14 @@ STOPPED = "stopped"
 @dataclass(frozen=True)
 class Line:
     """One treatment of a sequence in numbers: what stops it, its hazard multipliers per
-    risk of the model, and its cost and utility per state."""
+    risk of the model, its cost and utility per state, and the risks it adds for its time
+    on treatment, which exist in its own phase only."""
     name: str
     stop_on: tuple[str, ...]
     on_factor: np.ndarray  # (R,)
     cost: np.ndarray  # (S,)
     utility: np.ndarray  # (S,)
+    adds: tuple[int, ...] = ()  # risks of the model that act only while this treatment is on
     tables: tuple[ValueTable, ...] = ()  # costs and utilities read from tables
 
 
@@ -87,9 +91,12 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                 return k
         return k + 1 if model.states[state] in triggers[k] else k
 
+    owner = {r: line for line in lines for r in line.adds}
     risks, on, off = [], [], []
     for k, line in enumerate(phases):
         for r, risk in enumerate(model.risks):
+            if owner.get(r, line) is not line:
+                continue  # added by another treatment (or before one starts): not here
             moves = risk.target is not None and risk.target != risk.source  # staying: no tick
             if risk.is_event and risk.name in triggers[k]:  # the event moves the phase on
                 target = copy[k + 1, risk.source]
@@ -97,12 +104,8 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                 target = None if risk.target is None else copy[
                     phase_after(k, risk.target) if moves else k, risk.target]
             risks.append(replace(risk, source=copy[k, risk.source], target=target))
-            gated = t.off_factor[r] == 0.0  # an added transition of the first treatment
             off.append(t.off_factor[r])
-            if line is None:
-                on.append(t.off_factor[r])
-            else:
-                on.append(line.on_factor[r] * (0.0 if gated and line is not first else 1.0))
+            on.append(t.off_factor[r] if line is None else line.on_factor[r])
     start = np.zeros(len(names))
     for i, share in enumerate(model.start):
         start[copy[phase_after(0, i), i]] += share

@@ -70,19 +70,22 @@ class Way:
     memory: list = field(default_factory=list)
     worst: float = 1.0  # the largest multiplier effects, memory and treatment can give it
     states: tuple = ()  # the event's states
-    added: bool = False  # a strategy's added transition
+    added: bool = False  # a strategy's added transition (or a later treatment's own)
+    called: str | None = None  # its name, when not the default
 
     @property
     def name(self) -> str:
-        return EVENT if self.target is None else f"{self.source}->{self.target}"
+        return self.called or (EVENT if self.target is None else f"{self.source}->{self.target}")
 
 
 class Draft:
     """One model being drawn: states, ways out, population, strategy, and what it covers."""
 
-    def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False):
+    def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False,
+                 sequence: bool = False):
         self.rng = rng
         self.log_location = log_location  # rate models of log-location families
+        self.sequence = sequence  # a treated model whose strategy is a sequence of two
         self.kind = kind
         self.cycles = kind == "cycle"
         self.features: set[str] = {kind}
@@ -358,9 +361,45 @@ class Draft:
             added.append(move(source, target, **{("probability" if self.cycles else "rate"):
                                                  way.parameter}))
             self.features.add("added transition")
+        if self.sequence:
+            fields.update(self.draw_second(changeable, addable, fields.get("start_on"), value))
         self.strategy = "treat"
         self.strategy_fields = dict(fields, changes=changes or None, transitions=added or None)
         self.features.add("strategy")
+
+    def draw_second(self, changeable: list[Way], addable: list[tuple[str, str]],
+                    start_on: str | None, value) -> dict:
+        """A second treatment after the first stops on entering a state: a hazard ratio of
+        its own, an event of its own and, where a row has room, a transition of its own
+        (on a pair the first treatment has not added)."""
+        stops = [s for s in self.alive if s != start_on and (start_on or s not in self.shares)]
+        if not stops:
+            return {}
+        kind = "probability" if self.cycles else "rate"
+        line: dict = {"name": "second"}
+        if changeable and self.chance(0.5):
+            way = self.pick(changeable)
+            hr = self.ratio(0.4, 1.6)
+            line["changes"] = [nested(transition=way.name, hazard_ratio=hr)]
+            way.worst *= max(hr, 1.0)
+        states = tuple(s for s in self.alive if self.chance(0.7)) or (self.pick(self.alive),)
+        rash = Way(None, None, parameter=self.parameter(f"{self.letter}_rash", value()),
+                   states=states, added=True, called="rash")
+        self.ways.append(rash)
+        line["events"] = [nested(name="rash", states=list(states), **{kind: rash.parameter})]
+        self.features.add("later treatment's event")
+        addable = [a for a in addable if a not in {(w.source, w.target) for w in self.ways}]
+        if addable:
+            source, target = self.pick(addable)
+            way = Way(source, target, parameter=self.parameter(
+                f"{self.letter}_second_{source}_{target}", value()), added=True,
+                called="second_move")
+            self.ways.append(way)
+            line["transitions"] = [move(source, target, name="second_move",
+                                        **{kind: way.parameter})]
+            self.features.add("later treatment's transition")
+        self.features.add("sequence")
+        return dict(stop_on=self.pick(stops), then=[nested(**line)])
 
     def condition(self, name: str) -> dict:
         if name == "age":
@@ -473,14 +512,14 @@ class Draft:
 
 # ------------------------------------------------------------------------- cycle models
 
-def cycle_model(rng: np.random.Generator, name: str) -> RandomModel:
-    d = Draft(rng, "cycle")
+def cycle_model(rng: np.random.Generator, name: str, sequence: bool = False) -> RandomModel:
+    d = Draft(rng, "cycle", sequence=sequence)
     recipe = d.pick(["everyone dies"] + ["closed start"] * 2 + ["plain"] * 17)
     if recipe == "everyone dies":
         d.draw_frame(alive=1, absorbing=True)
     else:
         d.draw_frame()
-        if recipe == "closed start" and len(d.states) < 2:
+        if (recipe == "closed start" or sequence) and len(d.alive) < 2:
             d.alive.append(ALIVE[1])
     d.draw_population(continuous=True)
     rows: dict[str, bool] = {}  # state -> whether its row has a remainder
@@ -508,7 +547,7 @@ def cycle_model(rng: np.random.Generator, name: str) -> RandomModel:
     for way in with_remainder + event:
         d.add_effects(way)
     d.add_memory([w for w in with_remainder + event if w.parameter], windows=True)
-    if d.chance(0.3):
+    if sequence or d.chance(0.3):
         taken = {(w.source, w.target) for w in d.ways}
         addable = [(s, t) for s in d.alive if rows.get(s) for t in d.states
                    if t != s and (s, t) not in taken]
@@ -610,12 +649,13 @@ def cycle_perturbations(d: Draft, rows: dict[str, bool]) -> list[Perturbation]:
 
 # -------------------------------------------------------------------------- rate models
 
-def rate_model(rng: np.random.Generator, name: str, log_location: bool = False) -> RandomModel:
-    d = Draft(rng, "rate", log_location)
+def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
+               sequence: bool = False) -> RandomModel:
+    d = Draft(rng, "rate", log_location, sequence)
     recipe = d.pick(["closed start"] * 2 + ["time since"] + ["semi-Markov"] * 2 + ["plain"] * 15)
     d.draw_frame()
-    if recipe != "plain" and len(d.alive) < 2:
-        d.alive.append(ALIVE[1])  # two live states: room for a closed start or re-entry
+    if (recipe != "plain" or sequence) and len(d.alive) < 2:
+        d.alive.append(ALIVE[1])  # two live states: room for a closed start, re-entry or a stop
     d.draw_population(continuous=False)
     targets = {s: d.targets(s) for s in d.alive}
     if recipe == "closed start":
@@ -623,7 +663,7 @@ def rate_model(rng: np.random.Generator, name: str, log_location: bool = False) 
         d.shares = {s: 1.0}
         targets[s] = [d.states[1]]
     addable = [(s, t) for s in d.alive for t in d.states if t != s and t not in targets[s]]
-    treated = d.chance(0.35)
+    treated = sequence or d.chance(0.35)
     added = d.pick(addable) if treated and addable else None
     entered = {t for ts in targets.values() for t in ts} | ({added[1]} if added else set())
     for s in d.alive:
@@ -766,12 +806,16 @@ def rate_perturbations(d: Draft) -> list[Perturbation]:
 # ---------------------------------------------------------------------- all the models
 
 def random_models(seed: int, cycle_models: int, rate_models: int,
-                  log_location_models: int = 0) -> list[RandomModel]:
-    """The models of one seed; the log-location rate models come from a stream of their
-    own, so adding them leaves the others as they were."""
+                  log_location_models: int = 0, sequence_models: int = 0) -> list[RandomModel]:
+    """The models of one seed; the log-location rate models and the treatment sequences
+    (half cycle, half rate models) come from streams of their own, so adding them leaves
+    the others as they were."""
     rng = np.random.default_rng(seed)
     models = ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
               + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
     rng = np.random.default_rng([seed, 1])
-    return models + [rate_model(rng, f"log-location-{i}", log_location=True)
-                     for i in range(log_location_models)]
+    models += [rate_model(rng, f"log-location-{i}", log_location=True)
+               for i in range(log_location_models)]
+    rng = np.random.default_rng([seed, 2])
+    return models + [(cycle_model if i % 2 == 0 else rate_model)(
+        rng, f"sequence-{i}", sequence=True) for i in range(sequence_models)]

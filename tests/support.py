@@ -248,7 +248,7 @@ def both_engines(model, ids, seed):
     import pandas as pd
     from microsim.engines.cycle_engine import simulate_cycles
     from microsim.engines.event_engine import simulate_events
-    from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
+    from microsim.engines.compiled_cycles import simulate_cycles_compiled
     from microsim.engines.vectorised_events import simulate_events_vectorised
     from microsim.patients.population import PATIENT, draw_population
     from microsim.patients.treatment import patient_multipliers
@@ -256,7 +256,7 @@ def both_engines(model, ids, seed):
     patients = (pd.DataFrame({PATIENT: ids}) if spec is None
                 else draw_population(spec, seed, ids))
     mult = patient_multipliers(model, patients, seed)
-    pair = ((simulate_cycles, simulate_cycles_vectorised) if model.discrete
+    pair = ((simulate_cycles, simulate_cycles_compiled) if model.discrete
             else (simulate_events, simulate_events_vectorised))
     return (*(engine(model, mult, ids, seed) for engine in pair), mult)
 

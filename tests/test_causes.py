@@ -69,7 +69,7 @@ def test_cycle_model_counts_equal_the_merged_move_with_cause_shares():
 def test_simulated_causes_agree_with_their_closed_form_shares(text):
     model = model_of(text)
     n = 4000
-    sim = simulate(model, cohort_patients(n), 31)
+    sim = simulate(model, cohort_patients(n), 31, keep_exposure=True)
     counts = occurrence_counts(model, sim.exposure)
     expected = occurrence_counts(model, analytic(model).exposure)
     for cause in ("cancer", "other"):
@@ -104,7 +104,7 @@ def test_a_certain_cause_leaves_nothing_to_the_other():
         probability("well", "dead", 1.0, name="cancer"),
         probability("well", "dead", 0.0, name="other"))
     model = model_of(text)
-    sim = simulate(model, cohort_patients(50), 2)
+    sim = simulate(model, cohort_patients(50), 2, keep_exposure=True)
     counts = occurrence_counts(model, sim.exposure)
     assert counts["cancer"].sum() == 50 and counts["other"].sum() == 0
 

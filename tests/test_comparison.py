@@ -13,6 +13,7 @@ from microsim.patients.multipliers import Window, average_patient
 from microsim.patients.population import cohort_patients, draw_population
 from microsim.results.comparison import EXACT, compare, share_p_values
 from microsim.scenario import ScenarioError, parse_scenario
+from microsim.results.outcomes import outcome_values
 from microsim.simulation import simulate
 from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
                      section, start, state, strategy, transition)
@@ -45,9 +46,10 @@ def test_an_outcome_equal_for_every_patient_agrees_within_round_off():
 def test_a_wrong_deterministic_outcome_still_disagrees():
     # the same simulation with every patient's time in state scaled by 13/12: life years
     # are 13 for everyone against the analytic 12, where there is no Monte-Carlo error
-    sim = simulate(model_of(NEVER_ABSORBED), cohort_patients(500), 3)
-    scaled = replace(sim, exposure=replace(sim.exposure,
-                                           occupancy=sim.exposure.occupancy * 13 / 12))
+    model = model_of(NEVER_ABSORBED)
+    sim = simulate(model, cohort_patients(500), 3, keep_exposure=True)
+    exposure = replace(sim.exposure, occupancy=sim.exposure.occupancy * 13 / 12)
+    scaled = replace(sim, values=outcome_values(model, exposure))
     result = compare(scaled)
     assert result.agrees is False
     assert "life_years differs by 1 where there is no Monte-Carlo error" in result.verdict

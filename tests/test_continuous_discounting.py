@@ -61,7 +61,7 @@ def test_annual_and_continuous_rates_differ_as_ln_1_plus_d():
 
 def test_simulated_rate_model_agrees_with_the_closed_form():
     model = rate_model()
-    sim = simulate(model, cohort_patients(4000), 31)
+    sim = simulate(model, cohort_patients(4000), 31, keep_exposure=True)
     values = outcome_values(model, sim.exposure)
     expected = (1 - math.exp(-(R + MU) * T)) / (R + MU)
     assert_mean_agrees(values["qalys_discounted"], expected)
@@ -87,7 +87,7 @@ def test_cycle_model_discounts_each_cycle_point_by_exp_minus_rt():
     assert found["qalys_discounted"] == pytest.approx(qalys, rel=1e-12)
     assert found["costs_discounted"] == pytest.approx(deaths, rel=1e-12)
     model = cycle_model(p)
-    values = outcome_values(model, simulate(model, cohort_patients(4000), 8).exposure)
+    values = outcome_values(model, simulate(model, cohort_patients(4000), 8, keep_exposure=True).exposure)
     assert_mean_agrees(values["qalys_discounted"], qalys)
     assert_mean_agrees(values["costs_discounted"], deaths)
 

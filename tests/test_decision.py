@@ -112,9 +112,9 @@ def test_common_random_numbers_make_the_incremental_standard_error_smaller(run):
     so a ratio near 0.32 cannot come out above 1 by chance."""
     s, people, sims, _ = run
     model = bind(s, strategy="everyone")
-    usual = outcome_values(sims["usual"].model, sims["usual"].exposure)[EFFECT]
-    shared = outcome_values(model, sims["everyone"].exposure)[EFFECT]
-    independent = outcome_values(model, simulate(model, people, SEED + 1).exposure)[EFFECT]
+    usual = sims["usual"].values[EFFECT]
+    shared = sims["everyone"].values[EFFECT]
+    independent = simulate(model, people, SEED + 1).values[EFFECT]
     se_shared = np.std(shared - usual, ddof=1) / math.sqrt(N)
     se_independent = np.std(independent - usual, ddof=1) / math.sqrt(N)
     ratio = se_shared / se_independent

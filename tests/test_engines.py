@@ -55,7 +55,7 @@ GRID = np.linspace(0.0, 10.0, 11)
 @pytest.fixture(scope="module")
 def rate_run():
     model = model_of(RATE_MODEL)
-    return model, simulate(model, cohort_patients(20_000), 101, grid=GRID)
+    return model, simulate(model, cohort_patients(20_000), 101, grid=GRID, keep_exposure=True)
 
 
 def test_event_engine_shares_match_matrix_exponential(rate_run):
@@ -259,7 +259,7 @@ def test_cycle_engine_matches_expanded_chain(text):
     # the analytic side here is the expanded chain checked against hand-written chains in
     # test_cohort_analytic.py and test_cohort_windows.py
     model = model_of(text)
-    sim = simulate(model, cohort_patients(8000), 202)
+    sim = simulate(model, cohort_patients(8000), 202, keep_exposure=True)
     expected = analytic(model)
     assert_shares_binomial(sim, expected.trace[0])
     for s in range(model.n_states):  # time in state, half-cycle rule, with and without discount

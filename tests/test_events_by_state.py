@@ -47,7 +47,7 @@ def test_rate_model_count_equals_the_closed_form_by_state():
 
 def test_simulated_count_agrees_with_the_closed_form():
     model = model_of(RATES)
-    sim = simulate(model, cohort_patients(4000), 17)
+    sim = simulate(model, cohort_patients(4000), 17, keep_exposure=True)
     counts = occurrence_counts(model, sim.exposure)["flare"]
     se = counts.std(ddof=1) / math.sqrt(len(counts))
     assert abs(counts.mean() - expected_flares()) < Z * se
@@ -113,7 +113,7 @@ def test_a_certain_event_in_one_state_and_none_in_the_other():
         probability("a", "b", 0.5), probability("a", "a", "remainder"),
         event("visit", None, probability={"a": 1.0, "b": 0.0}))
     model = model_of(text)
-    sim = simulate(model, cohort_patients(200), 4)
+    sim = simulate(model, cohort_patients(200), 4, keep_exposure=True)
     counts = occurrence_counts(model, sim.exposure)["visit"]
     # every cycle that starts in 'a' has a visit: the count is the cycles started in 'a'
     started_in_a = (sim.states[:, :-1] == 0).sum(axis=1)

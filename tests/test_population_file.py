@@ -232,6 +232,20 @@ def test_an_added_transition_is_checked_under_its_strategy(tmp_path):
     assert "did you mean 'b'?" in refused.value.message
 
 
+@pytest.mark.parametrize("added, field", [
+    (dict(events=[nested(name="cough", states=["sick"], rate=0.5, effects=[
+        effect("group", 2.0, level="B")])]), "strategies.drug.events.cough.effects[0].level"),
+    (dict(stop_on="sick", then=[nested(name="second", events=[nested(
+        name="cough", states=["sick"], rate=0.5, effects=[effect("group", 2.0, level="B")])])]),
+     "strategies.drug.then.second.events.cough.effects[0].level"),
+], ids=["strategy-event", "later-treatment-event"])
+def test_an_added_event_is_checked_under_its_treatment(tmp_path, added, field):
+    with pytest.raises(ScenarioError) as refused:
+        patients_for(read_scenario(write(tmp_path, base_text(**added))), 10, 1)
+    assert refused.value.path == field
+    assert "did you mean 'b'?" in refused.value.message
+
+
 def test_the_weights_column_is_not_an_attribute(tmp_path):
     """Known from the header alone, so refused when the scenario is read."""
     text = edited(BASE, ('attribute = "group"\n', 'attribute = "w"\n'))

@@ -22,7 +22,7 @@ from microsim.cohort.analytic import analytic
 from microsim.cohort.cycle_matrices import cycle_matrices
 from microsim.cohort.expand import expand
 from microsim.engines.cycle_engine import simulate_cycles
-from microsim.engines.vectorised_cycles import simulate_cycles_vectorised
+from microsim.engines.compiled_cycles import simulate_cycles_compiled
 from microsim.hazards.cycle_probabilities import competing
 from microsim.patients.multipliers import multipliers
 from microsim.patients.population import draw_population, patients_for
@@ -158,7 +158,7 @@ def test_both_engines_are_bit_identical_under_the_competing_rule():
     people = draw_population(model.scenario.population, 9, ids)
     mult = multipliers(model, people)
     simpy, vectorised = (engine(model, mult, ids, 9)
-                         for engine in (simulate_cycles, simulate_cycles_vectorised))
+                         for engine in (simulate_cycles, simulate_cycles_compiled))
     for column in ("patient", "time", "source", "target", "risk"):
         assert np.array_equal(getattr(simpy, column), getattr(vectorised, column)), column
     # starts (-1), both moves out of well (0, 1) and sick -> dead (3); staying is not recorded
@@ -176,7 +176,7 @@ def test_rows_of_one_move_are_the_same_under_both_rules():
             population(500, attribute("smoker", "yesno", prevalence=0.5)))
         model = bind(parse_scenario(text))
         people = draw_population(model.scenario.population, 4)
-        return simulate_cycles_vectorised(model, multipliers(model, people), np.arange(500), 4)
+        return simulate_cycles_compiled(model, multipliers(model, people), np.arange(500), 4)
 
     separate, combined = histories("separate"), histories("competing")
     for column in ("patient", "time", "source", "target", "risk"):
@@ -300,7 +300,7 @@ def test_engines_and_cohort_raise_on_a_row_above_1_instead_of_capping():
     model = bind(parse_scenario(covariate_model("separate")), {"p_a": 0.8, "p_b": 0.5})
     people = draw_population(model.scenario.population, 1, np.arange(7, 17))
     mult = multipliers(model, people)
-    for engine in (simulate_cycles, simulate_cycles_vectorised):
+    for engine in (simulate_cycles, simulate_cycles_compiled):
         with pytest.raises(RuntimeError, match=r"transitions\.well->\*: the per-cycle "
                            r"probabilities of patient 7 sum to .* at cycle 0, above 1"):
             engine(model, mult, people["patient"].to_numpy(), 1)

@@ -219,6 +219,21 @@ def test_the_structure_draws_every_state_transition_event_and_addition():
     assert_written(figure)
 
 
+def test_the_structure_draws_what_a_later_treatment_adds():
+    # networkx's own view: the second treatment's move to icu is an edge added by it, and
+    # its event is drawn in the event row, marked as its own
+    text = WARD + "\n" + strategy("sequenced", stop_on="icu", changes=[nested(cost=1)], then=[
+        nested(name="second", transitions=[move("icu", "home", rate=0.05, name="step_down")],
+               events=[nested(name="delirium", states=["icu"], rate=0.3)])])
+    scenario = parse_scenario(text)
+    graph = structure_graph(scenario)
+    assert graph.edges["icu", "home"]["added_by"] == "sequenced, then second"
+    texts = [t.get_text() for t in structure_figure(scenario).axes[0].texts]
+    assert any(t.startswith("event: delirium") and t.endswith("[sequenced, then second]")
+               for t in texts)
+    assert sum(t.startswith("event: fall") for t in texts) == 1
+
+
 def test_the_structure_layers_follow_the_flow():
     graph = structure_graph(parse_scenario(WARD))
     pos = layered_positions(graph)

@@ -104,12 +104,12 @@ def runs(name):
     """The run of patients 0..999 in one batch, and runs it must match on the patients they
     share: (patient ids, run) for another size, batch sizes 1 and 7, and another order."""
     model = model_of(ENGINES[name][0])
-    reference = simulate(model, people(model, np.arange(1000)), SEED, batch_size=1000)
+    reference = simulate(model, people(model, np.arange(1000)), SEED, batch_size=1000, keep_exposure=True)
     first, shuffled = np.arange(100), np.random.default_rng(9).permutation(1000)
-    others = [(first, simulate(model, people(model, first), SEED, batch_size=size))
+    others = [(first, simulate(model, people(model, first), SEED, batch_size=size, keep_exposure=True))
               for size in (1000, 1, 7)]
     others.append((np.arange(1000), simulate(model, people(model, shuffled), SEED,
-                                             batch_size=7)))
+                                             batch_size=7, keep_exposure=True)))
     return reference, others
 
 

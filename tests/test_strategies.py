@@ -424,7 +424,7 @@ def test_discounted_cost_and_utility_on_treatment_have_the_closed_form(start, st
     exact = outcome_values(model, analytic(model).exposure)
     for measure, value in expected.items():
         assert exact[measure][0] == pytest.approx(value, rel=1e-9), measure
-    values = outcome_values(model, simulate(model, cohort_patients(4000), SEED).exposure)
+    values = outcome_values(model, simulate(model, cohort_patients(4000), SEED, keep_exposure=True).exposure)
     for measure, value in expected.items():
         assert_mean_agrees(values[measure], value, measure)
 
@@ -446,9 +446,9 @@ def test_a_strategy_with_hazard_ratio_1_and_cost_0_reproduces_the_comparator(tex
                  ChangeSpec(risk="sick->dead", hazard_ratio=1.0), ChangeSpec(cost=0.0)))
     scenario = with_strategies(text, strategy)
     people = draw_population(scenario.population, SEED)
-    base = simulate(bind(scenario, strategy="usual"), people, SEED)
+    base = simulate(bind(scenario, strategy="usual"), people, SEED, keep_exposure=True)
     inert_model = bind(scenario, strategy="inert")
-    inert = simulate(inert_model, people, SEED)
+    inert = simulate(inert_model, people, SEED, keep_exposure=True)
     assert inert_model.treatment is not None  # the strategy is bound, not dropped
     assert np.isfinite(inert.mult.window.on).sum() > 100  # and it does treat patients
     np.testing.assert_array_equal(inert.states, base.states)

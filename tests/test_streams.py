@@ -201,3 +201,26 @@ def test_block_of_a_million_speed_and_mean():
     print(f"\nblock: {table.size / seconds:,.0f} uniforms per second")
     assert table.size == 1_000_000
     assert abs(table.mean() - 0.5) / (np.sqrt(1 / 12) / 1000) < 4
+
+
+def test_the_compiled_philox_is_numpys_for_random_keys_and_counters():
+    # Reference library: numpy.random.Philox. The compiled engines' own Philox
+    # (engines.philox_compiled) must give the same block for counter (patient, block, 0, 0)
+    # and key (seed, purpose), including all-ones words (the 128-bit product's carries).
+    from microsim.engines.philox_compiled import philox_block
+    rng = np.random.default_rng(5)
+    words = rng.integers(0, TWO_64, size=(200, 4), dtype=np.uint64)
+    words[0] = TWO_64 - 1
+    words[1] = 0
+    out = np.empty(4, np.uint64)
+    for patient, block, seed, purpose in words:
+        philox_block(patient, block, seed, purpose, out)
+        np.testing.assert_array_equal(out, numpy_block([patient, block, 0, 0], [seed, purpose]))
+
+
+def test_the_compiled_unit_map_is_to_open_unit():
+    from microsim.engines.philox_compiled import open_unit
+    rng = np.random.default_rng(6)
+    words = np.concatenate([np.array([0, 1, 2**12 - 1, 2**12, TWO_64 - 1], np.uint64),
+                            rng.integers(0, TWO_64, size=2000, dtype=np.uint64)])
+    assert [open_unit(w) for w in words] == streams.to_open_unit(words).tolist()

@@ -205,7 +205,7 @@ def test_a_later_treatment_that_could_lift_a_row_above_1_is_refused():
         strategy("treat", stop_on="b", changes=[nested(cost=1)],
                  then=[nested(name="second",
                               changes=[nested(transition="die_b", hazard_ratio=1.5)])]))
-    assert_refused(text, "strategies.treat.transitions.b->*", "above 1")
+    assert_refused(text, "strategies.treat.then.second.transitions.b->*", "above 1")
 
 
 def test_the_patients_treated_are_those_who_reach_the_trigger():

@@ -155,10 +155,13 @@ def test_simulated_values_by_sex_agree_with_their_expectation(kind):
         table("c", attribute="sex", values=COSTS_BY_SEX)]))
     patients = draw_population(model.scenario.population, 9, np.arange(4000))
     expected = exact_values(model, patients)
-    simulated = outcome_values(model, simulate(model, patients, 9).exposure)
+    sim = simulate(model, patients, 9, batch_size=1500, keep_exposure=True)
+    simulated = sim.values
+    kept = outcome_values(model, sim.exposure)  # the batches' levels kept too
     for sex in ("female", "male"):  # each sex on its own: a wrong level would show
         mine = (patients.sex == sex).to_numpy()
         for measure in ("qalys_discounted", "costs_discounted"):
+            np.testing.assert_array_equal(kept[measure], simulated[measure])
             gap = simulated[measure][mine] - expected[measure][mine]
             z = gap.mean() / (gap.std(ddof=1) / math.sqrt(mine.sum()))
             assert abs(z) < Z, (sex, measure, z)
@@ -288,8 +291,11 @@ def test_simulated_values_by_age_agree_with_their_expectation(kind):
     ages = np.resize([51.5, 58.0, 63.25, 69.0, 74.5], 3000)
     patients = pd.DataFrame({"patient": np.arange(3000), "age": ages})
     expected = exact_values(model, patients)
-    simulated = outcome_values(model, simulate(model, patients, 4).exposure)
+    sim = simulate(model, patients, 4, batch_size=1000, keep_exposure=True)
+    simulated = sim.values
+    kept = outcome_values(model, sim.exposure)  # the batches' levels and bands kept too
     for measure in ("qalys_discounted", "costs_discounted", "qalys"):
+        np.testing.assert_array_equal(kept[measure], simulated[measure])
         gap = simulated[measure] - expected[measure]
         z = gap.mean() / (gap.std(ddof=1) / math.sqrt(len(gap)))
         assert abs(z) < Z, (measure, z)

@@ -47,8 +47,7 @@ def run_strategies(scenario: Scenario, patients: pd.DataFrame, seed: int,
 
 def outcome_frame(name: str, sim: Simulation) -> pd.DataFrame:
     """One strategy's per-patient outcomes: patient, strategy, then one column per measure."""
-    values = outcome_values(sim.model, sim.exposure)
-    frame = pd.DataFrame({m: values[m] for m in REPORTED})
+    frame = pd.DataFrame({m: sim.values[m] for m in REPORTED})
     frame.insert(0, "strategy", name)
     frame.insert(0, "patient", sim.patients["patient"].to_numpy())
     return frame
@@ -168,7 +167,7 @@ def treated_count(sim: Simulation) -> int:
     treated = sim.model.treated_states
     if treated is None:
         return int(np.isfinite(sim.mult.window.on).sum())
-    return int((sim.exposure.on_treatment[:, treated, 0].sum(axis=1) > 0).sum())
+    return int(sim.treated.sum())
 
 
 @dataclass(frozen=True)

@@ -23,7 +23,10 @@ from microsim.patients.multipliers import Multipliers
 from microsim import streams
 from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
-from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
+from microsim.hazards.cycle_probabilities import LIMIT, competing_scale, overflow, separate_one
+
+# the Python originals of the compiled engine's functions: the same C library expm1
+separate, scale_of = separate_one.py_func, competing_scale.py_func
 from microsim.scenario.spec import COMPETING, TableSpec
 
 MOVE = "cycle:move"
@@ -151,8 +154,15 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             age = age0 + t
             row = [weigh(step, static, t, age, duration, counts, last, on, off, own)
                    for step in moves]
-            chances = (competing(row) if combined else
-                       [p if m == 1.0 else separate(log, m) for p, log, m in row])
+            if combined:
+                weights = [log * m for _, log, m in row]
+                total = 0.0
+                for weight in weights:
+                    total += weight
+                scale = scale_of(total)
+                chances = [weight * scale for weight in weights]
+            else:
+                chances = [p if m == 1.0 else separate(log, m) for p, log, m in row]
             u = rows[move_purpose][n]
             chosen, total = None, 0.0
             for step, p in zip(moves, chances):

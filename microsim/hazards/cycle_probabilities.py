@@ -18,16 +18,20 @@ Both are written with L = -ln(1 - p), the one-cycle cumulative hazard of a base 
 (precomputed with `math` once per base value when the model is bound, `BoundRisk.logs`):
 the separate rule is 1 - (1 - p)^m = -expm1(-m L), and the competing one needs R = sum of
 m_j L_j (the cycle cancels in r_j / R) and 1 - exp(-R) = -expm1(-R). So the per-patient work
-is a product, a sum and one `expm1`, which numpy evaluates in SIMD at about a nanosecond an
-element. Both engines call the same functions with `numpy.expm1` (on arrays in the
-vectorised engine, on numpy scalars in the SimPy one: the same routine, so the two stay bit
-for bit identical), and the cycle matrices too.
+is a product, a sum and one `expm1`.
+
+The engines take one patient at a time through `separate_one` and `competing_scale`, which
+numba compiles for the compiled cycle engine and whose Python originals (`.py_func`) the
+SimPy cycle engine calls: both evaluate `math.expm1`, the C library's, so the two engines
+stay bit for bit identical. (numpy's `expm1` may use its own SIMD routine, which can differ
+in the last bit.) The cycle matrices take whole arrays through `separate` and `competing`.
 """
 from __future__ import annotations
 
 import math
 
 import numpy as np
+from numba import njit
 
 from microsim.scenario.fields import TOLERANCE
 
@@ -44,6 +48,19 @@ def separate(log, m):
     """A per-cycle probability under multiplier m: 1 - (1 - p)^m = -expm1(-m L). (Where
     m is 1 the callers keep the file's p itself, which this gives only to the last bit.)"""
     return -np.expm1(-(m * log))
+
+
+@njit(cache=True)
+def separate_one(log, m):
+    """`separate` for one patient: 1 - (1 - p)^m = -expm1(-m L) by the C library."""
+    return -math.expm1(-(m * log))
+
+
+@njit(cache=True)
+def competing_scale(total):
+    """(1 - exp(-R)) / R of the competing rule for one patient (0 when R is 0): p'_j is
+    L_j m_j times this, with R = sum of L_j m_j added in the row's order."""
+    return -math.expm1(-total) / (total + (total == 0))
 
 
 def competing(row) -> list:

@@ -181,6 +181,10 @@ class Multipliers:
 def indicator(patients: pd.DataFrame, attribute: str, level: str | None) -> np.ndarray:
     """The covariate an effect multiplies: the value, or 1 where the level applies."""
     column = patients[attribute]
+    if level is not None and isinstance(column.dtype, pd.CategoricalDtype):
+        # by the categories' codes: the same as comparing every value's text, without it
+        match = np.append(column.cat.categories.astype(str) == level, False)
+        return match[column.cat.codes.to_numpy()].astype(float)  # code -1 (missing): no
     if level is not None:
         return (column.astype(str) == level).to_numpy(float)
     return column.to_numpy(float)  # yes/no columns are bool: 1 when yes

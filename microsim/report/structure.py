@@ -100,10 +100,19 @@ def structure_graph(scenario: Scenario) -> nx.DiGraph:
             add_state(state, strategy.name)
     for t in scenario.transitions:
         add_transition(t)
-    for strategy in scenario.strategies:
-        for t in strategy.transitions:
-            add_transition(t, strategy.name)
+    for treatment, added_by in additions(scenario):
+        for t in treatment.transitions:
+            add_transition(t, added_by)
     return graph
+
+
+def additions(scenario: Scenario):
+    """(treatment, who adds, in words) for each strategy and each later treatment of its
+    sequence: what may add transitions and events."""
+    for strategy in scenario.strategies:
+        yield strategy, strategy.name
+        for line in strategy.then:
+            yield line, f"{strategy.name}, then {line.name}"
 
 
 def back_edges(graph: nx.DiGraph) -> set[tuple[str, str]]:
@@ -191,7 +200,8 @@ def structure_figure(scenario: Scenario) -> Figure:
     middles = {edge: arc_points(pos[edge[0]], pos[edge[1]], rad, 3)[1]
                for edge, rad in bends.items()}
     xy = np.array(list(pos.values()))
-    events = scenario.events
+    events = [(e, None) for e in scenario.events] + [
+        (e, added_by) for treatment, added_by in additions(scenario) for e in treatment.events]
     event_row = xy[:, 1].min() - ROW_GAP
     points = np.vstack([xy, *middles.values(), *([[xy[0, 0], event_row]] if events else [])])
     (left, bottom), (right, top) = points.min(axis=0) - MARGIN, points.max(axis=0) + MARGIN
@@ -223,9 +233,11 @@ def structure_figure(scenario: Scenario) -> Figure:
             ax.text(*middles[source, target], edge["text"], ha="center", va="center",
                     fontsize=LABEL_FONT, zorder=5, bbox=dict(boxstyle="square,pad=0.15",
                                                       facecolor="white", edgecolor="none"))
-        for k, event in enumerate(events):
+        for k, (event, added_by) in enumerate(events):
             x = np.mean([pos[s][0] for s in event.states]) + 0.35 * (k - (len(events) - 1) / 2)
-            box = ax.text(x, event_row, f"event: {event.name}\n{risk_label(event, scenario)}",
+            text = f"event: {event.name}\n{risk_label(event, scenario)}" + (
+                f"\n[{added_by}]" if added_by else "")
+            box = ax.text(x, event_row, text,
                           ha="center", va="center", fontsize=LABEL_FONT, zorder=3, bbox=dict(
                               boxstyle="round,pad=0.4", facecolor="white", edgecolor=INK,
                               linestyle=":", linewidth=1.0))

@@ -8,9 +8,10 @@ the scenario's within-cycle rule on the cycle points in cycle models.
 from __future__ import annotations
 
 import numpy as np
+from numba import njit
 
 from microsim.binding import BoundModel
-from microsim.patients.multipliers import Multipliers
+from microsim.patients.multipliers import Multipliers, Window
 from microsim.engines.histories import Histories
 from microsim.markov import discrete_outcomes as cycle_outcomes
 from microsim.results.bands import Bands, band_edges, band_of, entry_ages
@@ -46,18 +47,25 @@ def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
 
 
 def occurrences(model: BoundModel, h: Histories, edges: np.ndarray | None = None) -> np.ndarray:
-    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates; with
-    band `edges` (B, K + 1), (B, R, K, 3) by the band each happened in."""
-    happened = h.risk >= 0
-    patient, risk, time = h.patient[happened], h.risk[happened], h.time[happened]
+    """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates (each
+    patient's in record order); with band `edges` (B, K + 1), (B, R, K, 3) by the band
+    each happened in."""
+    R, K = len(model.risks), 1 if edges is None else edges.shape[1] - 1
+    out = np.zeros((h.n_patients, R * K, 3))
+    happened = np.flatnonzero(h.risk >= 0)
+    patient, time = h.patient[happened], h.time[happened]
     weights = np.exp(-np.outer(time, discount_rates(model)))
-    if edges is None:
-        out = np.zeros((h.n_patients, len(model.risks), 3))
-        np.add.at(out, (patient, risk), weights)
-        return out
-    out = np.zeros((h.n_patients, len(model.risks), edges.shape[1] - 1, 3))
-    np.add.at(out, (patient, risk, band_of(edges[patient], time)), weights)
-    return out
+    cell = h.risk[happened] * K + (0 if edges is None else band_of(edges[patient], time))
+    _add_rows(out, patient, cell, weights)
+    return out if edges is None else out.reshape(h.n_patients, R, K, 3)
+
+
+@njit(cache=True)
+def _add_rows(out, first, second, weights):
+    """out[first[q], second[q]] += weights[q] for each q in order (numpy's add.at)."""
+    for q in range(first.size):
+        for w in range(weights.shape[1]):
+            out[first[q], second[q], w] += weights[q, w]
 
 
 def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -82,27 +90,40 @@ def banded_sojourns(model: BoundModel, h: Histories, a: np.ndarray, b: np.ndarra
     return out
 
 
-def cycle_occupancy(model: BoundModel, states: np.ndarray, on: np.ndarray | None = None,
-                    band: np.ndarray | None = None, n_bands: int = 1) -> np.ndarray:
+def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None,
+                    edges: np.ndarray | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    `on` (B, T) holds, when given); with `band` (B, T), the band of each point,
-    (B, S, n_bands, 3) by band. Each patient's sum runs over its own cycle points in
-    time order, one point at a time for the whole batch, so it does not depend on the
-    batch (a point not counted adds nothing)."""
-    B, S, K = states.shape[0], model.n_states, n_bands
+    a patient is on treatment, when a `window` is given); with band `edges` (B, K + 1),
+    (B, S, K, 3) by the band of each point. Each patient's sum runs over its own cycle
+    points in time order, so it does not depend on the batch."""
     weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                                      correction=model.correction)
                         for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
-    out = np.zeros((3, B * S * K))
-    rows = np.arange(B) * S
-    for t in range(states.shape[1]):
-        counted = states[:, t] >= 0 if on is None else (states[:, t] >= 0) & on[:, t]
-        cell = rows + states[:, t] if band is None else (rows + states[:, t]) * K + band[:, t]
-        cell = cell[counted]  # one cell per patient: no repeats
-        for w in range(3):
-            out[w, cell] += weights[t, w]
-    shape = (3, B, S) if band is None else (3, B, S, K)
-    return np.ascontiguousarray(np.moveaxis(out.reshape(shape), 0, -1))
+    B, S = states.shape[0], model.n_states
+    times = np.asarray(model.times, float)
+    on = np.full(B, -np.inf) if window is None else np.asarray(window.on, float)
+    off = np.full(B, np.inf) if window is None else np.asarray(window.off, float)
+    K = 1 if edges is None else edges.shape[1] - 1
+    band = (np.zeros(states.shape, np.int64) if edges is None
+            else band_of(edges, np.broadcast_to(times, states.shape)))
+    out = _occupancy(states, weights, S, K, band, times, on, off)
+    return out.reshape(B, S, 3) if edges is None else out.reshape(B, S, K, 3)
+
+
+@njit(cache=True)
+def _occupancy(states, weights, n_states, n_bands, band, times, on, off):
+    """out[b, s * n_bands + band[b, t]] = sum over the points t where patient b is in s
+    and on[b] <= t < off[b] of weights[t], added in time order; a point with state -1 adds
+    nothing."""
+    B, T = states.shape
+    out = np.zeros((B, n_states * n_bands, weights.shape[1]))
+    for b in range(B):
+        for t in range(T):
+            s = states[b, t]
+            if s >= 0 and on[b] <= times[t] < off[b]:
+                for w in range(weights.shape[1]):
+                    out[b, s * n_bands + band[b, t], w] += weights[t, w]
+    return out
 
 
 def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
@@ -118,17 +139,13 @@ def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
     if model.discrete:
         states = grid_states(h, model.times) if states is None else states
         occupancy = cycle_occupancy(model, states)
-        on_grid = None if window is None else window.on_grid(model.times)
-        on = (np.zeros_like(occupancy) if window is None
-              else cycle_occupancy(model, states, on_grid))
+        on = np.zeros_like(occupancy) if window is None else cycle_occupancy(model, states, window)
         bands = None
         if edges is not None:
-            K = edges.shape[1] - 1
-            band = band_of(edges, np.broadcast_to(model.times, states.shape))
-            split = cycle_occupancy(model, states, band=band, n_bands=K)
+            split = cycle_occupancy(model, states, edges=edges)
             bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
                           np.zeros_like(split) if window is None
-                          else cycle_occupancy(model, states, on_grid, band, K),
+                          else cycle_occupancy(model, states, window, edges),
                           occurrences(model, h, edges))
         return Exposure(occupancy, occurrences(model, h), on, levels, bands)
     end = model.n_cycles * model.cycle

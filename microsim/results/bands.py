@@ -33,6 +33,16 @@ class Bands:
     FIELDS = ("edges", "age", "occupancy", "on_treatment", "occurrences")
 
     @classmethod
+    def empty(cls, rows: int, n_bands: int, n_states: int, n_risks: int) -> "Bands":
+        """Room for `rows` patients, to be filled part by part (`put`)."""
+        return cls(np.empty((rows, n_bands + 1)), np.empty(rows),
+                   *(np.empty((rows, n, n_bands, 3)) for n in (n_states, n_states, n_risks)))
+
+    def put(self, rows, part: "Bands") -> None:
+        for f in self.FIELDS:
+            getattr(self, f)[rows] = getattr(part, f)
+
+    @classmethod
     def join(cls, parts: list["Bands"]) -> "Bands":
         return cls(*(np.concatenate([getattr(p, f) for p in parts]) for f in cls.FIELDS))
 
@@ -51,6 +61,13 @@ def value_starts(model: BoundModel, by: str) -> np.ndarray:
     """The distinct starts of the model's cost and utility tables by `by`."""
     starts = [s for t in model.value_tables if t.by == by for s in t.starts]
     return np.unique(np.asarray(starts, float))
+
+
+def band_count(model: BoundModel) -> int | None:
+    """How many bands `band_edges` gives each row (None: no cost or utility by age or time):
+    one more than the starts of the tables by age and by time."""
+    starts = len(value_starts(model, AGE)) + len(value_starts(model, TIME))
+    return 1 + starts if starts else None
 
 
 def band_edges(model: BoundModel, entry_age: np.ndarray | None, rows: int) -> np.ndarray | None:

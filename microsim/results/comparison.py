@@ -214,7 +214,7 @@ class ComparisonSums:
                 rows = np.asarray(members)
                 p = result.trace[rows] if result.trace.shape[0] > 1 else result.trace
                 self.subgroups.setdefault((attribute, str(level)), Shares()).add(inside[rows], p)
-        simulated = outcome_values(model, sim.exposure)
+        simulated = sim.values
         expected = outcome_values(model, result.exposure)
         for measure, values in simulated.items():
             self.deviations.setdefault(measure, Moments()).add(values - expected[measure])
@@ -234,7 +234,7 @@ class ComparisonSums:
         else:
             people = simulated
             twin = simulate(sim.model, sim.patients, sim.seed, mult=average, grid=sim.grid)
-            cohort = outcome_values(sim.model, twin.exposure)
+            cohort = twin.values
         for measure, values in people.items():
             mine = np.broadcast_to(cohort[measure], values.shape)
             sums = self.average.setdefault(measure, [0.0, 0.0])

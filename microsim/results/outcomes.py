@@ -16,12 +16,11 @@ import numpy as np
 import pandas as pd
 
 from microsim.binding import BoundModel
-from microsim.results.bands import Bands
+from microsim.results.bands import Bands, band_count
 from microsim.scenario.spec import TableSpec
 
 MEASURES = ("life_years", "qalys", "costs", "qalys_discounted", "costs_discounted")
 WEIGHTINGS = ("undiscounted", "costs", "effects")
-ARRAYS = ("occupancy", "occurrences", "on_treatment")
 
 
 @dataclass(frozen=True)
@@ -40,16 +39,37 @@ class Exposure:
     levels: Mapping[str, np.ndarray] = field(default_factory=dict)
     bands: Bands | None = None
 
+    FIELDS = ("occupancy", "occurrences", "on_treatment")
+
+    @classmethod
+    def empty(cls, rows: int, model: BoundModel) -> "Exposure":
+        """Room for `rows` patients of `model`, to be filled part by part (`put`), with
+        the levels and bands its costs' and utilities' tables need."""
+        S, R = model.n_states, len(model.risks)
+        levels = {t.name: np.empty((rows, len(t.levels)))
+                  for t in model.value_tables if t.attribute is not None}
+        K = band_count(model)
+        return cls(np.empty((rows, S, 3)), np.empty((rows, R, 3)), np.empty((rows, S, 3)),
+                   levels, None if K is None else Bands.empty(rows, K, S, R))
+
+    def put(self, rows, part: "Exposure") -> None:
+        for f in self.FIELDS:
+            getattr(self, f)[rows] = getattr(part, f)
+        for name, weights in part.levels.items():
+            self.levels[name][rows] = weights
+        if part.bands is not None:
+            self.bands.put(rows, part.bands)
+
     @classmethod
     def join(cls, parts: list["Exposure"]) -> "Exposure":
         first = parts[0]
-        return cls(*(np.concatenate([getattr(p, f) for p in parts]) for f in ARRAYS),
+        return cls(*(np.concatenate([getattr(p, f) for p in parts]) for f in cls.FIELDS),
                    {name: np.concatenate([p.levels[name] for p in parts])
                     for name in first.levels},
                    None if first.bands is None else Bands.join([p.bands for p in parts]))
 
     def take(self, rows) -> "Exposure":
-        return Exposure(*(getattr(self, f)[rows] for f in ARRAYS),
+        return Exposure(*(getattr(self, f)[rows] for f in self.FIELDS),
                         {name: w[rows] for name, w in self.levels.items()},
                         None if self.bands is None else self.bands.take(rows))
 

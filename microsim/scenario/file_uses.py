@@ -33,8 +33,11 @@ def check_column_uses(s: Scenario, file: PopulationFile) -> None:
         prefix = f"strategies.{strategy.name}"
         if strategy.eligible is not None:
             check_conditions(s, reading, strategy.eligible, f"{prefix}.eligible")
-        with under(prefix):  # the strategy's added transitions, as a model of their own
-            check_effects(replace(s, transitions=strategy.transitions, events=()), reading)
+        for treatment, here in ((strategy, prefix), *((line, f"{prefix}.then.{line.name}")
+                                                      for line in strategy.then)):
+            with under(here):  # a treatment's added transitions and events, as a model
+                check_effects(replace(s, transitions=treatment.transitions,
+                                      events=treatment.events), reading)
 
 
 def check_file_population(spec: PopulationSpec, file: PopulationFile) -> None:

@@ -215,8 +215,7 @@ def check_capacity(s: Scenario, reading: Reading) -> None:
     check_plan(s, s, s.capacity, "", paths, reading)
     for strategy in s.strategies:
         prefix = f"strategies.{strategy.name}"
-        merged = replace(s, states=s.states + strategy.states,
-                         transitions=s.transitions + strategy.transitions)
+        merged = s.with_added(strategy)
         added = {t.where: f"{prefix}.transitions.{t.where}" for t in strategy.transitions}
         check_plan(s, merged, strategy.capacity or s.capacity,
                    f"{prefix}." if strategy.capacity else "", {**paths, **added}, reading)

@@ -1,9 +1,11 @@
 """Reading [[strategies]]: what is compared, who is eligible, and what treatment changes.
 
-A strategy's added states and transitions are read and checked by the base model's own
-readers and checks, run on the merged model (base + added) with their paths moved under
-the strategy (`strategies.<name>.transitions.<from>-><to>...`), so an added transition
-obeys exactly the rules of [[transitions]].
+A strategy's added states, transitions and events, and those a later treatment of its
+sequence adds, are read and checked by the base model's own readers and checks, run on the
+merged model (base + added) with their paths moved under the treatment
+(`strategies.<name>.transitions.<from>-><to>...`,
+`strategies.<name>.then.<treatment>.events.<event>...`), so an added transition obeys
+exactly the rules of [[transitions]], and an added event those of [[events]].
 """
 from __future__ import annotations
 
@@ -19,15 +21,15 @@ from .checks import (check_age_known, check_effects, check_kind, check_lifetime,
 from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, VALUE_TABLE_AXES, Node,
                      Reading, Role, describe, did_you_mean, listing, show)
-from .read_transitions import read_transitions
+from .read_transitions import read_events, read_transitions
 from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec,
-                   LineSpec, Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec,
+                   EventSpec, LineSpec, Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec,
                    TransitionSpec)
 
 STRATEGY_KEYS = ("name", "label", "comparator", "eligible", "uptake", "start", "stop",
-                 "discontinuation", "changes", "states", "transitions", "start_on", "stop_on",
-                 "start_delay", "then", "arrivals", "resources")  # the last two: read by read_capacity
-LINE_KEYS = ("name", "stop_on", "changes")
+                 "discontinuation", "changes", "states", "transitions", "events", "start_on",
+                 "stop_on", "start_delay", "then", "arrivals", "resources")  # the last two: read by read_capacity
+LINE_KEYS = ("name", "stop_on", "changes", "transitions", "events")
 ELIGIBLE_KEYS = ("all", "any")
 NUMBER_TESTS = ("above", "at_least", "below", "at_most")
 LEVEL_TESTS = ("equals", "one_of")
@@ -38,7 +40,7 @@ RISK_KEYS = ("transition", "hazard_ratio")
 ON_TREATMENT_KEYS = ("state", "cost", "utility")
 CHANGE_KEYS = RISK_KEYS + ON_TREATMENT_KEYS
 WHILE_TREATED = "while_treated"
-MOVED_PATHS = ("states.", "transitions.")  # where the base readers and checks report
+MOVED_PATHS = ("states.", "transitions.", "events.")  # where the base readers and checks report
 
 UPTAKE = Role("an uptake share", 0.0, 1.0)
 TREATMENT_COST = Role("a treatment cost", 0.0)
@@ -65,12 +67,22 @@ def under(prefix: str, reading: Reading | None = None) -> Iterator[None]:
                                       for r in reading.references[first:]]
 
 
-class AddedTransition(Node):
-    """An entry of [[strategies.transitions]]: the keys of [[transitions]] plus
-    while_treated, so the base reader refuses typos and lists every allowed key."""
+class Added(Node):
+    """An entry of a treatment's added transitions or events: the keys of [[transitions]]
+    or [[events]], plus while_treated for the first treatment's (`optional`), so the base
+    readers refuse typos and list every allowed key."""
+
+    def __init__(self, entry: Node, optional: bool):
+        super().__init__(entry.data, entry.path, entry.reading)
+        self.optional = optional
 
     def only(self, allowed: Iterable[str], where: str = "") -> None:
-        super().only(tuple(allowed) + (WHILE_TREATED,), where)
+        if not self.optional and self.has(WHILE_TREATED):
+            self.fail(WHILE_TREATED, "a later treatment's transitions and events act only "
+                                     "while it is on; give one that acts whatever the "
+                                     "treatment to the strategy itself ([[strategies.transitions]] "
+                                     "or [[strategies.events]]) with while_treated = false")
+        super().only(tuple(allowed) + ((WHILE_TREATED,) if self.optional else ()), where)
 
 
 # -- first pass: [[strategies]] -----------------------------------------------------------
@@ -118,7 +130,8 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
                           "out to treat until the end")
     with under(node.path, node.reading):
         states = read_states(node.nodes("states", None))
-    transitions, gated = read_added_transitions(node, tables)
+    transitions, gated = read_added(node, "transitions", tables)
+    events, events_gated = read_added(node, "events", tables)
     return StrategySpec(
         name=name, label=node.text("label", name, nonempty=True),
         comparator=node.flag("comparator", False),
@@ -126,9 +139,9 @@ def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: Tim
         uptake=node.ref("uptake", UPTAKE, 1.0), start=start, stop=stop,
         discontinuation=node.ref("discontinuation", RATE, 0.0),
         changes=tuple(read_change(n) for n in node.nodes("changes", CHANGE_KEYS)),
-        states=states, transitions=transitions, while_treated=gated,
-        start_on=state_list(node, "start_on"), stop_on=state_list(node, "stop_on"),
-        then=read_lines(node), start_delay=node.number("start_delay", 0.0, role=NON_NEGATIVE))
+        states=states, transitions=transitions, while_treated=gated, events=events,
+        events_while_treated=events_gated, start_on=state_list(node, "start_on"), stop_on=state_list(node, "stop_on"),
+        then=read_lines(node, tables), start_delay=node.number("start_delay", 0.0, role=NON_NEGATIVE))
 
 
 def state_list(node: Node, key: str) -> tuple[str, ...]:
@@ -138,29 +151,41 @@ def state_list(node: Node, key: str) -> tuple[str, ...]:
     return (node.name(key),) if isinstance(node.raw(key), str) else node.names(key)
 
 
-def read_lines(node: Node) -> tuple[LineSpec, ...]:
+def read_lines(node: Node, tables: dict[str, TableSpec]) -> tuple[LineSpec, ...]:
     """[[strategies.then]]: the later treatments of a sequence, in order."""
     lines: list[LineSpec] = []
-    for entry in node.nodes("then", LINE_KEYS):
+    for entry in node.nodes("then", None):
+        if entry.has("states"):
+            entry.fail("states", "a later treatment cannot add states; add them to the "
+                                 "strategy ([[strategies.states]]), which every treatment of "
+                                 "the sequence shares, and lead to them with this "
+                                 "treatment's transitions")
+        entry.only(LINE_KEYS)
         name = entry.name("name")
         if name in (node.data.get("name"), *(line.name for line in lines)):
             entry.fail("name", f"{name!r} already names this strategy or one of its "
                                "treatments; give each treatment of a sequence its own name")
         entry.path = f"{node.path}.then.{name}"
-        lines.append(LineSpec(name, state_list(entry, "stop_on"), tuple(
-            read_change(n) for n in entry.nodes("changes", CHANGE_KEYS))))
+        lines.append(LineSpec(
+            name, state_list(entry, "stop_on"),
+            tuple(read_change(n) for n in entry.nodes("changes", CHANGE_KEYS)),
+            transitions=read_added(entry, "transitions", tables, optional=False)[0],
+            events=read_added(entry, "events", tables, optional=False)[0]))
     return tuple(lines)
 
 
-def read_added_transitions(node: Node, tables: dict[str, TableSpec]
-                           ) -> tuple[tuple[TransitionSpec, ...], tuple[bool, ...]]:
-    transitions, gated = [], []
-    for entry in node.nodes("transitions", None):
-        added = AddedTransition(entry.data, entry.path, entry.reading)
-        with under(node.path, node.reading):
-            transitions += read_transitions([added], tables)
-            gated.append(added.flag(WHILE_TREATED, True))
-    return tuple(transitions), tuple(gated)
+def read_added(node: Node, key: str, tables: dict[str, TableSpec], optional: bool = True
+               ) -> tuple[tuple[TransitionSpec | EventSpec, ...], tuple[bool, ...]]:
+    """A treatment's [[...transitions]] or [[...events]] (`key`) by the readers of
+    [[transitions]] and [[events]], with their paths under the treatment's, and whether each
+    acts only while the treatment is on: always for a later treatment's, by while_treated
+    (default true) for the first's (`optional`)."""
+    reader = read_transitions if key == "transitions" else read_events
+    with under(node.path, node.reading):
+        entries = [Added(entry, optional) for entry in node.nodes(key, None)]
+        added = reader(entries, tables)
+        gated = tuple(entry.flag(WHILE_TREATED, True) for entry in entries)
+    return added, gated
 
 
 def read_eligible(node: Node | None) -> EligibilitySpec | None:
@@ -232,7 +257,7 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
     if not may_be_positive(s, strategy.uptake):
         found.append(f"{prefix}.uptake: is 0, so no one takes the treatment up; the strategy "
                      "runs the model as written")
-    changes = bool(strategy.changes or strategy.transitions or strategy.capacity)
+    changes = strategy.changes_anything or strategy.capacity is not None
     if strategy.comparator and changes:
         found.append(f"{prefix}: is the comparator but has changes or added transitions; a "
                      "comparator normally runs the model as written (check that this is "
@@ -240,20 +265,22 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
     if not strategy.comparator and not changes:
         found.append(f"{prefix}: changes nothing (no changes and no added transitions), so it "
                      "gives the same results as the comparator")
-    reachable, _ = reachable_from_start(merged)
+    reachable, _ = reachable_from_start(s.with_added(strategy, strategy.then))
     check_delay(s, strategy, f"{prefix}.start_delay")
     if strategy.phased:
-        found += check_phases(s, merged, strategy, prefix, reachable)
+        found += check_phases(s, reading, merged, strategy, prefix, reachable)
     found += [f"{prefix}.states.{st.name}: not reachable from the start (no transition that can "
               "happen leads to it)" for st in strategy.states if st.name not in reachable]
     return found
 
 
-def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: str,
-                 reachable) -> list[str]:
-    """Treatment that starts and stops on entering states, and sequences: known states
-    that are not absorbing, each treatment after the first following one that stops, and
-    no treatment stopped by the very entry that starts it. Returns the warnings."""
+def check_phases(s: Scenario, reading: Reading, merged: Scenario, strategy: StrategySpec,
+                 prefix: str, reachable) -> list[str]:
+    """Treatment that starts and stops on entering states or on events, and sequences:
+    known states that are not absorbing, events that can happen while the trigger is
+    awaited, each treatment after the first following one that stops, no treatment stopped
+    by the very entry that starts it, and each later treatment's changes and additions by
+    the rules of the first's. Returns the warnings."""
     if s.capacity is not None:
         raise ScenarioError(f"{prefix}.{'start_on' if strategy.start_on else 'stop_on'}",
                             "treatment on entering states is not available with [arrivals] "
@@ -263,20 +290,29 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
                             "not from the entry that starts treatment; leave it out with "
                             "start_on, and stop treatment with stop_on")
     absorbing = {st.name for st in merged.states if st.absorbing}
-    events = {e.name: e for e in merged.events}
-    lines = [(prefix, strategy.start_on, strategy.stop_on)]
-    lines += [(f"{prefix}.then.{line.name}", lines_before_stop, line.stop_on)
-              for line, lines_before_stop in zip(strategy.then, [strategy.stop_on] + [
-                  line.stop_on for line in strategy.then])]
-    for path, starts, stops in lines:
-        for key, names in (("start_on", starts if path == prefix else ()), ("stop_on", stops)):
+    treatments = [(prefix, strategy, strategy.start_on, strategy.stop_on, merged)]
+    for line, before in zip(strategy.then, [strategy.stop_on] + [x.stop_on for x in strategy.then]):
+        treatments.append((f"{prefix}.then.{line.name}", line, before, line.stop_on,
+                           merged_model(s, reading, strategy, prefix, line)))
+    for path, during, starts, stops, model in treatments:
+        for key, names, when in (("start_on", starts if during is strategy else (), None),
+                                 ("stop_on", stops, during)):
+            elsewhere = only_elsewhere(s, strategy, prefix, when)
+            events = {e.name: e for e in model.events if e.name not in elsewhere}
             for i, name in enumerate(names):
                 here = f"{path}.{key}" + (f"[{i}]" if len(names) > 1 else "")
                 if name in events:
-                    check_trigger_event(merged, events[name], here)
+                    check_trigger_event(model, events[name], here)
                     continue
-                if name not in merged.state_names:
-                    known = list(merged.state_names) + list(events)
+                if name in elsewhere:
+                    verb = key.removesuffix("_on")
+                    raise ScenarioError(here, f"{name!r} is an event that only "
+                                        f"{elsewhere[name]} has, while it is on, so it cannot "
+                                        f"{verb} this treatment; name a state, or an event "
+                                        "that can happen " + ("before treatment starts"
+                                                              if when is None else "during it"))
+                if name not in model.state_names:
+                    known = list(model.state_names) + list(events)
                     raise ScenarioError(here, f"{name!r} is not a state or event"
                                         f"{did_you_mean(name, known)}; name a state (entering "
                                         f"it) or an event: {listing(known)}")
@@ -290,14 +326,40 @@ def check_phases(s: Scenario, merged: Scenario, strategy: StrategySpec, prefix: 
         if both:
             raise ScenarioError(f"{path}.stop_on", f"{both[0]!r} also starts this treatment; "
                                 "a treatment cannot stop on the entry that starts it")
-    for line in strategy.then:
-        check_changes(merged, replace(strategy, changes=line.changes),
-                      f"{prefix}.then.{line.name}")
-    reached = reachable | {e for e in events if set(events[e].states) & reachable}
+        if during is not strategy:
+            check_changes(model, replace(strategy, changes=during.changes), path,
+                          only_elsewhere(s, strategy, prefix, during))
+    full = s.with_added(strategy, strategy.then)
+    reached = reachable | {e.name for e in full.events if set(e.states) & reachable}
     if strategy.start_on and not set(strategy.start_on) & reached:
         return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
                 "strategy treats no one"]
     return []
+
+
+def only_elsewhere(s: Scenario, strategy: StrategySpec, prefix: str, during) -> dict[str, str]:
+    """The transitions and events (by name, and transitions by "from->to" pair too) that a
+    treatment of the strategy other than `during` (the strategy for its first treatment, one
+    of its later treatments, or None before treatment starts) adds for its time on treatment
+    only, and which so do not exist while `during` is on; each with the treatment that adds
+    it, in words."""
+    def names(occurrences) -> set[str]:
+        return {n for o in occurrences for n in (o.name, getattr(o, "key", o.name))}
+    gated = strategy.on_treatment_only
+    added = (*strategy.transitions, *strategy.events)
+    present = names((*s.transitions, *s.events, *(o for o in added if o.name not in gated)))
+    treatments = [(strategy, f"the first treatment ({prefix})",
+                   [o for o in added if o.name in gated])]
+    treatments += [(line, f"the treatment {prefix}.then.{line.name}",
+                    (*line.transitions, *line.events)) for line in strategy.then]
+    found: dict[str, str] = {}
+    for owner, words, occurrences in treatments:
+        if owner is during:
+            present |= names(occurrences)
+        else:
+            for name in names(occurrences):
+                found.setdefault(name, words)
+    return {name: words for name, words in found.items() if name not in present}
 
 
 def check_delay(s: Scenario, strategy: StrategySpec, here: str) -> None:
@@ -336,68 +398,95 @@ def check_trigger_event(merged: Scenario, event, here: str) -> None:
                                 "\"age\", or start treatment on a state")
 
 
-def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str) -> Scenario:
-    """The model with the strategy's added states and transitions, checked by the rules of
-    the base model."""
-    if not (strategy.states or strategy.transitions):
-        return s
-    taken = {name: f"states.{name}" for name in s.state_names}
-    taken.update((o.name, path) for path, o in occurrences(s))
-    for state in strategy.states:
-        if state.name in taken:
-            raise ScenarioError(f"{prefix}.states.{state.name}.name", f"{state.name!r} is already "
-                                f"the name of {taken[state.name]}; give added states new names")
-    merged = replace(s, states=s.states + strategy.states,
-                     transitions=s.transitions + strategy.transitions)
-    paths = [f"{prefix}.transitions.{t.where}" for t in strategy.transitions]
-    for path, t in zip(paths, strategy.transitions):
-        if (t.probability is not None) != s.discrete:
+def merged_model(s: Scenario, reading: Reading, strategy: StrategySpec, prefix: str,
+                 line: LineSpec | None = None) -> Scenario:
+    """The model with the strategy's added states, transitions and events (and with `line`,
+    those of one later treatment of its sequence), checked by the rules of the base model.
+    A later treatment's additions are checked after the strategy's own passed, so every
+    refusal of the merged model is about them."""
+    own = strategy if line is None else line
+    if not (own.transitions or own.events or (line is None and strategy.states)):
+        return s.with_added(strategy)
+    here = prefix if line is None else f"{prefix}.then.{line.name}"
+    if line is None:
+        taken = {name: f"states.{name}" for name in s.state_names}
+        taken.update((o.name, path) for path, o in occurrences(s))
+        for state in strategy.states:
+            if state.name in taken:
+                raise ScenarioError(f"{prefix}.states.{state.name}.name", f"{state.name!r} is "
+                                    f"already the name of {taken[state.name]}; give added "
+                                    "states new names")
+    merged = s.with_added(strategy, () if line is None else (line,))
+    added = additions(strategy, prefix) + ([] if line is None else additions(line, here))
+    mine = additions(own, here)
+    for path, o in mine:
+        if (o.probability is not None) != s.discrete:
             uses, others = (("a rate or hazard", "per-cycle probabilities") if s.discrete
                             else ("a per-cycle probability", "rates or hazards"))
             raise ScenarioError(path, f"uses {uses}, but the model's transitions use {others}; "
-                                "added transitions use the model's kind")
-    with under(prefix):
+                                "added transitions and events use the model's kind")
+    with under(here):
         check_states(merged)
-    check_names(replace(s, states=merged.states), zip(paths, strategy.transitions))
-    with under(prefix):
+    check_names(replace(s, states=merged.states), added)
+    with under(here):
         check_kind(merged)
         check_memory(merged)
         check_effects(merged, reading)
         check_age_known(merged, reading)
-        if s.discrete:
-            check_added_rows(s, merged, strategy, paths)
+    if s.discrete:
+        with under(here):
+            check_added_rows(merged, [(p, t) for p, t in mine if isinstance(t, TransitionSpec)],
+                             s.state_names if line is None else merged.state_names)
     if s.time.horizon is None:
         try:
             check_lifetime(merged)
         except ScenarioError as error:
-            raise ScenarioError(f"{prefix}.transitions", f"with them the horizon "
+            raise ScenarioError(f"{here}.transitions", f"with them the horizon "
                                 f"{error.message}") from None
     return merged
 
 
-def check_added_rows(s: Scenario, merged: Scenario, strategy: StrategySpec,
-                     paths: list[str]) -> None:
-    """Rows of states with added transitions still sum properly; a row of an existing state
-    needs a remainder, which makes room for the added probability on treatment and takes it
-    back off treatment."""
-    for path, t in zip(paths, strategy.transitions):
+def additions(treatment: StrategySpec | LineSpec, here: str
+              ) -> list[tuple[str, TransitionSpec | EventSpec]]:
+    """A treatment's added transitions and events with their field paths (`here`: the
+    treatment's own path)."""
+    return ([(f"{here}.transitions.{t.where}", t) for t in treatment.transitions]
+            + [(f"{here}.events.{e.name}", e) for e in treatment.events])
+
+
+def check_added_rows(merged: Scenario, added: list[tuple[str, TransitionSpec]],
+                     existing: tuple[str, ...]) -> None:
+    """Rows of states with added transitions still sum properly; a row that exists without
+    them (of a state in `existing`) needs a remainder, which makes room for the added
+    probability on treatment and takes it back off treatment."""
+    for path, t in added:
         row = [r for r in merged.transitions if r.source == t.source]
-        if t.source in s.state_names and not any(r.probability == REMAINDER for r in row):
+        if t.source in existing and not any(r.probability == REMAINDER for r in row):
             raise ScenarioError(path, f"{t.source!r} has no transition with probability = "
                                 '"remainder"; a transition added from an existing state needs '
                                 "one in its row to make room for the added probability; add "
                                 f"one (often from {t.source!r} to itself)")
-    for source in dict.fromkeys(t.source for t in strategy.transitions):
+    for source in dict.fromkeys(t.source for _, t in added):
         check_row(merged, source)
 
 
-def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str) -> None:
+def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str,
+                  absent: dict[str, str] | None = None) -> None:
+    """The strategy's changes name transitions and events that exist while its treatment is
+    on (`absent`: those another treatment of its sequence adds for its own time on
+    treatment, with that treatment's path) and states that are not absorbing."""
+    absent = absent or {}
     risks = {o.name: o for _, o in occurrences(merged)}
     risks.update((t.key, t) for t in merged.transitions)
     names = list(dict.fromkeys(o.name for _, o in occurrences(merged)))
     absorbing = {st.name for st in merged.states if st.absorbing}
     for i, change in enumerate(strategy.changes):
         here = f"{prefix}.changes[{i}]"
+        if change.risk in absent:
+            raise ScenarioError(f"{here}.transition", f"{change.risk!r} exists only while "
+                                f"{absent[change.risk]} is on, not during this treatment; "
+                                "change a transition or event of the model or of this "
+                                "treatment")
         if change.risk is not None and change.risk not in risks:
             raise ScenarioError(f"{here}.transition", f"{change.risk!r} is not a transition or "
                                 f"event{did_you_mean(change.risk, names)}; give a transition "

@@ -18,7 +18,7 @@ never exceeds 1, so no bound is needed.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Iterator, Mapping
 
 import numpy as np
@@ -27,7 +27,8 @@ from .checks import check_reference, level_choices, table_at
 from .errors import ScenarioError
 from .fields import AGE, COMPETING_PROBABILITY, TOLERANCE, Reference, listing, show
 from .formulas import settings, with_derived
-from .spec import COMPETING, REMAINDER, SEPARATE, Ref, Scenario, StrategySpec, TransitionSpec
+from .spec import (COMPETING, REMAINDER, SEPARATE, LineSpec, Ref, Scenario, StrategySpec,
+                   TransitionSpec)
 
 Ranges = Mapping[str, tuple[float, float]]
 """Numeric attribute -> (lowest, highest) value a patient can have at time 0."""
@@ -39,61 +40,74 @@ COMPETING_FIX = ('set time.probability_rule = "competing" (each probability then
 class Move:
     """A move of a row besides its remainder, as one strategy (or the model) runs it."""
     spec: TransitionSpec
-    path: str  # transitions.<from>-><to>, under strategies.<name>. when a strategy adds it
-    changes: tuple[tuple[int, Ref], ...] = ()  # the strategy's changes on it: (index, HR)
-    gated: bool = False  # added by the strategy for patients on treatment only
+    path: str  # transitions.<from>-><to>, under the path of the treatment that adds it
+    changes: tuple[tuple[int, Ref], ...] = ()  # the treatment's changes on it: (index, HR)
+    gated: bool = False  # added by the treatment for patients on treatment only
 
 
 @dataclass(frozen=True)
 class Row:
     """The transitions out of one non-absorbing state."""
-    path: str  # transitions.<state>->*, under strategies.<name>. for a strategy's own
+    path: str  # transitions.<state>->*, under the treatment's path for a treatment's own
     state: str
     moves: tuple[Move, ...]  # besides the remainder, in file order
     remainder: TransitionSpec | None
     remainder_path: str | None
-    strategy: str | None  # None: the model as written
+    treatment: str | None  # the path of the treatment (None: the model as written)
 
 
 def rows(s: Scenario) -> Iterator[Row]:
-    """The model's rows, then each strategy's rows that differ from them (a sequence's
-    later treatments each as the strategy with their changes, its added transitions
-    counted as possibly on: an upper bound)."""
+    """The model's rows, then each treatment's rows that differ from them: a strategy's
+    (its first treatment), and a sequence's later treatments', each with its own changes
+    and added transitions (those added for a time on treatment counted as possibly on: an
+    upper bound)."""
     yield from strategy_rows(s, None)
     for strategy in s.strategies:
         if strategy.changes or strategy.transitions:
             yield from strategy_rows(s, strategy)
         for line in strategy.then:
-            yield from strategy_rows(s, replace(strategy, changes=line.changes))
+            yield from strategy_rows(s, strategy, line)
 
 
-def strategy_rows(s: Scenario, strategy: StrategySpec | None) -> Iterator[Row]:
-    added = () if strategy is None else strategy.transitions
-    transitions = s.transitions + added
-    prefix = "" if strategy is None else f"strategies.{strategy.name}."
+def strategy_rows(s: Scenario, strategy: StrategySpec | None, line: LineSpec | None = None
+                  ) -> Iterator[Row]:
+    """The rows of the model as written (`strategy` None), of a strategy's first treatment,
+    or of one later treatment `line` of its sequence: the strategy's added transitions
+    that act whatever the treatment, and the line's own (the first treatment's that act
+    only while it is on do not exist then)."""
+    if strategy is None:
+        added, treatment, changes = [], None, ()
+    else:
+        prefix = f"strategies.{strategy.name}"
+        gated = strategy.on_treatment_only
+        added = [(t, prefix, t.name in gated) for t in strategy.transitions
+                 if line is None or t.name not in gated]
+        treatment, changes = prefix, strategy.changes
+        if line is not None:
+            treatment, changes = f"{prefix}.then.{line.name}", line.changes
+            added += [(t, treatment, True) for t in line.transitions]
+    transitions = [(t, "", False) for t in s.transitions] + added
     states = s.states + (() if strategy is None else strategy.states)
     for state in states:
         if state.absorbing:
             continue
         moves, remainder, remainder_path, changed = [], None, None, strategy is None
-        for k, t in enumerate(transitions):
+        for t, owner, gated in transitions:
             if t.source != state.name:
                 continue
-            own = k >= len(s.transitions)
-            path = f"{prefix if own else ''}transitions.{t.where}"
-            changed = changed or own
+            path = f"{owner}{'.' if owner else ''}transitions.{t.where}"
+            changed = changed or bool(owner)
             if t.probability == REMAINDER:
                 remainder, remainder_path = t, path
                 continue
-            changes = () if strategy is None else tuple(
-                (i, c.hazard_ratio) for i, c in enumerate(strategy.changes)
-                if c.risk in (t.name, t.key))
-            gated = own and strategy.while_treated[k - len(s.transitions)]
-            changed = changed or bool(changes)
-            moves.append(Move(t, path, changes, gated))
+            hits = tuple((i, c.hazard_ratio) for i, c in enumerate(changes)
+                         if c.risk in (t.name, t.key))
+            changed = changed or bool(hits)
+            moves.append(Move(t, path, hits, gated))
         if (moves or remainder) and changed:
-            yield Row(f"{prefix}transitions.{state.name}->*", state.name, tuple(moves),
-                      remainder, remainder_path, None if strategy is None else strategy.name)
+            own = "" if treatment is None else f"{treatment}."
+            yield Row(f"{own}transitions.{state.name}->*", state.name, tuple(moves),
+                      remainder, remainder_path, treatment)
 
 
 def row_names(row: Row) -> list[str]:
@@ -153,8 +167,7 @@ def refuse_effects_without_remainder(row: Row) -> None:
             if getattr(move.spec, key):
                 raise ScenarioError(f"{move.path}.{key}[0]", why)
         if move.changes:
-            raise ScenarioError(f"strategies.{row.strategy}.changes[{move.changes[0][0]}]"
-                                ".transition", why)
+            raise ScenarioError(f"{row.treatment}.changes[{move.changes[0][0]}].transition", why)
         if move.gated:
             raise ScenarioError(f"{move.path}.while_treated", f"is true (the default), but {why}")
 
@@ -221,12 +234,12 @@ def row_bounds(s: Scenario, values: Mapping[str, np.ndarray], ranges: Ranges) ->
             continue
         drivers, terms = [], []
         for move in row.moves:
-            found_terms = move_multiplier(move, row.strategy, value, ranges, span)
+            found_terms = move_multiplier(move, row.treatment, value, ranges, span)
             drivers += [(what, attribute, np.broadcast_to(log, (size,)))
                         for what, attribute, log in found_terms]
             terms.append(np.exp(sum(log for *_, log in found_terms)) if found_terms else 1.0)
         bound = np.broadcast_to(row_sum(s, row, value, terms), (size,))
-        if row.strategy is None:
+        if row.treatment is None:
             model[row.state] = bound
         elif row.state in model and np.array_equal(bound, model[row.state]):
             continue  # the strategy cannot raise this row: its verdicts are the model's
@@ -262,7 +275,7 @@ def on_rate_scale(p, m):
         return 1.0 - np.power(1.0 - p, m)
 
 
-def move_multiplier(move: Move, strategy: str | None, value, ranges: Ranges, span: float
+def move_multiplier(move: Move, treatment: str | None, value, ranges: Ranges, span: float
                     ) -> list[tuple[str, bool, np.ndarray]]:
     """The largest log multiplier each effect, memory and treatment can give the move:
     (what, whether it is an attribute, log multiplier (D,))."""
@@ -285,7 +298,7 @@ def move_multiplier(move: Move, strategy: str | None, value, ranges: Ranges, spa
     if move.changes or move.gated:
         on = np.prod(np.stack(np.broadcast_arrays(*(value(hr) for _, hr in move.changes),
                                                   np.asarray(1.0))), axis=0)
-        terms.append((f"the hazard ratio of strategies.{strategy}", False,
+        terms.append((f"the hazard ratio of {treatment}", False,
                       np.log(np.maximum(on, 0.0 if move.gated else 1.0))))
     return terms
 

@@ -324,10 +324,13 @@ class ChangeSpec:
 @dataclass(frozen=True)
 class LineSpec:
     """A later treatment of a sequence: it starts when the one before it stops, and acts
-    through its own changes until a patient enters one of `stop_on`."""
+    through its own changes, transitions and events until a patient enters one of `stop_on`
+    (or has one of its events)."""
     name: str
     stop_on: tuple[str, ...] = ()
     changes: tuple[ChangeSpec, ...] = ()
+    transitions: tuple[TransitionSpec, ...] = ()  # added, acting only while it is on
+    events: tuple[EventSpec, ...] = ()  # added, happening only while it is on
 
 
 @dataclass(frozen=True)
@@ -346,6 +349,8 @@ class StrategySpec:
     states: tuple[StateSpec, ...] = ()  # added states
     transitions: tuple[TransitionSpec, ...] = ()  # added transitions
     while_treated: tuple[bool, ...] = ()  # per added transition: only while on treatment
+    events: tuple[EventSpec, ...] = ()  # added events
+    events_while_treated: tuple[bool, ...] = ()  # per added event: only while on treatment
     capacity: "CapacitySpec | None" = None  # its arrivals and resources, when it changes them
     start_on: tuple[str, ...] = ()  # treatment starts on entering one of these states
     stop_on: tuple[str, ...] = ()  # and stops on entering one of these
@@ -357,6 +362,20 @@ class StrategySpec:
         """Whether treatment follows the patient's history (states entered), not the
         clock alone."""
         return bool(self.start_on or self.stop_on or self.then)
+
+    @property
+    def on_treatment_only(self) -> frozenset[str]:
+        """The names of the added transitions and events that act only while the first
+        treatment is on."""
+        return frozenset(o.name for o, gated in (*zip(self.transitions, self.while_treated),
+                                                 *zip(self.events, self.events_while_treated))
+                         if gated)
+
+    @property
+    def changes_anything(self) -> bool:
+        """Whether any treatment of the strategy changes the model."""
+        return any((line.changes or line.transitions or line.events)
+                   for line in (self, *self.then))
 
 
 @dataclass(frozen=True)
@@ -457,6 +476,14 @@ class Scenario:
 
     def strategy(self, name: str) -> StrategySpec:
         return next(s for s in self.strategies if s.name == name)
+
+    def with_added(self, strategy: StrategySpec, lines: tuple[LineSpec, ...] = ()) -> "Scenario":
+        """The model with a strategy's added states, transitions and events, and those of
+        the later treatments `lines` of its sequence."""
+        return replace(self, states=self.states + strategy.states,
+                       transitions=sum((x.transitions for x in (strategy, *lines)),
+                                       self.transitions),
+                       events=sum((x.events for x in (strategy, *lines)), self.events))
 
     @property
     def discrete(self) -> bool:

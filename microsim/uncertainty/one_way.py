@@ -90,9 +90,8 @@ def patient_values(scenario: Scenario, people: pd.DataFrame, seed: int, values: 
     model = bind(scenario, values, strategy=strategy)
     mult = patient_multipliers(model, people, seed)
     result = analytic(model, mult=mult)
-    exposure = (result.exposure if result.exact
-                else simulate(model, people, seed, mult=mult).exposure)
-    outcomes = outcome_values(model, exposure)
+    outcomes = (outcome_values(model, result.exposure) if result.exact
+                else simulate(model, people, seed, mult=mult).values)
     return PatientValues(np.asarray(outcomes[COST], float), np.asarray(outcomes[EFFECT], float),
                          result.exact, np.asarray(outcomes["life_years"], float),
                          tuple(result.reasons))

@@ -1,10 +1,9 @@
-"""The vectorised cycle engine against the SimPy cycle engine: for the same model,
+"""The compiled cycle engine against the SimPy cycle engine: for the same model,
 multipliers, patient ids and seed the histories must be identical, array for array and
 bit for bit (the reference is `microsim.engines.cycle_engine.simulate_cycles`, whose rules are
 checked against the analytic chains in test_engines.py). Each model also checks that
 every one of its risks actually happens, so an equality of empty histories cannot pass."""
 import dataclasses
-import math
 from pathlib import Path
 
 import numpy as np
@@ -215,10 +214,27 @@ def test_demo_scenario_histories_equal_the_simpy_cycle_engine():
     assert_identical(expected, got)
 
 
-def test_float_power_is_pythons_power():
-    # Python's float ** calls the C library's pow; the engine relies on np.float_power
-    # doing the same element by element (reference: Python's own arithmetic)
-    rng = np.random.default_rng(3)
-    base, exponent = rng.random(20_000), rng.random(20_000) * 4
-    expected = [math.pow(b, m) for b, m in zip(base.tolist(), exponent.tolist())]
-    assert np.float_power(base, exponent).tolist() == expected
+# The edges: certain and impossible moves (deterministic histories), an event nearly every
+# cycle over a long horizon, so a batch's records outgrow the engine's first buffers and it
+# must resume where it stopped, and a countdown (a delay to treatment) in between.
+EDGES = scenario_text(
+    horizon(400, cycle=1), start(well=0.5, sick=0.5),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.0), probability("well", "dead", 0.001),
+    probability("well", "well", "remainder"),
+    probability("sick", "dead", 1.0),
+    event("check", ["well"], probability=0.97))
+
+
+def test_edges_equal_the_simpy_cycle_engine():
+    model = bind(parse_scenario(EDGES))
+    ids = np.arange(60) * 11
+    expected, got, _ = both_engines(model, ids, 3)
+    assert_identical(expected, got)
+    starts_sick = expected.target[expected.source < 0] == model.states.index("sick")
+    assert starts_sick.any() and (~starts_sick).any()
+    # everyone starting sick dies at the end of the first cycle; nobody falls sick
+    died = expected.target[(expected.time == 1.0) & (expected.risk >= 0)]
+    assert np.sum(died == model.states.index("dead")) >= starts_sick.sum()
+    assert not np.any(expected.target[expected.source == 0] == model.states.index("sick"))
+    assert len(got.time) > 4 * len(ids) + 1 + 400 * 3  # more than the first buffers hold
