@@ -11,13 +11,16 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - event engines: the SimPy event engine's time over the vectorised event engine's on the
   same rate model, patients and seed (the same records), for Weibull hazards with
   covariates and memory, and for the same with attained age acting on the Weibull hazards
-  (a numerical root per draw);
+  (a numerical root per draw), after a first tiny run of each that loads the compiled code;
 - the cycle engine against numpy: the demo's patient-cycles per second as the main job
   simulates them (engine, aggregation, batches of simulation.batch_size), over the
   uniform numbers per second numpy's default generator fills in the same process;
 - exact against simulated PSA: time per draw of the demo's PSA on the exact basis over
   the simulated one at the same patients per draw, and the inner noise the exact basis
   removes (the simulated draw means' noise variance over the between-draw variance);
+- exact against simulated PSA on a rate model: the same ratio for a memoryless rate model
+  whose patients differ by a continuous marker on two transitions (every patient its own
+  generator: the exact basis costs matrix exponentials for each of them);
 - PSA workers: the same PSA's time on one worker process over its time on two;
 - memory: peak resident memory of the main job (no histories) in a fresh process at two
   population sizes; the growth per patient per strategy is the slope between them;
@@ -28,7 +31,6 @@ Targets (issue 8) are printed beside each figure with "met" or "missed".
 """
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 import tempfile
@@ -162,10 +164,96 @@ prevalence = 0.3
 """
 AGE_ON_WEIBULL = ', { attribute = "age", hazard_ratio = 1.03, centre = 60 }'
 
+# Constant rates (memoryless), and a marker that differs continuously between patients on
+# two transitions: the exact basis has a generator of its own for every patient.
+MARKER_RATE_MODEL = """
+title = "benchmark: a memoryless rate model with a continuous marker on two transitions"
+provenance = "All numbers are invented for benchmarking."
+[time]
+unit = "years"
+horizon = 30
+[start]
+shares = { well = 1.0 }
+[[states]]
+name = "well"
+cost = 500
+utility = 0.9
+[[states]]
+name = "ill"
+cost = "c_ill"
+utility = 0.6
+[[states]]
+name = "severe"
+cost = 9000
+utility = 0.4
+[[states]]
+name = "dead"
+absorbing = true
+[[transitions]]
+from = "well"
+to = "ill"
+name = "onset"
+rate = "r_onset"
+effects = [{ attribute = "marker", hazard_ratio = "hr_marker", centre = 1.0 }]
+[[transitions]]
+from = "ill"
+to = "severe"
+rate = "r_worse"
+effects = [{ attribute = "marker", hazard_ratio = "hr_marker", centre = 1.0 }]
+[[transitions]]
+from = "ill"
+to = "well"
+rate = 0.2
+[[transitions]]
+from = "well"
+to = "dead"
+rate = 0.01
+[[transitions]]
+from = "ill"
+to = "dead"
+rate = 0.03
+[[transitions]]
+from = "severe"
+to = "dead"
+rate = 0.15
+[parameters]
+r_onset = { value = 0.08, distribution = { family = "gamma", shape = 100, scale = 0.0008 } }
+r_worse = { value = 0.1, distribution = { family = "gamma", shape = 100, scale = 0.001 } }
+hr_marker = { value = 1.5, distribution = { family = "lognormal", meanlog = 0.405, sdlog = 0.05 } }
+c_ill = { value = 3000, distribution = { family = "gamma", shape = 100, scale = 30 } }
+hr_drug = { value = 0.7, distribution = { family = "lognormal", meanlog = -0.357, sdlog = 0.1 } }
+[outcomes]
+discount_costs = 0.035
+discount_effects = 0.035
+[population]
+patients = 5000
+[[population.attributes]]
+name = "marker"
+distribution = "lognormal"
+meanlog = 0.0
+sdlog = 0.4
+[[strategies]]
+name = "usual"
+comparator = true
+[[strategies]]
+name = "drug"
+  [[strategies.changes]]
+  transition = "onset"
+  hazard_ratio = "hr_drug"
+  [[strategies.changes]]
+  cost = 800
+[economics]
+threshold = 20000
+[simulation]
+seed = 5
+"""
+
 
 def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict:
     """Medians over interleaved repeats: the SimPy event engine's time over the vectorised
-    one's, both given the same model, multipliers, patient ids and seed in one batch."""
+    one's, both given the same model, multipliers, patient ids and seed in one batch, after
+    one warm-up run of each on a few patients (numba compiles the vectorised engine's loops,
+    or loads them from its cache, once per process)."""
     from microsim.engines.vectorised_events import simulate_events_vectorised
     from microsim.patients.population import draw_population
     from microsim.patients.treatment import patient_multipliers
@@ -174,6 +262,8 @@ def event_engines_ratio(patients: int, repeats: int, attained_age: bool) -> dict
     ids = np.arange(patients)
     mult = patient_multipliers(model, draw_population(model.scenario.population, 1, ids), 1)
     ratios, vectorised = [], []
+    for engine in (event_engine.simulate_events, simulate_events_vectorised):
+        engine(model, mult.take(ids[:10]), ids[:10], seed=1)
     for _ in range(repeats):
         started = time.perf_counter()
         h = event_engine.simulate_events(model, mult, ids, seed=1)
@@ -350,6 +440,23 @@ def psa_timings(draws: int, patients: int) -> dict:
 EQUAL_NOISE = 0.05  # the simulated draws' inner noise as a share of their spread
 
 
+def rate_psa_timings(draws: int, patients: int, repeats: int) -> dict:
+    """Medians over interleaved repeats: seconds of the PSA of MARKER_RATE_MODEL on the
+    simulated basis and on the exact one, with the same draws and patients per draw."""
+    from microsim.uncertainty.psa import parameter_uncertainty
+    scenario = parse_scenario(MARKER_RATE_MODEL)
+    seconds = {"simulated": [], "exact": []}
+    with tempfile.TemporaryDirectory() as folder:
+        for repeat in range(repeats):
+            for basis in seconds:
+                model = replace(scenario, uncertainty=replace(scenario.uncertainty, basis=basis))
+                started = time.perf_counter()
+                parameter_uncertainty(model, Path(folder) / f"{basis}{repeat}", draws=draws,
+                                      patients=patients, progress=False)
+                seconds[basis].append(time.perf_counter() - started)
+    return {basis: float(np.median(values)) for basis, values in seconds.items()}
+
+
 # The peak is the process's own high-water mark (VmHWM, reset by exec), not getrusage's
 # ru_maxrss, which Linux carries over from the parent through fork and exec.
 MEMORY_SCRIPT = """
@@ -419,6 +526,12 @@ def main(quick: bool = False) -> int:
               f"; for that noise to be {100 * EQUAL_NOISE:.0f}% a simulated draw needs about "
               f"{p['needed']:,.0f} patients, and the exact basis is then {p['equal']:.1f} x as "
               "fast (time taken as proportional to the patients per draw)"))
+    draws, per_draw = (2, 1000) if quick else (8, 5000)
+    r = rate_psa_timings(draws, per_draw, repeats=1 if quick else 3)
+    print(f"PSA of a memoryless rate model whose patients differ by a continuous marker, "
+          f"{draws} draws of {per_draw:,} patients: exact basis "
+          f"{r['simulated'] / r['exact']:.2f} x as fast as simulated ({r['exact']:.1f} s "
+          f"against {r['simulated']:.1f} s; a matrix exponential for every patient)")
     print(f"PSA with 2 workers: {p['one'] / p['two']:.2f} x as fast as with 1 (target >= 1.8: "
           f"{verdict(p['one'] / p['two'], 1.8)})")
     small, large = (20_000, 60_000) if quick else (100_000, 400_000)

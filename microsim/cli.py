@@ -235,20 +235,22 @@ def command_run(args) -> int:
 
 
 def make_report(folder: Path) -> Path:
-    """report.html (and figures/) in a run folder, whose manifest then lists them too."""
+    """report.html (and figures/) in a run folder, or fit.html again in a fit's; the
+    manifest then lists them too."""
     from microsim.report.builder import build_report
+    from microsim.report.fit_page import SUMMARY, rebuild_fit_page
     from microsim.store import add_to_manifest
-    report = build_report(folder)
+    report = rebuild_fit_page(folder) if (folder / SUMMARY).is_file() else build_report(folder)
     add_to_manifest(folder)
     return report
 
 
 def command_report(args) -> int:
-    """The HTML report of an existing run folder (a scenario's output folder means its
-    newest `run`)."""
+    """The HTML page of an existing run folder: report.html of a run, fit.html of a fit (an
+    output folder means its newest run, else its newest fit)."""
     from microsim.store import latest_run
     folder = Path(args.folder)
-    print(f"wrote {make_report(latest_run(folder, 'run') or folder)}")
+    print(f"wrote {make_report(latest_run(folder, 'run') or latest_run(folder, 'fit') or folder)}")
     return 0
 
 
@@ -348,6 +350,7 @@ def command_budget(args) -> int:
 def command_fit(args) -> int:
     """Fit every family to time-to-event data; write the chosen fit as a scenario, with its
     tables, figures and page."""
+    from microsim.fitting.data import parse_references
     from microsim.fitting.run import CHECK_PATIENTS, fit_and_write
     from microsim.report.fit_page import write_fit_page
     from microsim.scenario.spec import SimulationSpec
@@ -360,14 +363,15 @@ def command_fit(args) -> int:
         run = fit_and_write(path, args.time, args.event, covariates, args.entry, args.unit,
                             scratch, family=args.family, form=args.form, name=args.name,
                             horizon=args.horizon, patients=args.patients or CHECK_PATIENTS,
-                            seed=seed)
+                            seed=seed, references=parse_references(args.reference))
         print_fit(run)
-        block = run.files["fitted_block.toml"].read_text()
+        written = run.summary["files"]
+        block = run.files[written["block"]].read_text()
         page, figures = write_fit_page(scratch, run.tables, run.summary, block)
         folder = write(args, path, run.tables, started, documents={"fit_summary": run.summary},
                        files={**run.files, page.name: page, figures.name: figures},
                        data_file=True, seed=seed)
-    print(f"wrote {folder / 'fitted_scenario.toml'} and {folder / page.name}")
+    print(f"wrote {folder / written['scenario']} and {folder / page.name}")
     print(f"\n{CAUTION}")
     return 0
 
@@ -399,6 +403,12 @@ def print_fit(run) -> None:
              .rename_axis(None, axis=1).reset_index().rename(columns={"row": ""}))
     print("\nEstimates on the fit's scale with their standard errors (observed information) "
           "and 95% Wald intervals; natural: the value as the scenario reads it.")
+    for c in s["categorical"]:
+        print(f"\n{c['attribute']}: levels {', '.join(c['levels'])}; each level's coefficient "
+              f"against the reference level {c['reference']!r} (--reference to choose another)")
+    if run.data.age_at_entry:
+        print("\nThe column 'age' (fixed at entry) is written as the attribute 'age_at_entry': "
+              "a scenario's age is the attained age, which moves with time.")
     print(f"\nCheck: {s['check']['words']}.")
 
 
@@ -581,8 +591,12 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--event", required=True,
                      help="the column of events: 1 (the event at that time) or 0 (censored); "
                           "yes/no reads as 1/0")
-    fit.add_argument("--covariates", help="columns of numbers (yes/no reads as 1/0), "
-                     "comma-separated (A,B,...)")
+    fit.add_argument("--covariates", help="columns, comma-separated (A,B,...): numbers "
+                     "(yes/no reads as 1/0), or text, one coefficient per level against a "
+                     "reference level")
+    fit.add_argument("--reference", metavar="COL=LEVEL,...",
+                     help="the reference level of a text covariate (default: its first level "
+                          "in sorted order)")
     fit.add_argument("--entry", help="the column of entry times (delayed entry, in [0, time))")
     fit.add_argument("--unit", default="years", help="the unit of the times (default years)")
     fit.add_argument("--family", choices=("exponential", "weibull", "gompertz", "lognormal",
@@ -601,10 +615,13 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--out", default="outputs", help="output folder (default: outputs)")
     fit.set_defaults(function=command_fit)
     report = commands.add_parser(
-        "report", help="Write report.html for an existing run folder.",
+        "report", help="Write report.html for an existing run folder (fit.html for a fit's).",
         description="Write report.html (and figures/) for an existing run folder: the "
-                    "decision, the figures, the tables, the verdicts and the manifest.")
-    report.add_argument("folder", help="a folder `microsim run` wrote (e.g. outputs/<scenario>)")
+                    "decision, the figures, the tables, the verdicts and the manifest. For "
+                    "a folder `microsim fit` wrote, make its fit.html (and figures/) again "
+                    "from the fit's tables.")
+    report.add_argument("folder", help="a folder `microsim run` or `microsim fit` wrote (e.g. "
+                        "outputs/<scenario>, outputs/<data file>; its newest run, else fit)")
     report.set_defaults(function=command_report)
     bench = commands.add_parser("benchmark", help="Speed and variance ratios, measured in one run.")
     bench.add_argument("--quick", action="store_true", help="a shorter run")

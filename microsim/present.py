@@ -135,7 +135,7 @@ def print_summary(result: MainResult) -> None:
             rows = p.evppi[(p.evppi.threshold - s.economics.threshold).abs() == near.min()]
             show("Expected value of partial perfect information per patient (regression on "
                  "the PSA sample, Strong, Oakley & Brennan 2014; SE by wild bootstrap and "
-                 "over the draws)", rows.drop(columns=["method", "edf"]))
+                 "over the draws)", rows.drop(columns=["method", "edf", "edf_fits"]))
             for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):
                 print(f"  {group}: {method}")
         if p.variance is not None:

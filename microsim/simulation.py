@@ -69,6 +69,16 @@ def report_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
     return np.linspace(0.0, end, int(round(end / step)) + 1)
 
 
+def cycle_points_of(model: BoundModel, grid: np.ndarray) -> np.ndarray | slice | None:
+    """Which cycle points the grid's times are (their indices; a slice for all of them), or
+    None when some are not: states on a grid of cycle points are read off the cycle states,
+    not rebuilt."""
+    if np.array_equal(grid, model.times):
+        return slice(None)
+    index = np.minimum(np.searchsorted(model.times, grid), len(model.times) - 1)
+    return index if np.array_equal(model.times[index], grid) else None
+
+
 ENGINES = ("auto", "simpy", "vectorised")
 
 
@@ -146,6 +156,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     mult = patient_multipliers(model, patients, seed) if mult is None else mult.repeated(len(patients))
     engine = choose_engine(model, engine)
     ids = patients[PATIENT].to_numpy()
+    points = cycle_points_of(model, grid)
     # filled batch by batch: joining per-batch arrays at the end would copy them all again
     states = np.empty((len(ids), len(grid)), np.int8 if model.n_states < 128 else np.int16)
     values = {m: np.empty(len(ids)) for m in MEASURES}
@@ -158,10 +169,12 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         part = slice(lo, lo + batch_size)
         batch = mult.take(part)
         h = engine(model, batch, ids[part], seed)
-        on_points = h.cycle_states is not None and np.array_equal(grid, model.times)
-        states[part] = h.cycle_states if on_points else aggregate.grid_states(h, grid)
-        cycle_points = states[part] if model.discrete and np.array_equal(grid, model.times) else None
-        mine = aggregate.exposure(model, h, batch, cycle_points)
+        cycle_states = h.cycle_states
+        if cycle_states is None and model.discrete:
+            cycle_states = aggregate.grid_states(h, model.times)  # once, for both uses
+        states[part] = (cycle_states[:, points] if cycle_states is not None and points is not None
+                        else aggregate.grid_states(h, grid))
+        mine = aggregate.exposure(model, h, batch, cycle_states)
         for m, v in outcome_values(model, mine).items():
             values[m][part] = v
         treated[part] = mine.on_treatment[:, on_a_treatment, 0].sum(axis=1) > 0

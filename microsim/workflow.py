@@ -21,10 +21,10 @@ from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_
 from microsim.progress import progress
 from microsim.patients.population import (DEFAULT_PATIENTS, PATIENT, scenario_patients,
                                           subgroup_attributes)
-from microsim.results.comparison import Comparison, ComparisonSums
+from microsim.results.comparison import Comparison, ComparisonSums, comparison_grid
 from microsim.scenario import Scenario, ScenarioError, read_scenario
 from microsim.scenario.fields import did_you_mean
-from microsim.simulation import HistoryFile, choose_engine, report_grid, simulate
+from microsim.simulation import HistoryFile, choose_engine, simulate
 from microsim.uncertainty.psa import PsaResult, parameter_uncertainty
 
 
@@ -55,7 +55,7 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
     chosen = strategies if strategies is not None else (strategy_names(scenario) or [None])
     models = {name or AS_WRITTEN: bind(scenario, strategy=name) for name in chosen}
     limit = None if compare_all else scenario.simulation.validation_patients
-    sums = {label: ComparisonSums(model, report_grid(model, scenario.simulation.grid), limit)
+    sums = {label: ComparisonSums(model, comparison_grid(model, scenario.simulation.grid), limit)
             for label, model in models.items()}
     outcomes, people, treated = [], [], Counter()
     batch = scenario.simulation.batch_size

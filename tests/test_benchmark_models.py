@@ -12,4 +12,5 @@ def test_the_benchmark_models_are_valid_scenarios():
     parse_scenario(benchmark.BENCH_MODEL)
     for age in ("", benchmark.AGE_ON_WEIBULL):
         parse_scenario(benchmark.RATE_BENCH_MODEL.replace("AGE_ON_WEIBULL", age))
+    assert parse_scenario(benchmark.MARKER_RATE_MODEL).strategies
     assert read_scenario(SCENARIOS / benchmark.DEMO).strategies  # the demo it measures

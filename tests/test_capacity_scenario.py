@@ -153,6 +153,8 @@ CASES = [
     ("capacity parameter not whole", "service",
      [("capacity = 3", 'capacity = "n_chairs"'), ("chair_cost = 80", "chair_cost = 80\nn_chairs = 3.5")],
      "parameters.n_chairs.value", "whole number of units"),
+    ("estimate misspelt", "service", [("warm_up = 30", 'warm_up = "estimat"')],
+     "replications.warm_up", 'or "estimate", got \'estimat\' (did you mean \'estimate\'?)'),
     ("undefined capacity cost", "service", [('cost = "chair_cost"', 'cost = "chair_cots"')],
      "resources.chairs.cost", "no parameter named 'chair_cots' (did you mean 'chair_cost'?)"),
     ("negative capacity cost", "service", [('cost = "chair_cost"', "cost = -5")],

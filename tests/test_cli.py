@@ -276,6 +276,8 @@ COMMAND_LINES = {  # argv after the command name, the start of the one line on s
                        "`microsim run --help`"),
     "unknown-choice": (["validate", WARD, "--engine", "fast"],
                        "error: --engine: no 'fast'; choose from auto, simpy, vectorised"),
+    "measure-typo": (["sensitivity", WARD, "--measure", "nmbb"],
+                     "error: --measure: no measure 'nmbb' (did you mean 'nmb'?); choose one of"),
     "command-typo": (["runn", WARD], "error: COMMAND: no 'runn' (did you mean 'run'?); choose from"),
     "missing-scenario": (["run"], "error: scenario: missing; see `microsim run --help`"),
     "unknown-command": (["frobnicate", WARD], "error: COMMAND: no 'frobnicate'; choose from check"),

@@ -196,6 +196,14 @@ def test_parametric_hazard_from_time_zero_matches_survival(family, clock):
     np.testing.assert_allclose(result.trace[0, :, 1], second, rtol=0, atol=1e-7)
 
 
+def test_forward_equations_on_a_grid_that_does_not_start_at_0_start_at_time_0():
+    # edge: the grid [3, 12] still starts every patient at time 0 (same reference)
+    text, cumulative, _ = WEIBULL
+    result = analytic(model_of(varying_model(text, "since_start")), times=np.array([3.0, 12.0]))
+    survival = [math.exp(-cumulative(t) - 0.05 * t) for t in (3.0, 12.0)]
+    np.testing.assert_allclose(result.trace[0, :, 0], survival, rtol=0, atol=1e-7)
+
+
 @pytest.mark.parametrize("family", [
     (dict(family="weibull", shape=0.7, scale=4), lambda t: (t / 4.0) ** 0.7),
     (dict(family="loglogistic", shape=0.8, scale=4), lambda t: math.log1p((t / 4.0) ** 0.8)),
@@ -423,6 +431,92 @@ def test_yes_no_hazard_ratio_per_patient_matches_expm():
                       [0.0, -0.3 * hr_dead, 0.3 * hr_dead], [0.0, 0.0, 0.0]])
         expected = np.array([[1.0, 0.0, 0.0] @ expm(Q * t) for t in times])
         np.testing.assert_allclose(result.trace[b], expected, rtol=0, atol=1e-8)
+
+
+# a continuous marker on two transitions: every patient has a generator of their own
+MARKER_MODEL = scenario_text(
+    horizon(12), start(well=1), outcomes(discount_costs=0.035, discount_effects=0.05),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    rate("well", "sick", 0.1, effects=[effect("marker", 1.8, centre=1.0)]),
+    rate("well", "dead", 0.02), rate("sick", "well", 0.05),
+    rate("sick", "dead", 0.3, effects=[effect("marker", 1.5, centre=1.0)]),
+    population(300, attribute("marker", "lognormal", meanlog=0.0, sdlog=0.6)))
+
+
+def van_loan_by_scipy(Q: np.ndarray, delta: float, T: float) -> tuple[np.ndarray, np.ndarray]:
+    """exp(Q T) and integral_0^T exp((Q - delta I) s) ds, one scipy.linalg.expm of Van
+    Loan's block matrix over the whole horizon (Van Loan 1978)."""
+    E = len(Q)
+    block = np.zeros((2 * E, 2 * E))
+    block[:E, :E], block[:E, E:] = Q - delta * np.eye(E), np.eye(E)
+    return expm(Q * T), expm(block * T)[:E, E:]
+
+
+def test_continuous_hazard_ratios_per_patient_match_expm_patient_by_patient():
+    # proportional hazards (Cox 1972) with HR^(x - centre) per patient; reference:
+    # scipy.linalg.expm of each patient's own generator and Van Loan block, one patient at
+    # a time over the whole horizon (where the exact path steps along the grid, all
+    # patients together)
+    model = model_of(MARKER_MODEL)
+    people = draw_population(model.scenario.population, 5)
+    assert people.marker.nunique() == len(people)
+    result = analytic(model, patients=people)
+    deltas = np.log1p([0.0, 0.035, 0.05])
+    to_death = model.risk_names.index("sick->dead")
+    for b, x in enumerate(people.marker):
+        onset, death = 0.1 * 1.8 ** (x - 1.0), 0.3 * 1.5 ** (x - 1.0)
+        Q = np.array([[-(onset + 0.02), onset, 0.02], [0.05, -(0.05 + death), death],
+                      [0.0, 0.0, 0.0]])
+        for w, delta in enumerate(deltas):
+            moved, time_in = van_loan_by_scipy(Q, delta, 12.0)
+            occupancy = np.array([1.0, 0.0, 0.0]) @ time_in
+            np.testing.assert_allclose(result.exposure.occupancy[b, :, w], occupancy, rtol=1e-10)
+            # expected occurrences: the time in the source state times the rate
+            np.testing.assert_allclose(result.exposure.occurrences[b, to_death, w],
+                                       occupancy[1] * death, rtol=1e-10)
+        np.testing.assert_allclose(result.trace[b, -1], moved[0], rtol=1e-10, atol=1e-15)
+
+
+def test_patients_get_the_same_numbers_in_chunks_of_any_size(monkeypatch):
+    # memory is bounded by marching a few rows at a time; no row depends on the others
+    from microsim.cohort import exponentials
+    model = model_of(MARKER_MODEL)
+    people = draw_population(model.scenario.population, 5)
+    whole = analytic(model, patients=people)
+    monkeypatch.setattr(exponentials, "CHUNK", 7)
+    chunked = analytic(model, patients=people)
+    np.testing.assert_array_equal(chunked.trace, whole.trace)
+    np.testing.assert_array_equal(chunked.exposure.occupancy, whole.exposure.occupancy)
+    np.testing.assert_array_equal(chunked.exposure.occurrences, whole.exposure.occurrences)
+
+
+def test_rate_trace_on_a_grid_that_does_not_start_at_0_is_still_from_time_0():
+    # edge: the grid [3, 12] (or a single time) still starts every patient at time 0;
+    # reference: scipy.linalg.expm, pi(t) = pi(0) exp(Q t)
+    model = model_of(RATE_MODEL)
+    for times in ([3.0, 10.0], [4.5]):
+        result = analytic(model, times=np.array(times))
+        expected = np.array([RATE_START @ expm(RATE_Q * t) for t in times])
+        np.testing.assert_allclose(result.trace[0], expected, rtol=0, atol=1e-12)
+
+
+def test_continuous_hazard_ratio_on_one_exit_gives_the_closed_form_life_expectancy():
+    # one exit at rate r m, m = HR^(x - centre): the discounted time alive to the horizon
+    # is (1 - exp(-(r m + delta) H)) / (r m + delta) (common practice), per patient
+    text = scenario_text(
+        horizon(40), start(well=1), outcomes(discount_effects=0.035),
+        state("well"), state("dead", absorbing=True),
+        rate("well", "dead", 0.04, effects=[effect("marker", 2.0, centre=1.0)]),
+        population(200, attribute("marker", "uniform", lower=0.0, upper=6.0)))
+    model = model_of(text)
+    people = draw_population(model.scenario.population, 9)
+    result = analytic(model, patients=people)
+    rates = 0.04 * 2.0 ** (people.marker.to_numpy() - 1.0)  # 0.02 to 1.28 a year
+    for w, delta in enumerate(np.log1p([0.0, 0.0, 0.035])):
+        alive = -np.expm1(-(rates + delta) * 40.0) / (rates + delta)
+        np.testing.assert_allclose(result.exposure.occupancy[:, 0, w], alive, rtol=1e-12)
+        np.testing.assert_allclose(result.exposure.occurrences[:, 0, w], rates * alive,
+                                   rtol=1e-12)
 
 
 def test_continuous_attribute_on_probability_rate_scale():

@@ -11,12 +11,14 @@ from microsim.cohort import analytic as analytic_module
 from microsim.cohort.analytic import analytic, cleaned
 from microsim.patients.multipliers import Window, average_patient
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import EXACT, compare, share_p_values
+from microsim.results.comparison import (EXACT, ComparisonSums, compare, comparison_grid,
+                                         share_p_values)
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.results.outcomes import outcome_values
 from microsim.simulation import simulate
-from support import (attribute, effect, horizon, model_of, population, rate, scenario_text,
-                     section, start, state, strategy, transition)
+from microsim.workflow import run_population
+from support import (attribute, effect, horizon, model_of, population, probability, rate,
+                     scenario_text, section, start, state, strategy, transition)
 
 # Two states and no way out of the model: everyone is alive at every time, so life years
 # equal the horizon for every patient (no Monte-Carlo error), while the trace comes from
@@ -41,6 +43,34 @@ def test_an_outcome_equal_for_every_patient_agrees_within_round_off():
     assert "without Monte-Carlo error agree within numerical error" in result.verdict
     # the other outcomes vary between patients and are tested as usual
     assert (result.outcomes.set_index("measure").drop("life_years").test != EXACT).all()
+
+
+# Patients leave 'start' for 'b' or 'c' at a rate that differs by age, and 'b' and 'c'
+# cost and weigh the same: every outcome is the same for every patient, but each patient's
+# analytic value mixes the two by its own shares, with round-off of about 1e-16.
+SAME_OUTCOMES = scenario_text(
+    horizon(7), start(age=60, first=1),
+    state("first", utility=0.8, cost=120.3), state("b", utility=0.61, cost=77.7),
+    state("c", utility=0.61, cost=77.7),
+    transition("first", "b", probability=0.3, effects=[effect("age", 1.01)]),
+    transition("first", "c", probability="remainder"),
+    transition("b", "b", probability=1), transition("c", "c", probability=1),
+    population(3000, attribute("age", "normal", mean=60, sd=5)))
+
+
+def test_a_standard_error_of_round_off_is_shown_as_0_and_a_real_one_is_kept():
+    sim = simulate(model_of(SAME_OUTCOMES), draw_population(
+        parse_scenario(SAME_OUTCOMES).population, 4, np.arange(3000)), 4)
+    sums = ComparisonSums(sim.model, sim.grid)
+    sums.add(sim)
+    raw = {m: moments.se for m, moments in sums.deviations.items()}
+    assert 0 < max(raw.values()) < 1e-12  # round-off, not Monte-Carlo error (measured)
+    outcomes = sums.finish().outcomes
+    assert (outcomes.test == EXACT).all() and (outcomes.se == 0.0).all()
+    # where patients differ, the standard error stays what the patients give
+    kept = compare(simulate(model_of(NEVER_ABSORBED), cohort_patients(500), 3)).outcomes
+    varied = kept[kept.test != EXACT]
+    assert len(varied) == 4 and (varied.se > 0).all()
 
 
 def test_a_wrong_deterministic_outcome_still_disagrees():
@@ -260,3 +290,56 @@ def test_a_discounted_lifetime_rate_model_is_not_refused_for_drift():
     assert trace.min() >= 0.0 and np.allclose(trace.sum(axis=2), 1.0, atol=1e-7)
     result = compare(simulate(model, cohort_patients(1000), 4))
     assert result.agrees is True, result.verdict
+
+
+def long_model(cycles: int, *, unit_rate: bool = False, grid=None):
+    """well -> sick -> dead over `cycles` cycles of a day (per-cycle probabilities, or rates)."""
+    move = rate if unit_rate else probability
+    return model_of(scenario_text(
+        horizon(cycles, unit="days"), start(well=1), state("well", utility=1),
+        state("sick", utility=0.5), state("dead", absorbing=True),
+        move("well", "sick", 0.002), move("sick", "dead", 0.003),
+        *([] if unit_rate else [probability("well", "well", "remainder"),
+                                probability("sick", "sick", "remainder")]),
+        *([] if grid is None else [section("simulation", grid=grid)])))
+
+
+def test_a_long_horizon_is_compared_on_at_most_500_steps_and_the_end():
+    # every k-th cycle point, k the fewest that leaves at most 500 steps, and the end
+    # (reference: numpy.arange / linspace); up to 500 cycles, every cycle point
+    np.testing.assert_array_equal(comparison_grid(long_model(20000)),
+                                  np.linspace(0, 20000, 501))
+    np.testing.assert_array_equal(comparison_grid(long_model(1001)),
+                                  np.append(np.arange(0, 1000, 3.0), 1001))
+    np.testing.assert_array_equal(comparison_grid(long_model(500)), np.arange(501.0))
+    np.testing.assert_array_equal(comparison_grid(long_model(20000, unit_rate=True)),
+                                  np.linspace(0, 20000, 501))
+    given = long_model(20000, unit_rate=True, grid=10)  # a grid the scenario gives is kept
+    np.testing.assert_array_equal(comparison_grid(given, 10.0), np.linspace(0, 20000, 2001))
+
+
+def test_the_thinned_grid_compares_the_shares_of_the_full_one_and_counts_what_it_compares():
+    model = long_model(1001)
+    patients = cohort_patients(400)
+    grid = comparison_grid(model)
+    thinned = compare(simulate(model, patients, 5, grid=grid))
+    full = simulate(model, patients, 5)  # every cycle point, the same patients and draws
+    trace = analytic(model).trace[0]
+    at = np.searchsorted(model.times, grid)
+    shares = thinned.shares.pivot(index="time", columns="state", values="simulated")
+    for s, name in enumerate(model.states):
+        np.testing.assert_array_equal(shares[name], (full.states[:, at] == s).mean(axis=0))
+    expected = thinned.shares.pivot(index="time", columns="state", values="analytic")
+    np.testing.assert_allclose(expected[list(model.states)], trace[at], rtol=0, atol=1e-15)
+    n = len(grid) * model.n_states + len(thinned.outcomes)  # Bonferroni over what is compared
+    assert f"Bonferroni over {n} comparisons" in thinned.verdict and thinned.agrees
+    assert thinned.level == pytest.approx(0.001 / n)
+    # outcomes are the whole horizon's, whatever the grid
+    np.testing.assert_allclose(thinned.outcomes.simulated, compare(full).outcomes.simulated,
+                               rtol=1e-12)
+
+
+def test_a_run_compares_a_long_horizon_on_the_thinned_grid():
+    model = long_model(1001)
+    [check] = run_population(model.scenario, 50, 3).validations.values()
+    np.testing.assert_array_equal(np.unique(check.shares.time), comparison_grid(model))

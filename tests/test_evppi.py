@@ -103,6 +103,29 @@ def test_evpi_bounds_evppi_and_every_parameter_together_is_the_evpi():
     assert table[table.group == "t1"].method.iloc[0].startswith("a cubic spline")
 
 
+def test_edf_is_a_number_between_the_null_space_and_the_basis():
+    # tr A of a penalised least-squares fit lies between the dimension of the penalty's
+    # null space (2^d: lines and their products, never penalised) and the number of
+    # coefficients (Wood 2006, "Generalized additive models: an introduction with R", from
+    # memory); the table's edf is the largest of the group's fits, each named in edf_fits
+    theta, effect, cost = psa_sample(seed=11, noise=300.0)
+    draws = pd.DataFrame({"draw": np.repeat(np.arange(N_DRAWS), 2),
+                          "strategy": np.tile(["usual", "new"], N_DRAWS),
+                          "costs_discounted": np.column_stack([np.zeros(N_DRAWS), cost]).ravel(),
+                          "qalys_discounted": np.column_stack([np.zeros(N_DRAWS), effect]).ravel()})
+    parameters = pd.DataFrame({"draw": np.arange(N_DRAWS), "t1": theta[:, 0], "t2": theta[:, 1]})
+    table = evppi_table(parameters, draws, [("t1",), ("t1", "t2")], THRESHOLDS, "usual", seed=5)
+    assert table.edf.dtype == np.float64
+    for group, columns in [("t1", [0]), ("t1 + t2", [0, 1])]:
+        rows = table[table.group == group]
+        fits = partial_value(theta[:, columns], effect, cost, THRESHOLDS, seed=5).edf
+        assert len(fits) == 2  # the incremental QALYs' and costs' fits of one strategy
+        np.testing.assert_array_equal(rows.edf, max(fits))
+        assert rows.edf_fits.iloc[0] == f"new: QALYs {fits[0]:.3g}, costs {fits[1]:.3g}"
+        coefficients = Smoother(theta[:, columns]).design.shape[1]
+        assert all(2 ** len(columns) - 1e-6 <= f <= coefficients + 1e-6 for f in fits), fits
+
+
 def test_noise_inflates_evpi_from_the_draws_but_not_evppi():
     # with inner noise, the EVPI from the draws overstates the closed form; EVPPI of every
     # parameter by regression does not (within its error)

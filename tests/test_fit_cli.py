@@ -8,6 +8,7 @@ import hashlib
 import io
 import json
 import re
+import shutil
 
 import numpy as np
 import pandas as pd
@@ -46,17 +47,23 @@ def test_the_run_folder_holds_the_fit_the_scenario_and_its_page(rossi, tmp_path,
     for name in ("fit_models", "fit_parameters", "fit_covariance", "kaplan_meier",
                  "fit_curves", "fit_check"):
         assert name + ".csv" in manifest["files"] and name + ".parquet" in manifest["files"]
-    for name in ("fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv", "fit.html",
-                 "fit_summary.json", "figures/fit_survival.svg", "figures/fit_hazards.png",
-                 "figures/fit_check.svg"):
-        assert name in manifest["files"], name
-    scenario = read_scenario(folder / "fitted_scenario.toml")  # a scenario that reads as it is
     summary = json.loads((folder / "fit_summary.json").read_text())
+    base = f"rossi_{summary['chosen']['family']}_{summary['chosen']['form']}"
+    assert summary["files"] == {"scenario": f"{base}.toml", "block": f"{base}_block.toml",
+                                "patients": f"{base}_patients.csv"}
+    for name in (*summary["files"].values(), "fit.html", "fit_summary.json",
+                 "figures/fit_survival.svg", "figures/fit_hazards.png", "figures/fit_check.svg"):
+        assert name in manifest["files"], name
+    scenario = read_scenario(folder / f"{base}.toml")  # a scenario that reads as it is
     assert summary["chosen"]["label"] in scenario.provenance
-    assert manifest["data_sha256"] in (folder / "fitted_block.toml").read_text()
+    assert manifest["data_sha256"] in (folder / f"{base}_block.toml").read_text()
     models = pd.read_csv(folder / "fit_models.csv")
     assert len(models) == 9 and models.chosen.sum() == 1  # 6 families, 3 of them in two forms
-    assert main(["check", str(folder / "fitted_scenario.toml")]) == 0
+    assert main(["check", str(folder / f"{base}.toml")]) == 0
+    # its runs go under the scenario's own name (<out>/<scenario>/), the data's and the fit's
+    assert main(["validate", str(folder / f"{base}.toml"), "--patients", "50",
+                 "--out", str(tmp_path / "runs")]) == 0
+    assert [p.name for p in (tmp_path / "runs").iterdir()] == [base]
 
 
 def test_the_page_is_self_contained_and_shows_the_tables(rossi, tmp_path, capsys):
@@ -112,11 +119,44 @@ def test_the_page_renders_in_chromium(rossi, tmp_path, browser, capsys):
         assert value in element.text
 
 
+def pages(folder):
+    """fit.html and every figure's bytes."""
+    return {p.relative_to(folder).as_posix(): p.read_bytes()
+            for p in [folder / "fit.html", *(folder / "figures").iterdir()]}
+
+
+def test_report_makes_the_page_of_a_fit_again(rossi, tmp_path, capsys):
+    # the page made again from the run folder's tables is the page the fit made (byte for
+    # byte: figures carry no dates), and the manifest hashes it (hashlib.sha256)
+    assert fit(rossi, tmp_path, "--covariates", "fin", "--family", "weibull") == 0
+    folder = (tmp_path / "rossi" / "latest").resolve()
+    made = pages(folder)
+    (folder / "fit.html").unlink()
+    shutil.rmtree(folder / "figures")
+    assert main(["report", str(tmp_path / "rossi")]) == 0
+    assert pages(folder) == made
+    files = json.loads((folder / "manifest.json").read_text())["files"]
+    assert files["fit.html"] == hashlib.sha256(made["fit.html"]).hexdigest()
+    # a fit folder written before its files were named after the data file
+    summary = json.loads((folder / "fit_summary.json").read_text())
+    for name, old in (("block", "fitted_block.toml"), ("scenario", "fitted_scenario.toml"),
+                      ("patients", "fit_patients.csv")):
+        (folder / summary["files"][name]).rename(folder / old)
+    del summary["files"]
+    (folder / "fit_summary.json").write_text(json.dumps(summary))
+    assert main(["report", str(folder)]) == 0
+    assert "fitted_block.toml" in (folder / "fit.html").read_text()
+    (folder / "fitted_block.toml").unlink()
+    assert main(["report", str(folder)]) == EXIT_BAD_INPUT
+    assert "the fit's run folder has no fitted_block.toml" in capsys.readouterr().err
+
+
 def test_a_fit_without_covariates_writes_a_cohort_scenario(rossi, tmp_path, capsys):
     assert fit(rossi, tmp_path, "--family", "gompertz", "--name", "rearrest") == 0
     folder = (tmp_path / "rossi" / "latest").resolve()
-    scenario = read_scenario(folder / "fitted_scenario.toml")
-    assert scenario.population is None and not (folder / "fit_patients.csv").exists()
+    scenario = read_scenario(folder / "rossi_gompertz.toml")
+    assert scenario.population is None and not list(folder.glob("*_patients.csv"))
+    assert json.loads((folder / "fit_summary.json").read_text())["files"]["patients"] is None
     assert scenario.transitions[0].name == "rearrest"
     assert set(scenario.parameters) == {"rearrest_rate", "rearrest_shape"}
 
@@ -135,11 +175,23 @@ REFUSALS = [  # (rows of the data file, options, the option named, what the mess
     ("time,event\n1,died\n2,alive\n", (), "--event", "holds text (alive, died)"),
     ("time,event,start\n1,1,0\n2,0,2\n", ("--entry", "start"), "--entry",
      "below the time in column 'time'"),
-    ("time,event,x\n1,1,a\n2,0,b\n", ("--covariates", "x"), "--covariates", "holds text"),
+    ("time,event,x\n1,1,a\n2,0,a\n", ("--covariates", "x"), "--covariates",
+     "takes the one value 'a'"),
+    ("time,event,x\n" + "".join(f"{i + 1},{i % 2},p{i}\n" for i in range(21)),
+     ("--covariates", "x"), "--covariates", "text of 21 levels (at most 20"),
+    ("time,event,x\n1,1,a\n2,0,b\n", ("--covariates", "x", "--reference", "x=B"),
+     "--reference", "'B' is not a level of column 'x' (levels: a, b) (did you mean 'b'?)"),
+    ("time,event,x,y\n1,1,a,0\n2,0,b,1\n", ("--covariates", "x,y", "--reference", "y=0"),
+     "--reference", "column 'y' is not a categorical covariate"),
+    ("time,event,x\n1,1,a\n2,0,b\n", ("--covariates", "x", "--reference", "x"), "--reference",
+     "'x' is not COLUMN=LEVEL"),
+    ("time,event,x,x_b\n1,1,a,0\n2,0,b,1\n", ("--covariates", "x,x_b"), "--covariates",
+     "'x_b' names both level 'b' of column 'x' and column 'x_b'"),
     ("time,event,x\n1,1,3\n2,0,3\n", ("--covariates", "x"), "--covariates",
      "takes the one value 3"),
-    ("time,event,age\n1,1,50\n2,0,60\n", ("--covariates", "age"), "--covariates",
-     "attained age"),
+    ("time,event,age,age_at_entry\n1,1,50,50\n2,0,60,61\n",
+     ("--covariates", "age,age_at_entry"), "--covariates",
+     "columns 'age' and 'age_at_entry' would both be the attribute 'age_at_entry'"),
     ("time,event,Sex\n1,1,0\n2,0,1\n", ("--covariates", "Sex"), "--covariates",
      "cannot name an attribute"),
     ("time,event\n1,1\n2,0\n", ("--covariates", "fin,prio"), "--covariates", "no column 'fin'"),
@@ -185,7 +237,7 @@ def test_a_parquet_file_reads_as_its_csv_does_and_fits(rossi, tmp_path, capsys):
     for name in ("time", "event", "entry", "values"):
         assert np.array_equal(getattr(csv_data, name), getattr(parquet_data, name)), name
     assert fit(parquet, tmp_path / "out", "--family", "weibull") == 0
-    assert (tmp_path / "out" / "rossi" / "latest" / "fitted_scenario.toml").is_file()
+    assert (tmp_path / "out" / "rossi" / "latest" / "rossi_weibull.toml").is_file()
 
 
 def test_yes_no_columns_read_as_one_and_zero(tmp_path):

@@ -27,16 +27,18 @@ from functools import lru_cache
 
 import autograd.numpy as anp
 import numpy as np
+import pandas as pd
 import pytest
 from lifelines import (ExponentialFitter, GeneralizedGammaFitter,
                        GeneralizedGammaRegressionFitter, KaplanMeierFitter, LogLogisticAFTFitter,
                        LogLogisticFitter, LogNormalAFTFitter, LogNormalFitter, WeibullAFTFitter,
                        WeibullFitter)
-from lifelines.datasets import load_rossi, load_waltons
+from lifelines.datasets import load_gbsg2, load_rossi, load_waltons
 from lifelines.fitters import ParametricRegressionFitter, ParametricUnivariateFitter
 
 from microsim.fitting.data import read_survival_data
 from microsim.fitting.estimate import fit_all
+from microsim.fitting.families import BY_NAME
 from microsim.fitting.kaplan_meier import kaplan_meier
 from microsim.fitting.likelihood import log_likelihood
 
@@ -281,6 +283,49 @@ def test_generalised_gamma_regression_equals_lifelines_and_scipy_curvature(folde
     curvature = differentiate.hessian(negative, fit.estimate, initial_step=0.05, order=4,
                                       maxiter=3).ddf
     np.testing.assert_allclose(fit.se, np.sqrt(np.diag(np.linalg.inv(curvature))), rtol=1e-4)
+
+
+# --- text covariates ------------------------------------------------------------------------
+
+GBSG2 = ("age", "tgrade", "menostat")  # numbers, text of levels I, II, III, text Post, Pre
+
+
+@lru_cache(maxsize=None)
+def gbsg2_fits(tmp: str, references: tuple[tuple[str, str], ...] = ()):
+    """The German breast cancer data of lifelines.datasets (load_gbsg2: 686 patients, days
+    to recurrence, 299 events) and our exponential and Weibull fits of it."""
+    path = f"{tmp}/gbsg2.csv"
+    load_gbsg2().to_csv(path, index=False)
+    data = read_survival_data(path, "time", "cens", GBSG2, references=dict(references))
+    return data, {f.key: f for f in fit_all(data, (BY_NAME["exponential"], BY_NAME["weibull"]))}
+
+
+def by_hand(references: dict[str, str]):
+    """The same data with indicators made by hand (pandas.get_dummies, the reference level's
+    column dropped) and `age` renamed as the written scenario names it."""
+    frame = load_gbsg2()
+    columns = [frame[["time", "cens", "age"]].rename(columns={"age": "age_at_entry"})]
+    for name in ("tgrade", "menostat"):
+        dummies = pd.get_dummies(frame[name], prefix=name, dtype=float)
+        reference = references.get(name, sorted(frame[name].unique())[0])
+        columns.append(dummies.drop(columns=f"{name}_{reference}"))
+    return pd.concat(columns, axis=1).rename(columns=str.lower)
+
+
+@pytest.mark.parametrize("references", [(), (("tgrade", "III"), ("menostat", "Pre"))],
+                         ids=["first-levels", "given-levels"])
+def test_text_covariates_equal_lifelines_with_indicators_made_by_hand(folder, references):
+    data, fits = gbsg2_fits(folder, references)
+    manual = by_hand(dict(references))
+    assert sorted(data.covariates) == sorted(c for c in manual if c not in ("time", "cens"))
+    np.testing.assert_array_equal(data.values, manual[list(data.covariates)].to_numpy())
+    fit = fits[("weibull", "aft")]
+    reference = quiet(WeibullAFTFitter(), manual, "time", "cens")
+    assert_same_fit(reference, fit, regression_pairs(fit, "lambda_", 1, "rho_", 0))
+    fit = fits[("exponential", "ph")]
+    reference = quiet(ExponentialPH(), manual, "time", "cens",
+                      regressors={"log_rate_": " + ".join(data.covariates)})
+    assert_same_fit(reference, fit, regression_pairs(fit, "log_rate_", 0))
 
 
 # --- Kaplan-Meier -------------------------------------------------------------------------

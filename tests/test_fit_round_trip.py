@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import math
 import re
+from dataclasses import replace
 from functools import lru_cache
 from pathlib import Path
 
@@ -21,10 +22,11 @@ from microsim.fitting.check import simulated_check
 from microsim.fitting.data import read_survival_data
 from microsim.fitting.estimate import fit_all
 from microsim.fitting.families import AFT, BY_NAME, PH
-from microsim.fitting.run import fit_and_write
-from microsim.scenario import read_scenario
+from microsim.fitting.run import fit_and_write, output_names
+from microsim.scenario import parse_scenario, read_scenario
 from microsim.uncertainty.draw_checks import check_draws
 from microsim.uncertainty.draws import ParameterSampler
+import support
 from support import Z
 
 COVARIATES = ("fin", "prio")
@@ -46,8 +48,9 @@ def fitted(tmp_path_factory):
 
 def written(tmp_path, fit, data, horizon=150.0, seed=3):
     path = tmp_path / "fitted_scenario.toml"
-    path.write_text(scenario_text.scenario(fit, data, "rearrest", "weeks", horizon, seed))
-    data.frame().to_csv(tmp_path / scenario_text.PATIENTS_FILE, index=False)
+    path.write_text(scenario_text.scenario(fit, data, "rearrest", "weeks", horizon, seed,
+                                           "fit_patients.csv"))
+    data.frame().to_csv(tmp_path / "fit_patients.csv", index=False)
     return path
 
 
@@ -118,15 +121,30 @@ def test_fit_and_write_keeps_what_the_command_writes(tmp_path):
                         family="lognormal", patients=1500, seed=4)
     assert run.chosen.key == ("lognormal", AFT)
     assert run.summary["check"]["agrees"]
-    assert set(run.files) == {"fitted_scenario.toml", "fitted_block.toml", "fit_patients.csv"}
-    block = run.files["fitted_block.toml"].read_text()
+    # named after the data file and the fit, so that two fits' files never share a name
+    names = {"scenario": "rossi_lognormal_aft.toml", "block": "rossi_lognormal_aft_block.toml",
+             "patients": "rossi_lognormal_aft_patients.csv"}
+    assert run.summary["files"] == names and set(run.files) == set(names.values())
+    block = run.files[names["block"]].read_text()
     assert run.data.sha256 in block and "log-normal" in block
     assert re.search(r"by `microsim fit` on \d{4}-\d{2}-\d{2} from rossi.csv", block)  # dated
-    assert block in run.files["fitted_scenario.toml"].read_text()  # the scenario read back
+    scenario = run.files[names["scenario"]].read_text()
+    assert block in scenario and 'file = "rossi_lognormal_aft_patients.csv"' in scenario
     # the block alone is TOML of the scenario's keys: the transition, parameters, the group
     assert "[[transitions]]" in block and "[[uncertainty.multivariate_normal]]" in block
     models = run.tables["fit_models"]
     assert models.chosen.sum() == 1 and models.loc[models.chosen, "family"].item() == "lognormal"
+
+
+def test_the_written_files_are_named_after_the_data_file_and_the_fit(fitted):
+    # two fits never share a scenario's name, so their runs never share a folder: another
+    # data file, another family, another form each give another name
+    data, fits = fitted
+    names = {output_names(d, fits[key])["scenario"] for d, key in [
+        (data, ("weibull", PH)), (replace(data, path=Path("trial.csv")), ("weibull", PH)),
+        (data, ("lognormal", AFT)), (data, ("weibull", AFT))]}
+    assert names == {"rossi_weibull_ph.toml", "trial_weibull_ph.toml",
+                     "rossi_lognormal_aft.toml", "rossi_weibull_aft.toml"}
 
 
 # --- known parameters recovered ------------------------------------------------------------
@@ -293,3 +311,41 @@ def test_nested_families_fit_at_least_as_well_on_data_in_days(tmp_path):
     gamma = fits[("generalised_gamma", AFT)].log_likelihood
     for smaller in ("weibull", "lognormal"):
         assert gamma >= fits[(smaller, AFT)].log_likelihood - slack, smaller
+
+
+def test_text_covariates_are_written_as_level_effects_that_simulate_the_fit(tmp_path):
+    # the German breast cancer data (lifelines.datasets, load_gbsg2) with its text columns
+    # tgrade (I, II, III) and menostat (Post, Pre) and its age at entry: the scenario's
+    # effects at each level, against the reference level, must reproduce the fitted
+    # survival when simulated (|z| < 4, binomial SE), and the commented attributes must
+    # read as categorical attributes with the shares of the data (pandas value_counts)
+    frame = load_gbsg2()
+    path = tmp_path / "gbsg2.csv"
+    frame.to_csv(path, index=False)
+    run = fit_and_write(path, "time", "cens", ("tgrade", "menostat", "age"), None, "days",
+                        tmp_path, family="weibull", form="ph", patients=3000, seed=5,
+                        references={"tgrade": "II"})
+    assert run.summary["check"]["agrees"], run.tables["fit_check"]
+    scenario = read_scenario(run.files[run.summary["files"]["scenario"]])
+    effects = [(e.attribute, e.level) for e in scenario.transitions[0].effects]
+    assert effects == [("tgrade", "I"), ("tgrade", "III"), ("menostat", "Pre"),
+                       ("age_at_entry", None)]
+    assert set(scenario.parameters) >= {"event_tgrade_i", "event_tgrade_iii",
+                                        "event_menostat_pre", "event_age_at_entry"}
+    block = run.files[run.summary["files"]["block"]].read_text()
+    drawn = "\n".join(line.removeprefix("# ") for line in block.splitlines()
+                      if line.startswith("# [[population") or line.startswith("# name")
+                      or line.startswith("# distribution") or line.startswith("# levels")
+                      or line.startswith("# shares"))
+    around = support.scenario_text(support.horizon(10, unit="days"), support.start(a=1),
+                                   support.state("a"), support.state("b", absorbing=True),
+                                   support.rate("a", "b", 0.1))
+    attributes = {a.name: a for a in parse_scenario(
+        f"{around}\n[population]\npatients = 10\n{drawn}\n").population.attributes}
+    for name in ("tgrade", "menostat"):
+        counts = frame[name].value_counts(normalize=True).sort_index()
+        assert attributes[name].distribution == "categorical"
+        assert attributes[name].params["levels"] == tuple(counts.index)
+        np.testing.assert_allclose(attributes[name].params["shares"], counts.to_numpy(),
+                                   rtol=1e-15)
+

@@ -285,7 +285,8 @@ def evppi() -> pd.DataFrame:
     evpi = np.array([10.0, 40.0, 60.0, 30.0, 20.0])
     return pd.concat([pd.DataFrame({"threshold": thresholds, "group": group, "parameters": size,
                                     "evppi": evpi * share, "se": 1.0, "evpi": evpi,
-                                    "edf": "3 4", "method": "a cubic spline"})
+                                    "edf": 4.0, "edf_fits": "new: QALYs 3, costs 4",
+                                    "method": "a cubic spline"})
                       for group, size, share in [("hr", 1, 0.5), ("c_drug + hr", 2, 0.8)]],
                      ignore_index=True)
 

@@ -368,6 +368,16 @@ CASES = [
       ("values = [0.01, 0.05, 0.2]", "values = [0.01, 0.05, 1]")],
      "tables.mortality.values[2]", "1 is not below 1; a probability of a move that competes "
                                    "with others must be at least 0 and below 1"),
+    # a fixed word that stands where a number (or a name) goes, misspelt
+    ("lifetime misspelt", "discrete", [("horizon = 10", 'horizon = "lifetim"')],
+     "time.horizon", 'or "lifetime", got \'lifetim\' (did you mean \'lifetime\'?)'),
+    ("horizon of other text", "discrete", [("horizon = 10", 'horizon = "forever"')],
+     "time.horizon", 'must be a number of years or "lifetime", got \'forever\''),
+    ("remainder misspelt", "discrete",
+     [('probability = "remainder"', 'probability = "remaindr"')],
+     "transitions.well->well.probability", "'remaindr' (did you mean 'remainder'?); defined:"),
+    ("known unit misspelt", "discrete", [('unit = "years"', 'unit = "yeras"')],
+     "time.unit", "minutes; did you mean 'years'?); give time.years_per_unit"),
     ("unknown invalid-draws policy", "discrete",
      [("seed = 1", 'seed = 1\n\n[uncertainty]\ninvalid_draws = "redrew"')],
      "uncertainty.invalid_draws", "did you mean 'redraw'"),

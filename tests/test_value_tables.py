@@ -253,6 +253,25 @@ def test_rate_model_values_by_age_are_the_closed_form_band_integrals(ages):
         assert values["qalys"][b] == pytest.approx(undiscounted, rel=1e-10)
 
 
+@pytest.mark.parametrize("kind", ["rate", "weibull"])
+def test_values_by_age_on_a_grid_that_does_not_start_at_0_are_integrated_from_time_0(kind):
+    # edge: the exact path and the forward equations start every patient at time 0 whatever
+    # the grid, and read the bands there too; reference: scipy.integrate.quad of
+    # S(t) u(age + t) e^{-delta t} over [0, 30], S(t) = e^{-mu t} or e^{-(t / 18)^1.4}
+    from scipy.integrate import quad
+    age, mu, d, T = 58.0, 0.08, 0.035, 30.0
+    model = model_of(alive_dead(kind, {"alive": dict(utility="u")},
+                                table("u", by="age", starts=AGE_STARTS, values=AGE_UTILITIES),
+                                age=age, death=mu, discount=d, years=int(T)))
+    survival = ((lambda t: math.exp(-mu * t)) if kind == "rate"
+                else (lambda t: math.exp(-(t / 18.0) ** 1.4)))
+    edges = [s - age for s in AGE_STARTS if 0 < s - age < T]
+    hand = quad(lambda t: survival(t) * band_value(AGE_STARTS, AGE_UTILITIES, age + t)
+                * math.exp(-math.log1p(d) * t), 0.0, T, points=edges, limit=200)[0]
+    ours = outcome_values(model, analytic(model, times=np.array([3.0, T])).exposure)
+    assert ours["qalys_discounted"] == pytest.approx([hand], rel=1e-8)
+
+
 def test_a_one_off_cost_by_age_in_a_cycle_model_is_valued_at_the_end_of_its_cycle():
     # docs/scenario-format.md: one-off costs at the end of their cycle, discounted there;
     # deaths in cycle k: (1 - p)^k p, the patient then k + 1 years older than at the start

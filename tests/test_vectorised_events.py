@@ -287,7 +287,8 @@ def test_long_stays_use_every_window_of_draws():
     assert_same_histories(expected, got, CLOSED)
     assert_every_risk_happens(model, got)
     # every record is a round of its own (a tick's 'within' window adds another): past
-    # 4 * DEPTH rounds in a state the draws come from `uniforms`, before that from `block`
+    # 4 * DEPTH rounds in a state the SimPy engine's draws come from `uniforms`, before that
+    # from `block`, and the vectorised engine draws each block of four as rounds reach it
     assert np.bincount(got.patient).max() > 4 * DEPTH
 
 

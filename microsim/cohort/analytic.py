@@ -3,7 +3,7 @@
 One entry point, `analytic`, picks the exact method the model allows and names it:
 - cycle models: products of per-cycle matrices over the expanded state space;
 - rate models whose hazards are piecewise constant in time (constant rates, life tables by
-  age or by time): matrix exponentials, exact (`microsim.markov`);
+  age or by time): matrix exponentials, exact (`microsim.cohort.exponentials`);
 - other Markov rate models (Weibull or Gompertz on the time-since-start or age clock,
   proportional hazards on attained age): the forward equations integrated numerically to
   a relative tolerance of 1e-10.

@@ -7,7 +7,7 @@ e.g. Ross 2014, "Introduction to Probability Models", ch. 6). We integrate it fo
 batch of patients at once, with the integrals the outcomes need carried along: time in
 each state and the expected number of each risk's occurrences, undiscounted and discounted
 continuously at the cost and effect rates. When Q is piecewise constant the exact matrix
-exponential path in `microsim.markov` is used instead (see `microsim.cohort.analytic`).
+exponential path in `microsim.cohort.exponentials` is used instead (see `microsim.cohort.analytic`).
 """
 from __future__ import annotations
 
@@ -17,6 +17,7 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from microsim.cohort.expand import Expansion
+from microsim.hazards.parametric import ConstantHazard
 from microsim.patients.multipliers import Multipliers
 from microsim.results.bands import Bands, band_edges, entry_ages
 from microsim.results.outcomes import Exposure
@@ -57,12 +58,28 @@ def hazards_at(exp: Expansion, t: float, mult: Multipliers) -> np.ndarray:
     A clock at exactly 0 is read at CLOCK_FLOOR, so that a hazard that is infinite at 0
     but integrable (Weibull or log-logistic with shape < 1) stays finite for the solver;
     the cumulative hazard this leaves out is H(1e-12), below 1e-8 for shapes above 0.7."""
+    return hazard_reader(exp, mult)(t)
+
+
+def hazard_reader(exp: Expansion, mult: Multipliers):
+    """`hazards_at` as a function of t alone, for a solver that asks at every step: each
+    risk's hazard as these patients have it is found once, and the constant rates are one
+    vector by which the multipliers are scaled (the same products, in the same order)."""
     model = exp.model
-    out = mult.at(t).copy()
-    for r, risk in enumerate(model.risks):
-        clock = mult.entry_age + t if risk.clock == "age" else np.full(out.shape[0], t)
-        out[:, r] *= mult.hazard_for(r, risk.hazard).hazard_array(np.maximum(clock, CLOCK_FLOOR))
-    return out
+    hazards = [mult.hazard_for(r, risk.hazard) for r, risk in enumerate(model.risks)]
+    fixed = [isinstance(hazard, ConstantHazard) for hazard in hazards]
+    scale = np.array([hazard.rate if still else 1.0 for hazard, still in zip(hazards, fixed)])
+    moving = [(r, risk.clock == "age", hazard)
+              for r, (risk, hazard, still) in enumerate(zip(model.risks, hazards, fixed))
+              if not still]
+
+    def at(t: float) -> np.ndarray:
+        out = mult.at(t) * scale
+        for r, by_age, hazard in moving:
+            clock = mult.entry_age + t if by_age else np.full(out.shape[0], t)
+            out[:, r] *= hazard.hazard_array(np.maximum(clock, CLOCK_FLOOR))
+        return out
+    return at
 
 
 def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[np.ndarray, Exposure]:
@@ -79,9 +96,11 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
     sizes = [E, 3 * S, 3 * S, 3 * R]
     cuts = np.cumsum(sizes)[:-1]
 
+    hazards = hazard_reader(exp, mult)
+
     def derivative(t, y):
         pi = y.reshape(batch, -1)[:, :E]
-        flux = pi[:, f.source] * hazards_at(exp, t, mult)[:, f.risk] * f.factor
+        flux = pi[:, f.source] * hazards(t)[:, f.risk] * f.factor
         d_pi = np.zeros_like(pi)
         np.add.at(d_pi.T, f.source[moving], -flux[:, moving].T)
         np.add.at(d_pi.T, f.target[moving], flux[:, moving].T)
@@ -96,13 +115,13 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
 
     y0 = np.zeros((batch, sum(sizes)))
     y0[:, :E] = exp.start_rows(mult.start, batch)
-    # the outcome integrals are running totals: read at every row's band edges too, their
-    # differences split them by band (costs and utilities by age or time)
+    # the outcome integrals are running totals from time 0: read at every row's band edges
+    # too, their differences split them by band (costs and utilities by age or time)
     edges = band_edges(model, mult.entry_age, batch)
     if edges is not None:
-        edges = np.clip(edges, times[0], times[-1])
+        edges = np.clip(edges, 0.0, times[-1])
     read = times if edges is None else np.union1d(times, edges)
-    solution = solve_ivp(derivative, (times[0], times[-1]), y0.ravel(), method="DOP853",
+    solution = solve_ivp(derivative, (0.0, times[-1]), y0.ravel(), method="DOP853",
                          t_eval=read, rtol=RTOL, atol=ATOL, max_step=model.cycle)
     if not solution.success:
         raise RuntimeError(f"forward equations did not solve: {solution.message}")

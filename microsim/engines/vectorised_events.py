@@ -1,15 +1,19 @@
 """The vectorised event engine: the SimPy event engine's rules and draws, one round at a
 time for every live patient of the batch.
 
-`microsim.engines.event_engine` runs one process per patient; here a round is a handful of
-numpy operations over the live patients in each state. A round is what it is there: every
-risk of the state gets a latent time by inverting its cumulative hazard from occurrence k
-of its purpose (k = the patient's count of rounds in that state, rounds ended by a change
-point included), the earliest wins unless a change point (a treatment window opening or
-closing, a `within` memory window running out) or the horizon comes first, and then memory,
-clocks and state move on. Patients who are absorbed or reach the horizon leave the live set,
-so a round costs work in proportion to the patients still running, and memory holds a few
-numbers and two windows of draws a patient, however long the horizon.
+`microsim.engines.event_engine` runs one process per patient; here a step is one round of
+every live patient, each in its own state: numpy computes each risk's latent times over
+the patients in its state (the hazard families' array code), and the compiled loops of
+`microsim.engines.event_kernels` do what goes patient by patient (the draws, multipliers
+and change points, the winner, the outcome). A round is what it is there: every risk of
+the state gets a latent time by inverting its cumulative hazard from occurrence k of its
+purpose (k = the patient's count of rounds in that state, rounds ended by a change point
+included), the earliest wins unless a change point (a treatment window opening or
+closing, a `within` memory window running out) or the horizon comes first, and then
+memory, clocks and state move on. Patients who are absorbed or reach the horizon leave
+the live set, so a step costs work in proportion to the patients still running, and
+memory holds a few numbers and one Philox block (four draws) per risk of each state a
+patient, however long the horizon.
 
 The two engines agree record for record (patient, from, to, risk), and on times within
 floating-point tolerance, not bit for bit: numpy's vectorised exp, log1p and power may differ
@@ -17,12 +21,15 @@ from Python's `math` in the last bit, and the numerical root of a Weibull or log
 hazard under an attained-age effect is found here by `solve_growing_array` (Gauss-Legendre
 and Newton), there by quadrature and Brent's method. Measured on the models of
 tests/test_vectorised_events.py: recorded times agree within 4e-15 relative for closed forms
-and 1e-12 with numerical roots (the scalar solver's own accuracy); the tests hold them to
+and about 1e-12 with numerical roots (the scalar solver's own accuracy); the tests hold them to
 1e-12 and 1e-9, and `TIE` is wider still. Where two outcomes of a round (two latent times, or
 a latent time and the change point or horizon) lie within TIE of each other, their order
 could hang on those last bits, so that patient's round is decided by the event engine's own
 scalar code (`event_engine.latent_time`) instead: a near-tie is never resolved by this
-engine's arithmetic.
+engine's arithmetic. The compiled loops add no difference of their own: they call no exp,
+log or power, only exactly rounded +, -, * and comparisons in the order of the event
+engine's arithmetic, and their draws are the streams' numbers bit for bit (the logarithm
+of the draws is numpy's, on arrays, as in the event engine).
 """
 from __future__ import annotations
 
@@ -34,74 +41,11 @@ from microsim.binding import BoundModel
 from microsim.hazards import HazardFamily, TimeScaledHazard
 from microsim.patients.multipliers import Multipliers
 from microsim import streams
-from microsim.engines import plan
-from microsim.engines.event_engine import DEPTH, latent_time
+from microsim.engines import event_kernels, plan
+from microsim.engines.event_engine import latent_time
 from microsim.engines.histories import START, Histories, from_records
 
 TIE = 1e-9  # relative to the time: outcomes closer than this are decided by the scalar code
-DRAW_CHUNK = 1024  # patients per call of the generator: its arrays then stay in cache
-LOOKAHEAD = DEPTH // 8  # rounds before its last draw at which a patient gets the next window
-
-
-class _Draws:
-    """Occurrence k of each of a state's risks' purposes, as -log u, for patients in their
-    k-th round there.
-
-    `streams.block` gives occurrences 0..n-1 with all four words of each Philox block;
-    `streams.uniforms` any occurrence, at a whole block per draw. So every patient gets its
-    first DEPTH occurrences from `block` (the event engine's precomputed block), and later
-    ones in windows of DEPTH: from `block` while that costs no more than `uniforms` (up to
-    the fourth window), fetched ahead in bulk: when a patient runs out, every patient of the
-    state within LOOKAHEAD rounds of its last draw gets its next window, so the generator is
-    called once in LOOKAHEAD rounds or less, not every round, for patients who are about to
-    use what it gives; memory holds two windows a patient.
-    """
-
-    def __init__(self, seed: int, ids: np.ndarray, purposes: list[str]):
-        self.seed, self.ids, self.purposes = seed, ids, purposes
-        n = len(ids)
-        self.first = np.empty((len(purposes), n * DEPTH))  # (risk, patient * DEPTH + k)
-        table = self.first.reshape(len(purposes), n, DEPTH)
-        for lo in range(0, n if purposes else 0, DRAW_CHUNK):
-            u = self.fetch(ids[lo:lo + DRAW_CHUNK], 0)
-            table[:, lo:lo + DRAW_CHUNK] = -np.log(u).transpose(1, 0, 2)
-        self.later = None  # (risk, patient * 2 DEPTH + place): two windows past the first
-        self.ends = np.full(n, DEPTH)  # occurrences fetched so far, per patient
-
-    def fetch(self, ids: np.ndarray, start: int) -> np.ndarray:
-        """(patient, risk, DEPTH) uniforms of occurrences start .. start + DEPTH - 1."""
-        if start <= 3 * DEPTH:  # (start + DEPTH) / 4 blocks: no more than DEPTH
-            return streams.block(self.seed, ids, self.purposes, start + DEPTH)[:, :, start:]
-        occurrences = start + np.arange(DEPTH)
-        return np.stack([streams.uniforms(self.seed, ids[:, None], p, occurrences)
-                         for p in self.purposes], axis=1)
-
-    def take(self, rows: np.ndarray, k: np.ndarray) -> np.ndarray:
-        """(risk, patient) draws for rows in round k."""
-        if k.max() < DEPTH:
-            return self.first.take(rows * DEPTH + k, axis=1)
-        if np.any(k >= self.ends[rows]):
-            self.fetch_ahead(rows[k >= self.ends[rows] - LOOKAHEAD])
-        first = self.first.take(rows * DEPTH + np.minimum(k, DEPTH - 1), axis=1)
-        place = np.maximum(k - DEPTH, 0)
-        later = self.later.take(rows * (2 * DEPTH) + place // DEPTH % 2 * DEPTH + place % DEPTH,
-                                axis=1)
-        return np.where(k < DEPTH, first, later)
-
-    def fetch_ahead(self, rows: np.ndarray):
-        """The next window of draws for these patients, into the slot of the one before last."""
-        if self.later is None:
-            self.later = np.empty((len(self.purposes), len(self.ids) * 2 * DEPTH))
-        starts = self.ends[rows]
-        for start in np.unique(starts).tolist():
-            group = rows[starts == start]
-            slot = (start - DEPTH) // DEPTH % 2 * DEPTH
-            for lo in range(0, group.size, DRAW_CHUNK):
-                part = group[lo:lo + DRAW_CHUNK]
-                places = (part[:, None] * (2 * DEPTH) + slot + np.arange(DEPTH)).ravel()
-                e = -np.log(self.fetch(self.ids[part], start)).transpose(1, 0, 2)
-                self.later[:, places] = e.reshape(len(self.purposes), -1)
-        self.ends[rows] += DEPTH
 
 
 class _Batch:
@@ -109,39 +53,47 @@ class _Batch:
     state (state, clocks, rounds per state, memory), as arrays over the batch."""
 
     def __init__(self, model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
-        self.seed, self.ids, self.end = seed, ids, model.n_cycles * model.cycle
+        self.end = float(model.n_cycles * model.cycle)
+        self.absorbing = np.asarray(model.absorbing, bool)
         purposes = plan.risk_purposes(model)
         tracked = plan.tracked_names(model)
         self.memory = plan.memory_terms(model, tracked)
-        self.count_multipliers = {term: np.asarray(term[1], float) for terms in self.memory
-                                  for term in terms if term[1] is not None}
         self.mult = mult
         self.views = plan.risk_views(model, mult)
         self.levels = plan.level_views(self.views, mult)  # risk -> (a view per row, rows)
         self.level_row = {r: np.asarray(row, np.int64) for r, (_, row) in self.levels.items()}
         self.ratios = [mult.time_ratios(r) for r in range(len(model.risks))]
-        # a numerical root (no closed form under a growing multiplier) needs a search limit
-        self.numerical = [bool(v.slope) and type(
-            v.hazard if r not in self.levels else self.levels[r][0][0].hazard
-        ).time_to_reach_growing_array is HazardFamily.time_to_reach_growing_array
-                          for r, v in enumerate(self.views)]
         self.targets = np.array([r.source if r.target is None else r.target
                                  for r in model.risks], np.int64)
         self.from_state = [[r for r, risk in enumerate(model.risks) if risk.source == i]
                            for i in range(model.n_states)]
-        self.risk_index = [np.asarray(risks, np.int64) for risks in self.from_state]
+        self.risk_arrays = [np.asarray(risks, np.int64) for risks in self.from_state]
+        # a numerical root (no closed form under a growing multiplier) needs a search limit
+        numerical = [bool(v.slope) and type(
+            v.hazard if r not in self.levels else self.levels[r][0][0].hazard
+        ).time_to_reach_growing_array is HazardFamily.time_to_reach_growing_array
+                     for r, v in enumerate(self.views)]
+        self.numerical = [any(numerical[r] for r in risks) for risks in self.from_state]
+        # the risk at position j of state i's risks, at i * width + j
+        self.width = max(1, *map(len, self.from_state))
+        self.risk_at = np.zeros(model.n_states * self.width, np.int64)
+        for i, risks in enumerate(self.from_state):
+            self.risk_at[i * self.width:i * self.width + len(risks)] = risks
         bumps = plan.bumps(model, tracked)
-        # per state: (tracked name, positions of the state's risks whose occurrence counts)
-        self.bumps = [[(t, js) for t in range(len(tracked))
-                       if (js := [j for j, r in enumerate(risks) if t in bumps[r]])]
-                      for risks in self.from_state]
+        # whether each risk's occurrence counts for each tracked name
+        self.bumps = np.array([[t in b for t in range(len(tracked))] for b in bumps],
+                              bool).reshape(len(bumps), len(tracked))
         n, window = len(ids), mult.window
         self.static = np.exp(mult.log_static).T.copy()  # (risk, patient): the event engine's
         self.age0 = np.zeros(n) if mult.entry_age is None else np.asarray(mult.entry_age, float)
         self.on = np.full(n, inf) if window is None else np.asarray(window.on, float)
         self.off = np.full(n, inf) if window is None else np.asarray(window.off, float)
-        self.draws = [_Draws(seed, ids, [purposes[r] for r in risks])
-                      for risks in self.from_state]
+        self.plans = self.risk_plans()
+        # draws: each state's purpose keys, and each patient's current Philox block of them
+        self.seed, self.ids = np.uint64(seed), ids.astype(np.uint64)
+        self.keys = [np.array([streams.purpose_id(purposes[r]) for r in risks], np.uint64)
+                     for risks in self.from_state]
+        self.blocks = [np.empty((n, len(risks), 4)) for risks in self.from_state]
         starts = np.asarray(plan.start_states(
             model, streams.uniforms(seed, ids, plan.START_PURPOSE), mult), np.int64).reshape(-1)
         self.state = starts
@@ -150,29 +102,24 @@ class _Batch:
         self.rounds = np.zeros((model.n_states, n), np.int64)
         self.records = [(np.arange(n), 0.0, START, starts.copy(), START)]
 
-    def multiplier(self, r: int, rows, now, change):
-        """Risk r's multiplier now, in the event engine's order of operations; the change
-        points it brings; and where the treatment window makes it 0 (the risk is off)."""
-        view, m, off = self.views[r], self.static[r].take(rows), None
-        if view.on_factor is not None:
-            on, stop = self.on[rows], self.off[rows]
-            active = (on <= now) & (now < stop)
-            m = m * np.where(active, view.on_factor, view.off_factor)
-            change = np.where(active, np.minimum(change, stop),
-                              np.where(now < on, np.minimum(change, on), change))
-            off = m == 0.0
-        for term in self.memory[r]:
-            index, multipliers, within, factor = term
-            if multipliers is not None:
-                table = self.count_multipliers[term]
-                m = m * table.take(np.minimum(self.counts[index].take(rows), len(table) - 1))
-            else:
-                ends = self.last[index].take(rows) + within  # nan: no occurrence yet
-                inside = now < ends
-                m = np.where(inside, m * factor, m)
-                counted = inside if off is None else inside & ~off
-                change = np.where(counted, np.minimum(change, ends), change)
-        return m, change, off
+    def risk_plans(self) -> event_kernels.RiskPlans:
+        """Every risk's multiplier inputs as `event_kernels.multipliers` reads them."""
+        terms = [term for terms in self.memory for term in terms]
+        tables = [np.asarray(() if counts is None else counts, float)
+                  for _, counts, _, _ in terms]
+        return event_kernels.RiskPlans(
+            self.static, self.on, self.off,
+            windowed=np.array([v.on_factor is not None for v in self.views], bool),
+            on_factor=np.array([1.0 if v.on_factor is None else v.on_factor for v in self.views]),
+            off_factor=np.array([1.0 if v.off_factor is None else v.off_factor
+                                 for v in self.views]),
+            term_ptr=np.cumsum([0] + [len(terms) for terms in self.memory], dtype=np.int64),
+            counted=np.array([counts is not None for _, counts, _, _ in terms], bool),
+            tracked=np.array([index for index, _, _, _ in terms], np.int64),
+            within=np.array([0.0 if w is None else w for _, _, w, _ in terms]),
+            factor=np.array([1.0 if f is None else f for _, _, _, f in terms]),
+            table_ptr=np.cumsum([0] + [t.size for t in tables], dtype=np.int64),
+            tables=np.concatenate([np.empty(0)] + tables))
 
     def latent(self, r: int, rows, e, m, now, limit) -> np.ndarray:
         """Time from now to risk r for each patient: the event engine's `latent_time` (a
@@ -190,6 +137,8 @@ class _Batch:
 
     def latent_by(self, r: int, view, rows, e, m, now, limit) -> np.ndarray:
         """`latent` for the patients `rows` that share the view of risk r."""
+        if view.rate is not None and not view.slope:
+            return e / (m * view.rate)  # e > 0, so a rate of 0 gives inf, as there
         a = (now if view.clock == "since_start" else
              now - self.entered.take(rows) if view.clock == "since_entry"
              else self.age0.take(rows) + now)
@@ -198,86 +147,64 @@ class _Batch:
         if view.slope:
             return hazard.time_to_reach_growing_array(
                 e, a, m * np.exp(view.slope * now), view.slope, limit)
-        if view.rate is not None:
-            return e / (m * view.rate)  # e > 0, so a rate of 0 gives inf, as there
         return hazard.time_to_reach_array(e / m, a)
 
-    def round(self, i: int, rows: np.ndarray) -> np.ndarray:
-        """One round in state i for patient rows `rows`; returns the rows that reached the
-        horizon."""
-        risks = self.from_state[i]
-        k = self.rounds[i].take(rows)
-        self.rounds[i][rows] = k + 1
-        if not risks:  # no way out and no event: the patient stays to the horizon
-            return rows
-        now = self.now.take(rows)
-        change = self.end  # an array once some risk brings change points
-        parts = []
-        for r in risks:
-            m, change, off = self.multiplier(r, rows, now, change)
-            parts.append((m, off))
-        # how far a numerical root must be searched: just past the change point
-        limit = (change - now + 2.0 * TIE * change
-                 if any(self.numerical[r] for r in risks) else inf)
-        draws = self.draws[i].take(rows, k)
-        best = first = runner_up = None
-        for j, (r, (m, off)) in enumerate(zip(risks, parts)):
-            t = self.latent(r, rows, draws[j], m, now, limit)
-            if off is not None:
-                t = np.where(off, inf, t)
-            if j == 0:  # nan, which `dt < best` never takes, as inf
-                best, first = np.fmin(t, inf), np.zeros(rows.size, np.int64)
-            else:  # the event engine's `dt < best`: the first of equal times wins
-                better = t < best
-                runner_up = np.fmax(best, t) if j == 1 else np.fmin(runner_up, np.fmax(best, t))
-                first = np.where(better, j, first)
-                best = np.fmin(best, t)
-        reached = now + best
-        close = np.abs(reached - change) <= TIE * change
-        if runner_up is not None:
-            close |= runner_up - best <= TIE * reached
+    def step(self, live: np.ndarray) -> np.ndarray:
+        """One round for every live patient, each in its own state; returns the patients
+        still live after it."""
+        n, state = live.size, self.state.take(live)
+        now = self.now.take(live)
+        # (position among the state's risks, patient); a state with no risk keeps inf, so
+        # the horizon comes first
+        times, draws = np.full((self.width, n), inf), np.empty((self.width, n))
+        change = np.full(n, self.end)
+        for i in np.flatnonzero(np.bincount(state)).tolist():
+            risks = self.from_state[i]
+            if not risks:
+                continue
+            pos = np.flatnonzero(state == i)
+            rows, at = live.take(pos), now.take(pos)
+            u = event_kernels.draws(self.seed, self.keys[i], self.ids, rows, self.rounds[i],
+                                    self.blocks[i])
+            e = -np.log(u)  # numpy's logarithm on an array, as the event engine's draws
+            draws[:len(risks), pos] = e
+            m, off, bound = event_kernels.multipliers(self.risk_arrays[i], rows, at, self.end,
+                                                      self.plans, self.counts, self.last)
+            change[pos] = bound
+            # how far a numerical root must be searched: just past the change point
+            limit = bound - at + 2.0 * TIE * bound if self.numerical[i] else inf
+            for j, r in enumerate(risks):
+                t = self.latent(r, rows, e[j], m[j], at, limit)
+                times[j, pos] = t if self.views[r].on_factor is None else np.where(off[j], inf, t)
+        best, first, close = event_kernels.choose(times, now, change, TIE)
         if close.any():
-            change = np.broadcast_to(change, rows.shape).copy()
-            self.decide_by_scalar_code(i, rows, np.flatnonzero(close), draws, now, first,
+            self.decide_by_scalar_code(live, state, np.flatnonzero(close), draws, now, first,
                                        best, change)
-            reached = now + best
-        happens = reached < change
-        self.now[rows] = np.where(happens, reached, change)
-        self.occur(i, rows[happens], first[happens], reached[happens])
-        return rows[~happens & (change >= self.end)]
+        records, live = event_kernels.settle(
+            live, state, first, best, change, now, self.end, self.width, self.risk_at,
+            self.targets, self.bumps, self.absorbing, self.now, self.state, self.entered,
+            self.counts, self.last)
+        self.records.append(records)
+        return live
 
-    def decide_by_scalar_code(self, i, rows, close, draws, now, first, best, change):
+    def decide_by_scalar_code(self, live, state, close, draws, now, first, best, change):
         """Rounds whose outcome is a near-tie, decided by `event_engine.latent_time` exactly
         as the event engine decides them (in place: first, best, change)."""
         for p in close.tolist():
-            b = int(rows[p])
+            b = int(live[p])
             counts = self.counts[:, b].tolist()
             last = [None if np.isnan(x) else x for x in self.last[:, b].tolist()]
             window = (float(self.on[b]), float(self.off[b]))
             t, entered, age0 = float(now[p]), float(self.entered[b]), float(self.age0[b])
             soonest, winner, bound = inf, 0, self.end
             views = plan.patient_views(self.views, self.levels, self.mult, b)
-            for j, r in enumerate(self.from_state[i]):
-                dt, bound = latent_time(views[r], float(draws[j][p]), float(self.static[r, b]),
+            for j, r in enumerate(self.from_state[state[p]]):
+                dt, bound = latent_time(views[r], float(draws[j, p]), float(self.static[r, b]),
                                         t, entered, age0, self.memory[r], counts, last, bound,
                                         window)
                 if dt < soonest:
                     soonest, winner = dt, j
             first[p], best[p], change[p] = winner, soonest, bound
-
-    def occur(self, i: int, who, first, at):
-        """Record the occurrences (the winners: positions among state i's risks) and move
-        memory, clocks and states on."""
-        winner = self.risk_index[i].take(first)
-        target = self.targets.take(winner)
-        self.records.append((who, at, i, target, winner))
-        for index, positions in self.bumps[i]:
-            hit = first == positions[0] if len(positions) == 1 else np.isin(first, positions)
-            self.counts[index][who[hit]] += 1
-            self.last[index][who[hit]] = at[hit]
-        moved = target != i
-        self.state[who[moved]] = target[moved]
-        self.entered[who[moved]] = at[moved]
 
 
 def simulate_events_vectorised(model: BoundModel, mult: Multipliers, patient_ids: np.ndarray,
@@ -287,16 +214,8 @@ def simulate_events_vectorised(model: BoundModel, mult: Multipliers, patient_ids
     docstring for the tolerance on times)."""
     ids = np.asarray(patient_ids)
     batch = _Batch(model, mult, ids, seed)
-    absorbing = model.absorbing
-    states = np.flatnonzero(~absorbing).tolist()
-    live = np.flatnonzero(~absorbing[batch.state])
-    done = np.zeros(len(ids), bool)
+    live = np.flatnonzero(~batch.absorbing[batch.state])
     with np.errstate(divide="ignore", invalid="ignore"):  # inf - inf, e / 0: as in Python
         while live.size:
-            state = batch.state[live]
-            for i in states:
-                rows = live[state == i]
-                if rows.size:
-                    done[batch.round(i, rows)] = True
-            live = live[~done[live] & ~absorbing[batch.state[live]]]
+            live = batch.step(live)
     return from_records(batch.records, len(ids))

@@ -9,8 +9,8 @@ the estimates are close to normal (the scale of the multivariate normal of the P
 Covariates enter as proportional hazards, h(t | x) = exp(x'b) h0(t) (Cox 1972), where the
 family allows it in the usual sense (the exponential, Weibull and Gompertz are closed under
 it), or as accelerated failure time, S(t | x) = S0(t exp(-x'b)) (Kalbfleisch & Prentice
-2002, 2.3.3), for every family; x is centred at the data's means, so the base parameters
-describe a patient at the centres.
+2002, 2.3.3), for every family; x is centred (at the data's means, a level's indicator at
+0), so the base parameters describe a patient at the centres.
 """
 from __future__ import annotations
 

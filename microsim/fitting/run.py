@@ -20,14 +20,13 @@ from microsim.fitting.check import simulated_check
 from microsim.fitting.curves import curves_table, grid, horizon_for
 from microsim.fitting.data import SurvivalData, read_survival_data
 from microsim.fitting.estimate import Fit, fit_all
-from microsim.fitting.families import BY_NAME
+from microsim.fitting.families import BY_NAME, NONE
 from microsim.fitting.kaplan_meier import kaplan_meier
 from microsim.fitting.tables import covariance_table, models_table, parameters_table
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import IDENTIFIER, did_you_mean
 from microsim.scenario.reader import UNIT_WORD, YEARS_PER_UNIT
 
-SCENARIO, BLOCK = "fitted_scenario.toml", "fitted_block.toml"
 CHECK_PATIENTS = 5000
 Z_LIMIT = 4.0  # |z| of the simulated survival against the fitted one (common practice)
 
@@ -39,7 +38,16 @@ class FitRun:
     chosen: Fit
     tables: dict[str, pd.DataFrame]
     files: dict[str, Path]  # name in the run folder -> a finished file
-    summary: dict
+    summary: dict  # with "files": the names of the scenario, the block and the patients
+
+
+def output_names(data: SurvivalData, fit: Fit) -> dict[str, str]:
+    """The written files' names after the data file and the fit (`rossi_weibull_ph.toml`),
+    so that the scenarios of two fits, and the run folders that running them makes (named
+    after the scenario), do not share a name."""
+    base = f"{data.path.stem}_{fit.family.name}" + ("" if fit.form == NONE else f"_{fit.form}")
+    return {"scenario": f"{base}.toml", "block": f"{base}_block.toml",
+            "patients": f"{base}_patients.csv"}
 
 
 def check_options(unit: str, name: str, family: str | None, form: str | None,
@@ -82,39 +90,50 @@ def choose(fits: list[Fit], family: str | None, form: str | None) -> Fit:
 def fit_and_write(path: Path, time: str, event: str, covariates: tuple[str, ...],
                   entry: str | None, unit: str, scratch: Path, *, family: str | None = None,
                   form: str | None = None, name: str = "event", horizon: float | None = None,
-                  patients: int = CHECK_PATIENTS, seed: int = 20261201) -> FitRun:
-    """Everything `microsim fit` keeps; the written files are made in `scratch`."""
+                  patients: int = CHECK_PATIENTS, seed: int = 20261201,
+                  references: dict[str, str] | None = None) -> FitRun:
+    """Everything `microsim fit` keeps; the written files are made in `scratch`.
+    `references`: the reference level of categorical covariates ({column: level})."""
     check_options(unit, name, family, form, covariates, horizon)
-    data = read_survival_data(path, time, event, covariates, entry)
+    data = read_survival_data(path, time, event, covariates, entry, references)
     fits = fit_all(data)
     chosen = choose(fits, family, form)
     horizon = horizon_for(data) if horizon is None else float(horizon)
     times = grid(horizon)
-    files = {SCENARIO: scratch / SCENARIO, BLOCK: scratch / BLOCK}
+    names = output_names(data, chosen)
+    patients_file = names["patients"] if chosen.covariates else None
+    files = {names["scenario"]: scratch / names["scenario"],
+             names["block"]: scratch / names["block"]}
     day = datetime.now(timezone.utc).date().isoformat()  # one date for both files
-    files[BLOCK].write_text(scenario_text.block(chosen, data, name, unit, day))
-    files[SCENARIO].write_text(scenario_text.scenario(chosen, data, name, unit, horizon, seed,
-                                                      day))
-    if chosen.covariates:
-        files[scenario_text.PATIENTS_FILE] = scratch / scenario_text.PATIENTS_FILE
-        data.frame().to_csv(files[scenario_text.PATIENTS_FILE], index=False)
-    check = simulated_check(files[SCENARIO], chosen, data, patients, seed)
+    files[names["block"]].write_text(scenario_text.block(chosen, data, name, unit, day))
+    files[names["scenario"]].write_text(scenario_text.scenario(
+        chosen, data, name, unit, horizon, seed, patients_file, day))
+    if patients_file is not None:
+        files[patients_file] = scratch / patients_file
+        data.frame().to_csv(files[patients_file], index=False)
+    check = simulated_check(files[names["scenario"]], chosen, data, patients, seed)
     tables = {"fit_models": models_table(fits, chosen), "fit_parameters": parameters_table(fits),
               "fit_covariance": covariance_table(fits), "kaplan_meier": kaplan_meier(data),
               "fit_curves": curves_table([f for f in fits if f.converged], data, times),
               "fit_check": check}
+    written = {**names, "patients": patients_file}
     return FitRun(data, fits, chosen, tables, files, summary(data, fits, chosen, check, unit,
-                                                             horizon, patients, seed))
+                                                             horizon, patients, seed, written))
 
 
 def summary(data: SurvivalData, fits: list[Fit], chosen: Fit, check: pd.DataFrame, unit: str,
-            horizon: float, patients: int, seed: int) -> dict:
-    """What the run found, as a document (fit_summary.json)."""
+            horizon: float, patients: int, seed: int, files: dict[str, str | None]) -> dict:
+    """What the run found, as a document (fit_summary.json); `files` names the written
+    scenario, block and patients file (None without covariates)."""
     worst, limit = float(np.abs(check.z_fitted).max()), Z_LIMIT
     return {
         "data": str(data.path), "data_sha256": data.sha256, "patients": data.size,
         "events": data.events, "time": data.time_column, "event": data.event_column,
-        "entry": data.entry_column, "covariates": list(data.covariates), "unit": unit,
+        "entry": data.entry_column, "covariates": list(data.covariates),
+        "attributes": {t.name: {"attribute": t.attribute, "level": t.level} for t in data.terms},
+        "categorical": [{"attribute": c.attribute, "levels": list(c.levels),
+                         "shares": list(c.shares), "reference": c.reference}
+                        for c in data.categorical], "unit": unit,
         "horizon": horizon, "longest_follow_up": float(data.time.max()),
         "chosen": {"family": chosen.family.name, "form": chosen.form, "label": chosen.label,
                    "aic": chosen.aic, "log_likelihood": chosen.log_likelihood},
@@ -127,5 +146,5 @@ def summary(data: SurvivalData, fits: list[Fit], chosen: Fit, check: pd.DataFram
                             f"(largest |z| {worst:.2f})" if worst < limit else
                             f"the written scenario's simulated survival departs from the fitted "
                             f"one (largest |z| {worst:.2f}): look into it before using it")},
-        "caution": CAUTION,
+        "files": files, "caution": CAUTION,
     }

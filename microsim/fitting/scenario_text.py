@@ -7,8 +7,10 @@ and `high` (for one-way sensitivity); and one `[[uncertainty.multivariate_normal
 all of them on the fit's own scale (log scale, log shape, coefficients) with the fit's
 covariance, the log-scale members named in `on_log_scale`. A proportional-hazards fit
 writes `coefficient` (a log hazard ratio), an accelerated-failure-time fit
-`time_coefficient` (a log time ratio), each at the covariate's centre (the data's mean),
-as the fit estimated them. Numbers are written with repr, so they read back bit for bit.
+`time_coefficient` (a log time ratio), as the fit estimated them: a column of numbers at its
+centre (the data's mean), a level of a categorical covariate at its `level` (against the
+reference level), whose attribute, levels and observed shares end the block as a commented
+population attribute. Numbers are written with repr, so they read back bit for bit.
 """
 from __future__ import annotations
 
@@ -17,13 +19,12 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from microsim.fitting.data import SurvivalData
+from microsim.fitting.data import ENTRY_AGE, SurvivalData
 from microsim.fitting.estimate import Fit
 from microsim.fitting.families import AFT
 from microsim.fitting.kaplan_meier import Z95
 
 FROM, TO = "at_risk", "after_event"  # the states of the scenario around the block
-PATIENTS_FILE = "fit_patients.csv"
 
 
 def number(x: float) -> str:
@@ -61,16 +62,19 @@ def block(fit: Fit, data: SurvivalData, name: str, unit: str, day: str | None = 
     names = parameter_names(fit, name)
     p = len(fit.family.parameters)
     hazard = ", ".join(f'{key} = "{n}"' for key, n in zip(fit.family.parameters, names))
-    lines = [comment(provenance(fit, data, unit, day) + (
-                 " Covariates are centred at the data's means, so the hazard's parameters "
-                 "describe a patient at those values." if fit.covariates else "")),
+    lines = [comment(provenance(fit, data, unit, day) + covariate_words(fit, data)),
              "[[transitions]]", f'from = "{FROM}"', f'to = "{TO}"', f'name = "{name}"',
              f'hazard = {{ family = "{fit.family.scenario}", {hazard} }}',
              'clock = "since_entry"']
     key = "time_coefficient" if fit.form == AFT else "coefficient"
+    terms = {term.name: term for term in data.terms}
     for covariate, centre, parameter in zip(fit.covariates, fit.centres, names[p:]):
-        lines += ["", "  [[transitions.effects]]", f'  attribute = "{covariate}"',
-                  f'  {key} = "{parameter}"', f"  centre = {number(centre)}"]
+        term = terms[covariate]
+        lines += ["", "  [[transitions.effects]]", f'  attribute = "{term.attribute}"']
+        if term.level is None:
+            lines += [f'  {key} = "{parameter}"', f"  centre = {number(centre)}"]
+        else:
+            lines += [f"  level = {json.dumps(term.level)}", f'  {key} = "{parameter}"']
     lines += ["", comment("Values on the scenario's scale; low and high: the 95% Wald interval "
                           "of the fit (on its own scale, mapped back)."), "[parameters]"]
     logged = list(fit.family.on_log) + [False] * len(fit.covariates)
@@ -90,7 +94,34 @@ def block(fit: Fit, data: SurvivalData, name: str, unit: str, day: str | None = 
                   f"means = [{', '.join(number(x) for x in fit.estimate)}]",
                   f"covariance = [\n  {rows}]",
                   f"on_log_scale = {json.dumps([n for n, log in zip(names, logged) if log])}"]
+    if fit.covariates and data.categorical:
+        lines += ["", comment("A population that draws its attributes needs each categorical "
+                              "one with its levels; with the shares observed in the data "
+                              "(uncomment it under [population]; a population file needs the "
+                              "column instead):")]
+        for levels in data.categorical:
+            lines += ["# [[population.attributes]]", f'# name = "{levels.attribute}"',
+                      '# distribution = "categorical"', f"# levels = {json.dumps(levels.levels)}",
+                      f"# shares = [{', '.join(number(x) for x in levels.shares)}]"]
     return "\n".join(lines) + "\n"
+
+
+def covariate_words(fit: Fit, data: SurvivalData) -> str:
+    """What the block's covariates stand for: where the base parameters are, which level
+    each categorical covariate is compared with, and the age at entry."""
+    if not fit.covariates:
+        return ""
+    words = (" Covariates are centred at the data's means, so the hazard's parameters "
+             "describe a patient at those values." if not data.categorical else
+             " Numeric covariates are centred at the data's means and each categorical one at "
+             "its reference level (" + ", ".join(f"{c.attribute} {c.reference!r}"
+                                                 for c in data.categorical)
+             + "), so the hazard's parameters describe a patient at those values and each "
+             "level's coefficient compares it with its reference.")
+    if data.age_at_entry:
+        words += (f" The data's column 'age' (fixed at entry) is the attribute '{ENTRY_AGE}': "
+                  "a scenario's `age` is the attained age, which moves with time.")
+    return words
 
 
 def nice_cycle(horizon: float) -> float:
@@ -99,12 +130,13 @@ def nice_cycle(horizon: float) -> float:
 
 
 def scenario(fit: Fit, data: SurvivalData, name: str, unit: str, horizon: float, seed: int,
-             day: str | None = None) -> str:
+             patients_file: str | None = None, day: str | None = None) -> str:
     """A whole scenario around the block: at risk -> after the event, the data's patients as
-    the population (their covariates, `fit_patients.csv` beside it), over `horizon`."""
+    the population (their covariates, in `patients_file` beside it: needed with
+    covariates), over `horizon`."""
     day = day or datetime.now(timezone.utc).date().isoformat()
     title = f"Time to event fitted to {data.path.name}: {fit.label}"
-    population = (f"\n[population]\npatients = {data.size}\nfile = \"{PATIENTS_FILE}\"\n"
+    population = (f"\n[population]\npatients = {data.size}\nfile = {json.dumps(patients_file)}\n"
                   if fit.covariates else "")
     text = "\n".join([
         f"title = {json.dumps(title)}",

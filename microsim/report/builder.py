@@ -457,9 +457,10 @@ def render(context: dict) -> str:
     return environment.get_template("report.html.j2").render(context)
 
 
-def publish(folder: Path, drawn: list[Drawn], html: str) -> Path:
-    """Write figures/ and report.html into the folder: all made in a hidden staging folder
-    first, then moved in (the old figures/ goes, so no figure of an earlier report stays)."""
+def publish(folder: Path, drawn: list[Drawn], html: str, page: str = REPORT) -> Path:
+    """Write figures/ and the page (report.html, or a fit's fit.html) into the folder: all
+    made in a hidden staging folder first, then moved in (the old figures/ goes, so no
+    figure of an earlier page stays)."""
     staging = Path(tempfile.mkdtemp(prefix=".report-", dir=folder))
     try:
         made = staging / FIGURES
@@ -467,12 +468,12 @@ def publish(folder: Path, drawn: list[Drawn], html: str) -> Path:
         for figure in drawn:
             for fmt, data in figure.files.items():
                 (made / f"{figure.name}.{fmt}").write_bytes(data)
-        (staging / REPORT).write_text(html, encoding="utf-8")
+        (staging / page).write_text(html, encoding="utf-8")
         if (folder / FIGURES).is_dir():
             os.replace(folder / FIGURES, staging / "previous")
         os.replace(made, folder / FIGURES)
-        os.replace(staging / REPORT, folder / REPORT)
-        return folder / REPORT
+        os.replace(staging / page, folder / page)
+        return folder / page
     finally:
         shutil.rmtree(staging, ignore_errors=True)
 

@@ -1,8 +1,10 @@
 """The page of a fit: one self-contained HTML file (`fit.html`) and its figures, made from
 the tables and summary `microsim fit` writes, with the report's style, macros and table
-cells (`report.style`, `templates/parts.html.j2`, `report.tables`)."""
+cells (`report.style`, `templates/parts.html.j2`, `report.tables`); `microsim report` makes
+it again from a fit's run folder, which holds all of them."""
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import jinja2
@@ -10,11 +12,15 @@ import pandas as pd
 
 from microsim import CAUTION
 from microsim.report import fit_figures, tables
-from microsim.report.builder import Drawn
+from microsim.report.builder import FIGURES, Drawn, publish
+from microsim.report.folder import MANIFEST, RunFolder
 from microsim.report.style import rendered
 from microsim.report.tables import Column, whole
+from microsim.scenario import ScenarioError
 
-PAGE, FIGURES = "fit.html", "figures"
+PAGE, SUMMARY = "fit.html", "fit_summary.json"
+TABLES = ("fit_models", "fit_parameters", "fit_covariance", "kaplan_meier", "fit_curves",
+          "fit_check")
 
 
 def fixed(x) -> str:
@@ -105,18 +111,30 @@ def render(context: dict) -> str:
 
 def write_fit_page(folder: Path, t: dict[str, pd.DataFrame], summary: dict, block: str
                    ) -> list[Path]:
-    """fit.html and figures/ (SVG and PNG) into `folder`; the paths written."""
+    """fit.html and figures/ (SVG and PNG) into `folder`, staged and moved in; the paths."""
     drawn = figures_of(t, summary)
-    figures = Path(folder) / FIGURES
-    figures.mkdir(exist_ok=True)
-    for figure in drawn:
-        for fmt, data in figure.files.items():
-            (figures / f"{figure.name}.{fmt}").write_bytes(data)
     html = render({"summary": summary, "caution": CAUTION, "figures": drawn,
                    "models": models_view(t["fit_models"]),
                    "parameters": parameter_views(t["fit_models"], t["fit_parameters"]),
                    "covariance": covariance_view(t["fit_covariance"], summary["chosen"]),
                    "block": block})
-    page = Path(folder) / PAGE
-    page.write_text(html, encoding="utf-8")
-    return [page, figures]
+    return [publish(Path(folder), drawn, html, PAGE), Path(folder) / FIGURES]
+
+
+def rebuild_fit_page(folder: Path) -> Path:
+    """fit.html and figures/ made again from a fit's run folder (its tables, fit_summary.json
+    and the block it wrote), as `microsim fit` made them; refuse a folder that lacks one."""
+    folder = Path(folder)
+    summary = json.loads((folder / SUMMARY).read_text())
+    summary.setdefault("files", {  # a fit written before its files were named after the data
+        "scenario": "fitted_scenario.toml", "block": "fitted_block.toml",
+        "patients": "fit_patients.csv" if (folder / "fit_patients.csv").is_file() else None})
+    run = RunFolder(folder, summary, json.loads((folder / MANIFEST).read_text()))
+    t = {name: run.table(name) for name in TABLES}
+    block = folder / summary["files"]["block"]
+    for name, found in [*((f"{n}.parquet", t[n] is not None) for n in TABLES),
+                        (block.name, block.is_file())]:
+        if not found:
+            raise ScenarioError(str(folder), f"the fit's run folder has no {name}; run "
+                                             "`microsim fit` again")
+    return write_fit_page(folder, t, summary, block.read_text())[0]

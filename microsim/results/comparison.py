@@ -19,7 +19,10 @@ numbers are equal within numerical error (ROUNDOFF, relative), and the table say
 The verdict tests every comparison at once with a Bonferroni bound (Bonferroni 1936; Dunn
 1961, "Multiple comparisons among means"): with K comparisons the simulation agrees when
 every two-sided p-value is at least alpha / K, so a correct engine is flagged in fewer than
-one run in 1/alpha.
+one run in 1/alpha. Shares are compared on the report grid, which for a horizon of more than
+MAX_COMPARED_STEPS cycles is thinned to that many evenly spaced steps and the end
+(`comparison_grid`): 20,000 cycles would otherwise be 20,001 comparisons per state, each at
+a level that many times stricter, for little a coarser grid does not show.
 
 Everything a comparison needs is a sum over patients (`ComparisonSums`), so a population is
 compared batch by batch and nothing per patient is kept; `compare` is one batch.
@@ -37,14 +40,34 @@ from microsim.cohort.analytic import CohortResult, analytic
 from microsim.patients.multipliers import Multipliers, average_patient, cohort_multipliers
 from microsim.patients.population import subgroup_attributes
 from microsim.results.outcomes import outcome_values
-from microsim.simulation import Simulation, simulate
+from microsim.simulation import Simulation, report_grid, simulate
 
 FAMILY_ALPHA = 0.001
+MAX_COMPARED_STEPS = 500  # steps of the comparison grid of a long horizon (and the end)
 ROUNDOFF = 1e-7  # relative difference that numerical error alone can explain (floating
 # point in the engines, and the forward equations' rtol of 1e-10 over long horizons)
 MONTE_CARLO = "Monte-Carlo"
 EXACT = f"no Monte-Carlo error: equal within {ROUNDOFF:g} (relative)"
 SHARE_COLUMNS = ["time", "state", "simulated", "analytic", "se", "z", "p_value", "test"]
+
+
+def comparison_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
+    """The times at which shares are compared: the report grid (`simulation.grid` of a rate
+    model, else the cycle points), the cycle points of a horizon of more than
+    MAX_COMPARED_STEPS cycles thinned to every k-th (k the fewest that leaves at most
+    MAX_COMPARED_STEPS steps) and the end. A grid the scenario gives is kept as it is."""
+    grid = report_grid(model, step)
+    every = -(-model.n_cycles // MAX_COMPARED_STEPS)  # ceil
+    if every == 1 or not np.array_equal(grid, model.times):
+        return grid
+    return np.union1d(grid[::every], grid[-1:])
+
+
+def on_grid(result: CohortResult, grid: np.ndarray) -> np.ndarray:
+    """The analytic trace at the grid's times (a cycle model's has every cycle point)."""
+    if len(result.times) == len(grid):
+        return result.trace
+    return result.trace[:, np.searchsorted(result.times, grid)]
 
 
 def critical_z(n_tests: int, alpha: float = FAMILY_ALPHA) -> float:
@@ -203,16 +226,16 @@ class ComparisonSums:
         if result is None:
             result = analytic(model, mult=sim.mult.distinct(), times=sim.grid)
         self.result = self.result or result
-        states = sim.states
+        states, trace = sim.states, on_grid(result, sim.grid)
         inside = states[:, :, None] == np.arange(model.n_states)  # (N, T, S)
-        self.shares.add(inside, result.trace)
+        self.shares.add(inside, trace)
         alive = ~np.asarray(model.absorbing, bool)
         if not alive.all():
-            self.survival.add(alive[states], result.trace[..., alive].sum(axis=-1))
+            self.survival.add(alive[states], trace[..., alive].sum(axis=-1))
         for attribute in subgroup_attributes(sim.patients):
             for level, members in sim.patients.groupby(attribute, observed=True).indices.items():
                 rows = np.asarray(members)
-                p = result.trace[rows] if result.trace.shape[0] > 1 else result.trace
+                p = trace[rows] if trace.shape[0] > 1 else trace
                 self.subgroups.setdefault((attribute, str(level)), Shares()).add(inside[rows], p)
         simulated = sim.values
         expected = outcome_values(model, result.exposure)
@@ -270,8 +293,11 @@ class ComparisonSums:
         table = pd.DataFrame(rows, columns=["measure", "simulated", "analytic", "se", "difference"])
         p, certain = mean_p_values(table.difference, table.se, table.analytic)
         z = np.where(certain, 0.0, z_scores(table.difference.to_numpy(), table.se.to_numpy()))
+        # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
+        # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
-            z=z, p_value=p, test=np.where(certain, EXACT, MONTE_CARLO))
+            se=np.where(certain, 0.0, table.se), z=z, p_value=p,
+            test=np.where(certain, EXACT, MONTE_CARLO))
 
     def subgroup_table(self) -> pd.DataFrame:
         frames = [share_table(s, self.grid, self.model.states).assign(attribute=a, level=lv)
@@ -313,7 +339,7 @@ def compare(sim: Simulation, result: CohortResult | None = None) -> Comparison:
 def trace_table(sim: Simulation, result: CohortResult) -> pd.DataFrame:
     """Simulated and analytic state shares on the grid, against a given analytic result."""
     shares = Shares()
-    shares.add(sim.states[:, :, None] == np.arange(sim.model.n_states), result.trace)
+    shares.add(sim.states[:, :, None] == np.arange(sim.model.n_states), on_grid(result, sim.grid))
     return share_table(shares, sim.grid, sim.model.states)
 
 

@@ -65,9 +65,11 @@ def unknown_state(name: str, state_names: Sequence[str]) -> str:
             f"states: {listing(state_names)}")
 
 
-def undefined(what: str, name: str, known: list[str]) -> str:
-    """Why a name of a parameter (or table) cannot be used: none is defined by that name."""
-    return f"no {what} named {name!r}{did_you_mean(name, known)}; defined: {listing(known)}"
+def undefined(what: str, name: str, known: list[str], words: Sequence[str] = ()) -> str:
+    """Why a name of a parameter (or table) cannot be used: none is defined by that name;
+    `words` are the fixed words the slot also takes ("remainder"), suggested like names."""
+    return (f"no {what} named {name!r}{did_you_mean(name, [*known, *words])}; "
+            f"defined: {listing(known)}")
 
 
 def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> str:
@@ -149,7 +151,8 @@ def check_reference(s: Scenario, ref: Reference) -> None:
         what, known = "parameter", list(s.parameters)
         if ref.tables_allowed:
             what, known = "parameter or table", known + list(s.tables)
-        raise ScenarioError(ref.path, undefined(what, ref.name, known))
+        raise ScenarioError(ref.path, undefined(what, ref.name, known,
+                                                (REMAINDER,) if ref.remainder_allowed else ()))
     p = s.parameters[ref.name]
     where = f"parameters.{p.name}"
     if p.formula is not None:

@@ -170,6 +170,7 @@ class Reference:
     role: Role
     tables_allowed: bool = False
     table_axes: tuple[str | None, ...] | None = None
+    remainder_allowed: bool = False  # so that a near miss of "remainder" is told
 
 
 @dataclass
@@ -258,6 +259,17 @@ class Node:
             self.fail(key, problem)
         return x
 
+    def number_or(self, key: str, word: str, role: Role, expect: str) -> float | None:
+        """A number, or None for the one `word` allowed in its place ("lifetime" for a
+        horizon): other text is refused with the word suggested when it is close."""
+        expect = f'{expect} or "{word}"'
+        value = self.raw(key, expect=expect)
+        if value == word:
+            return None
+        if isinstance(value, str):
+            self.fail(key, f"must be {expect}, got {describe(value)}{did_you_mean(value, [word])}")
+        return self._number(value, key, role, expect)
+
     def whole(self, key: str, default: Any = REQUIRED, minimum: int = 0,
               maximum: int | None = None) -> int:
         if key not in self.data:
@@ -338,7 +350,8 @@ class Node:
         if not IDENTIFIER.fullmatch(value):
             self.fail(key, f"must be {expect}, got {describe(value)}")
         axes = tables if isinstance(tables, tuple) else None
-        self.reading.references.append(Reference(value, self.at(key), role, bool(tables), axes))
+        self.reading.references.append(Reference(value, self.at(key), role, bool(tables), axes,
+                                                 remainder))
         return value
 
     # -- lists --------------------------------------------------------------------------

@@ -148,9 +148,7 @@ def read_replications(node: Node | None, open_population: bool, time: TimeSpec
                            "give at least 2 replications for standard errors")
     warm_up = default_warm_up
     if node.has("warm_up"):
-        expect = f'a number of {time.unit} or "{ESTIMATE}"'
-        warm_up = None if node.raw("warm_up") == ESTIMATE else \
-            node.number("warm_up", role=NON_NEGATIVE, expect=expect)
+        warm_up = node.number_or("warm_up", ESTIMATE, NON_NEGATIVE, f"a number of {time.unit}")
     if warm_up is not None and warm_up >= time.end:
         node.fail("warm_up", f"{show(warm_up)} is at or beyond the end of the run "
                              f"({show(time.end)} {time.unit}); nothing would be left to measure")

@@ -17,7 +17,7 @@ from typing import Any, Mapping
 from .checks import check_scenario, unknown_state
 from .errors import ScenarioError
 from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, VALUE_TABLE_AXES,
-                     Node, Reading, show)
+                     Node, Reading, closest, listing, show)
 from .read_capacity import check_capacity, read_capacity, strategies_with_capacity
 from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
@@ -152,14 +152,12 @@ def read_time(node: Node) -> TimeSpec:
     if not UNIT_WORD.fullmatch(unit):
         node.fail("unit", f"must be a single word such as 'years' or 'days', got {unit!r}")
     cycle = node.number("cycle", 1.0, role=POSITIVE)
-    expect = f'a number of {unit} or "{LIFETIME}"'
-    if node.raw("horizon", expect=expect) == LIFETIME:
-        horizon = None
+    horizon = node.number_or("horizon", LIFETIME, POSITIVE, f"a number of {unit}")
+    if horizon is None:
         cap = node.number("lifetime_cap", DEFAULT_LIFETIME_CAP, role=POSITIVE)
         whole_cycles(node, "lifetime_cap", cap, cycle,
                      "" if node.has("lifetime_cap") else " (the default lifetime_cap)")
     else:
-        horizon = node.number("horizon", role=POSITIVE, expect=expect)
         if node.has("lifetime_cap"):
             node.fail("lifetime_cap", f'is only used with horizon = "{LIFETIME}"')
         whole_cycles(node, "horizon", horizon, cycle)
@@ -179,9 +177,12 @@ def years_per_unit(node: Node, unit: str) -> float:
     known = YEARS_PER_UNIT.get(unit.lower().removesuffix("s"))
     if node.has("years_per_unit") or known is None:
         if not node.has("years_per_unit"):
-            known_units = ", ".join(f"{u}s" for u in YEARS_PER_UNIT)
-            node.fail("unit", f"{unit!r} is not a unit microsim knows ({known_units}); give "
-                              "time.years_per_unit, the length of one unit in years")
+            known_units = [f"{u}s" for u in YEARS_PER_UNIT]
+            close = closest(unit, known_units)
+            hint = f"; did you mean {close!r}?" if close else ""
+            node.fail("unit", f"{unit!r} is not a unit microsim knows ({listing(known_units)}"
+                              f"{hint}); give time.years_per_unit, the length of one unit in "
+                              "years")
         return node.number("years_per_unit", role=POSITIVE)
     return known
 

@@ -89,10 +89,18 @@ def partial_value(inputs: np.ndarray, incremental_effects: np.ndarray,
     return Partial(value, se, tuple(f.edf for pair in fits for f in pair))
 
 
+def fit_words(strategies, edf: tuple[float, ...]) -> str:
+    """Each fit's effective degrees of freedom in words: 'drug: QALYs 2.1, costs 3.4'."""
+    return "; ".join(f"{name}: QALYs {e:.3g}, costs {c:.3g}"
+                     for name, e, c in zip(strategies, edf[0::2], edf[1::2]))
+
+
 def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresholds,
                 comparator: str, seed: int) -> pd.DataFrame:
     """EVPPI per threshold for each group of parameters (names), beside the EVPI of the
-    same draws: threshold, group, parameters, evppi, se, evpi, edf, method.
+    same draws: threshold, group, parameters, evppi, se, evpi, edf (the largest effective
+    degrees of freedom of the group's fits, a number), edf_fits (each fit's, in words),
+    method.
 
     `parameters` holds each draw's values (column `draw`, one per parameter), `results`
     each draw's discounted costs and QALYs per strategy (the PSA's tables)."""
@@ -110,9 +118,9 @@ def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresho
         frames.append(pd.DataFrame({
             "threshold": lam, "group": " + ".join(group), "parameters": len(group),
             "evppi": found.evppi, "se": found.se, "evpi": evpi,
-            "edf": " ".join(f"{x:.3g}" for x in found.edf),
+            "edf": max(found.edf), "edf_fits": fit_words(order, found.edf),
             "method": smoothing_words(len(group))}))
     table = pd.concat(frames, ignore_index=True)
-    for column in ("group", "edf", "method"):
+    for column in ("group", "edf_fits", "method"):
         table[column] = table[column].astype("string")
     return table

@@ -105,7 +105,8 @@ def tornado_strategies(scenario: Scenario, strategy: str | None,
     names = strategy_names(scenario)
     measure = measure or ("incremental_nmb" if names else "nmb")
     if measure not in MEASURES:
-        raise ScenarioError("--measure", f"no measure {measure!r}; choose one of: "
+        raise ScenarioError("--measure", f"no measure {measure!r}"
+                                         f"{did_you_mean(measure, MEASURES)}; choose one of: "
                                          f"{', '.join(MEASURES)}")
     if not names:
         if strategy is not None:
