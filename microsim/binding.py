@@ -70,8 +70,8 @@ class BoundRisk:
     clock: str
     effects: tuple[BoundEffect, ...]
     memory: tuple[BoundMemory, ...]
-    cost: float
-    disutility: float
+    cost: float | TableSpec  # a table by level, age or time: each patient reads its own
+    disutility: float | TableSpec
 
     @property
     def is_event(self) -> bool:
@@ -100,6 +100,16 @@ class BoundRisk:
 
 
 @dataclass(frozen=True)
+class ValueTable:
+    """A state's cost or utility (or one a treatment adds) read from a table by level, age
+    or time, so that each patient has its own (`microsim.results.outcomes`). The model's
+    array of that measure holds 0 in its place, and the two add up."""
+    measure: str  # "cost" or "utility"
+    state: int
+    table: TableSpec
+
+
+@dataclass(frozen=True)
 class Treatment:
     """A strategy's treatment in numbers: who may get it, when, and what it changes."""
     strategy: str
@@ -112,6 +122,7 @@ class Treatment:
     off_factor: np.ndarray  # (R,) 1, or 0 for risks that exist only on treatment
     extra_cost: np.ndarray  # (S,) per time unit on treatment, by state
     extra_utility: np.ndarray  # (S,) per time unit on treatment, by state
+    tables: tuple[ValueTable, ...] = ()  # extra costs and utilities read from tables
 
 
 @dataclass(frozen=True)
@@ -144,6 +155,16 @@ class BoundModel:
     stay_to: np.ndarray | None = None
     # with treatment phases: which states are copies on a treatment (None: no phases)
     treated_states: np.ndarray | None = None
+    state_tables: tuple[ValueTable, ...] = ()  # states' costs and utilities read from tables
+
+    @property
+    def value_tables(self) -> tuple[TableSpec, ...]:
+        """Every distinct table a cost or utility reads (states, risks, treatment)."""
+        found = [v.table for v in self.state_tables]
+        found += [v.table for v in (() if self.treatment is None else self.treatment.tables)]
+        found += [x for r in self.risks for x in (r.cost, r.disutility)
+                  if isinstance(x, TableSpec)]
+        return tuple({t.name: t for t in found}.values())
 
     def entered(self, state: int) -> str:
         """The name memory counts an entry into `state` under: its own, or for a copy of
@@ -200,6 +221,11 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     def number(ref: Ref) -> float:
         return float(resolved[ref]) if isinstance(ref, str) else float(ref)
 
+    def resolve(ref: Ref) -> float | TableSpec:
+        """A number, or (for a cost or utility) the table each patient reads its own from."""
+        return scenario.tables[ref] if isinstance(ref, str) and ref in scenario.tables \
+            else number(ref)
+
     def probability(ref: Ref | None):
         if ref is None or ref == REMAINDER:
             return None
@@ -240,7 +266,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
             params=params, table=table, hazard=family, clock=spec.clock,
             effects=tuple(effect(e) for e in spec.effects),
             memory=tuple(memory(m) for m in spec.memory),
-            cost=number(spec.cost), disutility=number(spec.disutility))
+            cost=resolve(spec.cost), disutility=resolve(spec.disutility))
 
     def risks_of(transitions, events) -> list[BoundRisk]:
         found = [risk(t, t.name, index[t.source], index[t.target]) for t in transitions]
@@ -257,16 +283,18 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
 
     states = scenario.states
     outcomes = scenario.outcomes
-    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, number,
+    treatment = None if spec is None else bind_treatment(spec, risks, scenario, index, resolve,
                                                          sum(later, ()))
+    state_cost, cost_tables = by_state("cost", [resolve(s.cost) for s in states])
+    state_utility, utility_tables = by_state("utility", [resolve(s.utility) for s in states])
     model = BoundModel(
         scenario=scenario,
         states=scenario.state_names,
         absorbing=np.array([s.absorbing for s in states]),
         start=np.array([scenario.start.shares.get(s.name, 0.0) for s in states], float),
         start_age=scenario.start.age,
-        state_cost=np.array([number(s.cost) for s in states]),
-        state_utility=np.array([number(s.utility) for s in states]),
+        state_cost=state_cost,
+        state_utility=state_utility,
         risks=tuple(risks),
         discrete=scenario.discrete,
         cycle=scenario.time.cycle,
@@ -282,51 +310,65 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         values=resolved,
         treatment=treatment,
         start_effects=tuple((index[e.state], effect(e)) for e in scenario.start.effects),
+        state_tables=cost_tables + utility_tables,
     )
     if spec is None or not spec.phased:
         return model
     from microsim.treatment_phases import Line, with_phases
     first = tuple(r for r, risk in enumerate(risks) if risk.name in spec.on_treatment_only)
     lines = [Line(spec.name, spec.stop_on, treatment.on_factor, treatment.extra_cost,
-                  treatment.extra_utility, first)]
-    lines += [Line(line.name, line.stop_on, *bind_changes(line.changes, risks, scenario, index,
-                                                          number), adds)
-              for line, adds in zip(spec.then, later)]
+                  treatment.extra_utility, first, treatment.tables)]
+    for line, adds in zip(spec.then, later):
+        on, cost, utility, tables = bind_changes(line.changes, risks, scenario, index, resolve)
+        lines.append(Line(line.name, line.stop_on, on, cost, utility, adds, tables))
     delay = round(spec.start_delay / model.cycle) if model.discrete else 0
     return with_phases(model, spec.start_on, lines, delay)
 
 
-def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, number,
+def by_state(measure: str, values: list) -> tuple[np.ndarray, tuple[ValueTable, ...]]:
+    """One measure of every state: the numbers (0 where a table gives the value) and the
+    tables."""
+    tables = tuple(ValueTable(measure, i, v) for i, v in enumerate(values)
+                   if isinstance(v, TableSpec))
+    return np.array([0.0 if isinstance(v, TableSpec) else v for v in values]), tables
+
+
+def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, resolve,
                    later: tuple[int, ...] = ()) -> Treatment | None:
-    """The numbers of a strategy's treatment; None when it changes nothing. Off
-    treatment, the risks added for a time on treatment (the first treatment's with
-    while_treated, and every one of the `later` treatments') have a hazard of 0."""
+    """The numbers of a strategy's treatment (`resolve` gives a reference's number, or its
+    table); None when it changes nothing. Off treatment, the risks added for a time on
+    treatment (the first treatment's with while_treated, and every one of the `later`
+    treatments') have a hazard of 0."""
     if not (spec.changes or spec.transitions or spec.events or spec.phased):
         return None
-    on, cost, utility = bind_changes(spec.changes, risks, scenario, index, number)
+    on, cost, utility, tables = bind_changes(spec.changes, risks, scenario, index, resolve)
     gated = spec.on_treatment_only
     off = np.array([0.0 if risk.name in gated or r in later else 1.0
                     for r, risk in enumerate(risks)])
-    return Treatment(spec.name, spec.eligible, number(spec.uptake), spec.start,
-                     np.inf if spec.stop is None else spec.stop, number(spec.discontinuation),
-                     on, off, cost, utility)
+    return Treatment(spec.name, spec.eligible, resolve(spec.uptake), spec.start,
+                     np.inf if spec.stop is None else spec.stop, resolve(spec.discontinuation),
+                     on, off, cost, utility, tables)
 
 
-def bind_changes(changes, risks, scenario: Scenario, index, number) -> tuple[np.ndarray, ...]:
+def bind_changes(changes, risks, scenario: Scenario, index, resolve) -> tuple:
     """What a treatment's changes do in numbers: each risk's hazard multiplier, and the
-    cost and utility added in each state."""
+    cost and utility added in each state (numbers, and the tables that add theirs)."""
     on = np.ones(len(risks))
-    cost = np.zeros(len(scenario.states))
-    utility = np.zeros(len(scenario.states))
+    added = {"cost": np.zeros(len(scenario.states)), "utility": np.zeros(len(scenario.states))}
+    tables: list[ValueTable] = []
     alive = np.array([not s.absorbing for s in scenario.states])
     for change in changes:
         if change.risk is not None:
             hit = [r for r, risk in enumerate(risks)
                    if change.risk in (risk.name, f"{scenario.states[risk.source].name}->"
                                       f"{'' if risk.target is None else scenario.states[risk.target].name}")]
-            on[hit] *= number(change.hazard_ratio)
-        else:
-            where = alive if change.state is None else np.arange(len(alive)) == index[change.state]
-            cost[where] += number(change.cost)
-            utility[where] += number(change.utility)
-    return on, cost, utility
+            on[hit] *= resolve(change.hazard_ratio)
+            continue
+        where = alive if change.state is None else np.arange(len(alive)) == index[change.state]
+        for measure, numbers in added.items():
+            amount = resolve(getattr(change, measure))
+            if isinstance(amount, TableSpec):
+                tables += [ValueTable(measure, int(i), amount) for i in np.flatnonzero(where)]
+            else:
+                numbers[where] += amount
+    return on, added["cost"], added["utility"], tuple(tables)

@@ -163,7 +163,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     treated = np.zeros(len(ids), bool)
     on_a_treatment = (slice(None) if model.treated_states is None
                       else np.asarray(model.treated_states, bool))
-    exposure = Exposure.empty(len(ids), model.n_states, len(model.risks)) if keep_exposure else None
+    exposure = Exposure.empty(len(ids), model) if keep_exposure else None
     transitions = 0
     for lo in range(0, len(ids), batch_size):
         part = slice(lo, lo + batch_size)
@@ -174,7 +174,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             cycle_states = aggregate.grid_states(h, model.times)  # once, for both uses
         states[part] = (cycle_states[:, points] if cycle_states is not None and points is not None
                         else aggregate.grid_states(h, grid))
-        mine = aggregate.exposure(model, h, batch.window, cycle_states)
+        mine = aggregate.exposure(model, h, batch, cycle_states)
         for m, v in outcome_values(model, mine).items():
             values[m][part] = v
         treated[part] = mine.on_treatment[:, on_a_treatment, 0].sum(axis=1) > 0

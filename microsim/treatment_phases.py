@@ -31,7 +31,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from microsim.binding import BoundModel
+from microsim.binding import BoundModel, ValueTable
 
 STOPPED = "stopped"
 
@@ -47,6 +47,7 @@ class Line:
     cost: np.ndarray  # (S,)
     utility: np.ndarray  # (S,)
     adds: tuple[int, ...] = ()  # risks of the model that act only while this treatment is on
+    tables: tuple[ValueTable, ...] = ()  # costs and utilities read from tables
 
 
 def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
@@ -136,8 +137,16 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
     kept = sorted(kept, key=lambda e: (base[e], e))  # each state's copies together, in order
     new = {e: j for j, e in enumerate(kept)}
     live = [r for r, risk in enumerate(risks) if risk.source in new]
+    # costs and utilities from tables: a state's in each of its copies, a treatment's in
+    # the copies of its phase
+    state_tables = tuple(replace(v, state=j) for v in model.state_tables
+                         for j, e in enumerate(kept) if base[e] == v.state)
+    line_tables = tuple(replace(v, state=new[copy[k, v.state]])
+                        for k, line in enumerate(phases) if line is not None
+                        for v in line.tables
+                        if not model.absorbing[v.state] and copy[k, v.state] in new)
     treatment = replace(t, on_factor=np.array(on)[live], off_factor=np.array(off)[live],
-                        extra_cost=cost[kept], extra_utility=utility[kept])
+                        extra_cost=cost[kept], extra_utility=utility[kept], tables=line_tables)
     return replace(
         model, states=tuple(names[e] for e in kept), absorbing=model.absorbing[base[kept]],
         start=start[kept], state_cost=model.state_cost[base[kept]],
@@ -148,4 +157,4 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
         treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
         entered_names=tuple(entered[e] for e in kept),
         stay_to=None if not waits else np.array([new[stay[e]] for e in kept]),
-        treated_states=treated[kept])
+        treated_states=treated[kept], state_tables=state_tables)

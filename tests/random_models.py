@@ -99,6 +99,7 @@ class Draft:
         self.strategy: str | None = None
         self.strategy_fields: dict = {}
         self.by_level: set[str] = set()  # tables by the levels of "group"
+        self.value_tables: dict[str, dict] = {}  # utilities read from tables: name -> keys
 
     # -- random numbers ------------------------------------------------------------------
     def chance(self, p: float) -> bool:
@@ -133,6 +134,26 @@ class Draft:
             self.values.setdefault("visits", 4.0)
             return f"cost_{s}"
         return self.uniform(0, 1000, 1)
+
+    def state_utility(self, s: str) -> float | str:
+        """A state's utility: a number, or in the first living state a table made from it
+        (one draw either way, so the rest of the model is drawn as before): by group where
+        the population has groups, else by attained age where the age is known."""
+        u = self.uniform(0.3, 1.0, 3)
+        if s != self.alive[0]:
+            return u
+        if "group" in self.attributes:
+            self.features.add("utility by level")
+            self.value_tables["utility_by_group"] = dict(attribute="group", values={
+                g: round(u * f, 3) for g, f in zip(GROUPS, (1.0, 0.9, 0.75))})
+            return "utility_by_group"
+        if self.knows_age():
+            self.features.add("utility by age")
+            values = [u, round(u * 0.9, 3), round(u * 0.75, 3)]
+            self.value_tables["utility_by_age"] = dict(by="age", starts=[0.0, 65.0, 75.0],
+                                                       values=values)
+            return "utility_by_age"
+        return u
 
     def hazard_level(self) -> float:
         """A rate such that a few occurrences happen over the horizon."""
@@ -418,7 +439,7 @@ class Draft:
         else:
             time = section("time", unit=self.unit, cycle=self.cycle, horizon=self.end)
         blocks = [time, self.start_block()]
-        blocks += [state(s, utility=self.uniform(0.3, 1.0, 3), cost=self.state_cost(s))
+        blocks += [state(s, utility=self.state_utility(s), cost=self.state_cost(s))
                    for s in self.alive]
         blocks += [state(s, absorbing=True) for s in self.absorbing]
         for way in self.ways:
@@ -445,6 +466,7 @@ class Draft:
                    else table(name, by=by, starts=starts, attribute="group",
                               values=level_rows(values))
                    for name, by, starts, values in tables.values()]
+        blocks += [table(name, **keys) for name, keys in self.value_tables.items()]
         corrections = ("half-cycle", "none", "trapezoidal") + (
             ("simpson",) if self.n_cycles % 2 == 0 else ())
         costs, effects = self.pick((0.0, 0.035)), self.pick((0.0, 0.015))

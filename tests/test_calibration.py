@@ -92,7 +92,8 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "semi-Markov", "event by state", "start shares by attribute",
               "treatment on entering a state", "table by level", "lognormal on since start",
               "generalised_gamma on since start", "time ratio", "sequence",
-              "later treatment's event", "later treatment's transition"]
+              "later treatment's event", "later treatment's transition", "utility by level",
+              "utility by age"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 

@@ -97,7 +97,7 @@ def test_outcomes_of_a_capacity_that_never_binds_are_the_independent_models(name
     people = patients_for(s, 300, SEED)
     mult = patient_multipliers(cm.model, people, SEED)
     histories = simulate_events(cm.model, mult, people.patient.to_numpy(), SEED)
-    theirs = outcome_values(cm.model, exposure(cm.model, histories, mult.window))
+    theirs = outcome_values(cm.model, exposure(cm.model, histories, mult))
     for measure in ("life_years", "qalys", "qalys_discounted"):
         assert mine[measure] == pytest.approx(theirs[measure].sum(), rel=1e-9), measure
     patient_costs = theirs["costs_discounted"].sum()

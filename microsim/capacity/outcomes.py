@@ -46,7 +46,7 @@ def window_exposure(run: ServiceRun, cm: CapacityModel, lo: float, hi: float, or
     occurrences = np.zeros((h.n_patients, len(model.risks), 3))
     weights = np.exp(-np.outer(start[counted] - origin, discount_rates(model)))
     np.add.at(occurrences, (h.patient[counted], h.risk[counted]), weights)
-    return Exposure(occupancy, occurrences, on)
+    return Exposure(occupancy, occurrences, on, run.mult.levels)
 
 
 def capacity_cost(cm: CapacityModel, lo: float, hi: float, origin: float) -> tuple[float, float]:

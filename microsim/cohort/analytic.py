@@ -26,6 +26,7 @@ from microsim.cohort.time_dependence import time_dependence
 from microsim.patients.multipliers import Multipliers, multipliers
 from microsim.patients.treatment import uniform_multipliers
 from microsim.markov import discrete_outcomes
+from microsim.results.bands import Bands, band_edges, band_of, entry_ages
 from microsim.results.outcomes import Exposure
 from microsim.scenario.errors import ScenarioError
 
@@ -74,7 +75,35 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
         occupancy[:, :, w] = np.einsum("t,bts->bs", weights, trace)
         on_treatment[:, :, w] = np.einsum("t,bts,bt->bs", weights, trace, on)
         occurrences[:, :, w] = np.einsum("t,tbr->br", discrete_outcomes.discount_factors(ends, rate), flow)
-    return trace, Exposure(occupancy, occurrences, on_treatment)
+    edges = band_edges(model, mult.entry_age, batch)
+    bands = None if edges is None else cycle_bands(model, edges, mult, trace, on, flow)
+    return trace, Exposure(occupancy, occurrences, on_treatment, bands=bands)
+
+
+def cycle_bands(model, edges: np.ndarray, mult: Multipliers, trace: np.ndarray,
+                on: np.ndarray, flow: np.ndarray) -> Bands:
+    """The exposure split by bands of time: each cycle point in its band, each one-off
+    value at the end of its cycle (as the simulated histories are split)."""
+    batch, K = edges.shape[0], edges.shape[1] - 1
+    ends = model.cycle * np.arange(1, model.n_cycles + 1)
+    points, moves = (one_hot(band_of(edges, np.broadcast_to(times, (batch, len(times)))), K)
+                     for times in (model.times, ends))
+    occupancy = np.empty((batch, model.n_states, K, 3))
+    on_treatment = np.empty((batch, model.n_states, K, 3))
+    occurrences = np.empty((batch, len(model.risks), K, 3))
+    for w, rate in enumerate(discount_rates(model)):
+        weights = discrete_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                                  correction=model.correction)
+        occupancy[..., w] = np.einsum("t,bts,btk->bsk", weights, trace, points)
+        on_treatment[..., w] = np.einsum("t,bts,bt,btk->bsk", weights, trace, on, points)
+        occurrences[..., w] = np.einsum("t,tbr,btk->brk", discrete_outcomes.discount_factors(
+            ends, rate), flow, moves)
+    return Bands(edges, entry_ages(mult.entry_age, batch), occupancy, on_treatment, occurrences)
+
+
+def one_hot(index: np.ndarray, n: int) -> np.ndarray:
+    """(..., n) 1 at each index, 0 elsewhere."""
+    return (index[..., None] == np.arange(n)).astype(float)
 
 
 def piece_breaks(exp: Expansion, mult: Multipliers) -> np.ndarray:
@@ -150,8 +179,7 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
     else:
         times = model.times if times is None else np.asarray(times, float)
         trace, exposure, method = rows_result(exp, distinct, times)
-    exposure = Exposure(exposure.occupancy[inverse], exposure.occurrences[inverse],
-                        exposure.on_treatment[inverse])
+    exposure = replace(exposure, levels=distinct.levels).take(inverse)
     return CohortResult(times, cleaned(trace, model, times)[inverse], exposure, method + memory,
                         exp.exact, exp.reasons)
 

@@ -19,6 +19,7 @@ from scipy.integrate import solve_ivp
 from microsim.cohort.expand import Expansion
 from microsim.hazards.parametric import ConstantHazard
 from microsim.patients.multipliers import Multipliers
+from microsim.results.bands import Bands, band_edges, entry_ages
 from microsim.results.outcomes import Exposure
 
 RTOL, ATOL = 1e-10, 1e-12
@@ -114,12 +115,27 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
 
     y0 = np.zeros((batch, sum(sizes)))
     y0[:, :E] = exp.start_rows(mult.start, batch)
+    # the outcome integrals are running totals from time 0: read at every row's band edges
+    # too, their differences split them by band (costs and utilities by age or time)
+    edges = band_edges(model, mult.entry_age, batch)
+    if edges is not None:
+        edges = np.clip(edges, 0.0, times[-1])
+    read = times if edges is None else np.union1d(times, edges)
     solution = solve_ivp(derivative, (0.0, times[-1]), y0.ravel(), method="DOP853",
-                         t_eval=times, rtol=RTOL, atol=ATOL, max_step=model.cycle)
+                         t_eval=read, rtol=RTOL, atol=ATOL, max_step=model.cycle)
     if not solution.success:
         raise RuntimeError(f"forward equations did not solve: {solution.message}")
-    ys = solution.y.T.reshape(len(times), batch, -1)
-    trace = np.einsum("tbe,es->bts", ys[:, :, :E], collapse)
+    ys = solution.y.T.reshape(len(read), batch, -1)
+    trace = np.einsum("tbe,es->bts", ys[np.searchsorted(read, times), :, :E], collapse)
     _, occ, on, count = np.split(ys[-1], cuts, axis=1)
+    bands = None
+    if edges is not None:
+        totals = ys[np.searchsorted(read, edges), np.arange(batch)[:, None]]  # (B, K + 1, y)
+        _, b_occ, b_on, b_count = np.split(np.diff(totals, axis=1), cuts, axis=2)
+        K = edges.shape[1] - 1
+        bands = Bands(edges, entry_ages(mult.entry_age, batch),
+                      b_occ.reshape(batch, K, S, 3).swapaxes(1, 2),
+                      b_on.reshape(batch, K, S, 3).swapaxes(1, 2),
+                      b_count.reshape(batch, K, R, 3).swapaxes(1, 2))
     return trace, Exposure(occ.reshape(batch, S, 3), count.reshape(batch, R, 3),
-                           on.reshape(batch, S, 3))
+                           on.reshape(batch, S, 3), bands=bands)

@@ -11,9 +11,9 @@ arrays, so both apply exactly the same model.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property, partial
-from typing import Callable
+from typing import Callable, Mapping
 
 import numpy as np
 import pandas as pd
@@ -101,6 +101,9 @@ class Multipliers:
     log_time_scale: np.ndarray | None = None  # (patients, risks) log time ratios, if any
     start: np.ndarray | None = None  # (patients, states) own start shares; None: the model's
     tables: tuple[LevelRows, ...] = ()  # the risks' tables by level, each patient's row
+    # costs' and utilities' tables by level: table name -> (patients, levels) each patient's
+    # weight on each level (1 on its own; the average patient: the shares)
+    levels: Mapping[str, np.ndarray] = field(default_factory=dict)
 
     def level_rows(self, r: int) -> LevelRows | None:
         """Risk r's table by level as these patients read it (None: not by level)."""
@@ -138,12 +141,14 @@ class Multipliers:
                            None if self.window is None else self.window.take(index),
                            None if self.log_time_scale is None else self.log_time_scale[index],
                            None if self.start is None else self.start[index],
-                           tuple(t.take(index) for t in self.tables))
+                           tuple(t.take(index) for t in self.tables),
+                           {name: w[index] for name, w in self.levels.items()})
 
     def rows(self) -> list[np.ndarray]:
         """What makes a patient's row: multipliers, time ratios, entry age, window, start
-        shares, rows of tables by level."""
+        shares, rows of tables by level (of risks, and of costs and utilities)."""
         parts = [self.log_static] + [t.row[:, None] for t in self.tables]
+        parts += list(self.levels.values())
         if self.log_time_scale is not None:
             parts.append(self.log_time_scale)
         if self.entry_age is not None:
@@ -237,9 +242,11 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
         start = start_shares(logits, model.start > 0)
     tables = tuple(level_rows(r, risk, patients, means)
                    for r, risk in enumerate(model.risks) if risk.level_table is not None)
+    levels = {t.name: level_weights(t, patients, means)
+              for t in model.value_tables if t.attribute is not None}
     return Multipliers(log_static, slope, ages,
                        log_time_scale=log_scale if log_scale.any() else None, start=start,
-                       tables=tables)
+                       tables=tables, levels=levels)
 
 
 def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:
@@ -269,6 +276,25 @@ def level_rows(r: int, risk, patients: pd.DataFrame | None,
     shares = np.array([means(table.attribute, level) for level in table.levels])
     probability = isinstance(risk.probability, TableSpec)
     return LevelRows(r, table, average_row(rows, shares, probability), np.zeros(1, np.int64))
+
+
+def level_weights(table: TableSpec, patients: pd.DataFrame | None,
+                  means: Callable[[str, str | None], float] | None) -> np.ndarray:
+    """Each patient's weight on each level of a cost's or utility's table by level: 1 on
+    its own level; for the average patient, the population's share of each level, so that
+    it is valued at the share-weighted mean of the levels' values (a value is linear in the
+    levels' 0/1 indicators, and the average patient has their means)."""
+    if patients is None:
+        if means is None:
+            raise ValueError(f"the cohort needs the shares of attribute {table.attribute!r}")
+        return np.array([[means(table.attribute, level) for level in table.levels]])
+    column = patients[table.attribute].astype(str).to_numpy()
+    weights = (column[:, None] == np.array(table.levels)[None, :]).astype(float)
+    if not weights.sum(axis=1).all():
+        level = column[weights.sum(axis=1) == 0][0]
+        raise ValueError(f"table {table.name!r} has no value for level {level!r} of "
+                         f"{table.attribute!r}")
+    return weights
 
 
 def average_row(rows: np.ndarray, shares: np.ndarray, probability: bool) -> np.ndarray:
@@ -302,7 +328,8 @@ def cohort_multipliers(model: BoundModel) -> Multipliers:
 def _uses_age(model: BoundModel) -> bool:
     return any(e.attribute == AGE for r in model.risks for e in r.effects) or any(
         r.clock == "age" for r in model.risks) or any(
-        e.attribute == AGE for _, e in model.start_effects)
+        e.attribute == AGE for _, e in model.start_effects) or any(
+        t.by == AGE for t in model.value_tables)
 
 
 def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
@@ -316,8 +343,9 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     HR ** share, and a table by level gives the share-weighted geometric mean of its
     levels' hazards (`average_row`). Attained age moves on from the mean entry age. Start
     shares that depend on attributes take the mean attributes the same way: they enter the
-    log odds linearly. Keeping every patient's window means that under a strategy
-    the average patient is treated as the patients are (the same share treated, from the
+    log odds linearly, and so do costs and utilities by level (the share-weighted mean of
+    the levels' values, `level_weights`). Keeping every patient's window means that under a
+    strategy the average patient is treated as the patients are (the same share treated, from the
     same start, stopping at the same times), so the comparison isolates the attributes.
     Feeding a cohort model mean covariates is common practice; Jensen's inequality is why
     it differs from the mean of the patients' own results."""
@@ -329,4 +357,5 @@ def average_patient(cohort: Multipliers, patients: Multipliers) -> Multipliers:
     ages = None if cohort.entry_age is None else first(cohort.entry_age)
     return Multipliers(first(cohort.log_static), cohort.age_slope, ages, patients.window,
                        first(cohort.log_time_scale), first(cohort.start),
-                       tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables))
+                       tuple(t.take(np.zeros(n, np.int64)) for t in cohort.tables),
+                       {name: first(w) for name, w in cohort.levels.items()})

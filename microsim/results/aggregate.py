@@ -11,9 +11,10 @@ import numpy as np
 from numba import njit
 
 from microsim.binding import BoundModel
-from microsim.patients.multipliers import Window
+from microsim.patients.multipliers import Multipliers, Window
 from microsim.engines.histories import Histories
 from microsim.markov import discrete_outcomes as cycle_outcomes
+from microsim.results.bands import Bands, band_edges, band_of, entry_ages
 from microsim.results.outcomes import Exposure
 
 
@@ -45,14 +46,18 @@ def grid_states(h: Histories, grid: np.ndarray) -> np.ndarray:
     return states.astype(np.int16)
 
 
-def occurrences(model: BoundModel, h: Histories) -> np.ndarray:
+def occurrences(model: BoundModel, h: Histories, edges: np.ndarray | None = None) -> np.ndarray:
     """(B, R, 3) occurrences of each risk: counted, and discounted at the two rates (each
-    patient's in record order)."""
-    out = np.zeros((h.n_patients, len(model.risks), 3))
+    patient's in record order); with band `edges` (B, K + 1), (B, R, K, 3) by the band
+    each happened in."""
+    R, K = len(model.risks), 1 if edges is None else edges.shape[1] - 1
+    out = np.zeros((h.n_patients, R * K, 3))
     happened = np.flatnonzero(h.risk >= 0)
-    weights = np.exp(-np.outer(h.time[happened], discount_rates(model)))
-    _add_rows(out, h.patient[happened], h.risk[happened], weights)
-    return out
+    patient, time = h.patient[happened], h.time[happened]
+    weights = np.exp(-np.outer(time, discount_rates(model)))
+    cell = h.risk[happened] * K + (0 if edges is None else band_of(edges[patient], time))
+    _add_rows(out, patient, cell, weights)
+    return out if edges is None else out.reshape(h.n_patients, R, K, 3)
 
 
 @njit(cache=True)
@@ -73,43 +78,76 @@ def sojourn_integrals(model: BoundModel, a: np.ndarray, b: np.ndarray) -> np.nda
     return np.where((b > a)[:, None], value, 0.0)
 
 
-def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None) -> np.ndarray:
+def banded_sojourns(model: BoundModel, h: Histories, a: np.ndarray, b: np.ndarray,
+                    edges: np.ndarray) -> np.ndarray:
+    """(B, S, K, 3) the sojourns [a, b) of the records in their states, split at each
+    patient's band edges (B, K + 1)."""
+    out = np.zeros((h.n_patients, model.n_states, edges.shape[1] - 1, 3))
+    lows, highs = edges[h.patient, :-1], edges[h.patient, 1:]
+    for k in range(edges.shape[1] - 1):
+        np.add.at(out, (h.patient, h.target, k), sojourn_integrals(
+            model, np.maximum(a, lows[:, k]), np.minimum(b, highs[:, k])))
+    return out
+
+
+def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None,
+                    edges: np.ndarray | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    a patient is on treatment, when a `window` is given). Each patient's sum runs over its
-    own cycle points in time order, so it does not depend on the batch."""
+    a patient is on treatment, when a `window` is given); with band `edges` (B, K + 1),
+    (B, S, K, 3) by the band of each point. Each patient's sum runs over its own cycle
+    points in time order, so it does not depend on the batch."""
     weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
                                                      correction=model.correction)
                         for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
-    B = states.shape[0]
+    B, S = states.shape[0], model.n_states
+    times = np.asarray(model.times, float)
     on = np.full(B, -np.inf) if window is None else np.asarray(window.on, float)
     off = np.full(B, np.inf) if window is None else np.asarray(window.off, float)
-    return _occupancy(states, weights, model.n_states, np.asarray(model.times, float), on, off)
+    K = 1 if edges is None else edges.shape[1] - 1
+    band = (np.zeros(states.shape, np.int64) if edges is None
+            else band_of(edges, np.broadcast_to(times, states.shape)))
+    out = _occupancy(states, weights, S, K, band, times, on, off)
+    return out.reshape(B, S, 3) if edges is None else out.reshape(B, S, K, 3)
 
 
 @njit(cache=True)
-def _occupancy(states, weights, n_states, times, on, off):
-    """out[b, s] = sum over the points t where patient b is in s and on[b] <= t < off[b]
-    of weights[t], added in time order; a point with state -1 adds nothing."""
+def _occupancy(states, weights, n_states, n_bands, band, times, on, off):
+    """out[b, s * n_bands + band[b, t]] = sum over the points t where patient b is in s
+    and on[b] <= t < off[b] of weights[t], added in time order; a point with state -1 adds
+    nothing."""
     B, T = states.shape
-    out = np.zeros((B, n_states, weights.shape[1]))
+    out = np.zeros((B, n_states * n_bands, weights.shape[1]))
     for b in range(B):
         for t in range(T):
             s = states[b, t]
             if s >= 0 and on[b] <= times[t] < off[b]:
                 for w in range(weights.shape[1]):
-                    out[b, s, w] += weights[t, w]
+                    out[b, s * n_bands + band[b, t], w] += weights[t, w]
     return out
 
 
-def exposure(model: BoundModel, h: Histories, window: Window | None = None,
+def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
              states: np.ndarray | None = None) -> Exposure:
-    """Per-patient time in state (and on treatment) and occurrences from histories (cycle
-    models: `states` on the cycle points, when the caller has them already)."""
+    """Per-patient time in state (and on treatment, under `mult`'s window) and occurrences
+    from histories (cycle models: `states` on the cycle points, when the caller has them
+    already), with `mult`'s weights on the levels of the tables of costs and utilities,
+    and split by their bands of time where they are by age or time."""
+    window = None if mult is None else mult.window
+    entry_age = None if mult is None else mult.entry_age
+    edges = band_edges(model, entry_age, h.n_patients)
+    levels = {} if mult is None else mult.levels
     if model.discrete:
         states = grid_states(h, model.times) if states is None else states
         occupancy = cycle_occupancy(model, states)
         on = np.zeros_like(occupancy) if window is None else cycle_occupancy(model, states, window)
-        return Exposure(occupancy, occurrences(model, h), on)
+        bands = None
+        if edges is not None:
+            split = cycle_occupancy(model, states, edges=edges)
+            bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
+                          np.zeros_like(split) if window is None
+                          else cycle_occupancy(model, states, window, edges),
+                          occurrences(model, h, edges))
+        return Exposure(occupancy, occurrences(model, h), on, levels, bands)
     end = model.n_cycles * model.cycle
     a, b = h.time, next_times(h, end)
     occupancy = np.zeros((h.n_patients, model.n_states, 3))
@@ -117,6 +155,13 @@ def exposure(model: BoundModel, h: Histories, window: Window | None = None,
     on = np.zeros_like(occupancy)
     if window is not None:
         start, stop = window.on[h.patient], window.off[h.patient]
-        np.add.at(on, (h.patient, h.target),
-                  sojourn_integrals(model, np.maximum(a, start), np.minimum(b, stop)))
-    return Exposure(occupancy, occurrences(model, h), on)
+        on_from, on_to = np.maximum(a, start), np.minimum(b, stop)
+        np.add.at(on, (h.patient, h.target), sojourn_integrals(model, on_from, on_to))
+    bands = None
+    if edges is not None:
+        split = banded_sojourns(model, h, a, b, edges)
+        bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
+                      np.zeros_like(split) if window is None
+                      else banded_sojourns(model, h, on_from, on_to, edges),
+                      occurrences(model, h, edges))
+    return Exposure(occupancy, occurrences(model, h), on, levels, bands)

@@ -130,9 +130,16 @@ def check_reference(s: Scenario, ref: Reference) -> None:
     role = ref.role
     if ref.name in s.tables:
         if not ref.tables_allowed:
-            raise ScenarioError(ref.path, f"{ref.name!r} is a table; a table can only give "
-                                "the probability or rate of a transition or event")
+            raise ScenarioError(ref.path, f"{ref.name!r} is a table; a table can give a "
+                                "probability or rate of a transition or event, or a cost or "
+                                "a utility, but not this value")
         table = s.tables[ref.name]
+        if ref.table_axes is not None and table.by not in ref.table_axes:
+            raise ScenarioError(ref.path, f"table {ref.name!r} is by {table.by}; a cost or a "
+                                "utility can read a table by level, by age or by time (since "
+                                "the start); give values by time in state through tunnel "
+                                "states instead")
+        check_value_table_covers(s, table, ref)
         for k, row in enumerate(table.rows):
             for i, value in enumerate(row):
                 problem = role.problem(value)
@@ -166,6 +173,32 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 f"{role.noun} at {ref.path} ({role.rule}); choose a "
                                 "distribution that stays in that range, or set "
                                 'uncertainty.invalid_draws = "redraw" or "truncate"')
+
+
+def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
+                             youngest: float | None = None) -> None:
+    """A cost or utility by time must start at time 0, and one by age at or below the
+    youngest age a patient can have at time 0 (`youngest`, else `youngest_age`; a start at
+    0 covers every age): every patient needs a value throughout, which a value carried below
+    the first start would only pretend to give."""
+    if ref.table_axes is None or table.by is None:
+        return
+    first = table.starts[0]
+    where = f"tables.{table.name}.starts"
+    if table.by == "time" and first > 0:
+        raise ScenarioError(where, f"starts at {show(first)}, but {ref.path} needs a value "
+                            "from time 0; make the first start 0")
+    youngest = youngest_age(s) if youngest is None else youngest
+    if table.by == AGE and youngest is not None and first > max(youngest, 0.0):
+        raise ScenarioError(where, f"starts at age {show(first)}, but a patient can be "
+                            f"{show(youngest)} at time 0 and {ref.path} needs a value at "
+                            f"every age; make the first start at most {show(max(youngest, 0.0))} "
+                            "(0 covers every age)")
+
+
+def value_uses(s: Scenario) -> list[Reference]:
+    """The uses of tables as costs or utilities."""
+    return [r for r in s.uses if r.table_axes is not None and r.name in s.tables]
 
 
 def check_derived(s: Scenario, ref: Reference) -> None:

@@ -156,13 +156,20 @@ COMPETING_PROBABILITY = Role("a probability of a move that competes with others"
 that would leave the others nothing to compete for."""
 
 
+VALUE_TABLE_AXES = (None, "age", "time")
+"""The `by` of a table that may give a cost or a utility: by level alone, by attained age or
+by time since the start (each with or without level); each patient reads its own value."""
+
+
 @dataclass(frozen=True)
 class Reference:
-    """A name found where a number belongs: resolved and checked by the second pass."""
+    """A name found where a number belongs: resolved and checked by the second pass.
+    `table_axes` (when tables are allowed) limits the `by` of the table (None: any)."""
     name: str
     path: str
     role: Role
     tables_allowed: bool = False
+    table_axes: tuple[str | None, ...] | None = None
     remainder_allowed: bool = False  # so that a near miss of "remainder" is told
 
 
@@ -320,9 +327,10 @@ class Node:
             self.fail(key, f"must be true or false, got {describe(value)}")
         return value
 
-    def ref(self, key: str, role: Role, default: Any = REQUIRED, *, tables: bool = False,
-            remainder: bool = False) -> Ref:
-        """A number, or a parameter (or table) name recorded for the second pass."""
+    def ref(self, key: str, role: Role, default: Any = REQUIRED, *,
+            tables: bool | tuple[str | None, ...] = False, remainder: bool = False) -> Ref:
+        """A number, or a parameter (or table) name recorded for the second pass; `tables`
+        True allows any table, a tuple only tables by those axes (VALUE_TABLE_AXES)."""
         expect = "a number, a parameter name or a table name" if tables else \
             "a number or a parameter name"
         if remainder:
@@ -331,8 +339,8 @@ class Node:
             return self.raw(key, default, expect)
         return self._ref(self.data[key], key, role, expect, tables, remainder)
 
-    def _ref(self, value: Any, key: str, role: Role, expect: str, tables: bool,
-             remainder: bool) -> Ref:
+    def _ref(self, value: Any, key: str, role: Role, expect: str,
+             tables: bool | tuple[str | None, ...], remainder: bool) -> Ref:
         if not isinstance(value, str):
             return self._number(value, key, role, expect)
         if value == REMAINDER:
@@ -341,7 +349,9 @@ class Node:
             self.fail(key, '"remainder" is only valid as the probability of a transition')
         if not IDENTIFIER.fullmatch(value):
             self.fail(key, f"must be {expect}, got {describe(value)}")
-        self.reading.references.append(Reference(value, self.at(key), role, tables, remainder))
+        axes = tables if isinstance(tables, tuple) else None
+        self.reading.references.append(Reference(value, self.at(key), role, bool(tables), axes,
+                                                 remainder))
         return value
 
     # -- lists --------------------------------------------------------------------------

@@ -227,6 +227,13 @@ def check_plan(s: Scenario, model: Scenario, capacity: CapacitySpec, prefix: str
             raise ScenarioError(f"tables.{table.name}.attribute", "a table by level is not "
                                 "available in a service with arrivals or resources; give the "
                                 "levels' rates by effects of the attribute instead")
+    for use in reading.references:
+        table = s.tables.get(use.name)
+        if use.table_axes is not None and table is not None and table.by is not None:
+            raise ScenarioError(use.path, f"table {table.name!r} is by {table.by}; a cost or "
+                                "a utility by age or time is not available in a service with "
+                                "arrivals or resources (its patients enter at their own "
+                                "times); give a number, or a table by level alone")
     if capacity.arrivals is not None and isinstance(capacity.arrivals.rate, str):
         table = s.tables.get(capacity.arrivals.rate)
         if table is not None and (table.by != "time" or table.attribute is not None):

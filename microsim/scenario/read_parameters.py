@@ -144,8 +144,9 @@ def read_tables(node: Node | None) -> dict[str, TableSpec]:
 
 
 def band_values(node: Node, key: str, n_starts: int) -> tuple[float, ...]:
-    """One value per start (rates or probabilities, each >= 0)."""
-    values = node.numbers(key, role=NON_NEGATIVE)
+    """One value per start: any numbers here, since what they may be (a rate, a
+    probability, a utility, ...) depends on where the table is used (checks.check_reference)."""
+    values = node.numbers(key)
     if len(values) != n_starts:
         node.fail(key, f"has {len(values)} values but starts has {n_starts}; "
                        "give one value per start")
@@ -172,5 +173,5 @@ def level_entries(entry: Node, attribute: str, each: str) -> tuple[tuple[str, ..
 def read_level_table(entry: Node, name: str, attribute: str) -> TableSpec:
     """A table by level alone: one number per level, constant in time."""
     levels, rows = level_entries(entry, attribute, "a number")
-    values = tuple(rows.number(level, role=NON_NEGATIVE) for level in levels)
+    values = tuple(rows.number(level) for level in levels)
     return TableSpec(name, None, (0.0,), values, attribute, levels)

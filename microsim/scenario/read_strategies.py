@@ -19,8 +19,8 @@ from .checks import (check_age_known, check_effects, check_kind, check_lifetime,
                      not_a_level, occurrences, population_kinds, reachable_from_start,
                      unknown_attribute, unknown_state)
 from .errors import ScenarioError
-from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, Node, Reading, Role,
-                     describe, did_you_mean, listing, show)
+from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, VALUE_TABLE_AXES, Node,
+                     Reading, Role, describe, did_you_mean, listing, show)
 from .read_transitions import read_events, read_transitions
 from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec,
                    EventSpec, LineSpec, Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec,
@@ -228,8 +228,9 @@ def read_change(node: Node) -> ChangeSpec:
     if not any(node.has(k) for k in ("cost", "utility")):
         node.fail(None, "needs transition with hazard_ratio, or cost and/or utility (optionally "
                         "for one state)")
-    return ChangeSpec(state=node.name("state", None), cost=node.ref("cost", TREATMENT_COST, 0.0),
-                      utility=node.ref("utility", ANY, 0.0))
+    return ChangeSpec(state=node.name("state", None),
+                      cost=node.ref("cost", TREATMENT_COST, 0.0, tables=VALUE_TABLE_AXES),
+                      utility=node.ref("utility", ANY, 0.0, tables=VALUE_TABLE_AXES))
 
 
 # -- second pass ------------------------------------------------------------------------------

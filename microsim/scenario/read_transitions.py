@@ -7,8 +7,8 @@ from dataclasses import replace
 from typing import Any, Mapping
 
 from .fields import (AGE, ANY, HAZARD_RATIO, IDENTIFIER, MULTIPLIER, ODDS_RATIO, POSITIVE,
-                     PROBABILITY, RATE, TIME_RATIO, Node, Reference, did_you_mean, listing,
-                     show)
+                     PROBABILITY, RATE, TIME_RATIO, VALUE_TABLE_AXES, Node, Reference,
+                     did_you_mean, listing, show)
 from .spec import Ref
 from .spec import EffectSpec, EventSpec, HazardSpec, MemorySpec, TableSpec, TransitionSpec
 
@@ -113,7 +113,8 @@ def read_occurrence(node: Node, tables: Mapping[str, TableSpec], remainder: bool
         probability=probability, hazard=hazard, clock=read_clock(node, table),
         effects=effects,
         memory=tuple(read_memory(n) for n in node.nodes("memory", MEMORY_KEYS)),
-        cost=node.ref("cost", ANY, 0.0), disutility=node.ref("disutility", ANY, 0.0))
+        cost=node.ref("cost", ANY, 0.0, tables=VALUE_TABLE_AXES),
+        disutility=node.ref("disutility", ANY, 0.0, tables=VALUE_TABLE_AXES))
 
 
 def read_hazard(node: Node, tables: Mapping[str, TableSpec]) -> HazardSpec:

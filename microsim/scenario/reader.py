@@ -16,8 +16,8 @@ from typing import Any, Mapping
 
 from .checks import check_scenario, unknown_state
 from .errors import ScenarioError
-from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, Node, Reading,
-                     closest, listing, show)
+from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, VALUE_TABLE_AXES,
+                     Node, Reading, closest, listing, show)
 from .read_capacity import check_capacity, read_capacity, strategies_with_capacity
 from .read_economics import ECONOMICS_KEYS, check_economics, read_economics
 from .read_parameters import read_parameters, read_tables
@@ -206,7 +206,8 @@ def read_states(nodes: list[Node]) -> tuple[StateSpec, ...]:
         states.append(StateSpec(
             name=name, label=node.text("label", name, nonempty=True),
             absorbing=node.flag("absorbing", False),
-            cost=node.ref("cost", ANY, 0.0), utility=node.ref("utility", UTILITY, 0.0)))
+            cost=node.ref("cost", ANY, 0.0, tables=VALUE_TABLE_AXES),
+            utility=node.ref("utility", UTILITY, 0.0, tables=VALUE_TABLE_AXES)))
     return tuple(states)
 
 

@@ -16,7 +16,8 @@ if TYPE_CHECKING:
     from .formulas import Formula
 
 Ref = float | str
-"""A literal number, or the name of a parameter (or, for transition values, a table)."""
+"""A literal number, or the name of a parameter (or, for probabilities, rates, costs and
+utilities, a table)."""
 
 REMAINDER = "remainder"
 """Reserved value of a transition probability: one minus the other probabilities of the row."""
