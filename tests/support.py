@@ -272,3 +272,14 @@ def assert_engines_agree(model, ids, seed, rtol: float = 0.0):
     recorded = {r for r, risk in enumerate(model.risks) if risk.target != risk.source}
     assert recorded <= set(got.risk.tolist()), "some risk never happens"
     return expected
+
+
+def assert_equal_columns(expected, got, columns) -> None:
+    """Two engines' histories: the same patients, and the same `columns`, dtype and value,
+    element for element (the first differing rows named when they are not)."""
+    assert got.n_patients == expected.n_patients
+    for name in columns:
+        a, b = getattr(expected, name), getattr(got, name)
+        assert a.dtype == b.dtype, name
+        assert np.array_equal(a, b), (name, np.flatnonzero(a != b)[:5] if a.shape == b.shape
+                                      else (a.shape, b.shape))

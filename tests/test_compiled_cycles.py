@@ -13,7 +13,7 @@ from microsim.binding import bind
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, StrategySpec,
                                     TransitionSpec)
-from support import (both_engines, after, attribute, effect, event, horizon, population, probability, start,
+from support import (assert_equal_columns, both_engines, after, attribute, effect, event, horizon, population, probability, start,
                      state, scenario_text, table)
 
 COLUMNS = ("patient", "time", "source", "target", "risk")
@@ -134,12 +134,7 @@ def treated_model(rule: str = "separate"):
 
 
 def assert_identical(expected, got):
-    assert got.n_patients == expected.n_patients
-    for name in COLUMNS:
-        a, b = getattr(expected, name), getattr(got, name)
-        assert a.dtype == b.dtype, name
-        assert np.array_equal(a, b), (name, np.flatnonzero(a != b)[:5] if a.shape == b.shape
-                                      else (a.shape, b.shape))
+    assert_equal_columns(expected, got, COLUMNS)
 
 
 def assert_every_risk_happens(model, histories):

@@ -29,6 +29,7 @@ from microsim.simulation import simulate
 from support import (assert_engines_agree, assert_refused, attribute, both_engines, horizon,
                      move, nested, population, probability, rate, records_by_patient,
                      scenario_text, start, state, strategy)
+from test_treatment_phases import PATHWAY
 
 COMPARATOR = strategy("usual", comparator=True)
 
@@ -87,16 +88,10 @@ def named(model, values: np.ndarray, names: list[str]) -> np.ndarray:
     return values[..., [model.states.index(n) for n in names]]
 
 
-# a rate model: first-line treatment on progression until relapse, then a second line that
-# may cause neutropenia (an added state of the strategy, left at a rate whatever the
-# treatment) and a rash (an event of its own), neither of which exists before it starts
-PATHWAY = [
-    horizon(12), start(stable=0.9, progressed=0.1),
-    state("stable", cost=100, utility=0.9), state("progressed", cost=300, utility=0.7),
-    state("relapsed", cost=500, utility=0.5), state("dead", absorbing=True),
-    rate("stable", "progressed", 0.2), rate("stable", "dead", 0.02),
-    rate("progressed", "relapsed", 0.3, name="relapse"), rate("progressed", "dead", 0.1),
-    rate("relapsed", "dead", 0.4, name="die_relapsed")]
+# a rate model (test_treatment_phases.PATHWAY): first-line treatment on progression until
+# relapse, then a second line that may cause neutropenia (an added state of the strategy,
+# left at a rate whatever the treatment) and a rash (an event of its own), neither of which
+# exists before it starts
 
 
 RASH = [nested(name="rash", states=["relapsed"], rate=0.8, cost=150)]

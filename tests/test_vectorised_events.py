@@ -24,7 +24,7 @@ from microsim.patients.treatment import patient_multipliers
 from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario, read_scenario
 from microsim.simulation import simulate
-from support import (both_engines, records_by_patient, after, attribute, effect, event, horizon, move, nested,
+from support import (assert_equal_columns, both_engines, records_by_patient, after, attribute, effect, event, horizon, move, nested,
                      population, rate, scenario_text, start, state, strategy, table,
                      transition)
 
@@ -213,12 +213,7 @@ def bound(text, strategy_name=None):
 
 
 def assert_same_histories(expected, got, rtol):
-    assert got.n_patients == expected.n_patients
-    for name in COLUMNS:
-        a, b = getattr(expected, name), getattr(got, name)
-        assert a.dtype == b.dtype, name
-        assert np.array_equal(a, b), (name, np.flatnonzero(a != b)[:5] if a.shape == b.shape
-                                      else (a.shape, b.shape))
+    assert_equal_columns(expected, got, COLUMNS)
     assert got.time.dtype == expected.time.dtype
     if rtol == 0:
         assert np.array_equal(got.time, expected.time)
