@@ -7,6 +7,8 @@ the scenario's within-cycle rule on the cycle points in cycle models.
 """
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 from numba import njit
 
@@ -90,15 +92,24 @@ def banded_sojourns(model: BoundModel, h: Histories, a: np.ndarray, b: np.ndarra
     return out
 
 
+@lru_cache(maxsize=64)
+def point_weights(n_cycles: int, cycle: float, rates: tuple[float, ...], correction: str) -> np.ndarray:
+    """(T, len(rates)) each cycle point's weight by the cycle rule at each discount rate,
+    made once for a model and shared by its batches (read only)."""
+    weights = np.stack([cycle_outcomes.cycle_weights(n_cycles, cycle, rate, correction=correction)
+                        for rate in rates], axis=1)
+    weights.flags.writeable = False
+    return weights
+
+
 def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None,
                     edges: np.ndarray | None = None) -> np.ndarray:
     """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
     a patient is on treatment, when a `window` is given); with band `edges` (B, K + 1),
     (B, S, K, 3) by the band of each point. Each patient's sum runs over its own cycle
     points in time order, so it does not depend on the batch."""
-    weights = np.stack([cycle_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
-                                                     correction=model.correction)
-                        for rate in (0.0, model.discount_costs, model.discount_effects)], axis=1)
+    weights = point_weights(model.n_cycles, model.cycle,
+                            (0.0, model.discount_costs, model.discount_effects), model.correction)
     B, S = states.shape[0], model.n_states
     times = np.asarray(model.times, float)
     on = np.full(B, -np.inf) if window is None else np.asarray(window.on, float)
