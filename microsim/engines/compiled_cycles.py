@@ -324,6 +324,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
 
 @njit(cache=True, _nrt=False)
 def _occur(risks, r, b, end, counts, last):
+    """Risk r happened to patient b at `end`: the memory it advances moves on."""
     for j in range(risks.bump_ptr[r], risks.bump_ptr[r + 1]):
         counts[b, risks.bumps[j]] += 1
         last[b, risks.bumps[j]] = end
@@ -351,8 +352,7 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     while True:
         first, used, failed, cycle, total = _run(
             rows, risks, people, float(model.cycle), model.n_cycles, LIMIT, per_patient, start,
-            counts, last,
-            first, on_points, *buffers, used, scratch)
+            counts, last, first, on_points, *buffers, used, scratch)
         if failed >= 0:
             raise overflow(row_name(model, int(on_points[failed, cycle])), float(total),
                            f"patient {ids[failed]}", int(cycle))
@@ -364,5 +364,6 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
 
 
 def _buffers(capacity: int):
+    """Room for `capacity` records: patient row, time, from state, to state, risk."""
     return (np.empty(capacity, np.int64), np.empty(capacity), np.empty(capacity, np.int16),
             np.empty(capacity, np.int16), np.empty(capacity, np.int32))
