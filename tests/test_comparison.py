@@ -11,7 +11,7 @@ from microsim.cohort import analytic as analytic_module
 from microsim.cohort.analytic import analytic, cleaned
 from microsim.patients.multipliers import Window, average_patient
 from microsim.patients.population import cohort_patients, draw_population
-from microsim.results.comparison import (EXACT, ComparisonSums, compare, comparison_grid,
+from microsim.results.comparison import (EXACT, MONTE_CARLO, ComparisonSums, compare, comparison_grid,
                                          share_p_values)
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.results.outcomes import outcome_values
@@ -65,8 +65,14 @@ def test_a_standard_error_of_round_off_is_shown_as_0_and_a_real_one_is_kept():
     sums.add(sim)
     raw = {m: moments.se for m, moments in sums.deviations.items()}
     assert 0 < max(raw.values()) < 1e-12  # round-off, not Monte-Carlo error (measured)
-    outcomes = sums.finish().outcomes
-    assert (outcomes.test == EXACT).all() and (outcomes.se == 0.0).all()
+    outcomes = sums.finish().outcomes.set_index("measure")
+    # no row shows round-off as a standard error: life years (everyone alive 7 years) have
+    # no Monte-Carlo error; the others are certain too, but the trace varies between states
+    # and the comparison does not look at values to tell, so it leaves them untested rather
+    # than trust patients who do not vary (test_patients_who_happen_not_to_vary_are_no_deterministic_outcome)
+    assert outcomes.test["life_years"] == EXACT and outcomes.se["life_years"] == 0.0
+    assert (outcomes.test != MONTE_CARLO).all()
+    assert ((outcomes.se == 0.0) | outcomes.se.isna()).all()
     # where patients differ, the standard error stays what the patients give
     kept = compare(simulate(model_of(NEVER_ABSORBED), cohort_patients(500), 3)).outcomes
     varied = kept[kept.test != EXACT]
@@ -343,3 +349,20 @@ def test_a_run_compares_a_long_horizon_on_the_thinned_grid():
     model = long_model(1001)
     [check] = run_population(model.scenario, 50, 3).validations.values()
     np.testing.assert_array_equal(np.unique(check.shares.time), comparison_grid(model))
+
+
+def test_patients_who_happen_not_to_vary_are_no_deterministic_outcome():
+    # a practitioner's trial: three patients of a model with a 1% yearly death risk all
+    # lived 5 years, so their outcomes had no spread; that is chance, not a deterministic
+    # outcome, and must not be tested as one (it was, and the run "disagreed")
+    model = model_of(scenario_text(
+        horizon(5, cycle=1), start(well=1.0), state("well", cost=100, utility=0.8),
+        state("dead", absorbing=True), probability("well", "dead", 0.01),
+        probability("well", "well", "remainder")))
+    sim = simulate(model, cohort_patients(3), 5)
+    assert np.all(sim.values["life_years"] == 5.0)  # nobody died: no spread at all
+    result = compare(sim)
+    outcomes = result.outcomes.set_index("measure")
+    assert (outcomes.test != EXACT).all() and outcomes.se.isna().all()
+    assert result.agrees is True
+    assert "not tested" in result.verdict

@@ -457,3 +457,24 @@ def test_a_service_values_each_patient_at_its_own_level():
     for measure in ("qalys", "qalys_discounted"):
         assert mine[measure] == pytest.approx(theirs[measure].sum(), rel=1e-9), measure
 
+
+
+def test_a_batch_in_which_nobody_moves_is_valued_by_age():
+    # a practitioner's trial: a batch with no record but the starts crashed the valuation
+    # by age bands; with a death probability of 0 every patient stays 5 years in 'well' and
+    # costs 100 a year until age 62, then 200; by hand, the trapezoidal rule on the cycle
+    # points at ages 60..65 (weights 1/2, 1, 1, 1, 1, 1/2; Elbasha & Chhatwal 2016, from
+    # memory), undiscounted: 100/2 + 100 + 3 * 200 + 200/2 = 850
+    from microsim.patients.population import cohort_patients
+    from microsim.results.comparison import EXACT, compare
+    from microsim.simulation import simulate
+    from support import model_of, probability, scenario_text, start, state, table
+    model = model_of(scenario_text(
+        horizon(5, cycle=1), start(age=60, well=1.0), state("well", cost="cost_well", utility=0.8),
+        state("dead", absorbing=True), probability("well", "dead", 0.0),
+        probability("well", "well", "remainder"),
+        table("cost_well", by="age", starts=[0, 62], values=[100, 200])))
+    sim = simulate(model, cohort_patients(4), 3, batch_size=2)
+    np.testing.assert_allclose(sim.values["costs"], 100 / 2 + 100 + 3 * 200 + 200 / 2, rtol=1e-12)
+    result = compare(sim)
+    assert result.agrees is True and (result.outcomes.test == EXACT).all()

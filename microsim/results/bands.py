@@ -90,7 +90,7 @@ def band_edges(model: BoundModel, entry_age: np.ndarray | None, rows: int) -> np
 def band_of(edges: np.ndarray, times: np.ndarray) -> np.ndarray:
     """The band of each time: `times` (B, ...) of the rows of `edges` (B, K + 1); a time at
     an edge is in the band that starts there (a table's value holds from its start)."""
-    inner = edges[:, 1:-1].reshape(edges.shape[0], *([1] * (times.ndim - 1)), -1)
+    inner = edges[:, 1:-1].reshape(edges.shape[0], *([1] * (times.ndim - 1)), edges.shape[1] - 2)
     return (times[..., None] >= inner).sum(axis=-1)
 
 

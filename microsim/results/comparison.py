@@ -48,6 +48,7 @@ ROUNDOFF = 1e-7  # relative difference that numerical error alone can explain (f
 # point in the engines, and the forward equations' rtol of 1e-10 over long horizons)
 MONTE_CARLO = "Monte-Carlo"
 EXACT = f"no Monte-Carlo error: equal within {ROUNDOFF:g} (relative)"
+UNSEEN = "not tested: the patients did not vary, though the model does (too few to estimate the Monte-Carlo error)"
 SHARE_COLUMNS = ["time", "state", "simulated", "analytic", "se", "z", "p_value", "test"]
 
 
@@ -81,6 +82,11 @@ def z_scores(difference: np.ndarray, se: np.ndarray) -> np.ndarray:
         z = difference / se
         jump = np.where(np.abs(difference) < 1e-12, 0.0, np.copysign(np.inf, difference))
     return np.where(se > 0, z, jump)
+
+
+def between(shares) -> np.ndarray:
+    """Which shares are strictly between 0 and 1 (beyond numerical error)."""
+    return (shares > ROUNDOFF) & (shares < 1.0 - ROUNDOFF)
 
 
 def without_error(difference, se, scale) -> tuple[np.ndarray, np.ndarray]:
@@ -209,6 +215,11 @@ class ComparisonSums:
     average: dict = field(default_factory=dict)  # measure -> [population, average] sums
     paired: dict = field(default_factory=dict)  # measure -> Moments of average - simulated
     result: CohortResult | None = None  # the first batch's, for the counterpart's name
+    # whether the model's outcomes can vary for these patients (else every patient's outcome
+    # is certain, and equal outcomes are no evidence about the Monte-Carlo error): life years
+    # where the share alive is strictly between 0 and 1, the others where any share is or an
+    # expected count is not a whole number
+    varies: dict = field(default_factory=lambda: {"alive": False, "any": False})
 
     def __post_init__(self):
         if self.cohort is None:
@@ -227,6 +238,11 @@ class ComparisonSums:
             result = analytic(model, mult=sim.mult.distinct(), times=sim.grid)
         self.result = self.result or result
         states, trace = sim.states, on_grid(result, sim.grid)
+        counts = result.exposure.occurrences[..., 0]
+        alive_share = trace[..., ~np.asarray(model.absorbing, bool)].sum(axis=-1)
+        self.varies["alive"] |= bool(np.any(between(alive_share)))
+        self.varies["any"] |= bool(np.any(between(trace)) or np.any(
+            np.abs(counts - np.rint(counts)) > ROUNDOFF * np.maximum(counts, 1.0)))
         inside = states[:, :, None] == np.arange(model.n_states)  # (N, T, S)
         self.shares.add(inside, trace)
         alive = ~np.asarray(model.absorbing, bool)
@@ -291,13 +307,19 @@ class ComparisonSums:
             simulated, expected = (s / moments.n for s in self.totals[measure])
             rows.append((measure, simulated, expected, moments.se, simulated - expected))
         table = pd.DataFrame(rows, columns=["measure", "simulated", "analytic", "se", "difference"])
-        p, certain = mean_p_values(table.difference, table.se, table.analytic)
-        z = np.where(certain, 0.0, z_scores(table.difference.to_numpy(), table.se.to_numpy()))
+        p, still = mean_p_values(table.difference, table.se, table.analytic)
+        # no variation among the patients is no Monte-Carlo error only where the model
+        # cannot vary; where it can (a few patients, a rare event) the SE is unknown
+        varies = np.array([self.varies["alive" if m == "life_years" else "any"]
+                           for m in table.measure], bool)
+        certain, unseen = still & ~varies, still & varies
+        z = np.where(still, 0.0, z_scores(table.difference.to_numpy(), table.se.to_numpy()))
         # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
         # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
-            se=np.where(certain, 0.0, table.se), z=z, p_value=p,
-            test=np.where(certain, EXACT, MONTE_CARLO))
+            se=np.where(certain, 0.0, np.where(unseen, np.nan, table.se)), z=z,
+            p_value=np.where(unseen, 1.0, p),
+            test=np.where(certain, EXACT, np.where(unseen, UNSEEN, MONTE_CARLO)))
 
     def subgroup_table(self) -> pd.DataFrame:
         frames = [share_table(s, self.grid, self.model.states).assign(attribute=a, level=lv)
@@ -365,6 +387,10 @@ def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str
              f"each p-value must be at least {level:.2g}")
     certain = (f"; {exact} comparison{'s' if exact != 1 else ''} without Monte-Carlo error "
                f"agree within numerical error ({ROUNDOFF:g} relative)" if exact else "")
+    unseen = int((rows.test == UNSEEN).sum())
+    if unseen:
+        certain += (f"; {unseen} outcome{'s' if unseen != 1 else ''} not tested: the patients "
+                    "did not vary, though the model does (simulate more patients)")
     if worst.p_value >= level:
         return True, (f"The simulation agrees with {counterpart}: the smallest p-value is "
                       f"{worst.p_value:.2g}, for {worst.what} (z = {worst.z:.2f}; {basis})"
