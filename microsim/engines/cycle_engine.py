@@ -24,10 +24,10 @@ from microsim import streams
 from microsim.engines import plan
 from microsim.engines.histories import START, Histories, Recorder
 from microsim.hazards.cycle_probabilities import LIMIT, competing_scale, overflow, separate_one
+from microsim.scenario.spec import COMPETING, TableSpec
 
 # the Python originals of the compiled engine's functions: the same C library expm1
 separate, scale_of = separate_one.py_func, competing_scale.py_func
-from microsim.scenario.spec import COMPETING, TableSpec
 
 MOVE = "cycle:move"
 AXES = {"time": 0, "age": 1, "time_in_state": 2}

@@ -43,7 +43,7 @@ class Histories:
     risk: np.ndarray
     n_patients: int
     # (n_patients, cycles + 1) state at each cycle point, from an engine that has it at
-    # hand (the vectorised cycle engine), so it need not be rebuilt from the records
+    # hand (the compiled cycle engine), so it need not be rebuilt from the records
     cycle_states: np.ndarray | None = None
 
     def treatment_times(self, window, phases: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
