@@ -186,5 +186,13 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
                                     [r.name for r in model.risks],
                                     None if model.treatment is None else model.treatment.strategy,
                                     batch.window, phase_codes(model)))
-    return Simulation(model, patients.reset_index(drop=True), seed, mult, grid, states,
-                      values, treated, transitions, exposure)
+    return Simulation(model, numbered(patients), seed, mult, grid, states, values, treated,
+                      transitions, exposure)
+
+
+def numbered(patients: pd.DataFrame) -> pd.DataFrame:
+    """`patients` with rows numbered 0..n-1, copied only when they are not (a copy of a
+    million patients costs a tenth of their simulation)."""
+    if patients.index.equals(pd.RangeIndex(len(patients))):
+        return patients
+    return patients.reset_index(drop=True)

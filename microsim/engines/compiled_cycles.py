@@ -84,6 +84,7 @@ class _Risks(NamedTuple):
     factors: np.ndarray
     bump_ptr: np.ndarray
     bumps: np.ndarray
+    steady: np.ndarray  # its chance is the same in every cycle of a patient (see `_chance`)
 
 
 class _Patients(NamedTuple):
@@ -165,21 +166,23 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
     for r, slope in enumerate(slopes):
         if slope:
             age_factor[r] = [exp(slope * (n * model.cycle)) for n in range(age_factor.shape[1])]
+    windowed = np.array([window is not None and window.on_factor[r] != window.off_factor[r]
+                         for r in range(n_risks)], bool).reshape(-1)
+    steady = [axis[r] == NO_BAND and not slopes[r] and not windowed[r]
+              and memory_ptr[r] == memory_ptr[r + 1] for r in range(n_risks)]
     risks = _Risks(
         np.array([-1 if risk.target is None else risk.target for risk in model.risks], np.int64),
         np.array(slot, np.int64), np.array(value_ptr, np.int64), np.array(n_bands, np.int64),
         np.array(values, float), np.array(logs, float), np.array(axis, np.int64),
         start_ptr, np.array(start_flat, float), level_row,
         np.exp(mult.log_static),  # plan.static_multipliers' numbers
-        np.array([s != 0.0 for s in slopes]), age_factor,
-        np.array([window is not None and window.on_factor[r] != window.off_factor[r]
-                  for r in range(n_risks)], bool).reshape(-1),
-        on_factor, off_factor, memory_ptr,
+        np.array([s != 0.0 for s in slopes]), age_factor, windowed, on_factor, off_factor, memory_ptr,
         np.array([term[0] for term in terms], np.int64),
         np.array([COUNT if term[1] is not None else WITHIN for term in terms], np.int64),
         np.array([np.nan if term[2] is None else term[2] for term in terms], float),
         np.array([np.nan if term[3] is None else term[3] for term in terms], float),
-        factor_ptr, np.array(factor_flat, float), bump_ptr, np.array(bump_flat, np.int64))
+        factor_ptr, np.array(factor_flat, float), bump_ptr, np.array(bump_flat, np.int64),
+        np.array(steady, bool).reshape(-1))
 
     age0 = np.zeros(size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
     on = np.full(size, np.inf) if window is None else np.asarray(window.on, float)
@@ -228,6 +231,21 @@ def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle):
 
 
 @njit(cache=True, _nrt=False)
+def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, kept):
+    """Risk r's chance by the separate rule for patient b at cycle n (its base value where
+    the multiplier is 1). A steady risk's is the same number in every cycle of the patient,
+    so it is worked out once and kept (`kept[r]`, -1 until then): one `expm1` a patient
+    instead of one a cycle."""
+    if risks.steady[r] and kept[r] >= 0.0:
+        return kept[r]
+    p, log, m = _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle)
+    chance = p if m == 1.0 else separate_one(log, m)
+    if risks.steady[r]:
+        kept[r] = chance
+    return chance
+
+
+@njit(cache=True, _nrt=False)
 def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts, last, first,
          on_points, rec_patient, rec_time, rec_source, rec_target, rec_risk, n_rec, scratch):
     """Simulate patients first.. of the batch until done or until the record buffers could
@@ -238,11 +256,12 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
     here: `scratch` holds the working arrays): counting references to the many arrays of
     the layout cost more than the arithmetic."""
     size = start.size
-    words, held, chances, weights, hits = scratch
+    words, held, chances, weights, hits, kept = scratch
     for b in range(first, size):
         if n_rec + per_patient > rec_time.size:
             return b, n_rec, -1, 0, 0.0
         held[:] = -1
+        kept[:] = -1.0
         state, in_cycles = start[b], 0
         on, off, age0 = people.on[b], people.off[b], people.age0[b]
         rec_patient[n_rec], rec_time[n_rec], rec_source[n_rec] = b, 0.0, START
@@ -260,13 +279,14 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
             lo, hi = rows.move_ptr[state], rows.move_ptr[state + 1]
             total_weight = 0.0
             for j in range(lo, hi):
-                p, log, m = _weigh(risks, rows.moves[j], b, n, t, age, in_state, on, off,
-                                   counts, last, cycle)
                 if rows.combined[state]:
+                    _, log, m = _weigh(risks, rows.moves[j], b, n, t, age, in_state, on, off,
+                                       counts, last, cycle)
                     weights[j - lo] = log * m
                     total_weight += weights[j - lo]  # 0 + w is w: the reference's sum
                 else:
-                    chances[j - lo] = p if m == 1.0 else separate_one(log, m)
+                    chances[j - lo] = _chance(risks, rows.moves[j], b, n, t, age, in_state,
+                                              on, off, counts, last, cycle, kept)
             if rows.combined[state]:
                 scale = competing_scale(total_weight)
                 for j in range(lo, hi):
@@ -291,13 +311,14 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
             n_hits = 0  # every weight of the cycle is taken before memory moves on
             for j in range(rows.event_ptr[state], rows.event_ptr[state + 1]):
                 r = rows.events[j]
-                p, log, m = _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle)
+                chance = _chance(risks, r, b, n, t, age, in_state, on, off, counts, last,
+                                 cycle, kept)
                 s = risks.slot[r]
                 if held[s] != block:
                     philox_block(people.ids[b], np.uint64(block), people.seed, people.keys[s],
                                  words[s])
                     held[s] = block
-                if open_unit(words[s, lane]) < (p if m == 1.0 else separate_one(log, m)):
+                if open_unit(words[s, lane]) < chance:
                     hits[n_hits] = r
                     n_hits += 1
             for q in range(n_hits):
@@ -347,7 +368,8 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     slots, row_length = len(people.keys), max(len(rows.moves), len(rows.events), 1)
     scratch = (np.empty((slots, 4), np.uint64),  # the words of a Philox block per slot,
                np.empty(slots, np.int64),  # and the block they are from
-               np.empty(row_length), np.empty(row_length), np.empty(row_length, np.int64))
+               np.empty(row_length), np.empty(row_length), np.empty(row_length, np.int64),
+               np.empty(len(model.risks)))  # the kept chances of steady risks
     first, used = 0, 0
     while True:
         first, used, failed, cycle, total = _run(

@@ -103,38 +103,44 @@ def point_weights(n_cycles: int, cycle: float, rates: tuple[float, ...], correct
 
 
 def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None = None,
-                    edges: np.ndarray | None = None) -> np.ndarray:
-    """(B, S, 3) time in state by the cycle rule on the cycle points (only the points where
-    a patient is on treatment, when a `window` is given); with band `edges` (B, K + 1),
-    (B, S, K, 3) by the band of each point. Each patient's sum runs over its own cycle
-    points in time order, so it does not depend on the batch."""
+                    edges: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(B, S, 3) time in state by the cycle rule on the cycle points, and the same over the
+    points where a patient is on treatment (`window`; zeros without one); with band `edges`
+    (B, K + 1), each (B, S, K, 3) by the band of each point. Each patient's sums run over its
+    own cycle points in time order, so they do not depend on the batch."""
     weights = point_weights(model.n_cycles, model.cycle,
                             (0.0, model.discount_costs, model.discount_effects), model.correction)
     B, S = states.shape[0], model.n_states
     times = np.asarray(model.times, float)
-    on = np.full(B, -np.inf) if window is None else np.asarray(window.on, float)
+    on = np.full(B, np.inf) if window is None else np.asarray(window.on, float)
     off = np.full(B, np.inf) if window is None else np.asarray(window.off, float)
     K = 1 if edges is None else edges.shape[1] - 1
-    band = (np.zeros(states.shape, np.int64) if edges is None
+    band = (np.zeros((0, 0), np.int64) if edges is None
             else band_of(edges, np.broadcast_to(times, states.shape)))
-    out = _occupancy(states, weights, S, K, band, times, on, off)
-    return out.reshape(B, S, 3) if edges is None else out.reshape(B, S, K, 3)
+    shape = (B, S, 3) if edges is None else (B, S, K, 3)
+    every, treated = np.zeros(shape), np.zeros(shape)
+    _occupancy(states, weights, S, K, band, times, on, off, every.reshape(B, S * K, 3),
+               treated.reshape(B, S * K, 3))
+    return every, treated
 
 
 @njit(cache=True)
-def _occupancy(states, weights, n_states, n_bands, band, times, on, off):
-    """out[b, s * n_bands + band[b, t]] = sum over the points t where patient b is in s
-    and on[b] <= t < off[b] of weights[t], added in time order; a point with state -1 adds
-    nothing."""
+def _occupancy(states, weights, n_states, n_bands, band, times, on, off, every, treated):
+    """every[b, s * n_bands + band[b, t]] += weights[t] over the points t where patient b is
+    in s, and treated[...] the same where on[b] <= t < off[b], added in time order (band
+    empty: a single band); a point with state -1 adds nothing."""
     B, T = states.shape
-    out = np.zeros((B, n_states * n_bands, weights.shape[1]))
     for b in range(B):
         for t in range(T):
             s = states[b, t]
-            if s >= 0 and on[b] <= times[t] < off[b]:
+            if s < 0:
+                continue
+            cell = s * n_bands + (band[b, t] if n_bands > 1 else 0)
+            for w in range(weights.shape[1]):
+                every[b, cell, w] += weights[t, w]
+            if on[b] <= times[t] < off[b]:
                 for w in range(weights.shape[1]):
-                    out[b, s * n_bands + band[b, t], w] += weights[t, w]
-    return out
+                    treated[b, cell, w] += weights[t, w]
 
 
 def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
@@ -149,14 +155,11 @@ def exposure(model: BoundModel, h: Histories, mult: Multipliers | None = None,
     levels = {} if mult is None else mult.levels
     if model.discrete:
         states = grid_states(h, model.times) if states is None else states
-        occupancy = cycle_occupancy(model, states)
-        on = np.zeros_like(occupancy) if window is None else cycle_occupancy(model, states, window)
+        occupancy, on = cycle_occupancy(model, states, window)
         bands = None
         if edges is not None:
-            split = cycle_occupancy(model, states, edges=edges)
-            bands = Bands(edges, entry_ages(entry_age, h.n_patients), split,
-                          np.zeros_like(split) if window is None
-                          else cycle_occupancy(model, states, window, edges),
+            split, split_on = cycle_occupancy(model, states, window, edges)
+            bands = Bands(edges, entry_ages(entry_age, h.n_patients), split, split_on,
                           occurrences(model, h, edges))
         return Exposure(occupancy, occurrences(model, h), on, levels, bands)
     end = model.n_cycles * model.cycle
