@@ -193,7 +193,7 @@ def test_a_table_by_a_non_categorical_attribute_is_refused(other, words):
 
 
 def test_a_level_table_needs_a_number_or_a_list_per_level():
-    refused_table("tables.life.values", "must be a table with a number per level",
+    refused_table("tables.life.values", "must be a table with a number or parameter name per level",
                   table("life", attribute="sex", values=[0.1, 0.2]), SEX)
     refused_table("tables.life.values.male", "must be a number",
                   table("life", attribute="sex", values={"female": 0.1, "male": [0.2]}), SEX)

@@ -13,7 +13,7 @@ import numpy as np
 
 from .errors import ScenarioError
 from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_you_mean,
-                     listing, show)
+                     listing, show, undefined)
 from .formulas import settings
 from .read_parameters import support
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
@@ -63,13 +63,6 @@ def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
 def unknown_state(name: str, state_names: Sequence[str]) -> str:
     return (f"unknown state {name!r}{did_you_mean(name, state_names)}; "
             f"states: {listing(state_names)}")
-
-
-def undefined(what: str, name: str, known: list[str], words: Sequence[str] = ()) -> str:
-    """Why a name of a parameter (or table) cannot be used: none is defined by that name;
-    `words` are the fixed words the slot also takes ("remainder"), suggested like names."""
-    return (f"no {what} named {name!r}{did_you_mean(name, [*known, *words])}; "
-            f"defined: {listing(known)}")
 
 
 def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> str:
@@ -140,12 +133,12 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 "the start); give values by time in state through tunnel "
                                 "states instead")
         check_value_table_covers(s, table, ref)
-        for k, row in enumerate(table.rows):
-            for i, value in enumerate(row):
-                problem = role.problem(value)
-                if problem:
-                    where = table.row_name(k) + ("" if table.by is None else f"[{i}]")
-                    raise ScenarioError(where, f"{problem} (the table is used at {ref.path})")
+        for where, value in table.entries():
+            problem = None if isinstance(value, str) else role.problem(value)
+            if problem:
+                raise ScenarioError(where, f"{problem} (the table is used at {ref.path})")
+        for use in entry_uses(s, [ref]):
+            check_reference(s, use)
         return
     if ref.name not in s.parameters:
         what, known = "parameter", list(s.parameters)
@@ -173,6 +166,20 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 f"{role.noun} at {ref.path} ({role.rule}); choose a "
                                 "distribution that stays in that range, or set "
                                 'uncertainty.invalid_draws = "redraw" or "truncate"')
+
+
+def entry_uses(s: Scenario, uses: Iterable[Reference]) -> list[Reference]:
+    """The uses of the parameters that tables' entries name: each entry is used as whatever
+    its table is used as, so its values (base, one-way, each PSA draw) are checked as a
+    number typed in there would be."""
+    found = []
+    for use in uses:
+        table = s.tables.get(use.name)
+        for where, value in table.entries() if table is not None else ():
+            if isinstance(value, str):
+                found.append(Reference(value, f"{where} (the table is used at {use.path})",
+                                       use.role))
+    return list(dict.fromkeys(found))
 
 
 def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
@@ -369,13 +376,15 @@ def check_age_known(s: Scenario, reading: Reading) -> None:
             raise ScenarioError(f"{path}.clock", f'is "age", but {NO_AGE}')
 
 
-def table_at(table: TableSpec, points: np.ndarray, choice: dict[str, int] | None = None
-             ) -> np.ndarray:
+def table_at(table: TableSpec, points: np.ndarray, choice: dict[str, int] | None = None,
+             value=float) -> np.ndarray:
     """The step function at `points` (of the row of the level `choice` picks, for a table
-    by level); the first value holds before the first start."""
+    by level); the first value holds before the first start. `value` gives each entry's
+    number, or (D,) numbers for D parameter sets: the result is then (D, points)."""
     index = np.searchsorted(np.asarray(table.starts), points, side="right") - 1
     row = table.rows[(choice or {}).get(table.attribute, 0)]
-    return np.asarray(row)[np.clip(index, 0, None)]
+    bands = np.stack(np.broadcast_arrays(*map(value, row)), axis=-1)
+    return bands[..., np.clip(index, 0, None)]
 
 
 def check_row(s: Scenario, state: str) -> None:
@@ -394,7 +403,7 @@ def check_row(s: Scenario, state: str) -> None:
                                     "one transition per state takes the remainder")
             remainder = t
         elif isinstance(t.probability, str) and t.probability in s.tables:
-            table = s.tables[t.probability]
+            table = s.tables[t.probability].at(base_values(s))
             tables_by_axis.setdefault(table.by, []).append(table)
         elif isinstance(t.probability, str):
             constant += s.parameters[t.probability].value
@@ -418,13 +427,18 @@ def check_row(s: Scenario, state: str) -> None:
                             '"remainder" or fix the values')
 
 
+def base_values(s: Scenario) -> dict[str, float]:
+    """Every parameter at its base-case value (derived ones computed)."""
+    return {name: p.value for name, p in s.parameters.items()}
+
+
 def may_be_positive(s: Scenario, value: Ref) -> bool:
     """False only for values that are zero in every binding (literal 0, all-zero table,
     parameter fixed at 0)."""
     if value == REMAINDER:
         return True
     if isinstance(value, str) and value in s.tables:
-        return any(v > 0 for v in s.tables[value].values)
+        return any(may_be_positive(s, v) for v in s.tables[value].values)
     if isinstance(value, str):
         p = s.parameters[value]
         return p.value != 0 or (p.distribution is not None and p.distribution.family != "fixed")
@@ -501,7 +515,7 @@ def youngest_age(s: Scenario) -> float | None:
 
 
 def warnings(s: Scenario, reading: Reading) -> list[str]:
-    used = {r.name for r in reading.references}
+    used = {r.name for r in reading.references + entry_uses(s, reading.references)}
     used |= {n.name for p in s.parameters.values() if p.formula for n in p.formula.names}
     found = [f"parameters.{n}: defined but not used" for n in s.parameters if n not in used]
     found += [f"tables.{n}: defined but not used" for n in s.tables if n not in used]
