@@ -269,7 +269,7 @@ def row_sum(s: Scenario, row: Row, value, multipliers) -> np.ndarray:
         bands = [sum(on_rate_scale(table_at(t, points, choice, value), m[..., None])
                      for t, m in tables)
                  for choice in level_choices([t for t, _ in tables])]
-        total = total + np.max(bands, axis=(0, -1))
+        total = total + np.max(np.broadcast_arrays(*bands), axis=(0, -1))  # levels may differ in D
     return total
 
 
