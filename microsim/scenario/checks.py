@@ -7,6 +7,7 @@ with a field path. The checks run in an order where each may rely on the ones be
 from __future__ import annotations
 
 import itertools
+import math
 from typing import Iterable, Sequence
 
 import numpy as np
@@ -16,6 +17,7 @@ from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_
                      listing, show, undefined)
 from .formulas import settings
 from .read_parameters import support
+from .read_population import normal_mass
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
 MAX_LISTED = 12  # levels named in one message
@@ -196,6 +198,8 @@ def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
         raise ScenarioError(where, f"starts at {show(first)}, but {ref.path} needs a value "
                             "from time 0; make the first start 0")
     youngest = youngest_age(s) if youngest is None else youngest
+    if youngest == -math.inf:
+        return  # an untruncated normal's tail: a warning gives the share below (`warnings`)
     if table.by == AGE and youngest is not None and first > max(youngest, 0.0):
         raise ScenarioError(where, f"starts at age {show(first)}, but a patient can be "
                             f"{show(youngest)} at time 0 and {ref.path} needs a value at "
@@ -514,6 +518,15 @@ def youngest_age(s: Scenario) -> float | None:
     return min(ages) if ages else None
 
 
+def younger_share(s: Scenario, age: float) -> float:
+    """The share of patients younger than `age` at time 0 when their age is a normal
+    without a lower bound: P(X < age | X < upper), through the error function."""
+    a = next(a for a in s.population.attributes if a.name == AGE)
+    mean, sd, upper = a.params["mean"], a.params["sd"], a.params["upper"]
+    return min(normal_mass(mean, sd, -math.inf, min(age, upper))
+               / normal_mass(mean, sd, -math.inf, upper), 1.0)
+
+
 def warnings(s: Scenario, reading: Reading) -> list[str]:
     used = {r.name for r in reading.references + entry_uses(s, reading.references)}
     used |= {n.name for p in s.parameters.values() if p.formula for n in p.formula.names}
@@ -530,7 +543,13 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
     youngest = youngest_age(s)
     for table in s.tables.values():
         first = table.starts[0]
-        if table.by == AGE and youngest is not None and first > youngest:
+        if table.by == AGE and youngest == -math.inf:
+            found.append(f"tables.{table.name}.starts: the age at time 0 is an untruncated "
+                         f"normal, so a share of {younger_share(s, first):.3g} of the patients "
+                         f"are younger than the first start ({show(first)}); the first value "
+                         "is used below it (give the age attribute a lower bound to rule "
+                         "that out)")
+        elif table.by == AGE and youngest is not None and first > youngest:
             found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
                          f"above the youngest age at time 0 ({show(youngest)}); the first "
                          "value is used below it")
