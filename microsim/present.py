@@ -99,6 +99,12 @@ def print_summary(result: MainResult) -> None:
         errors = table.pivot(index="strategy", columns="measure", values="se").loc[order]
         show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
              means.join(errors.add_suffix("_se")).reset_index())
+        from microsim.decision.strategies import ROUNDOFF_SE
+        still = table[table.error == ROUNDOFF_SE]
+        if len(still):
+            which = "every SE above" if len(still) == len(table) else ", ".join(
+                f"{r.strategy} {r.measure}_se" for r in still.itertuples())
+            print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
         show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
