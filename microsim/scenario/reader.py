@@ -109,11 +109,12 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     provenance = doc.text("provenance", nonempty=True)
     time = read_time(doc.node("time", TIME_KEYS))
     parameters = read_parameters(doc.node("parameters", None, default=None))
-    tables = read_tables(doc.node("tables", None, default=None), parameters)
-    for name in tables:
+    tables_node = doc.node("tables", None, default=None)
+    for name in (tables_node.data if tables_node else ()):  # before any entry names one
         if name in parameters:
             raise ScenarioError(f"tables.{name}", f"{name!r} is also a parameter name; "
                                 "parameters and tables share one set of names")
+    tables = read_tables(tables_node, parameters)
     states = read_states(doc.nodes("states", None, required=True))
     draft = Scenario(
         title=title, description=description, provenance=provenance, time=time,
