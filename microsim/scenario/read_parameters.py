@@ -20,6 +20,7 @@ COMPUTED = ("a derived parameter is computed from its formula (in every PSA draw
             "sensitivity setting too)")
 TABLE_KEYS = ("by", "starts", "values", "attribute")
 TABLE_AXES = ("age", "time", "time_in_state")
+ENTRY = "number or parameter name"  # what a table's entry may be
 
 
 def support(distribution: DistributionSpec, value: float) -> tuple[float, float]:
@@ -127,28 +128,25 @@ def read_distribution(node: Node | None) -> DistributionSpec | None:
 def read_tables(node: Node | None, parameters: Mapping[str, ParameterSpec]
                 ) -> dict[str, TableSpec]:
     tables: dict[str, TableSpec] = {}
-    entry_names = Entries(parameters, tuple(node.data) if node else ())
+    entries = Entries(parameters, tuple(node.data) if node else ())
     for name in (node.data if node else ()):
         name_key(node, name, "table")
         entry = node.node(name, TABLE_KEYS)
         attribute = entry.name("attribute", None)
         if attribute is not None and not entry.has("by"):
-            tables[name] = read_level_table(entry, name, attribute, entry_names)
+            tables[name] = read_level_table(entry, name, attribute, entries)
             continue
         by = entry.text("by", choices=TABLE_AXES)
         starts = entry.numbers("starts", role=NON_NEGATIVE, increasing=True)
         if attribute is None:
-            values = band_values(entry, "values", len(starts), entry_names)
+            values = band_values(entry, "values", len(starts), entries)
             tables[name] = TableSpec(name, by, starts, values)
             continue
         levels, rows = level_entries(entry, attribute, f"a list of {ENTRY}s, one per start")
         values = tuple(v for level in levels
-                       for v in band_values(rows, level, len(starts), entry_names))
+                       for v in band_values(rows, level, len(starts), entries))
         tables[name] = TableSpec(name, by, starts, values, attribute, levels)
     return tables
-
-
-ENTRY = "number or parameter name"
 
 
 @dataclass(frozen=True)
@@ -177,7 +175,7 @@ class Entries:
 
 
 def band_values(node: Node, key: str, n_starts: int, entries: Entries) -> tuple[Ref, ...]:
-    """One value per start."""
+    """One entry per start (`Entries.read`)."""
     values = node.raw(key, expect=f"a list of {ENTRY}s, one per start")
     if not isinstance(values, list) or not values:
         node.fail(key, f"must be a list of {ENTRY}s, one per start, got "
