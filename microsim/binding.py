@@ -5,7 +5,7 @@ different bindings of the same scenario; no engine ever sees a parameter name.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Mapping
 
 import numpy as np
@@ -216,6 +216,9 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
         raise KeyError(f"values for undefined parameters: {sorted(unknown)}")
     resolved.update(values or {})
     resolved = with_derived(scenario.parameters, resolved)  # always from their inputs
+    if any(t.names for t in scenario.tables.values()):  # entries that name parameters
+        scenario = replace(scenario, tables={name: t.at(resolved)
+                                             for name, t in scenario.tables.items()})
     index = {name: i for i, name in enumerate(scenario.state_names)}
 
     def number(ref: Ref) -> float:

@@ -552,7 +552,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--psa", action="store_true", help="also run the probabilistic sensitivity analysis")
     run.add_argument("--draws", type=COUNT, help="PSA outer draws (default: the scenario's)")
     run.add_argument("--patients-per-draw", type=COUNT, help="PSA: patients per draw "
-                     "(uncertainty.patients_per_draw)")
+                     "(uncertainty.patients_per_draw; default population.patients); on the "
+                     "exact basis, the patients every draw shares")
     run.add_argument("--workers", type=COUNT, help="PSA worker processes (default 1)")
     run.add_argument("--backend", choices=("processes", "dask"),
                      help="PSA backend: local processes, or Dask (a LocalCluster, or --address)")

@@ -44,7 +44,8 @@ def summary(result: MainResult) -> dict:
     if result.psa is not None:
         p = result.psa
         out["psa"] = {"draws": int(p.draws.shape[0]), "basis": p.basis,
-                      "outcomes": records(p.outcomes)}
+                      "outcomes": records(p.outcomes), "tables_varied": list(p.tables[0]),
+                      "tables_held_fixed": list(p.tables[1])}
         if p.note is not None:
             out["psa"]["note"] = p.note
         else:
@@ -98,6 +99,12 @@ def print_summary(result: MainResult) -> None:
         errors = table.pivot(index="strategy", columns="measure", values="se").loc[order]
         show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
              means.join(errors.add_suffix("_se")).reset_index())
+        from microsim.decision.strategies import ROUNDOFF_SE
+        still = table[table.error == ROUNDOFF_SE]
+        if len(still):
+            which = "every SE above" if len(still) == len(table) else ", ".join(
+                f"{r.strategy} {r.measure}_se" for r in still.itertuples())
+            print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
         show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
@@ -119,6 +126,8 @@ def print_summary(result: MainResult) -> None:
         show(f"PSA ({len(p.draws)} draws; {p.basis}): mean per patient over the draws and the "
              "95% interval of the draws (2.5th to 97.5th percentile); costs discounted",
              p.outcomes)
+        if any(p.tables):
+            print(f"PSA tables: {held_fixed(p)}")
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -213,6 +222,17 @@ def population_words(e) -> str:
                                                       e.incidence_by_year(e.evpi_years)))
     return (f"{incidence} over {e.evpi_years} years, discounted at {e.evpi_discount:g} a year "
             "(EVPI x sum of I_t / (1 + r)^t, t = 1..T)")
+
+
+def held_fixed(psa) -> str:
+    """Which of the model's tables the PSA varies and which it holds fixed, in words: a
+    table varies only through the drawn parameters its entries name."""
+    varied, fixed = psa.tables
+    words = [f"varied through the drawn parameters they name: {', '.join(varied)}"] if varied else []
+    if fixed:
+        words.append(f"held fixed in every draw: {', '.join(fixed)} (no entry names a drawn "
+                     "parameter; an entry that names one varies with it)")
+    return "; ".join(words) + "."
 
 
 def changed_draws(psa, listed: int = 5) -> str:

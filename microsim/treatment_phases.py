@@ -18,7 +18,8 @@ treatment history as states, e.g. tunnel-like copies of health states by line of
 uptake) still applies on top: a treatment acts while the patient is in its phase and inside
 the window.
 
-Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last); the copies of
+Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last), the first
+treatment's after the strategy (`binding.bind` names its `Line` so); the copies of
 the phase before treatment keep the states' own names, absorbing states have one copy,
 copies no patient can reach are left out, and each state's copies follow one another in the
 order of the states.

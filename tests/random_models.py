@@ -138,14 +138,16 @@ class Draft:
     def state_utility(self, s: str) -> float | str:
         """A state's utility: a number, or in the first living state a table made from it
         (one draw either way, so the rest of the model is drawn as before): by group where
-        the population has groups, else by attained age where the age is known."""
+        the population has groups (the first group's entry a parameter), else by attained
+        age where the age is known."""
         u = self.uniform(0.3, 1.0, 3)
         if s != self.alive[0]:
             return u
         if "group" in self.attributes:
             self.features.add("utility by level")
             self.value_tables["utility_by_group"] = dict(attribute="group", values={
-                g: round(u * f, 3) for g, f in zip(GROUPS, (1.0, 0.9, 0.75))})
+                GROUPS[0]: self.parameter("utility_first_group", u),
+                **{g: round(u * f, 3) for g, f in zip(GROUPS[1:], (0.9, 0.75))}})
             return "utility_by_group"
         if self.knows_age():
             self.features.add("utility by age")

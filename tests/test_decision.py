@@ -21,14 +21,16 @@ from scipy import stats
 
 from microsim.decision import economics
 from microsim.binding import bind
-from microsim.decision.strategies import decision_of, COST, EFFECT, decide, run_strategies
+from microsim.decision.strategies import (ROUNDOFF_SE, decision_of, COST, EFFECT, decide,
+                                         run_strategies)
+from microsim.results.comparison import MONTE_CARLO
 from microsim.results.outcomes import outcome_values
 from microsim.patients.population import draw_population
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import ChangeSpec, ConditionSpec, EconomicsSpec, EligibilitySpec, StrategySpec
 from microsim.simulation import simulate
-from support import (Z, attribute, effect, horizon, outcomes, population, rate, scenario_text,
-                     start, state)
+from support import (Z, attribute, effect, horizon, outcomes, population, probability, rate,
+                     scenario_text, start, state)
 
 SEED = 5
 N = 2000
@@ -98,6 +100,31 @@ def test_strategy_means_and_errors_are_numpy_means_and_errors(run):
         row = d.strategies[(d.strategies.strategy == name) & (d.strategies.measure == EFFECT)]
         assert row["mean"].item() == pytest.approx(x.mean(), rel=1e-12)
         assert row["se"].item() == pytest.approx(x.std(ddof=1) / math.sqrt(len(x)), rel=1e-12)
+
+
+def test_round_off_standard_errors_of_a_deterministic_model_are_0_and_said_so():
+    # nobody ever leaves well: every patient has the same outcomes, which a cycle model sums
+    # in an order of its own, so numpy's SE is round-off (1e-15) or 0; by the comparison's
+    # rule (an SE within 1e-7 of the mean, relative) the table shows 0 and says why
+    s = replace(parse_scenario(scenario_text(
+        horizon(10, cycle=1), start(well=1.0), outcomes(discount_costs=0.035, discount_effects=0.035),
+        state("well", utility=0.9, cost=123.4567), state("dead", absorbing=True),
+        probability("well", "well", 1), population(300, attribute("marker", "yesno", prevalence=0.4)),
+        title="deterministic")), strategies=(USUAL, EVERYONE))
+    people = draw_population(s.population, SEED)
+    d = decision_of(s, run_strategies(s, people, SEED))
+    for name in ("usual", "everyone"):
+        rows = d.strategies[d.strategies.strategy == name].set_index("measure")
+        for measure in (COST, EFFECT, "life_years"):
+            x = per_patient(d, name, measure)
+            assert x.std(ddof=1) / math.sqrt(len(x)) <= 1e-7 * abs(x.mean())  # numpy: round-off
+            assert rows.loc[measure, "se"] == 0.0 and rows.loc[measure, "error"] == ROUNDOFF_SE
+    assert "within 1e-07 of the mean, relative" in ROUNDOFF_SE
+
+
+def test_a_model_that_varies_keeps_its_monte_carlo_errors(run):
+    _, _, _, d = run
+    assert (d.strategies.error == MONTE_CARLO).all() and (d.strategies.se > 0).all()
 
 
 # --------------------------------------------------------------- common random numbers

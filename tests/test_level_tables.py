@@ -21,7 +21,7 @@ from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
 from microsim.patients.multipliers import cohort_multipliers, multipliers
 from microsim.patients.population import draw_population
-from microsim.scenario import ScenarioError, read_scenario
+from microsim.scenario import ScenarioError, parse_scenario, read_scenario
 from support import (Z, assert_refused, attribute, horizon, model_of, population, probability,
                      rate, scenario_text, start, state, table)
 
@@ -193,7 +193,7 @@ def test_a_table_by_a_non_categorical_attribute_is_refused(other, words):
 
 
 def test_a_level_table_needs_a_number_or_a_list_per_level():
-    refused_table("tables.life.values", "must be a table with a number per level",
+    refused_table("tables.life.values", "must be a table with a number or parameter name per level",
                   table("life", attribute="sex", values=[0.1, 0.2]), SEX)
     refused_table("tables.life.values.male", "must be a number",
                   table("life", attribute="sex", values={"female": 0.1, "male": [0.2]}), SEX)
@@ -242,3 +242,12 @@ def test_a_file_column_without_a_level_of_the_table_is_refused_when_read(tmp_pat
         cohort_multipliers(model)
     assert caught.value.path == "tables.life.values.male", str(caught.value)
     assert "did you mean 'Male'?" in caught.value.message
+
+
+def test_the_reports_diagram_names_a_table_by_level_alone_by_its_attribute():
+    from microsim.report.structure import value_text
+    text = scenario_text(horizon(5), start(a=1), state("a"), state("dead", absorbing=True),
+                         rate("a", "dead", "die"),
+                         table("die", attribute="sex", values={"female": 0.1, "male": 0.2}),
+                         population(10, SEX))
+    assert value_text("die", parse_scenario(text)) == "table die by the level of 'sex'"

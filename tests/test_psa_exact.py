@@ -128,3 +128,21 @@ def test_patients_given_on_the_command_line_are_the_psa_s_per_draw_default(tmp_p
     assert main(["run", str(path), "--patients", "1", "--out", str(out)]) == 2
     assert capsys.readouterr().err.startswith("error: --patients: is 1; comparing strategies "
                                               "needs at least 2 patients")
+
+
+def test_the_exact_basis_takes_its_shared_patients_from_patients_per_draw(tmp_path, capsys):
+    # docs/scenario-format.md: n = --patients-per-draw, else patients_per_draw, else
+    # population.patients; the draws are the closed form over the first n patients
+    path = tmp_path / "drug.toml"
+    path.write_text(model_text())
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--psa", "--draws", "3", "--patients-per-draw", "40",
+                 "--out", str(out)]) == 0
+    folder = out / "drug" / "latest"
+    rows = pd.read_parquet(folder / "psa_draws.parquet").merge(
+        pd.read_parquet(folder / "psa_parameters.parquet"), on="draw")
+    assert (rows.patients == 40).all()
+    share = patients_for(parse_scenario(model_text()), 40, 3)["diabetes"].mean()
+    for row in rows[rows.strategy == "usual"].itertuples():
+        years = share * life(R * DIABETES_HR) + (1 - share) * life(R)
+        assert row.life_years == pytest.approx(years, rel=1e-9)

@@ -66,6 +66,15 @@ def test_a_sequence_started_on_progression_equals_the_hand_built_chain():
     assert_same_results(model, model_of(BY_HAND))
 
 
+def test_the_first_treatments_copies_are_named_after_the_strategy():
+    # docs/scenario-format.md: `<state>+<treatment>`, the first treatment being the strategy
+    # itself and each later one its `then` entry's name
+    model = bind(parse_scenario(scenario_text(*PATHWAY, COMPARATOR, SEQUENCE)), strategy="treat")
+    assert {"progressed+treat", "relapsed+second"} <= set(model.states)
+    assert not any(name.endswith(("+usual", "+first")) for name in model.states)
+    assert model.entered(model.states.index("progressed+treat")) == "progressed"
+
+
 def test_stopping_on_a_state_returns_the_patients_to_untreated_rates():
     text = scenario_text(
         *PATHWAY, COMPARATOR,

@@ -20,6 +20,7 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
 from microsim.binding import bind
 from microsim.capacity.binding import bind_capacity
@@ -368,6 +369,25 @@ def test_ages_that_the_table_does_not_cover_are_refused():
             "needs a value at every age; make the first start at most 50")
     refused(table("u", by="time", starts=[1, 5], values=[0.8, 0.7]), "tables.u.starts",
             "needs a value from time 0; make the first start 0")
+
+
+@pytest.mark.parametrize("use", ["utility", "rate"])
+@pytest.mark.parametrize("first", [0, 40])
+def test_an_untruncated_normal_age_below_the_first_start_is_a_warning_with_its_share(use, first):
+    # ages below the first start read the first value (docs/scenario-format.md), whatever
+    # the table gives; the share below is the normal's CDF (scipy.stats.norm)
+    by_age = table("u", by="age", starts=[first, 70], values=[0.08, 0.07])
+    keys = {"alive": dict(utility="u")} if use == "utility" else {}
+    text = alive_dead("rate", keys, by_age, death="u" if use == "rate" else 0.1,
+                      attributes=[attribute("age", "normal", mean=60, sd=10)])
+    scenario = parse_scenario(text)
+    share = stats.norm.cdf((first - 60) / 10)
+    assert [w for w in scenario.warnings if w.startswith("tables.u.starts")] == [
+        f"tables.u.starts: the age at time 0 is an untruncated normal, so a share of "
+        f"{share:.3g} of the patients are younger than the first start ({first}); the first "
+        "value is used below it (give the age attribute a lower bound to rule that out)"]
+    truncated = parse_scenario(text.replace("sd = 10", f"sd = 10\n  lower = {first}"))
+    assert not [w for w in truncated.warnings if w.startswith("tables.u.starts")]
 
 
 def test_a_table_by_time_in_state_cannot_give_a_value():

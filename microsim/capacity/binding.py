@@ -100,8 +100,9 @@ def bind_capacity(scenario: Scenario, strategy: str | None = None,
     spec = scenario.capacity
     if strategy is not None and scenario.strategy(strategy).capacity is not None:
         spec = scenario.strategy(strategy).capacity
-    return CapacityModel(model, tuple(bind_resource(r, model, scenario) for r in spec.resources),
-                         bind_arrivals(spec.arrivals, model, scenario), scenario.time.end)
+    bound = model.scenario  # its tables in numbers
+    return CapacityModel(model, tuple(bind_resource(r, model, bound) for r in spec.resources),
+                         bind_arrivals(spec.arrivals, model, bound), scenario.time.end)
 
 
 def number(model: BoundModel, ref: Ref) -> float:

@@ -15,6 +15,7 @@ import pandas as pd
 
 from microsim.decision import economics
 from microsim.binding import bind
+from microsim.results.comparison import MONTE_CARLO, ROUNDOFF, within_roundoff
 from microsim.results.outcomes import outcome_values
 from microsim.patients.population import subgroup_attributes
 from microsim.scenario.spec import Scenario
@@ -62,14 +63,24 @@ def standard_error(x: np.ndarray) -> float:
     return float(np.std(x, ddof=1) / np.sqrt(len(x))) if len(x) > 1 else float("nan")
 
 
+ROUNDOFF_SE = (f"none: the patients' values differ by round-off only (an SE within "
+               f"{ROUNDOFF:g} of the mean, relative), so the SE is shown as 0")
+
+
 def strategy_table(outcomes: pd.DataFrame) -> pd.DataFrame:
-    """Per strategy: mean and Monte-Carlo standard error of every reported measure."""
+    """Per strategy: mean and Monte-Carlo standard error of every reported measure. An SE
+    that numerical error alone explains (every patient with the same value, summed in
+    another order: 1e-15) is 0, by the comparison's rule and tolerance
+    (`comparison.within_roundoff`), and the `error` column says so."""
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
         for measure in REPORTED:
             x = group[measure].to_numpy()
-            rows.append((name, measure, float(x.mean()), standard_error(x)))
-    return pd.DataFrame(rows, columns=["strategy", "measure", "mean", "se"])
+            mean, se = float(x.mean()), standard_error(x)
+            still = bool(within_roundoff(se, mean))
+            rows.append((name, measure, mean, 0.0 if still else se,
+                         ROUNDOFF_SE if still else MONTE_CARLO))
+    return pd.DataFrame(rows, columns=["strategy", "measure", "mean", "se", "error"])
 
 
 def wide(outcomes: pd.DataFrame, measure: str) -> pd.DataFrame:

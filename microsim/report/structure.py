@@ -32,7 +32,7 @@ def value_text(value: Ref, scenario: Scenario) -> str:
     if not isinstance(value, str):
         return f"{value:g}"
     if value in scenario.tables:
-        return f"table {value} by {scenario.tables[value].by.replace('_', ' ')}"
+        return f"table {value} by {scenario.tables[value].axis_words.replace('_', ' ')}"
     if value in scenario.parameters:
         return f"{value} = {scenario.parameters[value].value:g}"
     return value

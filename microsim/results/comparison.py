@@ -89,12 +89,16 @@ def between(shares) -> np.ndarray:
     return (shares > ROUNDOFF) & (shares < 1.0 - ROUNDOFF)
 
 
+def within_roundoff(x, scale) -> np.ndarray:
+    """Which of `x` (standard errors, differences) numerical error alone explains: at most
+    ROUNDOFF relative to `scale` (the value they belong to), or absolute below 1."""
+    return np.abs(np.asarray(x, float)) <= ROUNDOFF * np.maximum(np.abs(scale), 1.0)
+
+
 def without_error(difference, se, scale) -> tuple[np.ndarray, np.ndarray]:
     """Which comparisons have no Monte-Carlo error to speak of (a standard error below what
     numerical error explains), and whether each of those agrees within it."""
-    tolerance = ROUNDOFF * np.maximum(np.abs(scale), 1.0)
-    certain = np.asarray(se) <= tolerance
-    return certain, np.abs(difference) <= tolerance
+    return within_roundoff(se, scale), within_roundoff(difference, scale)
 
 
 def share_p_values(simulated: np.ndarray, analytic_share: np.ndarray, n: int) -> np.ndarray:

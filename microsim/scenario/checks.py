@@ -7,15 +7,17 @@ with a field path. The checks run in an order where each may rely on the ones be
 from __future__ import annotations
 
 import itertools
+import math
 from typing import Iterable, Sequence
 
 import numpy as np
 
 from .errors import ScenarioError
 from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_you_mean,
-                     listing, show)
+                     listing, show, undefined)
 from .formulas import settings
 from .read_parameters import support
+from .read_population import normal_mass
 from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
 
 MAX_LISTED = 12  # levels named in one message
@@ -63,13 +65,6 @@ def occurrences(s: Scenario) -> list[tuple[str, Occurrence]]:
 def unknown_state(name: str, state_names: Sequence[str]) -> str:
     return (f"unknown state {name!r}{did_you_mean(name, state_names)}; "
             f"states: {listing(state_names)}")
-
-
-def undefined(what: str, name: str, known: list[str], words: Sequence[str] = ()) -> str:
-    """Why a name of a parameter (or table) cannot be used: none is defined by that name;
-    `words` are the fixed words the slot also takes ("remainder"), suggested like names."""
-    return (f"no {what} named {name!r}{did_you_mean(name, [*known, *words])}; "
-            f"defined: {listing(known)}")
 
 
 def unknown_attribute(s: Scenario, name: str, kinds: Sequence[str] | dict) -> str:
@@ -140,12 +135,12 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 "the start); give values by time in state through tunnel "
                                 "states instead")
         check_value_table_covers(s, table, ref)
-        for k, row in enumerate(table.rows):
-            for i, value in enumerate(row):
-                problem = role.problem(value)
-                if problem:
-                    where = table.row_name(k) + ("" if table.by is None else f"[{i}]")
-                    raise ScenarioError(where, f"{problem} (the table is used at {ref.path})")
+        for where, value in table.entries():
+            problem = None if isinstance(value, str) else role.problem(value)
+            if problem:
+                raise ScenarioError(where, f"{problem} (the table is used at {ref.path})")
+        for use in entry_uses(s, [ref]):
+            check_reference(s, use)
         return
     if ref.name not in s.parameters:
         what, known = "parameter", list(s.parameters)
@@ -175,6 +170,20 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 'uncertainty.invalid_draws = "redraw" or "truncate"')
 
 
+def entry_uses(s: Scenario, uses: Iterable[Reference]) -> list[Reference]:
+    """The uses of the parameters that tables' entries name: each entry is used as whatever
+    its table is used as, so its values (base, one-way, each PSA draw) are checked as a
+    number typed in there would be."""
+    found = []
+    for use in uses:
+        table = s.tables.get(use.name)
+        for where, value in table.entries() if table is not None else ():
+            if isinstance(value, str):
+                found.append(Reference(value, f"{where} (the table is used at {use.path})",
+                                       use.role))
+    return list(dict.fromkeys(found))
+
+
 def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
                              youngest: float | None = None) -> None:
     """A cost or utility by time must start at time 0, and one by age at or below the
@@ -189,6 +198,8 @@ def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
         raise ScenarioError(where, f"starts at {show(first)}, but {ref.path} needs a value "
                             "from time 0; make the first start 0")
     youngest = youngest_age(s) if youngest is None else youngest
+    if youngest == -math.inf:
+        return  # an untruncated normal's tail: a warning gives the share below (`warnings`)
     if table.by == AGE and youngest is not None and first > max(youngest, 0.0):
         raise ScenarioError(where, f"starts at age {show(first)}, but a patient can be "
                             f"{show(youngest)} at time 0 and {ref.path} needs a value at "
@@ -369,13 +380,15 @@ def check_age_known(s: Scenario, reading: Reading) -> None:
             raise ScenarioError(f"{path}.clock", f'is "age", but {NO_AGE}')
 
 
-def table_at(table: TableSpec, points: np.ndarray, choice: dict[str, int] | None = None
-             ) -> np.ndarray:
+def table_at(table: TableSpec, points: np.ndarray, choice: dict[str, int] | None = None,
+             value=float) -> np.ndarray:
     """The step function at `points` (of the row of the level `choice` picks, for a table
-    by level); the first value holds before the first start."""
+    by level); the first value holds before the first start. `value` gives each entry's
+    number, or (D,) numbers for D parameter sets: the result is then (D, points)."""
     index = np.searchsorted(np.asarray(table.starts), points, side="right") - 1
     row = table.rows[(choice or {}).get(table.attribute, 0)]
-    return np.asarray(row)[np.clip(index, 0, None)]
+    bands = np.stack(np.broadcast_arrays(*map(value, row)), axis=-1)
+    return bands[..., np.clip(index, 0, None)]
 
 
 def check_row(s: Scenario, state: str) -> None:
@@ -394,7 +407,7 @@ def check_row(s: Scenario, state: str) -> None:
                                     "one transition per state takes the remainder")
             remainder = t
         elif isinstance(t.probability, str) and t.probability in s.tables:
-            table = s.tables[t.probability]
+            table = s.tables[t.probability].at(base_values(s))
             tables_by_axis.setdefault(table.by, []).append(table)
         elif isinstance(t.probability, str):
             constant += s.parameters[t.probability].value
@@ -418,13 +431,18 @@ def check_row(s: Scenario, state: str) -> None:
                             '"remainder" or fix the values')
 
 
+def base_values(s: Scenario) -> dict[str, float]:
+    """Every parameter at its base-case value (derived ones computed)."""
+    return {name: p.value for name, p in s.parameters.items()}
+
+
 def may_be_positive(s: Scenario, value: Ref) -> bool:
     """False only for values that are zero in every binding (literal 0, all-zero table,
     parameter fixed at 0)."""
     if value == REMAINDER:
         return True
     if isinstance(value, str) and value in s.tables:
-        return any(v > 0 for v in s.tables[value].values)
+        return any(may_be_positive(s, v) for v in s.tables[value].values)
     if isinstance(value, str):
         p = s.parameters[value]
         return p.value != 0 or (p.distribution is not None and p.distribution.family != "fixed")
@@ -500,8 +518,17 @@ def youngest_age(s: Scenario) -> float | None:
     return min(ages) if ages else None
 
 
+def younger_share(s: Scenario, age: float) -> float:
+    """The share of patients younger than `age` at time 0 when their age is a normal
+    without a lower bound: P(X < age | X < upper), through the error function."""
+    a = next(a for a in s.population.attributes if a.name == AGE)
+    mean, sd, upper = a.params["mean"], a.params["sd"], a.params["upper"]
+    return min(normal_mass(mean, sd, -math.inf, min(age, upper))
+               / normal_mass(mean, sd, -math.inf, upper), 1.0)
+
+
 def warnings(s: Scenario, reading: Reading) -> list[str]:
-    used = {r.name for r in reading.references}
+    used = {r.name for r in reading.references + entry_uses(s, reading.references)}
     used |= {n.name for p in s.parameters.values() if p.formula for n in p.formula.names}
     found = [f"parameters.{n}: defined but not used" for n in s.parameters if n not in used]
     found += [f"tables.{n}: defined but not used" for n in s.tables if n not in used]
@@ -516,7 +543,13 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
     youngest = youngest_age(s)
     for table in s.tables.values():
         first = table.starts[0]
-        if table.by == AGE and youngest is not None and first > youngest:
+        if table.by == AGE and youngest == -math.inf:
+            found.append(f"tables.{table.name}.starts: the age at time 0 is an untruncated "
+                         f"normal, so a share of {younger_share(s, first):.3g} of the patients "
+                         f"are younger than the first start ({show(first)}); the first value "
+                         "is used below it (give the age attribute a lower bound to rule "
+                         "that out)")
+        elif table.by == AGE and youngest is not None and first > youngest:
             found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
                          f"above the youngest age at time 0 ({show(youngest)}); the first "
                          "value is used below it")

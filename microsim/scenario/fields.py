@@ -11,7 +11,7 @@ import difflib
 import math
 import re
 from dataclasses import dataclass, field
-from typing import Any, Iterable, NoReturn
+from typing import Any, Iterable, NoReturn, Sequence
 
 import numpy as np
 
@@ -76,6 +76,13 @@ def did_you_mean(word: str, choices: Iterable[str]) -> str:
 def listing(names: Iterable[str]) -> str:
     names = list(names)
     return ", ".join(names) if names else "(none)"
+
+
+def undefined(what: str, name: str, known: list[str], words: Sequence[str] = ()) -> str:
+    """Why a name of a parameter (or table) cannot be used: none is defined by that name;
+    `words` are the fixed words the slot also takes ("remainder"), suggested like names."""
+    return (f"no {what} named {name!r}{did_you_mean(name, [*known, *words])}; "
+            f"defined: {listing(known)}")
 
 
 @dataclass(frozen=True)
@@ -258,6 +265,11 @@ class Node:
         if problem:
             self.fail(key, problem)
         return x
+
+    def number_in(self, value: Any, key: str, expect: str = "a number") -> float:
+        """`value`, found at `key` (which may be a list item, `values[2]`), as a finite
+        number."""
+        return self._number(value, key, ANY, expect)
 
     def number_or(self, key: str, word: str, role: Role, expect: str) -> float | None:
         """A number, or None for the one `word` allowed in its place ("lifetime" for a

@@ -280,6 +280,10 @@ def check_capacity_value(s: Scenario, value, path: str) -> None:
             raise ScenarioError(path, f"table {value!r} is by {table.axis_words}; a capacity by period "
                                       "needs a table by time")
         for i, x in enumerate(table.values):
+            if isinstance(x, str):
+                raise ScenarioError(f"tables.{value}.values[{i}]", f"names the parameter {x!r}, "
+                                    f"but the table is the capacity at {path}, a count of units "
+                                    "that no analysis varies; give the whole number")
             if not x.is_integer():
                 raise ScenarioError(f"tables.{value}.values[{i}]", f"{show(x)} is not a whole "
                                     f"number of units (the table is the capacity at {path})")

@@ -2,12 +2,14 @@
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
+from typing import Any, Mapping
 
 from .errors import ScenarioError
 from .fields import (ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, describe, did_you_mean,
-                     listing, show)
+                     listing, show, undefined)
 from .formulas import FormulaError, derived_order, parse_formula, settings
-from .spec import REMAINDER, DistributionSpec, ParameterSpec, TableSpec
+from .spec import REMAINDER, DistributionSpec, ParameterSpec, Ref, TableSpec
 
 DISTRIBUTION_KEYS = {
     "beta": ("alpha", "beta"), "gamma": ("shape", "scale"), "lognormal": ("meanlog", "sdlog"),
@@ -18,6 +20,7 @@ COMPUTED = ("a derived parameter is computed from its formula (in every PSA draw
             "sensitivity setting too)")
 TABLE_KEYS = ("by", "starts", "values", "attribute")
 TABLE_AXES = ("age", "time", "time_in_state")
+ENTRY = "number or parameter name"  # what a table's entry may be
 
 
 def support(distribution: DistributionSpec, value: float) -> tuple[float, float]:
@@ -122,35 +125,65 @@ def read_distribution(node: Node | None) -> DistributionSpec | None:
     return DistributionSpec(family, params)
 
 
-def read_tables(node: Node | None) -> dict[str, TableSpec]:
+def read_tables(node: Node | None, parameters: Mapping[str, ParameterSpec]
+                ) -> dict[str, TableSpec]:
     tables: dict[str, TableSpec] = {}
+    entries = Entries(parameters, tuple(node.data) if node else ())
     for name in (node.data if node else ()):
         name_key(node, name, "table")
         entry = node.node(name, TABLE_KEYS)
         attribute = entry.name("attribute", None)
         if attribute is not None and not entry.has("by"):
-            tables[name] = read_level_table(entry, name, attribute)
+            tables[name] = read_level_table(entry, name, attribute, entries)
             continue
         by = entry.text("by", choices=TABLE_AXES)
         starts = entry.numbers("starts", role=NON_NEGATIVE, increasing=True)
         if attribute is None:
-            values = band_values(entry, "values", len(starts))
+            values = band_values(entry, "values", len(starts), entries)
             tables[name] = TableSpec(name, by, starts, values)
             continue
-        levels, rows = level_entries(entry, attribute, "a list of numbers, one per start")
-        values = tuple(v for level in levels for v in band_values(rows, level, len(starts)))
+        levels, rows = level_entries(entry, attribute, f"a list of {ENTRY}s, one per start")
+        values = tuple(v for level in levels
+                       for v in band_values(rows, level, len(starts), entries))
         tables[name] = TableSpec(name, by, starts, values, attribute, levels)
     return tables
 
 
-def band_values(node: Node, key: str, n_starts: int) -> tuple[float, ...]:
-    """One value per start: any numbers here, since what they may be (a rate, a
-    probability, a utility, ...) depends on where the table is used (checks.check_reference)."""
-    values = node.numbers(key)
+@dataclass(frozen=True)
+class Entries:
+    """What a table's entry may name: a parameter of [parameters] (derived ones too), never
+    a table."""
+    parameters: Mapping[str, ParameterSpec]
+    tables: tuple[str, ...]
+
+    def read(self, node: Node, key: str, value: Any) -> Ref:
+        """The entry `value` at `key` of `node`: any number, or a parameter's name (what
+        either may be, a rate, a probability, a utility, ..., depends on where the table
+        is used: checks.check_reference)."""
+        if not isinstance(value, str):
+            return node.number_in(value, key, f"a {ENTRY}")
+        if value in self.tables:
+            node.fail(key, f"{value!r} is a table; a table's entry is a number or the name of "
+                           "a parameter, not another table")
+        if not IDENTIFIER.fullmatch(value):
+            node.fail(key, f"must be a {ENTRY}, got {describe(value)}"
+                           f"{did_you_mean(value, self.parameters)}")
+        if value not in self.parameters:
+            node.fail(key, undefined("parameter", value, list(self.parameters))
+                           + "; a table's entry is a number or the name of a parameter")
+        return value
+
+
+def band_values(node: Node, key: str, n_starts: int, entries: Entries) -> tuple[Ref, ...]:
+    """One entry per start (`Entries.read`)."""
+    values = node.raw(key, expect=f"a list of {ENTRY}s, one per start")
+    if not isinstance(values, list) or not values:
+        node.fail(key, f"must be a list of {ENTRY}s, one per start, got "
+                       f"{'an empty list' if values == [] else describe(values)}")
     if len(values) != n_starts:
         node.fail(key, f"has {len(values)} values but starts has {n_starts}; "
                        "give one value per start")
-    return values
+    return tuple(entries.read(node, f"{key}[{i}]", v) for i, v in enumerate(values))
 
 
 def level_entries(entry: Node, attribute: str, each: str) -> tuple[tuple[str, ...], Node]:
@@ -170,8 +203,8 @@ def level_entries(entry: Node, attribute: str, each: str) -> tuple[tuple[str, ..
     return tuple(values.data), values
 
 
-def read_level_table(entry: Node, name: str, attribute: str) -> TableSpec:
-    """A table by level alone: one number per level, constant in time."""
-    levels, rows = level_entries(entry, attribute, "a number")
-    values = tuple(rows.number(level) for level in levels)
+def read_level_table(entry: Node, name: str, attribute: str, entries: Entries) -> TableSpec:
+    """A table by level alone: one number (or parameter) per level, constant in time."""
+    levels, rows = level_entries(entry, attribute, f"a {ENTRY}")
+    values = tuple(entries.read(rows, level, rows.data[level]) for level in levels)
     return TableSpec(name, None, (0.0,), values, attribute, levels)

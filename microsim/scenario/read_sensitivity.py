@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .checks import undefined
 from .errors import ScenarioError
-from .fields import TOLERANCE, Node, Reference, show
+from .fields import TOLERANCE, Node, Reference, show, undefined
 from .formulas import derived_order, explain, with_derived
 from .rows import attribute_ranges, row_bounds, too_high
 from .spec import ParameterSpec, Scenario, SensitivitySpec

@@ -3,10 +3,11 @@
 EVPPI is reported."""
 from __future__ import annotations
 
-from .checks import undefined
 from .correlation import covariance_problem, read_correlation_matrix
 from .errors import ScenarioError
-from .fields import ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show
+from .fields import (ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show,
+                     undefined)
+from .formulas import inputs
 from .spec import INVALID_DRAWS, PSA_BASES, NormalGroupSpec, Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients_per_draw", "correlation", "dirichlet",
@@ -160,14 +161,32 @@ def defined(s: Scenario, name: str, path: str) -> None:
         raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))
 
 
-def check_evppi_groups(s: Scenario) -> None:
-    """Every EVPPI parameter is defined and drawn by the PSA (a distribution that varies,
-    a Dirichlet or a multivariate normal group): a parameter that never varies has no value
-    of information."""
+def drawn_parameters(s: Scenario) -> set[str]:
+    """The parameters a PSA draws: those with a distribution that varies, and the members
+    of Dirichlet and multivariate normal groups (derived ones not included)."""
     drawn = {name for names, _ in s.uncertainty.dirichlets for name in names}
     drawn |= {name for group in s.uncertainty.normal_groups for name in group.parameters}
     drawn |= {name for name, p in s.parameters.items()
               if p.distribution is not None and p.distribution.family != "fixed"}
+    return drawn
+
+
+def psa_tables(s: Scenario) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """The tables the model reads, as (varied, fixed) by a PSA: a table varies when an
+    entry names a drawn parameter, or a derived one computed from one."""
+    drawn = drawn_parameters(s)
+    varies = {name for name, p in s.parameters.items() if name in drawn or (
+        p.formula is not None and drawn.intersection(inputs(s.parameters, name)))}
+    read = [name for name in s.tables if name in {use.name for use in s.uses}]
+    varied = tuple(name for name in read if varies.intersection(s.tables[name].names))
+    return varied, tuple(name for name in read if name not in varied)
+
+
+def check_evppi_groups(s: Scenario) -> None:
+    """Every EVPPI parameter is defined and drawn by the PSA (a distribution that varies,
+    a Dirichlet or a multivariate normal group): a parameter that never varies has no value
+    of information."""
+    drawn = drawn_parameters(s)
     for i, group in enumerate(s.uncertainty.evppi):
         for j, name in enumerate(group):
             path = f"uncertainty.evppi[{i}]" + (f"[{j}]" if len(group) > 1 else "")

@@ -14,7 +14,7 @@ from dataclasses import replace
 from pathlib import Path
 from typing import Any, Mapping
 
-from .checks import check_scenario, unknown_state
+from .checks import check_scenario, entry_uses, unknown_state
 from .errors import ScenarioError
 from .fields import (ANY, NON_NEGATIVE, POSITIVE, SHARE, TOLERANCE, UTILITY, VALUE_TABLE_AXES,
                      Node, Reading, closest, listing, show)
@@ -109,11 +109,12 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     provenance = doc.text("provenance", nonempty=True)
     time = read_time(doc.node("time", TIME_KEYS))
     parameters = read_parameters(doc.node("parameters", None, default=None))
-    tables = read_tables(doc.node("tables", None, default=None))
-    for name in tables:
+    tables_node = doc.node("tables", None, default=None)
+    for name in (tables_node.data if tables_node else ()):  # before any entry names one
         if name in parameters:
             raise ScenarioError(f"tables.{name}", f"{name!r} is also a parameter name; "
                                 "parameters and tables share one set of names")
+    tables = read_tables(tables_node, parameters)
     states = read_states(doc.nodes("states", None, required=True))
     draft = Scenario(
         title=title, description=description, provenance=provenance, time=time,
@@ -142,8 +143,9 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
     uses = reading.references + check_row_structure(draft)
+    uses += entry_uses(draft, uses)  # a table's entries are used as the table is
     check_row_bounds(draft)  # the base case first, so its refusal names the rows themselves
-    check_sensitivity(draft, reading.references)
+    check_sensitivity(draft, uses)
     return replace(draft, warnings=tuple(found), uses=tuple(uses))
 
 

@@ -110,11 +110,14 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None, line: LineSpec | N
                       remainder, remainder_path, treatment)
 
 
-def row_names(row: Row) -> list[str]:
-    """The names the row's moves read: probabilities, hazard ratios, memory, treatment."""
+def row_names(s: Scenario, row: Row) -> list[str]:
+    """The parameters the row's moves read: probabilities (and their tables' entries),
+    hazard ratios, memory, treatment."""
     refs = []
     for move in row.moves:
-        refs += [move.spec.probability, *(e.hazard_ratio for e in move.spec.effects)]
+        p = move.spec.probability
+        refs += list(s.tables[p].names) if p in s.tables else [p]
+        refs += [e.hazard_ratio for e in move.spec.effects]
         for m in move.spec.memory:
             refs += m.multipliers if m.multipliers is not None else [m.multiplier]
         refs += [hr for _, hr in move.changes]
@@ -263,9 +266,10 @@ def row_sum(s: Scenario, row: Row, value, multipliers) -> np.ndarray:
             total = total + on_rate_scale(value(p), m)
     for tables in by_axis.values():  # tables on the same axis are read at the same point
         points = np.unique(np.concatenate([t.starts for t, _ in tables]))
-        bands = [sum(on_rate_scale(table_at(t, points, choice), m[..., None]) for t, m in tables)
+        bands = [sum(on_rate_scale(table_at(t, points, choice, value), m[..., None])
+                     for t, m in tables)
                  for choice in level_choices([t for t, _ in tables])]
-        total = total + np.max(bands, axis=(0, -1))
+        total = total + np.max(np.broadcast_arrays(*bands), axis=(0, -1))  # levels may differ in D
     return total
 
 

@@ -176,11 +176,13 @@ class TableSpec:
 
     Before starts[0] the first value holds (the reader warns when that can happen). A table
     by an attribute's level has one row of values per level (`levels`, in the file's order);
-    `by` None is a table by level alone (one band from 0, so one value per level)."""
+    `by` None is a table by level alone (one band from 0, so one value per level). An entry
+    may name a parameter, so that PSA and sensitivity analyses vary it: binding reads the
+    table `at` its parameter set, and nothing after binding sees a name."""
     name: str
     by: TableAxis | None
     starts: tuple[float, ...]
-    values: tuple[float, ...]  # every value: a plain table's row, or the rows level after level
+    values: tuple[Ref, ...]  # every value: a plain table's row, or the rows level after level
     attribute: str | None = None  # the categorical attribute whose levels pick a row
     levels: tuple[str, ...] = ()
 
@@ -205,6 +207,27 @@ class TableSpec:
         """The field path of row i's values."""
         return (f"tables.{self.name}.values" if self.attribute is None
                 else f"tables.{self.name}.values.{self.levels[i]}")
+
+    def entry_path(self, k: int, i: int) -> str:
+        """The field path of value i of row k (a table by level alone: the level's one)."""
+        return self.row_name(k) + ("" if self.by is None else f"[{i}]")
+
+    def entries(self) -> list[tuple[str, Ref]]:
+        """Every value with its field path, row after row."""
+        return [(self.entry_path(k, i), value) for k, row in enumerate(self.rows)
+                for i, value in enumerate(row)]
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        """The parameters the table's entries name (none: the table holds only numbers)."""
+        return tuple(dict.fromkeys(v for v in self.values if isinstance(v, str)))
+
+    def at(self, values: Mapping[str, float]) -> "TableSpec":
+        """The table with every entry a number: a named one at its parameter's value."""
+        if not self.names:
+            return self
+        return replace(self, values=tuple(float(values[v]) if isinstance(v, str) else v
+                                          for v in self.values))
 
 
 @dataclass(frozen=True)

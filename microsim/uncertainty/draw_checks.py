@@ -97,7 +97,7 @@ def problems(s: Scenario, table: pd.DataFrame, ranges) -> list[Problem]:
     for bound in row_bounds(s, values, ranges):
         bad = ~(bound.bound <= 1.0 + TOLERANCE)
         if bad.any():
-            found.append(row_problem(bound, table, bad))
+            found.append(row_problem(s, bound, table, bad))
     return found
 
 
@@ -130,9 +130,9 @@ def formula_problem(s: Scenario, name: str, table: pd.DataFrame) -> Problem:
                    "the formula defined")
 
 
-def row_problem(bound: RowBound, table: pd.DataFrame, bad: np.ndarray) -> Problem:
+def row_problem(s: Scenario, bound: RowBound, table: pd.DataFrame, bad: np.ndarray) -> Problem:
     row = bound.row
-    names = tuple(n for n in row_names(row) if n in table.columns)
+    names = tuple(n for n in row_names(s, row) if n in table.columns)
 
     def why(k: int) -> str:
         values = ", ".join(f"{n} = {show(table[n].iloc[k])}" for n in names)

@@ -35,6 +35,7 @@ from microsim.decision.strategies import (AS_WRITTEN, COST, EFFECT, patient_outc
                                          run_strategies, strategy_names)
 from microsim.patients.population import patients_for, scenario_patients
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.read_uncertainty import psa_tables
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
@@ -122,6 +123,8 @@ class PsaResult:
     note: str | None = None
     evppi: pd.DataFrame | None = None  # per threshold, for the groups of uncertainty.evppi
     basis: str = ""  # how each draw was evaluated, in words (BASES)
+    tables: tuple[tuple[str, ...], tuple[str, ...]] = ((), ())  # the tables the model
+    # reads: (varied, held fixed) by the draws
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -210,17 +213,18 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
-    basis = BASES[spec.basis]
+    basis, tables = BASES[spec.basis], psa_tables(scenario)
     if not scenario.strategies:
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES,
-                         basis=basis)
+                         basis=basis, tables=tables)
     comparator = strategy_names(scenario)[0]
     summary = summarise_draws(results, thresholds(scenario), comparator)
     evpi, evppi = information_values(scenario, table, results, summary["evpi"],
                                      thresholds(scenario), comparator)
     variance = variance_split(scenario, results) if spec.basis == "simulated" else None
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
-                     evpi, summary["plane"], variance, evppi=evppi, basis=basis)
+                     evpi, summary["plane"], variance, evppi=evppi, basis=basis,
+                     tables=tables)
 
 
 def own_folder(root: Path, fingerprint: dict, draws: pd.DataFrame) -> Path:
