@@ -84,7 +84,6 @@ class _Risks(NamedTuple):
     factors: np.ndarray
     bump_ptr: np.ndarray
     bumps: np.ndarray
-    steady: np.ndarray  # its chance is the same in every cycle of a patient (see `_chance`)
 
 
 class _Patients(NamedTuple):
@@ -168,8 +167,6 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
             age_factor[r] = [exp(slope * (n * model.cycle)) for n in range(age_factor.shape[1])]
     windowed = np.array([window is not None and window.on_factor[r] != window.off_factor[r]
                          for r in range(n_risks)], bool).reshape(-1)
-    steady = [axis[r] == NO_BAND and not slopes[r] and not windowed[r]
-              and memory_ptr[r] == memory_ptr[r + 1] for r in range(n_risks)]
     risks = _Risks(
         np.array([-1 if risk.target is None else risk.target for risk in model.risks], np.int64),
         np.array(slot, np.int64), np.array(value_ptr, np.int64), np.array(n_bands, np.int64),
@@ -181,8 +178,7 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
         np.array([COUNT if term[1] is not None else WITHIN for term in terms], np.int64),
         np.array([np.nan if term[2] is None else term[2] for term in terms], float),
         np.array([np.nan if term[3] is None else term[3] for term in terms], float),
-        factor_ptr, np.array(factor_flat, float), bump_ptr, np.array(bump_flat, np.int64),
-        np.array(steady, bool).reshape(-1))
+        factor_ptr, np.array(factor_flat, float), bump_ptr, np.array(bump_flat, np.int64))
 
     age0 = np.zeros(size) if mult.entry_age is None else np.asarray(mult.entry_age, float)
     on = np.full(size, np.inf) if window is None else np.asarray(window.on, float)
@@ -231,18 +227,17 @@ def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle):
 
 
 @njit(cache=True, _nrt=False)
-def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, kept):
-    """Risk r's chance by the separate rule for patient b at cycle n (its base value where
-    the multiplier is 1). A steady risk's is the same number in every cycle of the patient,
-    so it is worked out once and kept (`kept[r]`, -1 until then): one `expm1` a patient
-    instead of one a cycle."""
-    if risks.steady[r] and kept[r] >= 0.0:
-        return kept[r]
+def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, memo):
+    """Risk r's chance by the separate rule for patient b at cycle n: its base value where
+    the multiplier is 1, else `separate_one`, a function of m L alone. `memo` keeps each
+    risk's last m L and chance, so a chance that does not change from one cycle (or
+    patient) to the next costs no `expm1`: the same argument gives the same number."""
     p, log, m = _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle)
-    chance = p if m == 1.0 else separate_one(log, m)
-    if risks.steady[r]:
-        kept[r] = chance
-    return chance
+    if m == 1.0:
+        return p
+    if m * log != memo[0, r]:
+        memo[0, r], memo[1, r] = m * log, separate_one(log, m)
+    return memo[1, r]
 
 
 @njit(cache=True, _nrt=False)
@@ -256,12 +251,11 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
     here: `scratch` holds the working arrays): counting references to the many arrays of
     the layout cost more than the arithmetic."""
     size = start.size
-    words, held, chances, weights, hits, kept = scratch
+    words, held, chances, weights, hits, memo, scales = scratch
     for b in range(first, size):
         if n_rec + per_patient > rec_time.size:
             return b, n_rec, -1, 0, 0.0
         held[:] = -1
-        kept[:] = -1.0
         state, in_cycles = start[b], 0
         on, off, age0 = people.on[b], people.off[b], people.age0[b]
         rec_patient[n_rec], rec_time[n_rec], rec_source[n_rec] = b, 0.0, START
@@ -286,9 +280,12 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
                     total_weight += weights[j - lo]  # 0 + w is w: the reference's sum
                 else:
                     chances[j - lo] = _chance(risks, rows.moves[j], b, n, t, age, in_state,
-                                              on, off, counts, last, cycle, kept)
+                                              on, off, counts, last, cycle, memo)
             if rows.combined[state]:
-                scale = competing_scale(total_weight)
+                if total_weight != scales[0, state]:  # the row's last R and scale, kept
+                    scales[0, state] = total_weight
+                    scales[1, state] = competing_scale(total_weight)
+                scale = scales[1, state]
                 for j in range(lo, hi):
                     chances[j - lo] = weights[j - lo] * scale
             if held[0] != block:
@@ -312,7 +309,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
             for j in range(rows.event_ptr[state], rows.event_ptr[state + 1]):
                 r = rows.events[j]
                 chance = _chance(risks, r, b, n, t, age, in_state, on, off, counts, last,
-                                 cycle, kept)
+                                 cycle, memo)
                 s = risks.slot[r]
                 if held[s] != block:
                     philox_block(people.ids[b], np.uint64(block), people.seed, people.keys[s],
@@ -369,7 +366,8 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     scratch = (np.empty((slots, 4), np.uint64),  # the words of a Philox block per slot,
                np.empty(slots, np.int64),  # and the block they are from
                np.empty(row_length), np.empty(row_length), np.empty(row_length, np.int64),
-               np.empty(len(model.risks)))  # the kept chances of steady risks
+               np.full((2, len(model.risks)), np.nan),  # each risk's last m L and chance,
+               np.full((2, model.n_states), np.nan))  # each row's last R and scale
     first, used = 0, 0
     while True:
         first, used, failed, cycle, total = _run(
