@@ -190,27 +190,36 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
 
 
 @njit(cache=True, _nrt=False)
-def _band(risks, r, t, age, in_state):
-    """The band of risk r's table at time t, as `bisect_right(starts, x) - 1`, at least 0."""
+def _band(risks, r, t, age, in_state, hints):
+    """The band of risk r's table at time t, as `bisect_right(starts, x) - 1`, at least 0.
+    `hints[r]` is the band found last: a patient's age and time only grow, so it usually
+    still holds, and checking it costs two comparisons where the search costs several
+    unpredictable branches."""
     axis = risks.band_axis[r]
     if axis == NO_BAND:
         return 0
     x = t if axis == 0 else (age if axis == 1 else in_state)
-    lo, hi = risks.start_ptr[r], risks.start_ptr[r + 1]
+    first, n = risks.start_ptr[r], risks.start_ptr[r + 1] - risks.start_ptr[r]
+    k = hints[r]
+    if (k == 0 or risks.starts[first + k] <= x) and (k == n - 1 or x < risks.starts[first + k + 1]):
+        return k
+    lo, hi = first, first + n
     while lo < hi:
         mid = (lo + hi) // 2
         if x < risks.starts[mid]:
             hi = mid
         else:
             lo = mid + 1
-    return max(lo - risks.start_ptr[r] - 1, 0)
+    hints[r] = max(lo - first - 1, 0)
+    return hints[r]
 
 
 @njit(cache=True, _nrt=False)
-def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle):
+def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints):
     """(base probability, L, multiplier) of risk r for patient b at cycle n, in the
     reference's order of operations (`cycle_engine.simulate_cycles`, weigh)."""
-    k = risks.value_ptr[r] + risks.level_row[r, b] * risks.n_bands[r] + _band(risks, r, t, age, in_state)
+    k = (risks.value_ptr[r] + risks.level_row[r, b] * risks.n_bands[r]
+         + _band(risks, r, t, age, in_state, hints))
     m = risks.static[b, r]
     if risks.sloped[r]:
         m *= risks.age_factor[r, n]
@@ -227,12 +236,12 @@ def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle):
 
 
 @njit(cache=True, _nrt=False)
-def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, memo):
+def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, memo, hints):
     """Risk r's chance by the separate rule for patient b at cycle n: its base value where
     the multiplier is 1, else `separate_one`, a function of m L alone. `memo` keeps each
     risk's last m L and chance, so a chance that does not change from one cycle (or
     patient) to the next costs no `expm1`: the same argument gives the same number."""
-    p, log, m = _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle)
+    p, log, m = _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints)
     if m == 1.0:
         return p
     if m * log != memo[0, r]:
@@ -251,7 +260,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
     here: `scratch` holds the working arrays): counting references to the many arrays of
     the layout cost more than the arithmetic."""
     size = start.size
-    words, held, chances, weights, hits, memo, scales = scratch
+    words, held, chances, weights, hits, memo, scales, hints = scratch
     for b in range(first, size):
         if n_rec + per_patient > rec_time.size:
             return b, n_rec, -1, 0, 0.0
@@ -275,12 +284,12 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
             for j in range(lo, hi):
                 if rows.combined[state]:
                     _, log, m = _weigh(risks, rows.moves[j], b, n, t, age, in_state, on, off,
-                                       counts, last, cycle)
+                                       counts, last, cycle, hints)
                     weights[j - lo] = log * m
                     total_weight += weights[j - lo]  # 0 + w is w: the reference's sum
                 else:
                     chances[j - lo] = _chance(risks, rows.moves[j], b, n, t, age, in_state,
-                                              on, off, counts, last, cycle, memo)
+                                              on, off, counts, last, cycle, memo, hints)
             if rows.combined[state]:
                 if total_weight != scales[0, state]:  # the row's last R and scale, kept
                     scales[0, state] = total_weight
@@ -309,7 +318,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
             for j in range(rows.event_ptr[state], rows.event_ptr[state + 1]):
                 r = rows.events[j]
                 chance = _chance(risks, r, b, n, t, age, in_state, on, off, counts, last,
-                                 cycle, memo)
+                                 cycle, memo, hints)
                 s = risks.slot[r]
                 if held[s] != block:
                     philox_block(people.ids[b], np.uint64(block), people.seed, people.keys[s],
@@ -367,7 +376,8 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
                np.empty(slots, np.int64),  # and the block they are from
                np.empty(row_length), np.empty(row_length), np.empty(row_length, np.int64),
                np.full((2, len(model.risks)), np.nan),  # each risk's last m L and chance,
-               np.full((2, model.n_states), np.nan))  # each row's last R and scale
+               np.full((2, model.n_states), np.nan),  # each row's last R and scale,
+               np.zeros(len(model.risks), np.int64))  # and each risk's last band
     first, used = 0, 0
     while True:
         first, used, failed, cycle, total = _run(
