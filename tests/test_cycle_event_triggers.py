@@ -27,7 +27,7 @@ from support import (after, assert_refused, attribute, both_engines, event, hori
                      nested, population, probability, scenario_text, start, state, strategy,
                      table)
 
-P_SICK, P_DIE_WELL, P_DIE_SICK, Q = 0.15, 0.02, 0.2, 0.3
+P_SICK, P_DIE_WELL, P_DIE_SICK, Q = 0.15, 0.02, 0.2, 0.3  # the example of the format's page
 HR_SICK, HR_DIE = 0.5, 0.8
 COMPARATOR = strategy("usual", comparator=True)
 
