@@ -241,10 +241,12 @@ def test_edges_equal_the_simpy_cycle_engine():
 TRIGGERED = [
     horizon(12, cycle=1), start(well=0.8, sick=0.2),
     state("well"), state("sick"), state("dead", absorbing=True),
-    probability("well", "sick", 0.15, name="progress", effects=[effect("biomarker", 1.8, centre=0.8)]),
+    probability("well", "sick", 0.15, name="progress",
+                effects=[effect("biomarker", 1.8, centre=0.8)]),
     probability("well", "dead", 0.02), probability("well", "well", "remainder"),
     probability("sick", "dead", 0.1, name="die_sick"), probability("sick", "sick", "remainder"),
-    event("flare", ["well", "sick"], probability=0.2, memory=[after("flare", multipliers=[1, 0.6])]),
+    event("flare", ["well", "sick"], probability=0.2,
+          memory=[after("flare", multipliers=[1, 0.6])]),
     event("scan", ["sick"], probability=0.3),
     PEOPLE, strategy("usual_care", comparator=True)]
 
@@ -252,16 +254,18 @@ TRIGGERS = {
     "start": dict(start_on="flare", uptake=0.7),
     "delay": dict(start_on="flare", start_delay=2.0),
     "sequence": dict(start_on="flare", stop_on="scan", then=[nested(
-        name="second", stop_on="flare", changes=[nested(transition="die_sick", hazard_ratio=0.7)])]),
+        name="second", stop_on="flare",
+        changes=[nested(transition="die_sick", hazard_ratio=0.7)])]),
 }
 
 
+@pytest.mark.parametrize("rule", RULES)
 @pytest.mark.parametrize("name", TRIGGERS)
-def test_event_triggered_treatment_histories_equal_the_simpy_cycle_engine(name):
+def test_event_triggered_treatment_histories_equal_the_simpy_cycle_engine(name, rule):
     text = scenario_text(*TRIGGERED, strategy("treat", changes=[
         nested(transition="progress", hazard_ratio=0.5)], **TRIGGERS[name]))
-    model = bind(parse_scenario(text), strategy="treat")
-    assert model.phase_on is not None
+    model = bind(parse_scenario(under(rule, text)), strategy="treat")
+    assert model.phase_on is not None and model.probability_rule == rule
     expected, got, _ = both_engines(model, IDS, 77)
     assert_identical(expected, got)
     assert_every_risk_happens(model, got)

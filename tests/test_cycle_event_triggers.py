@@ -23,9 +23,9 @@ from microsim.patients.population import draw_population
 from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario
 from microsim.simulation import simulate
-from support import (after, assert_refused, attribute, both_engines, event, horizon, move,
-                     nested, population, probability, scenario_text, start, state, strategy,
-                     table)
+from support import (after, assert_mean_agrees, assert_refused, attribute, both_engines, event,
+                     horizon, move, nested, population, probability, scenario_text, start,
+                     state, strategy, table)
 
 P_SICK, P_DIE_WELL, P_DIE_SICK, Q = 0.15, 0.02, 0.2, 0.3  # the example of the format's page
 HR_SICK, HR_DIE = 0.5, 0.8
@@ -216,8 +216,19 @@ def test_simulation_agrees_with_its_exact_counterpart(fields):
     scenario = parse_scenario(scenario_text(*blocks, COMPARATOR, treat(**fields)))
     model = bind(scenario, strategy="treat")
     patients = draw_population(scenario.population, 31, np.arange(3000))
-    result = compare(simulate(model, patients, 31))
+    sim = simulate(model, patients, 31, keep_exposure=True)
+    result = compare(sim)
     assert result.exact and result.agrees, result.verdict
+    # on treatment at the horizon, and flares per patient, against each patient's exact
+    # expectation (central limit theorem)
+    exact = analytic(model, mult=sim.mult)
+    assert sim.grid[-1] == model.times[-1]
+    on_at_end = model.treated_states[sim.states[:, -1]].astype(float)
+    assert 0 < on_at_end.mean() < 1
+    assert_mean_agrees(on_at_end, (exact.trace[:, -1] @ model.treated_states).mean(), "on")
+    flares = [r for r, risk in enumerate(model.risks) if risk.name == "flare"]
+    assert_mean_agrees(sim.exposure.occurrences[:, flares, 0].sum(axis=1),
+                       exact.exposure.occurrences[:, flares, 0].sum(axis=1).mean(), "flares")
 
 
 def test_a_certain_flare_starts_everyone_in_its_state_at_the_end_of_the_first_cycle():
@@ -279,3 +290,15 @@ RASH = nested(name="rash", states=["sick"], probability=0.1)
         "part-cycle-delay"])
 def test_refusals(fields, path, phrase):
     assert_refused(scenario_text(*flaring(), COMPARATOR, treat(**fields)), path, phrase)
+
+
+def test_a_refusal_is_one_line_exit_2_and_nothing_written(tmp_path, capsys):
+    # the command line's rule for bad input (docs: one line naming the field, exit 2)
+    from microsim.cli import main
+    path = tmp_path / "bad.toml"
+    path.write_text(scenario_text(*flaring(), COMPARATOR, treat(start_on="flair")))
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--patients", "10", "--out", str(out)]) == 2
+    lines = capsys.readouterr().err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: strategies.treat.start_on"), lines
+    assert not out.exists()
