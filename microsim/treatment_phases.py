@@ -17,10 +17,11 @@ phase only (elsewhere it is left out, not given a hazard of 0, which an engine w
 as a treatment that changes nothing). Because the phase changes only with a move or at a
 cycle end, the model stays a plain Markov model (with the same memory, tables and hazards
 as before): every engine simulates it as it is (the cycle engines and matrices follow
-`stay_to` and `phase_on` at a cycle end), and its analytic counterpart is exact by the same expanded chain as any other model (common practice: a
-treatment history as states, e.g. tunnel-like copies of health states by line of therapy). The strategy's time window (start, stop, eligibility,
-uptake) still applies on top: a treatment acts while the patient is in its phase and inside
-the window.
+`stay_to` and `phase_on` at a cycle end), and its analytic counterpart is exact by the same
+expanded chain as any other model (common practice: a treatment history as states, e.g.
+tunnel-like copies of health states by line of therapy). The strategy's time window
+(start, stop, eligibility, uptake) still applies on top: a treatment acts while the patient
+is in its phase and inside the window.
 
 Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last); the copies of
 the phase before treatment keep the states' own names, absorbing states have one copy,
@@ -109,10 +110,11 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
             if owner.get(r, line) is not line:
                 continue  # added by another treatment (or before one starts): not here
             moves = risk.target is not None and risk.target != risk.source  # staying: no tick
-            if risk.is_event and risk.name in triggers[k] and model.discrete:
-                moving[len(risks)] = k  # drawn beside the move: the phase moves at cycle end
+            trigger = risk.is_event and risk.name in triggers[k]
+            if trigger and model.discrete:  # drawn beside the move: on at the cycle's end
+                moving[len(risks)] = k
                 target = None
-            elif risk.is_event and risk.name in triggers[k]:  # the event moves the phase on
+            elif trigger:  # the event is the move to the next phase
                 target = copy[k + 1, risk.source]
             else:
                 target = None if risk.target is None else copy[

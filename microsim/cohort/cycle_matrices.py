@@ -4,11 +4,11 @@ Within a cycle a patient in expanded state (i, d, counts) takes one of the trans
 of i (the "remainder" takes what the others leave) and, independently, each event of i
 happens or not; counts and time-in-state then move on, and an event that starts or stops
 treatment passes the patient to the next phase's copy of the cycle's end state
-(`BoundModel.phase_on`). Covariate and memory multipliers act
-on the rate scale, each move on its own, p' = 1 - (1 - p)^m (common practice; e.g. Briggs,
-Claxton & Sculpher 2006, "Decision Modelling for Health Economic Evaluation", ch. 3), or,
-under the competing rule, the row's moves combined through their rates
-(`microsim.hazards.cycle_probabilities`). The cycle engines follow exactly these rules.
+(`BoundModel.phase_on`). Covariate and memory multipliers act on the rate scale, each move
+on its own, p' = 1 - (1 - p)^m (common practice; e.g. Briggs, Claxton & Sculpher 2006,
+"Decision Modelling for Health Economic Evaluation", ch. 3), or, under the competing rule,
+the row's moves combined through their rates (`microsim.hazards.cycle_probabilities`). The
+cycle engines follow exactly these rules.
 """
 from __future__ import annotations
 
@@ -16,7 +16,7 @@ import itertools
 
 import numpy as np
 
-from microsim.binding import BoundRisk
+from microsim.binding import BoundModel, BoundRisk
 from microsim.cohort.expand import Expansion
 from microsim.patients.multipliers import LevelRows, Multipliers
 from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
@@ -55,7 +55,7 @@ def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: f
     return np.asarray(base.values)[band], np.asarray(risk.logs)[band]
 
 
-def moves_phase(model, r: int) -> bool:
+def moves_phase(model: BoundModel, r: int) -> bool:
     """True when risk r is an event that moves the treatment phase on (`BoundModel.phase_on`
     is not the identity for it)."""
     return model.phase_on is not None and bool(
