@@ -153,6 +153,12 @@ class BoundModel:
     # cycle models with a delay to treatment: the state a patient who stays in its state
     # passes to at a cycle end (the next copy of the countdown; None: the state itself)
     stay_to: np.ndarray | None = None
+    # cycle models with an event that starts or stops treatment: phase_on[r, f] is the state
+    # a patient ends a cycle in when risk r happened in it and the cycle's move (or stay)
+    # ended in f: f's copy in the next phase where r moves the phase on and the move kept
+    # the phase (f itself where the move changed it already, f is absorbing, or no cycle
+    # from r's state ends in f); the identity for every other risk. None: no such event
+    phase_on: np.ndarray | None = None
     # with treatment phases: which states are copies on a treatment (None: no phases)
     treated_states: np.ndarray | None = None
     state_tables: tuple[ValueTable, ...] = ()  # states' costs and utilities read from tables

@@ -5,18 +5,23 @@ A strategy with `start_on`, `stop_on` or `then` is bound to a model in which eve
 state has one copy per phase: before treatment (when it starts on entering a state), on each
 treatment of the sequence in turn, and after the last has stopped. A move into a state that
 starts or stops the current phase's treatment goes to that state's copy in the next phase;
-so does an event that starts or stops it (rate models): in the phase it acts on, the event is
-a move from the state's copy to the same state's copy in the next phase, with the event's
-name, cost and disutility, so it is counted and costed once as before. Every other move
-keeps the phase. A transition or event a treatment adds for its time on treatment exists
-in the copies of that treatment's phase only (elsewhere it is left out, not given a hazard
-of 0, which an engine would read as a treatment that changes nothing). Because the phase
-changes only with a move, the model stays a plain Markov model (with the same memory,
-tables and hazards as before): every engine simulates it as it is, and its analytic
-counterpart is exact by the same expanded chain as any other model (common practice: a
-treatment history as states, e.g. tunnel-like copies of health states by line of therapy). The strategy's time window (start, stop, eligibility,
-uptake) still applies on top: a treatment acts while the patient is in its phase and inside
-the window.
+so does an event that starts or stops it. In rate models the event, in the phase it acts
+on, is a move from the state's copy to the same state's copy in the next phase, with the
+event's name, cost and disutility, so it is counted and costed once as before. In cycle
+models an event is drawn beside the cycle's move, so it stays an event, and
+`BoundModel.phase_on` says where it sends the cycle's end state: to that state's copy in
+the next phase, unless the move changed the phase already or ended in an absorbing state
+(the phase moves at most once a cycle). Every other move keeps the phase. A transition or
+event a treatment adds for its time on treatment exists in the copies of that treatment's
+phase only (elsewhere it is left out, not given a hazard of 0, which an engine would read
+as a treatment that changes nothing). Because the phase changes only with a move or at a
+cycle end, the model stays a plain Markov model (with the same memory, tables and hazards
+as before): every engine simulates it as it is (the cycle engines and matrices follow
+`stay_to` and `phase_on` at a cycle end), and its analytic counterpart is exact by the same
+expanded chain as any other model (common practice: a treatment history as states, e.g.
+tunnel-like copies of health states by line of therapy). The strategy's time window
+(start, stop, eligibility, uptake) still applies on top: a treatment acts while the patient
+is in its phase and inside the window.
 
 Copies are named `<state>+<treatment>` (and `<state>+stopped` after the last), the first
 treatment's after the strategy (`binding.bind` names its `Line` so); the copies of
@@ -92,14 +97,25 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                 return k
         return k + 1 if model.states[state] in triggers[k] else k
 
+    def next_copy(k: int, e: int) -> int:
+        """Where a cycle that ended in copy e goes when an event of phase k moves the phase
+        on: e's state in the next phase, if e is a living copy of phase k (else e)."""
+        i = base[e]
+        return copy[k + 1, i] if not model.absorbing[i] and copy[k, i] == e else e
+
     owner = {r: line for line in lines for r in line.adds}
     risks, on, off = [], [], []
+    moving = {}  # cycle models: a risk (of `risks`) that moves the phase on -> its phase
     for k, line in enumerate(phases):
         for r, risk in enumerate(model.risks):
             if owner.get(r, line) is not line:
                 continue  # added by another treatment (or before one starts): not here
             moves = risk.target is not None and risk.target != risk.source  # staying: no tick
-            if risk.is_event and risk.name in triggers[k]:  # the event moves the phase on
+            trigger = risk.is_event and risk.name in triggers[k]
+            if trigger and model.discrete:  # drawn beside the move: on at the cycle's end
+                moving[len(risks)] = k
+                target = None
+            elif trigger:  # the event is the move to the next phase
                 target = copy[k + 1, risk.source]
             else:
                 target = None if risk.target is None else copy[
@@ -126,12 +142,15 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
     for k in range(1, waits + 1):
         for i in range(model.n_states):
             stay[copy[k, i]] = copy[k + 1, i]
-    # keep the copies patients can reach (from where they start, by any risk or a countdown)
+    # keep the copies patients can reach (from where they start, by any risk, a countdown
+    # or an event that moves the phase on at the end of a cycle from there)
     kept, stack = set(np.flatnonzero(start)), list(np.flatnonzero(start))
     while stack:
         e = stack.pop()
-        reached = [risk.target for risk in risks if risk.source == e and risk.target is not None]
-        for f in reached + [stay[e]]:
+        ends = [risk.target for risk in risks if risk.source == e and risk.target is not None]
+        ends.append(stay[e])
+        phases_on = {k for r, k in moving.items() if risks[r].source == e}
+        for f in ends + [next_copy(k, f) for k in phases_on for f in ends]:
             if f not in kept:
                 kept.add(f)
                 stack.append(f)
@@ -146,6 +165,12 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                         for k, line in enumerate(phases) if line is not None
                         for v in line.tables
                         if not model.absorbing[v.state] and copy[k, v.state] in new)
+    phase_on = None
+    if moving:
+        phase_on = np.tile(np.arange(len(kept)), (len(live), 1))
+        for j, r in enumerate(live):
+            if r in moving:
+                phase_on[j] = [new.get(next_copy(moving[r], e), f) for f, e in enumerate(kept)]
     treatment = replace(t, on_factor=np.array(on)[live], off_factor=np.array(off)[live],
                         extra_cost=cost[kept], extra_utility=utility[kept], tables=line_tables)
     return replace(
@@ -158,4 +183,5 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
         treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
         entered_names=tuple(entered[e] for e in kept),
         stay_to=None if not waits else np.array([new[stay[e]] for e in kept]),
+        phase_on=phase_on,
         treated_states=treated[kept], state_tables=state_tables)

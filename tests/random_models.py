@@ -82,10 +82,12 @@ class Draft:
     """One model being drawn: states, ways out, population, strategy, and what it covers."""
 
     def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False,
-                 sequence: bool = False):
+                 sequence: bool = False, trigger: str | None = None):
         self.rng = rng
         self.log_location = log_location  # rate models of log-location families
         self.sequence = sequence  # a treated model whose strategy is a sequence of two
+        self.trigger = trigger  # cycle models: the event starts ("start", "delay") or
+        # stops ("stop") the treatment
         self.kind = kind
         self.cycles = kind == "cycle"
         self.features: set[str] = {kind}
@@ -284,7 +286,7 @@ class Draft:
         return following + ([DEAD] if self.lifetime and DEAD not in following else [])
 
     def draw_event(self, value: float):
-        if not self.chance(0.4):
+        if not (self.trigger or self.chance(0.4)):  # a model whose treatment it triggers has it
             return
         states = tuple(s for s in self.alive if self.chance(0.7)) or (self.alive[0],)
         self.way(None, None, parameter=self.parameter(f"{self.letter}_{EVENT}", value),
@@ -338,7 +340,9 @@ class Draft:
         if self.chance(0.3):
             fields["stop"] = self.cycle * self.whole(int(fields.get("start", 0) / self.cycle) + 1,
                                                      self.n_cycles)
-        if self.cycles and self.chance(0.4):
+        if self.trigger:
+            fields.update(self.draw_trigger())
+        elif self.cycles and self.chance(0.4):
             fields["discontinuation"] = self.uniform(0.05, 0.3, 3) / self.cycle
             self.features.add("discontinuation")
             self.heterogeneous = True
@@ -364,18 +368,31 @@ class Draft:
                                                  way.parameter}))
             self.features.add("added transition")
         if self.sequence:
-            fields.update(self.draw_second(changeable, addable, fields.get("start_on"), value))
+            fields.update(self.draw_second(changeable, addable, fields.get("start_on"), value,
+                                           fields.get("stop_on")))
         self.strategy = "treat"
         self.strategy_fields = dict(fields, changes=changes or None, transitions=added or None)
         self.features.add("strategy")
 
+    def draw_trigger(self) -> dict:
+        """The event starts the treatment (after a delay of one or two cycles for "delay")
+        or stops it."""
+        if self.trigger == "stop":
+            self.features.add("treatment stopped by an event")
+            return {"stop_on": EVENT}
+        self.features.add("treatment started by an event")
+        if self.trigger == "delay":
+            self.features.add("delay to treatment")
+            return {"start_on": EVENT, "start_delay": self.cycle * self.whole(1, 2)}
+        return {"start_on": EVENT}
+
     def draw_second(self, changeable: list[Way], addable: list[tuple[str, str]],
-                    start_on: str | None, value) -> dict:
-        """A second treatment after the first stops on entering a state: a hazard ratio of
-        its own, an event of its own and, where a row has room, a transition of its own
-        (on a pair the first treatment has not added)."""
+                    start_on: str | None, value, stop_on: str | None = None) -> dict:
+        """A second treatment after the first stops (on `stop_on`, else on entering a state
+        drawn here): a hazard ratio of its own, an event of its own and, where a row has
+        room, a transition of its own (on a pair the first treatment has not added)."""
         stops = [s for s in self.alive if s != start_on and (start_on or s not in self.shares)]
-        if not stops:
+        if not (stops or stop_on):
             return {}
         kind = "probability" if self.cycles else "rate"
         line: dict = {"name": "second"}
@@ -401,7 +418,7 @@ class Draft:
                                         **{kind: way.parameter})]
             self.features.add("later treatment's transition")
         self.features.add("sequence")
-        return dict(stop_on=self.pick(stops), then=[nested(**line)])
+        return dict(stop_on=stop_on or self.pick(stops), then=[nested(**line)])
 
     def condition(self, name: str) -> dict:
         if name == "age":
@@ -514,8 +531,9 @@ class Draft:
 
 # ------------------------------------------------------------------------- cycle models
 
-def cycle_model(rng: np.random.Generator, name: str, sequence: bool = False) -> RandomModel:
-    d = Draft(rng, "cycle", sequence=sequence)
+def cycle_model(rng: np.random.Generator, name: str, sequence: bool = False,
+                trigger: str | None = None) -> RandomModel:
+    d = Draft(rng, "cycle", sequence=sequence, trigger=trigger)
     recipe = d.pick(["everyone dies"] + ["closed start"] * 2 + ["plain"] * 17)
     if recipe == "everyone dies":
         d.draw_frame(alive=1, absorbing=True)
@@ -523,7 +541,7 @@ def cycle_model(rng: np.random.Generator, name: str, sequence: bool = False) -> 
         d.draw_frame()
         if (recipe == "closed start" or sequence) and len(d.alive) < 2:
             d.alive.append(ALIVE[1])
-    d.draw_population(continuous=True)
+    d.draw_population(continuous=trigger is None)  # few distinct patients: a fast exact side
     rows: dict[str, bool] = {}  # state -> whether its row has a remainder
     if recipe == "everyone dies":
         d.way(ALIVE[0], DEAD, parameter=d.parameter(f"p_{ALIVE[0]}_{DEAD}", 1.0))
@@ -549,7 +567,7 @@ def cycle_model(rng: np.random.Generator, name: str, sequence: bool = False) -> 
     for way in with_remainder + event:
         d.add_effects(way)
     d.add_memory([w for w in with_remainder + event if w.parameter], windows=True)
-    if sequence or d.chance(0.3):
+    if sequence or trigger or d.chance(0.3):
         taken = {(w.source, w.target) for w in d.ways}
         addable = [(s, t) for s in d.alive if rows.get(s) for t in d.states
                    if t != s and (s, t) not in taken]
@@ -808,10 +826,12 @@ def rate_perturbations(d: Draft) -> list[Perturbation]:
 # ---------------------------------------------------------------------- all the models
 
 def random_models(seed: int, cycle_models: int, rate_models: int,
-                  log_location_models: int = 0, sequence_models: int = 0) -> list[RandomModel]:
-    """The models of one seed; the log-location rate models and the treatment sequences
-    (half cycle, half rate models) come from streams of their own, so adding them leaves
-    the others as they were."""
+                  log_location_models: int = 0, sequence_models: int = 0,
+                  trigger_models: int = 0) -> list[RandomModel]:
+    """The models of one seed; the log-location rate models, the treatment sequences
+    (half cycle, half rate models) and the cycle models whose treatment an event starts,
+    starts after a delay, or stops (in turn; every other one a sequence) come from streams
+    of their own, so adding them leaves the others as they were."""
     rng = np.random.default_rng(seed)
     models = ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
               + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
@@ -819,5 +839,9 @@ def random_models(seed: int, cycle_models: int, rate_models: int,
     models += [rate_model(rng, f"log-location-{i}", log_location=True)
                for i in range(log_location_models)]
     rng = np.random.default_rng([seed, 2])
-    return models + [(cycle_model if i % 2 == 0 else rate_model)(
+    models += [(cycle_model if i % 2 == 0 else rate_model)(
         rng, f"sequence-{i}", sequence=True) for i in range(sequence_models)]
+    rng = np.random.default_rng([seed, 3])
+    return models + [cycle_model(rng, f"trigger-{i}", sequence=i % 2 == 1,
+                                 trigger=("start", "delay", "stop")[i % 3])
+                     for i in range(trigger_models)]

@@ -7,7 +7,8 @@ several standard errors should be told so nearly always (by design in at least
 Phi(MARGIN) = 99.9% of runs; asserted: 95%). Both are counted over two hundred random
 valid models (tests/random_models.py) drawn from one fixed seed (and ten rate models of the
 log-normal and generalised gamma under time ratios, and twelve models whose strategy is a
-sequence of two treatments, the second with an event and a transition of its own, each
+sequence of two treatments, the second with an event and a transition of its own, and
+nine cycle models whose treatment an event starts, starts after a delay or stops, each
 from a stream of their own). A
 deliberate error is one hazard scaled by 1.1 (one per-cycle probability multiplied or
 divided by 1.1, a log-location family's clock run 1.1 times faster) in the simulated
@@ -41,7 +42,7 @@ from random_models import random_models
 
 SEED = 20261203
 MODELS = random_models(SEED, cycle_models=155, rate_models=50, log_location_models=10,
-                       sequence_models=12)
+                       sequence_models=12, trigger_models=9)
 DETECTION = 0.95  # the detection rate the verdict must reach
 MARGIN = 3.0  # standard errors by which a detection run's error exceeds the critical value
 LARGEST = {"cycle": 20000, "rate": 10000}  # the largest detection run, so the test stays fast
@@ -93,7 +94,8 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "treatment on entering a state", "table by level", "lognormal on since start",
               "generalised_gamma on since start", "time ratio", "sequence",
               "later treatment's event", "later treatment's transition", "utility by level",
-              "utility by age"]
+              "utility by age", "treatment started by an event", "treatment stopped by an event",
+              "delay to treatment"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 

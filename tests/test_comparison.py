@@ -122,6 +122,24 @@ def test_round_off_in_analytic_shares_is_cleaned(monkeypatch):
     assert np.isfinite(result.shares.se).all() and np.isfinite(result.shares.z).all()
 
 
+def test_a_share_not_yet_absorbed_that_rounds_above_1_has_a_standard_error_of_0():
+    # nobody can die in the first cycle; the shares after it, 1 - 0.45 + 0.15 + 0.2 + 0.1,
+    # add up to 1 + 2.2e-16 in floats (IEEE 754 doubles), which must not give a NaN
+    text = scenario_text(
+        horizon(3, cycle=1), start(a=1), state("a"), state("b"), state("c"), state("d"),
+        state("dead", absorbing=True),
+        probability("a", "b", 0.15), probability("a", "c", 0.2), probability("a", "d", 0.1),
+        probability("a", "a", "remainder"),
+        *(probability(s, "dead", 0.3) for s in "bcd"),
+        *(probability(s, s, "remainder") for s in "bcd"))
+    model = model_of(text)
+    assert analytic(model).trace[0, 1, :4].sum() > 1.0  # the case this test is about
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        survival = compare(simulate(model, cohort_patients(200), 1)).survival
+    assert survival.se[1] == 0.0 and np.isfinite(survival.se).all()
+
+
 def test_shares_far_outside_the_unit_interval_are_refused():
     model = model_of(NEVER_ABSORBED)
     trace = np.full((1, 3, 2), 0.5)

@@ -13,8 +13,9 @@ from microsim.binding import bind
 from microsim.scenario import parse_scenario
 from microsim.scenario.spec import (ChangeSpec, ConditionSpec, EligibilitySpec, StrategySpec,
                                     TransitionSpec)
-from support import (assert_equal_columns, both_engines, after, attribute, effect, event, horizon, population, probability, start,
-                     state, scenario_text, table)
+from support import (assert_equal_columns, both_engines, after, attribute, effect, event, horizon,
+                     nested, population, probability, start, state, scenario_text, strategy,
+                     table)
 
 COLUMNS = ("patient", "time", "source", "target", "risk")
 IDS = np.arange(1500) * 3 + 7  # not 0..n-1: draws are keyed by id, not by row
@@ -233,3 +234,48 @@ def test_edges_equal_the_simpy_cycle_engine():
     assert np.sum(died == model.states.index("dead")) >= starts_sick.sum()
     assert not np.any(expected.target[expected.source == 0] == model.states.index("sick"))
     assert len(got.time) > 4 * len(ids) + 1 + 400 * 3  # more than the first buffers hold
+
+
+# Treatment started or stopped by an event: the phase moves on at the cycle's end (a record
+# from the end state to its copy in the next phase, or the move's record straight to it)
+TRIGGERED = [
+    horizon(12, cycle=1), start(well=0.8, sick=0.2),
+    state("well"), state("sick"), state("dead", absorbing=True),
+    probability("well", "sick", 0.15, name="progress",
+                effects=[effect("biomarker", 1.8, centre=0.8)]),
+    probability("well", "dead", 0.02), probability("well", "well", "remainder"),
+    probability("sick", "dead", 0.1, name="die_sick"), probability("sick", "sick", "remainder"),
+    event("flare", ["well", "sick"], probability=0.2,
+          memory=[after("flare", multipliers=[1, 0.6])]),
+    event("scan", ["sick"], probability=0.3),
+    PEOPLE, strategy("usual_care", comparator=True)]
+
+TRIGGERS = {
+    "start": dict(start_on="flare", uptake=0.7),
+    "delay": dict(start_on="flare", start_delay=2.0),
+    "sequence": dict(start_on="flare", stop_on="scan", then=[nested(
+        name="second", stop_on="flare",
+        changes=[nested(transition="die_sick", hazard_ratio=0.7)])]),
+}
+
+
+@pytest.mark.parametrize("rule", RULES)
+@pytest.mark.parametrize("name", TRIGGERS)
+def test_event_triggered_treatment_histories_equal_the_simpy_cycle_engine(name, rule):
+    text = scenario_text(*TRIGGERED, strategy("treat", changes=[
+        nested(transition="progress", hazard_ratio=0.5)], **TRIGGERS[name]))
+    model = bind(parse_scenario(under(rule, text)), strategy="treat")
+    assert model.phase_on is not None and model.probability_rule == rule
+    expected, got, _ = both_engines(model, IDS, 77)
+    assert_identical(expected, got)
+    assert_every_risk_happens(model, got)
+    # the flare moved the phase on where the patient stayed (a record to the next copy from
+    # a state that is no countdown's) and where it moved (the move's record goes to the
+    # next phase's copy of its own target)
+    counting_down = (np.arange(model.n_states) if model.stay_to is None else model.stay_to) \
+        != np.arange(model.n_states)
+    staying = (got.risk < 0) & (got.source >= 0)
+    assert np.any(staying & ~counting_down[np.maximum(got.source, 0)])
+    own = np.array([-1 if risk.target is None else risk.target for risk in model.risks])
+    moves = (got.risk >= 0) & (got.source != got.target)
+    assert np.any(moves & (got.target != own[got.risk]))

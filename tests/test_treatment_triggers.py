@@ -1,4 +1,6 @@
-"""Treatment started or stopped by an event (rate models), against hand-built expanded chains.
+"""Treatment started or stopped by an event (rate models; cycle models in
+test_cycle_event_triggers.py), and a delay to treatment (cycle models), against hand-built
+expanded chains.
 
 Reference: the same model written by hand as a plain scenario in which every living state
 has an untreated and a treated copy and the event that starts treatment is a transition
@@ -124,11 +126,6 @@ def test_vectorised_engine_gives_the_simpy_histories():
     assert_engines_agree(model, np.arange(900) * 3 + 5, 3, rtol=1e-12)
 
 
-CYCLES = [horizon(5), start(a=1), state("a"), state("dead", absorbing=True),
-          probability("a", "dead", 0.1), probability("a", "a", "remainder"),
-          event("flare", ["a"], probability=0.2)]
-
-
 @pytest.mark.parametrize("blocks, fields, path, phrase", [
     (FLARING, dict(start_on="flair"), "strategies.treat.start_on", "did you mean 'flare'"),
     (FLARING, dict(start_on="flare", stop_on="flare"), "strategies.treat.stop_on",
@@ -136,8 +133,7 @@ CYCLES = [horizon(5), start(a=1), state("a"), state("dead", absorbing=True),
     (FLARING[:-1] + [event("flare", ["stable"], hazard=nested(family="weibull", shape=1.5,
                                                                 scale=2.0))],
      dict(start_on="flare"), "strategies.treat.start_on", "time since entry"),
-    (CYCLES, dict(start_on="flare"), "strategies.treat.start_on", "in cycle models an event"),
-], ids=["typo", "same-event", "clock", "cycle-model"])
+], ids=["typo", "same-event", "clock"])
 def test_refusals(blocks, fields, path, phrase):
     assert_refused(scenario_text(*blocks, COMPARATOR,
                                  strategy("treat", changes=[nested(cost=10)], **fields)),

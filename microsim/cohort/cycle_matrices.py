@@ -2,11 +2,13 @@
 
 Within a cycle a patient in expanded state (i, d, counts) takes one of the transitions out
 of i (the "remainder" takes what the others leave) and, independently, each event of i
-happens or not; counts and time-in-state then move on. Covariate and memory multipliers act
-on the rate scale, each move on its own, p' = 1 - (1 - p)^m (common practice; e.g. Briggs,
-Claxton & Sculpher 2006, "Decision Modelling for Health Economic Evaluation", ch. 3), or,
-under the competing rule, the row's moves combined through their rates
-(`microsim.hazards.cycle_probabilities`). The cycle engines follow exactly these rules.
+happens or not; counts and time-in-state then move on, and an event that starts or stops
+treatment passes the patient to the next phase's copy of the cycle's end state
+(`BoundModel.phase_on`). Covariate and memory multipliers act on the rate scale, each move
+on its own, p' = 1 - (1 - p)^m (common practice; e.g. Briggs, Claxton & Sculpher 2006,
+"Decision Modelling for Health Economic Evaluation", ch. 3), or, under the competing rule,
+the row's moves combined through their rates (`microsim.hazards.cycle_probabilities`). The
+cycle engines follow exactly these rules.
 """
 from __future__ import annotations
 
@@ -14,7 +16,7 @@ import itertools
 
 import numpy as np
 
-from microsim.binding import BoundRisk
+from microsim.binding import BoundModel, BoundRisk
 from microsim.cohort.expand import Expansion
 from microsim.patients.multipliers import LevelRows, Multipliers
 from microsim.hazards.cycle_probabilities import LIMIT, competing, overflow, separate
@@ -51,6 +53,13 @@ def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: f
         with np.errstate(divide="ignore"):
             return p, -np.log1p(-p)
     return np.asarray(base.values)[band], np.asarray(risk.logs)[band]
+
+
+def moves_phase(model: BoundModel, r: int) -> bool:
+    """True when risk r is an event that moves the treatment phase on (`BoundModel.phase_on`
+    is not the identity for it)."""
+    return model.phase_on is not None and bool(
+        np.any(model.phase_on[r] != np.arange(model.n_states)))
 
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
@@ -97,7 +106,7 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
             p, log = risk_probability(risk, time, ages, d, model.cycle, mult.level_rows(r))
             if risk.is_event:
                 risk_p[e, r] = p = on_rate_scale(p, log, m)
-                events.append((risk, p))
+                events.append((r, risk, p))
             else:
                 weighed.append((r, risk, (p, log, m)))
         chances = (competing([w for *_, w in weighed]) if combined
@@ -123,17 +132,22 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
         for r, risk in enumerate(model.risks):
             if risk.source == i and risk.target == i:
                 risk_p[e, r] = 0.0
-        # Events that move no count are summed over; the others split each move by which
-        # of them happened in the same cycle.
-        counting = [(risk, p) for risk, p in events if risk.name in exp.tracked]
+        # Events that move no count and not the treatment phase are summed over; the others
+        # split each move by which of them happened in the same cycle (each independently
+        # of the move and of one another, as the engines draw them). One that moves the
+        # phase on sends the cycle's end state to its copy in the next phase.
+        split = [(r, risk, p) for r, risk, p in events
+                 if risk.name in exp.tracked or moves_phase(model, r)]
         for risk, p in moves:
             j = (i if model.stay_to is None else model.stay_to[i]) if risk is None else risk.target
-            for pattern in itertools.product((False, True), repeat=len(counting)):
-                weight = p
+            for pattern in itertools.product((False, True), repeat=len(split)):
+                weight, to = p, j
                 occurred = [] if risk is None else [risk]
-                for happened, (event, pe) in zip(pattern, counting):
+                for happened, (r, event, pe) in zip(pattern, split):
                     weight = weight * (pe if happened else 1.0 - pe)
                     if happened:
                         occurred.append(event)
-                entries.append((e, exp.target(i, d, counts, j, tuple(occurred)), weight))
+                        if model.phase_on is not None:
+                            to = int(model.phase_on[r, to])
+                entries.append((e, exp.target(i, d, counts, to, tuple(occurred)), weight))
     return entries, risk_p

@@ -185,6 +185,19 @@ def tunnel_length(risks: tuple[BoundRisk, ...], cycle: float) -> int:
     return 1 + (math.ceil(max(starts) / cycle - 1e-9) if starts else 0)
 
 
+def tunnel_lengths(model: BoundModel) -> tuple[int, ...]:
+    """Each state's tunnel length (1 in rate models). Time in state runs on across the
+    copies of a state in treatment phases (a countdown's cycle, an event that moves the
+    phase on), so every copy counts as far as the longest of them needs."""
+    if not model.discrete:
+        return (1,) * model.n_states
+    own = [tunnel_length(model.risks_from(i), model.cycle) for i in range(model.n_states)]
+    longest: dict[str, int] = {}
+    for i, length in enumerate(own):
+        longest[model.entered(i)] = max(longest.get(model.entered(i), 1), length)
+    return tuple(longest[model.entered(i)] for i in range(model.n_states))
+
+
 def semi_markov(model: BoundModel, risk: BoundRisk) -> bool:
     """A continuous-time hazard on the time-since-entry clock that is not constant
     makes the process semi-Markov, unless the state can only be occupied from time 0
@@ -219,8 +232,7 @@ def expand(model: BoundModel) -> Expansion:
                            "after the start (semi-Markov)")
     counters = tuple(Counter(after, cap) for after, cap in sorted(caps.items()))
     recencies = tuple(Recency(after, cap) for after, cap in sorted(windows.items()))
-    durations = tuple(tunnel_length(model.risks_from(i), model.cycle) if model.discrete else 1
-                      for i in range(model.n_states))
+    durations = tunnel_lengths(model)
     memories = (*counters, *recencies)
     count_space = list(itertools.product(*(range(c.cap + 1) for c in memories)))
     plain = ((0,) * len(memories),)

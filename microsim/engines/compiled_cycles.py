@@ -56,10 +56,13 @@ class _Rows(NamedTuple):
 
 
 class _Risks(NamedTuple):
-    """Per risk: target, draw slot, base values and L by (level row, band), the band's
-    axis and starts, the multipliers' static part, age factor per cycle and treatment
-    factors, memory terms (CSR) and the tracked names an occurrence advances (CSR)."""
+    """Per risk: target, where a cycle's end state goes when it happens (the identity but
+    for an event that moves the treatment phase on, `BoundModel.phase_on`), draw slot, base
+    values and L by (level row, band), the band's axis and starts, the multipliers' static
+    part, age factor per cycle and treatment factors, memory terms (CSR) and the tracked
+    names an occurrence advances (CSR)."""
     target: np.ndarray
+    phase_on: np.ndarray  # (risks, states)
     slot: np.ndarray
     value_ptr: np.ndarray
     n_bands: np.ndarray
@@ -167,8 +170,11 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
             age_factor[r] = [exp(slope * (n * model.cycle)) for n in range(age_factor.shape[1])]
     windowed = np.array([window is not None and window.on_factor[r] != window.off_factor[r]
                          for r in range(n_risks)], bool).reshape(-1)
+    phase_on = (np.tile(np.arange(model.n_states), (n_risks, 1)) if model.phase_on is None
+                else model.phase_on)
     risks = _Risks(
         np.array([-1 if risk.target is None else risk.target for risk in model.risks], np.int64),
+        np.ascontiguousarray(phase_on, np.int64),
         np.array(slot, np.int64), np.array(value_ptr, np.int64), np.array(n_bands, np.int64),
         np.array(values, float), np.array(logs, float), np.array(axis, np.int64),
         start_ptr, np.array(start_flat, float), level_row,
@@ -333,6 +339,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
                 n_rec += 1
                 _occur(risks, hits[q], b, end, counts, last)
             if chosen >= 0 and target != state:
+                target = _phase_after(risks, hits, n_hits, target)
                 rec_patient[n_rec], rec_time[n_rec], rec_source[n_rec] = b, end, state
                 rec_target[n_rec], rec_risk[n_rec] = target, chosen
                 n_rec += 1
@@ -345,8 +352,23 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
                     rec_target[n_rec], rec_risk[n_rec] = rows.stay_to[state], START
                     n_rec += 1
                     state = rows.stay_to[state]
+                moved = _phase_after(risks, hits, n_hits, state)
+                if moved != state:  # an event moved the treatment phase on
+                    rec_patient[n_rec], rec_time[n_rec], rec_source[n_rec] = b, end, state
+                    rec_target[n_rec], rec_risk[n_rec] = moved, START
+                    n_rec += 1
+                    state = moved
             on_points[b, n + 1] = state
     return size, n_rec, -1, 0, 0.0
+
+
+@njit(cache=True, _nrt=False)
+def _phase_after(risks, hits, n_hits, state):
+    """The state a cycle that ended in `state` ends in once the events `hits` happened
+    (`cycle_engine.simulate_cycles`, phase_after)."""
+    for q in range(n_hits):
+        state = risks.phase_on[hits[q], state]
+    return state
 
 
 @njit(cache=True, _nrt=False)
@@ -368,7 +390,8 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     counts, last = (np.ascontiguousarray(a.T).reshape(len(ids), n_tracked)
                     for a in plan.initial_memory_arrays(model, plan.tracked_names(model), start))
     on_points = np.empty((len(ids), model.n_cycles + 1), np.int16)
-    # at most a start, and per cycle every event of the state, a move and a countdown step
+    # at most a start, and per cycle every event of the state and a move, or a countdown
+    # step and a phase moved on by an event
     per_patient = 1 + model.n_cycles * (2 + max(np.diff(rows.event_ptr), default=0))
     buffers = _buffers(4 * len(ids) + per_patient)
     slots, row_length = len(people.keys), max(len(rows.moves), len(rows.events), 1)

@@ -4,7 +4,10 @@ Each cycle a patient takes one way out of its state, chosen by one uniform again
 cumulative probabilities (under the scenario's probability rule,
 `microsim.hazards.cycle_probabilities`; the remainder takes what the others leave), and
 each event of the state happens or not by its own uniform; counts and time in state then
-move on. A row that sums above 1 is never capped: it raises, since the scenario checks
+move on. Under treatment phases a cycle end may also pass a patient to another copy of its
+state: a countdown's cycle (`BoundModel.stay_to`), or an event that starts or stops
+treatment (`BoundModel.phase_on`: the cycle ends in the next phase's copy of where the
+move led). A row that sums above 1 is never capped: it raises, since the scenario checks
 refuse every row that could.
 These are exactly the rules of `microsim.cohort.cycle_matrices`, so the expected simulated trace
 is the analytic one. Draws are keyed by cycle number (occurrence = cycle), so strategies
@@ -92,6 +95,7 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                                mult)
     absorbing = model.absorbing.tolist()
     stay_to = None if model.stay_to is None else model.stay_to.tolist()
+    phase_on = None if model.phase_on is None else model.phase_on.tolist()
     ids = np.asarray(patient_ids).tolist()
     cycle, n_cycles = model.cycle, model.n_cycles
     record = Recorder(mult.size)
@@ -132,6 +136,14 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
 
     def add(b, t, source, target, r):
         record.rows[b].append((t, source, target, r))
+
+    def phase_after(happened, state):
+        """The state a cycle that ended in `state` ends in once its events have happened:
+        its copy in the next phase after an event that moves the phase on (at most once)."""
+        if phase_on is not None:
+            for step in happened:
+                state = phase_on[step[0]][state]
+        return state
 
     def occur(b, t, source, target, r, counts, last):
         add(b, t, source, target, r)
@@ -182,13 +194,18 @@ def simulate_cycles(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             for step in happened:
                 occur(b, end, state, state, step[0], counts, last)
             if chosen is not None and chosen[1] != state:
-                occur(b, end, state, chosen[1], chosen[0], counts, last)
-                state, duration = chosen[1], 0
+                target = phase_after(happened, chosen[1])
+                occur(b, end, state, target, chosen[0], counts, last)
+                state, duration = target, 0
             else:
                 duration += 1
                 if stay_to is not None and stay_to[state] != state:  # a countdown's cycle
                     add(b, end, state, stay_to[state], START)
                     state = stay_to[state]
+                moved = phase_after(happened, state)
+                if moved != state:  # an event moved the treatment phase on
+                    add(b, end, state, moved, START)
+                    state = moved
             yield env.timeout(cycle)
 
     for b in range(len(patient_ids)):

@@ -243,7 +243,8 @@ class ComparisonSums:
         self.result = self.result or result
         states, trace = sim.states, on_grid(result, sim.grid)
         counts = result.exposure.occurrences[..., 0]
-        alive_share = trace[..., ~np.asarray(model.absorbing, bool)].sum(axis=-1)
+        # a sum of shares may round above 1 (1 + 2e-16 where no one can yet be absorbed)
+        alive_share = np.minimum(trace[..., ~np.asarray(model.absorbing, bool)].sum(axis=-1), 1.0)
         self.varies["alive"] |= bool(np.any(between(alive_share)))
         self.varies["any"] |= bool(np.any(between(trace)) or np.any(
             np.abs(counts - np.rint(counts)) > ROUNDOFF * np.maximum(counts, 1.0)))
@@ -251,7 +252,7 @@ class ComparisonSums:
         self.shares.add(inside, trace)
         alive = ~np.asarray(model.absorbing, bool)
         if not alive.all():
-            self.survival.add(alive[states], trace[..., alive].sum(axis=-1))
+            self.survival.add(alive[states], alive_share)
         for attribute in subgroup_attributes(sim.patients):
             for level, members in sim.patients.groupby(attribute, observed=True).indices.items():
                 rows = np.asarray(members)

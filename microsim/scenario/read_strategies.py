@@ -381,12 +381,12 @@ def check_delay(s: Scenario, strategy: StrategySpec, here: str) -> None:
 
 
 def check_trigger_event(merged: Scenario, event, here: str) -> None:
-    """An event that starts or stops treatment moves the patient to the treated copy of the
-    same state: exact in rate models whose clocks do not restart with that move."""
+    """An event that starts or stops treatment passes the patient to the same state's copy
+    in the next phase: in rate models by a move, exact where no clock restarts with it; in
+    cycle models at the cycle's end, where time in state runs on across the copies (as
+    through a countdown), so nothing restarts."""
     if merged.discrete:
-        raise ScenarioError(here, f"{event.name!r} is an event, and in cycle models an event "
-                            "cannot start or stop treatment (it is drawn beside the cycle's "
-                            "move, which the phase change would have to follow); name a state")
+        return
     for risk in (*merged.transitions, *merged.events):
         states = (risk.source,) if isinstance(risk, TransitionSpec) else risk.states
         varying = risk.hazard is not None and risk.hazard.family != "constant"
