@@ -13,7 +13,10 @@ the same histories record for record and bit for bit. What keeps the floats iden
   from `math.exp` here as there;
 - the per-cycle probabilities come from the same compiled functions
   (`microsim.hazards.cycle_probabilities.separate_one` and `competing_scale`), whose Python
-  originals the SimPy engine calls: both evaluate `math.expm1`, the C library's.
+  originals the SimPy engine calls: both evaluate `math.expm1`, the C library's. A
+  chance is worked out again only when its argument changed since it was last worked out
+  (each risk's m L, each row's R): a function of the same number is the same number, so
+  keeping the last one changes no bit and saves most of the `expm1` calls.
 
 The model is laid out once per batch as flat arrays (`_layout`): each state's moves and
 events, each risk's base values by band and level, multipliers, memory terms and what an
