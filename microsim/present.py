@@ -127,7 +127,7 @@ def print_summary(result: MainResult) -> None:
              "95% interval of the draws (2.5th to 97.5th percentile); costs discounted",
              p.outcomes)
         if any(p.tables):
-            print(f"PSA tables: {held_fixed(p)}")
+            print(held_fixed(p))
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -225,14 +225,23 @@ def population_words(e) -> str:
 
 
 def held_fixed(psa) -> str:
-    """Which of the model's tables the PSA varies and which it holds fixed, in words: a
-    table varies only through the drawn parameters its entries name."""
-    varied, fixed = psa.tables
-    words = [f"varied through the drawn parameters they name: {', '.join(varied)}"] if varied else []
+    """Which of the model's tables the PSA varies and which it holds fixed, in one line."""
+    return "".join(tables_in_words(*psa.tables))
+
+
+def tables_in_words(varied: list, fixed: list) -> list:
+    """The sentence on the PSA's tables as text and names in order (a table varies only
+    through the drawn parameters its entries name); the names are whatever is given, so
+    the report can put in each as a key number tied to summary.json."""
+    def joined(names: list) -> list:
+        return [part for i, name in enumerate(names) for part in ([", "] if i else []) + [name]]
+    parts = ["PSA tables: "]
+    if varied:
+        parts += ["varied through the drawn parameters they name: ", *joined(varied)]
     if fixed:
-        words.append(f"held fixed in every draw: {', '.join(fixed)} (no entry names a drawn "
-                     "parameter; an entry that names one varies with it)")
-    return "; ".join(words) + "."
+        parts += [*(["; "] if varied else []), "held fixed in every draw: ", *joined(fixed),
+                  " (no entry names a drawn parameter; an entry that names one varies with it)"]
+    return parts + ["."]
 
 
 def changed_draws(psa, listed: int = 5) -> str:
