@@ -99,13 +99,10 @@ def print_summary(result: MainResult) -> None:
         errors = table.pivot(index="strategy", columns="measure", values="se").loc[order]
         show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
              means.join(errors.add_suffix("_se")).reset_index())
-        from microsim.decision.strategies import ROUNDOFF_SE
-        still = table[table.error == ROUNDOFF_SE]
-        if len(still):
-            which = "every SE above" if len(still) == len(table) else ", ".join(
-                f"{r.strategy} {r.measure}_se" for r in still.itertuples())
-            print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
-        show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
+        roundoff_line(table, "_se")
+        show(f"Increments against {d.comparator} on the same patients (95% CI)",
+             d.increments.drop(columns="error"))
+        roundoff_line(d.increments, " standard_error")
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
         show(f"Net benefit at {d.threshold:g} {cur} per QALY — best: {best}", d.net_benefit)
@@ -150,6 +147,18 @@ def print_summary(result: MainResult) -> None:
         if p.variance is not None:
             show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
         print(f"\n{changed_draws(p)}")
+
+
+def roundoff_line(table: pd.DataFrame, column: str) -> None:
+    """Under a table shown: which of its standard errors are round-off shown as 0 (the
+    `error` column of `strategies` and `increments`), each named by strategy, measure and
+    the `column` it is printed in."""
+    from microsim.decision.strategies import ROUNDOFF_SE
+    still = table[table.error == ROUNDOFF_SE]
+    if len(still):
+        which = "every SE above" if len(still) == len(table) else ", ".join(
+            f"{r.strategy} {r.measure}{column}" for r in still.itertuples())
+        print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
 
 
 def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
