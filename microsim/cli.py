@@ -105,9 +105,13 @@ def begin(args) -> tuple[float, Path, object]:
     started = time.perf_counter()
     path = Path(args.scenario)
     scenario = read_scenario(path, options=scenario_options(args))
+    say_warnings(scenario)
+    return started, path, scenario
+
+
+def say_warnings(scenario) -> None:
     for warning in scenario.warnings:  # what `check` warns of, said before the work too
         print(f"warning: {warning}", file=sys.stderr)
-    return started, path, scenario
 
 
 def cohort_note(scenario) -> str:
@@ -197,6 +201,7 @@ def command_run(args) -> int:
     from microsim.workflow import run_main
     started = time.perf_counter()
     path = Path(args.scenario)
+    say_warnings(read_scenario(path, options=scenario_options(args)))
     psa = None
     if args.psa:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
@@ -264,6 +269,7 @@ def command_validate(args) -> int:
     from microsim.store import scratch_folder
     started = time.perf_counter()
     path = Path(args.scenario)
+    say_warnings(read_scenario(path))
     with scratch_folder(out_dir(args, path)) if args.histories else nullcontext() as scratch:
         histories = scratch / "histories.parquet" if args.histories else None
         return validation_report(args, path, started, histories)

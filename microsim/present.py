@@ -99,13 +99,10 @@ def print_summary(result: MainResult) -> None:
         errors = table.pivot(index="strategy", columns="measure", values="se").loc[order]
         show(f"Per strategy: mean per patient (Monte-Carlo SE); costs in {cur}, discounted",
              means.join(errors.add_suffix("_se")).reset_index())
-        from microsim.decision.strategies import ROUNDOFF_SE
-        still = table[table.error == ROUNDOFF_SE]
-        if len(still):
-            which = "every SE above" if len(still) == len(table) else ", ".join(
-                f"{r.strategy} {r.measure}_se" for r in still.itertuples())
-            print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
-        show(f"Increments against {d.comparator} on the same patients (95% CI)", d.increments)
+        roundoff_line(table, "_se")
+        show(f"Increments against {d.comparator} on the same patients (95% CI)",
+             d.increments.drop(columns="error"))
+        roundoff_line(d.increments, " standard_error")
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
         show(f"Net benefit at {d.threshold:g} {cur} per QALY — best: {best}", d.net_benefit)
@@ -127,7 +124,7 @@ def print_summary(result: MainResult) -> None:
              "95% interval of the draws (2.5th to 97.5th percentile); costs discounted",
              p.outcomes)
         if any(p.tables):
-            print(f"PSA tables: {held_fixed(p)}")
+            print(held_fixed(p))
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -150,6 +147,18 @@ def print_summary(result: MainResult) -> None:
         if p.variance is not None:
             show("Inner/outer sample split (O'Hagan, Stevenson & Madan 2007)", p.variance)
         print(f"\n{changed_draws(p)}")
+
+
+def roundoff_line(table: pd.DataFrame, column: str) -> None:
+    """Under a table shown: which of its standard errors are round-off shown as 0 (the
+    `error` column of `strategies` and `increments`), each named by strategy, measure and
+    the `column` it is printed in."""
+    from microsim.decision.strategies import ROUNDOFF_SE
+    still = table[table.error == ROUNDOFF_SE]
+    if len(still):
+        which = "every SE above" if len(still) == len(table) else ", ".join(
+            f"{r.strategy} {r.measure}{column}" for r in still.itertuples())
+        print(f"Monte-Carlo error of {which}: {ROUNDOFF_SE}.")
 
 
 def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
@@ -225,14 +234,23 @@ def population_words(e) -> str:
 
 
 def held_fixed(psa) -> str:
-    """Which of the model's tables the PSA varies and which it holds fixed, in words: a
-    table varies only through the drawn parameters its entries name."""
-    varied, fixed = psa.tables
-    words = [f"varied through the drawn parameters they name: {', '.join(varied)}"] if varied else []
+    """Which of the model's tables the PSA varies and which it holds fixed, in one line."""
+    return "".join(tables_in_words(*psa.tables))
+
+
+def tables_in_words(varied: list, fixed: list) -> list:
+    """The sentence on the PSA's tables as text and names in order (a table varies only
+    through the drawn parameters its entries name); the names are whatever is given, so
+    the report can put in each as a key number tied to summary.json."""
+    def joined(names: list) -> list:
+        return [part for i, name in enumerate(names) for part in ([", "] if i else []) + [name]]
+    parts = ["PSA tables: "]
+    if varied:
+        parts += ["varied through the drawn parameters they name: ", *joined(varied)]
     if fixed:
-        words.append(f"held fixed in every draw: {', '.join(fixed)} (no entry names a drawn "
-                     "parameter; an entry that names one varies with it)")
-    return "; ".join(words) + "."
+        parts += [*(["; "] if varied else []), "held fixed in every draw: ", *joined(fixed),
+                  " (no entry names a drawn parameter; an entry that names one varies with it)"]
+    return parts + ["."]
 
 
 def changed_draws(psa, listed: int = 5) -> str:

@@ -22,7 +22,8 @@ from scipy import stats
 from microsim.decision import economics
 from microsim.binding import bind
 from microsim.decision.strategies import (ROUNDOFF_SE, decision_of, COST, EFFECT, decide,
-                                         run_strategies)
+                                         run_strategies, without_roundoff)
+from microsim.present import roundoff_line
 from microsim.results.comparison import MONTE_CARLO
 from microsim.results.outcomes import outcome_values
 from microsim.patients.population import draw_population
@@ -102,17 +103,24 @@ def test_strategy_means_and_errors_are_numpy_means_and_errors(run):
         assert row["se"].item() == pytest.approx(x.std(ddof=1) / math.sqrt(len(x)), rel=1e-12)
 
 
-def test_round_off_standard_errors_of_a_deterministic_model_are_0_and_said_so():
-    # nobody ever leaves well: every patient has the same outcomes, which a cycle model sums
-    # in an order of its own, so numpy's SE is round-off (1e-15) or 0; by the comparison's
-    # rule (an SE within 1e-7 of the mean, relative) the table shows 0 and says why
+@pytest.fixture(scope="module")
+def deterministic():
+    """Nobody ever leaves well: every patient has the same outcomes, which a cycle model sums
+    in an order of its own, so numpy's SE is round-off (1e-15) or 0; the therapy adds its
+    cost and changes nothing else."""
     s = replace(parse_scenario(scenario_text(
         horizon(10, cycle=1), start(well=1.0), outcomes(discount_costs=0.035, discount_effects=0.035),
         state("well", utility=0.9, cost=123.4567), state("dead", absorbing=True),
         probability("well", "well", 1), population(300, attribute("marker", "yesno", prevalence=0.4)),
         title="deterministic")), strategies=(USUAL, EVERYONE))
     people = draw_population(s.population, SEED)
-    d = decision_of(s, run_strategies(s, people, SEED))
+    return decision_of(s, run_strategies(s, people, SEED))
+
+
+def test_round_off_standard_errors_of_a_deterministic_model_are_0_and_said_so(deterministic):
+    # by the comparison's rule (an SE within 1e-7 of the mean, relative) the table shows 0
+    # and says why
+    d = deterministic
     for name in ("usual", "everyone"):
         rows = d.strategies[d.strategies.strategy == name].set_index("measure")
         for measure in (COST, EFFECT, "life_years"):
@@ -122,9 +130,41 @@ def test_round_off_standard_errors_of_a_deterministic_model_are_0_and_said_so():
     assert "within 1e-07 of the mean, relative" in ROUNDOFF_SE
 
 
-def test_a_model_that_varies_keeps_its_monte_carlo_errors(run):
+def test_round_off_standard_errors_of_increments_are_0_by_the_same_rule(deterministic, capsys):
+    # each patient's increment is the therapy's discounted cost, the same for all: numpy's
+    # SE of the paired differences is round-off (5e-14 here) or 0, so the increments table
+    # shows 0, its 95% CI is the mean itself, and its error column and the printed summary
+    # say so in the per-strategy table's words
+    d, lam = deterministic, deterministic.threshold
+    delta_cost = per_patient(d, "everyone", COST) - per_patient(d, "usual", COST)
+    delta_effect = per_patient(d, "everyone", EFFECT) - per_patient(d, "usual", EFFECT)
+    table = d.increments.set_index("measure")
+    for measure, x in {"incremental_costs": delta_cost, "incremental_qalys": delta_effect,
+                       "incremental_nmb": lam * delta_effect - delta_cost}.items():
+        row = table.loc[measure]
+        assert x.std(ddof=1) / math.sqrt(len(x)) <= 1e-7 * max(abs(x.mean()), 1)  # numpy
+        assert row["mean"] == pytest.approx(x.mean(), rel=1e-12, abs=1e-12)
+        assert row["standard_error"] == 0.0 and row["error"] == ROUNDOFF_SE
+        assert row["lower"] == row["upper"] == row["mean"]
+    assert table.loc["incremental_costs", "mean"] > 1000  # the therapy's cost, not nothing
+    roundoff_line(d.increments, " standard_error")
+    assert capsys.readouterr().out == f"Monte-Carlo error of every SE above: {ROUNDOFF_SE}.\n"
+
+
+def test_the_round_off_rule_is_the_comparisons_tolerance():
+    # comparison.ROUNDOFF = 1e-7, relative to the mean or absolute below 1: worked by hand
+    se, error = without_roundoff(np.array([3.6e-15, 6e-4, 5e-8, 2e-7, 0.0]),
+                                 np.array([3384.86, 5000.0, 0.0, 0.5, -2.0]))
+    assert list(se) == [0.0, 6e-4, 0.0, 2e-7, 0.0]
+    assert list(error) == [ROUNDOFF_SE, MONTE_CARLO, ROUNDOFF_SE, MONTE_CARLO, ROUNDOFF_SE]
+
+
+def test_a_model_that_varies_keeps_its_monte_carlo_errors(run, capsys):
     _, _, _, d = run
     assert (d.strategies.error == MONTE_CARLO).all() and (d.strategies.se > 0).all()
+    assert (d.increments.error == MONTE_CARLO).all() and (d.increments.standard_error > 0).all()
+    roundoff_line(d.increments, " standard_error")
+    assert capsys.readouterr().out == ""
 
 
 # --------------------------------------------------------------- common random numbers

@@ -186,6 +186,9 @@ USES = [
                                 ("b,55,", "b,young,")],
      "population.file", "column 'age' of people.csv is the age at time 0 and must hold numbers, "
      "but it holds text (categorical)"),
+    ("a negative age", [], [("a,70,", "a,-0.5,")], "population.file",
+     "column 'age' of people.csv is the age at time 0 and cannot be negative, but data row 3 "
+     "has -0.5; correct it or drop the row"),
     ("weights of text", [], [("yes,1\n", "yes,one\n"), ("No,2\n", "No,two\n")],
      "population.weights", "column 'w' of people.csv holds text (categorical); sampling weights "
      "are numbers"),
@@ -335,6 +338,25 @@ def test_a_yes_no_text_column_is_a_yes_no_attribute(tmp_path):
     # the average patient's covariate: the weighted share of yes rows (numpy.average)
     assert expected_covariate(scenario.population, "smoker") == pytest.approx(
         np.average([1, 0, 1, 0, 1], weights=[1, 3, 2, 1, 1]), rel=1e-12)
+
+
+def test_an_age_of_0_is_drawn_and_a_negative_age_in_parquet_is_refused(tmp_path, capsys):
+    # the edge: 0 is an age (a newborn); -1 in a Parquet file is refused as in a CSV, also
+    # by the command line in one line with exit code 2
+    newborn = write(tmp_path, people=PEOPLE.replace("a,40,", "a,0,"))
+    patients = patients_for(read_scenario(newborn), 50, 1)
+    assert patients["age"].min() == 0
+    table = pd.read_csv(tmp_path / "people.csv", dtype=str)
+    table["age"], table["w"] = table["age"].astype(float), table["w"].astype(float)
+    table.loc[1, "age"] = -1.0
+    table.to_parquet(tmp_path / "people.parquet")
+    path = tmp_path / "parquet.toml"
+    path.write_text(BASE.replace("people.csv", "people.parquet"))
+    assert main(["validate", str(path), "--patients", "10", "--out", str(tmp_path / "out")]) == 2
+    assert capsys.readouterr().err.strip().splitlines() == [
+        "error: population.file: column 'age' of people.parquet is the age at time 0 and cannot be "
+        "negative, but data row 2 has -1; correct it or drop the row"]
+    assert not (tmp_path / "out").exists()  # nothing half-written
 
 
 def test_a_parquet_file_behaves_like_the_csv(tmp_path):

@@ -28,7 +28,7 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import main
 from microsim.report.builder import build_report
-from microsim.report.words import lookup
+from microsim.report.words import lookup, psa_tables
 from microsim.scenario import ScenarioError
 from support import horizon, rate, scenario_text, start, state
 
@@ -125,10 +125,42 @@ def test_every_key_number_equals_summary_json(folder):
     _, page = page_of(folder)
     summary = json.loads((folder / "summary.json").read_text())
     assert {k["key"] for k in page.keys} >= {"threshold", "best_at_threshold", "psa.draws",
-                                             "psa.evpi_at_threshold.0.evpi"}
+                                             "psa.evpi_at_threshold.0.evpi",
+                                             "psa.tables_held_fixed.0"}
     assert any(k["key"].endswith(".icer") for k in page.keys)
     for key in page.keys:
         assert equal(key["value"], lookup(summary, key["key"])), key
+
+
+def test_the_psa_section_names_the_tables_it_holds_fixed_as_the_summary_does(folder):
+    # the demo's one table (background death by age) holds numbers only: summary.json says
+    # so, and the page repeats the printed summary's sentence in its PSA section
+    html, _ = page_of(folder)
+    psa = json.loads((folder / "summary.json").read_text())["psa"]
+    assert psa["tables_varied"] == [] and psa["tables_held_fixed"] == ["background_death"]
+    section = html[html.index('<section id="uncertainty"'):html.index('<section id="budget"')]
+    assert ("PSA tables: held fixed in every draw: background_death (no entry names a drawn "
+            "parameter; an entry that names one varies with it).") in re.sub(r"<[^>]+>", "", section)
+
+
+def test_the_psa_tables_sentence_ties_every_name_to_summary_json():
+    summary = {"psa": {"tables_varied": ["cost_by_age", "death_by_sex"],
+                       "tables_held_fixed": ["utility_by_age"]}}
+    parts = psa_tables(summary)
+    assert "".join(p if isinstance(p, str) else p.text for p in parts) == (
+        "PSA tables: varied through the drawn parameters they name: cost_by_age, death_by_sex; "
+        "held fixed in every draw: utility_by_age (no entry names a drawn parameter; an entry "
+        "that names one varies with it).")
+    keys = [p for p in parts if not isinstance(p, str)]
+    assert [k.path for k in keys] == ["psa.tables_varied.0", "psa.tables_varied.1",
+                                      "psa.tables_held_fixed.0"]
+    assert all(lookup(summary, k.path) == k.value == k.text for k in keys)
+    varied_only = psa_tables({"psa": {"tables_varied": ["t"], "tables_held_fixed": []}})
+    assert "".join(p if isinstance(p, str) else p.text for p in varied_only) == (
+        "PSA tables: varied through the drawn parameters they name: t.")
+    # no table read, or a summary written before it said: no sentence
+    assert psa_tables({"psa": {"tables_varied": [], "tables_held_fixed": []}}) is None
+    assert psa_tables({"psa": {"draws": 8}}) is None and psa_tables({}) is None
 
 
 def test_the_page_is_self_contained_and_opens_with_the_question_and_the_caution(folder):
@@ -170,7 +202,7 @@ def test_figures_without_data_are_left_out_with_a_reason(bare, capsys):
                            "acceptability_noise_removed", "evpi", "evppi", "tornado", "two_way",
                            "break_even", "budget"]
     assert "no strategies" in html and "microsim run FILE --sensitivity" in html
-    assert "microsim run FILE --budget" in html
+    assert "microsim run FILE --budget" in html and "PSA tables" not in html
     assert sorted(p.stem for p in (bare / "figures").glob("*.svg")) == sorted(page.figures)
 
 

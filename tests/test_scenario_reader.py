@@ -3,14 +3,21 @@ field with the documented defaults (docs/scenario-format.md is the reference).""
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
+from scipy import stats
 
+from microsim.cli import main
+from microsim.patients.population import draw_population
 from microsim.scenario import Scenario, ScenarioError, parse_scenario, read_scenario
 from microsim.scenario.spec import REMAINDER, HazardSpec
-from support import assert_refused, horizon, rate, scenario_text, section, start, state
+from support import (Z, assert_refused, attribute, effect, horizon, nested, population,
+                     probability, rate, scenario_text, section, start, state, strategy, table,
+                     transition)
 
 SCENARIOS = Path(__file__).resolve().parent.parent / "scenarios"
 
@@ -316,3 +323,91 @@ def test_a_renamed_key_is_refused_with_its_new_name(section_name, old, new):
     text = scenario_text(horizon(5), start(well=1.0), state("well"), state("dead", absorbing=True),
                          rate("well", "dead", 0.1), section(section_name, **{old: 10}))
     assert_refused(text, f"{section_name}.{old}", f"is now called {new!r}")
+
+
+# ------------------------------------------------------------------------ negative ages
+
+def aged(age: dict, *blocks: str, reads: str = "clock") -> str:
+    """A rate model whose patients' age comes from `age`, read by a hazard on the age clock,
+    a table by age, an effect of age, or (reads="nothing") by nothing."""
+    death = {"clock": dict(hazard=dict(family="gompertz", rate=0.001, shape=0.08), clock="age"),
+             "table": dict(rate="by_age"), "effect": dict(rate=0.02, effects=[effect("age", 1.03)]),
+             "nothing": dict(rate=0.02)}[reads]
+    return scenario_text(
+        horizon(10), start(well=1.0), state("well", utility=1), state("dead", absorbing=True),
+        transition("well", "dead", **death),
+        table("by_age", by="age", starts=[0, 50], values=[0.01, 0.05]) if reads == "table" else "",
+        population(200, attribute("age", **age)), *blocks, title="negative ages")
+
+
+def age_warnings(text: str) -> list[str]:
+    return [w for w in parse_scenario(text).warnings if w.startswith("population.attributes.age")]
+
+
+@pytest.mark.parametrize("reads, where", [("clock", "transitions.well->dead.clock"),
+                                          ("table", "tables.by_age"),
+                                          ("effect", "transitions.well->dead.effects[0]")])
+def test_an_age_that_a_normal_can_draw_below_0_is_a_warning_with_its_share(reads, where):
+    # the share below 0 of Normal(5, 10) is scipy.stats.norm.cdf(-0.5) = 0.309 (reference)
+    share = stats.norm.cdf(0, loc=5, scale=10)
+    assert age_warnings(aged(dict(distribution="normal", mean=5, sd=10), reads=reads)) == [
+        f"population.attributes.age: a share of {share:.3g} of the patients start at a "
+        f"negative age (a normal with no lower), which {where} reads; give lower = 0"]
+
+
+def test_the_share_below_0_of_a_truncated_normal_and_a_uniform_is_scipys():
+    # references: scipy.stats.truncnorm for a normal with lower = -10, scipy.stats.uniform
+    # for a uniform from -2 to 8 (a share of 0.2)
+    truncated = stats.truncnorm((-10 - 5) / 10, math.inf, loc=5, scale=10).cdf(0)
+    assert age_warnings(aged(dict(distribution="normal", mean=5, sd=10, lower=-10))) == [
+        f"population.attributes.age: a share of {truncated:.3g} of the patients start at a "
+        "negative age (a normal with lower = -10), which transitions.well->dead.clock reads; "
+        "give lower = 0"]
+    uniform = stats.uniform(-2, 10).cdf(0)
+    assert [w.split(" of the")[0] for w in age_warnings(aged(dict(
+        distribution="uniform", lower=-2, upper=8)))] == [
+        f"population.attributes.age: a share of {uniform:.3g}"]
+
+
+def test_the_warned_share_is_the_share_of_drawn_patients_below_0():
+    # 20,000 drawn ages against the warned share, binomial SE (common practice), |z| < 4
+    s = parse_scenario(aged(dict(distribution="normal", mean=5, sd=10, upper=30)))
+    share = float(s.warnings[0].split("a share of ")[1].split(" ")[0])
+    ages = draw_population(replace(s.population, size=20_000), 11)["age"].to_numpy()
+    expected = stats.truncnorm(-math.inf, 2.5, loc=5, scale=10).cdf(0)  # scipy, to 3 digits
+    assert share == float(f"{expected:.3g}")
+    assert abs((ages < 0).mean() - expected) / math.sqrt(expected * (1 - expected) / len(ages)) < Z
+
+
+def test_an_age_that_cannot_be_negative_or_that_nothing_reads_gives_no_warning():
+    for age in (dict(distribution="normal", mean=5, sd=10, lower=0),
+                dict(distribution="uniform", lower=0, upper=8),
+                dict(distribution="gamma", shape=2, scale=3),
+                dict(distribution="lognormal", meanlog=1, sdlog=1)):
+        assert age_warnings(aged(age)) == [], age
+    assert age_warnings(aged(dict(distribution="normal", mean=5, sd=10), reads="nothing")) == []
+
+
+def test_an_effect_of_age_in_a_strategys_treatment_is_named_under_it():
+    text = aged(dict(distribution="normal", mean=5, sd=10), strategy("usual", comparator=True),
+                strategy("drug", events=[nested(name="flare", states=["well"], rate=0.5,
+                                                effects=[effect("age", 1.05)])]),
+                reads="nothing")
+    assert [w.split("which ")[1] for w in age_warnings(text)] == [
+        "strategies.drug.events.flare.effects[0] reads; give lower = 0"]
+
+
+def test_run_and_validate_say_the_warning_before_the_work(tmp_path, capsys):
+    path = tmp_path / "young.toml"
+    path.write_text(scenario_text(
+        horizon(3, cycle=1), start(well=1.0), state("well", utility=1),
+        state("dead", absorbing=True), probability("well", "dead", "by_age"),
+        probability("well", "well", "remainder"),
+        table("by_age", by="age", starts=[0, 50], values=[0.01, 0.05]),
+        population(20, attribute("age", distribution="normal", mean=5, sd=10)),
+        title="negative ages"))
+    for command in ("run", "validate"):
+        assert main([command, str(path), "--patients", "20", "--out", str(tmp_path / "out")]) == 0
+        err = capsys.readouterr().err
+        assert "warning: population.attributes.age: a share of 0.309 of the patients start at a " \
+               "negative age" in err, command

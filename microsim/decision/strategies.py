@@ -67,20 +67,26 @@ ROUNDOFF_SE = (f"none: the patients' values differ by round-off only (an SE with
                f"{ROUNDOFF:g} of the mean, relative), so the SE is shown as 0")
 
 
+def without_roundoff(se, mean) -> tuple[np.ndarray, np.ndarray]:
+    """Standard errors with those that numerical error alone explains (every patient with
+    the same value, summed in another order: 1e-15) set to 0, by the comparison's rule and
+    tolerance (`comparison.within_roundoff` relative to the mean they belong to), and each
+    one's error: ROUNDOFF_SE or MONTE_CARLO."""
+    still = within_roundoff(se, mean)
+    return np.where(still, 0.0, se), np.where(still, ROUNDOFF_SE, MONTE_CARLO)
+
+
 def strategy_table(outcomes: pd.DataFrame) -> pd.DataFrame:
-    """Per strategy: mean and Monte-Carlo standard error of every reported measure. An SE
-    that numerical error alone explains (every patient with the same value, summed in
-    another order: 1e-15) is 0, by the comparison's rule and tolerance
-    (`comparison.within_roundoff`), and the `error` column says so."""
+    """Per strategy: mean and Monte-Carlo standard error of every reported measure, round-off
+    shown as 0 (`without_roundoff`), and the `error` column says which."""
     rows = []
     for name, group in outcomes.groupby("strategy", sort=False):
         for measure in REPORTED:
             x = group[measure].to_numpy()
-            mean, se = float(x.mean()), standard_error(x)
-            still = bool(within_roundoff(se, mean))
-            rows.append((name, measure, mean, 0.0 if still else se,
-                         ROUNDOFF_SE if still else MONTE_CARLO))
-    return pd.DataFrame(rows, columns=["strategy", "measure", "mean", "se", "error"])
+            rows.append((name, measure, float(x.mean()), standard_error(x)))
+    table = pd.DataFrame(rows, columns=["strategy", "measure", "mean", "se"])
+    table["se"], table["error"] = without_roundoff(table.se, table["mean"])
+    return table
 
 
 def wide(outcomes: pd.DataFrame, measure: str) -> pd.DataFrame:
@@ -89,7 +95,9 @@ def wide(outcomes: pd.DataFrame, measure: str) -> pd.DataFrame:
 
 
 def paired_increments(outcomes: pd.DataFrame, comparator: str, threshold: float) -> pd.DataFrame:
-    """Each strategy minus the comparator on the same patients: mean, SE, 95% CI."""
+    """Each strategy minus the comparator on the same patients: mean, SE, 95% CI; an SE that
+    round-off alone explains is 0 (`without_roundoff`, relative to the increment's mean),
+    its interval the mean itself, and the `error` column says which."""
     cost, effect = wide(outcomes, COST), wide(outcomes, EFFECT)
     frames = []
     for name in cost.columns:
@@ -100,8 +108,11 @@ def paired_increments(outcomes: pd.DataFrame, comparator: str, threshold: float)
         frames.append(table.assign(strategy=name))
     if not frames:
         return pd.DataFrame(columns=["strategy", "measure", "mean", "standard_error", "lower",
-                                     "upper", "n"])
+                                     "upper", "n", "error"])
     table = pd.concat(frames, ignore_index=True)
+    table["standard_error"], table["error"] = without_roundoff(table.standard_error, table["mean"])
+    exact = table.standard_error == 0
+    table.loc[exact, "lower"] = table.loc[exact, "upper"] = table.loc[exact, "mean"]
     return table[["strategy"] + [c for c in table.columns if c != "strategy"]]
 
 

@@ -26,7 +26,7 @@ from microsim.report.structure import structure_figure
 from microsim.report.style import rendered
 from microsim.report.tables import (CI95, Column, interval, nonnegative_interval,
                                     normal_interval, number, percent, whole)
-from microsim.report.words import decision
+from microsim.report.words import decision, psa_tables
 
 REPORT = "report.html"
 FIGURES = "figures"
@@ -433,7 +433,7 @@ class Report:
             "provenance": s.get("provenance", ""), "caution": CAUTION,
             "scenario_note": self.scenario_note, "manifest": self.run.manifest,
             "summary": s, "currency": self.currency, "time_unit": self.time_unit,
-            "psa_basis": s.get("psa", {}).get("basis"),
+            "psa_basis": s.get("psa", {}).get("basis"), "psa_tables": psa_tables(s),
             "strategy_labels": self.strategy_labels,
             "decision": decision(s, self.strategy_labels),
             "decision_tables": self.decision_tables(),

@@ -8,6 +8,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Callable, Mapping
 
+from microsim.present import tables_in_words
 from microsim.report.tables import number, percent, whole
 
 @dataclass(frozen=True)
@@ -135,3 +136,13 @@ def uncertainty(summary: dict, labels: Mapping[str, str]) -> list:
         parts += ["the expected value of perfect information there is ",
                   key(summary, "psa.evpi_at_threshold.0.evpi"), f" {cur} per patient."]
     return parts
+
+
+def psa_tables(summary: dict) -> list | None:
+    """The printed summary's sentence on which tables the PSA varies and which it holds
+    fixed, each name tied to summary.json; None where the model reads no table (or the
+    summary was written before it said)."""
+    psa = summary.get("psa", {})
+    varied, fixed = ([key(summary, f"psa.{kind}.{i}", str) for i in range(len(psa.get(kind, [])))]
+                     for kind in ("tables_varied", "tables_held_fixed"))
+    return tables_in_words(varied, fixed) if varied or fixed else None

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from dataclasses import replace
 from typing import Iterable, Sequence
 
 import numpy as np
@@ -17,8 +18,9 @@ from .fields import (AGE, TOLERANCE, Reading, Reference, closest, describe, did_
                      listing, show, undefined)
 from .formulas import settings
 from .read_parameters import support
-from .read_population import normal_mass
-from .spec import REMAINDER, EventSpec, Ref, Scenario, TableSpec, TransitionSpec
+from .read_population import lowest_value, normal_mass
+from .spec import (REMAINDER, AttributeSpec, EventSpec, Ref, Scenario, TableSpec,
+                   TransitionSpec)
 
 MAX_LISTED = 12  # levels named in one message
 NO_AGE = 'no age is known; give start.age or a population attribute named "age"'
@@ -509,22 +511,67 @@ def check_lifetime(s: Scenario) -> None:
                                 "to an absorbing state")
 
 
+def age_attribute(s: Scenario) -> AttributeSpec | None:
+    """The population attribute named age (the age at time 0), if there is one."""
+    attributes = s.population.attributes if s.population else ()
+    return next((a for a in attributes if a.name == AGE), None)
+
+
 def youngest_age(s: Scenario) -> float | None:
     """The lowest age anyone can have at time 0, when it is known."""
-    ages = [] if s.start.age is None else [s.start.age]
-    for a in s.population.attributes if s.population else ():
-        if a.name == AGE:
-            ages.append(a.params.get("lower", 0.0))
+    age = age_attribute(s)
+    ages = [x for x in (s.start.age, None if age is None else lowest_value(age)) if x is not None]
     return min(ages) if ages else None
 
 
 def younger_share(s: Scenario, age: float) -> float:
-    """The share of patients younger than `age` at time 0 when their age is a normal
-    without a lower bound: P(X < age | X < upper), through the error function."""
-    a = next(a for a in s.population.attributes if a.name == AGE)
-    mean, sd, upper = a.params["mean"], a.params["sd"], a.params["upper"]
-    return min(normal_mass(mean, sd, -math.inf, min(age, upper))
-               / normal_mass(mean, sd, -math.inf, upper), 1.0)
+    """The share of patients younger than `age` at time 0 under the age attribute's
+    distribution, for the families that can start below 0: a normal truncated to
+    [lower, upper], P(lower < X < age) / P(lower < X < upper) through the error function,
+    and a uniform."""
+    a = age_attribute(s)
+    p = a.params
+    if a.distribution == "normal":
+        below = min(max(age, p["lower"]), p["upper"])
+        return min(normal_mass(p["mean"], p["sd"], p["lower"], below)
+                   / normal_mass(p["mean"], p["sd"], p["lower"], p["upper"]), 1.0)
+    if a.distribution == "uniform":
+        return min(max((age - p["lower"]) / (p["upper"] - p["lower"]), 0.0), 1.0)
+    raise ValueError(f"a {a.distribution} attribute starts at 0")
+
+
+def age_readers(s: Scenario, used: set[str]) -> list[str]:
+    """The field paths that need a patient's age (docs/scenario-format.md, *[start]*):
+    tables by age the model uses (`used`: the names the file uses), hazards on the age
+    clock and effects of age, in the model, its start and every strategy's treatments."""
+    found = [f"tables.{name}" for name, t in s.tables.items() if t.by == AGE and name in used]
+    found += [f"start.effects[{i}]" for i, e in enumerate(s.start.effects) if e.attribute == AGE]
+    models = [("", s)] + [(f"strategies.{x.name}{'' if line is x else f'.then.{line.name}'}.",
+                           replace(s, transitions=line.transitions, events=line.events))
+                          for x in s.strategies for line in (x, *x.then)]
+    for prefix, model in models:
+        for path, o in occurrences(model):
+            from_table = o.hazard is not None and o.hazard.family == "table"  # named above
+            found += [f"{prefix}{path}.clock"] if o.clock == AGE and not from_table else []
+            found += [f"{prefix}{path}.effects[{i}]" for i, e in enumerate(o.effects)
+                      if e.attribute == AGE]
+    return found
+
+
+def negative_ages(s: Scenario, used: set[str]) -> str | None:
+    """A warning where the model reads age and the age attribute's distribution can give
+    ages below 0 (a normal without lower >= 0, a uniform from below 0; lognormal, gamma and
+    beta start at 0): the share of patients who start below 0, and the fix."""
+    age = age_attribute(s)
+    readers = age_readers(s, used) if age is not None and lowest_value(age) < 0 else []
+    if not readers:
+        return None
+    lower = lowest_value(age)
+    bound = f"lower = {show(lower)}" if math.isfinite(lower) else "no lower"
+    more = f" (and {len(readers) - 1} more)" if len(readers) > 1 else ""
+    return (f"population.attributes.{AGE}: a share of {younger_share(s, 0.0):.3g} of the "
+            f"patients start at a negative age (a {age.distribution} with {bound}), which "
+            f"{readers[0]}{more} reads; give lower = 0")
 
 
 def warnings(s: Scenario, reading: Reading) -> list[str]:
@@ -540,6 +587,7 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
         if rate > 0.2:
             found.append(f"outcomes.{key}: {show(rate)} a year is {show(100 * rate)}%; discount "
                          f"rates are fractions (0.035 for 3.5%)")
+    found += [warning] if (warning := negative_ages(s, used)) else []
     youngest = youngest_age(s)
     for table in s.tables.values():
         first = table.starts[0]

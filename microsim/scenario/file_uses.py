@@ -10,9 +10,11 @@ from __future__ import annotations
 
 from dataclasses import replace
 
+import numpy as np
+
 from .checks import check_effects, check_level_tables, check_value_table_covers, value_uses
 from .errors import ScenarioError
-from .fields import AGE, Reading
+from .fields import AGE, Reading, show
 from .population_file import FILE, KIND_WORDS, PopulationFile
 from .read_population import band_gap
 from .read_strategies import check_conditions, under
@@ -41,7 +43,8 @@ def check_column_uses(s: Scenario, file: PopulationFile) -> None:
 
 
 def check_file_population(spec: PopulationSpec, file: PopulationFile) -> None:
-    """The population's own uses of the file's columns: names, bands and age."""
+    """The population's own uses of the file's columns: names, bands and age (numbers,
+    none below 0: a drawn age that can go below 0 is warned of, `checks.negative_ages`)."""
     for attribute in spec.attributes:
         if attribute.name in file.columns:
             raise ScenarioError(f"population.attributes.{attribute.name}",
@@ -52,6 +55,11 @@ def check_file_population(spec: PopulationSpec, file: PopulationFile) -> None:
     if age is not None and age.kind != "continuous":
         raise ScenarioError(FILE, f"column {AGE!r} of {file.path.name} is the age at time 0 "
                                   f"and must hold numbers, but it holds {KIND_WORDS[age.kind]}")
+    if age is not None and age.lowest < 0:
+        row = int(np.flatnonzero(file.rows[AGE].to_numpy(dtype=float) < 0)[0])
+        raise ScenarioError(FILE, f"column {AGE!r} of {file.path.name} is the age at time 0 "
+                                  f"and cannot be negative, but data row {row + 1} has "
+                                  f"{show(file.rows[AGE].iloc[row])}; correct it or drop the row")
 
 
 def check_band(spec: PopulationSpec, derived: DerivedSpec, file: PopulationFile) -> None:
