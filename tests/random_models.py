@@ -82,8 +82,9 @@ class Draft:
     """One model being drawn: states, ways out, population, strategy, and what it covers."""
 
     def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False,
-                 sequence: bool = False):
+                 sequence: bool = False, delayed: bool = False):
         self.rng = rng
+        self.delayed = delayed  # a treated rate model: treatment a fixed time after an entry
         self.log_location = log_location  # rate models of log-location families
         self.sequence = sequence  # a treated model whose strategy is a sequence of two
         self.kind = kind
@@ -340,9 +341,13 @@ class Draft:
             fields["discontinuation"] = self.uniform(0.05, 0.3, 3) / self.cycle
             self.features.add("discontinuation")
             self.heterogeneous = True
-        elif len(self.alive) > 1 and self.chance(0.3):
+        elif len(self.alive) > 1 and (self.delayed or self.chance(0.3)):
             fields["start_on"] = self.pick(self.alive[1:])
             self.features.add("treatment on entering a state")
+            if self.delayed:  # a fixed delay has no finite Markov form
+                fields["start_delay"] = round(self.uniform(0.05, 0.5) * self.end, 3)
+                self.features.add("delay to treatment")
+                self.exact = False
         changes = []
         if changeable and (self.chance(0.8) or not addable):
             way = self.pick(changeable)
@@ -650,11 +655,11 @@ def cycle_perturbations(d: Draft, rows: dict[str, bool]) -> list[Perturbation]:
 # -------------------------------------------------------------------------- rate models
 
 def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
-               sequence: bool = False) -> RandomModel:
-    d = Draft(rng, "rate", log_location, sequence)
+               sequence: bool = False, delayed: bool = False) -> RandomModel:
+    d = Draft(rng, "rate", log_location, sequence, delayed)
     recipe = d.pick(["closed start"] * 2 + ["time since"] + ["semi-Markov"] * 2 + ["plain"] * 15)
     d.draw_frame()
-    if (recipe != "plain" or sequence) and len(d.alive) < 2:
+    if (recipe != "plain" or sequence or delayed) and len(d.alive) < 2:
         d.alive.append(ALIVE[1])  # two live states: room for a closed start, re-entry or a stop
     d.draw_population(continuous=False)
     targets = {s: d.targets(s) for s in d.alive}
@@ -663,7 +668,7 @@ def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
         d.shares = {s: 1.0}
         targets[s] = [d.states[1]]
     addable = [(s, t) for s in d.alive for t in d.states if t != s and t not in targets[s]]
-    treated = sequence or d.chance(0.35)
+    treated = sequence or delayed or d.chance(0.35)
     added = d.pick(addable) if treated and addable else None
     entered = {t for ts in targets.values() for t in ts} | ({added[1]} if added else set())
     for s in d.alive:
@@ -806,10 +811,11 @@ def rate_perturbations(d: Draft) -> list[Perturbation]:
 # ---------------------------------------------------------------------- all the models
 
 def random_models(seed: int, cycle_models: int, rate_models: int,
-                  log_location_models: int = 0, sequence_models: int = 0) -> list[RandomModel]:
-    """The models of one seed; the log-location rate models and the treatment sequences
-    (half cycle, half rate models) come from streams of their own, so adding them leaves
-    the others as they were."""
+                  log_location_models: int = 0, sequence_models: int = 0,
+                  delay_models: int = 0) -> list[RandomModel]:
+    """The models of one seed; the log-location rate models, the treatment sequences
+    (half cycle, half rate models) and the rate models with a delay to treatment come from
+    streams of their own, so adding them leaves the others as they were."""
     rng = np.random.default_rng(seed)
     models = ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
               + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
@@ -817,5 +823,7 @@ def random_models(seed: int, cycle_models: int, rate_models: int,
     models += [rate_model(rng, f"log-location-{i}", log_location=True)
                for i in range(log_location_models)]
     rng = np.random.default_rng([seed, 2])
-    return models + [(cycle_model if i % 2 == 0 else rate_model)(
+    models += [(cycle_model if i % 2 == 0 else rate_model)(
         rng, f"sequence-{i}", sequence=True) for i in range(sequence_models)]
+    rng = np.random.default_rng([seed, 3])
+    return models + [rate_model(rng, f"delay-{i}", delayed=True) for i in range(delay_models)]
