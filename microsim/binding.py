@@ -159,6 +159,11 @@ class BoundModel:
     # the phase (f itself where the move changed it already, f is absorbing, or no cycle
     # from r's state ends in f); the identity for every other risk. None: no such event
     phase_on: np.ndarray | None = None
+    # rate models with a delay to treatment: how long after entering the waiting copies a
+    # patient passes to `delay_to` of the state it is in (a waiting copy's treated copy;
+    # other states their own; None: no delay)
+    delay: float = 0.0
+    delay_to: np.ndarray | None = None
     # with treatment phases: which states are copies on a treatment (None: no phases)
     treated_states: np.ndarray | None = None
     state_tables: tuple[ValueTable, ...] = ()  # states' costs and utilities read from tables
@@ -176,6 +181,13 @@ class BoundModel:
         """The name memory counts an entry into `state` under: its own, or for a copy of
         a state in a treatment phase, the state's."""
         return self.states[state] if self.entered_names is None else self.entered_names[state]
+
+    @property
+    def waiting(self) -> np.ndarray:
+        """Per state: whether it is a copy waiting for treatment on a fixed delay (rate
+        models, `delay_to`)."""
+        d = self.delay_to
+        return np.zeros(self.n_states, bool) if d is None else d != np.arange(self.n_states)
 
     @property
     def n_states(self) -> int:
@@ -330,8 +342,7 @@ def bind(scenario: Scenario, values: Mapping[str, float] | None = None,
     for line, adds in zip(spec.then, later):
         on, cost, utility, tables = bind_changes(line.changes, risks, scenario, index, resolve)
         lines.append(Line(line.name, line.stop_on, on, cost, utility, adds, tables))
-    delay = round(spec.start_delay / model.cycle) if model.discrete else 0
-    return with_phases(model, spec.start_on, lines, delay)
+    return with_phases(model, spec.start_on, lines, spec.start_delay)
 
 
 def by_state(measure: str, values: list) -> tuple[np.ndarray, tuple[ValueTable, ...]]:

@@ -30,6 +30,14 @@ copies no patient can reach are left out, and each state's copies follow one ano
 order of the states.
 Memory counts an entry into a copy of another state as an entry into that state
 (`BoundModel.entered`); a move between copies of the same state is no entry.
+
+A delay from the start trigger to the first treatment is a waiting phase. In cycle models
+it is a countdown of whole cycles, one phase a cycle (`<state>+<treatment>-wait<k>`, k
+cycles to go), which a patient leaves for the next at every cycle end (`BoundModel.stay_to`):
+still a Markov chain. In rate models it is one phase (`<state>+<treatment>-wait`) whose moves
+keep it, left for the treated copy of the state the patient is in exactly `delay` after
+entering it (`BoundModel.delay`, `BoundModel.delay_to`): the engines carry each patient's
+deadline, and the chain is Markov no more (a fixed delay has no finite Markov form).
 """
 from __future__ import annotations
 
@@ -57,19 +65,24 @@ class Line:
 
 
 def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
-                delay: int = 0) -> BoundModel:
+                delay: float = 0.0) -> BoundModel:
     """`model` (bound with the first treatment's window and factors) with a treatment phase
     in every living state. `start_on` and each line's `stop_on` name states and events;
-    `delay` (cycle models) is the whole cycles from the start trigger to the first treatment."""
+    `delay` is the time from the start trigger to the first treatment (in cycle models a
+    whole number of cycles)."""
     t = model.treatment
-    waits = delay if start_on else 0
+    delay = delay if start_on else 0.0
+    countdown = model.discrete  # cycle models: a phase a cycle; rate models: one, timed
+    waits = round(delay / model.cycle) if countdown else int(delay > 0)
     phases: list[Line | None] = ([None] * (1 + waits) if start_on else []) + list(lines)
     if lines[-1].stop_on:
         phases.append(None)
     triggers = [start_on] + [()] * waits if start_on else []
     triggers += [line.stop_on for line in lines] + ([()] if lines[-1].stop_on else [])
     first = lines[0]
-    suffix = ([""] + [f"+{first.name}-wait{j}" for j in range(waits, 0, -1)] if start_on
+    waiting_names = ([f"+{first.name}-wait{j}" for j in range(waits, 0, -1)] if countdown
+                     else [f"+{first.name}-wait"] * waits)
+    suffix = ([""] + waiting_names if start_on
               else []) + [f"+{line.name}" for line in lines] + (
         [f"+{STOPPED}"] if lines[-1].stop_on else [])
 
@@ -89,9 +102,12 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
 
     def phase_after(k: int, state: int) -> int:
         """The phase a patient in phase k is in after entering `state` at a cycle end (a
-        cycle of the countdown to treatment passes first); entering the start trigger
-        goes to the countdown, or straight to treatment without a delay."""
+        cycle of the countdown to treatment passes first; a timed wait keeps its phase);
+        entering the start trigger goes to the wait, or straight to treatment without a
+        delay."""
         if waiting(k):
+            if not countdown:
+                return k
             k += 1
             if waiting(k):
                 return k
@@ -137,13 +153,14 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
         for i in range(model.n_states):
             if line is not None and not model.absorbing[i]:
                 cost[copy[k, i]], utility[copy[k, i]] = line.cost[i], line.utility[i]
-    # a cycle of the countdown passes for a patient who stays in its state
+    # a cycle of the countdown passes for a patient who stays in its state; a timed wait
+    # ends in the treated copy of the state the patient is in
     stay = np.arange(len(names))
     for k in range(1, waits + 1):
         for i in range(model.n_states):
             stay[copy[k, i]] = copy[k + 1, i]
     # keep the copies patients can reach (from where they start, by any risk, a countdown
-    # or an event that moves the phase on at the end of a cycle from there)
+    # or a timed wait, or an event that moves the phase on at the end of a cycle from there)
     kept, stack = set(np.flatnonzero(start)), list(np.flatnonzero(start))
     while stack:
         e = stack.pop()
@@ -182,6 +199,8 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                     for r in live),
         treatment=treatment, start_effects=tuple((new[e], x) for e, x in start_effects),
         entered_names=tuple(entered[e] for e in kept),
-        stay_to=None if not waits else np.array([new[stay[e]] for e in kept]),
+        stay_to=None if not waits or not countdown else np.array([new[stay[e]] for e in kept]),
         phase_on=phase_on,
+        delay=0.0 if countdown or not waits else float(delay),
+        delay_to=None if countdown or not waits else np.array([new[stay[e]] for e in kept]),
         treated_states=treated[kept], state_tables=state_tables)

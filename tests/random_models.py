@@ -82,8 +82,9 @@ class Draft:
     """One model being drawn: states, ways out, population, strategy, and what it covers."""
 
     def __init__(self, rng: np.random.Generator, kind: str, log_location: bool = False,
-                 sequence: bool = False, trigger: str | None = None):
+                 sequence: bool = False, trigger: str | None = None, delayed: bool = False):
         self.rng = rng
+        self.delayed = delayed  # a treated rate model: treatment a fixed time after an entry
         self.log_location = log_location  # rate models of log-location families
         self.sequence = sequence  # a treated model whose strategy is a sequence of two
         self.trigger = trigger  # cycle models: the event starts ("start", "delay") or
@@ -346,9 +347,13 @@ class Draft:
             fields["discontinuation"] = self.uniform(0.05, 0.3, 3) / self.cycle
             self.features.add("discontinuation")
             self.heterogeneous = True
-        elif len(self.alive) > 1 and self.chance(0.3):
+        elif len(self.alive) > 1 and (self.delayed or self.chance(0.3)):
             fields["start_on"] = self.pick(self.alive[1:])
             self.features.add("treatment on entering a state")
+            if self.delayed:  # a fixed delay has no finite Markov form
+                fields["start_delay"] = round(self.uniform(0.05, 0.5) * self.end, 3)
+                self.features.add("delay to treatment")
+                self.exact = False
         changes = []
         if changeable and (self.chance(0.8) or not addable):
             way = self.pick(changeable)
@@ -670,11 +675,11 @@ def cycle_perturbations(d: Draft, rows: dict[str, bool]) -> list[Perturbation]:
 # -------------------------------------------------------------------------- rate models
 
 def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
-               sequence: bool = False) -> RandomModel:
-    d = Draft(rng, "rate", log_location, sequence)
+               sequence: bool = False, delayed: bool = False) -> RandomModel:
+    d = Draft(rng, "rate", log_location, sequence, delayed)
     recipe = d.pick(["closed start"] * 2 + ["time since"] + ["semi-Markov"] * 2 + ["plain"] * 15)
     d.draw_frame()
-    if (recipe != "plain" or sequence) and len(d.alive) < 2:
+    if (recipe != "plain" or sequence or delayed) and len(d.alive) < 2:
         d.alive.append(ALIVE[1])  # two live states: room for a closed start, re-entry or a stop
     d.draw_population(continuous=False)
     targets = {s: d.targets(s) for s in d.alive}
@@ -683,7 +688,7 @@ def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
         d.shares = {s: 1.0}
         targets[s] = [d.states[1]]
     addable = [(s, t) for s in d.alive for t in d.states if t != s and t not in targets[s]]
-    treated = sequence or d.chance(0.35)
+    treated = sequence or delayed or d.chance(0.35)
     added = d.pick(addable) if treated and addable else None
     entered = {t for ts in targets.values() for t in ts} | ({added[1]} if added else set())
     for s in d.alive:
@@ -827,11 +832,12 @@ def rate_perturbations(d: Draft) -> list[Perturbation]:
 
 def random_models(seed: int, cycle_models: int, rate_models: int,
                   log_location_models: int = 0, sequence_models: int = 0,
-                  trigger_models: int = 0) -> list[RandomModel]:
+                  trigger_models: int = 0, delay_models: int = 0) -> list[RandomModel]:
     """The models of one seed; the log-location rate models, the treatment sequences
-    (half cycle, half rate models) and the cycle models whose treatment an event starts,
-    starts after a delay, or stops (in turn; every other one a sequence) come from streams
-    of their own, so adding them leaves the others as they were."""
+    (half cycle, half rate models), the cycle models whose treatment an event starts,
+    starts after a delay, or stops (in turn; every other one a sequence) and the rate
+    models with a fixed delay to treatment come from streams of their own, so adding them
+    leaves the others as they were."""
     rng = np.random.default_rng(seed)
     models = ([cycle_model(rng, f"cycle-{i}") for i in range(cycle_models)]
               + [rate_model(rng, f"rate-{i}") for i in range(rate_models)])
@@ -842,6 +848,8 @@ def random_models(seed: int, cycle_models: int, rate_models: int,
     models += [(cycle_model if i % 2 == 0 else rate_model)(
         rng, f"sequence-{i}", sequence=True) for i in range(sequence_models)]
     rng = np.random.default_rng([seed, 3])
-    return models + [cycle_model(rng, f"trigger-{i}", sequence=i % 2 == 1,
-                                 trigger=("start", "delay", "stop")[i % 3])
-                     for i in range(trigger_models)]
+    models += [cycle_model(rng, f"trigger-{i}", sequence=i % 2 == 1,
+                           trigger=("start", "delay", "stop")[i % 3])
+               for i in range(trigger_models)]
+    rng = np.random.default_rng([seed, 4])
+    return models + [rate_model(rng, f"delay-{i}", delayed=True) for i in range(delay_models)]

@@ -8,8 +8,9 @@ Phi(MARGIN) = 99.9% of runs; asserted: 95%). Both are counted over two hundred r
 valid models (tests/random_models.py) drawn from one fixed seed (and ten rate models of the
 log-normal and generalised gamma under time ratios, and twelve models whose strategy is a
 sequence of two treatments, the second with an event and a transition of its own, and
-nine cycle models whose treatment an event starts, starts after a delay or stops, each
-from a stream of their own). A
+nine cycle models whose treatment an event starts, starts after a delay or stops, and
+six rate models whose treatment starts a fixed time after entering a state, which must be
+told there is no exact counterpart, each from a stream of their own). A
 deliberate error is one hazard scaled by 1.1 (one per-cycle probability multiplied or
 divided by 1.1, a log-location family's clock run 1.1 times faster) in the simulated
 binding only, so the comparison still uses the unperturbed model.
@@ -42,7 +43,7 @@ from random_models import random_models
 
 SEED = 20261203
 MODELS = random_models(SEED, cycle_models=155, rate_models=50, log_location_models=10,
-                       sequence_models=12, trigger_models=9)
+                       sequence_models=12, trigger_models=9, delay_models=6)
 DETECTION = 0.95  # the detection rate the verdict must reach
 MARGIN = 3.0  # standard errors by which a detection run's error exceeds the critical value
 LARGEST = {"cycle": 20000, "rate": 10000}  # the largest detection run, so the test stays fast

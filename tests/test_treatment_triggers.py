@@ -216,9 +216,7 @@ def test_a_delay_of_zero_is_no_delay():
      "not a whole number of cycles"),
     (None, dict(start_on="progressed", start_delay=-1), "strategies.treat.start_delay", "at least 0"),
     (None, dict(start_delay=2), "strategies.treat.start_delay", "give start_on"),
-    (FLARING, dict(start_on="progressed", start_delay=1), "strategies.treat.start_delay",
-     "no exact Markov counterpart"),
-], ids=["part-cycle", "negative", "no-trigger", "rate-model"])
+], ids=["part-cycle", "negative", "no-trigger"])
 def test_delay_refusals(blocks, fields, path, phrase):
     blocks = delayed_pathway(0.2) if blocks is None else blocks
     assert_refused(scenario_text(*blocks, COMPARATOR,

@@ -208,6 +208,22 @@ EVERYTHING = scenario_text(
     PEOPLE)
 
 
+DELAYED = scenario_text(  # a wait for treatment: each patient's deadline is a change point
+    horizon(15), start(well=0.8, sick=0.2),
+    state("well"), state("sick"), state("stuck"), state("dead", absorbing=True),
+    rate("well", "sick", 0.3, name="progress", effects=[effect("biomarker", 1.8, centre=0.7)]),
+    rate("well", "stuck", 0.05), rate("well", "dead", 0.02),
+    transition("sick", "dead", hazard=weibull(1.3, 6), name="die",  # its clock runs on
+               memory=[after("sick", multipliers=[1, 1.5])]),
+    rate("sick", "well", 0.4, memory=[after("well", within=0.5, multiplier=2)]),
+    event("flare", ["well", "sick"], rate=0.6),
+    strategy("usual", comparator=True),
+    strategy("treat", start_on="sick", start_delay=0.75, uptake=0.8, stop=12,
+             changes=[nested(transition="die", hazard_ratio=0.5),
+                      nested(transition="flare", hazard_ratio=0.7)]),
+    PEOPLE)
+
+
 def bound(text, strategy_name=None):
     return bind(parse_scenario(text), strategy=strategy_name)
 
@@ -274,6 +290,18 @@ def test_treatment_windows_equal_the_simpy_event_engine():
     times = got.time[got.risk == cure]
     on, off = window.on[got.patient[got.risk == cure]], window.off[got.patient[got.risk == cure]]
     assert np.all((on <= times) & (times < off))  # the added transition only on treatment
+
+
+def test_a_delay_to_treatment_equals_the_simpy_event_engine():
+    model = bound(DELAYED, "treat")
+    expected, got, _ = both_engines(model, IDS, 12)
+    assert_same_histories(expected, got, CLOSED)
+    assert_every_risk_happens(model, got)
+    passes = (got.risk < 0) & (got.source >= 0)  # the wait's end: a phase change
+    assert passes.sum() > 100
+    assert np.all(model.waiting[got.source[passes]])
+    stuck = model.states.index("stuck+treat-wait")  # no way out, but the wait ends
+    assert np.any(got.source[passes] == stuck)
 
 
 def test_long_stays_use_every_window_of_draws():

@@ -126,9 +126,10 @@ def generators(exp: Expansion, mult: Multipliers, breaks: np.ndarray) -> np.ndar
     Q = np.zeros((len(breaks) - 1, exp.size, exp.size))
     rates = np.zeros((len(breaks) - 1, exp.size, len(exp.model.risks)))
     for k, t in enumerate(breaks[:-1]):
-        h = hazards_at(exp, t, mult)[0][f.risk] * f.factor
+        h = f.rates(hazards_at(exp, t, mult)[0])
         np.add.at(Q[k], (f.source, f.target), h)
-        np.add.at(rates[k], (f.source, f.risk), h)
+        counted = f.of_risks
+        np.add.at(rates[k], (f.source[counted], f.risk[counted]), h[counted])
         Q[k] -= np.diag(Q[k].sum(axis=1))
     return Q, rates
 
@@ -172,7 +173,9 @@ def analytic(model: BoundModel, patients: pd.DataFrame | None = None,
     if model.discrete and mult.window is not None:
         mult = replace(mult, window=mult.window.on_grid_points(model.times))
     distinct, inverse = mult.unique()
-    memory = "" if exp.trivial else f" over {exp.size} expanded states (tunnel/count/window memory)"
+    memory = "" if exp.trivial else (f" over {exp.size} expanded states (tunnel/count/window "
+                                     "memory" + (", a delay's stages)" if model.waiting.any()
+                                                 else ")"))
     if model.discrete:
         trace, exposure = cycle_result(exp, distinct)
         times, method = model.times, "cycle-by-cycle matrix products"

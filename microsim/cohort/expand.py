@@ -13,6 +13,13 @@ dependency of treatment response").
 `within` memory is finite only in cycle models: there every occurrence happens at a cycle
 end and every probability is read at a cycle start, so the time since an occurrence is a
 whole number of cycles. In rate models it is continuous and has no finite expansion.
+
+A fixed delay to treatment in a rate model (`BoundModel.delay`) has none either. The
+expansion approximates it: each waiting copy gets DELAY_STAGES stages (the duration
+field), passed one after another at rate DELAY_STAGES / delay, so the wait is an
+Erlang(DELAY_STAGES) time of mean `delay` (the method of stages; e.g. Cox 1955, "A use of
+complex probabilities in the theory of stochastic processes"), and the result is labelled
+not exact.
 """
 from __future__ import annotations
 
@@ -25,6 +32,8 @@ import numpy as np
 
 from microsim.binding import BoundModel, BoundRisk
 from microsim.scenario.spec import TableSpec
+
+DELAY_STAGES = 16  # exponential stages of a rate model's fixed delay (not exact)
 
 
 @dataclass(frozen=True)
@@ -186,11 +195,12 @@ def tunnel_length(risks: tuple[BoundRisk, ...], cycle: float) -> int:
 
 
 def tunnel_lengths(model: BoundModel) -> tuple[int, ...]:
-    """Each state's tunnel length (1 in rate models). Time in state runs on across the
-    copies of a state in treatment phases (a countdown's cycle, an event that moves the
-    phase on), so every copy counts as far as the longest of them needs."""
+    """Each state's tunnel length: in rate models 1, or the stages of a delay's wait in a
+    waiting copy. Time in state runs on across the copies of a state in treatment phases
+    (a countdown's cycle, an event that moves the phase on), so in cycle models every copy
+    counts as far as the longest of them needs."""
     if not model.discrete:
-        return (1,) * model.n_states
+        return tuple(DELAY_STAGES if waiting else 1 for waiting in model.waiting)
     own = [tunnel_length(model.risks_from(i), model.cycle) for i in range(model.n_states)]
     longest: dict[str, int] = {}
     for i, length in enumerate(own):
@@ -230,6 +240,14 @@ def expand(model: BoundModel) -> Expansion:
             reasons.append(f"'{risk.name}' has a {risk.family} hazard on the time since "
                            f"entering '{model.states[risk.source]}', a state patients enter "
                            "after the start (semi-Markov)")
+    waiting = model.waiting
+    if waiting.any():
+        unit = model.scenario.time.unit
+        reasons.append(f"treatment starts a fixed {model.delay:g} {unit} after its trigger, "
+                       "which no finite Markov chain can hold; the analytic side approximates "
+                       f"the wait by {DELAY_STAGES} exponential stages of mean "
+                       f"{model.delay / DELAY_STAGES:g} {unit} each (an Erlang({DELAY_STAGES}) "
+                       "delay), whose error is shown, not tested")
     counters = tuple(Counter(after, cap) for after, cap in sorted(caps.items()))
     recencies = tuple(Recency(after, cap) for after, cap in sorted(windows.items()))
     durations = tunnel_lengths(model)

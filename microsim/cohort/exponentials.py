@@ -124,12 +124,13 @@ def exponential_chunk(exp: Expansion, mult: Multipliers, times: np.ndarray,
     group = (first // start.shape[1]) * n_bands + band.ravel()[first]
     h, dt = hazards.reshape(-1, R)[first], length.ravel()[first]
     Q = np.zeros((len(first), E, E))
-    flow = h[:, f.risk] * f.factor  # (U, flows)
+    flow = f.rates(h)  # (U, flows)
     for k in range(len(f.source)):
         Q[:, f.source[k], f.target[k]] += flow[:, k]
     Q -= np.eye(E) * Q.sum(axis=2)[:, :, None]  # moves to itself (events) cancel
     by_risk = np.zeros((len(first), E, R))  # the rate of each risk from each expanded state
-    np.add.at(by_risk, (slice(None), f.source, f.risk), flow)
+    counted = f.of_risks
+    np.add.at(by_risk, (slice(None), f.source[counted], f.risk[counted]), flow[:, counted])
     distinct = sorted(set(rates))
     propagate, integrals = exponential_and_integrals(Q, dt, tuple(distinct))
     history = np.empty((B, nodes.shape[1], E))  # the distribution at each node

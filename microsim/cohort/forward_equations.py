@@ -25,26 +25,45 @@ from microsim.results.outcomes import Exposure
 RTOL, ATOL = 1e-10, 1e-12
 
 
+STAGE = -1  # the risk of a flow from one stage of a delay's wait to the next (no risk)
+
+
 @dataclass(frozen=True)
 class Flows:
-    """Every (expanded source, expanded target, risk, memory factor) move of the chain."""
+    """Every (expanded source, expanded target, risk, memory factor) move of the chain; a
+    flow of risk STAGE is a stage of a delay (`expand.DELAY_STAGES`) at rate `factor`."""
     source: np.ndarray
     target: np.ndarray
     risk: np.ndarray
     factor: np.ndarray
 
+    @property
+    def of_risks(self) -> np.ndarray:
+        """Which flows are occurrences of the model's risks (counted), not stages."""
+        return self.risk != STAGE
+
+    def rates(self, hazards: np.ndarray) -> np.ndarray:
+        """(..., flows) the rate of each flow, given each risk's hazard (..., R)."""
+        return np.where(self.of_risks, hazards[..., self.risk], 1.0) * self.factor
+
 
 def flows(exp: Expansion) -> Flows:
     model = exp.model
     rows = []
-    for e, (i, _, counts) in enumerate(exp.expanded):
+    for e, (i, stage, counts) in enumerate(exp.expanded):
         if model.absorbing[i]:
             continue
         for r, risk in enumerate(model.risks):
             if risk.source == i:
                 j = i if risk.is_event else risk.target
-                rows.append((e, exp.index(j, 0, exp.after_move(counts, i, (risk,))), r,
+                kept = stage if model.waiting[i] and model.waiting[j] else 0  # the wait goes on
+                rows.append((e, exp.index(j, kept, exp.after_move(counts, i, (risk,))), r,
                              exp.memory_factor(risk, counts)))
+        if model.waiting[i]:  # the next stage of the wait, or after the last the treatment
+            n = exp.durations[i]
+            after = (exp.index(i, stage + 1, counts) if stage + 1 < n
+                     else exp.index(int(model.delay_to[i]), 0, counts))
+            rows.append((e, after, STAGE, n / model.delay))
     source, target, risk, factor = (np.array(c) for c in zip(*rows)) if rows else [np.zeros(0)] * 4
     return Flows(source.astype(int), target.astype(int), risk.astype(int), factor.astype(float))
 
@@ -100,7 +119,7 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
 
     def derivative(t, y):
         pi = y.reshape(batch, -1)[:, :E]
-        flux = pi[:, f.source] * hazards(t)[:, f.risk] * f.factor
+        flux = pi[:, f.source] * f.rates(hazards(t))
         d_pi = np.zeros_like(pi)
         np.add.at(d_pi.T, f.source[moving], -flux[:, moving].T)
         np.add.at(d_pi.T, f.target[moving], flux[:, moving].T)
@@ -108,7 +127,7 @@ def solve_rates(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple[n
         d_occ = (pi @ collapse)[:, :, None] * discount
         d_on = d_occ * (0.0 if window is None else window.active(t)[:, None, None])
         d_count = np.zeros((batch, R))
-        np.add.at(d_count.T, f.risk, flux.T)
+        np.add.at(d_count.T, f.risk[f.of_risks], flux[:, f.of_risks].T)
         d_count = d_count[:, :, None] * discount
         return np.concatenate([d_pi, d_occ.reshape(batch, -1), d_on.reshape(batch, -1),
                                d_count.reshape(batch, -1)], axis=1).ravel()

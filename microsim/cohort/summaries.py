@@ -92,7 +92,8 @@ def chain_summary(model: BoundModel) -> ChainSummary:
         parts.append(absorption_to_end(model, mult, runs, dependence.homogeneous))
     notes = () if exp.exact else (
         "not exact: " + "; ".join(exp.reasons) + ". These figures are those of the analytic "
-        "side's Markov approximation, which ignores this memory.",)
+        "side's Markov approximation (memory it cannot hold ignored, a fixed delay "
+        "replaced by exponential stages).",)
     return ChainSummary(tuple(parts), notes)
 
 

@@ -12,6 +12,13 @@ are drawn) uses occurrence k of each of i's risks' purposes. So where every way 
 state is a constant rate, the winner and the time of every round can be computed for the
 whole batch with numpy before SimPy starts, and the patient process only looks them up.
 Draws are unit exponentials e = -log(u): a time to event solves m (H(a + s) - H(a)) = e.
+
+A delay to treatment (`BoundModel.delay`) is a deterministic competitor: a patient entering
+the waiting copies carries the deadline entry + delay, and in each round there the earliest
+of the latent times and the deadline wins. The deadline winning moves the patient to the
+treated copy of its state (recorded as a phase change, risk START: no event, no cost; the
+time in state runs on), and the next round's latent times are drawn afresh as after any
+round.
 """
 from __future__ import annotations
 
@@ -131,13 +138,16 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                else list(zip(window.on.tolist(), window.off.tolist())))
     targets = [risk.source if risk.target is None else risk.target for risk in model.risks]
     simple, from_state = batch.simple, batch.from_state
+    waiting = model.waiting.tolist()
     # a state with no way out and no event keeps its patients to the end, as if absorbing
-    final = [bool(a) or not rs for a, rs in zip(model.absorbing, from_state)]
+    # (unless they wait there for treatment)
+    final = [bool(a) or not (rs or w) for a, rs, w in zip(model.absorbing, from_state, waiting)]
     memory, bumps, tracked = batch.memory, batch.bumps, batch.tracked
     end = model.n_cycles * model.cycle
     statics = batch.statics.tolist()
     record = Recorder(mult.size)
     tracking = bool(tracked)
+    delay_to = None if model.delay_to is None else model.delay_to.tolist()
 
     def patient(b: int, timeout):
         times = [t[b] if t else None for t in batch.times]  # extended when used up
@@ -151,9 +161,11 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         counts, last = plan.initial_memory(model, tracked, state)
         add = record.rows[b].append
         add((0.0, START, state, START))
+        deadline = model.delay if waiting[state] else inf  # the end of a wait for treatment
         while not final[state]:
             k = rounds[state]
             rounds[state] = k + 1
+            limit = min(end, deadline) if waiting[state] else end
             if simple[state]:  # a round computed beforehand; nothing changes within it
                 try:
                     best, winner = times[state][k], winners[state][k]
@@ -162,10 +174,15 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                     times[state] += more_times
                     winners[state] += more_winners
                     best, winner = times[state][k], winners[state][k]
-                if now + best >= end:
-                    return
+                if now + best >= limit:
+                    if limit >= end:
+                        return
+                    yield timeout(limit - now)
+                    now = limit
+                    state = pass_to_treatment(add, now, state)
+                    continue
             else:
-                best, winner, change = inf, None, end
+                best, winner, change = inf, None, limit
                 for r in from_state[state]:
                     if k == len(draws[r]):
                         draws[r] += batch.more_draws(b, r, k)
@@ -178,6 +195,8 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                         return
                     yield timeout(change - now)
                     now = change
+                    if waiting[state] and now == deadline:
+                        state = pass_to_treatment(add, now, state)
                     continue
             yield timeout(best)
             now += best
@@ -188,7 +207,15 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
                     counts[index] += 1
                     last[index] = now
             if target != state:
+                if waiting[target] and not waiting[state]:
+                    deadline = now + model.delay
                 state, entered = target, now
+
+    def pass_to_treatment(add, now: float, state: int) -> int:
+        """The wait's end: a phase change without a move, into the treated copy (the time
+        in state runs on)."""
+        add((now, state, delay_to[state], START))
+        return delay_to[state]
 
     # Patients run in small groups, each in its own environment: the event queue stays
     # short (a heap of thousands of patients costs more than the model's arithmetic), and

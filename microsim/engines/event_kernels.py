@@ -72,14 +72,15 @@ def draws(seed, keys, ids, rows, rounds, blocks):
 def multipliers(risks, rows, now, end, plans, counts, last):
     """For the patients `rows` of one state at times `now`: each of its `risks`'
     multiplier (risk, patient), where a treatment window makes it 0 (the risk is off),
-    and the state's next change point (the horizon `end` at the latest):
+    and the state's next change point (each patient's `end` at the latest: the horizon,
+    or a wait's deadline):
     `event_engine.latent_time`'s multiplier and change point, term by term, in its order."""
     m = np.empty((risks.size, rows.size))
     is_off = np.zeros((risks.size, rows.size), np.bool_)
     change = np.empty(rows.size)
     for p in range(rows.size):
         b, t = rows[p], now[p]
-        bound = end
+        bound = end[p]
         for j in range(risks.size):
             r = risks[j]
             value = plans.static[r, b]
@@ -148,11 +149,13 @@ def choose(times, now, change, tie):
 
 @njit(cache=True)
 def settle(live, state_of, first, best, change, now, end, width, risk_at, targets, bumps,
-           absorbing, clock, state, entered, counts, last):
+           absorbing, clock, state, entered, counts, last, waiting, delay_to, deadline, delay):
     """Each live patient's round outcome: its winner occurs at now + best if that is before
-    the change point (recorded, counted in memory, the state and its entry time moved on),
-    or the patient's clock moves to the change point. Returns the records (patient row,
-    time, from, to, risk) and the patients still live: not absorbed, not at the horizon."""
+    the change point (recorded, counted in memory, the state and its entry time moved on;
+    entering the `waiting` copies from elsewhere sets the `deadline` `delay` later), or the
+    patient's clock moves to the change point (the deadline: a phase change to `delay_to`,
+    recorded with risk -1, the entry time kept). Returns the records (patient row, time,
+    from, to, risk) and the patients still live: not absorbed, not at the horizon."""
     n = live.size
     who, at = np.empty(n, np.int64), np.empty(n)
     source, target, winner = np.empty(n, np.int16), np.empty(n, np.int16), np.empty(n, np.int32)
@@ -173,6 +176,8 @@ def settle(live, state_of, first, best, change, now, end, width, risk_at, target
                     counts[index, b] += 1
                     last[index, b] = reached
             if to != i:
+                if waiting[to] and not waiting[i]:
+                    deadline[b] = reached + delay
                 state[b], entered[b] = to, reached
             if not absorbing[to]:
                 still[kept] = b
@@ -180,6 +185,13 @@ def settle(live, state_of, first, best, change, now, end, width, risk_at, target
         else:
             clock[b] = change[p]
             if change[p] < end:
+                i = state_of[p]
+                if waiting[i] and change[p] == deadline[b]:  # the wait ends: treatment
+                    to = delay_to[i]
+                    who[made], at[made], source[made], target[made] = b, change[p], i, to
+                    winner[made] = -1
+                    made += 1
+                    state[b] = to
                 still[kept] = b
                 kept += 1
     return (who[:made], at[:made], source[:made], target[:made], winner[:made]), still[:kept]

@@ -10,7 +10,10 @@ the state gets a latent time by inverting its cumulative hazard from occurrence 
 purpose (k = the patient's count of rounds in that state, rounds ended by a change point
 included), the earliest wins unless a change point (a treatment window opening or
 closing, a `within` memory window running out) or the horizon comes first, and then
-memory, clocks and state move on. Patients who are absorbed or reach the horizon leave
+memory, clocks and state move on. A wait for treatment (`BoundModel.delay`) ends at each
+patient's deadline, which is one more change point of its waiting copies: reached first, it
+moves the patient to the treated copy (a phase change, as the event engine records it).
+Patients who are absorbed or reach the horizon leave
 the live set, so a step costs work in proportion to the patients still running, and
 memory holds a few numbers and one Philox block (four draws) per risk of each state a
 patient, however long the horizon.
@@ -99,6 +102,11 @@ class _Batch:
         self.state = starts
         self.counts, self.last = plan.initial_memory_arrays(model, tracked, starts)
         self.now, self.entered = np.zeros(n), np.zeros(n)
+        self.waiting = model.waiting
+        self.delay = float(model.delay)
+        self.delay_to = (np.arange(model.n_states) if model.delay_to is None
+                         else model.delay_to).astype(np.int64)
+        self.deadline = np.where(self.waiting[starts], self.delay, inf)
         self.rounds = np.zeros((model.n_states, n), np.int64)
         self.records = [(np.arange(n), 0.0, START, starts.copy(), START)]
 
@@ -160,16 +168,19 @@ class _Batch:
         change = np.full(n, self.end)
         for i in np.flatnonzero(np.bincount(state)).tolist():
             risks = self.from_state[i]
-            if not risks:
-                continue
             pos = np.flatnonzero(state == i)
             rows, at = live.take(pos), now.take(pos)
+            if self.waiting[i]:  # the deadline ends the wait, whatever happens before it
+                change[pos] = np.minimum(self.end, self.deadline.take(rows))
+            if not risks:
+                continue
             u = event_kernels.draws(self.seed, self.keys[i], self.ids, rows, self.rounds[i],
                                     self.blocks[i])
             e = -np.log(u)  # numpy's logarithm on an array, as the event engine's draws
             draws[:len(risks), pos] = e
-            m, off, bound = event_kernels.multipliers(self.risk_arrays[i], rows, at, self.end,
-                                                      self.plans, self.counts, self.last)
+            m, off, bound = event_kernels.multipliers(self.risk_arrays[i], rows, at,
+                                                      change.take(pos), self.plans,
+                                                      self.counts, self.last)
             change[pos] = bound
             # how far a numerical root must be searched: just past the change point
             limit = bound - at + 2.0 * TIE * bound if self.numerical[i] else inf
@@ -183,7 +194,7 @@ class _Batch:
         records, live = event_kernels.settle(
             live, state, first, best, change, now, self.end, self.width, self.risk_at,
             self.targets, self.bumps, self.absorbing, self.now, self.state, self.entered,
-            self.counts, self.last)
+            self.counts, self.last, self.waiting, self.delay_to, self.deadline, self.delay)
         self.records.append(records)
         return live
 
@@ -196,7 +207,8 @@ class _Batch:
             last = [None if np.isnan(x) else x for x in self.last[:, b].tolist()]
             window = (float(self.on[b]), float(self.off[b]))
             t, entered, age0 = float(now[p]), float(self.entered[b]), float(self.age0[b])
-            soonest, winner, bound = inf, 0, self.end
+            soonest, winner, bound = inf, 0, min(self.end, self.deadline[b]) if self.waiting[
+                state[p]] else self.end
             views = plan.patient_views(self.views, self.levels, self.mult, b)
             for j, r in enumerate(self.from_state[state[p]]):
                 dt, bound = latent_time(views[r], float(draws[j, p]), float(self.static[r, b]),

@@ -301,7 +301,8 @@ class ComparisonSums:
             agrees = None
             verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
                        "the analytic figures beside the simulation are a Markov approximation "
-                       "that ignores this memory, shown for orientation only.")
+                       "(memory it cannot hold ignored, a fixed delay replaced by exponential "
+                       "stages), shown for orientation only.")
         return Comparison(counterpart, result.exact, shares, self.subgroup_table(), outcomes,
                           average, self.survival_table(), critical, level, agrees, verdict,
                           average_verdict(average))

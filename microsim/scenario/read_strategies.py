@@ -363,19 +363,15 @@ def only_elsewhere(s: Scenario, strategy: StrategySpec, prefix: str, during) -> 
 
 
 def check_delay(s: Scenario, strategy: StrategySpec, here: str) -> None:
-    """`start_delay`: whole cycles in cycle models, where a countdown of copies of the states
-    makes it exact; a fixed delay in a rate model has no finite Markov form, so it is refused."""
+    """`start_delay`: needs start_on; in cycle models a whole number of cycles (a countdown
+    of copies of the states), in rate models any length (each patient's deadline)."""
     delay, cycle, unit = strategy.start_delay, s.time.cycle, s.time.unit
     if not delay:
         return
     if not strategy.start_on:
         raise ScenarioError(here, "delays the start on start_on, which this strategy does not "
                             "have; give start_on, or use start for a fixed time")
-    if not s.discrete:
-        raise ScenarioError(here, "a fixed delay in a rate model has no exact Markov "
-                            "counterpart, so it is not available; use a cycle model, or put an "
-                            "intermediate state with a rate between the trigger and treatment")
-    if abs(delay / cycle - round(delay / cycle)) > 1e-9:
+    if s.discrete and abs(delay / cycle - round(delay / cycle)) > 1e-9:
         raise ScenarioError(here, f"{show(delay)} {unit} is not a whole number of cycles "
                             f"({show(cycle)} {unit} each); give a multiple of the cycle")
 

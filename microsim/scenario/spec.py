@@ -378,7 +378,7 @@ class StrategySpec:
     start_on: tuple[str, ...] = ()  # treatment starts on entering one of these states
     stop_on: tuple[str, ...] = ()  # and stops on entering one of these
     then: tuple[LineSpec, ...] = ()  # later treatments, each after the one before stops
-    start_delay: float = 0.0  # time units from the start trigger to treatment (cycle models)
+    start_delay: float = 0.0  # time units from the start trigger to treatment
 
     @property
     def phased(self) -> bool:
