@@ -676,7 +676,7 @@ def cycle_perturbations(d: Draft, rows: dict[str, bool]) -> list[Perturbation]:
 
 def rate_model(rng: np.random.Generator, name: str, log_location: bool = False,
                sequence: bool = False, delayed: bool = False) -> RandomModel:
-    d = Draft(rng, "rate", log_location, sequence, delayed)
+    d = Draft(rng, "rate", log_location, sequence, delayed=delayed)
     recipe = d.pick(["closed start"] * 2 + ["time since"] + ["semi-Markov"] * 2 + ["plain"] * 15)
     d.draw_frame()
     if (recipe != "plain" or sequence or delayed) and len(d.alive) < 2:
