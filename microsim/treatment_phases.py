@@ -29,7 +29,10 @@ the phase before treatment keep the states' own names, absorbing states have one
 copies no patient can reach are left out, and each state's copies follow one another in the
 order of the states.
 Memory counts an entry into a copy of another state as an entry into that state
-(`BoundModel.entered`); a move between copies of the same state is no entry.
+(`BoundModel.entered`); a move between copies of the same state is no entry. A treatment
+never begins in a state that stops it: a patient who comes to a treatment's phase in such a
+state (an event or a delay's end moves the phase on, an entry stops the treatment before)
+passes on to the next phase at once.
 
 A delay from the start trigger to the first treatment is a waiting phase. In cycle models
 it is a countdown of whole cycles, one phase a cycle (`<state>+<treatment>-wait<k>`, k
@@ -100,6 +103,15 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
     def waiting(k: int) -> bool:
         return 1 <= k <= waits
 
+    def settled(k: int, i: int) -> int:
+        """The phase of a patient who comes to phase k in state i without entering i (a
+        countdown or a wait ends, an event moves the phase on, an entry stops the treatment
+        before): a treatment never begins in a state that stops it, so the patient passes on
+        to the next phase, as far as a phase that state does not stop."""
+        while phases[k] is not None and model.states[i] in triggers[k]:
+            k += 1
+        return k
+
     def phase_after(k: int, state: int) -> int:
         """The phase a patient in phase k is in after entering `state` at a cycle end (a
         cycle of the countdown to treatment passes first; a timed wait keeps its phase);
@@ -109,15 +121,14 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
             if not countdown:
                 return k
             k += 1
-            if waiting(k):
-                return k
-        return k + 1 if model.states[state] in triggers[k] else k
+            return k if waiting(k) else settled(k, state)  # the countdown's end
+        return settled(k + 1, state) if model.states[state] in triggers[k] else k
 
     def next_copy(k: int, e: int) -> int:
         """Where a cycle that ended in copy e goes when an event of phase k moves the phase
         on: e's state in the next phase, if e is a living copy of phase k (else e)."""
         i = base[e]
-        return copy[k + 1, i] if not model.absorbing[i] and copy[k, i] == e else e
+        return copy[settled(k + 1, i), i] if not model.absorbing[i] and copy[k, i] == e else e
 
     owner = {r: line for line in lines for r in line.adds}
     risks, on, off = [], [], []
@@ -132,7 +143,7 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
                 moving[len(risks)] = k
                 target = None
             elif trigger:  # the event is the move to the next phase
-                target = copy[k + 1, risk.source]
+                target = copy[settled(k + 1, risk.source), risk.source]
             else:
                 target = None if risk.target is None else copy[
                     phase_after(k, risk.target) if moves else k, risk.target]
@@ -158,7 +169,7 @@ def with_phases(model: BoundModel, start_on: tuple[str, ...], lines: list[Line],
     stay = np.arange(len(names))
     for k in range(1, waits + 1):
         for i in range(model.n_states):
-            stay[copy[k, i]] = copy[k + 1, i]
+            stay[copy[k, i]] = copy[settled(k + 1, i), i]
     # keep the copies patients can reach (from where they start, by any risk, a countdown
     # or a timed wait, or an event that moves the phase on at the end of a cycle from there)
     kept, stack = set(np.flatnonzero(start)), list(np.flatnonzero(start))

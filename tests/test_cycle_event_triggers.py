@@ -154,6 +154,38 @@ def test_treatment_stopped_by_a_flare_equals_the_hand_built_chain():
     assert_matches_chain(model, P, "well+treat", {"well+treat", "sick+treat"})
 
 
+SECOND = nested(name="second", changes=[nested(transition="die_sick", hazard_ratio=0.6)])
+
+
+def test_a_treatment_never_begins_in_a_state_that_stops_it():
+    # stop_on 'sick', a second line after it: a flare in the cycle that falls ill starts the
+    # first treatment in 'sick', which stops it at once, so the patient passes to the second
+    # line (never 'sick+treat'), as a patient treated in 'well' who falls ill does
+    model = phased(*flaring(), start_on="flare", stop_on="sick", then=[SECOND])
+    states = ["well", "well+treat", "sick", "sick+second", "dead"]
+    assert list(model.states) == states
+    ill = on_rate_scale(P_SICK, HR_SICK)
+    die = on_rate_scale(P_DIE_SICK, 0.6)
+    P = chain(states, {**untreated_well("well+treat", "sick+second"), **UNTREATED_SICK,
+                       ("well+treat", "well+treat"): 1 - ill - P_DIE_WELL,
+                       ("well+treat", "sick+second"): ill, ("well+treat", "dead"): P_DIE_WELL,
+                       ("sick+second", "sick+second"): 1 - die, ("sick+second", "dead"): die,
+                       ("dead", "dead"): 1.0})
+    assert_matches_chain(model, P, "well", {"well+treat", "sick+second"})
+
+
+@pytest.mark.parametrize("delay", [1.0, 2.0])
+def test_falling_ill_during_the_delay_passes_to_the_second_line_when_the_delay_ends(delay):
+    # whether the patient fell ill in the countdown's last cycle or before it, the first
+    # treatment would begin in 'sick', which stops it: the countdown ends in 'sick+second'
+    model = phased(*flaring(), start_on="flare", stop_on="sick", then=[SECOND],
+                   start_delay=delay)
+    assert "sick+treat" not in model.states and "sick+second" in model.states
+    ends = {model.states[int(j)] for i, j in enumerate(model.stay_to)
+            if model.states[i].startswith("sick+treat-wait1")}
+    assert ends == {"sick+second"}
+
+
 def test_a_move_that_starts_treatment_itself_is_not_moved_on_again_by_the_flare():
     # start_on both 'sick' and the flare: a cycle that enters 'sick' with a flare starts
     # treatment once (the flare changes nothing more); one phase, no 'sick' before it

@@ -309,3 +309,17 @@ def test_refusals_are_one_line_and_exit_2(text, field, phrase, tmp_path, capsys)
     assert main(["check", str(path)]) == 2
     lines = capsys.readouterr().err.splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"error: {field}"), lines
+
+
+def test_a_wait_that_ends_in_a_state_stopping_the_treatment_passes_to_the_next_one():
+    # start 1.5 after a flare, stop on entering 'progressed', a second line after it: a
+    # patient who progressed during the wait is never on the first treatment in
+    # 'progressed' (it would stop at once) but on the second line from its deadline
+    text = on_flare().replace('[[strategies.changes]]', 'stop_on = "progressed"\n\n'
+                              '[[strategies.then]]\nname = "second"\n\n[[strategies.changes]]', 1)
+    model = bind(parse_scenario(text), strategy="treat")
+    assert "progressed+treat" not in model.states
+    waiting = model.states.index("progressed+treat-wait")
+    assert model.states[int(model.delay_to[waiting])] == "progressed+second"
+    assert model.states[int(model.delay_to[model.states.index("stable+treat-wait")])] == \
+        "stable+treat"
