@@ -24,8 +24,8 @@ from microsim.results.comparison import compare
 from microsim.scenario import parse_scenario
 from microsim.simulation import simulate
 from support import (after, assert_mean_agrees, assert_refused, attribute, both_engines, event,
-                     horizon, move, nested, population, probability, scenario_text, start,
-                     state, strategy, table)
+                     horizon, move, nested, parameters, population, probability, scenario_text,
+                     start, state, strategy, table)
 
 P_SICK, P_DIE_WELL, P_DIE_SICK, Q = 0.15, 0.02, 0.2, 0.3  # the example of the format's page
 HR_SICK, HR_DIE = 0.5, 0.8
@@ -300,6 +300,17 @@ def test_an_impossible_flare_gives_the_untreated_histories_patient_for_patient()
             for name in ("treat", None)]
     for measure, values in sims[0].values.items():
         np.testing.assert_allclose(values, sims[1].values[measure], rtol=1e-12, atol=0)
+    assert any("start_on: no patient reaches flare" in w for w in scenario.warnings)
+
+
+def test_a_flare_whose_probability_is_a_parameter_fixed_at_0_is_warned_of():
+    blocks = flaring(q="p_flare") + [parameters(p_flare=0.0)]
+    warnings = parse_scenario(scenario_text(*blocks, COMPARATOR, treat(start_on="flare"))).warnings
+    assert any("start_on: no patient reaches flare" in w for w in warnings), warnings
+    drawn = blocks[:-1] + [parameters(p_flare=nested(value=0.0, distribution=nested(
+        family="beta", alpha=1, beta=50)))]  # 0 at the base case, drawn above it in a PSA
+    warnings = parse_scenario(scenario_text(*drawn, COMPARATOR, treat(start_on="flare"))).warnings
+    assert not any("no patient reaches" in w for w in warnings), warnings
 
 
 # -- what is still refused ---------------------------------------------------------------

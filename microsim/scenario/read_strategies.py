@@ -14,10 +14,10 @@ from contextlib import contextmanager
 from dataclasses import replace
 from typing import Callable, Iterable, Iterator
 
-from .checks import (check_age_known, check_effects, check_kind, check_lifetime, check_memory,
-                     check_names, check_row, check_states, level_listing, may_be_positive,
-                     not_a_level, occurrences, population_kinds, reachable_from_start,
-                     unknown_attribute, unknown_state)
+from .checks import (can_happen, check_age_known, check_effects, check_kind, check_lifetime,
+                     check_memory, check_names, check_row, check_states, level_listing,
+                     may_be_positive, not_a_level, occurrences, population_kinds,
+                     reachable_from_start, unknown_attribute, unknown_state)
 from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, VALUE_TABLE_AXES, Node,
                      Reading, Role, describe, did_you_mean, listing, show)
@@ -330,10 +330,13 @@ def check_phases(s: Scenario, reading: Reading, merged: Scenario, strategy: Stra
             check_changes(model, replace(strategy, changes=during.changes), path,
                           only_elsewhere(s, strategy, prefix, during))
     full = s.with_added(strategy, strategy.then)
-    reached = reachable | {e.name for e in full.events if set(e.states) & reachable}
+    reached = reachable | {e.name for e in full.events
+                           if any(can_happen(full, e.in_state(st)) for st in e.states
+                                  if st in reachable)}
     if strategy.start_on and not set(strategy.start_on) & reached:
-        return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)}, so the "
-                "strategy treats no one"]
+        return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)} (a state "
+                "no one enters, or an event whose probability or rate is 0), so the strategy "
+                "treats no one"]
     return []
 
 
