@@ -14,8 +14,8 @@ intervals; acceptability, EVPI and the split compare strategies, so it gets a no
 With `uncertainty.basis = "exact"` (for models with an exact counterpart) no draw is
 simulated: each draw is the mean of the patients' analytic expectations, on one set of
 patients (ids 0..n-1) shared by every draw, so the draws differ by their parameters alone
-and carry no inner Monte-Carlo noise (their within-draw variances are 0, the split has
-nothing to split). The base case is still simulated and validated by `microsim run`.
+and carry no inner Monte-Carlo noise (their within-draw variances are 0: the split has
+nothing to split, and the acceptability curve no noise to take out). The base case is still simulated and validated by `microsim run`.
 """
 from __future__ import annotations
 
@@ -218,7 +218,8 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES,
                          basis=basis, tables=tables)
     comparator = strategy_names(scenario)[0]
-    summary = summarise_draws(results, thresholds(scenario), comparator)
+    summary = summarise_draws(results, thresholds(scenario), comparator,
+                              inner_noise=spec.basis == "simulated")
     evpi, evppi = information_values(scenario, table, results, summary["evpi"],
                                      thresholds(scenario), comparator)
     variance = variance_split(scenario, results) if spec.basis == "simulated" else None
