@@ -215,6 +215,9 @@ def print_budget(scenario, tables: dict[str, pd.DataFrame]) -> None:
                                         if isinstance(impact.compared_with.iloc[0], str)
                                         else "no comparator (no strategies)"),
          impact[shown])
+    from microsim.decision.budget_impact import ROUNDOFF_IMPACT
+    if ((impact.impact == 0) & (impact.strategy != impact.compared_with)).any():
+        print(f"Budget impact: {ROUNDOFF_IMPACT}.")
 
 
 NOISE_REMOVED = ("the share of draws in which each strategy is best after each draw's "
