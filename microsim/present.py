@@ -36,6 +36,7 @@ def summary(result: MainResult) -> dict:
     if d is not None:
         out.update({
             "comparator": d.comparator, "threshold": d.threshold, "treated": d.treated,
+            "treated_by_treatment": result.population.treated_by,
             "currency": s.economics.currency,
             "strategies": records(d.strategies), "increments": records(d.increments),
             "incremental_analysis": records(d.analysis),
@@ -89,7 +90,11 @@ def print_summary(result: MainResult) -> None:
             if spec.comparator:
                 continue
             count = d.treated[spec.name]
-            print(f"{spec.name}: treats {count} of {size} patients ({count / size:.1%})"
+            each = result.population.treated_by.get(spec.name, {})
+            print(f"{spec.name}: {count} of {size} patients ({count / size:.1%}) spend time "
+                  f"on {'one of its treatments' if each else 'its treatment'}"
+                  + (" (" + ", ".join(f"{t}: {n}" for t, n in each.items()) + ")" if each
+                     else "")
                   + ("" if count else " — warning: nobody is treated; check its eligibility "
                                       "and uptake"))
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",

@@ -66,9 +66,11 @@ def decision(summary: dict, labels: Mapping[str, str]) -> list[list]:
     elif best == comparator:
         paragraphs[0].append(" No other strategy gains on it at this threshold.")
     paragraphs.append(frontier(summary, labels))
-    treated = [[f"{name(n, n)} treats ", key(summary, f"treated.{n}", whole), " of ",
-                key(summary, "patients", whole), " patients"] for n in summary["treated"]
-               if n != comparator]
+    sequences = summary.get("treated_by_treatment", {})
+    treated = [[f"{name(n, n)}: ", key(summary, f"treated.{n}", whole), " of ",
+                key(summary, "patients", whole), " patients spend time on "
+                + ("one of its treatments" if n in sequences else "its treatment")]
+               for n in summary["treated"] if n != comparator]
     if treated:
         paragraphs.append([part for i, parts in enumerate(treated)
                            for part in ([] if i == 0 else ["; "]) + parts] + ["."])
