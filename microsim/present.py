@@ -62,6 +62,7 @@ def summary(result: MainResult) -> dict:
                 out["psa"]["evppi_at_threshold"] = records(p.evppi[p.evppi.threshold == near])
             if "population_evpi" in p.evpi:
                 out["psa"]["population"] = population_words(s.economics)
+        out["psa"]["reused_draws"] = p.reused[0]
         out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
                                        "changed_draws": int(p.changed.draw.nunique()),
                                        "changes": records(p.changed),
@@ -130,6 +131,8 @@ def print_summary(result: MainResult) -> None:
              p.outcomes)
         if any(p.tables):
             print(held_fixed(p))
+        if p.reused[0]:
+            print(reused_words(p))
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -239,6 +242,16 @@ def population_words(e) -> str:
                                                       e.incidence_by_year(e.evpi_years)))
     return (f"{incidence} over {e.evpi_years} years, discounted at {e.evpi_discount:g} a year "
             "(EVPI x sum of I_t / (1 + r)^t, t = 1..T)")
+
+
+def reused_words(psa) -> str:
+    """One line: the draws an earlier run of the same PSA had finished, read back."""
+    found, where = psa.reused
+    n = len(psa.draws)
+    what = f"all {n} draws" if found == n else f"{found} of {n} draws"
+    return (f"PSA: {what} reused from {where}, finished by an earlier run with the same "
+            "scenario, seed, settings and parameter draws" + (
+                "" if found == n else f"; the other {n - found} evaluated now") + ".")
 
 
 def held_fixed(psa) -> str:
