@@ -36,6 +36,7 @@ def summary(result: MainResult) -> dict:
     if d is not None:
         out.update({
             "comparator": d.comparator, "threshold": d.threshold, "treated": d.treated,
+            "treated_by_treatment": result.population.treated_by,
             "currency": s.economics.currency,
             "strategies": records(d.strategies), "increments": records(d.increments),
             "incremental_analysis": records(d.analysis),
@@ -61,6 +62,7 @@ def summary(result: MainResult) -> dict:
                 out["psa"]["evppi_at_threshold"] = records(p.evppi[p.evppi.threshold == near])
             if "population_evpi" in p.evpi:
                 out["psa"]["population"] = population_words(s.economics)
+        out["psa"]["reused_draws"] = p.reused[0]
         out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
                                        "changed_draws": int(p.changed.draw.nunique()),
                                        "changes": records(p.changed),
@@ -89,7 +91,11 @@ def print_summary(result: MainResult) -> None:
             if spec.comparator:
                 continue
             count = d.treated[spec.name]
-            print(f"{spec.name}: treats {count} of {size} patients ({count / size:.1%})"
+            each = result.population.treated_by.get(spec.name, {})
+            print(f"{spec.name}: {count} of {size} patients ({count / size:.1%}) spend time "
+                  f"on {'one of its treatments' if each else 'its treatment'}"
+                  + (" (" + ", ".join(f"{t}: {n}" for t, n in each.items()) + ")" if each
+                     else "")
                   + ("" if count else " — warning: nobody is treated; check its eligibility "
                                       "and uptake"))
         table = d.strategies[d.strategies.measure.isin(["costs_discounted", "qalys_discounted",
@@ -125,6 +131,8 @@ def print_summary(result: MainResult) -> None:
              p.outcomes)
         if any(p.tables):
             print(held_fixed(p))
+        if p.reused[0]:
+            print(reused_words(p))
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
             return
@@ -215,6 +223,9 @@ def print_budget(scenario, tables: dict[str, pd.DataFrame]) -> None:
                                         if isinstance(impact.compared_with.iloc[0], str)
                                         else "no comparator (no strategies)"),
          impact[shown])
+    from microsim.decision.budget_impact import ROUNDOFF_IMPACT
+    if ((impact.impact == 0) & (impact.strategy != impact.compared_with)).any():
+        print(f"Budget impact: {ROUNDOFF_IMPACT}.")
 
 
 NOISE_REMOVED = ("the share of draws in which each strategy is best after each draw's "
@@ -231,6 +242,16 @@ def population_words(e) -> str:
                                                       e.incidence_by_year(e.evpi_years)))
     return (f"{incidence} over {e.evpi_years} years, discounted at {e.evpi_discount:g} a year "
             "(EVPI x sum of I_t / (1 + r)^t, t = 1..T)")
+
+
+def reused_words(psa) -> str:
+    """One line: the draws an earlier run of the same PSA had finished, read back."""
+    found, where = psa.reused
+    n = len(psa.draws)
+    what = f"all {n} draws" if found == n else f"{found} of {n} draws"
+    return (f"PSA: {what} reused from {where}, finished by an earlier run with the same "
+            "scenario, seed, settings and parameter draws" + (
+                "" if found == n else f"; the other {n - found} evaluated now") + ".")
 
 
 def held_fixed(psa) -> str:

@@ -8,7 +8,7 @@ history does not depend on the batch size or on which other patients are simulat
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -45,6 +45,9 @@ class Simulation:
     transitions: int  # records other than starts: transitions and events simulated
     # time in state, on treatment and occurrences per patient, when asked for (`simulate`)
     exposure: Exposure | None = None
+    # under treatment phases: per treatment (a sequence's first and `then` lines), whether
+    # each patient spent time on it (`treatment_copies`); empty without phases
+    treated_by: dict[str, np.ndarray] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -58,7 +61,8 @@ class Simulation:
         return Simulation(self.model, self.patients.iloc[part].reset_index(drop=True),
                           self.seed, self.mult.take(part), self.grid, self.states[part],
                           {m: v[part] for m, v in self.values.items()}, self.treated[part], -1,
-                          None if self.exposure is None else self.exposure.take(part))
+                          None if self.exposure is None else self.exposure.take(part),
+                          {t: on[part] for t, on in self.treated_by.items()})
 
 
 def report_grid(model: BoundModel, step: float | None = None) -> np.ndarray:
@@ -136,6 +140,17 @@ def phase_codes(model: BoundModel) -> np.ndarray | None:
     return np.where(model.absorbing, -1, model.treated_states.astype(np.int8))
 
 
+def treatment_copies(model: BoundModel) -> dict[str, np.ndarray]:
+    """Under treatment phases, each treatment's copies of the states (`<state>+<name>`,
+    the treated copies of treatment_phases): a mask of the states per treatment name."""
+    if model.treated_states is None:
+        return {}
+    names = [model.states[i].removeprefix(model.entered(i) + "+") if on else None
+             for i, on in enumerate(model.treated_states)]
+    return {name: np.array([n == name for n in names]) for name in dict.fromkeys(names)
+            if name is not None}
+
+
 def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size: int = 5000,
              grid: np.ndarray | None = None, histories: Path | HistoryFile | None = None,
              mult: Multipliers | None = None, engine: str = "auto",
@@ -163,6 +178,8 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     treated = np.zeros(len(ids), bool)
     on_a_treatment = (slice(None) if model.treated_states is None
                       else np.asarray(model.treated_states, bool))
+    copies = treatment_copies(model)
+    treated_by = {name: np.zeros(len(ids), bool) for name in copies}
     exposure = Exposure.empty(len(ids), model) if keep_exposure else None
     transitions = 0
     for lo in range(0, len(ids), batch_size):
@@ -178,6 +195,8 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         for m, v in outcome_values(model, mine).items():
             values[m][part] = v
         treated[part] = mine.on_treatment[:, on_a_treatment, 0].sum(axis=1) > 0
+        for name, states_of in copies.items():
+            treated_by[name][part] = mine.on_treatment[:, states_of, 0].sum(axis=1) > 0
         if exposure is not None:
             exposure.put(part, mine)
         transitions += int(np.sum(h.risk >= 0))
@@ -187,7 +206,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
                                     None if model.treatment is None else model.treatment.strategy,
                                     batch.window, phase_codes(model)))
     return Simulation(model, numbered(patients), seed, mult, grid, states, values, treated,
-                      transitions, exposure)
+                      transitions, exposure, treated_by)
 
 
 def numbered(patients: pd.DataFrame) -> pd.DataFrame:

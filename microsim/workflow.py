@@ -17,7 +17,7 @@ from microsim.binding import bind
 from microsim.capacity.run import refuse_options, run_service
 from microsim.cohort.summaries import cohort_trace
 from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_frame,
-                                          strategy_names, treated_count)
+                                          strategy_names, treated_count, treatment_counts)
 from microsim.progress import progress
 from microsim.patients.population import (DEFAULT_PATIENTS, PATIENT, scenario_patients,
                                           subgroup_attributes)
@@ -39,6 +39,8 @@ class PopulationRun:
     patients: pd.DataFrame  # patient and its subgroup attributes
     treated: dict[str, int]  # patients each strategy puts on treatment
     validations: dict[str, Comparison]
+    # a sequence's patients on each of its treatments, by strategy (`treatment_counts`)
+    treated_by: dict[str, dict[str, int]] = field(default_factory=dict)
 
 
 def run_population(scenario: Scenario, size: int | None, seed: int, engine: str = "auto",
@@ -58,6 +60,7 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
     sums = {label: ComparisonSums(model, comparison_grid(model, scenario.simulation.grid), limit)
             for label, model in models.items()}
     outcomes, people, treated = [], [], Counter()
+    treated_by: dict[str, Counter] = {}
     batch = scenario.simulation.batch_size
     with (HistoryFile(histories) if histories is not None else nullcontext()) as file, \
             progress(n * len(models), "Patients simulated", "patient") as bar:
@@ -69,11 +72,15 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
                 sums[label].add(sim)
                 outcomes.append(outcome_frame(label, sim))
                 treated[label] += treated_count(sim)
+                counts = treatment_counts(sim)
+                if counts:
+                    treated_by.setdefault(label, Counter()).update(counts)
                 bar.update(len(patients))
             people.append(patients[[PATIENT, *subgroup_attributes(patients)]])
     return PopulationRun(n, pd.concat(outcomes, ignore_index=True),
                          pd.concat(people, ignore_index=True), dict(treated),
-                         {label: s.finish() for label, s in sums.items()})
+                         {label: s.finish() for label, s in sums.items()},
+                         {label: dict(c) for label, c in treated_by.items()})
 
 
 def validate(path: Path, patients: int | None = None, seed: int | None = None,

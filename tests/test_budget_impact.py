@@ -18,10 +18,12 @@ import pandas as pd
 import pytest
 
 from microsim.cli import main
-from microsim.decision.budget_impact import EXACT, SIMULATED, budget_tables, cohort_weights
+from microsim.decision.budget_impact import (EXACT, SIMULATED, budget_tables, cohort_weights,
+                                             costs_by_year)
+from microsim.patients.population import patients_for
 from microsim.scenario import ScenarioError, parse_scenario
-from support import (Z, after, assert_refused, event, horizon, outcomes, probability, rate,
-                     scenario_text, section, start, state)
+from support import (Z, after, assert_refused, edited, event, horizon, nested, outcomes,
+                     probability, rate, scenario_text, section, start, state, strategy)
 from test_tornado import C_DRUG, C_WELL, HR, R, model_text
 
 PREVALENT, INCIDENCE, YEARS = 5000, [1000.0, 1100.0, 1250.0], 3
@@ -150,6 +152,60 @@ def test_a_model_in_months_counts_its_budget_years_of_twelve_months():
     per_patient = budget_tables(months)["budget_costs_by_year"]
     np.testing.assert_allclose(per_patient.cost_per_patient,
                                [in_year(k, R, C_WELL) for k in range(1, YEARS + 1)], rtol=1e-9)
+
+
+def delayed_model(rule: str = "separate", death="0.2") -> str:
+    """cycle_model's patients, undiscounted, with a treatment costing 500 a year that
+    starts two cycles after entry (start_delay)."""
+    return edited(cycle_model("trapezoidal"), ("discount_costs = 0.05", ""),
+                  ("horizon = 4", f'horizon = 4\nprobability_rule = "{rule}"'),
+                  ("probability = 0.2", f"probability = {death}")) + "\n" + "\n".join([
+        strategy("usual", comparator=True),
+        strategy("later", start_on="well", start_delay=2, changes=[nested(cost=500.0)])])
+
+
+def test_a_delayed_treatment_costs_from_its_start_by_hand():
+    # The treatment costs c from cycle point 2 on: by the trapezoidal rule (common
+    # practice) year 1 costs what usual care costs, year k >= 2 c ((1 - p)^(k - 1) [k > 2]
+    # + (1 - p)^k) / 2 more a patient (by hand); calendar year t holds one cohort of 100 in
+    # each of its years 1..t since entry.
+    p, c, people = 0.2, 500.0, 100.0
+    impact = budget_tables(parse_scenario(delayed_model()))["budget_impact"].set_index(
+        ["strategy", "year"])
+    later = impact.loc["later"]
+    assert later.impact.loc[1] == 0.0
+    by_hand = [people * c * ((1 - p) ** (k - 1) * (k > 2) + (1 - p) ** k) / 2 for k in (2, 3, 4)]
+    np.testing.assert_allclose(later.impact.loc[2:], np.cumsum(by_hand), rtol=1e-9)
+    assert (impact.loc["usual"].impact == 0.0).all()
+
+
+def test_an_impact_of_round_off_is_shown_as_0_and_said(tmp_path, capsys):
+    # Under the competing rule with a death probability by age, the delayed strategy's
+    # chain (countdown copies of each state) gives each patient's first year in the last
+    # bits of usual care's (1e-13 apart): the impact of that year is 0, by the rule of the
+    # per-strategy tables (results.comparison.within_roundoff), and the summary says so
+    text = scenario_text(
+        horizon(4, cycle=1, rule="competing"), start(age=60, well=0.7, sick=0.3),
+        state("well", cost=1000.0), state("sick", cost=3000.0), state("dead", absorbing=True),
+        probability("well", "sick", 0.15), probability("well", "dead", "death"),
+        probability("well", "well", "remainder"), probability("sick", "dead", 0.2),
+        probability("sick", "sick", "remainder"),
+        section("tables.death", by="age", starts=[0, 60, 62, 64], values=[0.01, 0.02, 0.03, 0.05]),
+        outcomes(correction="trapezoidal"),
+        section("economics", incidence=1200.0, prevalent_patients=9000, budget_years=2),
+        strategy("usual", comparator=True),
+        strategy("later", start_on=["well", "sick"], start_delay=2, changes=[nested(cost=500.0)]))
+    scenario = parse_scenario(text)
+    people = patients_for(scenario, 3, 1)
+    first_years = [costs_by_year(scenario, people, 1, name, 1)[0][:, 0] for name in ("usual", "later")]
+    np.testing.assert_allclose(*first_years, rtol=1e-14)
+    assert (first_years[0] != first_years[1]).all()  # the round-off this test is about
+    impact = budget_tables(scenario, patients=3)["budget_impact"].set_index(["strategy", "year"])
+    assert impact.loc[("later", 1), "impact"] == 0.0 and impact.loc[("later", 2), "impact"] > 0
+    path = tmp_path / "later.toml"
+    path.write_text(text)
+    assert main(["budget", str(path), "--patients", "3", "--out", str(tmp_path / "out")]) == 0
+    assert "Budget impact: an impact of 0 is one within round-off" in capsys.readouterr().out
 
 
 def test_a_budget_needs_years_in_whole_cycles():

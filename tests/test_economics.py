@@ -14,7 +14,7 @@ from scipy import stats
 from microsim.decision.economics import (
     acceptability_curve, best_strategy, between_estimate_variance, cost_effectiveness_plane,
     discounted_population, incremental_analysis, net_benefit, optimal_sample_split,
-    paired_difference, patients_needed, per_person_evpi, population_evpi, variance_components,
+    paired_difference, patients_needed, per_person_evpi, population_evpi, regret, variance_components,
 )
 
 
@@ -212,9 +212,61 @@ def test_evpi_is_never_negative_and_zero_when_one_strategy_always_wins():
     assert (per_person_evpi(psa, thresholds).evpi >= 0).all()
     assert (per_person_evpi(psa, thresholds).evpi > 0).any()
     two = psa[psa.strategy != "third"]
-    np.testing.assert_allclose(per_person_evpi(two, thresholds).evpi, 0.0, atol=1e-9)
+    assert (per_person_evpi(two, thresholds).evpi == 0.0).all()
     curve = acceptability_curve(two, thresholds)
     assert (curve[curve.strategy == "winner"].probability_best == 1.0).all()
+
+
+def test_evpi_is_exactly_zero_when_one_strategy_wins_every_draw_at_any_scale():
+    # Nothing to learn when the same strategy is best in every draw (Claxton 1999): EVPI is
+    # exactly 0, not the round-off of E[max] - max E over net benefits of 1e5 (the two means
+    # of the same numbers summed in other orders differ by 1e-11, of either sign), and the
+    # population EVPI is 0 too. Invented draws of the size of the demo's.
+    rng = np.random.default_rng(7)
+    n = 60
+    cost, effect = rng.normal(63000.0, 5000.0, n), rng.normal(10.3, 0.5, n)
+    psa = pd.concat([
+        pd.DataFrame({"draw": np.arange(n), "strategy": "usual", "costs_discounted": cost,
+                      "qalys_discounted": effect}),
+        pd.DataFrame({"draw": np.arange(n), "strategy": "costly",
+                      "costs_discounted": cost + rng.uniform(3000.0, 6000.0, n),
+                      "qalys_discounted": effect + rng.uniform(0.02, 0.08, n)})])
+    # costly's ICER is at least 3000 / 0.08 = 37,500 in every draw
+    thresholds = np.arange(10000.0, 30001.0, 1000.0)
+    evpi = per_person_evpi(psa, thresholds)
+    assert (evpi.evpi == 0.0).all()
+    assert (population_evpi(evpi, [1200] * 10, 0.035).population_evpi == 0.0).all()
+    assert (acceptability_curve(psa, thresholds).query("strategy == 'usual'").probability_best == 1).all()
+    # the same net benefits laid out strategy by strategy in memory: the difference of the
+    # two means is round-off there (which of them numpy sums pairwise depends on the
+    # layout), the mean regret still exactly 0
+    nmb = np.ascontiguousarray(thresholds[:, None, None] * np.stack(
+        [effect, effect + 0.05], axis=1)[None] - np.stack([cost, cost + 4000.0], axis=1)[None])
+    assert np.any(nmb.max(axis=2).mean(axis=1) != nmb.mean(axis=1).max(axis=1))
+    assert (regret(nmb).mean(axis=1) == 0.0).all()
+
+
+def test_evpi_is_the_mean_of_the_draws_best_less_the_mean_best_by_hand():
+    # Reference: EVPI = E[max_s NMB] - max_s E[NMB] (Claxton 1999; Briggs et al. 2006
+    # ch. 7), here with numpy draw by draw, at thresholds where no strategy wins every draw
+    rng = np.random.default_rng(11)
+    n = 500
+    psa = pd.concat([pd.DataFrame({"draw": np.arange(n), "strategy": name,
+                                   "costs_discounted": rng.normal(cost, 800.0, n),
+                                   "qalys_discounted": rng.normal(effect, 0.1, n)})
+                     for name, cost, effect in (("a", 2000.0, 1.0), ("b", 3000.0, 1.05),
+                                                ("c", 3500.0, 1.1))])
+    thresholds = [0.0, 20000.0, 50000.0]
+    found = per_person_evpi(psa, thresholds).set_index("threshold")
+    for lam in thresholds:
+        nmb = np.stack([lam * g.qalys_discounted.to_numpy() - g.costs_discounted.to_numpy()
+                        for _, g in psa.groupby("strategy")], axis=1)
+        perfect = np.mean([max(row) for row in nmb])
+        current = max(nmb[:, s].mean() for s in range(3))
+        assert perfect - current > 10.0  # well above round-off
+        assert found.loc[lam, "evpi"] == pytest.approx(perfect - current, rel=1e-10)
+        assert found.loc[lam, "nmb_perfect_information"] == pytest.approx(perfect, rel=1e-12)
+        assert found.loc[lam, "nmb_current_information"] == pytest.approx(current, rel=1e-12)
 
 
 def test_population_evpi_uses_the_annuity_of_the_discounted_population():

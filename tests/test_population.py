@@ -8,9 +8,12 @@ import pytest
 from scipy import stats
 
 from microsim.patients.population import describe_population, draw_population
+from microsim.scenario import parse_scenario
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.spec import AttributeSpec, DerivedSpec, PopulationSpec
-from support import Z
+from microsim.workflow import run_population
+from support import (Z, assert_refused, horizon, rate, scenario_text, section, start, state,
+                     strategy)
 
 SEED = 7
 N = 20_000
@@ -327,3 +330,22 @@ def test_describe_population_agrees_with_pandas_and_scipy(correlated):
         stats.pearsonr(frame["a"], frame["e"]).statistic)
     assert pairs.loc[("b", "d"), "spearman"] == pytest.approx(
         stats.spearmanr(frame["b"], frame["d"]).statistic)
+
+
+def test_a_population_of_patients_alone_is_that_many_identical_patients():
+    # [population] with only `patients`: identical patients, the very ones (ids, draws,
+    # outcomes) of the same scenario without the section run with --patients; a
+    # correlation or band with no attribute to act on is refused
+    blocks = (horizon(5), start(age=60, well=1.0), state("well", cost=100.0, utility=1),
+              state("dead", absorbing=True), rate("well", "dead", 0.1),
+              strategy("usual", comparator=True), strategy("more", changes=[{"cost": 5.0}]))
+    text = scenario_text(*blocks, section("population", patients=120))
+    scenario = parse_scenario(text)
+    assert scenario.population == PopulationSpec(size=120)
+    alone = run_population(scenario, None, 4)
+    without = run_population(parse_scenario(scenario_text(*blocks)), 120, 4)
+    assert alone.size == 120
+    pd.testing.assert_frame_equal(alone.outcomes, without.outcomes)
+    pd.testing.assert_frame_equal(alone.patients, without.patients)
+    assert_refused(text + '\n[[population.derived]]\nname = "b"\nfrom = "age"\nedges = [0]\n'
+                   'labels = ["all"]\n', "population.derived", "needs attributes")

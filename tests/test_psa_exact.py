@@ -9,6 +9,7 @@ each within |z| < 4 of the exact value by its own within-draw standard error.
 """
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import replace
 
@@ -146,3 +147,31 @@ def test_the_exact_basis_takes_its_shared_patients_from_patients_per_draw(tmp_pa
     for row in rows[rows.strategy == "usual"].itertuples():
         years = share * life(R * DIABETES_HR) + (1 - share) * life(R)
         assert row.life_years == pytest.approx(years, rel=1e-9)
+
+
+def test_the_exact_basis_has_no_inner_noise_to_take_out(tmp_path, capsys):
+    # docs/scenario-format.md: on the exact basis the draws carry no inner noise, so the
+    # acceptability curve without it is left out of the printed summary, the written
+    # table and summary.json alike (the report already says it is not drawn)
+    path = tmp_path / "drug.toml"
+    path.write_text(model_text())
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--psa", "--draws", "4", "--patients", "50",
+                 "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "PSA (4 draws): probability each strategy is best" in printed
+    assert "noise_removed" not in printed and "noise_scale" not in printed
+    folder = out / "drug" / "latest"
+    table = pd.read_parquet(folder / "acceptability.parquet")
+    assert {"probability_best", "expected_nmb"} <= set(table.columns)
+    assert not {"probability_best_noise_removed", "noise_scale"} & set(table.columns)
+    psa = json.loads((folder / "summary.json").read_text())["psa"]
+    assert "noise_removed" not in psa
+    assert not any("noise" in key for row in psa["acceptability_at_threshold"] for key in row)
+    # the simulated basis of the same model keeps them
+    path.write_text(model_text(basis="simulated"))
+    assert main(["run", str(path), "--psa", "--draws", "4", "--patients", "50",
+                 "--out", str(out)]) == 0
+    assert "probability_best_noise_removed: " in capsys.readouterr().out
+    table = pd.read_parquet(out / "drug" / "latest" / "acceptability.parquet")
+    assert {"probability_best_noise_removed", "noise_scale"} <= set(table.columns)

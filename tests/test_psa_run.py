@@ -125,6 +125,25 @@ def test_a_psa_with_another_seed_gets_its_own_folder_and_leaves_the_first_as_it_
     pd.testing.assert_frame_equal(run(tmp_path, seed=1).results, first.results)  # reused
 
 
+def test_a_run_that_reuses_finished_draws_says_so(tmp_path, capsys):
+    path = tmp_path / "plain.toml"
+    path.write_text(MODEL)
+    out = tmp_path / "out"
+    options = ["--patients", "20", "--psa", "--patients-per-draw", "10", "--out", str(out)]
+    assert main(["run", str(path), "--draws", "2", *options]) == 0
+    assert "reused" not in capsys.readouterr().out
+    (folder,) = list((out / "plain" / "psa").iterdir())
+    assert main(["run", str(path), "--draws", "2", *options]) == 0
+    assert (f"PSA: all 2 draws reused from {folder}, finished by an earlier run with the "
+            "same scenario, seed, settings and parameter draws.") in capsys.readouterr().out
+    summary = json.loads((out / "plain" / "latest" / "summary.json").read_text())
+    assert summary["psa"]["reused_draws"] == 2
+    # one draw left over from an interrupted run: it is read back, the other evaluated
+    (folder / "draws" / "draw-000001.parquet").unlink()
+    assert main(["run", str(path), "--draws", "2", *options]) == 0
+    assert "PSA: 1 of 2 draws reused from" in capsys.readouterr().out
+
+
 # ------------------------------------------------------------- nothing half-written
 
 @pytest.mark.parametrize("failure", [ScenarioError("parameters.r_death", "refused (test)"),

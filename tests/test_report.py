@@ -28,7 +28,7 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import main
 from microsim.report.builder import build_report
-from microsim.report.words import lookup, psa_tables
+from microsim.report.words import lookup, psa_tables, who_gains
 from microsim.scenario import ScenarioError
 from support import horizon, rate, scenario_text, start, state
 
@@ -161,6 +161,29 @@ def test_the_psa_tables_sentence_ties_every_name_to_summary_json():
     # no table read, or a summary written before it said: no sentence
     assert psa_tables({"psa": {"tables_varied": [], "tables_held_fixed": []}}) is None
     assert psa_tables({"psa": {"draws": 8}}) is None and psa_tables({}) is None
+
+
+def subgroup_rows(strategy: str, *verdicts: str) -> list[dict]:
+    """Rows of summary.json's subgroups, the verdicts as decision.strategies.verdict words."""
+    return [{"strategy": strategy, "attribute": "age_band", "level": f"band {i}",
+             "verdict": v} for i, v in enumerate(verdicts)]
+
+
+def test_who_gains_says_uncertain_where_no_subgroup_is_clear():
+    uncertain, pays = "uncertain (95% CI spans 0)", "pays (95% CI above 0)"
+    same = "no difference (the strategy changes nothing here)"
+    summary = {"subgroups": subgroup_rows("a", uncertain, uncertain)
+               + subgroup_rows("b", same, uncertain) + subgroup_rows("c", same, same)
+               + subgroup_rows("d", pays, uncertain)}
+    (text,) = who_gains(summary, {"a": "A"})
+    assert "A is uncertain in every subgroup (no 95% CI of incremental net monetary benefit " \
+           "lies above or below 0)." in text
+    assert "b is uncertain in every subgroup it changes (no 95% CI of incremental net " \
+           "monetary benefit lies above or below 0); it changes nothing for age_band = band 0." in text
+    assert "c changes nothing in any subgroup." in text
+    assert ("d pays (95% CI of incremental net monetary benefit above 0) for age_band = band 0, "
+            "and does not pay (95% CI below 0) for no subgroup.") in text
+    assert text.count("for no subgroup") == 1  # never "pays for no subgroup, and does not ..."
 
 
 def test_the_page_is_self_contained_and_opens_with_the_question_and_the_caution(folder):

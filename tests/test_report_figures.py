@@ -12,11 +12,12 @@ import numpy as np
 import pandas as pd
 import pytest
 from matplotlib.collections import PathCollection, PolyCollection
+from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.container import BarContainer, ErrorbarContainer
 
 from microsim.report import figures
 from microsim.report.structure import layered_positions, structure_figure, structure_graph
-from microsim.report.style import Z95, rendered
+from microsim.report.style import Z95, house_style, rendered
 from microsim.report.tables import interval, normal_interval, number, percent, whole
 from microsim.scenario import parse_scenario
 from support import (event, effect, horizon, move, nested, population, attribute, rate,
@@ -371,3 +372,22 @@ def test_the_budget_has_bars_per_year_and_strategy_and_the_impact_below():
     impacts = [c for c in impact.containers if isinstance(c, BarContainer)]
     assert len(impacts) == 2 and impacts[1][1].get_height() == pytest.approx(4.0)
     assert_written(figure)
+
+
+def test_the_budget_s_axis_labels_fit_in_the_figure_with_a_long_currency():
+    # the demo's currency ran the top label past the figure's edge; matplotlib's own
+    # extents of the drawn labels must lie within the figure's
+    budget = pd.DataFrame({"year": [1, 2] * 2, "strategy": ["usual"] * 2 + ["drug"] * 2,
+                           "new_patients": 100.0, "patients_entered": 1100.0,
+                           "cost": [2.0e7, 2.5e7, 3.0e7, 3.5e7], "se": np.nan,
+                           "impact": [0.0, 0.0, 1.0e7, 1.0e7], "impact_se": np.nan,
+                           "compared_with": "usual", "basis": "exact"})
+    figure = figures.budget_figure(budget, LABELS, "Lakemoor dollars of the long name")
+    with house_style():  # drawn as `rendered` draws it: constrained layout, house fonts
+        canvas = FigureCanvasAgg(figure)
+        canvas.draw()
+    box, renderer = figure.bbox, canvas.get_renderer()
+    for axes in figure.axes:
+        label = axes.yaxis.label.get_window_extent(renderer)
+        assert box.x0 <= label.x0 and label.x1 <= box.x1
+        assert box.y0 <= label.y0 and label.y1 <= box.y1, axes.get_ylabel()

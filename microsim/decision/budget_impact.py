@@ -26,6 +26,10 @@ Cohorts enter at the start of each calendar year, the prevalent patients with th
 (a simplification: they are costed as if they started the model then). The cost in
 calendar year t is then P c_t + sum_{j=1..t} I_j c_{t-j+1}: a convolution of the cohorts
 with the cost by year since entry.
+
+An impact (and its SE) within round-off of the year's cost is shown as 0
+(`without_roundoff`), so a year in which a strategy costs what the comparator costs reads
+0, not 1e-10.
 """
 from __future__ import annotations
 
@@ -36,11 +40,14 @@ import numpy as np
 import pandas as pd
 
 from microsim.decision.strategies import AS_WRITTEN, strategy_names
+from microsim.results.comparison import ROUNDOFF, within_roundoff
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import TOLERANCE
 from microsim.scenario.spec import Scenario
 
 EXACT = "exact: the patients' analytic expectations"
+ROUNDOFF_IMPACT = (f"an impact of 0 is one within round-off of the year's cost ({ROUNDOFF:g} "
+                   "relative): the strategy costs what the comparator costs that year")
 SIMULATED = "simulated with common random numbers, with Monte-Carlo SE"
 
 
@@ -104,6 +111,16 @@ def mean_se(values: np.ndarray, exact: bool) -> tuple[np.ndarray, np.ndarray]:
     return values.mean(axis=0), se
 
 
+def without_roundoff(impact: np.ndarray, se: np.ndarray,
+                     cost: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The impact and its SE with what round-off alone explains set to 0, by the
+    comparison's rule (`comparison.within_roundoff` relative to the year's cost): a strategy
+    that costs what the comparator costs in a year, but through another chain (the copies
+    of a treatment that has not started yet), differs from it by 1e-13 a patient."""
+    return (np.where(within_roundoff(impact, cost), 0.0, impact),
+            np.where(within_roundoff(se, cost), 0.0, se))
+
+
 def budget_tables(scenario: Scenario, patients: int | None = None,
                   seed: int | None = None) -> dict[str, pd.DataFrame]:
     """budget_costs_by_year (per patient and year since entry) and budget_impact (per
@@ -134,7 +151,8 @@ def budget_tables(scenario: Scenario, patients: int | None = None,
         total, total_se = mean_se(costs @ weights.T, exact)
         base, both_exact = found[comparator] if comparator is not None else (None, exact)
         if base is not None:
-            impact, impact_se = mean_se((costs - base) @ weights.T, exact and both_exact)
+            impact, impact_se = without_roundoff(
+                *mean_se((costs - base) @ weights.T, exact and both_exact), total)
         else:
             impact, impact_se = np.full(years, math.nan), np.full(years, math.nan)
         calendar.append(pd.DataFrame({

@@ -247,19 +247,30 @@ def acceptability_without_noise(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
         "probability_best": probability.ravel(), "noise_scale": scales.ravel()})
 
 
+def regret(nmb: np.ndarray) -> np.ndarray:
+    """Per threshold and draw, max_s NMB minus the NMB of the strategy best on average:
+    what perfect information would have gained in that draw. `nmb` is (thresholds, draws,
+    strategies); the mean over draws is EVPI = E[max_s NMB] - max_s E[NMB], written so that
+    a draw whose best is the strategy best on average adds exactly 0 (the difference of the
+    two means would leave their round-off: 1e-11 where one strategy wins every draw)."""
+    best = nmb.mean(axis=1).argmax(axis=1)
+    return nmb.max(axis=2) - np.take_along_axis(nmb, best[:, None, None], axis=2)[:, :, 0]
+
+
 def per_person_evpi(psa: pd.DataFrame, thresholds) -> pd.DataFrame:
-    """Per-person expected value of perfect information, EVPI = E[max_s NMB] - max_s E[NMB].
+    """Per-person expected value of perfect information, EVPI = E[max_s NMB] - max_s E[NMB],
+    as the mean `regret` of the draws: never negative, and exactly 0 when the strategy best
+    on average is best in every draw.
 
     Claxton (1999), "The irrelevance of inference: a decision-making approach to the
     stochastic evaluation of health care technologies"; Briggs, Claxton & Sculpher (2006),
-    ch. 7. Estimated from the PSA draws, so it is never negative.
+    ch. 7. Estimated from the PSA draws.
     """
     _, lam, nmb = _psa_nmb(psa, thresholds)
-    perfect = nmb.max(axis=2).mean(axis=1)
-    current = nmb.mean(axis=1).max(axis=1)
     return pd.DataFrame({
-        "threshold": lam, "nmb_current_information": current,
-        "nmb_perfect_information": perfect, "evpi": perfect - current,
+        "threshold": lam, "nmb_current_information": nmb.mean(axis=1).max(axis=1),
+        "nmb_perfect_information": nmb.max(axis=2).mean(axis=1),
+        "evpi": regret(nmb).mean(axis=1),
     })
 
 

@@ -192,6 +192,14 @@ def treated_count(sim: Simulation) -> int:
     return int(sim.treated.sum())
 
 
+def treatment_counts(sim: Simulation) -> dict[str, int]:
+    """Under a sequence of treatments (`then`), how many patients spent time on each, by
+    treatment name (first line first); empty for a single treatment or none."""
+    if len(sim.treated_by) < 2:
+        return {}
+    return {name: int(on.sum()) for name, on in sim.treated_by.items()}
+
+
 @dataclass(frozen=True)
 class Decision:
     comparator: str

@@ -323,7 +323,9 @@ def budget_figure(budget: pd.DataFrame, strategies: Labels, currency: str) -> Fi
             axes[0].bar(years + (k - (len(names) - 1) / 2) * width, rows.cost / 1e6, width,
                         color=style["color"], edgecolor=INK, linewidth=0.5,
                         hatch=hatches[k % len(hatches)], label=wrapped(strategies.get(name, name), 40))
-        axes[0].set_ylabel(f"cost to the payer\n(millions of {currency}, undiscounted)")
+        # labels wrapped to a panel's height: a long currency name ran past the figure
+        axes[0].set_ylabel(wrapped(f"cost to the payer (millions of {currency}, "
+                                   "undiscounted)", 30))
         axes[0].set_xticks(years)
         axes[0].set_xlabel("calendar year")
         if others:
@@ -338,8 +340,8 @@ def budget_figure(budget: pd.DataFrame, strategies: Labels, currency: str) -> Fi
                             ecolor=INK)
             against = budget.compared_with.dropna().iloc[0]
             axes[1].axhline(0, color=INK, linewidth=0.8)
-            axes[1].set_ylabel(f"budget impact against\n{wrapped(strategies.get(against, against), 30)}\n"
-                               f"(millions of {currency})")
+            axes[1].set_ylabel(wrapped(f"budget impact against {strategies.get(against, against)} "
+                                       f"(millions of {currency})", 30))
             axes[1].set_xticks(years)
             axes[1].set_xlabel("calendar year")
         figure.legend(handles=axes[0].get_legend_handles_labels()[0], loc="outside lower center",

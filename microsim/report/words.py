@@ -5,6 +5,7 @@ together with its place in summary.json, so the page can be checked against it.
 """
 from __future__ import annotations
 
+from collections import Counter
 from dataclasses import dataclass
 from typing import Callable, Mapping
 
@@ -66,9 +67,11 @@ def decision(summary: dict, labels: Mapping[str, str]) -> list[list]:
     elif best == comparator:
         paragraphs[0].append(" No other strategy gains on it at this threshold.")
     paragraphs.append(frontier(summary, labels))
-    treated = [[f"{name(n, n)} treats ", key(summary, f"treated.{n}", whole), " of ",
-                key(summary, "patients", whole), " patients"] for n in summary["treated"]
-               if n != comparator]
+    sequences = summary.get("treated_by_treatment", {})
+    treated = [[f"{name(n, n)}: ", key(summary, f"treated.{n}", whole), " of ",
+                key(summary, "patients", whole), " patients spend time on "
+                + ("one of its treatments" if n in sequences else "its treatment")]
+               for n in summary["treated"] if n != comparator]
     if treated:
         paragraphs.append([part for i, parts in enumerate(treated)
                            for part in ([] if i == 0 else ["; "]) + parts] + ["."])
@@ -104,20 +107,32 @@ def frontier(summary: dict, labels: Mapping[str, str]) -> list:
 
 
 def who_gains(summary: dict, labels: Mapping[str, str]) -> list:
-    """Per strategy, the subgroups where it clearly pays and where it clearly does not."""
+    """Per strategy, the subgroups where it clearly pays and where it clearly does not; a
+    strategy with neither is uncertain in every subgroup (but those it changes nothing in)."""
     sentences = []
     by_strategy: dict[str, dict[str, list[str]]] = {}
     for row in summary["subgroups"]:
-        kinds = by_strategy.setdefault(row["strategy"], {"pays": [], "does not pay": []})
+        kinds = by_strategy.setdefault(row["strategy"], {"pays": [], "does not pay": [],
+                                                         "no difference": []})
         kind = next((k for k in kinds if row["verdict"].startswith(k)), None)
         if kind:
             kinds[kind].append(f"{row['attribute']} = {row['level']}")
+    counted = Counter(row["strategy"] for row in summary["subgroups"])
     for strategy, kinds in by_strategy.items():
-        pays = listed(kinds["pays"]) or "no subgroup"
-        loses = listed(kinds["does not pay"]) or "no subgroup"
-        sentences.append(f"{labels.get(strategy, strategy)} pays (95% CI of incremental net "
-                         f"monetary benefit above 0) for {pays}, and does not pay (95% CI "
-                         f"below 0) for {loses}.")
+        label, same = labels.get(strategy, strategy), listed(kinds["no difference"])
+        if kinds["pays"] or kinds["does not pay"]:
+            pays = listed(kinds["pays"]) or "no subgroup"
+            loses = listed(kinds["does not pay"]) or "no subgroup"
+            sentences.append(f"{label} pays (95% CI of incremental net monetary benefit "
+                             f"above 0) for {pays}, and does not pay (95% CI below 0) for "
+                             f"{loses}.")
+        elif len(kinds["no difference"]) < counted[strategy]:
+            sentences.append(f"{label} is uncertain in every subgroup"
+                             + (" it changes" if same else "") + " (no 95% CI of incremental "
+                             "net monetary benefit lies above or below 0)"
+                             + (f"; it changes nothing for {same}." if same else "."))
+        else:
+            sentences.append(f"{label} changes nothing in any subgroup.")
     if not sentences:
         return ["The patients carry no attribute to form subgroups by."]
     return ["Who gains: " + " ".join(sentences)]

@@ -51,9 +51,12 @@ def read_population(node: Node | None, base: Path, fixed_size: bool = True
                                                    set(columns)))
     if node.has("weights"):
         node.fail("weights", "is only used with file")
-    if not node.has("attributes"):
-        node.fail(None, "needs attributes ([[population.attributes]]) or file = \"...\" "
-                        "(a CSV or Parquet file of patients)")
+    if not node.has("attributes"):  # identical patients, as many as `patients` says
+        for key in ("correlation", "derived"):
+            if node.has(key):
+                node.fail(key, "needs attributes ([[population.attributes]]) or file = "
+                               "\"...\" (a CSV or Parquet file of patients) to act on")
+        return PopulationSpec(size=size)
     attributes = read_attributes(node.nodes("attributes", None, required=True))
     continuous = {a.name for a in attributes if a.continuous}
     names, matrix = read_correlation(node.node("correlation", CORRELATION_KEYS, None),

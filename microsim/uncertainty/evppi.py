@@ -56,8 +56,7 @@ def expected_maximum(gain: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """EVPPI and its draws' part of the variance from fitted incremental net benefits
     (L thresholds, D draws, K - 1 strategies), the comparator's 0 added."""
     nb = np.concatenate([np.zeros(gain.shape[:2] + (1,)), gain], axis=2)
-    best = nb.mean(axis=1).argmax(axis=1)  # (L,) the strategy best on average
-    regret = nb.max(axis=2) - np.take_along_axis(nb, best[:, None, None], axis=2)[:, :, 0]
+    regret = economics.regret(nb)
     return regret.mean(axis=1), regret.var(axis=1, ddof=1) / nb.shape[1]
 
 

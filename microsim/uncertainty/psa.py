@@ -14,8 +14,8 @@ intervals; acceptability, EVPI and the split compare strategies, so it gets a no
 With `uncertainty.basis = "exact"` (for models with an exact counterpart) no draw is
 simulated: each draw is the mean of the patients' analytic expectations, on one set of
 patients (ids 0..n-1) shared by every draw, so the draws differ by their parameters alone
-and carry no inner Monte-Carlo noise (their within-draw variances are 0, the split has
-nothing to split). The base case is still simulated and validated by `microsim run`.
+and carry no inner Monte-Carlo noise (their within-draw variances are 0: the split has
+nothing to split, and the acceptability curve no noise to take out). The base case is still simulated and validated by `microsim run`.
 """
 from __future__ import annotations
 
@@ -40,7 +40,7 @@ from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
 from microsim.uncertainty import run_draws, summarise_draws
 from microsim.uncertainty.draw_checks import check_draws
-from microsim.uncertainty.folder import draws_hash
+from microsim.uncertainty.folder import draw_path, draws_hash
 from microsim.uncertainty.draws import ParameterSampler
 from microsim.uncertainty.one_way import patient_values
 from microsim.uncertainty.summaries import draw_intervals
@@ -125,6 +125,15 @@ class PsaResult:
     basis: str = ""  # how each draw was evaluated, in words (BASES)
     tables: tuple[tuple[str, ...], tuple[str, ...]] = ((), ())  # the tables the model
     # reads: (varied, held fixed) by the draws
+    reused: tuple[int, Path | None] = (0, None)  # draws an earlier run had finished, and
+    # the folder they are read from (`reused_draws`)
+
+
+def reused_draws(where: Path, draws: pd.DataFrame) -> tuple[int, Path | None]:
+    """How many of the draws an earlier run of the same PSA finished in its folder `where`
+    (they are read back, not evaluated again), and the folder; (0, None) for none."""
+    found = sum(draw_path(where, int(d)).exists() for d in draws.draw)
+    return (found, where) if found else (0, None)
 
 
 def thresholds(scenario: Scenario) -> np.ndarray:
@@ -209,22 +218,25 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
                    "seed": scenario.simulation.seed, "draws": n_draws, "patients_per_draw": n,
                    "microsim": __version__, "draw_columns": DRAW_COLUMNS, "basis": spec.basis}
-    results = run_draws(draw_evaluation(scenario, n), table, own_folder(run_dir, fingerprint, table),
+    where = own_folder(run_dir, fingerprint, table)
+    reused = reused_draws(where, table)
+    results = run_draws(draw_evaluation(scenario, n), table, where,
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
     basis, tables = BASES[spec.basis], psa_tables(scenario)
     if not scenario.strategies:
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES,
-                         basis=basis, tables=tables)
+                         basis=basis, tables=tables, reused=reused)
     comparator = strategy_names(scenario)[0]
-    summary = summarise_draws(results, thresholds(scenario), comparator)
+    summary = summarise_draws(results, thresholds(scenario), comparator,
+                              inner_noise=spec.basis == "simulated")
     evpi, evppi = information_values(scenario, table, results, summary["evpi"],
                                      thresholds(scenario), comparator)
     variance = variance_split(scenario, results) if spec.basis == "simulated" else None
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
                      evpi, summary["plane"], variance, evppi=evppi, basis=basis,
-                     tables=tables)
+                     tables=tables, reused=reused)
 
 
 def own_folder(root: Path, fingerprint: dict, draws: pd.DataFrame) -> Path:

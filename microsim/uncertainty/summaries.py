@@ -10,16 +10,18 @@ from ..decision import economics
 from ..scenario.errors import ScenarioError
 
 
-def summarise_draws(results: pd.DataFrame, thresholds, comparator: str) -> dict[str, pd.DataFrame]:
+def summarise_draws(results: pd.DataFrame, thresholds, comparator: str,
+                    inner_noise: bool = True) -> dict[str, pd.DataFrame]:
     """Acceptability curves (also with the inner patients' noise taken out, where the
-    draws carry their within-draw variances), per-person EVPI and the cost-effectiveness
-    plane (vs comparator)."""
+    draws have inner noise and carry their within-draw variances; the exact basis has none,
+    `inner_noise` False, and gets no such columns), per-person EVPI and the
+    cost-effectiveness plane (vs comparator)."""
     strategies = [str(s) for s in pd.unique(results["strategy"])]
     if comparator not in strategies:
         raise ScenarioError("comparator", f"{comparator!r} is not a strategy; choose one of "
                                           f"{', '.join(strategies)}")
     acceptability = economics.acceptability_curve(results, thresholds)
-    if set(economics.WITHIN) <= set(results.columns):
+    if inner_noise and set(economics.WITHIN) <= set(results.columns):
         without = economics.acceptability_without_noise(results, thresholds)
         acceptability = acceptability.merge(
             without.rename(columns={"probability_best": "probability_best_noise_removed"}),
