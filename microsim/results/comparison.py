@@ -414,7 +414,8 @@ def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str
     rows = pd.concat([shares.assign(what=shares.state + " at " + shares.time.map("{:g}".format),
                                     kind="share"),
                       outcomes.assign(what=outcomes.measure, kind="mean")], ignore_index=True)
-    worst = rows.loc[rows.p_value.idxmin()]
+    judged = rows[~rows.test.isin(NOT_TESTED)]  # every share is
+    worst = judged.loc[judged.p_value.idxmin()]
     exact = int((rows.test == EXACT).sum())
     basis = (f"Bonferroni over {len(rows)} comparisons at family-wise level {FAMILY_ALPHA}: "
              f"each p-value must be at least {level:.2g}")
