@@ -7,9 +7,16 @@ a sum of independent Bernoulli trials (Poisson-binomial) with standard error
 sqrt(sum_b p_b (1 - p_b)) exactly. Its tail probability is taken from the binomial with the
 same mean, which has the heavier tails (Hoeffding 1956, "On the distribution of the number
 of successes in independent trials", Ann. Math. Statist. 27:713-721), so the test stays
-valid for rare states where a normal approximation would raise false alarms. Outcome means
-use the central limit theorem with the standard error of the patients' deviations from
-their own expected values.
+valid for rare states where a normal approximation would raise false alarms. An outcome
+mean is tested by the patients' deviations from their own expected values: its standard
+error is estimated from those n deviations, so its p-value is Student's t with n - 1 degrees
+of freedom (Student 1908, "The probable error of a mean", Biometrika 6:1-25), not the
+normal, whose tails are far too thin for an estimated SE from a few patients. Skewed,
+bounded outcomes (life years, costs) need the central limit theorem on top, and its error
+shrinks only as 1 / sqrt(n) (Berry 1941; Esseen 1942), so with fewer than FEWEST_FOR_MEANS
+patients (the common-practice n >= 30) an outcome is "not tested" rather than tested on
+a collapsed standard error. The average patient's paired test (where it is simulated)
+follows the same rule.
 
 A comparison with no Monte-Carlo error at all (every patient certain to be in a state, or
 an outcome equal for every patient) is not a statistical question: it agrees when the two
@@ -34,6 +41,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 from scipy.stats import binom, norm
+from scipy.stats import t as student
 
 from microsim.binding import BoundModel
 from microsim.cohort.analytic import CohortResult, analytic
@@ -48,7 +56,12 @@ ROUNDOFF = 1e-7  # relative difference that numerical error alone can explain (f
 # point in the engines, and the forward equations' rtol of 1e-10 over long horizons)
 MONTE_CARLO = "Monte-Carlo"
 EXACT = f"no Monte-Carlo error: equal within {ROUNDOFF:g} (relative)"
-UNSEEN = "not tested: the patients did not vary, though the model does (too few to estimate the Monte-Carlo error)"
+FEWEST_FOR_MEANS = 30  # patients below which a mean is not tested (common practice: n >= 30)
+UNSEEN = ("not tested: the patients did not vary, though the model does, so their Monte-Carlo "
+          "error is unknown")
+FEW = (f"not tested: fewer than {FEWEST_FOR_MEANS} patients, too few for the central limit "
+       "theorem")
+NOT_TESTED = (UNSEEN, FEW)
 SHARE_COLUMNS = ["time", "state", "simulated", "analytic", "se", "z", "p_value", "test"]
 
 
@@ -110,13 +123,20 @@ def share_p_values(simulated: np.ndarray, analytic_share: np.ndarray, n: int) ->
     return np.minimum(1.0, 2.0 * tails)
 
 
-def mean_p_values(difference, se, scale) -> tuple[np.ndarray, np.ndarray]:
-    """Two-sided normal tail probabilities of differences of means, and which rows had no
+def mean_p_values(difference, se, scale, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Two-sided tail probabilities of differences of means whose SE is estimated from n
+    patients (Student's t, n - 1 degrees of freedom: Student 1908), and which rows had no
     Monte-Carlo error (p = 1 within numerical error, else 0)."""
     certain, equal = without_error(difference, se, scale)
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = 2.0 * norm.sf(np.abs(np.asarray(difference) / se))
+        p = 2.0 * student.sf(np.abs(np.asarray(difference) / se), max(n - 1, 1))
     return np.where(certain, equal.astype(float), p), certain
+
+
+def critical_t(n_tests: int, n: int, alpha: float = FAMILY_ALPHA) -> float:
+    """The Bonferroni bound for n_tests two-sided t tests of means estimated from n
+    patients, at family-wise level alpha."""
+    return float(student.isf(alpha / (2 * max(n_tests, 1)), max(n - 1, 1)))
 
 
 # --------------------------------------------------------------------------- the sums
@@ -296,7 +316,7 @@ class ComparisonSums:
         critical = critical_z(tests)
         counterpart = counterpart_name(result)
         if result.exact:
-            agrees, verdict = share_verdict(shares, outcomes, counterpart, level, critical)
+            agrees, verdict = share_verdict(shares, outcomes, counterpart, level, self.shares.n)
         else:
             agrees = None
             verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
@@ -305,7 +325,7 @@ class ComparisonSums:
                        "stages), shown for orientation only.")
         return Comparison(counterpart, result.exact, shares, self.subgroup_table(), outcomes,
                           average, self.survival_table(), critical, level, agrees, verdict,
-                          average_verdict(average))
+                          average_verdict(average, self.shares.n))
 
     def outcome_table(self) -> pd.DataFrame:
         rows = []
@@ -313,19 +333,24 @@ class ComparisonSums:
             simulated, expected = (s / moments.n for s in self.totals[measure])
             rows.append((measure, simulated, expected, moments.se, simulated - expected))
         table = pd.DataFrame(rows, columns=["measure", "simulated", "analytic", "se", "difference"])
-        p, still = mean_p_values(table.difference, table.se, table.analytic)
+        n = self.shares.n
+        p, still = mean_p_values(table.difference, table.se, table.analytic, n)
         # no variation among the patients is no Monte-Carlo error only where the model
         # cannot vary; where it can (a few patients, a rare event) the SE is unknown
         varies = np.array([self.varies["alive" if m == "life_years" else "any"]
                            for m in table.measure], bool)
-        certain, unseen = still & ~varies, still & varies
-        z = np.where(still, 0.0, z_scores(table.difference.to_numpy(), table.se.to_numpy()))
+        certain = still & ~varies
+        untested = np.where(certain, "", np.where(n < FEWEST_FOR_MEANS, FEW,
+                                                  np.where(still, UNSEEN, "")))
+        tested = untested == ""
+        z = np.where(still | ~tested, 0.0,
+                     z_scores(table.difference.to_numpy(), table.se.to_numpy()))
         # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
         # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
-            se=np.where(certain, 0.0, np.where(unseen, np.nan, table.se)), z=z,
-            p_value=np.where(unseen, 1.0, p),
-            test=np.where(certain, EXACT, np.where(unseen, UNSEEN, MONTE_CARLO)))
+            se=np.where(certain, 0.0, np.where(tested, table.se, np.nan)), z=z,
+            p_value=np.where(tested, p, 1.0),
+            test=np.where(certain, EXACT, np.where(tested, MONTE_CARLO, untested)))
 
     def subgroup_table(self) -> pd.DataFrame:
         frames = [share_table(s, self.grid, self.model.states).assign(attribute=a, level=lv)
@@ -383,35 +408,55 @@ def counterpart_name(result: CohortResult) -> str:
 
 
 def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str,
-                  level: float, critical: float) -> tuple[bool, str]:
-    """Whether every comparison is within chance, and the sentence that says so."""
-    rows = pd.concat([shares.assign(what=shares.state + " at " + shares.time.map("{:g}".format)),
-                      outcomes.assign(what=outcomes.measure)], ignore_index=True)
-    worst = rows.loc[rows.p_value.idxmin()]
+                  level: float, n: int) -> tuple[bool, str]:
+    """Whether every comparison is within chance, and the sentence that says so (naming the
+    test that gave the smallest p-value, with what it read)."""
+    rows = pd.concat([shares.assign(what=shares.state + " at " + shares.time.map("{:g}".format),
+                                    kind="share"),
+                      outcomes.assign(what=outcomes.measure, kind="mean")], ignore_index=True)
+    judged = rows[~rows.test.isin(NOT_TESTED)]  # every share is
+    worst = judged.loc[judged.p_value.idxmin()]
     exact = int((rows.test == EXACT).sum())
     basis = (f"Bonferroni over {len(rows)} comparisons at family-wise level {FAMILY_ALPHA}: "
              f"each p-value must be at least {level:.2g}")
     certain = (f"; {exact} comparison{'s' if exact != 1 else ''} without Monte-Carlo error "
                f"agree within numerical error ({ROUNDOFF:g} relative)" if exact else "")
-    unseen = int((rows.test == UNSEEN).sum())
-    if unseen:
-        certain += (f"; {unseen} outcome{'s' if unseen != 1 else ''} not tested: the patients "
-                    "did not vary, though the model does (simulate more patients)")
+    for label in NOT_TESTED:
+        unseen = int((rows.test == label).sum())
+        if unseen:
+            certain += (f"; {unseen} outcome{'s' if unseen != 1 else ''} {label} "
+                        "(simulate more patients)")
     if worst.p_value >= level:
-        return True, (f"The simulation agrees with {counterpart}: the smallest p-value is "
-                      f"{worst.p_value:.2g}, for {worst.what} (z = {worst.z:.2f}; {basis})"
-                      f"{certain}.")
+        return True, (f"The simulation agrees with {counterpart}: the smallest p-value is for "
+                      f"{worst.what} ({evidence(worst, n)}; {basis}){certain}.")
     gap = (f"differs by {worst.simulated - worst.analytic:.3g} where there is no Monte-Carlo "
-           "error" if worst.test == EXACT else f"has z = {worst.z:.2f}, p = {worst.p_value:.2g}")
+           "error" if worst.test == EXACT else f"has {evidence(worst, n)}")
     return False, (f"The simulation DISAGREES with {counterpart}: {worst.what} {gap} "
                    f"({basis}). Check the engine or the model.")
 
 
+def evidence(row, n: int) -> str:
+    """A comparison's p-value and the test that gave it: the exact binomial tail of a share's
+    count, Student's t of a mean, or none where there is no Monte-Carlo error."""
+    if row.test == EXACT:
+        return f"p = {row.p_value:.2g}, {EXACT}"
+    if row.kind == "share":
+        return (f"exact binomial tail p = {row.p_value:.2g}; {row.simulated * n:.0f} of {n} "
+                f"patients seen against {row.analytic * n:.3g} expected")
+    return (f"Student's t p = {row.p_value:.2g}; t = {row.z:.2f} with {n - 1} degrees of "
+            "freedom")
+
+
 AVERAGE = "The 'average patient' cohort (everyone given the mean attributes)"
+MEASURE_WORDS = {"life_years": "life years (undiscounted)", "qalys": "QALYs (undiscounted)",
+                 "costs": "costs (undiscounted)", "qalys_discounted": "QALYs (discounted)",
+                 "costs_discounted": "costs (discounted)"}
 
 
-def average_verdict(rows: pd.DataFrame) -> str:
-    """The average patient's gap in words: its size where it is exact, else its test."""
+def average_verdict(rows: pd.DataFrame, n: int) -> str:
+    """The average patient's gap in words, naming the measure and its discounting: its size
+    where it is exact, else its paired test (Student's t over the n patients, as for the
+    outcomes)."""
     exact = rows.basis.iloc[0].startswith("exact")
     relative = rows.relative_difference.abs().fillna(0.0)
     worst = rows.loc[relative.idxmax()]
@@ -419,16 +464,22 @@ def average_verdict(rows: pd.DataFrame) -> str:
         if np.all(np.abs(rows.difference) <= ROUNDOFF * np.maximum(rows.population.abs(), 1.0)):
             return (f"{AVERAGE} gives the population's results exactly: here the mean "
                     "attributes stand for the patients.")
-        return (f"{AVERAGE} gives {worst.measure} {worst.average_patient:.4g} against the "
-                f"population's {worst.population:.4g} ({worst.relative_difference:+.1%}, a "
-                f"difference of {worst.difference:.4g}). Both are exact analytic results, so "
-                "this gap is a property of the model, not Monte-Carlo noise: it is what "
-                "treating the patients as one average patient would change.")
-    critical = critical_z(len(rows))
+        return (f"{AVERAGE} gives {MEASURE_WORDS[worst.measure]} {worst.average_patient:.4g} "
+                f"against the population's {worst.population:.4g} "
+                f"({worst.relative_difference:+.1%}, a difference of {worst.difference:.4g}). "
+                "Both are exact analytic results, so this gap is a property of the model, not "
+                "Monte-Carlo noise: it is what treating the patients as one average patient "
+                "would change.")
+    if n < FEWEST_FOR_MEANS:
+        return (f"{AVERAGE} is {FEW} (simulate more patients).")
+    critical = critical_t(len(rows), n)
     worst = rows.loc[rows.z.abs().fillna(0.0).idxmax()]
     if not abs(worst.z) >= critical:
         return (f"{AVERAGE} is within Monte-Carlo error of the simulated population "
-                f"(largest |z| {abs(worst.z):.2f}, below {critical:.2f}).")
-    return (f"{AVERAGE} misrepresents the population: {worst.measure} {worst.average_patient:.4g} "
-            f"against {worst.population:.4g} simulated ({worst.relative_difference:+.1%}, "
-            f"z = {worst.z:.1f}). Heterogeneity matters here; use the population results.")
+                f"(largest |t| {abs(worst.z):.2f}, below {critical:.2f}: Bonferroni over "
+                f"{len(rows)} paired t tests with {n - 1} degrees of freedom).")
+    return (f"{AVERAGE} misrepresents the population: {MEASURE_WORDS[worst.measure]} "
+            f"{worst.average_patient:.4g} against {worst.population:.4g} simulated "
+            f"({worst.relative_difference:+.1%}, t = {worst.z:.1f} with {n - 1} degrees of "
+            "freedom). Heterogeneity matters here; use the population results.")
+
