@@ -224,3 +224,15 @@ def test_the_compiled_unit_map_is_to_open_unit():
     words = np.concatenate([np.array([0, 1, 2**12 - 1, 2**12, TWO_64 - 1], np.uint64),
                             rng.integers(0, TWO_64, size=2000, dtype=np.uint64)])
     assert [open_unit(w) for w in words] == streams.to_open_unit(words).tolist()
+
+
+def test_the_compiled_first_draws_are_the_streams_uniforms():
+    # streams.uniforms (numpy's Philox, a run of counters for contiguous ids; our own Philox
+    # for scattered ones) against the compiled engines' one block a patient
+    from microsim.engines.philox_compiled import first_units
+    ids = np.concatenate([np.arange(10, 500), np.random.default_rng(7).integers(0, 2**40, 300)])
+    for seed in (0, 12345, TWO_64 - 1):
+        for chunk in (ids[:490], ids[490:]):
+            got = first_units(chunk.astype(np.uint64), np.uint64(seed),
+                              np.uint64(streams.purpose_id("start")))
+            assert got.tolist() == streams.uniforms(seed, chunk, "start").tolist()

@@ -36,7 +36,7 @@ from microsim.binding import BoundModel
 from microsim.engines import plan
 from microsim.engines.cycle_engine import AXES, MOVE, row_name
 from microsim.engines.histories import START, Histories
-from microsim.engines.philox_compiled import open_unit, philox_block
+from microsim.engines.philox_compiled import first_units, open_unit, philox_block
 from microsim.hazards.cycle_probabilities import LIMIT, competing_scale, overflow, separate_one
 from microsim.patients.multipliers import Multipliers
 from microsim.scenario.spec import COMPETING, TableSpec
@@ -388,8 +388,9 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     `microsim.engines.cycle_engine.simulate_cycles` for the same arguments."""
     ids = np.asarray(patient_ids)
     rows, risks, people, n_tracked = _layout(model, mult, ids, seed)
-    start = np.asarray(plan.start_states(model, streams.uniforms(seed, ids, plan.START_PURPOSE),
-                                         mult), np.int64).reshape(-1)
+    start = np.asarray(plan.start_states(model, first_units(
+        people.ids, people.seed, np.uint64(streams.purpose_id(plan.START_PURPOSE))), mult),
+        np.int64).reshape(-1)
     counts, last = (np.ascontiguousarray(a.T).reshape(len(ids), n_tracked)
                     for a in plan.initial_memory_arrays(model, plan.tracked_names(model), start))
     on_points = np.empty((len(ids), model.n_cycles + 1), np.int16)

@@ -55,3 +55,15 @@ def open_unit(word):
     """`streams.to_open_unit` of one word: (2k + 1) / 2**53 with k its top 52 bits (k * 2**-52
     and the half step are exact, so this is that function's number to the bit)."""
     return float(word >> _TOP) * _STEP + _HALF_STEP
+
+
+@njit(cache=True)
+def first_units(ids, seed, purpose):
+    """Occurrence 0 of `purpose` for each patient id (uint64): the numbers of
+    `streams.uniforms(seed, ids, purpose)`, one Philox block a patient."""
+    out = np.empty(ids.size)
+    words = np.empty(4, np.uint64)
+    for b in range(ids.size):
+        philox_block(ids[b], np.uint64(0), seed, purpose, words)
+        out[b] = open_unit(words[0])
+    return out
