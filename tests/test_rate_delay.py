@@ -234,7 +234,7 @@ def test_the_exact_basis_of_a_psa_refuses_a_delay(tmp_path):
     with pytest.raises(ScenarioError) as refused:
         parameter_uncertainty(parse_scenario(text), tmp_path / "psa", progress=False)
     assert refused.value.path == "uncertainty.basis"
-    assert "Erlang" in refused.value.message
+    assert "Erlang" in refused.value.message and "strategy 'treat'" in refused.value.message
     assert not (tmp_path / "psa").exists()
 
 
@@ -260,7 +260,11 @@ def test_a_delay_of_0_is_the_model_without_a_delay_patient_for_patient():
 
 
 def test_a_delay_beyond_the_horizon_treats_no_one():
-    model = bind(parse_scenario(on_flare(delay=9.0, end=8)), strategy="treat")
+    scenario = parse_scenario(on_flare(delay=9.0, end=8))
+    assert any(w.startswith("strategies.treat.start_delay: 9 years is not shorter than the "
+                            "horizon (8 years)") for w in scenario.warnings), scenario.warnings
+    assert not any("start_delay" in w for w in parse_scenario(on_flare()).warnings)
+    model = bind(scenario, strategy="treat")
     h = histories(model, 2000, 11)
     assert np.any(model.waiting[h.target])  # patients flare and wait
     assert not np.any(model.treated_states[h.target])

@@ -247,7 +247,7 @@ def expand(model: BoundModel) -> Expansion:
                        "which no finite Markov chain can hold; the analytic side approximates "
                        f"the wait by {DELAY_STAGES} exponential stages of mean "
                        f"{model.delay / DELAY_STAGES:g} {unit} each (an Erlang({DELAY_STAGES}) "
-                       "delay), whose error is shown, not tested")
+                       "delay), beside which the simulation is shown, not tested")
     counters = tuple(Counter(after, cap) for after, cap in sorted(caps.items()))
     recencies = tuple(Recency(after, cap) for after, cap in sorted(windows.items()))
     durations = tunnel_lengths(model)

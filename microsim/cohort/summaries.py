@@ -92,8 +92,7 @@ def chain_summary(model: BoundModel) -> ChainSummary:
         parts.append(absorption_to_end(model, mult, runs, dependence.homogeneous))
     notes = () if exp.exact else (
         "not exact: " + "; ".join(exp.reasons) + ". These figures are those of the analytic "
-        "side's Markov approximation (memory it cannot hold ignored, a fixed delay "
-        "replaced by exponential stages).",)
+        "side's Markov approximation of the model, as the reasons say.",)
     return ChainSummary(tuple(parts), notes)
 
 

@@ -320,9 +320,10 @@ class ComparisonSums:
         else:
             agrees = None
             verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
-                       "the analytic figures beside the simulation are a Markov approximation "
-                       "(memory it cannot hold ignored, a fixed delay replaced by exponential "
-                       "stages), shown for orientation only.")
+                       "the analytic figures beside the simulation are the Markov approximation "
+                       "these reasons describe, shown for orientation only: nothing is "
+                       "tested, and the p-values beside them measure the distance from the "
+                       "approximation, not an error.")
         return Comparison(counterpart, result.exact, shares, self.subgroup_table(), outcomes,
                           average, self.survival_table(), critical, level, agrees, verdict,
                           average_verdict(average, self.shares.n))

@@ -337,6 +337,10 @@ def check_phases(s: Scenario, reading: Reading, merged: Scenario, strategy: Stra
         return [f"{prefix}.start_on: no patient reaches {listing(strategy.start_on)} (a state "
                 "no one enters, or an event whose probability or rate is 0), so the strategy "
                 "treats no one"]
+    if strategy.start_on and strategy.start_delay >= s.time.end:
+        return [f"{prefix}.start_delay: {show(strategy.start_delay)} {s.time.unit} is not "
+                f"shorter than the horizon ({show(s.time.end)} {s.time.unit}), so the "
+                "strategy treats no one; shorten the delay or lengthen the horizon"]
     return []
 
 

@@ -86,8 +86,10 @@ def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
         exact = patient_values(scenario, people, scenario.simulation.seed, values, name)
         if not exact.exact:
             which = "the base case" if draw < 0 else f"draw {draw}"
-            raise ScenarioError("uncertainty.basis", f"{which} has no exact counterpart "
-                                f"({'; '.join(exact.reasons)}); use basis = \"simulated\"")
+            whose = "the model" if name is None else f"strategy {name!r}"
+            raise ScenarioError("uncertainty.basis", f"{whose} has no exact counterpart in "
+                                f"{which} ({'; '.join(exact.reasons)}); use basis = "
+                                "\"simulated\"")
         rows.append((AS_WRITTEN if name is None else name, exact.costs.mean(),
                      exact.qalys.mean(), exact.life_years.mean(), 0.0, 0.0, 0.0, 0.0,
                      len(people)))
