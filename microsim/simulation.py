@@ -55,9 +55,10 @@ class Simulation:
 
     def head(self, n: int) -> "Simulation":
         """The first n patients (all of them when there are fewer)."""
-        if n >= self.size:
-            return self
-        part = slice(0, n)
+        return self if n >= self.size else self.rows(slice(0, n))
+
+    def rows(self, part: slice) -> "Simulation":
+        """The patients of `part` (a slice of rows) as a simulation of their own."""
         return Simulation(self.model, self.patients.iloc[part].reset_index(drop=True),
                           self.seed, self.mult.take(part), self.grid, self.states[part],
                           {m: v[part] for m, v in self.values.items()}, self.treated[part], -1,

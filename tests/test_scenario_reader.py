@@ -111,7 +111,7 @@ def test_lakemoor_values_land_in_their_fields():
     assert pop.correlation == ((1.0, 0.2), (0.2, 1.0))
     assert pop.derived[0].source == "age" and pop.derived[0].labels == ("40-59", "60-74", "75+")
     assert (s.simulation.seed, s.simulation.batch_size, s.simulation.grid) == \
-        (20261201, 5000, 1.0)
+        (20261201, 20000, 1.0)
 
 
 def test_ward_hazards_and_memory():

@@ -222,6 +222,10 @@ class Comparison:
     average_verdict: str
 
 
+PIECE = 5000  # patients whose analytic counterparts are held at once: a batch's expanded
+# per-patient chains would otherwise set a run's peak memory
+
+
 @dataclass
 class ComparisonSums:
     """A comparison of one model's simulation with its analytic counterpart, accumulated
@@ -257,6 +261,10 @@ class ComparisonSums:
                 return
             if sim.size > self.limit - self.shares.n:
                 sim, result = sim.head(self.limit - self.shares.n), None
+        if result is None and sim.size > PIECE:  # their counterparts a piece at a time
+            for lo in range(0, sim.size, PIECE):
+                self.add(sim.rows(slice(lo, lo + PIECE)))
+            return
         model = sim.model
         if result is None:
             result = analytic(model, mult=sim.mult.distinct(), times=sim.grid)
