@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 
+from microsim import threads
 from microsim.results import aggregate
 from microsim.binding import BoundModel
 from microsim.patients.multipliers import Multipliers
@@ -182,8 +183,15 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     copies = treatment_copies(model)
     treated_by = {name: np.zeros(len(ids), bool) for name in copies}
     exposure = Exposure.empty(len(ids), model) if keep_exposure else None
-    transitions = 0
-    for lo in range(0, len(ids), batch_size):
+    write = None if histories is None else (
+        lambda h, part, batch: h.table(patients.iloc[part], model.states,
+                                       [r.name for r in model.risks],
+                                       None if model.treatment is None else model.treatment.strategy,
+                                       batch.window, phase_codes(model)))
+
+    def one_batch(lo: int):
+        """Simulate and value the batch from row `lo`, filling its rows of the arrays
+        above (batches own disjoint rows, so threads never write the same row)."""
         part = slice(lo, lo + batch_size)
         batch = mult.take(part)
         h = engine(model, batch, ids[part], seed)
@@ -200,12 +208,15 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
             treated_by[name][part] = mine.on_treatment[:, states_of, 0].sum(axis=1) > 0
         if exposure is not None:
             exposure.put(part, mine)
-        transitions += int(np.sum(h.risk >= 0))
-        if histories is not None:
-            histories.write(h.table(patients.iloc[part], model.states,
-                                    [r.name for r in model.risks],
-                                    None if model.treatment is None else model.treatment.strategy,
-                                    batch.window, phase_codes(model)))
+        return int(np.sum(h.risk >= 0)), None if write is None else write(h, part, batch)
+
+    transitions = 0
+    simpy = engine in (simulate_cycles, simulate_events)  # holds the GIL: threads gain nothing
+    for moved, table in threads.in_order(one_batch, range(0, len(ids), batch_size),
+                                         1 if simpy else threads.count()):
+        transitions += moved
+        if table is not None:
+            histories.write(table)  # in the batches' order, whatever thread ran them
     return Simulation(model, numbered(patients), seed, mult, grid, states, values, treated,
                       transitions, exposure, treated_by)
 

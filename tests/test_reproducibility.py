@@ -141,3 +141,41 @@ def test_another_seed_gives_other_histories(setup):
     # apart (e.g. a cycle-model patient who stays well without a flare for 20 cycles:
     # probability below 0.7^20 ~ 1e-3)
     assert differ >= 95
+
+
+@pytest.mark.parametrize("name", sorted(ENGINES))
+def test_threads_change_nothing(name, tmp_path):
+    """Batches run on threads give every number and every history record of one thread,
+    histories in the same order (microsim.threads)."""
+    from microsim import threads
+    import pandas as pd
+    model = model_of(ENGINES[name][0])
+    patients = people(model, np.arange(600))
+    sims = {}
+    try:
+        for used in (1, 3):
+            threads.use(used)
+            sims[used] = simulate(model, patients, SEED, batch_size=37, keep_exposure=True,
+                                  histories=tmp_path / f"{used}.parquet")
+    finally:
+        threads.use(None)
+    one, three = sims[1], sims[3]
+    assert np.array_equal(one.states, three.states)
+    assert np.array_equal(one.exposure.occupancy, three.exposure.occupancy)
+    assert one.transitions == three.transitions > 0
+    for measure in one.values:
+        assert np.array_equal(one.values[measure], three.values[measure])
+    pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "1.parquet"),
+                                  pd.read_parquet(tmp_path / "3.parquet"))
+
+
+def test_thread_count_refuses_nonsense(monkeypatch):
+    from microsim import threads
+    from microsim.scenario.errors import ScenarioError
+    monkeypatch.setenv(threads.VARIABLE, "two")
+    with pytest.raises(ScenarioError, match="MICROSIM_THREADS"):
+        threads.count()
+    monkeypatch.setenv(threads.VARIABLE, "3")
+    assert threads.count() == 3
+    with pytest.raises(ScenarioError, match="threads"):
+        threads.use(0)

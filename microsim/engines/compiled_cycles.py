@@ -198,7 +198,7 @@ def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
     return rows, risks, patients, len(tracked)
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _band(risks, r, t, age, in_state, hints):
     """The band of risk r's table at time t, as `bisect_right(starts, x) - 1`, at least 0.
     `hints[r]` is the band found last: a patient's age and time only grow, so it usually
@@ -223,7 +223,7 @@ def _band(risks, r, t, age, in_state, hints):
     return hints[r]
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints):
     """(base probability, L, multiplier) of risk r for patient b at cycle n, in the
     reference's order of operations (`cycle_engine.simulate_cycles`, weigh)."""
@@ -244,7 +244,7 @@ def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints
     return risks.values[k], risks.logs[k], m
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, memo, hints):
     """Risk r's chance by the separate rule for patient b at cycle n: its base value where
     the multiplier is 1, else `separate_one`, a function of m L alone. `memo` keeps each
@@ -258,7 +258,7 @@ def _chance(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, memo
     return memo[1, r]
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts, last, first,
          on_points, rec_patient, rec_time, rec_source, rec_target, rec_risk, n_rec, scratch):
     """Simulate patients first.. of the batch until done or until the record buffers could
@@ -365,7 +365,7 @@ def _run(rows, risks, people, cycle, n_cycles, limit, per_patient, start, counts
     return size, n_rec, -1, 0, 0.0
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _phase_after(risks, hits, n_hits, state):
     """The state a cycle that ended in `state` ends in once the events `hits` happened
     (`cycle_engine.simulate_cycles`, phase_after)."""
@@ -374,7 +374,7 @@ def _phase_after(risks, hits, n_hits, state):
     return state
 
 
-@njit(cache=True, _nrt=False)
+@njit(cache=True, nogil=True, _nrt=False)
 def _occur(risks, r, b, end, counts, last):
     """Risk r happened to patient b at `end`: the memory it advances moves on."""
     for j in range(risks.bump_ptr[r], risks.bump_ptr[r + 1]):

@@ -44,7 +44,7 @@ class RiskPlans(NamedTuple):
     tables: np.ndarray
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def draws(seed, keys, ids, rows, rounds, blocks):
     """The uniforms (key, patient) of the patients `rows` for their next round in a state:
     occurrence k of each key's stream (`streams.uniforms`), k the patient's count of
@@ -68,7 +68,7 @@ def draws(seed, keys, ids, rows, rounds, blocks):
     return u
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def multipliers(risks, rows, now, end, plans, counts, last):
     """For the patients `rows` of one state at times `now`: each of its `risks`'
     multiplier (risk, patient), where a treatment window makes it 0 (the risk is off),
@@ -110,19 +110,19 @@ def multipliers(risks, rows, now, end, plans, counts, last):
     return m, is_off, change
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _fmin(a, b):
     """numpy.fmin: the smaller, a nan only where both are."""
     return b if a != a or b < a else a
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _fmax(a, b):
     """numpy.fmax: the larger, a nan only where both are."""
     return b if a != a or b > a else a
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def choose(times, now, change, tie):
     """Each patient's earliest latent time (times: position among its state's risks,
     patient; the first of equal times wins and a nan never does, as the event engine's
@@ -147,7 +147,7 @@ def choose(times, now, change, tie):
     return best, first, close
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def settle(live, state_of, first, best, change, now, end, width, risk_at, targets, bumps,
            absorbing, clock, state, entered, counts, last, waiting, delay_to, deadline, delay):
     """Each live patient's round outcome: its winner occurs at now + best if that is before

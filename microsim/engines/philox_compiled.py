@@ -57,7 +57,7 @@ def open_unit(word):
     return float(word >> _TOP) * _STEP + _HALF_STEP
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def first_units(ids, seed, purpose):
     """Occurrence 0 of `purpose` for each patient id (uint64): the numbers of
     `streams.uniforms(seed, ids, purpose)`, one Philox block a patient."""

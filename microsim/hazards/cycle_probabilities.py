@@ -50,13 +50,13 @@ def separate(log, m):
     return -np.expm1(-(m * log))
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def separate_one(log, m):
     """`separate` for one patient: 1 - (1 - p)^m = -expm1(-m L) by the C library."""
     return -math.expm1(-(m * log))
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def competing_scale(total):
     """(1 - exp(-R)) / R of the competing rule for one patient (0 when R is 0): p'_j is
     L_j m_j times this, with R = sum of L_j m_j added in the row's order."""

@@ -62,7 +62,7 @@ def occurrences(model: BoundModel, h: Histories, edges: np.ndarray | None = None
     return out if edges is None else out.reshape(h.n_patients, R, K, 3)
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _add_rows(out, first, second, weights):
     """out[first[q], second[q]] += weights[q] for each q in order (numpy's add.at)."""
     for q in range(first.size):
@@ -124,7 +124,7 @@ def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None
     return every, treated
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def _occupancy(states, weights, n_states, n_bands, band, times, on, off, every, treated):
     """every[b, s * n_bands + band[b, t]] += weights[t] over the points t where patient b is
     in s, and treated[...] the same where on[b] <= t < off[b], added in time order (band
