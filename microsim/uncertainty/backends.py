@@ -15,6 +15,7 @@ from typing import Callable, Iterator, Sequence
 import numpy as np
 import pandas as pd
 
+from .. import threads
 from ..scenario.errors import ScenarioError
 
 Evaluate = Callable[[int, dict[str, float]], pd.DataFrame]
@@ -50,6 +51,7 @@ def _start_worker(evaluate: Evaluate) -> None:
     and leave Ctrl-C to the parent, which shuts the pool down in order."""
     global _worker_evaluate
     _worker_evaluate = evaluate
+    threads.use(1)  # the workers share the cores: threads on top would compete for them
     signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
@@ -75,6 +77,12 @@ def import_dask():
     return dask.distributed
 
 
+def _evaluate_on_one_thread(evaluate: Evaluate, draw: int, values: dict[str, float]):
+    """A draw on a Dask worker: its threads already share the machine's cores."""
+    threads.use(1)
+    return evaluate_draw(evaluate, draw, values)
+
+
 def dask_cluster(evaluate: Evaluate, jobs: Sequence[Job], workers: int, address: str | None) -> Finished:
     """On the scheduler at `address`, or on a local cluster of `workers` single-threaded
     processes that lives only as long as this iterator."""
@@ -85,7 +93,7 @@ def dask_cluster(evaluate: Evaluate, jobs: Sequence[Job], workers: int, address:
     futures = []
     try:
         [shared] = client.scatter([evaluate], broadcast=True)
-        futures = client.map(evaluate_draw, [shared] * len(jobs), [d for d, _ in jobs],
+        futures = client.map(_evaluate_on_one_thread, [shared] * len(jobs), [d for d, _ in jobs],
                              [v for _, v in jobs], pure=False)
         for future in distributed.as_completed(futures):
             yield future.result()
