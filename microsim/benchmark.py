@@ -14,14 +14,16 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
   (a numerical root per draw), after a first tiny run of each that loads the compiled code;
 - the cycle engine against numpy: the demo's patient-cycles per second as the main job
   simulates them (engine, aggregation, batches of simulation.batch_size), over the
-  uniform numbers per second numpy's default generator fills in the same process;
+  uniform numbers per second numpy's default generator fills in the same process (on one
+  thread, and on every thread `microsim.threads` gives a run);
 - exact against simulated PSA: time per draw of the demo's PSA on the exact basis over
   the simulated one at the same patients per draw, and the inner noise the exact basis
   removes (the simulated draw means' noise variance over the between-draw variance);
 - exact against simulated PSA on a rate model: the same ratio for a memoryless rate model
   whose patients differ by a continuous marker on two transitions (every patient its own
   generator: the exact basis costs matrix exponentials for each of them);
-- PSA workers: the same PSA's time on one worker process over its time on two (a bigger PSA than
+- PSA workers: the same PSA's time on one worker process over its time on two, each of one
+  thread (a bigger PSA than
   the others: with draws of a fraction of a second, starting workers would weigh most);
 - memory: peak resident memory of the main job (no histories) in a fresh process at two
   population sizes; the growth per patient per strategy is the slope between them;
@@ -43,6 +45,7 @@ from pathlib import Path
 import numpy as np
 import simpy
 
+from microsim import threads
 from microsim.binding import bind
 from microsim.patients.multipliers import cohort_multipliers
 from microsim.engines import event_engine
@@ -492,11 +495,14 @@ def verdict(value: float, target: float, larger_is_better: bool = True) -> str:
 def main(quick: bool = False) -> int:
     print("microsim benchmark (ratios of timings interleaved in one run)")
     n = 50_000 if quick else 1_000_000
-    c = cycle_against_numpy(n)
-    print(f"Compiled cycle engine, demo scenario, {n:,} patients (the main job's path): "
-          f"{c['rate']:,.0f} patient-cycles/s against numpy's {c['uniform']:,.0f} uniforms/s: "
-          f"ratio {c['ratio']:.3f} (target >= 0.03, aim 0.1: "
-          f"{verdict(c['ratio'], 0.03)}; {c['seconds']:.1f} s)")
+    for used in sorted({1, threads.count()}):
+        threads.use(used)
+        c = cycle_against_numpy(n)
+        print(f"Compiled cycle engine, demo scenario, {n:,} patients (the main job's path), "
+              f"{used} thread{'s' if used > 1 else ''}: {c['rate']:,.0f} patient-cycles/s against "
+              f"numpy's {c['uniform']:,.0f} uniforms/s (one thread): ratio {c['ratio']:.3f} "
+              f"(target >= 0.03, aim 0.1: {verdict(c['ratio'], 0.03)}; {c['seconds']:.1f} s)")
+    threads.use(None)
     e = engine_ratio(patients=1000 if quick else 4000, repeats=1 if quick else 5)
     print(f"SimPy event engine: {e['engine']:,.0f} transitions/s over {e['transitions']:,} "
           f"transitions")
@@ -535,7 +541,9 @@ def main(quick: bool = False) -> int:
     # a bigger PSA for the workers: a draw of the compiled engine takes a fraction of a
     # second, and starting two worker processes is then a large share of a small PSA
     draws, per_draw = (8, 2000) if quick else (32, 20_000)
+    threads.use(1)  # workers scale against one process of one thread (workers run one each)
     w = psa_timings(draws, per_draw, runs=(("one", "simulated", 1), ("two", "simulated", 2)))
+    threads.use(None)
     print(f"PSA with 2 workers, {draws} draws of {per_draw:,} patients: {w['one'] / w['two']:.2f}"
           f" x as fast as with 1 ({w['one']:.1f} s against {w['two']:.1f} s; target >= 1.8: "
           f"{verdict(w['one'] / w['two'], 1.8)})")
