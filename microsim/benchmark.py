@@ -23,8 +23,8 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
   whose patients differ by a continuous marker on two transitions (every patient its own
   generator: the exact basis costs matrix exponentials for each of them);
 - PSA workers: the same PSA's time on one worker process over its time on two, each of one
-  thread (a bigger PSA than
-  the others: with draws of a fraction of a second, starting workers would weigh most);
+  thread (every figure but the cycle engine's on all threads is taken on one thread; a
+  bigger PSA than the others: with draws of a fraction of a second, starting workers would weigh most);
 - memory: peak resident memory of the main job (no histories) in a fresh process at two
   population sizes; the growth per patient per strategy is the slope between them;
 - common random numbers: the standard error of incremental QALYs on the demo scenario
@@ -502,7 +502,7 @@ def main(quick: bool = False) -> int:
               f"{used} thread{'s' if used > 1 else ''}: {c['rate']:,.0f} patient-cycles/s against "
               f"numpy's {c['uniform']:,.0f} uniforms/s (one thread): ratio {c['ratio']:.3f} "
               f"(target >= 0.03, aim 0.1: {verdict(c['ratio'], 0.03)}; {c['seconds']:.1f} s)")
-    threads.use(None)
+    threads.use(1)  # every other figure compares engines, or workers, one thread each
     e = engine_ratio(patients=1000 if quick else 4000, repeats=1 if quick else 5)
     print(f"SimPy event engine: {e['engine']:,.0f} transitions/s over {e['transitions']:,} "
           f"transitions")
@@ -541,9 +541,7 @@ def main(quick: bool = False) -> int:
     # a bigger PSA for the workers: a draw of the compiled engine takes a fraction of a
     # second, and starting two worker processes is then a large share of a small PSA
     draws, per_draw = (8, 2000) if quick else (32, 20_000)
-    threads.use(1)  # workers scale against one process of one thread (workers run one each)
     w = psa_timings(draws, per_draw, runs=(("one", "simulated", 1), ("two", "simulated", 2)))
-    threads.use(None)
     print(f"PSA with 2 workers, {draws} draws of {per_draw:,} patients: {w['one'] / w['two']:.2f}"
           f" x as fast as with 1 ({w['one']:.1f} s against {w['two']:.1f} s; target >= 1.8: "
           f"{verdict(w['one'] / w['two'], 1.8)})")
@@ -557,4 +555,5 @@ def main(quick: bool = False) -> int:
     for name, ratio in crn_ratio(patients=500 if quick else 2000).items():
         print(f"Common random numbers, {name}: SE of incremental QALYs is {ratio:.2f} x that "
               f"with independent streams (variance x {ratio ** 2:.2f})")
+    threads.use(None)
     return 0
