@@ -151,7 +151,7 @@ class Draws:
             if times is None:
                 return inf, None, end
             if k == len(times):
-                more_times, more_winners = batch.more_rounds(p.row, state, k)
+                more_times, more_winners = batch.more_rounds(p.row, state, k, k)
                 times += more_times
                 p.winners[state] += more_winners
             return times[k], p.winners[state][k], end
@@ -159,7 +159,7 @@ class Draws:
         for r in batch.from_state[state]:
             draws = p.draws[r]
             if k == len(draws):
-                draws += batch.more_draws(p.row, r, k)
+                draws += batch.more_draws(p.row, r, k, k)
             dt, change = latent_time(p.views[r], draws[k], p.static[r], now, entered, p.age0,
                                      batch.memory[r], counts, last, change, p.window)
             if dt < best:

@@ -8,7 +8,11 @@ when a time-limited memory effect runs out, all latent times are drawn afresh fr
 residual distributions given survival so far, which is exact for independent risks.
 
 Draws: the k-th round of draws in state i (k-th time the patient's latent times there
-are drawn) uses occurrence k of each of i's risks' purposes. So where every way out of a
+are drawn) uses occurrence k of each of i's risks' purposes. A copy of a state in a
+treatment phase reads the state's purposes and counts its rounds with the state's other
+copies (`plan.risk_purpose`, `plan.round_owners`): a patient whose phase changes after
+round k of a state takes round k + 1 in the new copy, as it would in the state itself
+under a strategy without phases. So where every way out of a
 state is a constant rate, the winner and the time of every round can be computed for the
 whole batch with numpy before SimPy starts, and the patient process only looks them up.
 Draws are unit exponentials e = -log(u): a time to event solves m (H(a + s) - H(a)) = e.
@@ -73,6 +77,7 @@ class Batch:
     def __init__(self, model: BoundModel, mult: Multipliers, patient_ids: np.ndarray, seed: int):
         self.model, self.seed, self.ids = model, seed, np.asarray(patient_ids)
         self.purposes = plan.risk_purposes(model)
+        self.owners = plan.round_owners(model)
         self.tracked = plan.tracked_names(model)
         self.memory = plan.memory_terms(model, self.tracked)
         self.bumps = plan.bumps(model, self.tracked)
@@ -89,7 +94,10 @@ class Batch:
         self.simple = [bool(rs) and all(self.is_simple(r) for r in rs) for rs in self.from_state]
         self.starts = plan.start_states(model, streams.uniforms(seed, self.ids, plan.START_PURPOSE),
                                         mult)
-        e = -np.log(streams.block(seed, self.ids, self.purposes, DEPTH))  # (B, R, DEPTH)
+        # copies of a state share its purposes: each distinct one is drawn once
+        distinct = tuple(dict.fromkeys(self.purposes))
+        e = -np.log(streams.block(seed, self.ids, distinct, DEPTH))
+        e = e[:, [distinct.index(p) for p in self.purposes]]  # (B, R, DEPTH)
         self.times, self.winners = self.simple_rounds(e)
         self.draws = {r: e[:, r].tolist() for rs, simple in zip(self.from_state, self.simple)
                       if not simple for r in rs}
@@ -114,16 +122,19 @@ class Batch:
                 winners[i] = np.asarray(rs)[latent.argmin(axis=1)].tolist()
         return times, winners
 
-    def more_draws(self, b: int, r: int, start: int) -> list[float]:
-        """Occurrences start .. start + 4 DEPTH of risk r's purpose for patient row b."""
-        u = streams.sequence(self.seed, int(self.ids[b]), self.purposes[r], start, 4 * DEPTH)
+    def more_draws(self, b: int, r: int, start: int, k: int) -> list[float]:
+        """Occurrences start .. k + 4 DEPTH - 1 of risk r's purpose for patient row b (a
+        copy's rounds may start past its first draws: they continue the state's)."""
+        u = streams.sequence(self.seed, int(self.ids[b]), self.purposes[r], start,
+                             k + 4 * DEPTH - start)
         return (-np.log(u)).tolist()
 
-    def more_rounds(self, b: int, i: int, start: int) -> tuple[list, list]:
-        """Rounds start .. start + 4 DEPTH of an all-constant state, for patient row b."""
+    def more_rounds(self, b: int, i: int, start: int, k: int) -> tuple[list, list]:
+        """Rounds start .. k + 4 DEPTH - 1 of an all-constant state, for patient row b."""
         rs = self.from_state[i]
         with np.errstate(divide="ignore"):
-            latent = np.array([self.more_draws(b, r, start) for r in rs]) / self.rates[b, rs, None]
+            latent = (np.array([self.more_draws(b, r, start, k) for r in rs])
+                      / self.rates[b, rs, None])
         return latent.min(axis=0).tolist(), np.asarray(rs)[latent.argmin(axis=0)].tolist()
 
 
@@ -148,6 +159,7 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
     record = Recorder(mult.size)
     tracking = bool(tracked)
     delay_to = None if model.delay_to is None else model.delay_to.tolist()
+    owners = batch.owners  # whose count of rounds each state continues
 
     def patient(b: int, timeout):
         times = [t[b] if t else None for t in batch.times]  # extended when used up
@@ -163,17 +175,15 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
         add((0.0, START, state, START))
         deadline = model.delay if waiting[state] else inf  # the end of a wait for treatment
         while not final[state]:
-            k = rounds[state]
-            rounds[state] = k + 1
+            k = rounds[owners[state]]
+            rounds[owners[state]] = k + 1
             limit = min(end, deadline) if waiting[state] else end
             if simple[state]:  # a round computed beforehand; nothing changes within it
-                try:
-                    best, winner = times[state][k], winners[state][k]
-                except IndexError:
-                    more_times, more_winners = batch.more_rounds(b, state, k)
+                if k >= len(times[state]):
+                    more_times, more_winners = batch.more_rounds(b, state, len(times[state]), k)
                     times[state] += more_times
                     winners[state] += more_winners
-                    best, winner = times[state][k], winners[state][k]
+                best, winner = times[state][k], winners[state][k]
                 if now + best >= limit:
                     if limit >= end:
                         return
@@ -184,8 +194,8 @@ def simulate_events(model: BoundModel, mult: Multipliers, patient_ids: np.ndarra
             else:
                 best, winner, change = inf, None, limit
                 for r in from_state[state]:
-                    if k == len(draws[r]):
-                        draws[r] += batch.more_draws(b, r, k)
+                    if k >= len(draws[r]):
+                        draws[r] += batch.more_draws(b, r, len(draws[r]), k)
                     dt, change = latent_time(views[r], draws[r][k], static[r], now, entered,
                                              age0, memory[r], counts, last, change, windows[b])
                     if dt < best:

@@ -45,26 +45,30 @@ class RiskPlans(NamedTuple):
 
 
 @njit(cache=True, nogil=True)
-def draws(seed, keys, ids, rows, rounds, blocks):
-    """The uniforms (key, patient) of the patients `rows` for their next round in a state:
-    occurrence k of each key's stream (`streams.uniforms`), k the patient's count of
-    rounds there, which this advances. `blocks` (patient, key, 4) holds each patient's
-    Philox block of occurrences 4 (k // 4) .. 4 (k // 4) + 3; a round that starts a block
-    makes it, and the next three rounds read it."""
-    u = np.empty((keys.size, rows.size))
+def draws(seed, keys, slots, ids, rows, rounds, cached, blocks):
+    """The uniforms (slot, patient) of the patients `rows` for their next round in a state
+    whose risks' purpose keys are keys[slots]: occurrence k of each stream
+    (`streams.uniforms`), k the patient's count of rounds there, which this advances.
+    `blocks` (patient, key, 4) holds each patient's Philox block of occurrences
+    4 c .. 4 c + 3 of each key, c = cached[patient, key] (-1: none yet), and a round that
+    needs another block makes it. The keys are those of every copy of the state (treatment
+    phases), whose rounds continue one count, so a copy's first round may fall anywhere in
+    a block and a key may skip blocks."""
+    u = np.empty((slots.size, rows.size))
     words = np.empty(4, np.uint64)
     for p in range(rows.size):
         b = rows[p]
         k = rounds[b]
         rounds[b] = k + 1
-        lane = k % 4
-        if lane == 0:
-            for j in range(keys.size):
-                philox_block(ids[b], np.uint64(k // 4), seed, keys[j], words)
+        block, lane = k // 4, k % 4
+        for j in range(slots.size):
+            s = slots[j]
+            if cached[b, s] != block:
+                philox_block(ids[b], np.uint64(block), seed, keys[s], words)
                 for w in range(4):
-                    blocks[b, j, w] = open_unit(words[w])
-        for j in range(keys.size):
-            u[j, p] = blocks[b, j, lane]
+                    blocks[b, s, w] = open_unit(words[w])
+                cached[b, s] = block
+            u[j, p] = blocks[b, s, lane]
     return u
 
 

@@ -49,14 +49,24 @@ def risk_purpose(model: BoundModel, risk) -> str:
     happen in several states has an independent stream in each, and a strategy that adds
     a risk shifts no other risk's draws.
 
-    In cycle models a copy of a state in a treatment phase reads the stream of the state
-    it is a copy of (`BoundModel.entered`): occurrences there are cycle numbers, which a
-    patient never repeats, so the copies share the streams safely and a patient whom a
-    phase never treats keeps the draws of every other strategy (common random numbers).
-    In rate models occurrences count the rounds in each state (copy), so copies keep
-    streams of their own."""
-    state = model.entered(risk.source) if model.discrete else model.states[risk.source]
-    return f"{risk.name}@{state}"
+    A copy of a state in a treatment phase reads the streams of the state it is a copy of
+    (`BoundModel.entered`), so a patient whom a phase does not treat keeps, draw for draw,
+    the draws of every other strategy (common random numbers). In cycle models the
+    occurrences are cycle numbers, which a patient never repeats; in rate models they
+    count the rounds in the state, which its copies count together (`round_owners`)."""
+    return f"{risk.name}@{model.entered(risk.source)}"
+
+
+def round_owners(model: BoundModel) -> list[int]:
+    """For each state, the state whose count of rounds its rounds continue (rate models):
+    itself, or for a copy of a state in a treatment phase the first copy of that state.
+    A patient who comes to a state's copy (by an event that moves the phase on, by a
+    wait's end, by entering it) takes round k + 1 after round k in any copy of the state,
+    as it would in the comparator, where it stays in the state itself: every occurrence of
+    a stream is read at most once, and as long as the treatment has changed nothing for a
+    patient, the patient reads the comparator's occurrences."""
+    first: dict[str, int] = {}
+    return [first.setdefault(model.entered(i), i) for i in range(model.n_states)]
 
 
 def risk_purposes(model: BoundModel) -> tuple[str, ...]:

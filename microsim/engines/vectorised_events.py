@@ -10,12 +10,14 @@ the state gets a latent time by inverting its cumulative hazard from occurrence 
 purpose (k = the patient's count of rounds in that state, rounds ended by a change point
 included), the earliest wins unless a change point (a treatment window opening or
 closing, a `within` memory window running out) or the horizon comes first, and then
-memory, clocks and state move on. A wait for treatment (`BoundModel.delay`) ends at each
+memory, clocks and state move on. The copies of a state in a treatment phase read its
+purposes and continue its count of rounds (`plan.round_owners`), so the Philox blocks a
+patient holds are kept per state and its copies together. A wait for treatment (`BoundModel.delay`) ends at each
 patient's deadline, which is one more change point of its waiting copies: reached first, it
 moves the patient to the treated copy (a phase change, as the event engine records it).
 Patients who are absorbed or reach the horizon leave
 the live set, so a step costs work in proportion to the patients still running, and
-memory holds a few numbers and one Philox block (four draws) per risk of each state a
+memory holds a few numbers and one Philox block (four draws) per purpose of each state a
 patient, however long the horizon.
 
 The two engines agree record for record (patient, from, to, risk), and on times within
@@ -92,11 +94,20 @@ class _Batch:
         self.on = np.full(n, inf) if window is None else np.asarray(window.on, float)
         self.off = np.full(n, inf) if window is None else np.asarray(window.off, float)
         self.plans = self.risk_plans()
-        # draws: each state's purpose keys, and each patient's current Philox block of them
+        # draws: the purpose keys of each state and its copies (held by the state whose
+        # rounds they continue), each state's risks' places among them, and each patient's
+        # Philox blocks of them
         self.seed, self.ids = np.uint64(seed), ids.astype(np.uint64)
-        self.keys = [np.array([streams.purpose_id(purposes[r]) for r in risks], np.uint64)
-                     for risks in self.from_state]
-        self.blocks = [np.empty((n, len(risks), 4)) for risks in self.from_state]
+        self.owners = np.asarray(plan.round_owners(model), np.int64)
+        names = [dict() for _ in range(model.n_states)]  # owner -> {purpose: place}
+        for i, risks in enumerate(self.from_state):
+            for r in risks:
+                names[self.owners[i]].setdefault(purposes[r], len(names[self.owners[i]]))
+        self.keys = [np.array([streams.purpose_id(p) for p in held], np.uint64) for held in names]
+        self.slots = [np.array([names[self.owners[i]][purposes[r]] for r in risks], np.int64)
+                      for i, risks in enumerate(self.from_state)]
+        self.blocks = [np.empty((n, len(held), 4)) for held in names]
+        self.cached = [np.full((n, len(held)), -1, np.int64) for held in names]
         starts = np.asarray(plan.start_states(
             model, streams.uniforms(seed, ids, plan.START_PURPOSE), mult), np.int64).reshape(-1)
         self.state = starts
@@ -174,8 +185,9 @@ class _Batch:
                 change[pos] = np.minimum(self.end, self.deadline.take(rows))
             if not risks:
                 continue
-            u = event_kernels.draws(self.seed, self.keys[i], self.ids, rows, self.rounds[i],
-                                    self.blocks[i])
+            g = self.owners[i]
+            u = event_kernels.draws(self.seed, self.keys[g], self.slots[i], self.ids, rows,
+                                    self.rounds[g], self.cached[g], self.blocks[g])
             e = -np.log(u)  # numpy's logarithm on an array, as the event engine's draws
             draws[:len(risks), pos] = e
             m, off, bound = event_kernels.multipliers(self.risk_arrays[i], rows, at,
