@@ -2,7 +2,9 @@
 seed, patient id, purpose, occurrence), so a patient's history does not change with the
 population size, the batch size or the order in which patients are given; a different
 seed gives different histories. Checked on both engines, with memory, events, covariates
-and (in the rate model) enough events per patient to run past the precomputed draws."""
+and (in the rate model) enough events per patient to run past the precomputed draws; and
+on the rate model under a strategy with treatment phases (a wait for treatment, a second
+treatment), whose copies of a state continue the state's draws."""
 import functools
 
 import numpy as np
@@ -13,8 +15,11 @@ from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
 from microsim.patients.population import draw_population
 from microsim.simulation import simulate
-from support import (after, records_by_patient, attribute, effect, event, horizon, model_of, outcomes, population,
-                     probability, rate, scenario_text, start, state, table, transition)
+from microsim.binding import bind
+from microsim.scenario import parse_scenario
+from support import (after, records_by_patient, attribute, effect, event, horizon, nested, outcomes,
+                     population, probability, rate, scenario_text, start, state, strategy, table,
+                     transition)
 
 DISCOUNTS = outcomes(discount_costs=0.035, discount_effects=0.015)
 POPULATION = population(1000, attribute("smoker", "yesno", prevalence=0.4),
@@ -48,15 +53,25 @@ CYCLE_MODEL = scenario_text(  # attained age is unbounded: the moves compete
     POPULATION)
 
 
+PHASES = "\n".join((RATE_MODEL, strategy("usual", comparator=True), strategy(
+    "treat", start_on="sick", start_delay=0.5, stop_on="well",
+    changes=[nested(transition="sick->dead", hazard_ratio=0.5)],
+    then=[nested(name="second", changes=[nested(transition="well->sick", hazard_ratio=0.8)])])))
+
 SEED = 31
-ENGINES = {"rate": (RATE_MODEL, simulate_events), "cycle": (CYCLE_MODEL, simulate_cycles)}
+ENGINES = {"rate": (RATE_MODEL, simulate_events), "cycle": (CYCLE_MODEL, simulate_cycles),
+           "phases": (PHASES, simulate_events)}
+
+
+def bound(name: str):
+    """The model of ENGINES[name]: the phases' under its treating strategy."""
+    scenario = parse_scenario(ENGINES[name][0])
+    return bind(scenario, strategy="treat" if name == "phases" else None)
 
 
 @pytest.fixture(scope="module", params=sorted(ENGINES))
 def setup(request):
-    text, engine = ENGINES[request.param]
-    model = model_of(text)
-    return model, engine
+    return bound(request.param), ENGINES[request.param][1]
 
 
 def people(model, ids):
@@ -103,7 +118,7 @@ def test_histories_do_not_depend_on_order(setup):
 def runs(name):
     """The run of patients 0..999 in one batch, and runs it must match on the patients they
     share: (patient ids, run) for another size, batch sizes 1 and 7, and another order."""
-    model = model_of(ENGINES[name][0])
+    model = bound(name)
     reference = simulate(model, people(model, np.arange(1000)), SEED, batch_size=1000, keep_exposure=True)
     first, shuffled = np.arange(100), np.random.default_rng(9).permutation(1000)
     others = [(first, simulate(model, people(model, first), SEED, batch_size=size, keep_exposure=True))
@@ -121,10 +136,7 @@ def test_simulation_rows_do_not_depend_on_size_batch_or_order(name, part):
         assert np.array_equal(rows(run, ids, part), rows(reference, ids, part))
 
 
-@pytest.mark.parametrize("name", [
-    "rate",
-    "cycle",
-])
+@pytest.mark.parametrize("name", sorted(ENGINES))
 def test_time_in_state_rows_do_not_depend_on_size_batch_or_order(name):
     reference, others = runs(name)
     for ids, run in others:
@@ -149,7 +161,7 @@ def test_threads_change_nothing(name, tmp_path):
     histories in the same order (microsim.threads)."""
     from microsim import threads
     import pandas as pd
-    model = model_of(ENGINES[name][0])
+    model = bound(name)
     patients = people(model, np.arange(600))
     sims = {}
     try:
