@@ -54,13 +54,13 @@ def named(model, h, ids) -> dict:
 
 
 def by_engine(text: str, name: str, seed: int = 7):
-    """{engine: (comparator's named records, strategy's)} for patients IDS, and the
-    strategy's model."""
+    """{engine: (comparator's named records, strategy's)} for patients IDS, the strategy's
+    model and its multipliers (whose window says whom it treats)."""
     scenario = parse_scenario(text)
     usual, treat = bind(scenario, strategy="usual"), bind(scenario, strategy=name)
-    runs = [both_engines(model, IDS, seed)[:2] for model in (usual, treat)]
-    return {engine: tuple(named(model, run[j], IDS) for model, run in zip((usual, treat), runs))
-            for j, engine in enumerate(("simpy", "vectorised"))}, treat
+    runs = [both_engines(model, IDS, seed) for model in (usual, treat)]
+    return ({engine: tuple(named(model, run[j], IDS) for model, run in zip((usual, treat), runs))
+             for j, engine in enumerate(("simpy", "vectorised"))}, treat, runs[1][2])
 
 
 def assert_same_history(one, two, rtol):
@@ -78,7 +78,7 @@ def test_a_treatment_that_starts_on_entry_and_acts_elsewhere_leaves_every_histor
     text = scenario_text(*ONE_WAY, COMPARATOR, strategy(
         "treat", start_on="sick", changes=[nested(transition="fall_ill", hazard_ratio=0.5),
                                            nested(cost=900)]))
-    runs, treat = by_engine(text, "treat")
+    runs, treat, _ = by_engine(text, "treat")
     assert "sick+treat" in treat.states
     for engine, (usual, treated) in runs.items():
         for pid in IDS.tolist():
@@ -96,7 +96,7 @@ def test_a_treatment_an_event_starts_that_changes_no_risk_leaves_every_history_a
     # copy's round 0, which would also reuse a draw already read in the state)
     text = scenario_text(*BACK_AND_FORTH, COMPARATOR, strategy(
         "treat", start_on="flare", changes=[nested(cost=900), nested(utility=-0.1)]))
-    runs, treat = by_engine(text, "treat")
+    runs, treat, _ = by_engine(text, "treat")
     for engine, (usual, treated) in runs.items():
         for pid in IDS.tolist():
             assert_same_history(usual[pid], treated[pid], RTOL[engine])
@@ -106,25 +106,30 @@ def test_a_treatment_an_event_starts_that_changes_no_risk_leaves_every_history_a
     assert np.isin(vectorised.target, copies).sum() > len(IDS) / 2
 
 
-def test_patients_a_treatment_does_not_reach_keep_the_comparators_histories():
-    # by hand: only marked patients are eligible, and the treatment acts on both ways out
-    # of 'sick'; unmarked patients pass through the copies with the comparator's records,
-    # while marked ones differ (so the check could fail on a strategy that changed nothing)
+WHO = {"not eligible": dict(eligible=nested(all=[dict(attribute="marker", equals=True)])),
+       "not taken up": dict(uptake=0.5)}
+
+
+@pytest.mark.parametrize("who", sorted(WHO))
+def test_patients_a_treatment_does_not_reach_keep_the_comparators_histories(who):
+    # by hand: only marked patients are eligible (or half take the treatment up: the
+    # patients' own 'uptake' draws), and the treatment acts on both ways out of 'sick';
+    # the others pass through the copies with the comparator's records, while treated ones
+    # differ (so the check could fail on a strategy that changed nothing)
     text = scenario_text(
         *BACK_AND_FORTH, population(600, attribute("marker", "yesno", prevalence=0.5)),
         COMPARATOR, strategy(
-            "treat", start_on="sick", eligible=nested(all=[dict(attribute="marker", equals=True)]),
+            "treat", start_on="sick", **WHO[who],
             changes=[nested(transition="recover", hazard_ratio=1.5),
                      nested(transition="die_sick", hazard_ratio=0.5)]))
-    runs, treat = by_engine(text, "treat")
-    from microsim.patients.population import draw_population
-    marked = draw_population(treat.scenario.population, 7, IDS)["marker"].to_numpy(bool)
-    assert marked.any() and (~marked).any()
-    for engine, (usual, treated) in runs.items():
+    runs, treat, mult = by_engine(text, "treat")
+    treated = np.isfinite(mult.window.on)
+    assert 0.3 < treated.mean() < 0.7
+    for engine, (usual, phased) in runs.items():
         differ = 0
-        for pid, is_marked in zip(IDS.tolist(), marked.tolist()):
-            if is_marked:
-                differ += usual[pid][1] != treated[pid][1]
+        for pid, is_treated in zip(IDS.tolist(), treated.tolist()):
+            if is_treated:
+                differ += usual[pid][1] != phased[pid][1]
             else:
-                assert_same_history(usual[pid], treated[pid], RTOL[engine])
-        assert differ > marked.sum() / 4
+                assert_same_history(usual[pid], phased[pid], RTOL[engine])
+        assert differ > treated.sum() / 4
