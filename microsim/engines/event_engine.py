@@ -122,18 +122,18 @@ class Batch:
                 winners[i] = np.asarray(rs)[latent.argmin(axis=1)].tolist()
         return times, winners
 
-    def more_draws(self, b: int, r: int, start: int, k: int) -> list[float]:
-        """Occurrences start .. k + 4 DEPTH - 1 of risk r's purpose for patient row b (a
-        copy's rounds may start past its first draws: they continue the state's)."""
+    def more_draws(self, b: int, r: int, start: int, reach: int) -> list[float]:
+        """Occurrences start .. reach + 4 DEPTH - 1 of risk r's purpose for patient row b
+        (a copy's rounds may start past its first draws: they continue the state's)."""
         u = streams.sequence(self.seed, int(self.ids[b]), self.purposes[r], start,
-                             k + 4 * DEPTH - start)
+                             reach + 4 * DEPTH - start)
         return (-np.log(u)).tolist()
 
-    def more_rounds(self, b: int, i: int, start: int, k: int) -> tuple[list, list]:
-        """Rounds start .. k + 4 DEPTH - 1 of an all-constant state, for patient row b."""
+    def more_rounds(self, b: int, i: int, start: int, reach: int) -> tuple[list, list]:
+        """Rounds start .. reach + 4 DEPTH - 1 of an all-constant state, for patient row b."""
         rs = self.from_state[i]
         with np.errstate(divide="ignore"):
-            latent = (np.array([self.more_draws(b, r, start, k) for r in rs])
+            latent = (np.array([self.more_draws(b, r, start, reach) for r in rs])
                       / self.rates[b, rs, None])
         return latent.min(axis=0).tolist(), np.asarray(rs)[latent.argmin(axis=0)].tolist()
 

@@ -12,11 +12,11 @@ included), the earliest wins unless a change point (a treatment window opening o
 closing, a `within` memory window running out) or the horizon comes first, and then
 memory, clocks and state move on. The copies of a state in a treatment phase read its
 purposes and continue its count of rounds (`plan.round_owners`), so the Philox blocks a
-patient holds are kept per state and its copies together. A wait for treatment (`BoundModel.delay`) ends at each
-patient's deadline, which is one more change point of its waiting copies: reached first, it
-moves the patient to the treated copy (a phase change, as the event engine records it).
-Patients who are absorbed or reach the horizon leave
-the live set, so a step costs work in proportion to the patients still running, and
+patient holds are kept per state and its copies together. A wait for treatment
+(`BoundModel.delay`) ends at each patient's deadline, which is one more change point of
+its waiting copies: reached first, it moves the patient to the treated copy (a phase
+change, as the event engine records it). Patients who are absorbed or reach the horizon
+leave the live set, so a step costs work in proportion to the patients still running, and
 memory holds a few numbers and one Philox block (four draws) per purpose of each state a
 patient, however long the horizon.
 
@@ -118,7 +118,7 @@ class _Batch:
         self.delay_to = (np.arange(model.n_states) if model.delay_to is None
                          else model.delay_to).astype(np.int64)
         self.deadline = np.where(self.waiting[starts], self.delay, inf)
-        self.rounds = np.zeros((model.n_states, n), np.int64)
+        self.rounds = np.zeros((model.n_states, n), np.int64)  # the owners' rows are used
         self.records = [(np.arange(n), 0.0, START, starts.copy(), START)]
 
     def risk_plans(self) -> event_kernels.RiskPlans:
