@@ -8,15 +8,17 @@ to reach is usually never reached, the mean is off by its expected cost and the 
 nothing of it, so the test cries "disagrees" at a correct engine.
 
 The analytic side knows each way's expected number per patient mu (a state's entries are
-its starts and the transitions into it from elsewhere) and its mean value c per occurrence
-(a transition's or event's one-off cost or disutility; a state's expected accrued value over
-its expected entries). A rare way's count is about Poisson (Le Cam 1960, "An approximation
-theorem for the Poisson binomial distribution", Pacific J. Math. 10:1181-1197), so its part
-of a patient's variance is about mu c^2, the compound-Poisson variance mu E[C^2] with the
-variation of C left out (common practice; from memory: Klugman, Panjer & Willmot 1998, Loss
-Models, section 4.6), which makes it a lower bound. A way is rare here when it is expected
-at most RARE times per patient, where the Poisson variance mu c^2 exceeds the Bernoulli
-mu (1 - mu) c^2 by at most a quarter.
+its starts and the transitions into it from elsewhere) and the mean difference c one
+occurrence makes (a transition's or event's one-off cost or disutility; a state's expected
+value less what its time would have accrued in the states it is entered from, over its
+expected entries: to first order what entering it changes, so a state that only replaces
+time of the same value adds nothing). A rare way's count is about Poisson (Le Cam 1960, "An
+approximation theorem for the Poisson binomial distribution", Pacific J. Math.
+10:1181-1197), so its part of a patient's variance is about mu c^2, the compound-Poisson
+variance mu E[C^2] with the variation of C left out (common practice; from memory: Klugman,
+Panjer & Willmot 1998, Loss Models), which makes it a lower bound; `variances` takes the
+Bernoulli mu (1 - mu) c^2, lower still for a way that recurs. A way is rare here when it is
+expected at most RARE times per patient, where the two differ by at most a quarter.
 
 Everything is a sum over patients (`WaySums`), so batches add up as the comparison's do.
 """
@@ -112,18 +114,21 @@ class WaySums:
 
     def differences(self, measure: str) -> np.ndarray:
         """(W,) the expected difference each way makes to the outcome, summed over the
-        patients: a transition's or event's own value; a state's value less what its time
-        would have accrued at the value per unit time of the states it is entered from (of
-        the start shares, for a start in it), to first order what entering it changes. A
-        state of the same value as those it replaces (life years in 'sick' instead of
-        'well') makes none."""
+        patients: a transition's or event's own value; a state's value less what the
+        patient would have accrued instead, to first order: at the value per unit time of
+        the state it is entered from, for as long as a stay in the one entered lasts but
+        no longer than a stay in the one left (a start in it: at the start shares' value
+        per unit time). A state of the same value as those it replaces (life years in
+        'sick' instead of 'well') makes none; one that only takes the place of a short
+        stay elsewhere makes about its own value."""
         value, time = self.value[measure], self.time[:, WEIGHTING[measure]]
         with np.errstate(divide="ignore", invalid="ignore"):
             per_time = np.where(time > 0, value / time, 0.0)
+            stay = np.where(self.count > 0, time / self.count, 0.0)  # per entry
             at_start = self.starts @ per_time / max(float(np.sum(self.starts)), 1e-300)
-            instead = np.where(self.count > 0, (per_time @ self.moves + self.starts * at_start)
-                               / self.count, 0.0)
-        return value - time * instead
+        # instead[u, s]: what a patient entering s from u would have accrued in u meanwhile
+        instead = per_time[:, None] * np.minimum(stay[:, None], stay[None, :])
+        return value - (self.moves * instead).sum(axis=0) - self.starts * at_start * stay
 
     def variances(self, measure: str) -> np.ndarray:
         """(W,) each rare way's variance per patient, mu (1 - mu) c^2 with mu its expected
