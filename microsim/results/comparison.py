@@ -18,6 +18,18 @@ patients (the common-practice n >= 30) an outcome is "not tested" rather than te
 a collapsed standard error. The average patient's paired test (where it is simulated)
 follows the same rule.
 
+The patients' own SE cannot show a way the model expects only a few times among them (a
+costly state that 0.3 of 300 patients are expected to reach, `rare_ways`): the sample
+usually lacks it, and with it its part of the variance, so the mean is off by the way's
+expected value on an SE that knows nothing of it. So a mean's standard error is never taken
+below the one the rare ways' compound-Poisson variance gives, which the model knows (the
+variance under the hypothesis tested, as a score test takes it: Rao 1948, "Large sample
+tests of statistical hypotheses", Proc. Camb. Phil. Soc. 44:50-57). A way expected m times
+that the sample lacks then moves t by at most about sqrt(m), and the rest of the outcome is
+still tested (an error in a common state's cost is still found); the test column says when
+the largest such way is expected fewer than SEEN times, since its own value is then hardly
+checked. The floor only ever widens an SE, so it cannot raise an alarm.
+
 A comparison with no Monte-Carlo error at all (every patient certain to be in a state, or
 an outcome equal for every patient) is not a statistical question: it agrees when the two
 numbers are equal within numerical error (ROUNDOFF, relative), and the table says so in its
@@ -48,6 +60,7 @@ from microsim.cohort.analytic import CohortResult, analytic
 from microsim.patients.multipliers import Multipliers, average_patient, cohort_multipliers
 from microsim.patients.population import subgroup_attributes
 from microsim.results.outcomes import outcome_values
+from microsim.results.rare_ways import WaySums
 from microsim.simulation import Simulation, report_grid, simulate
 
 FAMILY_ALPHA = 0.001
@@ -61,6 +74,10 @@ UNSEEN = ("not tested: the patients did not vary, though the model does, so thei
           "error is unknown")
 FEW = (f"not tested: fewer than {FEWEST_FOR_MEANS} patients, too few for the central limit "
        "theorem")
+SEEN = 5  # expected occurrences among the patients below which a way is often missing
+# (a Poisson count with mean 5 is 0 in 0.7% of samples)
+FLOORED = (f"{MONTE_CARLO}, on a standard error no less than the model's own variance of its "
+           "rare ways")
 NOT_TESTED = (UNSEEN, FEW)
 SHARE_COLUMNS = ["time", "state", "simulated", "analytic", "se", "z", "p_value", "test"]
 
@@ -243,6 +260,7 @@ class ComparisonSums:
     average: dict = field(default_factory=dict)  # measure -> [population, average] sums
     paired: dict = field(default_factory=dict)  # measure -> Moments of average - simulated
     result: CohortResult | None = None  # the first batch's, for the counterpart's name
+    ways: WaySums | None = None  # each way's expected number and value, for the rare ways
     # whether the model's outcomes can vary for these patients (else every patient's outcome
     # is certain, and equal outcomes are no evidence about the Monte-Carlo error): life years
     # where the share alive is strictly between 0 and 1, the others where any share is or an
@@ -252,6 +270,7 @@ class ComparisonSums:
     def __post_init__(self):
         if self.cohort is None:
             self.cohort = cohort_multipliers(self.model)
+        self.ways = WaySums(self.model)
 
     def add(self, sim: Simulation, result: CohortResult | None = None) -> None:
         """One batch: its simulation and (when the caller has it) its analytic result;
@@ -288,6 +307,7 @@ class ComparisonSums:
                 self.subgroups.setdefault((attribute, str(level)), Shares()).add(inside[rows], p)
         simulated = sim.values
         expected = outcome_values(model, result.exposure)
+        self.ways.add(result.exposure, result.trace[:, 0], sim.size)
         for measure, values in simulated.items():
             self.deviations.setdefault(measure, Moments()).add(values - expected[measure])
             sums = self.totals.setdefault(measure, [0.0, 0.0])
@@ -343,23 +363,39 @@ class ComparisonSums:
             rows.append((measure, simulated, expected, moments.se, simulated - expected))
         table = pd.DataFrame(rows, columns=["measure", "simulated", "analytic", "se", "difference"])
         n = self.shares.n
-        p, still = mean_p_values(table.difference, table.se, table.analytic, n)
+        still, _ = without_error(table.difference, table.se, table.analytic)
         # no variation among the patients is no Monte-Carlo error only where the model
         # cannot vary; where it can (a few patients, a rare event) the SE is unknown
         varies = np.array([self.varies["alive" if m == "life_years" else "any"]
                            for m in table.measure], bool)
         certain = still & ~varies
+        rare = [self.rare_ways(m, n) for m in table.measure]
+        floor = np.array([f for f, _ in rare])
+        se = np.where(still, table.se, np.maximum(table.se, np.sqrt(floor / max(n, 1))))
+        p, _ = mean_p_values(table.difference, se, table.analytic, n)
         untested = np.where(certain, "", np.where(n < FEWEST_FOR_MEANS, FEW,
                                                   np.where(still, UNSEEN, "")))
         tested = untested == ""
-        z = np.where(still | ~tested, 0.0,
-                     z_scores(table.difference.to_numpy(), table.se.to_numpy()))
+        z = np.where(still | ~tested, 0.0, z_scores(table.difference.to_numpy(), se))
+        monte_carlo = np.where(se > table.se, [FLOORED + note for _, note in rare], MONTE_CARLO)
         # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
         # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
-            se=np.where(certain, 0.0, np.where(tested, table.se, np.nan)), z=z,
+            se=np.where(certain, 0.0, np.where(tested, se, np.nan)), z=z,
             p_value=np.where(tested, p, 1.0),
-            test=np.where(certain, EXACT, np.where(tested, MONTE_CARLO, untested)))
+            test=np.where(certain, EXACT, np.where(tested, monte_carlo, untested)))
+
+    def rare_ways(self, measure: str, n: int) -> tuple[float, str]:
+        """The variance per patient a mean's rare ways give at least (the sum of their
+        compound-Poisson variances), and what the test column adds when it sets the SE:
+        the largest of them, if it is expected fewer than SEEN times among the patients."""
+        ways = self.ways.variances(measure)
+        largest = int(np.argmax(ways))
+        count = self.ways.count[largest]
+        note = (f" (mostly {self.ways.names[largest]}, expected {count:.2g} times among these "
+                f"{n} patients: its own value is hardly checked; simulate more patients)"
+                if count < SEEN else "")
+        return float(ways.sum()), note
 
     def subgroup_table(self) -> pd.DataFrame:
         frames = [share_table(s, self.grid, self.model.states).assign(attribute=a, level=lv)
@@ -435,6 +471,11 @@ def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str
         if unseen:
             certain += (f"; {unseen} outcome{'s' if unseen != 1 else ''} {label} "
                         "(simulate more patients)")
+    floored = rows[rows.test.str.startswith(FLOORED)]
+    if len(floored):
+        note = max((test[len(FLOORED):] for test in floored.test), key=len)
+        certain += (f"; {', '.join(floored.measure)} tested on a standard error no less than "
+                    f"the model's own variance of its rare ways{note}")
     if worst.p_value >= level:
         return True, (f"The simulation agrees with {counterpart}: the smallest p-value is for "
                       f"{worst.what} ({evidence(worst, n)}; {basis}){certain}.")
@@ -452,8 +493,10 @@ def evidence(row, n: int) -> str:
     if row.kind == "share":
         return (f"exact binomial tail p = {row.p_value:.2g}; {row.simulated * n:.0f} of {n} "
                 f"patients seen against {row.analytic * n:.3g} expected")
+    floored = (", on a standard error no less than the model's own variance of its rare "
+               "ways" if row.test.startswith(FLOORED) else "")
     return (f"Student's t p = {row.p_value:.2g}; t = {row.z:.2f} with {n - 1} degrees of "
-            "freedom")
+            f"freedom{floored}")
 
 
 AVERAGE = "The 'average patient' cohort (everyone given the mean attributes)"
