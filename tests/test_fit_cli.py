@@ -274,7 +274,10 @@ def test_a_model_without_a_maximum_is_ranked_last_and_never_written(tmp_path, ca
     models = pd.read_csv(tmp_path / "out" / "tiny" / "latest" / "fit_models.csv")
     last = models.iloc[-1]
     assert last.family == "generalised_gamma" and not last.converged
-    assert "no maximum found" in last.note and not last.chosen
+    # the optimiser stops either without a maximum or at a boundary with a singular
+    # information matrix (which one depends on the scipy release); never chosen either way
+    assert ("no maximum found" in last.note or "not positive definite" in last.note)
+    assert not last.chosen
     assert models.converged.iloc[:-1].all() and models.chosen.iloc[0]
 
 
