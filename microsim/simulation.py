@@ -178,8 +178,10 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
     states = np.empty((len(ids), len(grid)), np.int8 if model.n_states < 128 else np.int16)
     values = {m: np.empty(len(ids)) for m in MEASURES}
     treated = np.zeros(len(ids), bool)
-    on_a_treatment = (slice(None) if model.treated_states is None
-                      else np.asarray(model.treated_states, bool))
+    # time on treatment counts in living states only: a patient dead when a window opens
+    # is never treated
+    on_a_treatment = ~np.asarray(model.absorbing, bool) if model.treated_states is None \
+        else np.asarray(model.treated_states, bool)
     copies = treatment_copies(model)
     treated_by = {name: np.zeros(len(ids), bool) for name in copies}
     exposure = Exposure.empty(len(ids), model) if keep_exposure else None
@@ -187,7 +189,7 @@ def simulate(model: BoundModel, patients: pd.DataFrame, seed: int, *, batch_size
         lambda h, part, batch: h.table(patients.iloc[part], model.states,
                                        [r.name for r in model.risks],
                                        None if model.treatment is None else model.treatment.strategy,
-                                       batch.window, phase_codes(model)))
+                                       batch.window, phase_codes(model), treated[part]))
 
     def one_batch(lo: int):
         """Simulate and value the batch from row `lo`, filling its rows of the arrays

@@ -182,14 +182,9 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
 
 def treated_count(sim: Simulation) -> int:
     """How many of a simulation's patients its strategy puts on treatment at some time:
-    with a window, those whose window opens; where treatment starts on entering a state
-    (treatment phases), those who spent time in a treated copy of a state while eligible."""
-    if sim.mult.window is None:
-        return 0
-    treated = sim.model.treated_states
-    if treated is None:
-        return int(np.isfinite(sim.mult.window.on).sum())
-    return int(sim.treated.sum())
+    those who spent time on it alive (with a window, alive when it opens; where treatment
+    starts on entering a state, in a treated copy of a state while eligible)."""
+    return 0 if sim.mult.window is None else int(sim.treated.sum())
 
 
 def treatment_counts(sim: Simulation) -> dict[str, int]:

@@ -46,14 +46,16 @@ class Histories:
     # hand (the compiled cycle engine), so it need not be rebuilt from the records
     cycle_states: np.ndarray | None = None
 
-    def treatment_times(self, window, phases: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
-        """Each patient's start and stop of treatment: the window's, or under treatment
-        phases (`phases`: per state 1 on a treatment, 0 off, -1 absorbing) the first entry
-        into a treated state inside the window and the first entry after it into an
-        untreated living state (or the window's end)."""
+    def treatment_times(self, window, phases: np.ndarray | None,
+                        treated: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Each patient's start and stop of treatment: the window's for a patient it treats
+        (`treated`: alive when it opens, within the horizon), or under treatment phases
+        (`phases`: per state 1 on a treatment, 0 off, -1 absorbing) the first entry into a
+        treated state inside the window and the first entry after it into an untreated
+        living state (or the window's end)."""
         on, off = np.asarray(window.on, float), np.asarray(window.off, float)
         if phases is None:
-            return on, off
+            return np.where(treated, on, np.inf), np.where(treated, off, np.inf)
         p, t, code = self.patient, self.time, phases[self.target]
         start = np.full(self.n_patients, np.inf)
         np.minimum.at(start, p, np.where((code == 1) & (on[p] <= t) & (t < off[p]), t, np.inf))
@@ -62,12 +64,13 @@ class Histories:
         return start, np.where(np.isinf(start), np.inf, stop)
 
     def table(self, patients, state_names, risk_names, strategy: str | None = None,
-              window=None, phases: np.ndarray | None = None) -> pa.Table:
+              window=None, phases: np.ndarray | None = None,
+              treated: np.ndarray | None = None) -> pa.Table:
         """The records as a typed Arrow table: patient id, time, from state, to state,
         event, then the patient's attributes (`patients`: the batch's rows, with ids in
         column 'patient'); under a strategy, its name and each patient's time on treatment
         (`treatment_start`, `treatment_stop`: empty for a patient never treated, or never
-        stopped)."""
+        stopped; `treated`: whether each patient spent time on treatment)."""
         patient_ids = patients["patient"].to_numpy()
         states = pa.array(list(state_names))
         names = list(dict.fromkeys(risk_names))  # an event in several states has one name
@@ -87,7 +90,7 @@ class Histories:
                 pa.array(np.zeros(len(self.time), np.int32)), pa.array([strategy])))
         if window is not None:
             for name, times in zip(("treatment_start", "treatment_stop"),
-                                   self.treatment_times(window, phases)):
+                                   self.treatment_times(window, phases, treated)):
                 at = times[self.patient]
                 table = table.append_column(name, pa.array(np.where(np.isinf(at), None, at),
                                                            pa.float64()))
