@@ -201,15 +201,15 @@ def command_run(args) -> int:
     from microsim.workflow import run_main
     started = time.perf_counter()
     path = Path(args.scenario)
-    say_warnings(read_scenario(path, options=scenario_options(args)))
+    scenario = read_scenario(path, options=scenario_options(args))
+    say_warnings(scenario)
     psa = None
     if args.psa:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
                "patients": args.patients_per_draw, "workers": args.workers or 1,
                "backend": args.backend or "processes", "address": args.address,
                "progress": not args.json}
-    result = run_main(path, args.patients, args.seed, psa, args.engine, args.invalid_draws,
-                      options=scenario_options(args))
+    result = run_main(scenario, args.patients, args.seed, psa, args.engine)
     tables = dict(result.tables)
     if isinstance(result, ServiceResult):  # shared capacity: its own summary
         data, report = service_summary(result), print_service
@@ -269,17 +269,19 @@ def command_validate(args) -> int:
     from microsim.store import scratch_folder
     started = time.perf_counter()
     path = Path(args.scenario)
-    say_warnings(read_scenario(path))
+    scenario = read_scenario(path)
+    say_warnings(scenario)
     with scratch_folder(out_dir(args, path)) if args.histories else nullcontext() as scratch:
         histories = scratch / "histories.parquet" if args.histories else None
-        return validation_report(args, path, started, histories)
+        return validation_report(args, path, scenario, started, histories)
 
 
-def validation_report(args, path: Path, started: float, histories: Path | None) -> int:
+def validation_report(args, path: Path, scenario, started: float,
+                      histories: Path | None) -> int:
     from microsim.capacity.present import VALIDATION_TABLES, print_validation
     from microsim.capacity.run import ServiceResult
     from microsim.workflow import validate
-    check = validate(path, args.patients, args.seed, args.strategy, histories=histories,
+    check = validate(scenario, args.patients, args.seed, args.strategy, histories=histories,
                      engine=args.engine)
     if isinstance(check, ServiceResult):  # shared capacity: queues against queueing theory
         print_validation(check)
@@ -289,8 +291,8 @@ def validation_report(args, path: Path, started: float, histories: Path | None) 
         return 0
     c = next(iter(check.validations.values()))
     subject = "the model as written" if args.strategy is None else f"strategy {args.strategy}"
-    seed = run_seed(args, read_scenario(path))
-    print(f"Validation — {read_scenario(path).title}, {subject}: {check.size} patients, "
+    seed = run_seed(args, scenario)
+    print(f"Validation — {scenario.title}, {subject}: {check.size} patients, "
           f"seed {seed}\nCounterpart: {c.counterpart}")
     worst = c.shares.sort_values("p_value", kind="stable")
     show("State shares furthest from the counterpart, smallest p-value first (simulated, "

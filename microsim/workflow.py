@@ -83,12 +83,17 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
                          {label: dict(c) for label, c in treated_by.items()})
 
 
-def validate(path: Path, patients: int | None = None, seed: int | None = None,
+def scenario_of(source: Path | Scenario, options: dict | None = None) -> Scenario:
+    """A scenario as given, or read from its file (a command reads it once and passes it on)."""
+    return source if isinstance(source, Scenario) else read_scenario(source, options)
+
+
+def validate(source: Path | Scenario, patients: int | None = None, seed: int | None = None,
              strategy: str | None = None, histories: Path | None = None,
              engine: str = "auto") -> PopulationRun:
     """Simulate the scenario (or one strategy) and compare it with its analytic counterpart
     (a service with shared capacity: its queues with queueing theory, a `ServiceResult`)."""
-    scenario = read_scenario(path)
+    scenario = scenario_of(source)
     if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
         names = ", ".join(s.name for s in scenario.strategies) or "none"
         raise ScenarioError("--strategy", f"no strategy {strategy!r}"
@@ -125,19 +130,18 @@ def refuse_too_few(scenario: Scenario, patients: int | None) -> None:
                                    "(their paired differences have a standard error)")
 
 
-def run_main(path: Path, patients: int | None = None, seed: int | None = None,
+def run_main(source: Path | Scenario, patients: int | None = None, seed: int | None = None,
              psa: dict | None = None, engine: str = "auto",
-             invalid_draws: str | None = None, options: dict | None = None) -> MainResult:
+             options: dict | None = None) -> MainResult:
     """Every strategy (or the model as written) on the same patients, validated against
     the analytic counterpart, evaluated, and with PSA when `psa` settings are given
-    (`invalid_draws` overrides the scenario's uncertainty.invalid_draws, `options` the keys
-    of `microsim.scenario.options`; a service with
+    (`options` override the keys of `microsim.scenario.options`; a service with
     shared capacity: `microsim.capacity.run.run_service`, a `ServiceResult`).
 
     What can be refused is refused before any work: the engine, the patients, and the PSA
     (its folder of another run, its backend) by running it first; its finished draws stay
     on disk however the rest ends."""
-    scenario = read_scenario(path, invalid_draws, options)
+    scenario = scenario_of(source, options)
     seed = scenario.simulation.seed if seed is None else seed
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(psa=psa is not None, engine=engine)

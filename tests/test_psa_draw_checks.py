@@ -145,7 +145,19 @@ def test_by_default_a_distribution_beyond_its_role_is_refused_when_read(tmp_path
     assert parse_scenario(two_betas("redraw", NORMAL_UTILITY)).uncertainty.invalid_draws == "redraw"
     path = tmp_path / "scenario.toml"
     path.write_text(text)
-    assert read_scenario(path, invalid_draws="truncate").uncertainty.invalid_draws == "truncate"
+    assert read_scenario(path, {"invalid_draws": "truncate"}).uncertainty.invalid_draws \
+        == "truncate"
+
+
+def test_the_invalid_draws_option_reaches_the_check_made_when_the_file_is_read(tmp_path):
+    """--invalid-draws redraw acts as the key would: the read-time refusal of a normal
+    utility (which can exceed 1) gives way to redrawing, on the command line too."""
+    path = tmp_path / "scenario.toml"
+    path.write_text(two_betas(utility=NORMAL_UTILITY))
+    run = ["run", str(path), "--patients", "20", "--psa", "--draws", "4", "--json",
+           "--out", str(tmp_path / "out")]
+    assert main(run) == 2
+    assert main([*run, "--invalid-draws", "redraw"]) == 0
 
 
 @pytest.mark.parametrize("role", [PROBABILITY, UTILITY, RATE, HAZARD_RATIO, COMPETING_PROBABILITY])

@@ -15,7 +15,7 @@ from .errors import ScenarioError
 KEYS = {  # key -> its section
     "incidence": "economics", "evpi_years": "economics", "evpi_discount": "economics",
     "prevalent_patients": "economics", "budget_years": "economics",
-    "evppi": "uncertainty", "basis": "uncertainty", "two_way": "sensitivity", "break_even": "sensitivity",
+    "evppi": "uncertainty", "basis": "uncertainty", "invalid_draws": "uncertainty", "two_way": "sensitivity", "break_even": "sensitivity",
     "grid": "sensitivity",
 }
 LISTS = ("two_way", "break_even")  # always lists, even of one item

@@ -48,10 +48,8 @@ UNIT_WORD = re.compile(r"[A-Za-z]+")
 TOML_POSITION = re.compile(r"\s*\(at (?:line (\d+), column (\d+)|end of document)\)\s*$")
 
 
-def read_scenario(path: str | Path, invalid_draws: str | None = None,
-                  options: Mapping[str, Any] | None = None) -> Scenario:
+def read_scenario(path: str | Path, options: Mapping[str, Any] | None = None) -> Scenario:
     """Read and check a scenario file; refuse bad input with a `ScenarioError`.
-    `invalid_draws` overrides uncertainty.invalid_draws (the CLI's --invalid-draws);
     `options` {key: value} override the keys of `microsim.scenario.options`."""
     path = Path(path)
     try:
@@ -64,17 +62,16 @@ def read_scenario(path: str | Path, invalid_draws: str | None = None,
     except UnicodeDecodeError as error:
         raise ScenarioError(path.name, f"is not UTF-8 text (bad byte at offset {error.start})") \
             from None
-    return parse_scenario(text, source=path, invalid_draws=invalid_draws, options=options)
+    return parse_scenario(text, source=path, options=options)
 
 
 def parse_scenario(text: str, source: str | Path | None = None,
-                   invalid_draws: str | None = None,
                    options: Mapping[str, Any] | None = None) -> Scenario:
     """Check scenario text; `source` names it in errors and anchors relative file paths."""
     label = Path(source).name if source is not None else "scenario"
     data = load_toml(text, label)
     try:
-        return scenario_from_data(with_options(data, options or {}), source, invalid_draws)
+        return scenario_from_data(with_options(data, options or {}), source)
     except ScenarioError as error:
         raise named_by_option(error, options or {}) from None
 
@@ -98,8 +95,7 @@ def load_toml(text: str, label: str) -> dict[str, Any]:
         raise ScenarioError(label, "is nested too deeply to read") from None
 
 
-def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
-                       invalid_draws: str | None = None) -> Scenario:
+def scenario_from_data(data: dict[str, Any], source: str | Path | None = None) -> Scenario:
     """Build and check a Scenario from an already-parsed TOML document."""
     reading = Reading()
     doc = Node(data, "", reading, TOP_KEYS)
@@ -137,8 +133,6 @@ def scenario_from_data(data: dict[str, Any], source: str | Path | None = None,
     capacity = read_capacity(doc, base, time)
     draft = replace(draft, capacity=capacity, strategies=strategies_with_capacity(
         doc.nodes("strategies", None), draft.strategies, capacity, base))
-    if invalid_draws is not None:
-        draft = replace(draft, uncertainty=replace(draft.uncertainty, invalid_draws=invalid_draws))
     found = check_scenario(draft, reading)
     found += check_strategies(draft, reading) + check_uncertainty(draft) + check_economics(draft)
     check_capacity(draft, reading)
