@@ -146,10 +146,14 @@ def print_summary(result: MainResult) -> None:
                 if "population_evpi" in p.evpi else ""),
              p.evpi[(p.evpi.threshold - s.economics.threshold).abs() == near.min()])
         if p.evppi is not None:
+            from microsim.uncertainty.evppi import cap_words
             rows = p.evppi[(p.evppi.threshold - s.economics.threshold).abs() == near.min()]
             show("Expected value of partial perfect information per patient (regression on "
                  "the PSA sample, Strong, Oakley & Brennan 2014; SE by wild bootstrap and "
-                 "over the draws)", rows.drop(columns=["method", "edf", "edf_fits"]))
+                 "over the draws)", rows.drop(columns=["method", "edf", "edf_fits", "above_evpi"]))
+            capped = cap_words(p.evppi, s.economics.currency)
+            if capped:
+                print(capped)
             for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):
                 print(f"  {group}: {method}")
         if p.variance is not None:

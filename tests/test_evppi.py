@@ -23,6 +23,7 @@ import pytest
 from scipy import stats
 
 from microsim.decision import economics
+from microsim.uncertainty import evppi
 from microsim.uncertainty.evppi import evppi_table, partial_value
 from microsim.uncertainty.smoothing import Smoother
 from support import Z
@@ -149,3 +150,26 @@ def test_the_smoother_refuses_what_it_cannot_fit():
         Smoother(rng.normal(size=(300, 4)))  # 4^4 = 256 coefficients
     with pytest.raises(ValueError, match="1 to 4 inputs"):
         Smoother(rng.normal(size=(5000, 5)))
+
+
+def test_an_estimate_above_evpi_is_capped_at_it_and_the_excess_is_recorded(monkeypatch):
+    # the bound EVPPI <= EVPI (common practice) holds for the true values; an estimate
+    # from a regression on few draws can break it, so one is forced here and must come out
+    # capped, with the excess kept in above_evpi and said in words
+    theta, effect, cost = psa_sample(seed=3)
+    draws = pd.DataFrame({"draw": np.repeat(np.arange(N_DRAWS), 2),
+                          "strategy": np.tile(["usual", "a"], N_DRAWS),
+                          "costs_discounted": np.column_stack([np.zeros(N_DRAWS), cost]).ravel(),
+                          "qalys_discounted": np.column_stack([np.zeros(N_DRAWS), effect]).ravel()})
+    parameters = pd.DataFrame({"draw": np.arange(N_DRAWS), "t1": theta[:, 0]})
+    evpi = economics.per_person_evpi(draws, THRESHOLDS).evpi.to_numpy()
+    over = evpi + np.array([0.0, 25.0, -1.0])  # above the bound at the second threshold only
+    monkeypatch.setattr(evppi, "partial_value",
+                        lambda *a, **k: evppi.Partial(over, np.ones(3), (2.0, 2.0)))
+    table = evppi_table(parameters, draws, [("t1",)], THRESHOLDS, "usual", seed=5)
+    np.testing.assert_allclose(table.evppi, np.minimum(over, evpi))
+    np.testing.assert_allclose(table.above_evpi, [0.0, 25.0, 0.0], atol=1e-9)
+    words = evppi.cap_words(table, "GBP")
+    assert words.startswith("EVPPI capped at EVPI in 1 of 3 rows")
+    assert "by at most 25 GBP per patient, for t1 at threshold 3500" in words
+    assert evppi.cap_words(table.assign(above_evpi=0.0), "GBP") is None

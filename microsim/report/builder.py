@@ -27,6 +27,7 @@ from microsim.report.style import rendered
 from microsim.report.tables import (CI95, Column, interval, nonnegative_interval,
                                     normal_interval, number, percent, whole)
 from microsim.report.words import decision, psa_tables
+from microsim.uncertainty.evppi import cap_words
 
 REPORT = "report.html"
 FIGURES = "figures"
@@ -332,7 +333,7 @@ class Report:
                       if "population_evppi" in evppi else []),
                     Column("regression", ("method",))],
                     f"Expected value of partial perfect information at {number(near)} {cur} "
-                    "per QALY (Strong, Oakley & Brennan 2014)"))
+                    "per QALY (Strong, Oakley & Brennan 2014)", cap_words(evppi, cur) or ""))
             variance = run.table("psa_variance")
             if variance is not None:
                 found.append(tables.table("psa_variance", variance, [

@@ -27,6 +27,11 @@ for high dimensional linear models", Annals of Statistics 21:255-285), each fit'
 held where GCV chose it. The draws': the sample variance over draws of
 max_k g_k - g_k* (k* the strategy best on average) over the number of draws, the standard
 error of a mean (common practice).
+
+EVPPI cannot exceed EVPI (perfect information on some parameters is worth no more than on
+all of them; common practice), but an estimate can, by regression error or by few draws:
+the table shows it capped at the EVPI of the same draws, and `above_evpi` says by how much
+the estimate exceeded it (0 where it did not), so a cap is seen rather than hidden.
 """
 from __future__ import annotations
 
@@ -99,7 +104,7 @@ def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresho
     """EVPPI per threshold for each group of parameters (names), beside the EVPI of the
     same draws: threshold, group, parameters, evppi, se, evpi, edf (the largest effective
     degrees of freedom of the group's fits, a number), edf_fits (each fit's, in words),
-    method.
+    method, above_evpi (how far the estimate exceeded the EVPI it is capped at).
 
     `parameters` holds each draw's values (column `draw`, one per parameter), `results`
     each draw's discounted costs and QALYs per strategy (the PSA's tables)."""
@@ -114,12 +119,27 @@ def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresho
     for group in groups:
         found = partial_value(values[list(group)].to_numpy(dtype=float),
                               gains["qalys"].to_numpy(), gains["costs"].to_numpy(), lam, seed)
+        capped = np.minimum(found.evppi, evpi)
         frames.append(pd.DataFrame({
             "threshold": lam, "group": " + ".join(group), "parameters": len(group),
-            "evppi": found.evppi, "se": found.se, "evpi": evpi,
+            "evppi": capped, "se": found.se, "evpi": evpi, "above_evpi": found.evppi - capped,
             "edf": max(found.edf), "edf_fits": fit_words(order, found.edf),
             "method": smoothing_words(len(group))}))
     table = pd.concat(frames, ignore_index=True)
     for column in ("group", "edf_fits", "method"):
         table[column] = table[column].astype("string")
     return table
+
+
+def cap_words(table: pd.DataFrame, currency: str) -> str | None:
+    """A sentence for the rows whose estimate exceeded the EVPI it is capped at, or None."""
+    if "above_evpi" not in table:  # a run folder written before the cap
+        return None
+    over = table[table.above_evpi > 0]
+    if not len(over):
+        return None
+    worst = over.loc[over.above_evpi.idxmax()]
+    return (f"EVPPI capped at EVPI in {len(over)} of {len(table)} rows (an estimate above "
+            f"its bound is estimation error; by at most {worst.above_evpi:.4g} {currency} "
+            f"per patient, for {worst.group} at threshold {worst.threshold:g}); more PSA "
+            "draws narrow it.")
