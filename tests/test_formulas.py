@@ -186,12 +186,21 @@ def test_sensitivity_cannot_vary_a_derived_parameter_and_checks_it_on_grids():
     two_way = section("sensitivity", two_way=["q", "p_death"])
     assert_refused(two_state({"formula": "q / 2"}, two_way, q={"value": 0.3, "low": 0.1,
                                                                  "high": 0.5}),
-                   "sensitivity.two_way[1]", "is derived (computed by its formula)")
+                   "sensitivity.two_way[1]", "'p_death' is derived (computed by its formula "
+                   "from q); vary the parameters it is computed from")
     scan = section("sensitivity", break_even=["q"], grid=5)  # q = 0, 0.1, ..., 0.4
     assert_refused(two_state({"formula": "((q - 0.2) ^ 2) ^ -1 / 1000"}, scan,
                              q={"value": 0.3, "low": 0.0, "high": 0.4}),
                    "sensitivity.break_even[0]", "parameters.p_death has no value (column 17 "
                    "of '((q - 0.2) ^ 2) ^ -1 / 1000': 0 to a negative power (-1) with q = 0.2)")
+
+
+def test_evppi_of_a_derived_parameter_is_refused_in_the_words_of_sensitivity():
+    psa = section("uncertainty", evppi=["p_death"])
+    q = {"value": 0.3, "distribution": {"family": "beta", "alpha": 30, "beta": 70}}
+    assert_refused(two_state({"formula": "q / 2"}, psa, q=q), "uncertainty.evppi[0]",
+                   "'p_death' is derived (computed by its formula from q); list as one group "
+                   "the parameters it is computed from")
 
 
 def test_one_way_sensitivity_of_an_input_moves_its_derived_parameter():

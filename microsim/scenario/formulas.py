@@ -327,6 +327,15 @@ def inputs(parameters: Mapping[str, Any], name: str) -> list[str]:
     return list(found)
 
 
+def derived_refusal(path: str, parameters: Mapping[str, Any], name: str,
+                    use: str) -> ScenarioError:
+    """The one refusal of a derived parameter where only its inputs can be set: the
+    sensitivity grids vary inputs, EVPPI learns them (`use` says which)."""
+    return ScenarioError(path, f"{name!r} is derived (computed by its formula from "
+                               f"{listing(inputs(parameters, name))}); {use} the "
+                               "parameters it is computed from")
+
+
 def explain(parameters: Mapping[str, Any], name: str, values: Mapping[str, float]) -> str:
     """Why a derived parameter has no value at these (scalar) values of its inputs."""
     known = with_derived(parameters, values)

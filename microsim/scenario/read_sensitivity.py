@@ -6,7 +6,7 @@ import numpy as np
 
 from .errors import ScenarioError
 from .fields import TOLERANCE, Node, Reference, show, undefined
-from .formulas import derived_order, explain, with_derived
+from .formulas import derived_order, derived_refusal, explain, with_derived
 from .rows import attribute_ranges, row_bounds, too_high
 from .spec import ParameterSpec, Scenario, SensitivitySpec
 
@@ -52,8 +52,7 @@ def check_sensitivity(s: Scenario, references: tuple[Reference, ...] | list = ()
                 raise ScenarioError(path, undefined("parameter", name, list(s.parameters)))
             p = s.parameters[name]
             if p.formula is not None:
-                raise ScenarioError(path, f"{name!r} is derived (computed by its formula); "
-                                    "vary the parameters it is computed from")
+                raise derived_refusal(path, s.parameters, name, "vary")
             if p.low is None or p.high is None:
                 raise ScenarioError(path, f"{name!r} has no low..high range; give "
                                     f"parameters.{name} a low and a high")

@@ -7,7 +7,7 @@ from .correlation import covariance_problem, read_correlation_matrix
 from .errors import ScenarioError
 from .fields import (ANY, IDENTIFIER, MAX_PATIENTS, POSITIVE, Node, describe, listing, show,
                      undefined)
-from .formulas import inputs
+from .formulas import derived_refusal, inputs
 from .spec import INVALID_DRAWS, PSA_BASES, NormalGroupSpec, Scenario, UncertaintySpec
 
 UNCERTAINTY_KEYS = ("draws", "patients_per_draw", "correlation", "dirichlet",
@@ -191,6 +191,8 @@ def check_evppi_groups(s: Scenario) -> None:
         for j, name in enumerate(group):
             path = f"uncertainty.evppi[{i}]" + (f"[{j}]" if len(group) > 1 else "")
             defined(s, name, path)
+            if s.parameters[name].formula is not None:
+                raise derived_refusal(path, s.parameters, name, "list as one group")
             if name not in drawn:
                 raise ScenarioError(path, f"{name!r} is not drawn by the PSA (it has no "
                                     "distribution that varies), so learning it is worth "
