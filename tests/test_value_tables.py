@@ -371,6 +371,26 @@ def test_ages_that_the_table_does_not_cover_are_refused():
             "needs a value from time 0; make the first start 0")
 
 
+@pytest.mark.parametrize("by, starts, phrase", [
+    ("age", [60, 70], "starts at age 60, but a patient can be 50 at time 0 and "
+                      "transitions.alive->dead.rate needs a value at every age; make the first "
+                      "start at most 50"),
+    ("time", [1, 5], "starts at 1, but transitions.alive->dead.rate needs a value from time 0"),
+    ("time_in_state", [2, 5], "starts at 2, but transitions.alive->dead.rate needs a value "
+                              "from 0 (entering the state); make the first start 0"),
+])
+def test_a_hazard_table_that_does_not_cover_every_patient_is_refused_as_a_value_table_is(
+        by, starts, phrase):
+    # one rule for every use of a table: the first value is never carried below its start
+    by_table = table("u", by=by, starts=starts, values=[0.08, 0.07])
+    text = alive_dead("rate", {}, by_table, death="u",
+                      attributes=[AGES])
+    with pytest.raises(ScenarioError) as caught:
+        parse_scenario(text)
+    assert caught.value.path == "tables.u.starts"
+    assert phrase in caught.value.message
+
+
 @pytest.mark.parametrize("use", ["utility", "rate"])
 @pytest.mark.parametrize("first", [0, 40])
 def test_an_untruncated_normal_age_below_the_first_start_is_a_warning_with_its_share(use, first):

@@ -136,7 +136,7 @@ def check_reference(s: Scenario, ref: Reference) -> None:
                                 "utility can read a table by level, by age or by time (since "
                                 "the start); give values by time in state through tunnel "
                                 "states instead")
-        check_value_table_covers(s, table, ref)
+        check_table_covers(s, table, ref)
         for where, value in table.entries():
             problem = None if isinstance(value, str) else role.problem(value)
             if problem:
@@ -186,19 +186,21 @@ def entry_uses(s: Scenario, uses: Iterable[Reference]) -> list[Reference]:
     return list(dict.fromkeys(found))
 
 
-def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
-                             youngest: float | None = None) -> None:
-    """A cost or utility by time must start at time 0, and one by age at or below the
+def check_table_covers(s: Scenario, table: TableSpec, ref: Reference,
+                       youngest: float | None = None) -> None:
+    """A table by time or time in state must start at 0, and one by age at or below the
     youngest age a patient can have at time 0 (`youngest`, else `youngest_age`; a start at
-    0 covers every age): every patient needs a value throughout, which a value carried below
-    the first start would only pretend to give."""
-    if ref.table_axes is None or table.by is None:
+    0 covers every age): every patient needs a value, a rate or a probability throughout,
+    which the first value carried below the first start would only pretend to give. One
+    rule for every use, a hazard's as a cost's."""
+    if table.by is None:
         return
     first = table.starts[0]
     where = f"tables.{table.name}.starts"
-    if table.by == "time" and first > 0:
+    if table.by != AGE and first > 0:
+        clock = "time 0" if table.by == "time" else "0 (entering the state)"
         raise ScenarioError(where, f"starts at {show(first)}, but {ref.path} needs a value "
-                            "from time 0; make the first start 0")
+                            f"from {clock}; make the first start 0")
     youngest = youngest_age(s) if youngest is None else youngest
     if youngest == -math.inf:
         return  # an untruncated normal's tail: a warning gives the share below (`warnings`)
@@ -209,9 +211,9 @@ def check_value_table_covers(s: Scenario, table: TableSpec, ref: Reference,
                             "(0 covers every age)")
 
 
-def value_uses(s: Scenario) -> list[Reference]:
-    """The uses of tables as costs or utilities."""
-    return [r for r in s.uses if r.table_axes is not None and r.name in s.tables]
+def table_uses(s: Scenario) -> list[Reference]:
+    """The uses of tables, as hazards, costs or utilities."""
+    return [r for r in s.uses if r.name in s.tables]
 
 
 def check_derived(s: Scenario, ref: Reference) -> None:
@@ -597,11 +599,4 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
                          f"are younger than the first start ({show(first)}); the first value "
                          "is used below it (give the age attribute a lower bound to rule "
                          "that out)")
-        elif table.by == AGE and youngest is not None and first > youngest:
-            found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
-                         f"above the youngest age at time 0 ({show(youngest)}); the first "
-                         "value is used below it")
-        elif table.by != AGE and first > 0:
-            found.append(f"tables.{table.name}.starts: the first start ({show(first)}) is "
-                         "above 0; the first value is used before it")
     return found

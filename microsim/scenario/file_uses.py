@@ -12,7 +12,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from .checks import check_effects, check_level_tables, check_value_table_covers, value_uses
+from .checks import check_effects, check_level_tables, check_table_covers, table_uses
 from .errors import ScenarioError
 from .fields import AGE, Reading, show
 from .population_file import FILE, KIND_WORDS, PopulationFile
@@ -24,13 +24,13 @@ from .spec import DerivedSpec, PopulationSpec, Scenario
 def check_column_uses(s: Scenario, file: PopulationFile) -> None:
     """Effects, eligibility conditions and tables by level on the file's columns, by the
     rules of drawn attributes (a level the column has, a test that suits its kind), and
-    costs and utilities by age from the file's youngest age."""
+    tables by age from the file's youngest age."""
     reading = Reading(file_columns=file.kinds())
     check_effects(s, reading)
     check_level_tables(s, reading)
     ages = file.columns.get(AGE)
-    for use in value_uses(s) if ages is not None else ():
-        check_value_table_covers(s, s.tables[use.name], use, youngest=ages.lowest)
+    for use in table_uses(s) if ages is not None else ():
+        check_table_covers(s, s.tables[use.name], use, youngest=ages.lowest)
     for strategy in s.strategies:
         prefix = f"strategies.{strategy.name}"
         if strategy.eligible is not None:

@@ -174,8 +174,9 @@ class EventSpec:
 class TableSpec:
     """A step function: value[i] holds from starts[i] (inclusive) to starts[i+1].
 
-    Before starts[0] the first value holds (the reader warns when that can happen). A table
-    by an attribute's level has one row of values per level (`levels`, in the file's order);
+    A table must cover every patient where it is used (`checks.check_table_covers`); below
+    starts[0] the first value holds only for an unbounded normal age's tail, with a warning.
+    A table by an attribute's level has one row of values per level (`levels`, in the file's order);
     `by` None is a table by level alone (one band from 0, so one value per level). An entry
     may name a parameter, so that PSA and sensitivity analyses vary it: binding reads the
     table `at` its parameter set, and nothing after binding sees a name."""
