@@ -129,14 +129,28 @@ def cohort_note(scenario) -> str:
     return ""
 
 
+def strategy_model(scenario, strategy: str | None):
+    """The model the cohort commands follow: one strategy's (`--strategy`), or the model as
+    written; an unknown name is refused as `validate --strategy` refuses it."""
+    from microsim.binding import bind
+    from microsim.workflow import refuse_unknown_strategy
+    refuse_unknown_strategy(scenario, strategy)
+    return bind(scenario, strategy=strategy)
+
+
+def of_strategy(strategy: str | None) -> str:
+    return "" if strategy is None else f", strategy {strategy}"
+
+
 def command_trace(args) -> int:
     """The analytic cohort trace."""
     from microsim.cohort.summaries import cohort_trace
-    from microsim.binding import bind
     started, path, scenario = begin(args)
-    trace = cohort_trace(bind(scenario))
-    wide = trace.pivot(index="time", columns="state", values="share")[list(scenario.state_names)]
-    show(f"Cohort trace — {scenario.title} (share of the cohort in each state)",
+    model = strategy_model(scenario, args.strategy)
+    trace = cohort_trace(model)
+    wide = trace.pivot(index="time", columns="state", values="share")[list(model.states)]
+    show(f"Cohort trace — {scenario.title}{of_strategy(args.strategy)} (share of the cohort "
+         "in each state)",
          wide.reset_index(), rows=args.rows)
     write(args, path, {"cohort_trace": trace}, started)
     print(f"{cohort_note(scenario)}\n{CAUTION}")
@@ -147,11 +161,10 @@ def command_chain(args) -> int:
     """Per-cycle probabilities, steady state, absorption (closed form and/or up to the end)
     and expected outcomes of the cohort; each part says which form it takes and why."""
     from microsim.cohort.summaries import chain_summary, expected_outcomes
-    from microsim.binding import bind
     started, path, scenario = begin(args)
-    model = bind(scenario)
+    model = strategy_model(scenario, args.strategy)
     summary = chain_summary(model)
-    print(f"Summary — {scenario.title}")
+    print(f"Summary — {scenario.title}{of_strategy(args.strategy)}")
     for note in summary.notes:
         print(f"\nNote: {note}")
     for part in summary.parts:
@@ -524,9 +537,12 @@ def build_parser() -> argparse.ArgumentParser:
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")
     trace.add_argument("--rows", type=ROWS, default=30, help="rows of the trace to print (default 30)")
-    add("chain", command_chain,
-        "The cohort's Markov chain in figures: per-cycle probabilities, steady state, "
-        "absorption (time in each state, where patients end), expected outcomes.")
+    chain = add("chain", command_chain,
+                "The cohort's Markov chain in figures: per-cycle probabilities, steady state, "
+                "absorption (time in each state, where patients end), expected outcomes.")
+    for sub in (trace, chain):
+        sub.add_argument("--strategy", help="follow this strategy's cohort instead of the "
+                         "model as written")
     validate = add("validate", command_validate, "Simulate the model and compare it, state by "
                    "state and time by time, with its analytic counterpart; say if they agree.")
     population_options(validate)

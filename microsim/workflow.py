@@ -88,17 +88,23 @@ def scenario_of(source: Path | Scenario, options: dict | None = None) -> Scenari
     return source if isinstance(source, Scenario) else read_scenario(source, options)
 
 
+def refuse_unknown_strategy(scenario: Scenario, strategy: str | None) -> None:
+    """A `--strategy` the scenario does not have is refused before any work, naming the
+    ones it has (None, the model as written, always exists)."""
+    if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
+        names = ", ".join(s.name for s in scenario.strategies) or "none"
+        raise ScenarioError("--strategy", f"no strategy {strategy!r}"
+                            f"{did_you_mean(strategy, [s.name for s in scenario.strategies])}; "
+                            f"the scenario has: {names}")
+
+
 def validate(source: Path | Scenario, patients: int | None = None, seed: int | None = None,
              strategy: str | None = None, histories: Path | None = None,
              engine: str = "auto") -> PopulationRun:
     """Simulate the scenario (or one strategy) and compare it with its analytic counterpart
     (a service with shared capacity: its queues with queueing theory, a `ServiceResult`)."""
     scenario = scenario_of(source)
-    if strategy is not None and strategy not in {s.name for s in scenario.strategies}:
-        names = ", ".join(s.name for s in scenario.strategies) or "none"
-        raise ScenarioError("--strategy", f"no strategy {strategy!r}"
-                            f"{did_you_mean(strategy, [s.name for s in scenario.strategies])}; "
-                            f"the scenario has: {names}")
+    refuse_unknown_strategy(scenario, strategy)
     seed = scenario.simulation.seed if seed is None else seed
     if scenario.capacity is not None:  # patients share capacity: microsim.capacity runs it
         refuse_options(engine=engine, histories=histories is not None)

@@ -15,6 +15,7 @@ import argparse
 import errno
 import hashlib
 import json
+import math
 import os
 import signal
 import subprocess
@@ -30,7 +31,7 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import build_parser, main
 from microsim.scenario import read_scenario
-from support import horizon, probability, rate, scenario_text, start, state
+from support import horizon, probability, rate, scenario_text, start, state, strategy
 
 ROOT = Path(__file__).resolve().parent.parent
 SCENARIOS = sorted((ROOT / "scenarios").glob("*.toml"))
@@ -192,6 +193,45 @@ def test_trace_through_main_records_the_command(tmp_path):
     assert main(["trace", str(WARD), "--out", str(tmp_path)]) == 0
     record = json.loads((tmp_path / WARD.stem / "latest" / "manifest.json").read_text())
     assert record["command"] == f"microsim trace {WARD} --out {tmp_path}"
+
+
+# ------------------------------------------------------------------ one strategy's cohort
+
+def two_strategies(tmp_path) -> Path:
+    """well -> dead at rate 0.2; strategy 'drug' halves it for everyone from time 0."""
+    path = tmp_path / "two.toml"
+    path.write_text(scenario_text(
+        horizon(10), start(well=1), state("well"), state("dead", absorbing=True),
+        rate("well", "dead", 0.2), strategy("usual", comparator=True),
+        strategy("drug", changes=[dict(transition="well->dead", hazard_ratio=0.5)])))
+    return path
+
+
+@pytest.mark.parametrize("option, alive", [([], math.exp(-0.2 * 10)),
+                                           (["--strategy", "drug"], math.exp(-0.1 * 10))])
+def test_trace_and_chain_follow_one_strategy(tmp_path, capsys, option, alive):
+    # the share still well at 10 years, exp(-rate * 10) (exponential survival, common practice)
+    path = two_strategies(tmp_path)
+    assert main(["trace", str(path), "--out", str(tmp_path / "out"), *option]) == 0
+    assert main(["chain", str(path), "--out", str(tmp_path / "out"), *option]) == 0
+    runs = {p.name.rsplit("-", 1)[1]: p for p in (tmp_path / "out" / "two").iterdir()
+            if p.is_dir() and p.name != "latest"}
+    trace = pd.read_csv(runs["trace"] / "cohort_trace.csv")
+    assert trace.query("time == 10 and state == 'well'")["share"].item() == pytest.approx(alive, rel=1e-9)
+    outcomes = pd.read_csv(runs["chain"] / "expected_outcomes.csv").set_index("measure")["value"]
+    # life years up to 10: (1 - exp(-10 r)) / r (the integral of the survival, common practice)
+    r = -math.log(alive) / 10
+    assert outcomes["life_years"] == pytest.approx((1 - alive) / r, rel=1e-9)
+    assert ("strategy drug" in capsys.readouterr().out) == bool(option)
+
+
+@pytest.mark.parametrize("command", ["trace", "chain"])
+def test_trace_and_chain_refuse_an_unknown_strategy(tmp_path, capsys, command):
+    path = two_strategies(tmp_path)
+    assert main([command, str(path), "--strategy", "drugg", "--out", str(tmp_path / "out")]) == 2
+    line = refused(capsys.readouterr(), "error: --strategy: no strategy 'drugg'")
+    assert "did you mean 'drug'?" in line and "usual, drug" in line
+    assert not (tmp_path / "out").exists()
 
 
 # --------------------------------------------------------------------------------- run
