@@ -421,7 +421,32 @@ def test_syntax_error_at_end_names_last_line(tmp_path):
     with pytest.raises(ScenarioError) as caught:
         read_scenario(path)
     assert caught.value.path == f"broken.toml line {len(text.splitlines())}"
-    assert caught.value.message == "unterminated string (at the end of the file)"
+    assert caught.value.message == ("unterminated string (at the end of the file); close the "
+                                     "text with its quote on the same line")
+
+
+# the TOML 1.0 rules behind each hint (toml.io/en/v1.0.0, from memory): text is quoted on one
+# line, arrays close with ']', inline tables stay on one line with no trailing comma,
+# booleans are lower case, a key is defined once
+@pytest.mark.parametrize("old, new, hint", [
+    ('family = "beta"', "family = beta", 'put text in quotes: "beta"'),
+    ("absorbing = true", "absorbing = True", "write true in lower case"),
+    ("multipliers = [1.0, 1.5]", "multipliers = [1.0, 1.5", "close the array with ']'"),
+    ('name = "well"', 'name = "well', "close the text with its quote on the same line"),
+    ("alpha = 10, beta = 90 }", "alpha = 10, beta = 90, }", "no comma after its last entry"),
+    ("discount_costs = 0.035", "discount_costs = 0,035", "decimals with a point"),
+    ("c_sick = 500", "c_sick = ", "give a value after '='"),
+], ids=["bare word", "True", "open array", "open string", "trailing comma", "decimal comma",
+        "no value"])
+def test_syntax_error_hints_at_the_common_cause(old, new, hint):
+    error = refusal(edited(DISCRETE, (old, new)))
+    assert error.path.startswith("scenario line ") and "(column " in error.message
+    assert hint in error.message and "\n" not in str(error), str(error)
+
+
+def test_syntax_error_without_a_known_cause_has_no_hint():
+    error = refusal(DISCRETE.replace("[outcomes]", "[outcomes"))
+    assert error.message == "expected ']' at the end of a table declaration (column 10)"
 
 
 def test_missing_and_non_utf8_files(tmp_path):

@@ -28,6 +28,7 @@ from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_start_effects, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .rows import check_row_bounds, check_row_structure
+from .toml_hints import syntax_hint
 from .spec import (DISCOUNTINGS, PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
                    StartSpec, StateSpec, TimeSpec)
 
@@ -86,11 +87,14 @@ def load_toml(text: str, label: str) -> dict[str, Any]:
         detail = message[:position.start()] if position else message
         detail = detail[:1].lower() + detail[1:]
         if position and position.group(1):
-            line, column = position.group(1), position.group(2)
-            raise ScenarioError(f"{label} line {line}", f"{detail} (column {column})") from None
-        last = max(1, len(text.splitlines()))
-        raise ScenarioError(f"{label} line {last}", f"{detail} (at the end of the file)") \
-            from None
+            line, column = int(position.group(1)), int(position.group(2))
+            where, at = line, f"(column {column})"
+        else:
+            line = column = None
+            where, at = max(1, len(text.splitlines())), "(at the end of the file)"
+        hint = syntax_hint(detail, text, line, column)
+        raise ScenarioError(f"{label} line {where}",
+                            f"{detail} {at}" + (f"; {hint}" if hint else "")) from None
     except RecursionError:
         raise ScenarioError(label, "is nested too deeply to read") from None
 
