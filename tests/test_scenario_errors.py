@@ -61,6 +61,13 @@ CASES = [
     # types, unknown keys, missing keys
     ("string for number", "discrete", [("cycle = 1", 'cycle = "abc"')],
      "time.cycle", "must be a number, got 'abc'"),
+    # quoted digits are text in TOML (toml.io/en/v1.0.0, from memory): say to drop the quotes
+    ("quoted number for number", "discrete", [("cycle = 1", 'cycle = "1"')],
+     "time.cycle", "must be a number, got '1'; write the number without quotes"),
+    ("quoted number for cost", "discrete", [("cost = 100", 'cost = "1500"')],
+     "states.well.cost", "got '1500'; write the number without quotes"),
+    ("quoted number for whole number", "discrete", [("seed = 1", 'seed = "7"')],
+     "simulation.seed", "must be a whole number, got '7'; write the number without quotes"),
     ("bool for number", "discrete", [("cost = 100", "cost = true")],
      "states.well.cost", "must be a number, a parameter name or a table name, got true"),
     ("nan", "discrete", [("cost = 100", "cost = nan")], "states.well.cost", "finite number"),

@@ -67,6 +67,18 @@ RENAMED = {  # keys of earlier versions -> their names now, so that an old file 
 }
 
 
+def unquoted_number(value: Any) -> str:
+    """'; write the number without quotes' when text where a number belongs reads as one
+    (`cost = "1500"`): TOML keeps quoted digits as text."""
+    if not isinstance(value, str):
+        return ""
+    try:
+        number = float(value.strip())
+    except ValueError:
+        return ""
+    return "; write the number without quotes" if math.isfinite(number) else ""
+
+
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """' (did you mean 'x'?)' when a choice is close to `word`, else ''."""
     close = closest(word, choices)
@@ -257,7 +269,7 @@ class Node:
 
     def _number(self, value: Any, key: str, role: Role, expect: str = "a number") -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self.fail(key, f"must be {expect}, got {describe(value)}")
+            self.fail(key, f"must be {expect}, got {describe(value)}{unquoted_number(value)}")
         x = float(value)
         if not math.isfinite(x):
             self.fail(key, f"must be a finite number, got {describe(value)}")
@@ -289,7 +301,8 @@ class Node:
         value = self.data[key]
         if (isinstance(value, bool) or not isinstance(value, (int, float))
                 or (isinstance(value, float) and not value.is_integer())):
-            self.fail(key, f"must be a whole number, got {describe(value)}")
+            self.fail(key, f"must be a whole number, got {describe(value)}"
+                           f"{unquoted_number(value)}")
         n = int(value)
         if n < minimum:
             self.fail(key, f"must be at least {minimum}, got {n}")
@@ -360,7 +373,7 @@ class Node:
                 return REMAINDER
             self.fail(key, '"remainder" is only valid as the probability of a transition')
         if not IDENTIFIER.fullmatch(value):
-            self.fail(key, f"must be {expect}, got {describe(value)}")
+            self.fail(key, f"must be {expect}, got {describe(value)}{unquoted_number(value)}")
         axes = tables if isinstance(tables, tuple) else None
         self.reading.references.append(Reference(value, self.at(key), role, bool(tables), axes,
                                                  remainder))

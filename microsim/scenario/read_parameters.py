@@ -7,7 +7,7 @@ from typing import Any, Mapping
 
 from .errors import ScenarioError
 from .fields import (ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, describe, did_you_mean,
-                     listing, show, undefined)
+                     listing, show, undefined, unquoted_number)
 from .formulas import FormulaError, derived_order, parse_formula, settings
 from .spec import REMAINDER, DistributionSpec, ParameterSpec, Ref, TableSpec
 
@@ -167,7 +167,7 @@ class Entries:
                            "a parameter, not another table")
         if not IDENTIFIER.fullmatch(value):
             node.fail(key, f"must be a {ENTRY}, got {describe(value)}"
-                           f"{did_you_mean(value, self.parameters)}")
+                           f"{unquoted_number(value) or did_you_mean(value, self.parameters)}")
         if value not in self.parameters:
             node.fail(key, undefined("parameter", value, list(self.parameters))
                            + "; a table's entry is a number or the name of a parameter")
