@@ -12,7 +12,7 @@ from scipy import stats
 from scipy.linalg import expm
 
 from microsim.cohort.analytic import analytic
-from microsim.results.comparison import compare, critical_z, trace_table
+from microsim.results.comparison import FEWEST_FOR_MEANS, compare, critical_z, trace_table
 from microsim.patients.multipliers import Multipliers
 from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
@@ -210,9 +210,31 @@ def test_average_patient_misrepresents_a_strongly_heterogeneous_population():
     assert row.difference == pytest.approx(row.average_patient - population, rel=1e-9)
     assert row.relative_difference == pytest.approx(row.difference / population, rel=1e-9)
     # Jensen's inequality: the population lives longer than its average patient, by far;
-    # an exact gap is stated, not tested against Monte-Carlo error
-    assert row.difference < -0.1 and np.isnan(row.z) and row.basis.startswith("exact")
+    # both sides are exact, so the only noise is which patients were sampled: the standard
+    # error of the mean of the patients' own values (common practice)
+    lives = (1 - np.exp(-10 * rates)) / rates
+    assert row.se == pytest.approx(np.std(lives, ddof=1) / math.sqrt(lives.size), rel=1e-9)
+    assert row.z == pytest.approx(row.difference / row.se, rel=1e-9)
+    assert row.difference < -0.1 and row.z < -10 and row.basis.startswith("exact")
     assert "not Monte-Carlo noise" in result.average_verdict
+    assert "so it is a property of the model" in result.average_verdict
+
+
+@pytest.mark.parametrize("patients, verdict", [
+    (FEWEST_FOR_MEANS - 1, "is not tested: fewer than"), (200, "so it may be chance")])
+def test_an_exact_average_patient_gap_within_sampling_error_is_not_called_a_property(
+        patients, verdict):
+    # a weak hazard ratio (1.05): the Jensen gap is far below the sampling error of a few
+    # hundred patients' prevalence, so the exact gap is mostly chance in the sample
+    model = model_of(scenario_text(
+        horizon(10), start(alive=1), state("alive", utility=1), state("dead", absorbing=True),
+        rate("alive", "dead", 0.2, effects=[effect("risk_factor", 1.05)]),
+        population(2000, attribute("risk_factor", "yesno", prevalence=0.5))))
+    people = draw_population(model.scenario.population, 5).head(patients)
+    result = compare(simulate(model, people, 6))
+    assert result.average_patient.basis.iloc[0].startswith("exact")
+    assert verdict in result.average_verdict, result.average_verdict
+    assert "property of the model" not in result.average_verdict
 
 
 # ---------------------------------------------------------------------- cycle engine

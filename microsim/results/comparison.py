@@ -416,14 +416,14 @@ class ComparisonSums:
         for measure, (population, cohort) in self.average.items():
             n = self.paired[measure].n
             pop, avg = population / n, cohort / n
-            se = np.nan if exact else self.paired[measure].se
+            se = self.paired[measure].se
             rows.append((measure, pop, avg, avg - pop, (avg - pop) / pop if pop else np.nan, se))
         table = pd.DataFrame(rows, columns=["measure", "population", "average_patient",
                                             "difference", "relative_difference", "se"])
-        basis = "exact: both analytic" if exact else "simulated on the same patients and draws"
-        z = (np.full(len(table), np.nan) if exact
-             else z_scores(table.difference.to_numpy(), table.se.to_numpy()))
-        return table.assign(z=z, basis=basis)
+        basis = ("exact: both analytic, se from sampling the patients" if exact
+                 else "simulated on the same patients and draws")
+        return table.assign(z=z_scores(table.difference.to_numpy(), table.se.to_numpy()),
+                            basis=basis)
 
 
 def compare(sim: Simulation, result: CohortResult | None = None) -> Comparison:
@@ -506,22 +506,17 @@ MEASURE_WORDS = {"life_years": "life years (undiscounted)", "qalys": "QALYs (und
 
 
 def average_verdict(rows: pd.DataFrame, n: int) -> str:
-    """The average patient's gap in words, naming the measure and its discounting: its size
-    where it is exact, else its paired test (Student's t over the n patients, as for the
-    outcomes)."""
+    """The average patient's gap in words, naming the measure and its discounting, with its
+    paired test (Student's t over the n patients, as for the outcomes). Where both sides are
+    exact the only noise left is which patients were sampled, and the test says whether
+    the gap is more than that: a property of the model, or possibly chance in the sample."""
     exact = rows.basis.iloc[0].startswith("exact")
-    relative = rows.relative_difference.abs().fillna(0.0)
-    worst = rows.loc[relative.idxmax()]
+    if exact and np.all(np.abs(rows.difference)
+                        <= ROUNDOFF * np.maximum(rows.population.abs(), 1.0)):
+        return (f"{AVERAGE} gives the population's results exactly: here the mean "
+                "attributes stand for the patients.")
     if exact:
-        if np.all(np.abs(rows.difference) <= ROUNDOFF * np.maximum(rows.population.abs(), 1.0)):
-            return (f"{AVERAGE} gives the population's results exactly: here the mean "
-                    "attributes stand for the patients.")
-        return (f"{AVERAGE} gives {MEASURE_WORDS[worst.measure]} {worst.average_patient:.4g} "
-                f"against the population's {worst.population:.4g} "
-                f"({worst.relative_difference:+.1%}, a difference of {worst.difference:.4g}). "
-                "Both are exact analytic results, so this gap is a property of the model, not "
-                "Monte-Carlo noise: it is what treating the patients as one average patient "
-                "would change.")
+        return exact_average_verdict(rows, n)
     if n < FEWEST_FOR_MEANS:
         return (f"{AVERAGE} is {FEW} (simulate more patients).")
     critical = critical_t(len(rows), n)
@@ -534,4 +529,27 @@ def average_verdict(rows: pd.DataFrame, n: int) -> str:
             f"{worst.average_patient:.4g} against {worst.population:.4g} simulated "
             f"({worst.relative_difference:+.1%}, t = {worst.z:.1f} with {n - 1} degrees of "
             "freedom). Heterogeneity matters here; use the population results.")
+
+
+def exact_average_verdict(rows: pd.DataFrame, n: int) -> str:
+    """Both sides exact: the gap of the measure with the largest relative gap, and whether
+    the largest t is beyond what sampling n patients' attributes gives (Bonferroni over
+    the measures)."""
+    worst = rows.loc[rows.relative_difference.abs().fillna(0.0).idxmax()]
+    gap = (f"{AVERAGE} gives {MEASURE_WORDS[worst.measure]} {worst.average_patient:.4g} "
+           f"against the population's {worst.population:.4g} "
+           f"({worst.relative_difference:+.1%}, a difference of {worst.difference:.4g}). "
+           "Both are exact analytic results, so the gap is not Monte-Carlo noise; ")
+    if n < FEWEST_FOR_MEANS:
+        return gap + f"whether it is more than chance in which patients were sampled is {FEW}."
+    critical = critical_t(len(rows), n)
+    largest = float(rows.z.abs().max())
+    test = (f"largest |t| {largest:.2f} against {critical:.2f}, Bonferroni over {len(rows)} "
+            f"paired t tests with {n - 1} degrees of freedom")
+    if largest >= critical:
+        return (gap + f"it is also beyond what sampling {n} patients gives ({test}), so it is "
+                "a property of the model: what treating the patients as one average patient "
+                "would change.")
+    return (gap + f"but it is within what sampling {n} patients gives ({test}), so it may be "
+            "chance in which patients were sampled (sample more patients to tell).")
 
