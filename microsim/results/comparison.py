@@ -376,13 +376,15 @@ class ComparisonSums:
         untested = np.where(certain, "", np.where(n < FEWEST_FOR_MEANS, FEW,
                                                   np.where(still, UNSEEN, "")))
         tested = untested == ""
-        z = np.where(still | ~tested, 0.0, z_scores(table.difference.to_numpy(), se))
+        # an untested row has no z or p-value (left empty), not 0 and 1, which read as a pass
+        z = np.where(~tested, np.nan, np.where(still, 0.0,
+                                               z_scores(table.difference.to_numpy(), se)))
         monte_carlo = np.where(se > table.se, [FLOORED + note for _, note in rare], MONTE_CARLO)
         # an SE within ROUNDOFF is round-off of a deterministic outcome (1e-14, say): 0, as
         # the test column says, so that no table shows noise as if it were an error
         return table.drop(columns="difference").assign(
             se=np.where(certain, 0.0, np.where(tested, se, np.nan)), z=z,
-            p_value=np.where(tested, p, 1.0),
+            p_value=np.where(tested, p, np.nan),
             test=np.where(certain, EXACT, np.where(tested, monte_carlo, untested)))
 
     def rare_ways(self, measure: str, n: int) -> tuple[float, str]:
