@@ -293,7 +293,8 @@ CASES = [
      "strategies", "no strategy has comparator = true; mark the one the others are compared "
                    "with (strategies: usual, drug)"),
     ("two comparators", "base", [("uptake = 0.8", "comparator = true\nuptake = 0.8")],
-     f"{STRATEGY}.comparator", "'usual', 'drug' all have comparator = true; exactly one"),
+     f"{STRATEGY}.comparator", "2 strategies have comparator = true ('usual', 'drug'); keep "
+                               "it on the one the others are compared with"),
     ("a single strategy", "base",
      [('[[strategies]]\nname = "usual"\ncomparator = true\n\n', "")],
      "strategies", "has only 'drug'; give at least two strategies"),

@@ -112,8 +112,9 @@ def check_comparator(strategies: list[StrategySpec]) -> None:
                             f"others are compared with (strategies: {listing(names)})")
     if len(chosen) > 1:
         raise ScenarioError(f"strategies.{chosen[1]}.comparator",
-                            f"{listing(repr(n) for n in chosen)} all have comparator = true; "
-                            "exactly one strategy is the comparator")
+                            f"{len(chosen)} strategies have comparator = true "
+                            f"({listing(repr(n) for n in chosen)}); keep it on the one the "
+                            "others are compared with and remove it from the rest")
 
 
 def read_strategy(node: Node, name: str, tables: dict[str, TableSpec], time: TimeSpec,
