@@ -490,6 +490,27 @@ def test_patients_get_the_same_numbers_in_chunks_of_any_size(monkeypatch):
     np.testing.assert_array_equal(chunked.exposure.occurrences, whole.exposure.occurrences)
 
 
+@pytest.mark.parametrize("strategy", [None, "protein_lowering", "everyone_treated"])
+def test_cycles_give_the_same_numbers_in_blocks_of_any_size(monkeypatch, strategy):
+    # the bundled demo (a life table by attained age, attributes, treatment windows):
+    # a cycle model's matrices are built for a block of cycles at once; one cycle per block
+    # is the plain cycle-by-cycle product, and no cycle depends on its block
+    from microsim.benchmark import demo_scenario
+    from microsim.cohort import analytic as module
+    from microsim.patients.treatment import patient_multipliers
+    scenario = demo_scenario()
+    model = bind(scenario, strategy=strategy)
+    mult = patient_multipliers(model, draw_population(scenario.population, 3).head(300), 4)
+    whole = analytic(model, mult=mult)
+    assert 1 < model.n_cycles <= module.BLOCK_ELEMENTS // (10 * 10 * 300)  # one block
+    monkeypatch.setattr(module, "BLOCK_ELEMENTS", 1)
+    single = analytic(model, mult=mult)
+    np.testing.assert_allclose(single.trace, whole.trace, rtol=0, atol=1e-14)
+    for part in ("occupancy", "occurrences", "on_treatment"):
+        np.testing.assert_allclose(getattr(single.exposure, part),
+                                   getattr(whole.exposure, part), rtol=1e-13, atol=1e-14)
+
+
 def test_rate_trace_on_a_grid_that_does_not_start_at_0_is_still_from_time_0():
     # edge: the grid [3, 12] (or a single time) still starts every patient at time 0;
     # reference: scipy.linalg.expm, pi(t) = pi(0) exp(Q t)

@@ -16,6 +16,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
+from scipy import sparse
 
 from microsim.binding import BoundModel
 from microsim.cohort.cycle_matrices import cycle_moves
@@ -46,22 +47,33 @@ def discount_rates(model: BoundModel) -> tuple[float, float, float]:
     return 0.0, model.discount_costs, model.discount_effects
 
 
+BLOCK_ELEMENTS = 2 ** 22  # numbers per array of a block of cycles (32 MB): its cycles
+
+
 def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
     model = exp.model
     batch = mult.log_static.shape[0]
-    # state-major with patients last (pi (E, B), matrices (E, E, B)): every product runs
+    # state-major with patients last (pi (E, B), weights (K, T, B)): every product runs
     # over contiguous patients
-    pi = exp.start_rows(mult.start, batch).T.copy()
-    expanded = [pi]
+    expanded = [exp.start_rows(mult.start, batch).T.copy()]
     flows_per_cycle = []
-    for n in range(model.n_cycles):
-        moves, risk_p = cycle_moves(exp, n, mult)
-        flows_per_cycle.append((pi[:, None, :] * risk_p).sum(axis=0).T)
-        following = np.zeros_like(pi)
-        for e, f, weight in moves:  # the product with the sparse matrix, entry by entry
-            following[f] += pi[e] * weight
-        pi = following
-        expanded.append(pi)
+    block = max(1, BLOCK_ELEMENTS // (exp.size * max(len(model.risks), 1) * batch))
+    for first in range(0, model.n_cycles, block):
+        cycles = np.arange(first, min(first + block, model.n_cycles))
+        moves, risk_p = cycle_moves(exp, cycles, mult)
+        sources = np.array([e for e, _, _ in moves])
+        weights = np.empty((len(moves), len(cycles), batch))
+        for k, (_, _, weight) in enumerate(moves):
+            weights[k] = weight
+        # the sum of the entries into each target: one sparse product (E, K) per cycle
+        into = sparse.csr_array((np.ones(len(moves)), ([f for _, f, _ in moves],
+                                                       np.arange(len(moves)))),
+                                shape=(exp.size, len(moves)))
+        for t in range(len(cycles)):
+            expanded.append(into @ (expanded[-1][sources] * weights[:, t]))
+        # each cycle's flows: the shares at its start times its risks' probabilities
+        starts = np.array(expanded[-len(cycles) - 1:-1])
+        flows_per_cycle.extend(np.einsum("teb,ertb->tbr", starts, risk_p))
     trace = (np.array(expanded).transpose(0, 2, 1) @ exp.collapse()).transpose(1, 0, 2)
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
     on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)

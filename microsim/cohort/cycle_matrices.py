@@ -13,6 +13,7 @@ cycle engines follow exactly these rules.
 from __future__ import annotations
 
 import itertools
+from typing import Callable
 
 import numpy as np
 
@@ -39,15 +40,16 @@ def on_rate_scale(p, log, m):
     return np.where(m == 1.0, p, separate(log, m))
 
 
-def risk_probability(risk: BoundRisk, time: float, ages, duration: int, cycle: float,
+def risk_probability(risk: BoundRisk, band_at: Callable, duration: int,
                      rows: LevelRows | None = None):
-    """Base per-cycle probability of a (non-remainder) risk for a batch of patients, and
-    its L = -ln(1 - p) (the competing rule's weight); `rows`: the patients' rows of the
-    risk's table by level."""
+    """Base per-cycle probability of a (non-remainder) risk for a batch of patients over a
+    block of cycles, and its L = -ln(1 - p) (the competing rule's weight); `band_at(table,
+    duration)` is the band of a table in each cycle for each patient (`table_band`);
+    `rows`: the patients' rows of the risk's table by level."""
     base = risk.probability
     if not isinstance(base, TableSpec):
         return base, risk.logs[0]
-    band = table_band(base, time, ages, duration * cycle)
+    band = band_at(base, duration)
     if rows is not None:
         p = rows.band_values(band)
         with np.errstate(divide="ignore"):
@@ -64,32 +66,37 @@ def moves_phase(model: BoundModel, r: int) -> bool:
 
 def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
     """Transition matrices (B, E, E) of cycle n and each risk's probability (B, E, R)."""
-    P, risk_p = cycle_arrays(exp, n, mult)
-    return np.moveaxis(P, 2, 0), np.moveaxis(risk_p, 2, 0)
-
-
-def cycle_arrays(exp: Expansion, n: int, mult: Multipliers):
-    """`cycle_matrices` with the patients last: (E, E, B) and (E, R, B)."""
-    moves, risk_p = cycle_moves(exp, n, mult)
-    P = np.zeros((exp.size, exp.size, risk_p.shape[2]))
+    moves, risk_p = cycle_moves(exp, np.array([n]), mult)
+    P = np.zeros((exp.size, exp.size, risk_p.shape[3]))
     for e, f, weight in moves:
-        P[e, f] += weight
-    return P, risk_p
+        P[e, f] += np.broadcast_to(weight, (1, P.shape[2]))[0]
+    return np.moveaxis(P, 2, 0), np.moveaxis(risk_p[:, :, 0], 2, 0)
 
 
-def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
-    """The nonzero entries of cycle n's transition matrices, as (from, to, weight per
-    patient) with repeats summed by the user, and each risk's probability (E, R, B): a
-    sparse form, since a row reaches few expanded states and a product with it then costs
-    its entries only. Absorbing states keep their patients (weight 1.0)."""
+def cycle_moves(exp: Expansion, cycles: np.ndarray, mult: Multipliers):
+    """The nonzero entries of the transition matrices of a block of cycles, as (from, to,
+    weight (T, B): per cycle of the block and patient, or a scalar) with repeats summed by
+    the user, and each risk's probability (E, R, T, B): a sparse form, since a row reaches
+    few expanded states and a product with it then costs its entries only. The cycles of a
+    block share one pass over the expanded states, whose Python work then does not grow
+    with the horizon. Absorbing states keep their patients (weight 1.0)."""
     model = exp.model
-    time = n * model.cycle
-    m_all = mult.at(time)
-    batch = m_all.shape[0]
-    ages = None if mult.entry_age is None else mult.entry_age + time
+    times = model.cycle * np.asarray(cycles, float)[:, None]  # (T, 1)
+    m_all = mult.over(times[:, 0])  # (T, B, R)
+    batch = m_all.shape[1]
+    ages = None if mult.entry_age is None else mult.entry_age + times
+    bands = {}
+
+    def band_at(table: TableSpec, duration: int):
+        """`table_band` in each cycle of the block, once per table and time in state."""
+        key = (id(table), duration if table.by == "time_in_state" else None)
+        if key not in bands:
+            bands[key] = table_band(table, times, ages, duration * model.cycle)
+        return bands[key]
+
     # state-major, patients last, so each entry is one contiguous run of patients
     entries = []
-    risk_p = np.zeros((exp.size, len(model.risks), batch))
+    risk_p = np.zeros((exp.size, len(model.risks), len(cycles), batch))
     for e, (i, d, counts) in enumerate(exp.expanded):
         if model.absorbing[i]:
             entries.append((e, e, 1.0))
@@ -102,8 +109,8 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
             if risk.remainder:
                 remainder = r
                 continue
-            m = m_all[:, r] * exp.memory_factor(risk, counts)
-            p, log = risk_probability(risk, time, ages, d, model.cycle, mult.level_rows(r))
+            m = m_all[:, :, r] * exp.memory_factor(risk, counts)
+            p, log = risk_probability(risk, band_at, d, mult.level_rows(r))
             if risk.is_event:
                 risk_p[e, r] = p = on_rate_scale(p, log, m)
                 events.append((r, risk, p))
@@ -118,9 +125,9 @@ def cycle_moves(exp: Expansion, n: int, mult: Multipliers):
             total = total + p
         stay = 1.0 - total
         if not np.min(stay) >= 1.0 - LIMIT:
-            k = int(np.argmin(stay))
-            raise overflow(f"transitions.{model.states[i]}->*", float(1.0 - stay[k]),
-                           f"the cohort's patient row {k}", n)
+            t, k = np.unravel_index(np.argmin(stay), np.shape(stay))
+            raise overflow(f"transitions.{model.states[i]}->*", float(1.0 - stay[t, k]),
+                           f"the cohort's patient row {k}", int(cycles[t]))
         stay = np.maximum(stay, 0.0)
         if remainder is not None:
             risk_p[e, remainder] = stay

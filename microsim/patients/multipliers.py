@@ -43,10 +43,6 @@ class Window:
         """(patients, T) whether each patient is on treatment at each time."""
         return (self.on[:, None] <= times) & (times < self.off[:, None])
 
-    def factor(self, t) -> np.ndarray:
-        """(patients, risks) factor at time t."""
-        return np.where(self.active(t)[:, None], self.on_factor, self.off_factor)
-
     def take(self, index) -> "Window":
         return Window(self.on[index], self.off[index], self.on_factor, self.off_factor)
 
@@ -111,8 +107,16 @@ class Multipliers:
 
     def at(self, t) -> np.ndarray:
         """Multipliers (patients, risks) at time t since start (t scalar)."""
-        base = np.exp(self.log_static + self.age_slope * float(t))
-        return base if self.window is None else base * self.window.factor(t)
+        return self.over(np.array([float(t)]))[0]
+
+    def over(self, times: np.ndarray) -> np.ndarray:
+        """Multipliers at several times since start at once: (times, patients, risks)."""
+        times = np.asarray(times, float)
+        base = np.exp(self.log_static) * np.exp(self.age_slope * times[:, None, None])
+        if self.window is None:
+            return base
+        on = self.window.on_grid(times).T[:, :, None]
+        return base * np.where(on, self.window.on_factor, self.window.off_factor)
 
     @property
     def size(self) -> int:
