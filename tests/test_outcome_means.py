@@ -171,3 +171,18 @@ def test_a_simulated_average_patient_is_not_tested_with_few_patients():
     assert few.agrees is None and "not tested: fewer than" in few.average_verdict
     enough = compare(simulate(model, people, 6))
     assert "degrees of freedom" in enough.average_verdict
+
+
+@pytest.mark.parametrize("utility, certain", [(0, True), (0.7, False)])
+def test_a_measure_the_model_values_nowhere_is_certain_not_untested(utility, certain):
+    # no utility anywhere: every patient's QALYs are 0 whatever happens (by construction),
+    # so 0 against 0 is an exact agreement, not "the patients did not vary"; a utility on a
+    # state only a few of 40 patients reach leaves QALYs able to vary (the negative control)
+    model = model_of(scenario_text(
+        horizon(10), start(well=1), state("well", cost=100),
+        state("rare", cost=100, utility=utility), state("dead", absorbing=True),
+        rate("well", "rare", 0.002), rate("well", "dead", 0.1), rate("rare", "dead", 0.1)))
+    outcomes = compare(simulate(model, cohort_patients(40), 3)).outcomes.set_index("measure")
+    for measure in ("qalys", "qalys_discounted"):
+        assert (outcomes.test[measure] == EXACT) == certain, outcomes.test[measure]
+    assert (outcomes.test[["costs", "costs_discounted"]] == MONTE_CARLO).all()

@@ -59,7 +59,7 @@ from microsim.binding import BoundModel
 from microsim.cohort.analytic import CohortResult, analytic
 from microsim.patients.multipliers import Multipliers, average_patient, cohort_multipliers
 from microsim.patients.population import subgroup_attributes
-from microsim.results.outcomes import outcome_values
+from microsim.results.outcomes import outcome_values, unvalued
 from microsim.results.rare_ways import WaySums
 from microsim.simulation import Simulation, report_grid, simulate
 
@@ -366,7 +366,9 @@ class ComparisonSums:
         still, _ = without_error(table.difference, table.se, table.analytic)
         # no variation among the patients is no Monte-Carlo error only where the model
         # cannot vary; where it can (a few patients, a rare event) the SE is unknown
+        nothing = unvalued(self.model)  # a measure valued nowhere is 0 for everyone
         varies = np.array([self.varies["alive" if m == "life_years" else "any"]
+                           and m.removesuffix("_discounted") not in nothing
                            for m in table.measure], bool)
         certain = still & ~varies
         rare = [self.rare_ways(m, n) for m in table.measure]

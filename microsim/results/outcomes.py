@@ -104,6 +104,24 @@ def outcome_values(model: BoundModel, exposure: Exposure) -> dict[str, np.ndarra
             "qalys_discounted": qalys(2), "costs_discounted": costs(1)}
 
 
+def unvalued(model: BoundModel) -> set[str]:
+    """The measures ("qalys", "costs") the model gives no value anywhere: no state, time
+    on treatment, occurrence or table of theirs is other than 0, so every patient's is 0
+    whatever happens to them (certain, not a chance without variation)."""
+    t = model.treatment
+    tables = {v.measure for v in model.state_tables} | (
+        set() if t is None else {v.measure for v in t.tables})
+    risks = [(r.cost, r.disutility) for r in model.risks]
+    zero = {"qalys": not np.any(model.state_utility) and (t is None or not np.any(
+                t.extra_utility)) and all(isinstance(loss, float | int) and loss == 0
+                                          for _, loss in risks)
+                     and not tables & {"utility", "disutility"},
+            "costs": not np.any(model.state_cost) and (t is None or not np.any(t.extra_cost))
+                     and all(isinstance(cost, float | int) and cost == 0 for cost, _ in risks)
+                     and "cost" not in tables}
+    return {measure for measure, none in zero.items() if none}
+
+
 def number(value: float | TableSpec) -> float:
     """A cost or utility's number: 0 for one a table gives (`table_values` adds it)."""
     return 0.0 if isinstance(value, TableSpec) else value
