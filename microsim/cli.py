@@ -205,6 +205,22 @@ def refuse_idle_options(args) -> None:
                                            "budget impact (--budget); add one, or leave it out")
 
 
+def check_analyses(scenario, sensitivity: bool = False, budget: bool = False) -> None:
+    """The sensitivity analysis and the budget impact are refused before any work: not yet
+    for a service with shared capacity, nor without what they need."""
+    for asked, name, what in ((sensitivity, "sensitivity", "sensitivity analysis"),
+                              (budget, "budget", "the budget impact")):
+        if asked and scenario.capacity is not None:
+            raise ScenarioError(name, f"{what} of a service with shared capacity "
+                                "([arrivals], [[resources]]) is not available yet")
+    if sensitivity:
+        from microsim.uncertainty.one_way import ranged_parameters
+        ranged_parameters(scenario.parameters)
+    if budget:
+        from microsim.decision.budget_impact import check_budget
+        check_budget(scenario)
+
+
 def command_run(args) -> int:
     """The main job: strategies on the same patients, validation, evaluation, PSA."""
     refuse_idle_options(args)
@@ -216,6 +232,7 @@ def command_run(args) -> int:
     path = Path(args.scenario)
     scenario = read_scenario(path, options=scenario_options(args))
     say_warnings(scenario)
+    check_analyses(scenario, args.sensitivity, args.budget)  # they follow the run
     psa = None
     if args.psa:
         psa = {"run_dir": psa_dir(args), "draws": args.draws,
@@ -345,9 +362,7 @@ def command_sensitivity(args) -> int:
     from microsim.present import print_sensitivity
     from microsim.uncertainty.deterministic import sensitivity_tables
     started, path, scenario = begin(args)
-    if scenario.capacity is not None:
-        raise ScenarioError("sensitivity", "sensitivity analysis of a service with shared "
-                            "capacity ([arrivals], [[resources]]) is not available yet")
+    check_analyses(scenario, sensitivity=True)
     seed = run_seed(args, scenario)
     tables = sensitivity_tables(scenario, args.patients, seed, args.strategy, args.measure)
     print_sensitivity(scenario, tables)
@@ -360,9 +375,7 @@ def command_budget(args) -> int:
     from microsim.decision.budget_impact import budget_tables
     from microsim.present import print_budget
     started, path, scenario = begin(args)
-    if scenario.capacity is not None:
-        raise ScenarioError("budget", "the budget impact of a service with shared capacity "
-                            "([arrivals], [[resources]]) is not available yet")
+    check_analyses(scenario, budget=True)
     seed = run_seed(args, scenario)
     tables = budget_tables(scenario, args.patients, seed)
     print_budget(scenario, tables)

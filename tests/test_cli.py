@@ -236,6 +236,19 @@ def test_trace_and_chain_refuse_an_unknown_strategy(tmp_path, capsys, command):
 
 # --------------------------------------------------------------------------------- run
 
+@pytest.mark.parametrize("options, start", [
+    (["--psa", "--draws", "8", "--budget"], "error: economics.budget_years: is needed"),
+    (["--sensitivity"], "error: parameters: no parameter has a low..high range")])
+def test_run_refuses_the_analyses_after_it_before_any_work(tmp_path, capsys, options, start):
+    # the budget impact and the sensitivity analysis follow the main run and the PSA: what
+    # they need is checked first, so nothing is simulated or written (not even PSA draws)
+    path = two_strategies(tmp_path)
+    out = tmp_path / "out"
+    assert main(["run", str(path), "--patients", "40", "--out", str(out), *options]) == 2
+    refused(capsys.readouterr(), start)
+    assert not out.exists()
+
+
 def test_run_writes_the_summary_and_shows_the_caution(tmp_path, capsys):
     assert main(["run", str(WARD), "--patients", "300", "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out

@@ -75,8 +75,14 @@ def cut_at(scenario: Scenario, years: int) -> Scenario:
                        "trapezoidal" if correction == "half-cycle" else correction)))
 
 
-def check_budget_years(scenario: Scenario, years: int) -> None:
-    """Refuse a budget the model cannot cost: past its horizon, or in parts of a cycle."""
+def check_budget(scenario: Scenario) -> None:
+    """Refuse a budget the model cannot cost, before any run: no years given, years past
+    its horizon, or years in parts of a cycle."""
+    years = scenario.economics.budget_years
+    if years is None:
+        raise ScenarioError("economics.budget_years", "is needed for a budget impact: the "
+                            "calendar years to cost; give it (or --budget-years) with "
+                            "economics.incidence and/or economics.prevalent_patients")
     time, length = scenario.time, units_per_year(scenario)
     if years * length > time.end * (1 + TOLERANCE):
         raise ScenarioError("economics.budget_years", f"{years} years reach past the model's "
@@ -128,12 +134,8 @@ def budget_tables(scenario: Scenario, patients: int | None = None,
     comparator, with Monte-Carlo SEs where simulated)."""
     from microsim.patients.population import patients_for
     e = scenario.economics
-    if e.budget_years is None:
-        raise ScenarioError("economics.budget_years", "is needed for a budget impact: the "
-                            "calendar years to cost (with economics.incidence and/or "
-                            "economics.prevalent_patients)")
+    check_budget(scenario)
     years = e.budget_years
-    check_budget_years(scenario, years)
     seed = scenario.simulation.seed if seed is None else seed
     people = patients_for(scenario, patients, seed)
     incidence = e.incidence_by_year(years) if e.incidence else (0.0,) * years

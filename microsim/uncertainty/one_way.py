@@ -41,6 +41,16 @@ class Estimate(NamedTuple):
     se: float = math.nan
 
 
+def ranged_parameters(parameters: Mapping[str, ParameterSpec]) -> list[ParameterSpec]:
+    """The parameters a one-way analysis varies (those with a low..high range), or refuse:
+    a sensitivity analysis with none to vary is checked before any run."""
+    ranged = [spec for spec in parameters.values() if spec.low is not None and spec.high is not None]
+    if not ranged:
+        raise ScenarioError("parameters", "no parameter has a low..high range; give low and "
+                                          "high to the parameters to vary")
+    return ranged
+
+
 def one_way(evaluate_values: Callable[[dict[str, float]], object],
             parameters: Mapping[str, ParameterSpec],
             measure: Callable[[object], float | Estimate]) -> pd.DataFrame:
@@ -53,10 +63,7 @@ def one_way(evaluate_values: Callable[[dict[str, float]], object],
     parameter at base), swing, and se_low, se_high, se_base (nan where exact).
     """
     base = {name: float(spec.value) for name, spec in parameters.items()}
-    ranged = [spec for spec in parameters.values() if spec.low is not None and spec.high is not None]
-    if not ranged:
-        raise ScenarioError("parameters", "no parameter has a low..high range; give low and "
-                                          "high to the parameters to vary")
+    ranged = ranged_parameters(parameters)
 
     def result(changes: dict[str, float]) -> Estimate:
         value = measure(evaluate_values({**base, **changes}))
