@@ -15,6 +15,7 @@ from microsim.hazards import (ConstantHazard, GeneralisedGammaHazard, GompertzHa
                               PiecewiseConstantHazard, WeibullHazard)
 from microsim.hazards.cycle_probabilities import log_survival
 from microsim.scenario.formulas import with_derived
+from microsim.scenario.risk_changes import hazard_ratio
 from microsim.scenario.spec import (REMAINDER, EffectSpec, EligibilitySpec, MemorySpec, Ref,
                                     Scenario, StrategySpec, TableSpec)
 
@@ -371,8 +372,9 @@ def bind_treatment(spec: StrategySpec, risks, scenario: Scenario, index, resolve
 
 
 def bind_changes(changes, risks, scenario: Scenario, index, resolve) -> tuple:
-    """What a treatment's changes do in numbers: each risk's hazard multiplier, and the
-    cost and utility added in each state (numbers, and the tables that add theirs)."""
+    """What a treatment's changes do in numbers: each risk's hazard multiplier (a treated
+    rate or probability as the hazard ratio it amounts to on that risk's base value), and
+    the cost and utility added in each state (numbers, and the tables that add theirs)."""
     on = np.ones(len(risks))
     added = {"cost": np.zeros(len(scenario.states)), "utility": np.zeros(len(scenario.states))}
     tables: list[ValueTable] = []
@@ -382,7 +384,9 @@ def bind_changes(changes, risks, scenario: Scenario, index, resolve) -> tuple:
             hit = [r for r, risk in enumerate(risks)
                    if change.risk in (risk.name, f"{scenario.states[risk.source].name}->"
                                       f"{'' if risk.target is None else scenario.states[risk.target].name}")]
-            on[hit] *= resolve(change.hazard_ratio)
+            for r in hit:
+                base = risks[r].params.get("rate") if risks[r].family else risks[r].probability
+                on[r] *= hazard_ratio(change, resolve, base)
             continue
         where = alive if change.state is None else np.arange(len(alive)) == index[change.state]
         for measure, numbers in added.items():

@@ -18,9 +18,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from support import (after, attribute, effect, event, move, nested, outcomes, parameters,
-                     population, scenario_text, section, start, state, strategy, table,
-                     transition)
+from support import (Nested, after, attribute, effect, event, move, nested, outcomes,
+                     parameters, population, scenario_text, section, start, state, strategy,
+                     table, transition)
 
 ALIVE = ("well", "sick", "worse")
 DEAD = "dead"
@@ -358,7 +358,7 @@ class Draft:
         if changeable and (self.chance(0.8) or not addable):
             way = self.pick(changeable)
             hr = self.ratio(0.4, 1.6)
-            changes.append(nested(transition=way.name, hazard_ratio=hr))
+            changes.append(self.risk_change(way, hr, "first"))
             way.worst *= max(hr, 1.0)
             self.features.add("hazard ratio")
         if self.chance(0.5) or not (changes or addable):
@@ -378,6 +378,23 @@ class Draft:
         self.strategy = "treat"
         self.strategy_fields = dict(fields, changes=changes or None, transitions=added or None)
         self.features.add("strategy")
+
+    def risk_change(self, way: Way, hr: float, treatment: str) -> Nested:
+        """A change of `way` by the hazard ratio `hr`. In the sequences and the delayed
+        treatments, where the way has one constant base value above 0, it is given as the
+        risk on treatment instead: a derived parameter of the base (hr x rate, or
+        1 - (1 - p)^hr), so that the same ratio holds when a row is lowered or a perturbation
+        scales the base. No draw is spent, so every model is drawn as before."""
+        base = way.parameter
+        given = self.sequence or self.delayed
+        if not (given and base and way.hazard is None and self.values[base] > 0):
+            return nested(transition=way.name, hazard_ratio=hr)
+        kind = "probability" if self.cycles else "rate"
+        name = f"{base}_on_{treatment}"
+        self.derived[name] = {"formula": f"1 - (1 - {base}) ^ {hr}" if self.cycles
+                              else f"{hr} * {base}"}
+        self.features.add(f"{kind} on treatment")
+        return nested(transition=way.name, **{kind: name})
 
     def draw_trigger(self) -> dict:
         """The event starts the treatment (after a delay of one or two cycles for "delay")
@@ -404,7 +421,7 @@ class Draft:
         if changeable and self.chance(0.5):
             way = self.pick(changeable)
             hr = self.ratio(0.4, 1.6)
-            line["changes"] = [nested(transition=way.name, hazard_ratio=hr)]
+            line["changes"] = [self.risk_change(way, hr, "second")]
             way.worst *= max(hr, 1.0)
         states = tuple(s for s in self.alive if self.chance(0.7)) or (self.pick(self.alive),)
         rash = Way(None, None, parameter=self.parameter(f"{self.letter}_rash", value()),

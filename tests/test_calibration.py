@@ -96,7 +96,7 @@ def test_every_random_model_is_valid_and_the_generator_covers_every_kind():
               "generalised_gamma on since start", "time ratio", "sequence",
               "later treatment's event", "later treatment's transition", "utility by level",
               "utility by age", "treatment started by an event", "treatment stopped by an event",
-              "delay to treatment"]
+              "delay to treatment", "rate on treatment", "probability on treatment"]
     assert len(MODELS) >= 200
     assert all(counts[f] >= 3 for f in wanted), {f: counts[f] for f in wanted if counts[f] < 3}
 

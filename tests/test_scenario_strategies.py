@@ -253,11 +253,11 @@ CASES = [
      f"{STRATEGY}.changes[0].cost", "cannot be combined with transition and hazard_ratio"),
     ("change with state only", "base",
      [('  state = "well"\n  cost = "c_drug"\n  utility = -0.01\n', '  state = "well"\n')],
-     f"{STRATEGY}.changes[2]", "needs transition with hazard_ratio, or cost and/or utility"),
+     f"{STRATEGY}.changes[2]", "needs transition with hazard_ratio, rate or probability, or cost and/or utility"),
     ("hazard ratio without transition", "base", [('transition = "onset"\n', "")],
      f"{STRATEGY}.changes[0].transition", "is required"),
     ("transition without hazard ratio", "base", [('hazard_ratio = "hr_drug"\n', "")],
-     f"{STRATEGY}.changes[0].hazard_ratio", "is required (a number or a parameter name)"),
+     f"{STRATEGY}.changes[0]", "needs one of: hazard_ratio, rate, probability"),
     ("unknown change key", "base", [("hazard_ratio = 0.5", "hazard_rato = 0.5")],
      f"{STRATEGY}.changes[1].hazard_rato", "did you mean 'hazard_ratio'"),
     # ranges

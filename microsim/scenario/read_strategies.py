@@ -15,13 +15,14 @@ from dataclasses import replace
 from typing import Callable, Iterable, Iterator
 
 from .checks import (can_happen, check_age_known, check_effects, check_kind, check_lifetime,
-                     check_memory, check_names, check_row, check_states, level_listing,
+                     check_memory, check_reference, check_names, check_row, check_states, level_listing,
                      may_be_positive, not_a_level, occurrences, population_kinds,
                      reachable_from_start, unknown_attribute, unknown_state)
 from .errors import ScenarioError
 from .fields import (ANY, HAZARD_RATIO, NON_NEGATIVE, RATE, TOLERANCE, VALUE_TABLE_AXES, Node,
-                     Reading, Role, describe, did_you_mean, listing, show)
+                     Reading, Reference, Role, describe, did_you_mean, listing, show)
 from .read_transitions import read_events, read_transitions
+from .risk_changes import TREATED_KEYS, treated_key
 from .spec import (REMAINDER, AttributeSpec, ChangeSpec, ConditionSpec, EligibilitySpec,
                    EventSpec, LineSpec, Scenario, StateSpec, StrategySpec, TableSpec, TimeSpec,
                    TransitionSpec)
@@ -36,7 +37,7 @@ LEVEL_TESTS = ("equals", "one_of")
 CONDITION_KEYS = ("attribute",) + NUMBER_TESTS + LEVEL_TESTS
 TEST_WORDS = {"above": "above", "at_least": "at least", "below": "below", "at_most": "at most",
               "equals": "equal to"}
-RISK_KEYS = ("transition", "hazard_ratio")
+RISK_KEYS = ("transition",) + TREATED_KEYS
 ON_TREATMENT_KEYS = ("state", "cost", "utility")
 CHANGE_KEYS = RISK_KEYS + ON_TREATMENT_KEYS
 WHILE_TREATED = "while_treated"
@@ -44,6 +45,15 @@ MOVED_PATHS = ("states.", "transitions.", "events.")  # where the base readers a
 
 UPTAKE = Role("an uptake share", 0.0, 1.0)
 TREATMENT_COST = Role("a treatment cost", 0.0)
+TREATED_ROLES = {  # what a change of a risk may give; a ratio of 0 would switch the risk off
+    "hazard_ratio": HAZARD_RATIO,
+    "rate": Role("a rate on treatment", 0.0, lower_open=True),
+    "probability": Role("a per-cycle probability on treatment", 0.0, 1.0, lower_open=True,
+                        upper_open=True)}
+BASE_ROLES = {  # what the risk's own value must be for a treated value to have a ratio to it
+    "rate": Role("the base rate of a rate on treatment", 0.0, lower_open=True),
+    "probability": Role("the base probability of a probability on treatment", 0.0, 1.0,
+                        lower_open=True, upper_open=True)}
 
 
 # -- paths of added states and transitions ----------------------------------------------
@@ -220,15 +230,16 @@ def read_change(node: Node) -> ChangeSpec:
     if any(node.has(k) for k in RISK_KEYS):
         for key in ON_TREATMENT_KEYS:
             if node.has(key):
-                node.fail(key, "cannot be combined with transition and hazard_ratio; a change "
-                               "either scales a risk (transition with hazard_ratio) or adds cost "
-                               "and utility on treatment (cost, utility, optionally state); give "
-                               "them as two changes")
-        return ChangeSpec(risk=node.text("transition", nonempty=True),
-                          hazard_ratio=node.ref("hazard_ratio", HAZARD_RATIO))
+                node.fail(key, "cannot be combined with transition and hazard_ratio, rate or "
+                               "probability; a change either changes a risk (transition with "
+                               "one of them) or adds cost and utility on treatment (cost, "
+                               "utility, optionally state); give them as two changes")
+        risk = node.text("transition", nonempty=True)
+        key = node.one_of(TREATED_KEYS)
+        return ChangeSpec(risk=risk, **{key: node.ref(key, TREATED_ROLES[key])})
     if not any(node.has(k) for k in ("cost", "utility")):
-        node.fail(None, "needs transition with hazard_ratio, or cost and/or utility (optionally "
-                        "for one state)")
+        node.fail(None, "needs transition with hazard_ratio, rate or probability, or cost "
+                        "and/or utility (optionally for one state)")
     return ChangeSpec(state=node.name("state", None),
                       cost=node.ref("cost", TREATMENT_COST, 0.0, tables=VALUE_TABLE_AXES),
                       utility=node.ref("utility", ANY, 0.0, tables=VALUE_TABLE_AXES))
@@ -254,7 +265,7 @@ def check_strategy(s: Scenario, reading: Reading, strategy: StrategySpec) -> lis
             found.append(f"{prefix}.eligible: no patient can be eligible: {reason}; the "
                          "strategy treats no one")
     merged = merged_model(s, reading, strategy, prefix)
-    check_changes(merged, strategy, prefix)
+    check_changes(merged, reading, strategy, prefix)
     if not may_be_positive(s, strategy.uptake):
         found.append(f"{prefix}.uptake: is 0, so no one takes the treatment up; the strategy "
                      "runs the model as written")
@@ -328,7 +339,7 @@ def check_phases(s: Scenario, reading: Reading, merged: Scenario, strategy: Stra
             raise ScenarioError(f"{path}.stop_on", f"{both[0]!r} also starts this treatment; "
                                 "a treatment cannot stop on the entry that starts it")
         if during is not strategy:
-            check_changes(model, replace(strategy, changes=during.changes), path,
+            check_changes(model, reading, replace(strategy, changes=during.changes), path,
                           only_elsewhere(s, strategy, prefix, during))
     full = s.with_added(strategy, strategy.then)
     reached = reachable | {e.name for e in full.events
@@ -474,11 +485,12 @@ def check_added_rows(merged: Scenario, added: list[tuple[str, TransitionSpec]],
         check_row(merged, source)
 
 
-def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str,
+def check_changes(merged: Scenario, reading: Reading, strategy: StrategySpec, prefix: str,
                   absent: dict[str, str] | None = None) -> None:
     """The strategy's changes name transitions and events that exist while its treatment is
     on (`absent`: those another treatment of its sequence adds for its own time on
-    treatment, with that treatment's path) and states that are not absorbing."""
+    treatment, with that treatment's path), risks that a rate or probability on treatment
+    can replace, and states that are not absorbing."""
     absent = absent or {}
     risks = {o.name: o for _, o in occurrences(merged)}
     risks.update((t.key, t) for t in merged.transitions)
@@ -499,11 +511,67 @@ def check_changes(merged: Scenario, strategy: StrategySpec, prefix: str,
             raise ScenarioError(f"{here}.transition", f"{change.risk!r} takes the remainder of "
                                 "its row (what the other transitions leave), so a hazard ratio "
                                 "cannot act on it; change the other transitions of the row")
+        if change.risk is not None and treated_key(change) != "hazard_ratio":
+            check_treated_risk(merged, reading, strategy.changes, i, risks[change.risk], here)
         if change.state is not None and change.state not in merged.state_names:
             raise ScenarioError(f"{here}.state", unknown_state(change.state, merged.state_names))
         if change.state in absorbing:
             raise ScenarioError(f"{here}.state", f"{change.state!r} is absorbing; treatment "
                                 "costs and utilities apply in non-absorbing states")
+
+
+def check_treated_risk(merged: Scenario, reading: Reading, changes: tuple[ChangeSpec, ...],
+                       i: int, risk: TransitionSpec | EventSpec, here: str) -> None:
+    """A change that gives the rate or probability on treatment (`changes[i]`, at `here`)
+    needs a risk of that kind with one constant base value (per state, for an event by
+    state) above 0, and a probability below 1, which it alone changes: the hazard ratio it
+    amounts to is its ratio to that value."""
+    change = changes[i]
+    key, name = treated_key(change), change.risk
+    at = f"{here}.{key}"
+    kind = "rate" if risk.probability is None else "probability"
+    if key != kind:
+        words = "a per-cycle probability" if kind == "probability" else "a rate or hazard"
+        raise ScenarioError(at, f"{name!r} has {words}; give its value on treatment as "
+                            f"{kind} = <number or parameter>, or give a hazard_ratio")
+    pair = [t.name for t in merged.transitions if t.key == name]
+    if len(pair) > 1:
+        raise ScenarioError(f"{here}.transition", f"{name!r} is {len(pair)} transitions "
+                            f"({listing(repr(n) for n in pair)}); a {key} on treatment is one "
+                            "transition's, so name the one it replaces")
+    own = {risk.name, getattr(risk, "key", risk.name)}
+    other = next((j for j, c in enumerate(changes) if j != i and c.risk in own), None)
+    if other is not None:
+        raise ScenarioError(at, f"replaces the {kind} of {name!r}, which changes[{other}] also "
+                            "changes; give one change of it (the rate or probability it has "
+                            "on treatment)")
+    table = risk.probability if kind == "probability" else risk.hazard.params.get("table")
+    if isinstance(table, str) and table in merged.tables:
+        raise ScenarioError(at, f"{name!r} reads its {kind} from table {table!r}, whose values "
+                            f"change, so no single {kind} on treatment replaces it; give a "
+                            "hazard_ratio")
+    if kind == "rate" and risk.hazard.family != "constant":
+        raise ScenarioError(at, f"{name!r} has a {risk.hazard.family} hazard, which changes "
+                            "over time, so no single rate on treatment replaces it; give a "
+                            "hazard_ratio")
+    by_state = getattr(risk, "by_state", None)
+    bases = by_state.items() if by_state else [
+        ("", risk.probability if kind == "probability" else risk.hazard.params["rate"])]
+    role = BASE_ROLES[key]
+    for state, base in bases:
+        if isinstance(base, str):
+            use = Reference(base, at, role)
+            check_reference(merged, use)
+            reading.references.append(use)
+            continue
+        if role.problem(base):
+            where = f" in {state!r}" if state else ""
+            fix = ("a certain move stays certain under any hazard ratio; give the base "
+                   "probability below 1" if base >= 1 else
+                   f"no hazard ratio turns {show(base)} into it; give the base {kind} above "
+                   "0, or give the risk on treatment as one of the strategy's own transitions "
+                   "or events")
+            raise ScenarioError(at, f"{name!r} has {kind} {show(base)}{where}; {fix}")
 
 
 # -- eligibility --------------------------------------------------------------------------------

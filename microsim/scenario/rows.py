@@ -9,7 +9,7 @@ band (tables on the same axis band by band, as they are read together), each mul
 its highest over the attributes' ranges (HR^(x - centre) at an end of the range; levels
 and yes/no as 0/1; attained age from the youngest age at time 0 to the oldest plus the
 last cycle), each memory at its largest multiplier and a strategy's treatment at its
-hazard ratio. Every term is at least any patient's own at any time, so a bound of at most
+hazard ratio (a treated probability's, from its own base value). Every term is at least any patient's own at any time, so a bound of at most
 1 proves that every patient's row is a distribution. It is vectorised over parameter sets:
 the base case and the one-way settings when the file is read (and again when a population
 file is read), and the PSA draws before any is simulated. Under the competing rule a row
@@ -27,8 +27,9 @@ from .checks import check_reference, level_choices, table_at
 from .errors import ScenarioError
 from .fields import AGE, COMPETING_PROBABILITY, TOLERANCE, Reference, listing, show
 from .formulas import settings, with_derived
-from .spec import (COMPETING, REMAINDER, SEPARATE, LineSpec, Ref, Scenario, StrategySpec,
-                   TransitionSpec)
+from .risk_changes import hazard_ratio, treated_ref
+from .spec import (COMPETING, REMAINDER, SEPARATE, ChangeSpec, LineSpec, Ref, Scenario,
+                   StrategySpec, TransitionSpec)
 
 Ranges = Mapping[str, tuple[float, float]]
 """Numeric attribute -> (lowest, highest) value a patient can have at time 0."""
@@ -41,7 +42,7 @@ class Move:
     """A move of a row besides its remainder, as one strategy (or the model) runs it."""
     spec: TransitionSpec
     path: str  # transitions.<from>-><to>, under the path of the treatment that adds it
-    changes: tuple[tuple[int, Ref], ...] = ()  # the treatment's changes on it: (index, HR)
+    changes: tuple[tuple[int, ChangeSpec], ...] = ()  # the treatment's changes on it, by index
     gated: bool = False  # added by the treatment for patients on treatment only
 
 
@@ -100,7 +101,7 @@ def strategy_rows(s: Scenario, strategy: StrategySpec | None, line: LineSpec | N
             if t.probability == REMAINDER:
                 remainder, remainder_path = t, path
                 continue
-            hits = tuple((i, c.hazard_ratio) for i, c in enumerate(changes)
+            hits = tuple((i, c) for i, c in enumerate(changes)
                          if c.risk in (t.name, t.key))
             changed = changed or bool(hits)
             moves.append(Move(t, path, hits, gated))
@@ -120,7 +121,7 @@ def row_names(s: Scenario, row: Row) -> list[str]:
         refs += [e.hazard_ratio for e in move.spec.effects]
         for m in move.spec.memory:
             refs += m.multipliers if m.multipliers is not None else [m.multiplier]
-        refs += [hr for _, hr in move.changes]
+        refs += [treated_ref(c) for _, c in move.changes]
     return list(dict.fromkeys(r for r in refs if isinstance(r, str)))
 
 
@@ -300,8 +301,9 @@ def move_multiplier(move: Move, treatment: str | None, value, ranges: Ranges, sp
                 if m.multipliers is not None else np.maximum(value(m.multiplier), 1.0))
         terms.append((f"memory of {m.after}", False, np.log(most)))
     if move.changes or move.gated:
-        on = np.prod(np.stack(np.broadcast_arrays(*(value(hr) for _, hr in move.changes),
-                                                  np.asarray(1.0))), axis=0)
+        on = np.prod(np.stack(np.broadcast_arrays(
+            *(hazard_ratio(c, value, move.spec.probability) for _, c in move.changes),
+            np.asarray(1.0))), axis=0)
         terms.append((f"the hazard ratio of {treatment}", False,
                       np.log(np.maximum(on, 0.0 if move.gated else 1.0))))
     return terms

@@ -335,11 +335,14 @@ class EligibilitySpec:
 class ChangeSpec:
     """What a strategy changes while a patient is on treatment.
 
-    `risk` (a transition or event name, or a from->to key) with `hazard_ratio`; or `state`
-    (None: every non-absorbing state) with `cost` added per time unit and/or
-    `utility` added per time unit."""
+    `risk` (a transition or event name, or a from->to key) with one of `hazard_ratio`, the
+    treated `rate` or the treated `probability` (the last two are bound as the hazard ratio
+    they amount to, `microsim.scenario.risk_changes`); or `state` (None: every non-absorbing
+    state) with `cost` added per time unit and/or `utility` added per time unit."""
     risk: str | None = None
     hazard_ratio: Ref | None = None
+    rate: Ref | None = None  # the constant rate on treatment
+    probability: Ref | None = None  # the per-cycle probability on treatment
     state: str | None = None
     cost: Ref = 0.0
     utility: Ref = 0.0
