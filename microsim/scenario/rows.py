@@ -9,10 +9,11 @@ band (tables on the same axis band by band, as they are read together), each mul
 its highest over the attributes' ranges (HR^(x - centre) at an end of the range; levels
 and yes/no as 0/1; attained age from the youngest age at time 0 to the oldest plus the
 last cycle), each memory at its largest multiplier and a strategy's treatment at its
-hazard ratio (a treated probability's, from its own base value). Every term is at least any patient's own at any time, so a bound of at most
-1 proves that every patient's row is a distribution. It is vectorised over parameter sets:
-the base case and the one-way settings when the file is read (and again when a population
-file is read), and the PSA draws before any is simulated. Under the competing rule a row
+hazard ratio (a treated probability's, from its own base value). Every term is at least
+any patient's own at any time, so a bound of at most 1 proves that every patient's row is
+a distribution. It is vectorised over parameter sets: the base case and the one-way
+settings when the file is read (and again when a population file is read), and the PSA
+draws before any is simulated. Under the competing rule a row
 never exceeds 1, so no bound is needed.
 """
 from __future__ import annotations
