@@ -22,6 +22,7 @@ from microsim.decision.budget_impact import (EXACT, SIMULATED, budget_tables, co
                                              costs_by_year)
 from microsim.patients.population import patients_for
 from microsim.scenario import ScenarioError, parse_scenario
+from microsim.scenario.read_economics import check_incidence_covers
 from support import (Z, after, assert_refused, edited, event, horizon, nested, outcomes,
                      probability, rate, scenario_text, section, start, state, strategy)
 from test_tornado import C_DRUG, C_WELL, HR, R, model_text
@@ -134,12 +135,24 @@ def test_a_scenario_without_strategies_gets_its_costs_and_no_impact():
 ])
 def test_bad_settings_are_refused(economics, path, phrase):
     text = model_text(section("economics", **economics))
-    if path == "economics.budget_years" and "horizon" in phrase:
+    if "horizon" in phrase or "lists" in phrase:  # checked when the budget is asked for
         with pytest.raises(ScenarioError) as refused:
             budget_tables(parse_scenario(text), patients=5)
         assert refused.value.path == path and phrase in refused.value.message
     else:
         assert_refused(text, path, phrase)
+
+
+def test_an_incidence_list_covers_the_years_of_the_analysis_that_reads_it():
+    # three years of incidence serve a 3-year budget though population EVPI is asked over
+    # 10: the list is checked against the years of the analysis run, not every key set
+    text = model_text(section("economics", incidence=[100, 200, 300], budget_years=3,
+                              evpi_years=10, evpi_discount=0.035))
+    impact = budget_tables(parse_scenario(text), patients=5)["budget_impact"]
+    assert sorted(impact.new_patients.unique()) == [100.0, 200.0, 300.0]
+    with pytest.raises(ScenarioError) as refused:
+        check_incidence_covers(parse_scenario(text).economics, "evpi_years")
+    assert refused.value.path == "economics.incidence" and "lists 3 years" in refused.value.message
 
 
 def test_a_model_in_months_counts_its_budget_years_of_twelve_months():

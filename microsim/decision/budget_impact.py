@@ -43,6 +43,7 @@ from microsim.decision.strategies import AS_WRITTEN, strategy_names
 from microsim.results.comparison import ROUNDOFF, within_roundoff
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import TOLERANCE
+from microsim.scenario.read_economics import check_incidence_covers
 from microsim.scenario.spec import Scenario
 
 EXACT = "exact: the patients' analytic expectations"
@@ -83,6 +84,7 @@ def check_budget(scenario: Scenario) -> None:
         raise ScenarioError("economics.budget_years", "is needed for a budget impact: the "
                             "calendar years to cost; give it (or --budget-years) with "
                             "economics.incidence and/or economics.prevalent_patients")
+    check_incidence_covers(scenario.economics, "budget_years")
     time, length = scenario.time, units_per_year(scenario)
     if years * length > time.end * (1 + TOLERANCE):
         raise ScenarioError("economics.budget_years", f"{years} years reach past the model's "

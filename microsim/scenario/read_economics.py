@@ -68,8 +68,9 @@ def check_economics(s: Scenario) -> list[str]:
 
 def check_population_settings(e: EconomicsSpec) -> None:
     """Population EVPI needs incidence, evpi_years and evpi_discount together; a budget
-    needs patients (incidence or prevalent_patients); a list of incidences covers every
-    year it is used for."""
+    needs patients (incidence or prevalent_patients). Whether a list of incidences covers
+    the years is asked where they are used (`check_incidence_covers`): a budget of 3 years
+    needs no list as long as the population EVPI's 10."""
     evpi = {"evpi_years": e.evpi_years, "evpi_discount": e.evpi_discount}
     given = [key for key, value in evpi.items() if value is not None]
     if given and (len(given) < 2 or not e.incidence):
@@ -81,10 +82,13 @@ def check_population_settings(e: EconomicsSpec) -> None:
         raise ScenarioError("economics.budget_years", "a budget needs patients: give "
                             "economics.incidence (new patients a year) and/or "
                             "economics.prevalent_patients")
-    if len(e.incidence) > 1:
-        for key in ("evpi_years", "budget_years"):
-            years = getattr(e, key)
-            if years is not None and len(e.incidence) < years:
-                raise ScenarioError("economics.incidence", f"lists {len(e.incidence)} years "
-                                    f"but economics.{key} is {years}; give one number for "
-                                    "every year, or one per year")
+
+
+def check_incidence_covers(e: EconomicsSpec, key: str) -> None:
+    """A list of incidences has a number for each of the years `key` (evpi_years or
+    budget_years) asks for, checked before the analysis that reads them runs."""
+    years = getattr(e, key)
+    if len(e.incidence) > 1 and years is not None and len(e.incidence) < years:
+        raise ScenarioError("economics.incidence", f"lists {len(e.incidence)} years but "
+                            f"economics.{key} is {years}; give one number for every year, "
+                            f"or at least one for each of the {years} years")

@@ -35,6 +35,7 @@ from microsim.decision.strategies import (AS_WRITTEN, COST, EFFECT, patient_outc
                                          run_strategies, strategy_names)
 from microsim.patients.population import patients_for, scenario_patients
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.read_economics import check_incidence_covers
 from microsim.scenario.read_uncertainty import psa_tables
 from microsim.scenario.spec import Scenario
 from microsim.store import file_hash
@@ -215,6 +216,7 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                                spec.normal_groups)
     # every draw checked (refused, redrawn or truncated) before anything is simulated
     check_evppi_draws(scenario, n_draws)
+    check_incidence_covers(scenario.economics, "evpi_years")
     checked = check_draws(scenario, sampler, n_draws, scenario.simulation.seed)
     table = checked.table
     fingerprint = {"scenario_sha256": file_hash(scenario.source) if scenario.source else None,
