@@ -198,7 +198,8 @@ def test_unbounded_attribute_is_refused_naming_row_and_fix():
     error = refusal(text)
     assert error.path == "transitions.well->*"
     for phrase in ("can sum to 1.1", "driven by smoker, marker (unbounded)",
-                   'set time.probability_rule = "competing"', "or truncate marker",
+                   'set time.probability_rule = "competing"', "or bound marker (a normal attribute takes upper; a lognormal or gamma one has no "
+                   "bound",
                    "or lower the effects"):
         assert phrase in error.message, error.message
     assert "\n" not in str(error)

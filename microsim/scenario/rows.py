@@ -340,7 +340,9 @@ def too_high(found: RowBound, k: int, setting: str = "") -> str:
                if log[k] > 0]
     names = dict.fromkeys(what + (" (unbounded)" if inf else "") for what, _, inf in drivers)
     unbounded = dict.fromkeys(what for what, attribute, inf in drivers if attribute and inf)
-    fixes = [COMPETING_FIX] + ([f"truncate {listing(unbounded)}"] if unbounded else [])
+    fixes = [COMPETING_FIX] + ([f"bound {listing(unbounded)} (a normal attribute takes "
+                                "upper; a lognormal or gamma one has no bound, so draw it "
+                                "as a normal with upper, or a uniform)"] if unbounded else [])
     return (f"under the separate probability rule the probabilities from {state!r} other than "
             f"the remainder can sum to {total}{setting} (each at its highest over patients and "
             f"time{band and ', tables at their highest band'}), above 1, driven by "
