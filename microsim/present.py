@@ -187,7 +187,7 @@ def print_sensitivity(scenario, tables: dict[str, pd.DataFrame]) -> None:
     for name, rows in table.groupby("strategy", sort=False):
         exact = rows.se_base.isna().all()
         hidden = ["strategy", "measure", "compared_with", "basis",
-                  *(["se_low", "se_high", "se_base"] if exact else [])]
+                  *(["se_low", "se_high", "se_base", "se_swing"] if exact else [])]
         subject = "the model as written" if name == AS_WRITTEN else name
         show(f"One-way sensitivity of {what} of {subject}{against}{at} "
              f"({rows.basis.iloc[0]}; tornado data, widest swing first)",

@@ -60,7 +60,8 @@ def test_each_measure_follows_the_closed_form(measure):
         assert (table.compared_with == "usual").all()
     else:
         assert table.compared_with.isna().all()
-    assert (table.basis == EXACT).all() and table[["se_low", "se_high", "se_base"]].isna().all().all()
+    assert (table.basis == EXACT).all() and table[["se_low", "se_high", "se_base",
+                                                   "se_swing"]].isna().all().all()
     for row in table.itertuples():
         setting = {"hr": HR["value"], "c_drug": C_DRUG["value"]}
         base = closed_form(measure, row.strategy, **setting)
@@ -123,6 +124,13 @@ def test_a_simulated_setting_carries_its_monte_carlo_error():
         assert se > 0
         expected = closed_form("incremental_qalys", "drug", hr, C_DRUG["value"])
         assert abs(result - expected) < Z * se, (result, expected, se)
+    # the swing has its own, paired standard error (both settings on the same patients and
+    # draws) and is within Z of the closed forms' swing; pairing makes it smaller here than
+    # the independent sqrt(se_low^2 + se_high^2), since both settings move together
+    swing = abs(closed_form("incremental_qalys", "drug", HR["high"], C_DRUG["value"])
+                - closed_form("incremental_qalys", "drug", HR["low"], C_DRUG["value"]))
+    assert 0 < row.se_swing < math.hypot(row.se_low, row.se_high)
+    assert abs(row.swing - swing) < Z * row.se_swing, (row.swing, swing, row.se_swing)
 
 
 def test_one_way_carries_an_estimates_standard_error():

@@ -355,7 +355,8 @@ class Report:
                 Column("result at low", ("result_low", "se_low"), normal_interval),
                 Column("result at high", ("result_high", "se_high"), normal_interval),
                 Column("base case", ("result_base",), number),
-                Column("swing", ("swing",), number)],
+                Column("swing", ("swing", "se_swing"), nonnegative_interval)
+                if "se_swing" in one_way.columns else Column("swing", ("swing",), number)],
                 f"One-way sensitivity of {self.sensitivity_label(one_way)} "
                 f"({self.sensitivity_unit(one_way)}; {CI95} where simulated)"))
         two_way = run.table("two_way")

@@ -204,13 +204,29 @@ def tornado(scenario: Scenario, patients: int | None = None, seed: int | None = 
             settings: Settings | None = None) -> pd.DataFrame:
     """The one-way table of `measure` for each chosen strategy (see `tornado_strategies`):
     strategy, measure, compared_with, the `one_way` columns (widest swing first within each
-    strategy) and basis (exact, or simulated with its standard errors). `settings` shares
-    the evaluations with other analyses of the same choices."""
+    strategy), se_swing and basis (exact, or simulated with its standard errors). `settings`
+    shares the evaluations with other analyses of the same choices."""
     settings = settings or Settings(scenario, patients, seed, strategy, measure)
     frames = [settings.labelled(one_way(settings.evaluate, scenario.parameters,
                                         partial(settings.estimate, name)), name)
               for name in settings.chosen]
     table = pd.concat(frames, ignore_index=True)
+    table["se_swing"] = [swing_se(settings, row.strategy, row.parameter, row.low, row.high)
+                         for row in table.itertuples()]
     table["basis"] = np.where(table.se_base.isna(), EXACT, SIMULATED)
     as_text(table, "strategy", "measure", "compared_with", "basis")
-    return table[["strategy", "measure", "compared_with", *COLUMNS, "basis"]]
+    return table[["strategy", "measure", "compared_with", *COLUMNS, "se_swing", "basis"]]
+
+
+def swing_se(settings: Settings, strategy: str, parameter: str, low: float,
+             high: float) -> float:
+    """The standard error of result_high - result_low where simulated (nan where exact):
+    both settings run on the same patients and draws (common random numbers), so the
+    error of their difference is the paired differences' own, far below either setting's
+    when the two move together."""
+    name = None if strategy == AS_WRITTEN else strategy
+    lows, exact = settings.per_patient(name, settings.evaluate({**settings.base, parameter: low}))
+    highs, _ = settings.per_patient(name, settings.evaluate({**settings.base, parameter: high}))
+    if exact:
+        return math.nan
+    return float(np.std(highs - lows, ddof=1) / math.sqrt(len(lows)))
