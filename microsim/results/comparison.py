@@ -68,6 +68,8 @@ MAX_COMPARED_STEPS = 500  # steps of the comparison grid of a long horizon (and 
 ROUNDOFF = 1e-7  # relative difference that numerical error alone can explain (floating
 # point in the engines, and the forward equations' rtol of 1e-10 over long horizons)
 MONTE_CARLO = "Monte-Carlo"
+SHARE_TEST = (f"{MONTE_CARLO}: the p-value is the exact binomial tail of the count; z "
+              "(difference over SE) is for reading only")
 EXACT = f"no Monte-Carlo error: equal within {ROUNDOFF:g} (relative)"
 FEWEST_FOR_MEANS = 30  # patients below which a mean is not tested (common practice: n >= 30)
 UNSEEN = ("not tested: the patients did not vary, though the model does, so their Monte-Carlo "
@@ -212,7 +214,7 @@ class Shares:
         return {"simulated": simulated, "analytic": analytic_share, "se": se,
                 "z": z_scores(simulated - analytic_share, se),
                 "p_value": share_p_values(simulated, analytic_share, self.n),
-                "test": np.where(se == 0.0, EXACT, MONTE_CARLO)}
+                "test": np.where(se == 0.0, EXACT, SHARE_TEST)}
 
 
 def share_table(shares: Shares, grid: np.ndarray, states) -> pd.DataFrame:
