@@ -151,7 +151,8 @@ def print_summary(result: MainResult) -> None:
             show("Expected value of partial perfect information per patient (regression on "
                  "the PSA sample, Strong, Oakley & Brennan 2014; SE by wild bootstrap and "
                  "over the draws)", rows.drop(columns=["method", "edf", "edf_fits", "above_evpi"]))
-            capped = cap_words(p.evppi, s.economics.currency)
+            capped = cap_words(p.evppi, s.economics.currency,
+                               simulated=s.uncertainty.basis == "simulated")
             if capped:
                 print(capped)
             for group, method in rows[["group", "method"]].drop_duplicates().itertuples(index=False):

@@ -169,7 +169,9 @@ def test_an_estimate_above_evpi_is_capped_at_it_and_the_excess_is_recorded(monke
     table = evppi_table(parameters, draws, [("t1",)], THRESHOLDS, "usual", seed=5)
     np.testing.assert_allclose(table.evppi, np.minimum(over, evpi))
     np.testing.assert_allclose(table.above_evpi, [0.0, 25.0, 0.0], atol=1e-9)
-    words = evppi.cap_words(table, "GBP")
+    words = evppi.cap_words(table, "GBP", simulated=False)
     assert words.startswith("EVPPI capped at EVPI in 1 of 3 rows")
     assert "by at most 25 GBP per patient, for t1 at threshold 3500" in words
-    assert evppi.cap_words(table.assign(above_evpi=0.0), "GBP") is None
+    assert "inner patients' noise" not in words
+    assert "inner patients' noise" in evppi.cap_words(table, "GBP", simulated=True)
+    assert evppi.cap_words(table.assign(above_evpi=0.0), "GBP", simulated=True) is None

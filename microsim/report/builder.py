@@ -333,7 +333,9 @@ class Report:
                       if "population_evppi" in evppi else []),
                     Column("regression", ("method",))],
                     f"Expected value of partial perfect information at {number(near)} {cur} "
-                    "per QALY (Strong, Oakley & Brennan 2014)", cap_words(evppi, cur) or ""))
+                    "per QALY (Strong, Oakley & Brennan 2014)",
+                    cap_words(evppi, cur, simulated=not str(self.summary["psa"].get(
+                        "basis", "")).startswith("exact")) or ""))
             variance = run.table("psa_variance")
             if variance is not None:
                 found.append(tables.table("psa_variance", variance, [

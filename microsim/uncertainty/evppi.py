@@ -131,8 +131,9 @@ def evppi_table(parameters: pd.DataFrame, results: pd.DataFrame, groups, thresho
     return table
 
 
-def cap_words(table: pd.DataFrame, currency: str) -> str | None:
-    """A sentence for the rows whose estimate exceeded the EVPI it is capped at, or None."""
+def cap_words(table: pd.DataFrame, currency: str, simulated: bool) -> str | None:
+    """A sentence for the rows whose estimate exceeded the EVPI it is capped at, or None;
+    on simulated draws it adds that the EVPI itself holds the inner patients' noise."""
     if "above_evpi" not in table:  # a run folder written before the cap
         return None
     over = table[table.above_evpi > 0]
@@ -142,4 +143,8 @@ def cap_words(table: pd.DataFrame, currency: str) -> str | None:
     return (f"EVPPI capped at EVPI in {len(over)} of {len(table)} rows (an estimate above "
             f"its bound is estimation error; by at most {worst.above_evpi:.4g} {currency} "
             f"per patient, for {worst.group} at threshold {worst.threshold:g}); more PSA "
-            "draws narrow it.")
+            "draws narrow it." + (
+                " On simulated draws the EVPI also holds the inner patients' noise, which "
+                "makes it an upper estimate itself, so the bound is loose; more patients per "
+                "draw, or the exact basis where the model has one, tighten both."
+                if simulated else ""))
