@@ -28,7 +28,7 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import main
 from microsim.report.builder import build_report
-from microsim.report.words import lookup, psa_tables, who_gains
+from microsim.report.words import decision, lookup, psa_tables, who_gains
 from microsim.scenario import ScenarioError
 from support import horizon, rate, scenario_text, start, state
 
@@ -161,6 +161,17 @@ def test_the_psa_tables_sentence_ties_every_name_to_summary_json():
     # no table read, or a summary written before it said: no sentence
     assert psa_tables({"psa": {"tables_varied": [], "tables_held_fixed": []}}) is None
     assert psa_tables({"psa": {"draws": 8}}) is None and psa_tables({}) is None
+
+
+@pytest.mark.parametrize("labels, words", [({"drug": "New drug"}, "is New drug (drug)."),
+                                            ({}, "is drug.")])
+def test_the_best_strategy_is_named_once_when_it_has_no_label(labels, words):
+    summary = {"comparator": "usual", "best_at_threshold": "drug", "threshold": 20000,
+               "currency": "GBP", "increments": [], "treated": {}, "incremental_analysis": [],
+               "subgroups": []}
+    first = decision(summary, labels)[0]
+    text = "".join(p if isinstance(p, str) else p.text for p in first)
+    assert words in text and "( " not in text and "(drug) (" not in text, text
 
 
 def subgroup_rows(strategy: str, *verdicts: str) -> list[dict]:

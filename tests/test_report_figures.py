@@ -391,3 +391,16 @@ def test_the_budget_s_axis_labels_fit_in_the_figure_with_a_long_currency():
         label = axes.yaxis.label.get_window_extent(renderer)
         assert box.x0 <= label.x0 and label.x1 <= box.x1
         assert box.y0 <= label.y0 and label.y1 <= box.y1, axes.get_ylabel()
+
+
+def test_contour_labels_sit_inside_the_frame_and_corner_lines_get_none():
+    # z = x + y on the unit square (a hand-made plane): its contour x + y = c is a
+    # diagonal whose point farthest from the edges is its middle (c/2, c/2) for c <= 1;
+    # the line at c = 0.05 never leaves the corner and is left unlabelled
+    from matplotlib.figure import Figure
+    x = y = np.linspace(0.0, 1.0, 41)
+    z = x[None, :] + y[:, None]
+    lines = Figure().subplots().contour(x, y, z, levels=[0.05, 0.5, 1.0, 1.5])
+    points = figures.inmost_points(lines, x, y)
+    assert len(points) == 3
+    np.testing.assert_allclose(points, [(0.25, 0.25), (0.5, 0.5), (0.75, 0.75)], atol=0.03)

@@ -66,6 +66,8 @@ CASES = [
      "time.cycle", "must be a number, got '1'; write the number without quotes"),
     ("quoted number for cost", "discrete", [("cost = 100", 'cost = "1500"')],
      "states.well.cost", "got '1500'; write the number without quotes"),
+    ("word for number", "discrete", [("cycle = 1", 'cycle = "one"')],
+     "time.cycle", "must be a number, got 'one'; write it in digits, without quotes"),
     ("quoted number for whole number", "discrete", [("seed = 1", 'seed = "7"')],
      "simulation.seed", "must be a whole number, got '7'; write the number without quotes"),
     ("bool for number", "discrete", [("cost = 100", "cost = true")],

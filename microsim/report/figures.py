@@ -227,6 +227,27 @@ def evppi_figure(evppi: pd.DataFrame, threshold: float, currency: str) -> Figure
     return figure
 
 
+def inmost_points(lines, x: np.ndarray, y: np.ndarray) -> list[tuple[float, float]]:
+    """For each contour line, its point farthest from the grid's edges (in axis fractions),
+    where its label is read whole rather than cut by the frame; a line that stays within
+    EDGE of a corner gets none (the colour bar still gives its value)."""
+    span = np.array([x.max() - x.min(), y.max() - y.min()])
+    span[span == 0] = 1.0
+    points = []
+    for segments in lines.allsegs:
+        vertices = [v for segment in segments for v in segment]
+        if not vertices:
+            continue
+        share = (np.array(vertices) - [x.min(), y.min()]) / span
+        inside = np.minimum(share, 1.0 - share).min(axis=1)
+        if inside.max() >= EDGE:
+            points.append(tuple(vertices[int(np.argmax(inside))]))
+    return points
+
+
+EDGE = 0.06  # axis fraction a contour label needs from the frame to be read whole
+
+
 def two_way_figure(two_way: pd.DataFrame, strategies: Labels, measure_label: str,
                    unit: str) -> Figure:
     """The two-way grid (table `two_way`), one panel per strategy: the measure as filled
@@ -244,7 +265,8 @@ def two_way_figure(two_way: pd.DataFrame, strategies: Labels, measure_label: str
             x, y, z = grid.columns.to_numpy(), grid.index.to_numpy(), grid.to_numpy()
             filled = ax.contourf(x, y, z, levels=10, cmap=shades)
             lines = ax.contour(x, y, z, levels=filled.levels, colors=INK, linewidths=0.5)
-            ax.clabel(lines, fontsize=6.5, fmt=lambda v: f"{v:,.0f}" if unit != "QALYs" else f"{v:.3g}")
+            ax.clabel(lines, fontsize=6.5, manual=inmost_points(lines, x, y),
+                      fmt=lambda v: f"{v:,.0f}" if unit != "QALYs" else f"{v:.3g}")
             if z.min() < 0 < z.max():
                 ax.contour(x, y, z, levels=[0.0], colors=INK, linewidths=2.2)
             # the base value of a parameter: the one whose whole line is at base

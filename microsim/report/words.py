@@ -48,10 +48,11 @@ def decision(summary: dict, labels: Mapping[str, str]) -> list[list]:
                  "results below are those of the model as written."]]
     cur, best, comparator = summary["currency"], summary["best_at_threshold"], summary["comparator"]
     name = labels.get
+    best_key = key(summary, "best_at_threshold", str)  # its name, tied to summary.json
+    labelled = [f"{name(best)} (", best_key, ")"] if name(best, best) != best else [best_key]
     paragraphs = [[
         "At a willingness to pay of ", key(summary, "threshold"), f" {cur} per QALY, the "
-        f"strategy with the highest expected net monetary benefit is {name(best, best)} (",
-        key(summary, "best_at_threshold", str), ")."]]
+        "strategy with the highest expected net monetary benefit is ", *labelled, "."]]
     at = position(summary["increments"], strategy=best, measure="incremental_nmb")
     if at is not None:
         path = f"increments.{at}"

@@ -79,6 +79,14 @@ def unquoted_number(value: Any) -> str:
     return "; write the number without quotes" if math.isfinite(number) else ""
 
 
+def number_hint(value: Any) -> str:
+    """The fix for text where only a number belongs: drop the quotes of digits, or write
+    a word (`lifetime_cap = "forty"`) in digits."""
+    if not isinstance(value, str):
+        return ""
+    return unquoted_number(value) or "; write it in digits, without quotes"
+
+
 def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """' (did you mean 'x'?)' when a choice is close to `word`, else ''."""
     close = closest(word, choices)
@@ -269,7 +277,7 @@ class Node:
 
     def _number(self, value: Any, key: str, role: Role, expect: str = "a number") -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self.fail(key, f"must be {expect}, got {describe(value)}{unquoted_number(value)}")
+            self.fail(key, f"must be {expect}, got {describe(value)}{number_hint(value)}")
         x = float(value)
         if not math.isfinite(x):
             self.fail(key, f"must be a finite number, got {describe(value)}")
@@ -302,7 +310,7 @@ class Node:
         if (isinstance(value, bool) or not isinstance(value, (int, float))
                 or (isinstance(value, float) and not value.is_integer())):
             self.fail(key, f"must be a whole number, got {describe(value)}"
-                           f"{unquoted_number(value)}")
+                           f"{number_hint(value)}")
         n = int(value)
         if n < minimum:
             self.fail(key, f"must be at least {minimum}, got {n}")

@@ -20,7 +20,8 @@ def read_sensitivity(node: Node | None) -> SensitivitySpec:
         return defaults
     pair = node.names("two_way") if node.has("two_way") else ()
     if pair and len(pair) != 2:
-        node.fail("two_way", f"names {len(pair)} parameters; a two-way analysis varies "
+        node.fail("two_way", f"names {len(pair)} parameter{'' if len(pair) == 1 else 's'}; "
+                             "a two-way analysis varies "
                              "exactly two (two_way = [\"p_a\", \"p_b\"])")
     return SensitivitySpec(
         two_way=pair,
