@@ -175,6 +175,32 @@ def test_cycle_occupancy_is_indicator_trace_times_cycle_weights(correction):
             np.testing.assert_allclose(occupancy[:, s, w], expected, rtol=1e-13)
 
 
+def test_cycle_occupancy_of_the_absorbed_and_the_treated_equals_the_point_by_point_sums():
+    # random paths that end absorbed (dead from a random point on) and random treatment
+    # windows, some ending after death or never opening: every point's weight summed where
+    # the patient is in the state (and on treatment), by numpy masks as the reference
+    from microsim.patients.multipliers import Window
+    model = cycle_model("half-cycle", n_cycles=40)
+    rng = np.random.default_rng(11)
+    B, T = 300, 41
+    states = rng.integers(0, 2, size=(B, T))
+    died = rng.integers(1, T + 5, size=B)  # beyond T: never absorbed
+    states[np.arange(T) >= died[:, None]] = DEAD
+    times = model.times
+    on = rng.choice(np.r_[times, np.inf], size=B)
+    off = on + rng.choice([0.5, 3.0, 25.0, np.inf], size=B)
+    window = Window(on, off, np.ones(len(model.risks)), np.ones(len(model.risks)))
+    every, treated = aggregate.cycle_occupancy(model, states.astype(np.int16), window)
+    weights = np.stack([cycle_weights(40, 0.5, d, correction="half-cycle")
+                        for d in (0.0, 0.0, 0.04)], axis=1)
+    active = (on[:, None] <= times) & (times < off[:, None])
+    for s in range(3):
+        inside = (states == s).astype(float)
+        np.testing.assert_allclose(every[:, s], inside @ weights, rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(treated[:, s], (inside * active) @ weights, rtol=1e-12,
+                                   atol=1e-14)
+
+
 def test_cycle_occupancy_half_cycle_by_hand():
     # the format's half-cycle rule: cycle * (f_0 / 2 + f_1 + ... + f_{n-1}), each point
     # discounted (1 + d)^-t (docs/scenario-format.md; Elbasha & Chhatwal 2016, from memory)

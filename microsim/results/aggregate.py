@@ -7,6 +7,7 @@ the scenario's within-cycle rule on the cycle points in cycle models.
 """
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 import numpy as np
@@ -54,12 +55,28 @@ def occurrences(model: BoundModel, h: Histories, edges: np.ndarray | None = None
     each happened in."""
     R, K = len(model.risks), 1 if edges is None else edges.shape[1] - 1
     out = np.zeros((h.n_patients, R * K, 3))
+    if edges is None:
+        _count_records(out, h.patient, h.risk, h.time, discount_rates(model))
+        return out
     happened = np.flatnonzero(h.risk >= 0)
     patient, time = h.patient[happened], h.time[happened]
     weights = np.exp(-np.outer(time, discount_rates(model)))
     cell = h.risk[happened] * K + (0 if edges is None else band_of(edges[patient], time))
     _add_rows(out, patient, cell, weights)
     return out if edges is None else out.reshape(h.n_patients, R, K, 3)
+
+
+@njit(cache=True, nogil=True)
+def _count_records(out, patient, risk, time, rates):
+    """out[patient, risk] += (e^{-rate t} at each rate) for each record of a risk, in record
+    order: the counts and their discounted sums in one pass, without the arrays of the
+    records' weights (a rate of 0 counts 1)."""
+    for q in range(risk.size):
+        r = risk[q]
+        if r < 0:
+            continue
+        for w in range(rates.size):
+            out[patient[q], r, w] += 1.0 if rates[w] == 0.0 else math.exp(-(time[q] * rates[w]))
 
 
 @njit(cache=True, nogil=True)
@@ -119,22 +136,34 @@ def cycle_occupancy(model: BoundModel, states: np.ndarray, window: Window | None
             else band_of(edges, np.broadcast_to(times, states.shape)))
     shape = (B, S, 3) if edges is None else (B, S, K, 3)
     every, treated = np.zeros(shape), np.zeros(shape)
-    _occupancy(states, weights, S, K, band, times, on, off, every.reshape(B, S * K, 3),
-               treated.reshape(B, S * K, 3))
+    rest = np.concatenate([np.cumsum(weights[::-1], axis=0)[::-1], np.zeros((1, 3))])
+    _occupancy(states, weights, rest, np.asarray(model.absorbing, bool), S, K, band, times,
+               on, off, every.reshape(B, S * K, 3), treated.reshape(B, S * K, 3))
     return every, treated
 
 
 @njit(cache=True, nogil=True)
-def _occupancy(states, weights, n_states, n_bands, band, times, on, off, every, treated):
+def _occupancy(states, weights, rest, absorbing, n_states, n_bands, band, times, on, off,
+               every, treated):
     """every[b, s * n_bands + band[b, t]] += weights[t] over the points t where patient b is
     in s, and treated[...] the same where on[b] <= t < off[b], added in time order (band
-    empty: a single band); a point with state -1 adds nothing."""
+    empty: a single band); a point with state -1 adds nothing. From the point a patient is
+    absorbed on (single band) it is in that state at every later point, so the rest of the
+    weights (`rest[t]`, their sum from point t on) is added at once: the dead cost no work
+    per point."""
     B, T = states.shape
     for b in range(B):
         for t in range(T):
             s = states[b, t]
             if s < 0:
                 continue
+            if n_bands == 1 and absorbing[s]:
+                lo = max(t, np.searchsorted(times, on[b]))  # on[b] <= times[i] < off[b]
+                hi = max(lo, np.searchsorted(times, off[b]))
+                for w in range(weights.shape[1]):
+                    every[b, s, w] += rest[t, w]
+                    treated[b, s, w] += rest[lo, w] - rest[hi, w]
+                break
             cell = s * n_bands + (band[b, t] if n_bands > 1 else 0)
             for w in range(weights.shape[1]):
                 every[b, cell, w] += weights[t, w]
