@@ -300,7 +300,8 @@ def check_phases(s: Scenario, reading: Reading, merged: Scenario, strategy: Stra
     if strategy.start_on and strategy.discontinuation != 0.0:
         raise ScenarioError(f"{prefix}.discontinuation", "runs from the strategy's start time, "
                             "not from the entry that starts treatment; leave it out with "
-                            "start_on, and stop treatment with stop_on")
+                            "start_on, and to stop at a rate while treated add an event at "
+                            "that rate to the strategy's events and name it in stop_on")
     absorbing = {st.name for st in merged.states if st.absorbing}
     treatments = [(prefix, strategy, strategy.start_on, strategy.stop_on, merged)]
     for line, before in zip(strategy.then, [strategy.stop_on] + [x.stop_on for x in strategy.then]):
