@@ -167,9 +167,23 @@ def test_derived_parameters_read_each_other_in_any_order():
     ({"formula": "p5", "fromula": 1}, {}, "parameters.p_death.fromula", "did you mean 'formula'"),
     ({"formula": 0.3}, {}, "parameters.p_death.formula", "must be text"),
     ({"formula": "p5 +"}, {}, "parameters.p_death.formula", "column 5 of 'p5 +'"),
+    # deep or long formulas: refused before their recursion would exhaust Python's stack
+    # (its default limit is 1000 frames, from memory); the message quotes the formula's ends
+    ({"formula": "(" * 300 + "p5" + ")" * 300}, {}, "parameters.p_death.formula",
+     "nests or chains more than 100 operations; split it into derived parameters"),
+    ({"formula": " + ".join(["p5 / 1000"] * 1000)}, {}, "parameters.p_death.formula",
+     "column 1 of 'p5 / 1000 + p5 / 1000 + p5 / ... 000 + p5 / 1000 + p5 / 1000': nests"),
+    ({"formula": "-" * 3000 + "p5"}, {}, "parameters.p_death.formula", "more than 100"),
 ])
 def test_bad_formulas_are_refused_in_one_line(p_death, more, path, phrase):
     assert_refused(two_state(p_death, **more), path, phrase)
+
+
+def test_a_formula_of_up_to_100_operations_is_read_and_evaluated():
+    # within the depth limit: 50 terms added, against Python's own sum of the same terms
+    # in the same (left to right) order
+    text = " + ".join(["p5 / 99"] * 50)
+    assert evaluate(parse_formula(text), {"p5": 0.3}) == sum([0.3 / 99] * 50)
 
 
 def test_a_formula_without_a_value_at_a_one_way_setting_is_refused():

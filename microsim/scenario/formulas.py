@@ -225,11 +225,45 @@ def describe(kind: str, text: str) -> str:
     return "the end of the formula" if kind == "end" else repr(text)
 
 
+MAX_DEPTH = 100  # operations nested or chained in one formula (its tree's depth)
+TOO_DEEP = (f"nests or chains more than {MAX_DEPTH} operations; split it into derived "
+            "parameters that each compute a part")
+
+
 def parse_formula(text: str) -> Formula:
-    """The formula's tree; `FormulaError` (with a column) when it is not one."""
+    """The formula's tree; `FormulaError` (with a column) when it is not one, or when it
+    is deeper than MAX_DEPTH (evaluated by recursion, a deeper tree would exhaust the
+    stack: 300 parentheses, or 1000 terms added)."""
     if not text.strip():
         raise FormulaError(1, "is empty; write an expression such as 'rate * hazard_ratio'")
-    return Formula(text, _Parser(text).formula())
+    try:
+        tree = _Parser(text).formula()
+    except RecursionError:
+        raise FormulaError(1, TOO_DEEP) from None
+    if depth(tree) > MAX_DEPTH:
+        raise FormulaError(1, TOO_DEEP)
+    return Formula(text, tree)
+
+
+def quoted(text: str, most: int = 60) -> str:
+    """A formula as a message quotes it: whole when short, else its start and end around
+    '...', so that a refusal stays one readable line."""
+    if len(text) <= most:
+        return repr(text)
+    return repr(text[:most // 2 - 2] + " ... " + text[-(most // 2 - 3):])
+
+
+def depth(tree) -> int:
+    """The depth of a formula's tree, walked without recursion."""
+    deepest, stack = 0, [(tree, 1)]
+    while stack:
+        node, level = stack.pop()
+        deepest = max(deepest, level)
+        children = (node.operand,) if isinstance(node, Negative) else (
+            (node.left, node.right) if isinstance(node, Operation) else (
+                node.arguments if isinstance(node, Call) else ()))
+        stack += [(child, level + 1) for child in children]
+    return deepest
 
 
 def evaluate(formula: Formula, values: Mapping[str, Any], strict: bool = False):
@@ -343,7 +377,7 @@ def explain(parameters: Mapping[str, Any], name: str, values: Mapping[str, float
         evaluate(parameters[name].formula, known, strict=True)
     except FormulaError as error:
         given = ", ".join(f"{n} = {show(float(values[n]))}" for n in inputs(parameters, name))
-        return f"column {error.column} of {parameters[name].formula.text!r}: " \
+        return f"column {error.column} of {quoted(parameters[name].formula.text)}: " \
                f"{error.message}{f' with {given}' if given else ''}"
     return "its formula has no finite value"
 

@@ -8,7 +8,7 @@ from typing import Any, Mapping
 from .errors import ScenarioError
 from .fields import (ANY, IDENTIFIER, NON_NEGATIVE, POSITIVE, Node, describe, did_you_mean,
                      listing, show, undefined, unquoted_number)
-from .formulas import FormulaError, derived_order, parse_formula, settings
+from .formulas import FormulaError, derived_order, parse_formula, quoted, settings
 from .spec import REMAINDER, DistributionSpec, ParameterSpec, Ref, TableSpec
 
 DISTRIBUTION_KEYS = {
@@ -89,7 +89,7 @@ def read_formula(node: Node, name: str) -> ParameterSpec:
     try:
         formula = parse_formula(text)
     except FormulaError as error:
-        entry.fail("formula", f"column {error.column} of {text!r}: {error.message}")
+        entry.fail("formula", f"column {error.column} of {quoted(text)}: {error.message}")
     return ParameterSpec(name, math.nan, formula=formula)
 
 
