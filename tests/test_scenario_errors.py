@@ -445,12 +445,22 @@ def test_syntax_error_at_end_names_last_line(tmp_path):
     ("alpha = 10, beta = 90 }", "alpha = 10, beta = 90, }", "no comma after its last entry"),
     ("discount_costs = 0.035", "discount_costs = 0,035", "decimals with a point"),
     ("c_sick = 500", "c_sick = ", "give a value after '='"),
+    ("alpha = 10, beta = 90 }", "alpha =\n10, beta = 90 }", "stays on one line, closed"),
+    ("[outcomes]", "[time]\n[outcomes]", "cannot declare [time] twice (column"),
 ], ids=["bare word", "True", "open array", "open string", "trailing comma", "decimal comma",
-        "no value"])
+        "no value", "line break in an inline table", "a table twice"])
 def test_syntax_error_hints_at_the_common_cause(old, new, hint):
     error = refusal(edited(DISCRETE, (old, new)))
     assert error.path.startswith("scenario line ") and "(column " in error.message
     assert hint in error.message and "\n" not in str(error), str(error)
+
+
+def test_a_byte_order_mark_is_read_as_no_part_of_the_file(tmp_path):
+    # some editors start UTF-8 files with U+FEFF; TOML 1.0 does not allow it (from memory)
+    # but the rest of the file is the same scenario
+    path = tmp_path / "marked.toml"
+    path.write_text("\ufeff" + DISCRETE, encoding="utf-8")
+    assert read_scenario(path).state_names == parse_scenario(DISCRETE).state_names
 
 
 def test_syntax_error_without_a_known_cause_has_no_hint():

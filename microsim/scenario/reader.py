@@ -28,7 +28,7 @@ from .read_strategies import check_strategies, read_strategies
 from .read_transitions import read_events, read_start_effects, read_transitions
 from .read_uncertainty import UNCERTAINTY_KEYS, check_uncertainty, read_uncertainty
 from .rows import check_row_bounds, check_row_structure
-from .toml_hints import syntax_hint
+from .toml_hints import plain, syntax_hint
 from .spec import (DISCOUNTINGS, PROBABILITY_RULES, SEPARATE, OutcomesSpec, Scenario, SimulationSpec,
                    StartSpec, StateSpec, TimeSpec)
 
@@ -78,14 +78,15 @@ def parse_scenario(text: str, source: str | Path | None = None,
 
 
 def load_toml(text: str, label: str) -> dict[str, Any]:
-    """tomllib, with its syntax errors turned into `<file> line N: ...`."""
+    """tomllib, with its syntax errors turned into `<file> line N: ...`; a byte-order mark
+    at the start (as some editors save UTF-8) is no part of the text."""
     try:
-        return tomllib.loads(text)
+        return tomllib.loads(text.removeprefix("\ufeff"))
     except tomllib.TOMLDecodeError as error:
         message = str(error)
         position = TOML_POSITION.search(message)
         detail = message[:position.start()] if position else message
-        detail = detail[:1].lower() + detail[1:]
+        detail = plain(detail[:1].lower() + detail[1:])
         if position and position.group(1):
             line, column = int(position.group(1)), int(position.group(2))
             where, at = line, f"(column {column})"

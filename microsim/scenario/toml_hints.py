@@ -7,6 +7,15 @@ from __future__ import annotations
 import re
 
 WORD = re.compile(r"[A-Za-z_][\w.-]*")
+TWICE = re.compile(r"cannot declare (\[.*\]) twice")
+KEY_TUPLE = re.compile(r"\(((?:'[^']*',? ?)+)\)")
+
+
+def plain(detail: str) -> str:
+    """tomllib's message with a table's key written as in the file ([time], not
+    ('time',))."""
+    return KEY_TUPLE.sub(lambda m: "[" + ".".join(re.findall(r"'([^']*)'", m.group(1))) + "]",
+                         detail)
 
 
 def syntax_hint(detail: str, text: str, line: int | None, column: int | None) -> str:
@@ -16,7 +25,12 @@ def syntax_hint(detail: str, text: str, line: int | None, column: int | None) ->
     here = lines[line - 1] if line is not None and line <= len(lines) else ""
     rest = here[column - 1:] if column is not None else ""
     if detail.startswith("invalid value"):
+        if here.count("{") > here.count("}"):  # a line break inside an inline table
+            return "an inline table { ... } stays on one line, closed with '}' on it"
         return value_hint(rest.strip())
+    declared = TWICE.match(detail)
+    if declared:
+        return f"put the keys of {declared.group(1)} under one header"
     if detail.startswith("unclosed array"):
         return "close the array with ']' (it may have been opened on an earlier line)"
     if detail.startswith("unclosed inline table"):
