@@ -256,6 +256,19 @@ def test_missing_dask_says_how_to_install_it(draws, tmp_path, monkeypatch):
     assert caught.value.path == "backend" and not (tmp_path / "run").exists()
 
 
+def test_a_dask_address_nothing_answers_at_is_refused_in_one_line(draws, tmp_path, monkeypatch):
+    # port 1 on this machine has no scheduler: the connection times out (kept short here)
+    pytest.importorskip("dask.distributed")
+    from microsim.uncertainty import backends
+    monkeypatch.setattr(backends, "CONNECT_SECONDS", 1)
+    with pytest.raises(ScenarioError, match="no Dask scheduler answered at 'tcp://127.0.0.1:1'"
+                       ) as caught:
+        run_draws(toy_model, draws, tmp_path / "run", backend="dask",
+                  address="tcp://127.0.0.1:1", fingerprint=FINGERPRINT)
+    assert caught.value.path == "address" and "\n" not in str(caught.value)
+    assert not (tmp_path / "run").exists()  # the folder it made is removed again
+
+
 def wrong_draw_model(draw, values):
     return toy_model(draw, values).assign(draw=draw + 1)
 

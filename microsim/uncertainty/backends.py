@@ -83,13 +83,23 @@ def _evaluate_on_one_thread(evaluate: Evaluate, draw: int, values: dict[str, flo
     return evaluate_draw(evaluate, draw, values)
 
 
+CONNECT_SECONDS = 20  # how long a scheduler has to answer before the PSA is refused
+
+
 def dask_cluster(evaluate: Evaluate, jobs: Sequence[Job], workers: int, address: str | None) -> Finished:
     """On the scheduler at `address`, or on a local cluster of `workers` single-threaded
     processes that lives only as long as this iterator."""
     distributed = import_dask()
     cluster = None if address is not None else distributed.LocalCluster(
         n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None)
-    client = distributed.Client(address if address is not None else cluster)
+    try:
+        client = distributed.Client(address if address is not None else cluster,
+                                    timeout=CONNECT_SECONDS)
+    except OSError as error:  # an address nothing answers at
+        if cluster is not None:
+            cluster.close()
+        raise ScenarioError("address", f"no Dask scheduler answered at {address!r} ({error}); "
+                            "start one there, or check the address") from None
     futures = []
     try:
         [shared] = client.scatter([evaluate], broadcast=True)
