@@ -349,3 +349,25 @@ def test_a_population_of_patients_alone_is_that_many_identical_patients():
     pd.testing.assert_frame_equal(alone.patients, without.patients)
     assert_refused(text + '\n[[population.derived]]\nname = "b"\nfrom = "age"\nedges = [0]\n'
                    'labels = ["all"]\n', "population.derived", "needs attributes")
+
+
+@pytest.mark.parametrize("sdlog, refused", [(3.0, True), (0.5, False)])
+def test_an_attribute_whose_hazard_ratio_overflows_is_refused_naming_it(sdlog, refused):
+    # a lognormal marker with sdlog 3 reaches e^9 ~ 8000 among 500 patients (its 99.99th
+    # percentile is e^(3 * 3.72), scipy.stats.lognorm): a hazard ratio of 1.75 per unit
+    # then makes exp(0.56 * 8000), beyond any double; with sdlog 0.5 every patient is fine
+    from microsim.binding import bind
+    from microsim.patients.multipliers import multipliers
+    from support import attribute, effect, population
+    scenario = parse_scenario(scenario_text(
+        horizon(10), start(well=1), state("well"), state("dead", absorbing=True),
+        rate("well", "dead", 0.1, effects=[effect("marker", 1.75)]),
+        population(500, attribute("marker", "lognormal", meanlog=0.0, sdlog=sdlog))))
+    people = draw_population(scenario.population, 3)
+    if not refused:
+        assert np.isfinite(multipliers(bind(scenario), people).log_static).all()
+        return
+    with pytest.raises(ScenarioError) as caught:
+        multipliers(bind(scenario), people)
+    assert caught.value.path == "population.attributes.marker"
+    assert "bound it (a normal with lower and upper, or a uniform)" in caught.value.message

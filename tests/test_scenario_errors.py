@@ -70,6 +70,15 @@ CASES = [
      "time.cycle", "must be a number, got 'one'; write it in digits, without quotes"),
     ("quoted number for whole number", "discrete", [("seed = 1", 'seed = "7"')],
      "simulation.seed", "must be a whole number, got '7'; write the number without quotes"),
+    # no number larger than 1e12 in size: a cost of 1e308 sums to inf (IEEE 754 doubles end
+    # near 1.8e308, common practice) and a rate of 1e20 breaks the matrix exponential
+    ("huge cost", "discrete", [("cost = 100", "cost = 1e308")], "states.well.cost",
+     "1e+308 is larger than 1e+12 in size"),
+    ("huge negative utility", "discrete", [("utility = 0.9", "utility = -1e300")],
+     "states.well.utility", "larger than 1e+12 in size"),
+    ("huge threshold", "discrete", [("discount_costs = 0.035",
+                                     "discount_costs = 0.035\n[economics]\nthreshold = 1e100")],
+     "economics.threshold", "larger than 1e+12 in size"),
     ("bool for number", "discrete", [("cost = 100", "cost = true")],
      "states.well.cost", "must be a number, a parameter name or a table name, got true"),
     ("nan", "discrete", [("cost = 100", "cost = nan")], "states.well.cost", "finite number"),

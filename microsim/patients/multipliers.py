@@ -21,6 +21,8 @@ import pandas as pd
 from microsim.binding import BoundModel, table_hazard
 from microsim.hazards import HazardFamily, TimeScaledHazard
 from microsim.patients.population import check_population_file, expected_covariate
+from microsim.scenario.errors import ScenarioError
+from microsim.scenario.fields import LARGEST
 from microsim.scenario.spec import TableSpec
 
 AGE = "age"
@@ -230,6 +232,7 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
                 slope[r] += effect.log_hr
                 continue
             term = effect.log_hr * (covariate(effect.attribute, effect.level) - effect.centre)
+            check_term(term, effect.attribute, risk.name)
             if not effect.time_ratio:
                 log_static[:, r] += term
             elif risk.family == "constant":  # rate / a: the hazard ratio 1 / a
@@ -251,6 +254,22 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
     return Multipliers(log_static, slope, ages,
                        log_time_scale=log_scale if log_scale.any() else None, start=start,
                        tables=tables, levels=levels)
+
+
+LOG_LARGEST = float(np.log(LARGEST))
+
+
+def check_term(term: np.ndarray, attribute: str, risk: str) -> None:
+    """Refuse a patient whose attribute makes a hazard ratio term larger than LARGEST in
+    size (a lognormal attribute with a wide sdlog, say): exp of it overflows, and the
+    patient's probabilities would be nan."""
+    if term.size and not np.max(np.abs(term)) <= LOG_LARGEST:
+        k = int(np.argmax(np.where(np.isnan(term), np.inf, np.abs(term))))
+        raise ScenarioError(f"population.attributes.{attribute}",
+                            f"a patient's {attribute} makes the hazard ratio on {risk!r} "
+                            f"e^{term[k]:.4g}, beyond {LARGEST:g}: the attribute reaches far "
+                            "outside the range its hazard ratio describes; bound it (a normal "
+                            "with lower and upper, or a uniform) or narrow its spread")
 
 
 def start_shares(logits: np.ndarray, possible: np.ndarray) -> np.ndarray:

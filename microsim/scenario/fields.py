@@ -135,10 +135,15 @@ class Role:
         return f"{self.noun if self.named else 'it'} must be {self.bounds}"
 
     def problem(self, x: float) -> str | None:
-        """Why `x` cannot play this role, or None when it can."""
+        """Why `x` cannot play this role, or None when it can (no role takes a number
+        larger than LARGEST in size)."""
         too_low = x < self.lower or (self.lower_open and x == self.lower)
         too_high = x > self.upper or (self.upper_open and x == self.upper)
         if not too_low and not too_high:
+            if abs(x) > LARGEST:
+                return (f"{show(x)} is larger than {show(LARGEST)} in size, beyond what the "
+                        "model's sums hold reliably (a slip in the exponent?); give a value "
+                        f"within {show(LARGEST)}")
             return None
         if not self.named:
             return f"must be {self.bounds}, got {show(x)}"
@@ -154,7 +159,7 @@ class Role:
 
     def outside(self, x: np.ndarray) -> np.ndarray:
         """Which of the values `x` cannot play this role (vectorised `problem`)."""
-        return (np.isnan(x) | (x < self.lower) | (x > self.upper)
+        return (np.isnan(x) | (x < self.lower) | (x > self.upper) | (np.abs(x) > LARGEST)
                 | (self.lower_open & (x == self.lower))
                 | (self.upper_open & (x == self.upper)))
 
@@ -162,8 +167,11 @@ class Role:
         """The nearest values that can play this role (open ends: the nearest float inside)."""
         low = np.nextafter(self.lower, math.inf) if self.lower_open else self.lower
         high = np.nextafter(self.upper, -math.inf) if self.upper_open else self.upper
-        return np.clip(x, low, high)
+        return np.clip(x, max(low, -LARGEST), min(high, LARGEST))
 
+
+LARGEST = 1e12  # no number of a scenario is larger in size: a cost of 1e308 a day sums to
+# inf, a rate of 1e20 breaks the matrix exponential; rates to 1e12 still validate exactly
 
 ANY = Role("a number")
 PROBABILITY = Role("a probability", 0.0, 1.0)
