@@ -196,7 +196,8 @@ def level_entries(entry: Node, attribute: str, each: str) -> tuple[tuple[str, ..
                       dict):
         entry.fail("values", f"must be a table with {each} per level of {attribute!r} "
                              "(values = { level = ..., ... }), got "
-                             f"{describe(entry.data['values'])}")
+                             f"{describe(entry.data['values'])}; or leave out attribute for "
+                             "a table that does not vary by level")
     values = entry.node("values", None)
     if not values.data:
         entry.fail("values", f"gives no level; give {each} per level of {attribute!r}")
