@@ -2,6 +2,7 @@
 references: numpy matrix powers, scipy's matrix exponential and quadrature, closed forms
 of survival and discounted life expectancy, and hand-written expanded chains."""
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -495,10 +496,10 @@ def test_cycles_give_the_same_numbers_in_blocks_of_any_size(monkeypatch, strateg
     # the bundled demo (a life table by attained age, attributes, treatment windows):
     # a cycle model's matrices are built for a block of cycles at once; one cycle per block
     # is the plain cycle-by-cycle product, and no cycle depends on its block
-    from microsim.benchmark import demo_scenario
     from microsim.cohort import analytic as module
     from microsim.patients.treatment import patient_multipliers
-    scenario = demo_scenario()
+    from microsim.scenario import read_scenario
+    scenario = read_scenario(Path(__file__).parents[1] / "scenarios" / "lakemoor_kidney.toml")
     model = bind(scenario, strategy=strategy)
     mult = patient_multipliers(model, draw_population(scenario.population, 3).head(300), 4)
     whole = analytic(model, mult=mult)

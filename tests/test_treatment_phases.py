@@ -188,7 +188,7 @@ def test_everyone_treated_at_once_when_everyone_starts_in_the_trigger_state():
     (dict(start_on="progressed", then=[nested(name="second")]), "strategies.treat.then.second",
      "give the treatment before it a stop_on"),
     (dict(start_on="progressed", discontinuation=0.1), "strategies.treat.discontinuation",
-     "stop treatment with stop_on"),
+     "name it in stop_on"),
     (dict(start_on="progressed", stop_on="relapsed",
           then=[nested(name="second", changes=[nested(transition="relapsee", hazard_ratio=2.0)])]),
      "strategies.treat.then.second.changes[0].transition", "did you mean 'relapse'"),
