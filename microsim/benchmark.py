@@ -432,7 +432,7 @@ def psa_timings(draws: int, patients: int, runs=(("one", "simulated", 1), ("two"
     noise = split.within_draw_variance / split.patients_per_draw
     between = split.between_draw_variance
     if not between > 0:  # the draws' spread is all inner noise at this size
-        return {**seconds, "noise_share": 1.0, "needed": None, "equal": None}
+        return {**seconds, "noise_share": None, "needed": None, "equal": None}
     # patients a simulated draw needs for its noise to be EQUAL_NOISE of the spread, and
     # the simulated PSA's time then (taken as proportional to the patients per draw)
     needed = patients * noise / (EQUAL_NOISE / (1 - EQUAL_NOISE) * between)
@@ -525,9 +525,11 @@ def main(quick: bool = False) -> int:
     draws, per_draw = (4, 300) if quick else (16, 2000)
     p = psa_timings(draws, per_draw)
     print(f"PSA of the demo, {draws} draws of {per_draw:,} patients: exact basis "
-          f"{p['one'] / p['exact']:.2f} x as fast as simulated ({p['exact']:.1f} s against "
-          f"{p['one']:.1f} s), and free of the inner noise that is "
-          f"{100 * p['noise_share']:.1f}% of the simulated draws' spread" + (
+          f"{p['one'] / p['exact']:.2f} x as fast as simulated (exact {p['exact']:.1f} s, "
+          f"simulated {p['one']:.1f} s), and free of the simulation's inner noise" + (
+              "; these draws are too few to part that noise from the parameters' spread (the "
+              "estimated between-draw variance is not above 0)" if p["noise_share"] is None else
+              f", which is {100 * p['noise_share']:.1f}% of the simulated draws' spread") + (
               "" if p["needed"] is None else
               f"; for that noise to be {100 * EQUAL_NOISE:.0f}% a simulated draw needs about "
               f"{p['needed']:,.0f} patients, and the exact basis is then {p['equal']:.1f} x as "
@@ -536,14 +538,15 @@ def main(quick: bool = False) -> int:
     r = rate_psa_timings(draws, per_draw, repeats=1 if quick else 3)
     print(f"PSA of a memoryless rate model whose patients differ by a continuous marker, "
           f"{draws} draws of {per_draw:,} patients: exact basis "
-          f"{r['simulated'] / r['exact']:.2f} x as fast as simulated ({r['exact']:.1f} s "
-          f"against {r['simulated']:.1f} s; a matrix exponential for every patient)")
+          f"{r['simulated'] / r['exact']:.2f} x as fast as simulated (exact {r['exact']:.1f} s, "
+          f"simulated {r['simulated']:.1f} s; a matrix exponential for every patient)")
     # a bigger PSA for the workers: a draw of the compiled engine takes a fraction of a
     # second, and starting two worker processes is then a large share of a small PSA
     draws, per_draw = (8, 2000) if quick else (32, 20_000)
     w = psa_timings(draws, per_draw, runs=(("one", "simulated", 1), ("two", "simulated", 2)))
     print(f"PSA with 2 workers, {draws} draws of {per_draw:,} patients: {w['one'] / w['two']:.2f}"
-          f" x as fast as with 1 ({w['one']:.1f} s against {w['two']:.1f} s; target >= 1.8: "
+          f" x as fast as with 1 (2 workers {w['two']:.1f} s, 1 worker {w['one']:.1f} s; "
+          f"target >= 1.8: "
           f"{verdict(w['one'] / w['two'], 1.8)})")
     small, large = (20_000, 60_000) if quick else (100_000, 400_000)
     low, high = peak_memory(small), peak_memory(large)
