@@ -181,3 +181,23 @@ def test_the_command_line_refuses_or_redraws(tmp_path, capsys):
     changed = pd.read_csv(folder / "psa_changed_draws.csv")
     summary = json.loads((folder / "summary.json").read_text())["psa"]["invalid_draws"]
     assert summary["changed_draws"] == changed.draw.nunique() > 0
+
+
+def test_a_draw_that_rounds_onto_an_open_end_is_told_so():
+    # a gamma draws from (0, inf), which a hazard ratio allows, but with shape 0.002 about
+    # a fifth of its draws lie below the smallest float and are 0.0 (scipy.stats.gamma(0.002,
+    # scale=100).cdf(1e-320) = 0.227); the advice is then to narrow it, not to pick another
+    text = two_betas(utility=BETA_UTILITY).replace(
+        'p_a = { value = 0.5, distribution = { family = "beta", alpha = 20, beta = 20 } }',
+        'p_a = 0.3\nhr = { value = 0.8, distribution = { family = "gamma", shape = 0.002, '
+        'scale = 100 } }').replace("hazard_ratio = 0.8", 'hazard_ratio = "hr"')
+    s = parse_scenario(text)
+    drawn = ParameterSampler(s.parameters).draws(SEED, np.arange(DRAWS)).hr.to_numpy()
+    zero = np.flatnonzero(drawn == 0)
+    assert 0 < zero.size < DRAWS
+    with pytest.raises(ScenarioError) as caught:
+        check_draws(s, ParameterSampler(s.parameters), DRAWS, SEED)
+    error = caught.value
+    assert error.path == "parameters.hr.distribution", str(error)
+    assert error.message.startswith(f"PSA draw {zero[0]} gives hr = 0"), str(error)
+    assert "rounds onto the end in floating point" in error.message

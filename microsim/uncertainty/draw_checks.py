@@ -32,6 +32,7 @@ from microsim.patients.population import file_ranges
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import TOLERANCE, Reference, show
 from microsim.scenario.formulas import derived_order, explain, inputs, with_derived
+from microsim.scenario.read_parameters import support
 from microsim.scenario.rows import RowBound, attribute_ranges, row_bounds, row_names
 from microsim.scenario.spec import Scenario
 from .draws import ParameterSampler
@@ -104,15 +105,22 @@ def problems(s: Scenario, table: pd.DataFrame, ranges) -> list[Problem]:
 def value_problem(s: Scenario, use: Reference, x: np.ndarray, draws: np.ndarray,
                   bad: np.ndarray) -> Problem:
     role = use.role
-    derived = s.parameters[use.name].formula is not None
+    p = s.parameters[use.name]
+    derived = p.formula is not None
+    if derived:
+        fix = ("choose distributions of the parameters it is computed from that keep it in "
+               "that range")
+    elif p.distribution is not None and role.holds_on(*support(p.distribution, p.value)):
+        fix = ("the distribution's range is allowed, but a draw this near its end rounds onto "
+               "the end in floating point; narrow the distribution away from that end")
+    else:
+        fix = "choose a distribution that stays in that range"
     return Problem(
         f"parameters.{use.name}.{'formula' if derived else 'distribution'}",
         f"{use.path}: {role.rule}",
         tuple(inputs(s.parameters, use.name)) if derived else (use.name,), bad,
         lambda k: (f"PSA draw {draws[k]} gives {use.name} = {show(x[k])}, used as {role.noun} "
-                   f"at {use.path}: {role.problem(x[k])}"),
-        "choose distributions of the parameters it is computed from that keep it in that "
-        "range" if derived else "choose a distribution that stays in that range")
+                   f"at {use.path}: {role.problem(x[k])}"), fix)
 
 
 def formula_problem(s: Scenario, name: str, table: pd.DataFrame) -> Problem:
