@@ -52,9 +52,14 @@ def test_an_unknown_unit_says_how_long_it_is():
     assert life == pytest.approx(0.0383 * (1 - np.exp(-0.26)) / 0.01, rel=1e-9)
 
 
-def test_a_discount_rate_given_in_percent_is_warned_about():
-    text = scenario_text(horizon(5), start(alive=1), state("alive", utility=1),
-                         state("dead", absorbing=True), rate("alive", "dead", 0.1),
-                         outcomes(discount_costs=3.5))
-    warnings = parse_scenario(text).warnings
-    assert any(w.startswith("outcomes.discount_costs: 3.5 a year is 350%") for w in warnings)
+def test_a_discount_rate_given_in_percent_is_refused_and_a_large_one_warned_about():
+    def given(**rates):
+        return scenario_text(horizon(5), start(alive=1), state("alive", utility=1),
+                             state("dead", absorbing=True), rate("alive", "dead", 0.1),
+                             outcomes(**rates))
+    with pytest.raises(ScenarioError) as caught:  # 3.5 meant 3.5%: no rate of 100% is used
+        parse_scenario(given(discount_effects=3.5))
+    assert str(caught.value) == ("outcomes.discount_effects: 3.5 a year is 350%; discount "
+                                 "rates are fractions: write 0.035 for 3.5%")
+    warnings = parse_scenario(given(discount_costs=0.35)).warnings  # possible, but unusual
+    assert any(w.startswith("outcomes.discount_costs: 0.35 a year is 35%") for w in warnings)

@@ -232,10 +232,19 @@ def read_outcomes(node: Node | None) -> OutcomesSpec:
     if node is None:
         return OutcomesSpec()
     return OutcomesSpec(
-        discount_costs=node.number("discount_costs", 0.0, role=NON_NEGATIVE),
-        discount_effects=node.number("discount_effects", 0.0, role=NON_NEGATIVE),
+        discount_costs=discount_rate(node, "discount_costs"),
+        discount_effects=discount_rate(node, "discount_effects"),
         correction=node.text("correction", "trapezoidal", choices=CORRECTIONS),
         discounting=node.text("discounting", "annual", choices=DISCOUNTINGS))
+
+
+def discount_rate(node: Node, key: str) -> float:
+    """A rate of 1 (100%) a year or more is a percentage written as a fraction's slot."""
+    rate = node.number(key, 0.0, role=NON_NEGATIVE)
+    if rate >= 1:
+        node.fail(key, f"{show(rate)} a year is {show(100 * rate)}%; discount rates are "
+                       f"fractions: write {show(rate / 100)} for {show(rate)}%")
+    return rate
 
 
 def read_simulation(node: Node | None) -> SimulationSpec:
