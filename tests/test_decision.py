@@ -22,7 +22,7 @@ from scipy import stats
 from microsim.decision import economics
 from microsim.binding import bind
 from microsim.decision.strategies import (ROUNDOFF_SE, decision_of, COST, EFFECT, decide,
-                                         run_strategies, without_roundoff)
+                                         precision_needed, run_strategies, without_roundoff)
 from microsim.present import roundoff_line
 from microsim.results.comparison import MONTE_CARLO
 from microsim.results.outcomes import outcome_values
@@ -249,6 +249,21 @@ def test_the_frontier_is_the_incremental_analysis_of_the_strategy_means(run):
 
 
 # --------------------------------------------------------------------------- precision
+
+def test_patients_needed_at_the_edges_of_a_deterministic_or_zero_increment():
+    # edge: a strategy that costs 100 more for every patient and gains nothing has an
+    # increment with SD 0 (1 patient gives it exactly); one whose increment averages
+    # exactly 0 but varies never shows a sign (NaN); neither is the 0 it used to be
+    cost = {"usual": [10.0, 20.0, 30.0, 40.0], "dearer": [110.0, 120.0, 130.0, 140.0],
+            "mixed": [11.0, 19.0, 29.0, 41.0]}
+    outcomes = pd.DataFrame([(p, name, c, 1.0) for name, costs in cost.items()
+                             for p, c in enumerate(costs)],
+                            columns=["patient", "strategy", COST, EFFECT])
+    table = precision_needed(outcomes, "usual", 20_000.0, None).set_index("strategy")
+    assert table.loc["dearer", "sd_paired_nmb"] == 0 and table.loc["dearer", "patients_needed"] == 1
+    assert table.loc["mixed", "target_half_width"] == 0
+    assert math.isnan(table.loc["mixed", "patients_needed"])
+
 
 @pytest.mark.parametrize("target", [None, 500.0])
 def test_patients_needed_is_the_normal_sample_size(target):

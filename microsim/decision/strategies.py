@@ -8,6 +8,7 @@ benefit at the threshold, subgroups, and the patients needed for a target precis
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -164,7 +165,9 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
                      target: float | None) -> pd.DataFrame:
     """Patients needed for a 95% CI half-width of incremental NMB of `target`, from the
     paired standard deviation. Without a target: the half-width equal to the estimate's own
-    size, i.e. the patients needed before the sign of the increment is clear at 95%."""
+    size, i.e. the patients needed before the sign of the increment is clear at 95%.
+    An increment the same for every patient (SD 0) is given exactly by 1 patient; a zero
+    increment that varies has no sign to make clear, so no number (NaN) is needed."""
     nmb = threshold * wide(outcomes, EFFECT) - wide(outcomes, COST)
     rows = []
     for name in nmb.columns:
@@ -173,7 +176,12 @@ def precision_needed(outcomes: pd.DataFrame, comparator: str, threshold: float,
         gain = (nmb[name] - nmb[comparator]).to_numpy()
         sd = float(np.std(gain, ddof=1))
         half_width = target if target is not None else abs(float(gain.mean()))
-        needed = economics.patients_needed(sd, half_width=half_width) if half_width > 0 and sd > 0 else 0
+        if sd == 0:
+            needed = 1.0
+        elif half_width > 0:
+            needed = economics.patients_needed(sd, half_width=half_width)
+        else:
+            needed = math.nan
         rows.append((name, half_width, sd, len(gain), needed))
     return pd.DataFrame(rows, columns=["strategy", "target_half_width", "sd_paired_nmb",
                                        "patients_now", "patients_needed"])
