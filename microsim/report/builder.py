@@ -88,7 +88,15 @@ class Report:
         self.figures.append(Drawn(name, title, caption, rendered(figure)))
 
     def placed(self, *names: str) -> list[Drawn | Absent]:
-        return [f for f in self.figures if f.name in names]
+        """The figures `names` in order; neighbours left out for one reason share a line."""
+        found: list[Drawn | Absent] = []
+        for f in (f for f in self.figures if f.name in names):
+            last = found[-1] if found else None
+            if isinstance(f, Absent) and isinstance(last, Absent) and last.reason == f.reason:
+                f = Absent(f"{last.name} {f.name}", f"{last.title}; {f.title}", f.reason)
+                found.pop()
+            found.append(f)
+        return found
 
     # --------------------------------------------------------------------- figures
 
