@@ -200,4 +200,6 @@ def test_a_draw_that_rounds_onto_an_open_end_is_told_so():
     error = caught.value
     assert error.path == "parameters.hr.distribution", str(error)
     assert error.message.startswith(f"PSA draw {zero[0]} gives hr = 0"), str(error)
-    assert "rounds onto the end in floating point" in error.message
+    assert error.message.endswith("or narrow the distribution away from that end (its range "
+                                  "is allowed, but a draw this near the end rounds onto it in "
+                                  "floating point)")

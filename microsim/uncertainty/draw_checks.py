@@ -111,8 +111,8 @@ def value_problem(s: Scenario, use: Reference, x: np.ndarray, draws: np.ndarray,
         fix = ("choose distributions of the parameters it is computed from that keep it in "
                "that range")
     elif p.distribution is not None and role.holds_on(*support(p.distribution, p.value)):
-        fix = ("the distribution's range is allowed, but a draw this near its end rounds onto "
-               "the end in floating point; narrow the distribution away from that end")
+        fix = ("narrow the distribution away from that end (its range is allowed, but a draw "
+               "this near the end rounds onto it in floating point)")
     else:
         fix = "choose a distribution that stays in that range"
     return Problem(
