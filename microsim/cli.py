@@ -542,8 +542,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     def engine_option(sub):
         sub.add_argument("--engine", default="auto", choices=("auto", "simpy", "vectorised"),
-                         help="auto (default) or vectorised: the vectorised engine for either "
-                              "model kind; simpy: the SimPy engine for either, the reference "
+                         help="auto (default): the vectorised engine for either model kind "
+                              "(the SimPy capacity engine where patients share capacity); "
+                              "vectorised: that engine, refused where patients share capacity; "
+                              "simpy: the SimPy engine for either, the reference "
                               "(identical histories for cycle models, the same records for "
                               "rate models; several times slower)")
 

@@ -89,8 +89,8 @@ def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
             which = "the base case" if draw < 0 else f"draw {draw}"
             whose = "the model" if name is None else f"strategy {name!r}"
             raise ScenarioError("uncertainty.basis", f"{whose} has no exact counterpart in "
-                                f"{which} ({'; '.join(exact.reasons)}); use basis = "
-                                "\"simulated\"")
+                                f"{which} ({'; '.join(exact.reasons)}); use the simulated "
+                                "basis (basis = \"simulated\", or --basis simulated)")
         rows.append((AS_WRITTEN if name is None else name, exact.costs.mean(),
                      exact.qalys.mean(), exact.life_years.mean(), 0.0, 0.0, 0.0, 0.0,
                      len(people)))
