@@ -120,6 +120,10 @@ def print_summary(result: MainResult) -> None:
                   "a half-width equal to the estimate, i.e. until its sign is clear")
         show(f"Precision: patients needed for a 95% CI of incremental NMB with {target}",
              d.precision)
+    if result.population.validated < size:
+        print(f"\nValidation compares the first {result.population.validated:,} of the {size:,} "
+              "patients with the analytic counterpart (simulation.validation_patients; "
+              "`microsim validate` compares all).")
     for name, v in result.validations.items():
         print(f"\nValidation ({name}): {v.verdict}")
     for name, v in result.validations.items():

@@ -15,6 +15,7 @@ import pandas as pd
 
 from microsim.binding import bind
 from microsim.capacity.run import refuse_options, run_service
+from microsim.cohort.analytic import solved_numerically
 from microsim.cohort.summaries import cohort_trace
 from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_frame,
                                           strategy_names, treated_count, treatment_counts)
@@ -41,6 +42,7 @@ class PopulationRun:
     validations: dict[str, Comparison]
     # a sequence's patients on each of its treatments, by strategy (`treatment_counts`)
     treated_by: dict[str, dict[str, int]] = field(default_factory=dict)
+    validated: int = 0  # the first patients compared with the analytic counterpart
 
 
 def run_population(scenario: Scenario, size: int | None, seed: int, engine: str = "auto",
@@ -56,7 +58,7 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
     n = size if size is not None else (spec.size if spec else DEFAULT_PATIENTS)
     chosen = strategies if strategies is not None else (strategy_names(scenario) or [None])
     models = {name or AS_WRITTEN: bind(scenario, strategy=name) for name in chosen}
-    limit = None if compare_all else scenario.simulation.validation_patients
+    limit = None if compare_all else validation_limit(scenario, models.values())
     sums = {label: ComparisonSums(model, comparison_grid(model, scenario.simulation.grid), limit)
             for label, model in models.items()}
     outcomes, people, treated = [], [], Counter()
@@ -80,7 +82,23 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
     return PopulationRun(n, pd.concat(outcomes, ignore_index=True),
                          pd.concat(people, ignore_index=True), dict(treated),
                          {label: s.finish() for label, s in sums.items()},
-                         {label: dict(c) for label, c in treated_by.items()})
+                         {label: dict(c) for label, c in treated_by.items()},
+                         n if limit is None else min(n, limit))
+
+
+VALIDATED = 100_000, 5_000  # patients `run` compares by default: where the counterpart is
+# closed form, and where it is the forward equations (about 0.2 s per 64 distinct patients
+# and strategy for a small Weibull model with covariates, so 5,000 take some 15 s a strategy)
+
+
+def validation_limit(scenario: Scenario, models) -> int:
+    """How many of a run's first patients are compared with the analytic counterpart:
+    `simulation.validation_patients`, else VALIDATED by how the counterpart is computed."""
+    given = scenario.simulation.validation_patients
+    if given is not None:
+        return given
+    closed, numerical = VALIDATED
+    return numerical if any(solved_numerically(m) for m in models) else closed
 
 
 def scenario_of(source: Path | Scenario, options: dict | None = None) -> Scenario:

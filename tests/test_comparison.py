@@ -16,6 +16,7 @@ from microsim.results.comparison import (EXACT, MONTE_CARLO, ComparisonSums, com
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.results.outcomes import outcome_values
 from microsim.simulation import simulate
+from microsim.cli import main
 from microsim.workflow import run_population
 from support import (attribute, effect, horizon, model_of, population, probability, rate,
                      scenario_text, section, start, state, strategy, transition)
@@ -367,6 +368,33 @@ def test_a_run_compares_a_long_horizon_on_the_thinned_grid():
     model = long_model(1001)
     [check] = run_population(model.scenario, 50, 3).validations.values()
     np.testing.assert_array_equal(np.unique(check.shares.time), comparison_grid(model))
+
+
+def test_a_run_validates_fewer_patients_by_default_where_the_counterpart_is_solved_numerically(
+        tmp_path, capsys):
+    # a practitioner's Weibull model with a continuous marker spent 7 minutes of a run on
+    # the forward equations of 100,000 validation patients: by default a counterpart solved
+    # numerically compares VALIDATED[1] patients, a closed-form one VALIDATED[0]
+    from microsim.workflow import VALIDATED, validation_limit
+    weibull = model_of(NEVER_ABSORBED)
+    constant = model_of(NEVER_ABSORBED.replace(
+        'hazard = { family = "weibull", shape = 1.6, scale = 5 }', "rate = 0.2").replace(
+        'clock = "since_start"\n', ""))
+    assert validation_limit(weibull.scenario, [weibull]) == VALIDATED[1] < VALIDATED[0]
+    assert validation_limit(constant.scenario, [constant]) == VALIDATED[0]
+    assert validation_limit(constant.scenario, [constant, weibull]) == VALIDATED[1]
+    given = parse_scenario(NEVER_ABSORBED + section("simulation", validation_patients=30))
+    assert validation_limit(given, [weibull]) == 30  # a value in the file wins
+    run = run_population(given, 50, 3)
+    assert run.validated == 30
+    [check] = run.validations.values()
+    seen = check.shares.simulated.to_numpy() * 30  # whole numbers of 30 patients
+    np.testing.assert_allclose(seen, np.rint(seen), rtol=0, atol=1e-9)
+    path = tmp_path / "given.toml"
+    path.write_text(NEVER_ABSORBED + section("simulation", validation_patients=30))
+    assert main(["run", str(path), "--patients", "50", "--out", str(tmp_path / "out")]) == 0
+    assert ("Validation compares the first 30 of the 50 patients with the analytic "
+            "counterpart") in capsys.readouterr().out
 
 
 def test_patients_who_happen_not_to_vary_are_no_deterministic_outcome():

@@ -146,7 +146,7 @@ def test_defaults():
     assert s.start.age is None and s.start.shares == {"a": 1.0, "b": 0.0}
     assert s.outcomes.correction == "trapezoidal" and s.outcomes.discount_costs == 0.0
     assert s.population is None and s.events == () and s.parameters == {}
-    assert s.simulation.batch_size == 20000 and s.simulation.validation_patients == 100_000
+    assert s.simulation.batch_size == 20000 and s.simulation.validation_patients is None
 
 
 def test_state_without_way_out_keeps_everyone():

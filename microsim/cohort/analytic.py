@@ -24,7 +24,7 @@ from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.exponentials import exponential_rows
 from microsim.cohort.forward_equations import hazards_at, solve_rates, flows
 from microsim.cohort.time_dependence import time_dependence
-from microsim.patients.multipliers import Multipliers, multipliers
+from microsim.patients.multipliers import Multipliers, cohort_multipliers, multipliers
 from microsim.patients.treatment import uniform_multipliers
 from microsim.markov import discrete_outcomes
 from microsim.results.bands import Bands, band_edges, band_of, entry_ages
@@ -153,6 +153,14 @@ def piecewise_constant(exp: Expansion, mult: Multipliers) -> bool:
 
 
 ODE_CHUNK = 64  # patients solved together: each one's table breaks slow the others' steps
+
+
+def solved_numerically(model: BoundModel) -> bool:
+    """True when the rate model's counterpart is the forward equations, solved for each
+    distinct patient (hazards that change smoothly with time or age), which costs far more
+    per patient than a simulation; judged on the average patient, as the forms of the
+    hazards, not the patients' values, decide it."""
+    return not model.discrete and not piecewise_constant(expand(model), cohort_multipliers(model))
 
 
 def rows_result(exp: Expansion, mult: Multipliers, times: np.ndarray) -> tuple:

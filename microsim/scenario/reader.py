@@ -255,5 +255,4 @@ def read_simulation(node: Node | None) -> SimulationSpec:
         seed=node.whole("seed", defaults.seed, minimum=0, maximum=2**64 - 1),
         batch_size=node.whole("batch_size", defaults.batch_size, minimum=1),
         grid=node.number("grid", None, role=POSITIVE),
-        validation_patients=node.whole("validation_patients", defaults.validation_patients,
-                                       minimum=1))
+        validation_patients=node.whole("validation_patients", None, minimum=1))

@@ -312,7 +312,8 @@ class SimulationSpec:
     seed: int = 20261201
     batch_size: int = 20000
     grid: float | None = None  # report grid step in time units; default: the cycle
-    validation_patients: int = 100_000  # the main job compares the first ones with the cohort
+    validation_patients: int | None = None  # the main job compares the first ones with the
+    # cohort; None: `workflow.VALIDATED` (fewer where the counterpart is solved numerically)
 
 
 @dataclass(frozen=True)
