@@ -112,10 +112,15 @@ def print_summary(result: MainResult) -> None:
         show("Incremental analysis (dominance, ICERs along the frontier)", d.analysis)
         best = d.net_benefit.loc[d.net_benefit.best, "strategy"].iloc[0]
         show(f"Net benefit at {d.threshold:g} {cur} per QALY — best: {best}", d.net_benefit)
-        print("\nWho benefits (incremental NMB against the comparator, by subgroup):")
-        for line in subgroup_headlines(d.subgroups):
-            print(f"  {line}")
-        show("Incremental net monetary benefit by subgroup (all)", d.subgroups, rows=60)
+        if d.subgroups.empty:
+            print("\nWho benefits: no subgroups, as the patients carry no category, yes/no "
+                  "attribute or band (a [[population.derived]] band of a continuous attribute "
+                  "makes one).")
+        else:
+            print("\nWho benefits (incremental NMB against the comparator, by subgroup):")
+            for line in subgroup_headlines(d.subgroups):
+                print(f"  {line}")
+            show("Incremental net monetary benefit by subgroup (all)", d.subgroups, rows=60)
         target = ("the scenario's economics.precision" if s.economics.precision else
                   "a half-width equal to the estimate, i.e. until its sign is clear")
         show(f"Precision: patients needed for a 95% CI of incremental NMB with {target}",

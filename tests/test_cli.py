@@ -249,6 +249,16 @@ def test_run_refuses_the_analyses_after_it_before_any_work(tmp_path, capsys, opt
     assert not out.exists()
 
 
+def test_a_run_without_subgroups_says_why_there_are_none(tmp_path, capsys):
+    # patients alike (no attribute): the subgroup table is empty, and the run says why
+    # instead of printing an empty table under 'Who benefits'
+    path = two_strategies(tmp_path)
+    assert main(["run", str(path), "--patients", "40", "--out", str(tmp_path / "out")]) == 0
+    out = capsys.readouterr().out
+    assert "Who benefits: no subgroups, as the patients carry no category" in out
+    assert "by subgroup (all)" not in out
+
+
 def test_run_writes_the_summary_and_shows_the_caution(tmp_path, capsys):
     assert main(["run", str(WARD), "--patients", "300", "--out", str(tmp_path)]) == 0
     out = capsys.readouterr().out
