@@ -397,6 +397,19 @@ def test_a_run_validates_fewer_patients_by_default_where_the_counterpart_is_solv
             "counterpart") in capsys.readouterr().out
 
 
+def test_a_certain_model_is_said_to_agree_with_nothing_random_in_it():
+    # edge: every move has probability 1, so every patient walks well, sick, dead and no
+    # comparison has Monte-Carlo error; the verdict says so rather than naming a p-value of 1
+    model = model_of(scenario_text(
+        horizon(4, cycle=1), start(well=1.0), state("well", cost=100, utility=0.8),
+        state("sick", cost=300, utility=0.5), state("dead", absorbing=True),
+        probability("well", "sick", 1.0), probability("sick", "dead", 1.0)))
+    result = compare(simulate(model, cohort_patients(50), 5))
+    assert result.agrees is True
+    assert "comparisons is without Monte-Carlo error (the model's outcome is certain" \
+        in result.verdict and "smallest p-value" not in result.verdict
+
+
 def test_patients_who_happen_not_to_vary_are_no_deterministic_outcome():
     # a practitioner's trial: three patients of a model with a 1% yearly death risk all
     # lived 5 years, so their outcomes had no spread; that is chance, not a deterministic

@@ -235,11 +235,13 @@ def expand(model: BoundModel) -> Expansion:
                 windows[m.after] = max(windows.get(m.after, 0), window_cycles(m.within, model))
             else:
                 reasons.append(f"'{risk.name}' depends on the time since the last '{m.after}' "
-                               "(continuous in a rate model: no finite expansion)")
+                               "(continuous in a rate model: no finite expansion; the analytic "
+                               "side leaves this memory out)")
         if semi_markov(model, risk):
             reasons.append(f"'{risk.name}' has a {risk.family} hazard on the time since "
                            f"entering '{model.states[risk.source]}', a state patients enter "
-                           "after the start (semi-Markov)")
+                           "after the start (semi-Markov; the analytic side reads its clock "
+                           "as the time since start)")
     waiting = model.waiting
     if waiting.any():
         unit = model.scenario.time.unit

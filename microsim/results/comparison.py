@@ -482,6 +482,13 @@ def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str
         note = max((test[len(FLOORED):] for test in floored.test), key=len)
         certain += (f"; {', '.join(floored.measure)} tested on a standard error no less than "
                     f"the model's own variance of its rare ways{note}")
+    if worst.p_value >= level and (rows.test == EXACT).all():  # nothing is random
+        which = ("its one comparison is" if len(rows) == 1 else
+                 f"every one of the {len(rows)} comparisons is")
+        return True, (f"The simulation agrees with {counterpart}: {which} without Monte-Carlo "
+                      "error (the model's outcome is certain "
+                      f"for these patients) and agrees within numerical error ({ROUNDOFF:g} "
+                      "relative).")
     if worst.p_value >= level:
         return True, (f"The simulation agrees with {counterpart}: the smallest p-value is for "
                       f"{worst.what} ({evidence(worst, n)}; {basis}){certain}.")
