@@ -547,7 +547,7 @@ def build_parser() -> argparse.ArgumentParser:
                               "vectorised: that engine, refused where patients share capacity; "
                               "simpy: the SimPy engine for either, the reference "
                               "(identical histories for cycle models, the same records for "
-                              "rate models; several times slower)")
+                              "rate models; tens of times slower: see the benchmark)")
 
     add("check", command_check, "Read and check a scenario file; print warnings.", writes=False)
     trace = add("trace", command_trace, "Print and write the analytic cohort trace.")

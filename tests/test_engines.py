@@ -12,7 +12,7 @@ from scipy import stats
 from scipy.linalg import expm
 
 from microsim.cohort.analytic import analytic
-from microsim.results.comparison import FEWEST_FOR_MEANS, compare, critical_z, trace_table
+from microsim.results.comparison import APPROXIMATE, FEWEST_FOR_MEANS, compare, critical_z, trace_table
 from microsim.patients.multipliers import Multipliers
 from microsim.engines.cycle_engine import simulate_cycles
 from microsim.engines.event_engine import simulate_events
@@ -401,6 +401,9 @@ def test_verdict_says_when_there_is_no_exact_counterpart():
     assert result.exact is False and result.agrees is None
     assert "no exact counterpart" in result.verdict
     assert "complication->recovering" in result.verdict
+    assert "reads its clock as the time since start" in result.verdict  # the stand-in named
+    for table in (result.shares, result.outcomes):  # no row claims to be a test
+        assert (table.test == APPROXIMATE).all()
 
 
 def test_comparison_has_power_against_a_wrong_counterpart(rate_run):

@@ -81,6 +81,8 @@ SEEN = 5  # expected occurrences among the patients below which a way is often m
 FLOORED = (f"{MONTE_CARLO}, on a standard error no less than the model's own variance of its "
            "rare ways")
 NOT_TESTED = (UNSEEN, FEW)
+APPROXIMATE = ("not tested: no exact counterpart, so the p-value measures the distance from "
+               "an approximation")
 SHARE_COLUMNS = ["time", "state", "simulated", "analytic", "se", "z", "p_value", "test"]
 
 
@@ -345,16 +347,19 @@ class ComparisonSums:
         level = FAMILY_ALPHA / max(tests, 1)
         critical = critical_z(tests)
         counterpart = counterpart_name(result)
+        subgroups = self.subgroup_table()
         if result.exact:
             agrees, verdict = share_verdict(shares, outcomes, counterpart, level, self.shares.n)
         else:
             agrees = None
+            shares, outcomes, subgroups = (t.assign(test=APPROXIMATE) if "test" in t.columns
+                                           else t for t in (shares, outcomes, subgroups))
             verdict = (f"There is no exact counterpart for this model ({'; '.join(result.reasons)}); "
                        "the analytic figures beside the simulation are the Markov approximation "
                        "these reasons describe, shown for orientation only: nothing is "
                        "tested, and the p-values beside them measure the distance from the "
                        "approximation, not an error.")
-        return Comparison(counterpart, result.exact, shares, self.subgroup_table(), outcomes,
+        return Comparison(counterpart, result.exact, shares, subgroups, outcomes,
                           average, self.survival_table(), critical, level, agrees, verdict,
                           average_verdict(average, self.shares.n))
 
@@ -458,6 +463,15 @@ def counterpart_name(result: CohortResult) -> str:
     return f"{kind} ({result.method})"
 
 
+def readable(x: float, digits: int = 4) -> str:
+    """A figure of a verdict with `digits` significant digits, in plain notation up to the
+    thousands (54,440 rather than 5.444e+04), where counts and money live."""
+    x = float(x)
+    if 10 ** (digits - 1) <= abs(x) < 1e15:
+        return f"{x:,.0f}"
+    return f"{x:.{digits}g}"
+
+
 def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str,
                   level: float, n: int) -> tuple[bool, str]:
     """Whether every comparison is within chance, and the sentence that says so (naming the
@@ -505,7 +519,7 @@ def evidence(row, n: int) -> str:
         return f"p = {row.p_value:.2g}, {EXACT}"
     if row.kind == "share":
         return (f"exact binomial tail p = {row.p_value:.2g}; {row.simulated * n:.0f} of {n} "
-                f"patients seen against {row.analytic * n:.3g} expected")
+                f"patients seen against {readable(row.analytic * n, 3)} expected")
     floored = (", on a standard error no less than the model's own variance of its rare "
                "ways" if row.test.startswith(FLOORED) else "")
     return (f"Student's t p = {row.p_value:.2g}; t = {row.z:.2f} with {n - 1} degrees of "
@@ -539,7 +553,7 @@ def average_verdict(rows: pd.DataFrame, n: int) -> str:
                 f"(largest |t| {abs(worst.z):.2f}, below {critical:.2f}: Bonferroni over "
                 f"{len(rows)} paired t tests with {n - 1} degrees of freedom).")
     return (f"{AVERAGE} misrepresents the population: {MEASURE_WORDS[worst.measure]} "
-            f"{worst.average_patient:.4g} against {worst.population:.4g} simulated "
+            f"{readable(worst.average_patient)} against {readable(worst.population)} simulated "
             f"({worst.relative_difference:+.1%}, t = {worst.z:.1f} with {n - 1} degrees of "
             "freedom). Heterogeneity matters here; use the population results.")
 
@@ -549,9 +563,9 @@ def exact_average_verdict(rows: pd.DataFrame, n: int) -> str:
     the largest t is beyond what sampling n patients' attributes gives (Bonferroni over
     the measures)."""
     worst = rows.loc[rows.relative_difference.abs().fillna(0.0).idxmax()]
-    gap = (f"{AVERAGE} gives {MEASURE_WORDS[worst.measure]} {worst.average_patient:.4g} "
-           f"against the population's {worst.population:.4g} "
-           f"({worst.relative_difference:+.1%}, a difference of {worst.difference:.4g}). "
+    gap = (f"{AVERAGE} gives {MEASURE_WORDS[worst.measure]} {readable(worst.average_patient)} "
+           f"against the population's {readable(worst.population)} "
+           f"({worst.relative_difference:+.1%}, a difference of {readable(worst.difference)}). "
            "Both are exact analytic results, so the gap is not Monte-Carlo noise; ")
     if n < FEWEST_FOR_MEANS:
         return gap + f"whether it is more than chance in which patients were sampled is {FEW}."
