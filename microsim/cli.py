@@ -91,7 +91,25 @@ def command_check(args) -> int:
           f"{scenario.time.unit}")
     for warning in scenario.warnings:
         print(f"warning: {warning}")
+    reasons = counterpart_reasons(scenario)
+    if reasons:
+        print(f"note: no exact analytic counterpart ({'; '.join(reasons)}): validation shows "
+              "the simulation beside an approximation and tests nothing, and the PSA's exact "
+              "basis is refused")
     return 0
+
+
+def counterpart_reasons(scenario) -> list[str]:
+    """Why the model (under any strategy) has no exact counterpart; none for a service with
+    shared capacity, whose validation is of another kind."""
+    from microsim.binding import bind
+    from microsim.cohort.expand import expand
+    from microsim.decision.strategies import strategy_names
+    if scenario.capacity is not None:
+        return []
+    reasons = [r for name in strategy_names(scenario) or [None]
+               for r in expand(bind(scenario, strategy=name)).reasons]
+    return list(dict.fromkeys(reasons))
 
 
 def scenario_options(args) -> dict:

@@ -31,7 +31,8 @@ import pytest
 from microsim import CAUTION
 from microsim.cli import build_parser, main
 from microsim.scenario import read_scenario
-from support import horizon, probability, rate, scenario_text, start, state, strategy
+from support import (horizon, probability, rate, scenario_text, start, state, strategy,
+                     transition)
 
 ROOT = Path(__file__).resolve().parent.parent
 SCENARIOS = sorted((ROOT / "scenarios").glob("*.toml"))
@@ -68,6 +69,25 @@ def test_check_accepts_every_shipped_scenario(path, capsys):
     assert main(["check", str(path)]) == 0
     out = capsys.readouterr()
     assert out.out.startswith("ok: ") and out.err == ""
+
+
+def test_check_notes_a_model_without_an_exact_counterpart(tmp_path, capsys):
+    # a Weibull sojourn in a state patients re-enter is semi-Markov: check says so before any
+    # run, as validate and the exact basis would; a constant-rate model gets no note
+    semi = scenario_text(horizon(30, unit="days"), start(recovering=1), state("recovering"),
+                         state("complication"), state("discharged", absorbing=True),
+                         rate("recovering", "complication", 0.1),
+                         rate("recovering", "discharged", 0.2),
+                         transition("complication", "recovering",
+                                    hazard=dict(family="weibull", shape=1.5, scale=4)))
+    path = tmp_path / "semi.toml"
+    for text, noted in ((semi, True), (semi.replace(
+            'hazard = { family = "weibull", shape = 1.5, scale = 4 }', "rate = 0.3"), False)):
+        path.write_text(text)
+        assert main(["check", str(path)]) == 0
+        out = capsys.readouterr().out
+        assert ("note: no exact analytic counterpart ('complication->recovering' has a weibull"
+                in out) == noted, out
 
 
 def test_check_through_python_m():
