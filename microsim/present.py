@@ -29,6 +29,7 @@ def summary(result: MainResult) -> dict:
     s, d = result.scenario, result.decision
     out = {"scenario": s.title, "provenance": s.provenance, "seed": result.seed,
            "patients": result.population.size,
+           "validated_patients": result.population.validated,
            "validation": {n: {"agrees": v.agrees, "verdict": v.verdict,
                               "average_patient": v.average_verdict}
                           for n, v in result.validations.items()},

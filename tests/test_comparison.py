@@ -1,5 +1,6 @@
 """The comparison's verdicts on the edges: no Monte-Carlo error at all, round-off in the
 analytic shares, rare states, and the average patient (exact gaps, strategies)."""
+import json
 import warnings
 from dataclasses import replace
 
@@ -395,6 +396,8 @@ def test_a_run_validates_fewer_patients_by_default_where_the_counterpart_is_solv
     assert main(["run", str(path), "--patients", "50", "--out", str(tmp_path / "out")]) == 0
     assert ("Validation compares the first 30 of the 50 patients with the analytic "
             "counterpart") in capsys.readouterr().out
+    summary = json.loads((tmp_path / "out" / "given" / "latest" / "summary.json").read_text())
+    assert summary["patients"] == 50 and summary["validated_patients"] == 30
 
 
 def test_a_certain_model_is_said_to_agree_with_nothing_random_in_it():
