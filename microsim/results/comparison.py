@@ -500,9 +500,8 @@ def share_verdict(shares: pd.DataFrame, outcomes: pd.DataFrame, counterpart: str
         which = ("its one comparison is" if len(rows) == 1 else
                  f"every one of the {len(rows)} comparisons is")
         return True, (f"The simulation agrees with {counterpart}: {which} without Monte-Carlo "
-                      "error (the model's outcome is certain "
-                      f"for these patients) and agrees within numerical error ({ROUNDOFF:g} "
-                      "relative).")
+                      "error (the model's outcome is certain for these patients) and agrees "
+                      f"within numerical error ({ROUNDOFF:g} relative).")
     if worst.p_value >= level:
         return True, (f"The simulation agrees with {counterpart}: the smallest p-value is for "
                       f"{worst.what} ({evidence(worst, n)}; {basis}){certain}.")
