@@ -13,12 +13,14 @@ some memory has no finite expansion the result says so (`exact` False, with reas
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
+from typing import Callable
 
 import numpy as np
 import pandas as pd
 from scipy import sparse
 
 from microsim.binding import BoundModel
+from microsim.cohort.compiled_products import compiled_products
 from microsim.cohort.cycle_matrices import cycle_moves
 from microsim.cohort.expand import Expansion, expand
 from microsim.cohort.exponentials import exponential_rows
@@ -50,7 +52,11 @@ def discount_rates(model: BoundModel) -> tuple[float, float, float]:
 BLOCK_ELEMENTS = 2 ** 22  # numbers per array of a block of cycles (32 MB): its cycles
 
 
-def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
+def matrix_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np.ndarray]:
+    """The trace (B, T + 1, S) and each cycle's expected occurrences of each risk (T, B, R)
+    by numpy products of each block of cycles' matrices (`cycle_moves`) with every patient
+    row's distribution over the expanded states: the reference evaluation, which
+    `compiled_products` must equal."""
     model = exp.model
     batch = mult.log_static.shape[0]
     # state-major with patients last (pi (E, B), weights (K, T, B)): every product runs
@@ -76,17 +82,28 @@ def cycle_result(exp: Expansion, mult: Multipliers) -> tuple:
         flows_per_cycle.extend(np.einsum("teb,ertb->tbr", starts, risk_p))
     trace = (np.array(expanded).transpose(0, 2, 1) @ exp.collapse()).transpose(1, 0, 2)
     flow = np.array(flows_per_cycle).reshape(model.n_cycles, batch, len(model.risks))
+    return trace, flow
+
+
+def cycle_result(exp: Expansion, mult: Multipliers,
+                 products: Callable = compiled_products) -> tuple:
+    """The trace and expected exposure of every patient row of a cycle model; `products`
+    evaluates the cycle-by-cycle products (`matrix_products` is the reference)."""
+    model = exp.model
+    batch = mult.log_static.shape[0]
+    trace, flow = products(exp, mult)
     on = np.zeros(trace.shape[:2]) if mult.window is None else mult.window.on_grid(model.times)
-    occupancy = np.empty((batch, model.n_states, 3))
-    on_treatment = np.empty((batch, model.n_states, 3))
-    occurrences = np.empty((batch, len(model.risks), 3))
     ends = model.cycle * np.arange(1, model.n_cycles + 1)
-    for w, rate in enumerate(discount_rates(model)):
-        weights = discrete_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
-                                         correction=model.correction)
-        occupancy[:, :, w] = np.einsum("t,bts->bs", weights, trace)
-        on_treatment[:, :, w] = np.einsum("t,bts,bt->bs", weights, trace, on)
-        occurrences[:, :, w] = np.einsum("t,tbr->br", discrete_outcomes.discount_factors(ends, rate), flow)
+    rates = discount_rates(model)
+    # (T + 1, 3) each cycle point's weight and (T, 3) each cycle end's discount, by rate
+    weights = np.stack([discrete_outcomes.cycle_weights(model.n_cycles, model.cycle, rate,
+                                                        correction=model.correction)
+                        for rate in rates], axis=1)
+    discounts = np.stack([discrete_outcomes.discount_factors(ends, rate) for rate in rates], axis=1)
+    occupancy = trace.transpose(0, 2, 1) @ weights
+    on_treatment = (np.zeros_like(occupancy) if mult.window is None
+                    else (trace * on[:, :, None]).transpose(0, 2, 1) @ weights)
+    occurrences = flow.transpose(1, 2, 0) @ discounts
     edges = band_edges(model, mult.entry_age, batch)
     bands = None if edges is None else cycle_bands(model, edges, mult, trace, on, flow)
     return trace, Exposure(occupancy, occurrences, on_treatment, bands=bands)

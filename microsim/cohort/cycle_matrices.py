@@ -13,6 +13,7 @@ cycle engines follow exactly these rules.
 from __future__ import annotations
 
 import itertools
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
@@ -73,13 +74,78 @@ def cycle_matrices(exp: Expansion, n: int, mult: Multipliers):
     return np.moveaxis(P, 2, 0), np.moveaxis(risk_p[:, :, 0], 2, 0)
 
 
+@dataclass(frozen=True)
+class Row:
+    """What a cycle can do from one expanded state that is not absorbing: model state and
+    cycles in it, its named moves (the remainder aside, in the row's order), remainder,
+    events, the events that split each way (`split`: those that move a count or the
+    treatment phase), and its entries (target expanded state, way, pattern). Way k <
+    len(moves) is moves[k]; way len(moves) is the remainder, or staying put where there is
+    none; bit q of the pattern says whether split[q] happened in the cycle. The numbers of
+    a cycle do not change these: both evaluations of the products read them."""
+    state: int
+    duration: int
+    counts: tuple[int, ...]
+    moves: tuple[int, ...]
+    remainder: int | None
+    events: tuple[int, ...]
+    split: tuple[int, ...]
+    combined: bool
+    entries: tuple[tuple[int, int, int], ...]
+
+
+def occurs(risk: BoundRisk) -> bool:
+    """True when the risk happening counts as an occurrence: an event, or a move to
+    another state (staying put, named or not, is neither counted nor recorded)."""
+    return risk.is_event or risk.target != risk.source
+
+
+def expanded_rows(exp: Expansion) -> tuple[Row | None, ...]:
+    """Each expanded state's `Row` (None for an absorbing one, which keeps its patients).
+    Events that move no count and not the treatment phase are summed over; the others
+    split each way by which of them happened in the same cycle (each independently of the
+    way and of one another, as the engines draw them). One that moves the phase on sends
+    the cycle's end state to its copy in the next phase."""
+    model = exp.model
+    out = []
+    for i, d, counts in exp.expanded:
+        if model.absorbing[i]:
+            out.append(None)
+            continue
+        row = [r for r, risk in enumerate(model.risks) if risk.source == i]
+        moves = tuple(r for r in row if not model.risks[r].remainder and not model.risks[r].is_event)
+        remainder = next((r for r in row if model.risks[r].remainder), None)
+        events = tuple(r for r in row if model.risks[r].is_event)
+        split = tuple(r for r in events
+                      if model.risks[r].name in exp.tracked or moves_phase(model, r))
+        stay = i if model.stay_to is None else int(model.stay_to[i])
+        entries = []
+        for way, r in enumerate((*moves, remainder)):
+            risk = None if r is None or not occurs(model.risks[r]) else model.risks[r]
+            j = stay if risk is None else risk.target
+            for pattern in itertools.product((False, True), repeat=len(split)):
+                to, occurred = j, [] if risk is None else [risk]
+                for happened, e in zip(pattern, split):
+                    if happened:
+                        occurred.append(model.risks[e])
+                        if model.phase_on is not None:
+                            to = int(model.phase_on[e, to])
+                bits = sum(1 << q for q, happened in enumerate(pattern) if happened)
+                entries.append((exp.target(i, d, counts, to, tuple(occurred)), way, bits))
+        out.append(Row(i, d, counts, moves, remainder, events, split,
+                       model.probability_rule == COMPETING and len(moves) > 1, tuple(entries)))
+    return tuple(out)
+
+
 def cycle_moves(exp: Expansion, cycles: np.ndarray, mult: Multipliers):
     """The nonzero entries of the transition matrices of a block of cycles, as (from, to,
     weight (T, B): per cycle of the block and patient, or a scalar) with repeats summed by
     the user, and each risk's probability (E, R, T, B): a sparse form, since a row reaches
     few expanded states and a product with it then costs its entries only. The cycles of a
     block share one pass over the expanded states, whose Python work then does not grow
-    with the horizon. Absorbing states keep their patients (weight 1.0)."""
+    with the horizon. Absorbing states keep their patients (weight 1.0). This is the
+    reference evaluation of `expanded_rows`; `microsim.cohort.compiled_products` is the
+    fast one."""
     model = exp.model
     times = model.cycle * np.asarray(cycles, float)[:, None]  # (T, 1)
     m_all = mult.over(times[:, 0])  # (T, B, R)
@@ -97,64 +163,38 @@ def cycle_moves(exp: Expansion, cycles: np.ndarray, mult: Multipliers):
     # state-major, patients last, so each entry is one contiguous run of patients
     entries = []
     risk_p = np.zeros((exp.size, len(model.risks), len(cycles), batch))
-    for e, (i, d, counts) in enumerate(exp.expanded):
-        if model.absorbing[i]:
+    for e, row in enumerate(expanded_rows(exp)):
+        if row is None:
             entries.append((e, e, 1.0))
             continue
-        row = [(r, risk) for r, risk in enumerate(model.risks) if risk.source == i]
-        combined = model.probability_rule == COMPETING and sum(
-            not risk.remainder and not risk.is_event for _, risk in row) > 1
-        moves, events, weighed, remainder = [], [], [], None
-        for r, risk in row:
-            if risk.remainder:
-                remainder = r
-                continue
-            m = m_all[:, :, r] * exp.memory_factor(risk, counts)
-            p, log = risk_probability(risk, band_at, d, mult.level_rows(r))
+        chances = {}
+        weighed = []
+        for r in (*row.moves, *row.events):
+            risk = model.risks[r]
+            m = m_all[:, :, r] * exp.memory_factor(risk, row.counts)
+            p, log = risk_probability(risk, band_at, row.duration, mult.level_rows(r))
             if risk.is_event:
-                risk_p[e, r] = p = on_rate_scale(p, log, m)
-                events.append((r, risk, p))
+                chances[r] = on_rate_scale(p, log, m)
             else:
-                weighed.append((r, risk, (p, log, m)))
-        chances = (competing([w for *_, w in weighed]) if combined
-                   else [on_rate_scale(p, log, m) for *_, (p, log, m) in weighed])
+                weighed.append((p, log, m))
+        ways = (competing(weighed) if row.combined
+                else [on_rate_scale(p, log, m) for p, log, m in weighed])
         total = 0.0
-        for (r, risk, _), p in zip(weighed, chances):
-            risk_p[e, r] = p
-            moves.append((risk, p))
+        for p in ways:
             total = total + p
         stay = 1.0 - total
         if not np.min(stay) >= 1.0 - LIMIT:
             t, k = np.unravel_index(np.argmin(stay), np.shape(stay))
-            raise overflow(f"transitions.{model.states[i]}->*", float(1.0 - stay[t, k]),
-                           f"the cohort's patient row {k}", int(cycles[t]))
-        stay = np.maximum(stay, 0.0)
-        if remainder is not None:
-            risk_p[e, remainder] = stay
-            moves.append((model.risks[remainder], stay))
-        elif np.max(stay) > 0:
-            moves.append((None, stay))  # a state with no way out keeps its patients
-        # Staying put, named or not, is no occurrence: it is neither counted nor recorded.
-        moves = [(None if risk is not None and risk.target == i else risk, p) for risk, p in moves]
-        for r, risk in enumerate(model.risks):
-            if risk.source == i and risk.target == i:
-                risk_p[e, r] = 0.0
-        # Events that move no count and not the treatment phase are summed over; the others
-        # split each move by which of them happened in the same cycle (each independently
-        # of the move and of one another, as the engines draw them). One that moves the
-        # phase on sends the cycle's end state to its copy in the next phase.
-        split = [(r, risk, p) for r, risk, p in events
-                 if risk.name in exp.tracked or moves_phase(model, r)]
-        for risk, p in moves:
-            j = (i if model.stay_to is None else model.stay_to[i]) if risk is None else risk.target
-            for pattern in itertools.product((False, True), repeat=len(split)):
-                weight, to = p, j
-                occurred = [] if risk is None else [risk]
-                for happened, (r, event, pe) in zip(pattern, split):
-                    weight = weight * (pe if happened else 1.0 - pe)
-                    if happened:
-                        occurred.append(event)
-                        if model.phase_on is not None:
-                            to = int(model.phase_on[r, to])
-                entries.append((e, exp.target(i, d, counts, to, tuple(occurred)), weight))
+            raise overflow(f"transitions.{model.states[row.state]}->*",
+                           float(1.0 - stay[t, k]), f"the cohort's patient row {k}", int(cycles[t]))
+        ways.append(np.maximum(stay, 0.0))
+        chances.update(zip((*row.moves, row.remainder), ways))
+        for r, p in chances.items():
+            if r is not None and occurs(model.risks[r]):
+                risk_p[e, r] = p
+        for f, way, pattern in row.entries:
+            weight = ways[way]
+            for q, r in enumerate(row.split):
+                weight = weight * (chances[r] if pattern >> q & 1 else 1.0 - chances[r])
+            entries.append((e, f, weight))
     return entries, risk_p

@@ -18,7 +18,7 @@ the same histories record for record and bit for bit. What keeps the floats iden
   (each risk's m L, each row's R): a function of the same number is the same number, so
   keeping the last one changes no bit and saves most of the `expm1` calls.
 
-The model is laid out once per batch as flat arrays (`_layout`): each state's moves and
+The model is laid out once per batch as flat arrays (`layout`): each state's moves and
 events, each risk's base values by band and level, multipliers, memory terms and what an
 occurrence advances. Records go into buffers that grow when a patient could overflow them,
 already grouped by patient and in time order.
@@ -108,7 +108,7 @@ def _csr(groups) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate([[0], np.cumsum(sizes)]).astype(np.int64), flat
 
 
-def _layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
+def layout(model: BoundModel, mult: Multipliers, ids: np.ndarray, seed: int):
     """The model and the batch as the kernel reads them (see the classes above)."""
     n_risks, size = len(model.risks), mult.size
     purposes = plan.risk_purposes(model)
@@ -223,17 +223,32 @@ def _band(risks, r, t, age, in_state, hints):
     return hints[r]
 
 
-@njit(cache=True, nogil=True, _nrt=False)
-def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints):
-    """(base probability, L, multiplier) of risk r for patient b at cycle n, in the
-    reference's order of operations (`cycle_engine.simulate_cycles`, weigh)."""
-    k = (risks.value_ptr[r] + risks.level_row[r, b] * risks.n_bands[r]
-         + _band(risks, r, t, age, in_state, hints))
+@njit(cache=True, nogil=True, _nrt=False, inline="always")
+def base_index(risks, r, b, t, age, in_state, hints):
+    """Where risk r's base value and L for patient b at time t sit in `risks.values` and
+    `risks.logs`: its level row's run, at the band of the time, age or time in state."""
+    return (risks.value_ptr[r] + risks.level_row[r, b] * risks.n_bands[r]
+            + _band(risks, r, t, age, in_state, hints))
+
+
+@njit(cache=True, nogil=True, _nrt=False, inline="always")
+def outer_multiplier(risks, r, b, n, t, on, off):
+    """Risk r's multiplier for patient b at cycle n before memory: the static part, the
+    age factor, the treatment factor, multiplied in that order."""
     m = risks.static[b, r]
     if risks.sloped[r]:
         m *= risks.age_factor[r, n]
     if risks.windowed[r]:
         m *= risks.on_factor[r] if on <= t < off else risks.off_factor[r]
+    return m
+
+
+@njit(cache=True, nogil=True, _nrt=False)
+def _weigh(risks, r, b, n, t, age, in_state, on, off, counts, last, cycle, hints):
+    """(base probability, L, multiplier) of risk r for patient b at cycle n, in the
+    reference's order of operations (`cycle_engine.simulate_cycles`, weigh)."""
+    k = base_index(risks, r, b, t, age, in_state, hints)
+    m = outer_multiplier(risks, r, b, n, t, on, off)
     for j in range(risks.memory_ptr[r], risks.memory_ptr[r + 1]):
         index = risks.memory_index[j]
         if risks.memory_kind[j] == COUNT:
@@ -387,7 +402,7 @@ def simulate_cycles_compiled(model: BoundModel, mult: Multipliers, patient_ids: 
     """Run one batch of patients through the cycle model; the same histories as
     `microsim.engines.cycle_engine.simulate_cycles` for the same arguments."""
     ids = np.asarray(patient_ids)
-    rows, risks, people, n_tracked = _layout(model, mult, ids, seed)
+    rows, risks, people, n_tracked = layout(model, mult, ids, seed)
     start = np.asarray(plan.start_states(model, first_units(
         people.ids, people.seed, np.uint64(streams.purpose_id(plan.START_PURPOSE))), mult),
         np.int64).reshape(-1)
