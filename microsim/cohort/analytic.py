@@ -103,7 +103,10 @@ def cycle_result(exp: Expansion, mult: Multipliers,
     occupancy = trace.transpose(0, 2, 1) @ weights
     on_treatment = (np.zeros_like(occupancy) if mult.window is None
                     else (trace * on[:, :, None]).transpose(0, 2, 1) @ weights)
-    occurrences = flow.transpose(1, 2, 0) @ discounts
+    # over (T, R x B), the compiled products' own layout (a copy for the reference's)
+    by_cycle = flow.transpose(0, 2, 1).reshape(model.n_cycles, -1)
+    occurrences = np.ascontiguousarray((discounts.T @ by_cycle).reshape(
+        len(rates), len(model.risks), batch).transpose(2, 1, 0))
     edges = band_edges(model, mult.entry_age, batch)
     bands = None if edges is None else cycle_bands(model, edges, mult, trace, on, flow)
     return trace, Exposure(occupancy, occurrences, on_treatment, bands=bands)

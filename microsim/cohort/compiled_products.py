@@ -81,7 +81,7 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
     ways, longest, events, split = _ways(exp)
     start = exp.start_rows(mult.start, batch)
     trace = np.empty((batch, model.n_cycles + 1, model.n_states))
-    flow = np.empty((model.n_cycles, batch, n_risks))
+    flow = np.zeros((model.n_cycles, n_risks, batch))  # patients last, as the kernel adds
     chunk = int(np.clip(CHUNK_NUMBERS // (exp.size * max(n_risks, 1)), 64, 2048))
 
     def one_chunk(lo: int):
@@ -91,15 +91,14 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
                    np.empty((longest, size)), np.empty((longest, size)),  # weights, ways
                    np.empty((max(events, 1), size)), np.empty((1 << split, size)),  # chances
                    np.zeros((size, max(n_risks, 1)), np.int64),  # each risk's last band
-                   np.full((2, exp.size, n_risks, size), np.nan),  # last m L and chance,
-                   np.full((2, exp.size, size), np.nan),  # and last R and scale
+                   np.zeros((2, exp.size, n_risks, size)),  # last m L and chance,
+                   np.zeros((2, exp.size, size)),  # and last R and scale (0 gives 0)
                    np.empty((n_risks, size), np.int64), np.empty((n_risks, size)),
                    np.empty(size))
-        mine = np.zeros((model.n_cycles, n_risks, size))
         failed = _products(rows, risks, ways, people.on, people.age0, people.off, lo,
                            float(model.cycle), model.n_cycles, LIMIT,
-                           np.ascontiguousarray(start[lo:hi].T), trace[lo:hi], mine, scratch)
-        flow[:, lo:hi] = mine.transpose(0, 2, 1)
+                           np.ascontiguousarray(start[lo:hi].T), trace[lo:hi], flow[:, :, lo:hi],
+                           scratch)
         return failed
 
     for failed in threads.in_order(one_chunk, range(0, batch, chunk), threads.count()):
@@ -107,7 +106,7 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
             row, n, state, total = failed
             raise overflow(f"transitions.{model.states[int(state)]}->*", float(total),
                            f"the cohort's patient row {int(row)}", int(n))
-    return trace, flow
+    return trace, flow.transpose(0, 2, 1)
 
 
 @njit(cache=True, nogil=True, _nrt=False)
@@ -120,7 +119,8 @@ def _products(rows, risks, ways, on, age0, off, first, cycle, n_cycles, limit, s
     Each risk's base value and multiplier are read once a cycle (once per expanded state
     where a table is by time in state); a chance is worked out again only when its
     argument changed since the last cycle (each expanded state's m L and R, per patient):
-    the same argument gives the same number, and most do not change."""
+    the same argument gives the same number, and most do not change. The memo starts at 0,
+    whose chance and scale are 0."""
     now, after, weights, chances_of_ways, chances, patterns, hints, memo, scales, bases, \
         outer, totals = scratch
     E, B = now.shape
