@@ -1,7 +1,8 @@
 """The analytic counterpart of a bound model, for a cohort or for each generated patient.
 
 One entry point, `analytic`, picks the exact method the model allows and names it:
-- cycle models: products of per-cycle matrices over the expanded state space;
+- cycle models: products of per-cycle matrices over the expanded state space, compiled
+  (`microsim.cohort.compiled_products`; `matrix_products` in numpy is the reference);
 - rate models whose hazards are piecewise constant in time (constant rates, life tables by
   age or by time): matrix exponentials, exact (`microsim.cohort.exponentials`);
 - other Markov rate models (Weibull or Gompertz on the time-since-start or age clock,
