@@ -19,6 +19,9 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - exact against simulated PSA: time per draw of the demo's PSA on the exact basis over
   the simulated one at the same patients per draw, and the inner noise the exact basis
   removes (the simulated draw means' noise variance over the between-draw variance);
+- exact products: the time of the demo's exact per-patient results (`analytic.cycle_result`)
+  by the numpy reference over the compiled default (`microsim.cohort.compiled_products`),
+  the same numbers to rounding;
 - exact against simulated PSA on a rate model: the same ratio for a memoryless rate model
   whose patients differ by a continuous marker on two transitions (every patient its own
   generator: the exact basis costs matrix exponentials for each of them);
@@ -444,6 +447,28 @@ def psa_timings(draws: int, patients: int, runs=(("one", "simulated", 1), ("two"
 EQUAL_NOISE = 0.05  # the simulated draws' inner noise as a share of their spread
 
 
+def products_ratio(patients: int, repeats: int) -> dict:
+    """Medians over interleaved repeats: seconds of the demo's exact per-patient results by
+    the numpy products and by the compiled ones."""
+    from microsim.cohort.analytic import cycle_result, matrix_products
+    from microsim.cohort.compiled_products import compiled_products
+    from microsim.cohort.expand import expand
+    from microsim.patients.population import patients_for
+    from microsim.patients.treatment import patient_multipliers
+    scenario = demo_scenario()
+    model = bind(scenario, strategy=strategy_of(scenario))
+    mult, _ = patient_multipliers(model, patients_for(scenario, patients, 1), 1).unique()
+    exp = expand(model)
+    cycle_result(exp, mult.take(slice(0, 10)))  # loads the compiled code
+    seconds = {"numpy": [], "compiled": []}
+    for _ in range(repeats):
+        for name, products in (("numpy", matrix_products), ("compiled", compiled_products)):
+            started = time.perf_counter()
+            cycle_result(exp, mult, products=products)
+            seconds[name].append(time.perf_counter() - started)
+    return {name: float(np.median(values)) for name, values in seconds.items()}
+
+
 def rate_psa_timings(draws: int, patients: int, repeats: int) -> dict:
     """Medians over interleaved repeats: seconds of the PSA of MARKER_RATE_MODEL on the
     simulated basis and on the exact one, with the same draws and patients per draw."""
@@ -543,6 +568,11 @@ def main(quick: bool = False) -> int:
               f"; for that noise to be {100 * EQUAL_NOISE:.0f}% a simulated draw needs about "
               f"{p['needed']:,.0f} patients, and the exact basis is then {p['equal']:.1f} x as "
               "fast (time taken as proportional to the patients per draw)"))
+    per_draw = 500 if quick else 5000
+    x = products_ratio(per_draw, repeats=1 if quick else 5)
+    print(f"Exact per-patient results of the demo, {per_draw:,} patients: compiled "
+          f"{x['numpy'] / x['compiled']:.1f} x as fast as the numpy reference (compiled "
+          f"{x['compiled']:.2f} s, numpy {x['numpy']:.2f} s; the same numbers to rounding)")
     draws, per_draw = (2, 1000) if quick else (8, 5000)
     r = rate_psa_timings(draws, per_draw, repeats=1 if quick else 3)
     print(f"PSA of a memoryless rate model whose patients differ by a continuous marker, "
