@@ -142,6 +142,8 @@ def _products(rows, risks, ways, on, age0, off, first, cycle, n_cycles, limit, s
                 for b in range(B):
                     after[e, b] += now[e, b]
                 continue
+            if _empty(now, e):  # no patient of the chunk can be here yet (or any more)
+                continue
             lo, hi = rows.move_ptr[i], rows.move_ptr[i + 1]
             in_state = ways.duration[e] * cycle
             totals[:] = 0.0
@@ -211,6 +213,15 @@ def _collapse(now, state, trace, n):
     for e in range(now.shape[0]):
         for b in range(now.shape[1]):
             trace[b, n, state[e]] += now[e, b]
+
+
+@njit(cache=True, nogil=True, _nrt=False, inline="always")
+def _empty(now, e):
+    """True when no patient has a share in expanded state e."""
+    for b in range(now.shape[1]):
+        if now[e, b] != 0.0:
+            return False
+    return True
 
 
 @njit(cache=True, nogil=True, _nrt=False, inline="always")
