@@ -82,7 +82,10 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
     start = exp.start_rows(mult.start, batch)
     trace = np.empty((batch, model.n_cycles + 1, model.n_states))
     flow = np.zeros((model.n_cycles, n_risks, batch))  # patients last, as the kernel adds
-    chunk = int(np.clip(CHUNK_NUMBERS // (exp.size * max(n_risks, 1)), 64, 2048))
+    used = threads.count()
+    # at most CHUNK_NUMBERS, and enough chunks for every thread
+    chunk = int(np.clip(min(CHUNK_NUMBERS // (exp.size * max(n_risks, 1)), -(-batch // used)),
+                        64, 2048))
 
     def one_chunk(lo: int):
         hi = min(lo + chunk, batch)
@@ -101,7 +104,7 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
                            scratch)
         return failed
 
-    for failed in threads.in_order(one_chunk, range(0, batch, chunk), threads.count()):
+    for failed in threads.in_order(one_chunk, range(0, batch, chunk), used):
         if failed[0] >= 0:
             row, n, state, total = failed
             raise overflow(f"transitions.{model.states[int(state)]}->*", float(total),
