@@ -371,3 +371,22 @@ def test_an_attribute_whose_hazard_ratio_overflows_is_refused_naming_it(sdlog, r
         multipliers(bind(scenario), people)
     assert caught.value.path == "population.attributes.marker"
     assert "bound it (a normal with lower and upper, or a uniform)" in caught.value.message
+
+
+def test_an_age_attribute_wins_over_start_age_for_the_average_patient_too():
+    """The patients take their ages from the attribute, so the average patient (and the
+    cohort trace) must take the attribute's mean, not start.age, and the file is told that
+    start.age goes unused. Reference: the truncated normal's mean (scipy.stats.truncnorm)."""
+    from microsim.binding import bind
+    from microsim.patients.multipliers import cohort_multipliers
+    from support import attribute, population, probability
+    text = scenario_text(
+        horizon(10, cycle=1), start(age=40, well=1.0), state("well"),
+        state("dead", absorbing=True), probability("well", "dead", 0.05,
+                                                   effects=[{"attribute": "age", "hazard_ratio": 1.05, "centre": 60}]),
+        probability("well", "well", "remainder"),
+        population(100, attribute("age", "normal", mean=68, sd=8, lower=45, upper=90)))
+    scenario = parse_scenario(text)
+    assert any(w.startswith("start.age: 40 is not used") for w in scenario.warnings)
+    mean = stats.truncnorm((45 - 68) / 8, (90 - 68) / 8, loc=68, scale=8).mean()
+    assert cohort_multipliers(bind(scenario)).entry_age[0] == pytest.approx(mean, rel=1e-12)

@@ -17,7 +17,7 @@ from support import (after, assert_refused, attribute, edited, effect, event, ho
 PROVENANCE = "Invented for tests; not real data."
 
 DISCRETE = scenario_text(
-    horizon(10, cycle=1), start(age=50, well=0.9, sick=0.1),
+    horizon(10, cycle=1), start(well=0.9, sick=0.1),
     state("well", cost=100, utility=0.9), state("sick", cost="c_sick", utility=0.6),
     state("dead", absorbing=True),
     probability("well", "sick", "p_sick", effects=[effect("marker", 1.2)],
@@ -228,7 +228,7 @@ CASES = [
      [("values = [0.01, 0.05, 0.2]", "values = [0.01, 0.05]")],
      "tables.mortality.values", "has 2 values but starts has 3"),
     ("table by age without an age", "discrete",
-     [("age = 50\nshares", "shares"), ('name = "age"', 'name = "years"'),
+     [('name = "age"', 'name = "years"'),
       ('attributes = ["age", "marker"]', 'attributes = ["years", "marker"]')],
      "tables.mortality.by", "no age is known"),
     # absorbing states and lifetime

@@ -68,7 +68,7 @@ def test_lakemoor_values_land_in_their_fields():
     assert s.state_names == ("early", "advanced", "kidney_failure", "dead")
     assert [st.absorbing for st in s.states] == [False, False, False, True]
     assert s.states[2].cost == "c_dialysis" and s.states[2].label == "Kidney failure (on dialysis)"
-    assert s.start.age == 60.0
+    assert s.start.age is None  # the population's attribute gives every patient's age
     assert s.start.shares == {"early": 0.7, "advanced": 0.3, "kidney_failure": 0.0, "dead": 0.0}
 
     by_key = {t.key: t for t in s.transitions}

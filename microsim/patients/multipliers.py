@@ -20,7 +20,7 @@ import pandas as pd
 
 from microsim.binding import BoundModel, table_hazard
 from microsim.hazards import HazardFamily, TimeScaledHazard
-from microsim.patients.population import check_population_file, expected_covariate
+from microsim.patients.population import check_population_file, expected_covariate, gives_age
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.fields import LARGEST
 from microsim.scenario.spec import TableSpec
@@ -202,7 +202,8 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
 
     With `patients`, one row per patient. Without, one row for the uniform cohort: every
     covariate at its expected value `means(attribute, level)` (the 'average patient' of the
-    population spec), and age at the scenario's start age when it gives one."""
+    population spec), and age at the population's mean age where it gives patients ages,
+    else at the scenario's start age when it gives one."""
     n = 1 if patients is None else len(patients)
 
     def covariate(attribute, level):
@@ -214,6 +215,8 @@ def multipliers(model: BoundModel, patients: pd.DataFrame | None = None,
 
     if patients is not None and AGE in patients:
         ages = patients[AGE].to_numpy(float)
+    elif patients is None and means is not None and gives_age(model.scenario.population):
+        ages = np.array([means(AGE, None)])  # the patients' own ages' mean, not start.age
     elif model.start_age is not None:
         ages = np.full(n, model.start_age)
     elif patients is None and means is not None and _uses_age(model):
@@ -341,7 +344,8 @@ def average_row(rows: np.ndarray, shares: np.ndarray, probability: bool) -> np.n
 
 def cohort_multipliers(model: BoundModel) -> Multipliers:
     """The uniform cohort: every covariate at the population's expected value (exact,
-    from the population spec), age at the start age or the population's mean age."""
+    from the population spec), age at the population's mean age where it gives patients
+    ages, else at the start age."""
     spec = model.scenario.population
     check_population_file(model.scenario)
     means = None if spec is None else partial(expected_covariate, spec)

@@ -389,6 +389,17 @@ def file_ranges(spec: PopulationSpec) -> dict[str, tuple[float, float]]:
 
 # ------------------------------------------------------------------------ expectations
 
+def gives_age(spec: PopulationSpec | None) -> bool:
+    """True when the population gives each patient its own age: an attribute named age, or
+    a column age of its file (which then wins over `start.age`, for the patients and for
+    the average patient alike)."""
+    if spec is None:
+        return False
+    if any(a.name == "age" for a in spec.attributes):
+        return True
+    return spec.file is not None and "age" in population_file(spec).rows
+
+
 def expected_covariate(spec: PopulationSpec, attribute: str, level: str | None = None) -> float:
     """The population mean of an attribute (or the share at `level`), exactly, from the
     spec rather than from a draw: what the 'average patient' cohort is given."""

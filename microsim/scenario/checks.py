@@ -590,6 +590,10 @@ def warnings(s: Scenario, reading: Reading) -> list[str]:
             found.append(f"outcomes.{key}: {show(rate)} a year is {show(100 * rate)}%; discount "
                          f"rates are fractions (0.035 for 3.5%)")
     found += [warning] if (warning := negative_ages(s, used)) else []
+    if s.start.age is not None and age_attribute(s) is not None:
+        found.append(f"start.age: {show(s.start.age)} is not used: the population's attribute "
+                     "'age' gives every patient's age, and the average patient and the cohort "
+                     "trace take its mean; remove start.age")
     youngest = youngest_age(s)
     for table in s.tables.values():
         first = table.starts[0]
