@@ -8,6 +8,7 @@ from __future__ import annotations
 import json
 from typing import TYPE_CHECKING
 
+import numpy as np
 import pandas as pd
 
 from microsim import CAUTION
@@ -64,6 +65,9 @@ def summary(result: MainResult) -> dict:
             if "population_evpi" in p.evpi:
                 out["psa"]["population"] = population_words(s.economics)
         out["psa"]["reused_draws"] = p.reused[0]
+        if p.sampling is not None:
+            out["psa"]["shared_patients_sampling_error"] = {
+                "table": records(p.sampling), "summary": sampling_words(p, s.economics.currency)}
         out["psa"]["invalid_draws"] = {"policy": s.uncertainty.invalid_draws,
                                        "changed_draws": int(p.changed.draw.nunique()),
                                        "changes": records(p.changed),
@@ -143,8 +147,11 @@ def print_summary(result: MainResult) -> None:
             print(held_fixed(p))
         if p.reused[0]:
             print(reused_words(p))
+        if p.sampling is not None:
+            print(sampling_words(p, s.economics.currency))
         if p.note is not None:
             print(f"\nPSA: {p.note}.")
+            print(f"\n{changed_draws(p)}")
             return
         near = (p.acceptability.threshold - s.economics.threshold).abs()
         at = p.acceptability[near == near.min()]
@@ -289,6 +296,22 @@ def tables_in_words(varied: list, fixed: list) -> list:
     return parts + ["."]
 
 
+def sampling_words(psa, currency: str) -> str:
+    """One line: the sampling error the exact basis carries in every draw alike (its
+    shared patients are a sample of the population), by strategy, in the base case."""
+    n = int(psa.results.patients.iloc[0])
+    errors = psa.sampling[["qalys_discounted_se", "costs_discounted_se"]].to_numpy()
+    if not np.any(errors):  # nan (a single patient) is not 0, and is shown
+        return (f"Exact basis: no inner Monte-Carlo noise, and the {n:,} patients every draw "
+                "shares have the same values in the base case, so no sampling error either.")
+    each = "; ".join(f"{r.strategy} {r.qalys_discounted_se:.3g} QALYs and {r.costs_discounted_se:,.3g} "
+                     f"{currency}" for r in psa.sampling.itertuples())
+    return (f"Exact basis: no inner Monte-Carlo noise, but the {n:,} patients every draw shares "
+            "are a sample of the population, so every draw's means are off the population's by "
+            f"the same sampling error; its standard error in the base case: {each} (discounted; "
+            "more patients per draw, --patients-per-draw, shrink it at no simulation cost).")
+
+
 def changed_draws(psa, listed: int = 5) -> str:
     """One line: which PSA draws were redrawn or truncated, and why (every draw is checked
     against every use of its values and every row before anything is simulated)."""
@@ -301,13 +324,28 @@ def changed_draws(psa, listed: int = 5) -> str:
                  f"({r.reason})" for r in first.itertuples()]
         what = f"{len(first)} of {n} draws were invalid and were drawn again"
     else:
-        items = [f"draw {r.draw} {r.parameter} {r.drawn:.6g} -> {r.used:.6g} ({r.reason})"
-                 for r in changed.itertuples()]
+        items = []
+        for (parameter, reason), group in changed.groupby(["parameter", "reason"], sort=False):
+            draws = group.draw.tolist()
+            more = f" and {len(draws) - listed} more" if len(draws) > listed else ""
+            r = group.iloc[0]
+            items.append(f"{parameter} in draw{'s' if len(draws) > 1 else ''} "
+                         f"{', '.join(map(str, draws[:listed]))}{more} (draw {r.draw}: "
+                         f"{' -> '.join(apart(r.drawn, r.used))}; {reason})")
         what = (f"{len(changed)} value(s) in {len(first)} of {n} draws were outside their "
                 "range and were truncated to it")
     more = f"; {len(items) - listed} more" if len(items) > listed else ""
     return (f"PSA draws: {what}: {'; '.join(items[:listed])}{more} (all in the "
             "psa_changed_draws table).")
+
+
+def apart(a: float, b: float) -> tuple[str, str]:
+    """a and b to the fewest significant digits (at least 6) that tell them apart."""
+    for digits in range(6, 18):
+        shown = f"{a:.{digits}g}", f"{b:.{digits}g}"
+        if shown[0] != shown[1] or a == b:
+            return shown
+    return shown
 
 
 def subgroup_headlines(subgroups: pd.DataFrame) -> list[str]:

@@ -31,7 +31,7 @@ from support import (horizon, parameters, probability, scenario_text, section, s
 SEED, DRAWS = 77, 40
 
 
-def two_betas(policy: str | None = None, utility=0.9) -> str:
+def two_betas(policy: str | None = None, utility=0.9, strategies: bool = True) -> str:
     """well -> sick (p_a) and well -> dead (p_b) beside a remainder, means 0.5 and 0.45."""
     return scenario_text(
         horizon(4), start(well=1),
@@ -42,8 +42,9 @@ def two_betas(policy: str | None = None, utility=0.9) -> str:
         parameters(p_a=dict(value=0.5, distribution=dict(family="beta", alpha=20, beta=20)),
                    p_b=dict(value=0.45, distribution=dict(family="beta", alpha=18, beta=22)),
                    u_well=dict(value=0.9, distribution=utility)),
-        strategy("usual", comparator=True),
-        strategy("slower", changes=[{"transition": "well->sick", "hazard_ratio": 0.8}]),
+        *([strategy("usual", comparator=True),
+           strategy("slower", changes=[{"transition": "well->sick", "hazard_ratio": 0.8}])]
+          if strategies else []),
         section("uncertainty", draws=DRAWS, patients_per_draw=20, invalid_draws=policy),
         section("simulation", seed=SEED))
 
@@ -127,6 +128,13 @@ def test_truncate_clips_values_to_their_use_and_says_so():
 
     line = changed_draws(SimpleNamespace(draws=result.table, changed=result.changed))
     assert f"{over.size} value(s) in {over.size} of {DRAWS} draws were outside" in line
+    assert line.count("u_well in draw") == 1  # one reason, said once, with its draws
+
+
+def test_a_change_shows_the_digits_that_tell_its_values_apart():
+    from microsim.present import apart
+    assert apart(1.0, 0.9999999999999999) == ("1", "0.9999999999999999")
+    assert apart(1.2345678, 0.5) == ("1.23457", "0.5")
 
 
 def test_truncate_refuses_a_row_it_cannot_mend():
@@ -203,3 +211,14 @@ def test_a_draw_that_rounds_onto_an_open_end_is_told_so():
     assert error.message.endswith("or narrow the distribution away from that end (its range "
                                   "is allowed, but a draw this near the end rounds onto it in "
                                   "floating point)")
+
+
+def test_a_scenario_without_strategies_still_says_which_draws_were_changed(tmp_path, capsys):
+    path = tmp_path / "alone.toml"
+    path.write_text(two_betas(utility=BETA_UTILITY, strategies=False))
+    assert main(["run", str(path), "--patients", "40", "--psa", "--draws", "8",
+                 "--patients-per-draw", "10", "--invalid-draws", "redraw",
+                 "--out", str(tmp_path / "out")]) == 0
+    out = capsys.readouterr().out
+    assert "they need at least two, and this scenario defines none" in out
+    assert "were invalid and were drawn again" in out

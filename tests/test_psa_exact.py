@@ -175,3 +175,27 @@ def test_the_exact_basis_has_no_inner_noise_to_take_out(tmp_path, capsys):
     assert "probability_best_noise_removed: " in capsys.readouterr().out
     table = pd.read_parquet(out / "drug" / "latest" / "acceptability.parquet")
     assert {"probability_best_noise_removed", "noise_scale"} <= set(table.columns)
+
+
+def test_the_exact_basis_states_its_shared_patients_sampling_error(tmp_path):
+    """The shared patients are a sample of the population: every draw carries their mean's
+    offset alike. The stated standard error must be SD / sqrt(n) of the patients' closed
+    forms (common practice), and the population's mean (the closed form at the
+    prevalence, 0.3) must lie within Z of those errors of the shared patients' mean."""
+    from types import SimpleNamespace
+    from microsim.present import sampling_words
+    scenario = parse_scenario(model_text())
+    result = parameter_uncertainty(scenario, tmp_path / "psa", progress=False)
+    diabetes = patients_for(scenario, PATIENTS, 3)["diabetes"].to_numpy(float)
+    years = np.where(diabetes == 1, life(R * DIABETES_HR), life(R))  # usual care, base case
+    se = years.std(ddof=1) / math.sqrt(PATIENTS)
+    usual = result.sampling.set_index("strategy").loc["usual"]
+    assert usual.qalys_discounted_se == pytest.approx(se, rel=1e-9)
+    assert usual.costs_discounted_se == pytest.approx(C_WELL * se, rel=1e-9)
+    population = 0.3 * life(R * DIABETES_HR) + 0.7 * life(R)
+    assert abs(years.mean() - population) < Z * se
+    line = sampling_words(result, "pounds")
+    assert f"the {PATIENTS:,} patients every draw shares are a sample" in line
+    alike = SimpleNamespace(results=result.results, sampling=result.sampling.assign(
+        qalys_discounted_se=0.0, costs_discounted_se=0.0))
+    assert "no sampling error either" in sampling_words(alike, "pounds")

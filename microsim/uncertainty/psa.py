@@ -84,17 +84,34 @@ def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
     life years over the shared patients; no inner noise, so the within-draw moments are 0."""
     rows = []
     for name in strategy_names(scenario) or [None]:
-        exact = patient_values(scenario, people, scenario.simulation.seed, values, name)
-        if not exact.exact:
-            which = "the base case" if draw < 0 else f"draw {draw}"
-            whose = "the model" if name is None else f"strategy {name!r}"
-            raise ScenarioError("uncertainty.basis", f"{whose} has no exact counterpart in "
-                                f"{which} ({'; '.join(exact.reasons)}); use the simulated "
-                                "basis (basis = \"simulated\", or --basis simulated)")
+        exact = exact_values(scenario, people, draw, values, name)
         rows.append((AS_WRITTEN if name is None else name, exact.costs.mean(),
                      exact.qalys.mean(), exact.life_years.mean(), 0.0, 0.0, 0.0, 0.0,
                      len(people)))
     return pd.DataFrame(rows, columns=DRAW_COLUMNS)
+
+
+def mean_error(x: np.ndarray) -> float:
+    """The standard error of the mean of x, 0 where x differs only by round-off (patients
+    alike: 1e-12 of its size), nan for a single value."""
+    if len(x) < 2:
+        return math.nan
+    se = float(np.std(x, ddof=1)) / math.sqrt(len(x))
+    return 0.0 if se <= 1e-12 * max(float(np.abs(x).max()), 1.0) else se
+
+
+def exact_values(scenario: Scenario, people: pd.DataFrame, draw: int, values: dict,
+                 name: str | None):
+    """A strategy's exact per-patient values at `values` (draw < 0: the base case),
+    refused where the model has no exact counterpart."""
+    exact = patient_values(scenario, people, scenario.simulation.seed, values, name)
+    if not exact.exact:
+        which = "the base case" if draw < 0 else f"draw {draw}"
+        whose = "the model" if name is None else f"strategy {name!r}"
+        raise ScenarioError("uncertainty.basis", f"{whose} has no exact counterpart in "
+                            f"{which} ({'; '.join(exact.reasons)}); use the simulated "
+                            "basis (basis = \"simulated\", or --basis simulated)")
+    return exact
 
 
 DRAW_COLUMNS = ["strategy", "costs_discounted", "qalys_discounted", "life_years", "incremental_nmb_within_variance",
@@ -130,6 +147,7 @@ class PsaResult:
     # reads: (varied, held fixed) by the draws
     reused: tuple[int, Path | None] = (0, None)  # draws an earlier run had finished, and
     # the folder they are read from (`reused_draws`)
+    sampling: pd.DataFrame | None = None  # exact basis: the shared patients' sampling error
 
 
 def reused_draws(where: Path, draws: pd.DataFrame) -> tuple[int, Path | None]:
@@ -224,14 +242,15 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
                    "microsim": __version__, "draw_columns": DRAW_COLUMNS, "basis": spec.basis}
     where = own_folder(run_dir, fingerprint, table)
     reused = reused_draws(where, table)
-    results = run_draws(draw_evaluation(scenario, n), table, where,
+    evaluate, sampling = draw_evaluation(scenario, n)
+    results = run_draws(evaluate, table, where,
                         workers=workers, backend=backend, address=address, progress=progress,
                         fingerprint=fingerprint)
     outcomes = draw_intervals(results)
     basis, tables = BASES[spec.basis], psa_tables(scenario)
     if not scenario.strategies:
         return PsaResult(table, results, outcomes, checked.changed, note=NEEDS_STRATEGIES,
-                         basis=basis, tables=tables, reused=reused)
+                         basis=basis, tables=tables, reused=reused, sampling=sampling)
     comparator = strategy_names(scenario)[0]
     summary = summarise_draws(results, thresholds(scenario), comparator,
                               inner_noise=spec.basis == "simulated")
@@ -240,7 +259,7 @@ def parameter_uncertainty(scenario: Scenario, run_dir: Path, *, seed: int | None
     variance = variance_split(scenario, results) if spec.basis == "simulated" else None
     return PsaResult(table, results, outcomes, checked.changed, summary["acceptability"],
                      evpi, summary["plane"], variance, evppi=evppi, basis=basis,
-                     tables=tables, reused=reused)
+                     tables=tables, reused=reused, sampling=sampling)
 
 
 def own_folder(root: Path, fingerprint: dict, draws: pd.DataFrame) -> Path:
@@ -259,12 +278,25 @@ BASES = {"simulated": "simulated: each draw's own inner patients, with common ra
 
 
 def draw_evaluation(scenario: Scenario, n: int):
-    """The function of (draw, values) that evaluates one draw on the scenario's basis; on
-    the exact basis the base case is tried first, so a model without an exact counterpart
-    is refused before any draw."""
+    """The function of (draw, values) that evaluates one draw on the scenario's basis, and
+    on the exact basis the shared patients' sampling error (`sampling_error`), worked out
+    on the base case first, so a model without an exact counterpart is refused before any
+    draw."""
     if scenario.uncertainty.basis == "simulated":
-        return partial(evaluate_draw, scenario, n)
+        return partial(evaluate_draw, scenario, n), None
     people = patients_for(scenario, n, scenario.simulation.seed)
+    return partial(evaluate_exact_draw, scenario, people), sampling_error(scenario, people)
+
+
+def sampling_error(scenario: Scenario, people: pd.DataFrame) -> pd.DataFrame:
+    """Per strategy, the standard errors of the shared patients' mean discounted QALYs and
+    costs in the base case (SD / sqrt(n) over their exact values): the exact basis has no
+    inner noise, but its patients are a sample of the population, and every draw carries
+    that sample's offset alike."""
     base = {name: float(p.value) for name, p in scenario.parameters.items()}
-    evaluate_exact_draw(scenario, people.head(1), -1, base)
-    return partial(evaluate_exact_draw, scenario, people)
+    rows = []
+    for name in strategy_names(scenario) or [None]:
+        exact = exact_values(scenario, people, -1, base, name)
+        rows.append((AS_WRITTEN if name is None else name,
+                     *(mean_error(x) for x in (exact.qalys, exact.costs))))
+    return pd.DataFrame(rows, columns=["strategy", "qalys_discounted_se", "costs_discounted_se"])
