@@ -27,6 +27,8 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 PACKAGES = ("microsim", "numpy", "scipy", "pandas", "pyarrow", "simpy", "tqdm", "dask",
             "distributed", "matplotlib", "jinja2", "networkx")
@@ -194,7 +196,7 @@ def stage(staging: Path, tables: dict[str, pd.DataFrame], record: dict,
             if fmt == "csv":
                 table.to_csv(target, index=False)
             elif fmt == "parquet":
-                table.to_parquet(target, index=False)
+                write_parquet(table, target)
             else:
                 raise ValueError(f"unknown output format {fmt!r}")
     for name, document in documents.items():
@@ -204,6 +206,23 @@ def stage(staging: Path, tables: dict[str, pd.DataFrame], record: dict,
     if scenario is not None:
         shutil.copyfile(scenario, staging / SCENARIO_COPY)
     write_manifest(staging, record)
+
+
+PARQUET_ROWS = 200_000  # rows converted to Arrow at a time
+
+
+def write_parquet(table: pd.DataFrame, target: Path) -> None:
+    """`table` as one Parquet file, converted and written PARQUET_ROWS rows at a time (row
+    groups): converting a million patients' outcomes at once held a copy of them all."""
+    if len(table) <= PARQUET_ROWS:
+        table.to_parquet(target, index=False)
+        return
+    first = pa.Table.from_pandas(table.iloc[:PARQUET_ROWS], preserve_index=False)
+    with pq.ParquetWriter(target, first.schema) as writer:
+        writer.write_table(first)
+        for lo in range(PARQUET_ROWS, len(table), PARQUET_ROWS):
+            writer.write_table(pa.Table.from_pandas(table.iloc[lo:lo + PARQUET_ROWS],
+                                                    schema=first.schema, preserve_index=False))
 
 
 def file_hashes(folder: Path) -> dict[str, str]:

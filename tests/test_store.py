@@ -200,3 +200,15 @@ def test_the_newest_run_of_a_command_is_found_past_later_commands(tmp_path):
     write_run(root, "sensitivity", TABLES, RECORD)  # latest now points here
     assert latest_run(root, "run") == first and latest_run(root).name.endswith("-sensitivity")
     assert latest_run(root, "validate") is None
+
+
+def test_a_large_table_is_written_in_row_groups_and_reads_back_whole(tmp_path, monkeypatch):
+    from microsim import store
+    monkeypatch.setattr(store, "PARQUET_ROWS", 7)
+    table = pd.DataFrame({"patient": np.arange(30), "strategy": ["a", "b", "c"] * 10,
+                          "costs": np.linspace(0, 1, 30)})
+    store.write_parquet(table, tmp_path / "t.parquet")
+    back = pd.read_parquet(tmp_path / "t.parquet")
+    pd.testing.assert_frame_equal(back, table)
+    import pyarrow.parquet as pq
+    assert pq.ParquetFile(tmp_path / "t.parquet").num_row_groups == 5
