@@ -28,8 +28,9 @@ and noisy, so absolute timings mean little; ratios of interleaved timings mean m
 - PSA workers: the same PSA's time on one worker process over its time on two, each of one
   thread (every figure but the cycle engine's on all threads is taken on one thread; a
   bigger PSA than the others: with draws of a fraction of a second, starting workers would weigh most);
-- memory: peak resident memory of the main job (no histories) in a fresh process at two
-  population sizes; the growth per patient per strategy is the slope between them;
+- memory: peak resident memory of `microsim run` on the demo (no histories; its tables
+  written) in a fresh process at two population sizes; the growth per patient per
+  strategy is the slope between them;
 - common random numbers: the standard error of incremental QALYs on the demo scenario
   with shared draws, over the same with independent draws for the two strategies.
 
@@ -489,11 +490,12 @@ def rate_psa_timings(draws: int, patients: int, repeats: int) -> dict:
 # The peak is the process's own high-water mark (VmHWM, reset by exec), not getrusage's
 # ru_maxrss, which Linux carries over from the parent through fork and exec.
 MEMORY_SCRIPT = """
-import sys
+import contextlib, io, sys, tempfile
 from microsim.benchmark import demo_path
-from microsim.workflow import run_main
-with demo_path() as path:
-    run_main(path, patients=int(sys.argv[1]))
+from microsim.cli import main
+with demo_path() as path, tempfile.TemporaryDirectory() as out, \\
+        contextlib.redirect_stdout(io.StringIO()):
+    assert main(["run", str(path), "--patients", sys.argv[1], "--out", out]) == 0
 with open("/proc/self/status") as status:
     kb = next(int(line.split()[1]) for line in status if line.startswith("VmHWM:"))
 print(kb * 1024)
@@ -506,7 +508,7 @@ def demo_path():
 
 
 def peak_memory(patients: int) -> int:
-    """Peak resident bytes of the main job on the demo in a fresh process. `-P` keeps the
+    """Peak resident bytes of `microsim run` on the demo in a fresh process. `-P` keeps the
     working folder off its path, so a source checkout there does not stand in for the
     installed package (whose demo lives in microsim.examples)."""
     done = subprocess.run([sys.executable, "-P", "-c", MEMORY_SCRIPT, str(patients)],
@@ -591,7 +593,8 @@ def main(quick: bool = False) -> int:
     low, high = peak_memory(small), peak_memory(large)
     strategies = max(len(demo_scenario().strategies), 1)
     slope = (high - low) / (large - small) / strategies
-    print(f"Peak memory of the main job (no histories): {low / 2**20:,.0f} MB at {small:,} "
+    print(f"Peak memory of `microsim run` (no histories; tables written): "
+          f"{low / 2**20:,.0f} MB at {small:,} "
           f"patients, {high / 2**20:,.0f} MB at {large:,}: " + (
               f"{slope:,.0f} bytes per patient per strategy (target <= 200: "
               f"{verdict(slope, 200, larger_is_better=False)})" if high > low else

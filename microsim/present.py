@@ -304,7 +304,8 @@ def sampling_words(psa, currency: str) -> str:
     if not np.any(errors):  # nan (a single patient) is not 0, and is shown
         return (f"Exact basis: no inner Monte-Carlo noise, and the {n:,} patients every draw "
                 "shares have the same values in the base case, so no sampling error either.")
-    each = "; ".join(f"{r.strategy} {r.qalys_discounted_se:.3g} QALYs and {r.costs_discounted_se:,.3g} "
+    each = "; ".join(f"{r.strategy} {r.qalys_discounted_se:.3g} QALYs and "
+                     f"{r.costs_discounted_se:,.3g} "
                      f"{currency}" for r in psa.sampling.itertuples())
     return (f"Exact basis: no inner Monte-Carlo noise, but the {n:,} patients every draw shares "
             "are a sample of the population, so every draw's means are off the population's by "

@@ -113,7 +113,8 @@ def expanded_rows(exp: Expansion) -> tuple[Row | None, ...]:
             out.append(None)
             continue
         row = [r for r, risk in enumerate(model.risks) if risk.source == i]
-        moves = tuple(r for r in row if not model.risks[r].remainder and not model.risks[r].is_event)
+        moves = tuple(r for r in row
+                      if not model.risks[r].remainder and not model.risks[r].is_event)
         remainder = next((r for r in row if model.risks[r].remainder), None)
         events = tuple(r for r in row if model.risks[r].is_event)
         split = tuple(r for r in events
