@@ -613,3 +613,12 @@ def test_a_strategys_validation_names_it_and_its_histories_carry_the_treatment(t
     treated = histories.dropna(subset=["treatment_start"])
     # the eligibility rule of the demo's strategy: biomarker at least 1.0 and age below 80
     assert len(treated) and (treated.biomarker >= 1.0).all() and (treated.age < 80).all()
+
+
+def test_rows_prints_exactly_that_many_rows(tmp_path, capsys):
+    assert main(["trace", str(DEMO), "--rows", "3", "--out", str(tmp_path)]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    header = next(k for k, line in enumerate(lines) if line.split()[:1] == ["time"])
+    shown = lines[header + 1:header + 5]
+    assert [line.split()[0] for line in shown] == ["0", "1", "...", "40"]
+    assert shown[2] == "... (38 rows not shown)"

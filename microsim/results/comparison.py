@@ -428,7 +428,10 @@ class ComparisonSums:
             n = self.paired[measure].n
             pop, avg = population / n, cohort / n
             se = self.paired[measure].se
-            rows.append((measure, pop, avg, avg - pop, (avg - pop) / pop if pop else np.nan, se))
+            # a difference round-off alone explains (the same value summed in another
+            # order) is shown as the 0 it is
+            gap = 0.0 if within_roundoff(avg - pop, pop) else avg - pop
+            rows.append((measure, pop, avg, gap, gap / pop if pop else np.nan, se))
         table = pd.DataFrame(rows, columns=["measure", "population", "average_patient",
                                             "difference", "relative_difference", "se"])
         basis = ("exact: both analytic, se from sampling the patients" if exact
