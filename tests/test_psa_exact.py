@@ -21,8 +21,8 @@ from microsim.cli import main
 from microsim.patients.population import patients_for
 from microsim.scenario import ScenarioError, parse_scenario
 from microsim.uncertainty.psa import BASES, parameter_uncertainty
-from support import (Z, after, assert_refused, event, horizon, nested, parameters, rate,
-                     scenario_text, section, start, state, strategy)
+from support import (Z, after, assert_refused, event, horizon, nested, parameters, probability,
+                     rate, scenario_text, section, start, state, strategy)
 
 R, H, C_WELL, THRESHOLD, DIABETES_HR, PATIENTS, DRAWS = 0.1, 10.0, 1000.0, 20000.0, 1.5, 300, 12
 
@@ -199,3 +199,30 @@ def test_the_exact_basis_states_its_shared_patients_sampling_error(tmp_path):
     alike = SimpleNamespace(results=result.results, sampling=result.sampling.assign(
         qalys_discounted_se=0.0, costs_discounted_se=0.0))
     assert "no sampling error either" in sampling_words(alike, "pounds")
+
+
+def test_the_exact_basis_gives_the_same_draws_on_two_workers(tmp_path):
+    """Worker processes run the compiled exact products on one thread each; a cycle model
+    with count memory (expanded states) must give the draws of one process, number for
+    number."""
+    text = scenario_text(
+        horizon(10, cycle=1), start(well=1.0), state("well", utility=1, cost=C_WELL),
+        state("dead", absorbing=True),
+        probability("well", "dead", "p_die", effects=[dict(attribute="diabetes",
+                                                           hazard_ratio=DIABETES_HR)],
+                    memory=[after("flare", multipliers=[1.0, 1.4])]),
+        probability("well", "well", "remainder"),
+        event("flare", ["well"], probability=0.3),
+        parameters(p_die=dict(value=0.1, distribution=dict(family="beta", alpha=10, beta=90)),
+                   hr=dict(value=0.6, distribution=dict(family="gamma", shape=36,
+                                                        scale=0.6 / 36))),
+        strategy("usual", comparator=True),
+        strategy("drug", changes=[nested(transition="well->dead", hazard_ratio="hr")]),
+        section("population", patients=PATIENTS), section("uncertainty", draws=6, basis="exact"),
+        section("economics", threshold=THRESHOLD), section("simulation", seed=3)
+    ) + '\n[[population.attributes]]\nname = "diabetes"\ndistribution = "yesno"\nprevalence = 0.3\n'
+    scenario = parse_scenario(text)
+    one = parameter_uncertainty(scenario, tmp_path / "one", progress=False)
+    two = parameter_uncertainty(scenario, tmp_path / "two", progress=False, workers=2)
+    pd.testing.assert_frame_equal(one.results, two.results)
+    assert one.results.qalys_discounted.nunique() == len(one.results)  # draws that differ
