@@ -98,11 +98,10 @@ def compiled_products(exp: Expansion, mult: Multipliers) -> tuple[np.ndarray, np
                    np.zeros((2, exp.size, size)),  # and last R and scale (0 gives 0)
                    np.empty((n_risks, size), np.int64), np.empty((n_risks, size)),
                    np.empty(size))
-        failed = _products(rows, risks, ways, people.on, people.age0, people.off, lo,
-                           float(model.cycle), model.n_cycles, LIMIT,
-                           np.ascontiguousarray(start[lo:hi].T), trace[lo:hi], flow[:, :, lo:hi],
-                           scratch)
-        return failed
+        return _products(rows, risks, ways, people.on, people.age0, people.off, lo,
+                         float(model.cycle), model.n_cycles, LIMIT,
+                         np.ascontiguousarray(start[lo:hi].T), trace[lo:hi], flow[:, :, lo:hi],
+                         scratch)
 
     for failed in threads.in_order(one_chunk, range(0, batch, chunk), used):
         if failed[0] >= 0:
