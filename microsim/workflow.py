@@ -17,7 +17,7 @@ from microsim.binding import bind
 from microsim.capacity.run import refuse_options, run_service
 from microsim.cohort.analytic import solved_numerically
 from microsim.cohort.summaries import cohort_trace
-from microsim.decision.strategies import (AS_WRITTEN, Decision, decide, outcome_frame,
+from microsim.decision.strategies import (AS_WRITTEN, Decision, OutcomeRows, decide,
                                           strategy_names, treated_count, treatment_counts)
 from microsim.progress import progress
 from microsim.patients.population import (DEFAULT_PATIENTS, PATIENT, scenario_patients,
@@ -61,9 +61,10 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
     limit = None if compare_all else validation_limit(scenario, models.values())
     sums = {label: ComparisonSums(model, comparison_grid(model, scenario.simulation.grid), limit)
             for label, model in models.items()}
-    outcomes, people, treated = [], [], Counter()
+    people, treated = [], Counter()
     treated_by: dict[str, Counter] = {}
     batch = scenario.simulation.batch_size
+    outcomes = OutcomeRows(n * len(models), list(models))
     with (HistoryFile(histories) if histories is not None else nullcontext()) as file, \
             progress(n * len(models), "Patients simulated", "patient") as bar:
         for lo in range(0, n, batch):
@@ -72,14 +73,14 @@ def run_population(scenario: Scenario, size: int | None, seed: int, engine: str 
                 sim = simulate(model, patients, seed, batch_size=batch, grid=sums[label].grid,
                                histories=file, engine=engine)
                 sums[label].add(sim)
-                outcomes.append(outcome_frame(label, sim))
+                outcomes.add(label, sim)
                 treated[label] += treated_count(sim)
                 counts = treatment_counts(sim)
                 if counts:
                     treated_by.setdefault(label, Counter()).update(counts)
                 bar.update(len(patients))
             people.append(patients[[PATIENT, *subgroup_attributes(patients)]])
-    return PopulationRun(n, pd.concat(outcomes, ignore_index=True),
+    return PopulationRun(n, outcomes.frame(),
                          pd.concat(people, ignore_index=True), dict(treated),
                          {label: s.finish() for label, s in sums.items()},
                          {label: dict(c) for label, c in treated_by.items()},

@@ -456,3 +456,25 @@ def test_a_strategy_with_hazard_ratio_1_and_cost_0_reproduces_the_comparator(tex
     ours, theirs = outcome_values(inert_model, inert.exposure), outcome_values(base.model, base.exposure)
     for measure in ours:
         np.testing.assert_array_equal(ours[measure], theirs[measure], err_msg=measure)
+
+
+def test_outcome_rows_filled_in_place_are_the_joined_frames():
+    """A big run fills its outcomes in place (`OutcomeRows`); they must be the rows of the
+    per-strategy frames joined (`patient_outcomes`), with the strategy as a category."""
+    from microsim.decision.strategies import OutcomeRows, patient_outcomes, run_strategies
+    from microsim.patients.population import patients_for
+    from microsim.scenario import read_scenario
+    scenario = read_scenario(Path(__file__).resolve().parent.parent / "scenarios"
+                             / "lakemoor_kidney.toml")
+    people = patients_for(scenario, 300, 1)
+    halves = [run_strategies(scenario, people.iloc[k:k + 150], seed=1) for k in (0, 150)]
+    rows = OutcomeRows(300 * len(halves[0]), list(halves[0]))
+    joined = []
+    for sims in halves:
+        for name, sim in sims.items():
+            rows.add(name, sim)
+        joined.append(patient_outcomes(sims))
+    frame = rows.frame()
+    assert isinstance(frame.strategy.dtype, pd.CategoricalDtype)
+    pd.testing.assert_frame_equal(frame.astype({"strategy": object}),
+                                  pd.concat(joined, ignore_index=True))

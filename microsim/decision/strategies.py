@@ -55,6 +55,30 @@ def outcome_frame(name: str, sim: Simulation) -> pd.DataFrame:
     return frame
 
 
+class OutcomeRows:
+    """Every strategy's per-patient outcomes, the rows of `outcome_frame` with the strategy
+    as a category, filled in place batch by batch for a run of `rows` rows in all: joining
+    a big run's per-batch frames held two copies of them at its end."""
+
+    def __init__(self, rows: int, names: list[str]):
+        self.names, self.used = names, 0
+        self.patient, self.code = np.empty(rows, np.int64), np.empty(rows, np.int16)
+        self.values = {m: np.empty(rows) for m in REPORTED}
+
+    def add(self, name: str, sim: Simulation) -> None:
+        rows = slice(self.used, self.used + len(sim.patients))
+        self.patient[rows] = sim.patients["patient"].to_numpy()
+        self.code[rows] = self.names.index(name)
+        for m in REPORTED:
+            self.values[m][rows] = sim.values[m]
+        self.used = rows.stop
+
+    def frame(self) -> pd.DataFrame:
+        strategy = pd.Categorical.from_codes(self.code[:self.used], self.names)
+        return pd.DataFrame({"patient": self.patient[:self.used], "strategy": strategy,
+                             **{m: v[:self.used] for m, v in self.values.items()}}, copy=False)
+
+
 def patient_outcomes(sims: dict[str, Simulation]) -> pd.DataFrame:
     """Tidy per-patient outcomes of every strategy: patient, strategy, measures."""
     return pd.concat([outcome_frame(name, sim) for name, sim in sims.items()], ignore_index=True)
