@@ -83,7 +83,22 @@ def summary(result: MainResult) -> dict:
 
 
 def records(table: pd.DataFrame) -> list[dict]:
-    return json.loads(table.to_json(orient="records"))
+    """The rows as JSON records, each number to its last digit (pandas' own JSON keeps 10,
+    which wrote a value truncated to 0.9999999999999999 as 1.0); missing and infinite
+    numbers as null, as pandas writes them."""
+    rows = table.astype(object).to_dict(orient="records")
+    return [{key: plain(value) for key, value in row.items()} for row in rows]
+
+
+def plain(value):
+    """A cell as JSON holds it: numpy scalars as Python numbers, nan and inf as None."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    if value is None or isinstance(value, bool | int | float | str):
+        return value
+    return None if pd.isna(value) else str(value)
 
 
 def print_summary(result: MainResult) -> None:

@@ -222,3 +222,12 @@ def test_a_scenario_without_strategies_still_says_which_draws_were_changed(tmp_p
     out = capsys.readouterr().out
     assert "they need at least two, and this scenario defines none" in out
     assert "were invalid and were drawn again" in out
+
+
+def test_the_summary_keeps_a_truncated_value_to_its_last_digit():
+    from microsim.present import records
+    table = pd.DataFrame({"drawn": [1.0, math.nan], "used": [1.0 - 2**-53, math.inf],
+                          "draw": np.array([3, 4], np.int64)})
+    assert records(table) == [{"drawn": 1.0, "used": 0.9999999999999999, "draw": 3},
+                              {"drawn": None, "used": None, "draw": 4}]
+    assert json.dumps(records(table))  # plain JSON: no numpy scalars, no NaN
