@@ -25,11 +25,16 @@ def show(title: str, table: pd.DataFrame, rows: int = 40) -> None:
     if len(table) <= rows:
         print(table.to_string(index=False, float_format=lambda x: f"{x:.6g}"))
         return
+    hidden = len(table) - rows
+    note = f"... ({hidden:,} row{'s' if hidden > 1 else ''} not shown)"
+    if rows == 0:
+        print(note)
+        return
     head = (rows + 1) // 2  # exactly `rows` rows: the first half and the last
     shown = pd.concat([table.head(head), table.tail(rows - head)])
     lines = shown.to_string(index=False, float_format=lambda x: f"{x:.6g}").splitlines()
     cut = len(lines) - len(shown) + head  # below the header and the first rows
-    print("\n".join(lines[:cut] + [f"... ({len(table) - rows:,} rows not shown)"] + lines[cut:]))
+    print("\n".join(lines[:cut] + [note] + lines[cut:]))
 
 
 def summary(result: MainResult) -> dict:
