@@ -325,19 +325,27 @@ def tables_in_words(varied: list, fixed: list) -> list:
 
 def sampling_words(psa, currency: str) -> str:
     """One line: the sampling error the exact basis carries in every draw alike (its
-    shared patients are a sample of the population), by strategy, in the base case."""
+    shared patients are a sample of the population), by strategy and for each increment
+    over the comparator, in the base case."""
     n = int(psa.results.patients.iloc[0])
-    errors = psa.sampling[["qalys_discounted_se", "costs_discounted_se"]].to_numpy()
+    table = psa.sampling
+    errors = table[["qalys_discounted_se", "costs_discounted_se"]].to_numpy()
     if not np.any(errors):  # nan (a single patient) is not 0, and is shown
         return (f"Exact basis: no inner Monte-Carlo noise, and the {n:,} patients every draw "
                 "shares have the same values in the base case, so no sampling error either.")
-    each = "; ".join(f"{r.strategy} {r.qalys_discounted_se:.3g} QALYs and "
-                     f"{r.costs_discounted_se:,.3g} "
-                     f"{currency}" for r in psa.sampling.itertuples())
+    levels = "; ".join(f"{r.strategy} {r.qalys_discounted_se:.3g} QALYs and "
+                       f"{r.costs_discounted_se:,.3g} {currency}" for r in table.itertuples())
+    others = table.iloc[1:]
+    increments = "" if others.empty else (
+        f"; of the increments over {table.strategy.iloc[0]}, paired by patient: " + "; ".join(
+            f"{r.strategy} {r.incremental_qalys_se:.3g} QALYs, {r.incremental_costs_se:,.3g} "
+            f"{currency}, net monetary benefit {r.incremental_nmb_se:,.3g} {currency}"
+            for r in others.itertuples()))
     return (f"Exact basis: no inner Monte-Carlo noise, but the {n:,} patients every draw shares "
             "are a sample of the population, so every draw's means are off the population's by "
-            f"the same sampling error; its standard error in the base case: {each} (discounted; "
-            "more patients per draw, --patients-per-draw, shrink it at no simulation cost).")
+            f"the same sampling error; its standard error in the base case: {levels}"
+            f"{increments} (discounted; more patients per draw, --patients-per-draw, shrink it: "
+            "no simulation, but more computing).")
 
 
 def changed_draws(psa, listed: int = 5) -> str:

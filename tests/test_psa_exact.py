@@ -194,8 +194,17 @@ def test_the_exact_basis_states_its_shared_patients_sampling_error(tmp_path):
     assert usual.costs_discounted_se == pytest.approx(C_WELL * se, rel=1e-9)
     population = 0.3 * life(R * DIABETES_HR) + 0.7 * life(R)
     assert abs(years.mean() - population) < Z * se
+    # the increment of the drug (hr 0.6, c_drug 500 per year on it), paired by patient
+    drug = np.where(diabetes == 1, life(R * DIABETES_HR * 0.6), life(R * 0.6))
+    gain, spend = drug - years, (C_WELL + 500.0) * drug - C_WELL * years
+    row = result.sampling.set_index("strategy").loc["drug"]
+    for got, x in ((row.incremental_qalys_se, gain), (row.incremental_costs_se, spend),
+                   (row.incremental_nmb_se, THRESHOLD * gain - spend)):
+        assert got == pytest.approx(x.std(ddof=1) / math.sqrt(PATIENTS), rel=1e-9)
+    assert math.isnan(usual.incremental_nmb_se)
     line = sampling_words(result, "pounds")
     assert f"the {PATIENTS:,} patients every draw shares are a sample" in line
+    assert "of the increments over usual, paired by patient: drug" in line
     alike = SimpleNamespace(results=result.results, sampling=result.sampling.assign(
         qalys_discounted_se=0.0, costs_discounted_se=0.0))
     assert "no sampling error either" in sampling_words(alike, "pounds")

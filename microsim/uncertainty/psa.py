@@ -290,13 +290,22 @@ def draw_evaluation(scenario: Scenario, n: int):
 
 def sampling_error(scenario: Scenario, people: pd.DataFrame) -> pd.DataFrame:
     """Per strategy, the standard errors of the shared patients' mean discounted QALYs and
-    costs in the base case (SD / sqrt(n) over their exact values): the exact basis has no
-    inner noise, but its patients are a sample of the population, and every draw carries
-    that sample's offset alike."""
+    costs in the base case (SD / sqrt(n) over their exact values), and of its increments
+    over the comparator, paired by patient (QALYs, costs, net monetary benefit at the
+    threshold; nan for the comparator): the exact basis has no inner noise, but its
+    patients are a sample of the population, and every draw carries that sample's offset
+    alike. The increments, on which decisions rest, carry much less of it than the levels."""
     base = {name: float(p.value) for name, p in scenario.parameters.items()}
-    rows = []
+    threshold = scenario.economics.threshold
+    rows, first = [], None
     for name in strategy_names(scenario) or [None]:
         exact = exact_values(scenario, people, -1, base, name)
+        first = exact if first is None else first
+        gains = (exact.qalys - first.qalys, exact.costs - first.costs)
+        increments = ((math.nan,) * 3 if exact is first else
+                      (*map(mean_error, gains), mean_error(threshold * gains[0] - gains[1])))
         rows.append((AS_WRITTEN if name is None else name,
-                     *(mean_error(x) for x in (exact.qalys, exact.costs))))
-    return pd.DataFrame(rows, columns=["strategy", "qalys_discounted_se", "costs_discounted_se"])
+                     *(mean_error(x) for x in (exact.qalys, exact.costs)), *increments))
+    return pd.DataFrame(rows, columns=["strategy", "qalys_discounted_se", "costs_discounted_se",
+                                       "incremental_qalys_se", "incremental_costs_se",
+                                       "incremental_nmb_se"])
