@@ -582,8 +582,10 @@ def main(quick: bool = False) -> int:
           f"{r['simulated'] / r['exact']:.2f} x as fast as simulated (exact {r['exact']:.1f} s, "
           f"simulated {r['simulated']:.1f} s; a matrix exponential for every patient)")
     # a bigger PSA for the workers: a draw of the compiled engine takes a fraction of a
-    # second, and starting two worker processes is then a large share of a small PSA
-    draws, per_draw = (8, 2000) if quick else (32, 20_000)
+    # second, and starting two worker processes (about a second each) is then a large share
+    # of a small PSA, where a real one of hundreds of draws spreads it thin; at 32 draws
+    # the ratio swung from 1.6 to 2.0 between runs
+    draws, per_draw = (8, 2000) if quick else (64, 20_000)
     w = psa_timings(draws, per_draw, runs=(("one", "simulated", 1), ("two", "simulated", 2)))
     print(f"PSA with 2 workers, {draws} draws of {per_draw:,} patients: {w['one'] / w['two']:.2f}"
           f" x as fast as with 1 (2 workers {w['two']:.1f} s, 1 worker {w['one']:.1f} s; "
