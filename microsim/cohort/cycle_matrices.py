@@ -126,11 +126,11 @@ def expanded_rows(exp: Expansion) -> tuple[Row | None, ...]:
             j = stay if risk is None else risk.target
             for pattern in itertools.product((False, True), repeat=len(split)):
                 to, occurred = j, [] if risk is None else [risk]
-                for happened, e in zip(pattern, split):
+                for happened, event in zip(pattern, split):
                     if happened:
-                        occurred.append(model.risks[e])
+                        occurred.append(model.risks[event])
                         if model.phase_on is not None:
-                            to = int(model.phase_on[e, to])
+                            to = int(model.phase_on[event, to])
                 bits = sum(1 << q for q, happened in enumerate(pattern) if happened)
                 entries.append((exp.target(i, d, counts, to, tuple(occurred)), way, bits))
         out.append(Row(i, d, counts, moves, remainder, events, split,
