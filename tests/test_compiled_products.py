@@ -115,3 +115,39 @@ def test_a_row_above_one_is_refused_alike():
         messages.append(str(refused.value))
     assert messages[0].split(" sum to ")[0] == messages[1].split(" sum to ")[0]
     assert "patient row 7" in messages[1]
+
+
+def test_a_long_tunnel_model_in_small_chunks_gives_the_reference_numbers(monkeypatch):
+    """20 years of monthly cycles, a time-in-state table of 25 bands (a 25-cycle tunnel
+    beside count memory: many expanded states, so the smallest chunks), the competing
+    rule, attained age and an event that moves the count: the kernel in 64-patient chunks
+    on two threads against the numpy reference."""
+    from support import after, effect, event, horizon, population, probability, start, state
+    from support import attribute, scenario_text, table
+    starts = [k / 12 for k in range(25)]
+    text = scenario_text(
+        horizon(20, cycle=1 / 12, rule="competing"), start(well=0.8, sick=0.2),
+        state("well"), state("sick"), state("dead", absorbing=True),
+        probability("well", "sick", 0.01, effects=[effect("age", 1.03, centre=60)],
+                    memory=[after("flare", multipliers=[1.0, 1.5, 2.0])]),
+        probability("well", "dead", 0.002, effects=[effect("age", 1.05, centre=60)]),
+        probability("well", "well", "remainder"),
+        probability("sick", "dead", "stay_death"), probability("sick", "well", 0.02),
+        probability("sick", "sick", "remainder"),
+        event("flare", ["well", "sick"], probability=0.03),
+        table("stay_death", by="time_in_state", starts=starts,
+              values=[0.05 * 0.9 ** k for k in range(25)]),
+        population(200, attribute("age", "normal", mean=60, sd=8, lower=40, upper=80)))
+    scenario = parse_scenario(text)
+    model = bind(scenario)
+    mult, _ = patients_of(scenario, model, 200).unique()
+    exp = expand(model)
+    assert exp.size > 70 and model.n_cycles == 240
+    reference = cycle_result(exp, mult, products=matrix_products)
+    monkeypatch.setattr(compiled, "CHUNK_NUMBERS", 1)
+    threads.use(2)
+    try:
+        fast = cycle_result(exp, mult)
+    finally:
+        threads.use(None)
+    assert_same(reference, fast)
