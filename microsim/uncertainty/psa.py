@@ -32,8 +32,9 @@ import pandas as pd
 from microsim import __version__
 from microsim.decision import economics
 from microsim.decision.strategies import (AS_WRITTEN, COST, EFFECT, patient_outcomes,
-                                         run_strategies, strategy_names)
+                                         run_strategies, standard_error, strategy_names)
 from microsim.patients.population import patients_for, scenario_patients
+from microsim.results.comparison import within_roundoff
 from microsim.scenario.errors import ScenarioError
 from microsim.scenario.read_economics import check_incidence_covers
 from microsim.scenario.read_uncertainty import psa_tables
@@ -92,12 +93,10 @@ def evaluate_exact_draw(scenario: Scenario, people: pd.DataFrame, draw: int,
 
 
 def mean_error(x: np.ndarray) -> float:
-    """The standard error of the mean of x, 0 where x differs only by round-off (patients
-    alike: 1e-12 of its size), nan for a single value."""
-    if len(x) < 2:
-        return math.nan
-    se = float(np.std(x, ddof=1)) / math.sqrt(len(x))
-    return 0.0 if se <= 1e-12 * max(float(np.abs(x).max()), 1.0) else se
+    """The standard error of the mean of x, 0 where round-off alone explains it (the
+    strategy tables' rule, `comparison.within_roundoff`), nan for a single value."""
+    se = standard_error(x)
+    return 0.0 if within_roundoff(se, float(np.mean(x))) else se
 
 
 def exact_values(scenario: Scenario, people: pd.DataFrame, draw: int, values: dict,
