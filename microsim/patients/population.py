@@ -27,6 +27,7 @@ from scipy.special import ndtr, ndtri
 
 from microsim import streams
 from microsim.scenario.errors import ScenarioError
+from microsim.scenario.fields import AGE
 from microsim.scenario.file_uses import check_column_uses, check_file_population
 from microsim.scenario.population_file import RESERVED, PopulationFile, read_population_file
 from microsim.scenario.read_population import band_gap
@@ -395,9 +396,9 @@ def gives_age(spec: PopulationSpec | None) -> bool:
     the average patient alike)."""
     if spec is None:
         return False
-    if any(a.name == "age" for a in spec.attributes):
+    if any(a.name == AGE for a in spec.attributes):
         return True
-    return spec.file is not None and "age" in population_file(spec).rows
+    return spec.file is not None and AGE in population_file(spec).rows
 
 
 def expected_covariate(spec: PopulationSpec, attribute: str, level: str | None = None) -> float:
